@@ -1,0 +1,244 @@
+//! Labelled arrays: the one data type that flows between stages.
+//!
+//! A stage's output is an n-dimensional array (real `f32`, or complex `f32` for wavelet
+//! coefficients) together with its [`Layout`]: the axis names (`dims`), one coordinate list per
+//! axis (`coords`), the physical unit of the values and op-specific metadata ([`Meta`]).
+//! The layout alone (without values) is what ops use to check parameters against the data
+//! before anything is computed, so it is a type of its own.
+
+use ndarray::ArrayD;
+use num_complex::Complex32;
+use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
+
+use crate::error::StageError;
+
+/// Coordinates of one axis.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", content = "values", rename_all = "snake_case")]
+pub enum Coord {
+    /// Text labels (channel names, condition names, measure names, subject ids, band names).
+    Labels(Vec<String>),
+    /// Numbers (time in s, frequency in Hz, trial index).
+    Numbers(Vec<f64>),
+    /// Channel pairs `[a, b]`.
+    Pairs(Vec<[String; 2]>),
+}
+
+impl Coord {
+    /// Number of entries.
+    pub fn len(&self) -> usize {
+        match self {
+            Coord::Labels(v) => v.len(),
+            Coord::Numbers(v) => v.len(),
+            Coord::Pairs(v) => v.len(),
+        }
+    }
+    /// True when the axis has no entries.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+    /// The labels, if this is a label axis.
+    pub fn labels(&self) -> Option<&[String]> {
+        match self {
+            Coord::Labels(v) => Some(v),
+            _ => None,
+        }
+    }
+    /// The numbers, if this is a numeric axis.
+    pub fn numbers(&self) -> Option<&[f64]> {
+        match self {
+            Coord::Numbers(v) => Some(v),
+            _ => None,
+        }
+    }
+    /// The pairs, if this is a pair axis.
+    pub fn pairs(&self) -> Option<&[[String; 2]]> {
+        match self {
+            Coord::Pairs(v) => Some(v),
+            _ => None,
+        }
+    }
+}
+
+/// One event of a continuous recording (from a BIDS events sidecar or EDF+ annotations).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Event {
+    /// Onset in seconds from the start of the recording.
+    pub onset: f64,
+    /// Duration in seconds (0 when not given).
+    pub duration: f64,
+    /// The event's label (`trial_type` in BIDS).
+    pub label: String,
+}
+
+/// What an epoch (one trial) came from.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct TrialInfo {
+    /// The condition the trial belongs to.
+    pub condition: String,
+    /// The label of the source event.
+    pub event: String,
+    /// The source event's onset in seconds from the start of the recording.
+    pub onset: f64,
+}
+
+/// Metadata carried beside the values. Fields are optional because not every stage has them.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct Meta {
+    /// Sampling rate in Hz of the `time` axis (after any stride).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sampling_rate: Option<f64>,
+    /// Channel types (`EEG`, `EOG`, `ECG`, `MISC`, ...), parallel to the `channel` axis.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub channel_types: Option<Vec<String>>,
+    /// Events of a continuous recording.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub events: Option<Vec<Event>>,
+    /// Per-trial information of epoched data, parallel to the `trial` axis.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub trials: Option<Vec<TrialInfo>>,
+    /// Anything else an op wants to hand downstream.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub extra: BTreeMap<String, serde_json::Value>,
+}
+
+/// Axis names, coordinates, unit and metadata of an array, without its values.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct Layout {
+    /// Axis names, outermost first.
+    pub dims: Vec<String>,
+    /// One coordinate list per axis.
+    pub coords: Vec<Coord>,
+    /// Physical unit of the values (`V`, `1` for dimensionless, `%`, `dB`, `z`).
+    pub units: String,
+    /// True when the values are complex.
+    pub complex: bool,
+    /// Metadata.
+    pub meta: Meta,
+}
+
+impl Layout {
+    /// The shape implied by the coordinates.
+    pub fn shape(&self) -> Vec<usize> {
+        self.coords.iter().map(Coord::len).collect()
+    }
+
+    /// Position of axis `name`, or an error naming the axes that exist.
+    pub fn axis(&self, name: &str) -> Result<usize, StageError> {
+        self.dims.iter().position(|d| d == name).ok_or_else(|| {
+            StageError::data(format!(
+                "the input has no `{name}` axis (its axes are [{}])",
+                self.dims.join(", ")
+            ))
+        })
+    }
+
+    /// Coordinates of axis `name`.
+    pub fn coord(&self, name: &str) -> Result<&Coord, StageError> {
+        Ok(&self.coords[self.axis(name)?])
+    }
+
+    /// Numeric coordinates of axis `name` (time, freq).
+    pub fn numbers(&self, name: &str) -> Result<&[f64], StageError> {
+        self.coord(name)?
+            .numbers()
+            .ok_or_else(|| StageError::data(format!("the `{name}` axis is not numeric")))
+    }
+
+    /// Label coordinates of axis `name` (channel, condition, measure).
+    pub fn labels(&self, name: &str) -> Result<&[String], StageError> {
+        self.coord(name)?
+            .labels()
+            .ok_or_else(|| StageError::data(format!("the `{name}` axis does not hold labels")))
+    }
+
+    /// The sampling rate, or an error saying the input has none.
+    pub fn sampling_rate(&self) -> Result<f64, StageError> {
+        self.meta
+            .sampling_rate
+            .ok_or_else(|| StageError::data("the input carries no sampling rate"))
+    }
+}
+
+/// The values of a labelled array.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Values {
+    /// Real values.
+    Real(ArrayD<f32>),
+    /// Complex values (wavelet coefficients).
+    Complex(ArrayD<Complex32>),
+}
+
+impl Values {
+    /// The array's shape.
+    pub fn shape(&self) -> &[usize] {
+        match self {
+            Values::Real(a) => a.shape(),
+            Values::Complex(a) => a.shape(),
+        }
+    }
+    /// The numpy dtype string of the values (`<f4` or `<c8`).
+    pub fn dtype(&self) -> &'static str {
+        match self {
+            Values::Real(_) => "<f4",
+            Values::Complex(_) => "<c8",
+        }
+    }
+}
+
+/// An array with its layout.
+#[derive(Clone, Debug, PartialEq)]
+pub struct LabelledArray {
+    /// Axis names, coordinates, unit, metadata.
+    pub layout: Layout,
+    /// The values; their shape equals `layout.shape()`.
+    pub values: Values,
+}
+
+impl LabelledArray {
+    /// Build a real array, checking that the shape matches the coordinates.
+    pub fn real(mut layout: Layout, values: ArrayD<f32>) -> Result<Self, StageError> {
+        layout.complex = false;
+        Self::checked(layout, Values::Real(values))
+    }
+
+    /// Build a complex array, checking that the shape matches the coordinates.
+    pub fn complex(mut layout: Layout, values: ArrayD<Complex32>) -> Result<Self, StageError> {
+        layout.complex = true;
+        Self::checked(layout, Values::Complex(values))
+    }
+
+    /// Build from a layout and values, checking that the shape matches the coordinates.
+    pub fn checked(layout: Layout, values: Values) -> Result<Self, StageError> {
+        if layout.dims.len() != layout.coords.len() || layout.shape() != values.shape() {
+            return Err(StageError::data(format!(
+                "internal shape mismatch: dims {:?} with coordinate lengths {:?} but values of shape {:?}",
+                layout.dims,
+                layout.shape(),
+                values.shape()
+            )));
+        }
+        Ok(LabelledArray { layout, values })
+    }
+
+    /// The real values, or an error when they are complex.
+    pub fn real_values(&self) -> Result<&ArrayD<f32>, StageError> {
+        match &self.values {
+            Values::Real(a) => Ok(a),
+            Values::Complex(_) => Err(StageError::data(
+                "expected real values but the input is complex (wavelet coefficients?)",
+            )),
+        }
+    }
+
+    /// The complex values, or an error when they are real.
+    pub fn complex_values(&self) -> Result<&ArrayD<Complex32>, StageError> {
+        match &self.values {
+            Values::Complex(a) => Ok(a),
+            Values::Real(_) => Err(StageError::data(
+                "expected complex wavelet coefficients but the input is real",
+            )),
+        }
+    }
+}

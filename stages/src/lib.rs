@@ -1,0 +1,25 @@
+//! # phasewise-stages
+//!
+//! Pure computation for phase-synchronization connectivity studies of multichannel
+//! electrophysiology: readers (EDF/EDF+/BDF and BIDS-style sidecars), re-referencing, notch and
+//! band-pass filtering, epoching, complex Morlet wavelets, phase-clustering measures between
+//! channel pairs, baseline normalisation and aggregation. Every op takes and returns
+//! [`LabelledArray`]s; there is no YAML, no cache and no command line here, so the crate can be
+//! used as a library on its own.
+//!
+//! Research software: results are not a clinical measurement.
+#![deny(missing_docs)]
+
+pub mod array;
+pub mod error;
+pub mod io;
+pub mod op;
+pub mod ops;
+pub mod registry;
+
+pub use array::{Coord, Event, LabelledArray, Layout, Meta, TrialInfo, Values};
+pub use error::StageError;
+pub use op::{DynOp, Input, InputLayout, Notes, Op};
+
+#[cfg(test)]
+pub(crate) mod testutil;

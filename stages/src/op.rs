@@ -1,0 +1,196 @@
+//! The one trait through which the runner knows an op, and its object-safe wrapper.
+//!
+//! An op is a pure function from labelled arrays to a labelled array, parameterised by a typed
+//! `Params` struct. The runner never sees the concrete type: it holds `&dyn DynOp` from the
+//! [registry](crate::registry) and passes params as JSON values, which the wrapper deserialises
+//! (unknown fields are errors, via `#[serde(deny_unknown_fields)]` on each `Params`).
+//!
+//! Life of a unit (one stage × one subject) as the runner drives it:
+//! 1. [`DynOp::resolve`] turns the user's params into the op's *effective* params (defaults filled
+//!    in, validated on their own) — these are what is hashed into the stage key.
+//! 2. [`DynOp::layout`] computes the output layout from the input layouts without touching values,
+//!    so that data-dependent mistakes (a window outside the data, a frequency at or above Nyquist)
+//!    are reported before anything runs.
+//! 3. [`DynOp::run`] computes the output.
+
+use serde::{de::DeserializeOwned, Serialize};
+use serde_json::Value;
+use std::collections::BTreeMap;
+use std::marker::PhantomData;
+
+use crate::array::{LabelledArray, Layout};
+use crate::error::StageError;
+
+/// One input array of a unit: which stage it came from and, for stages that join subjects,
+/// which subject.
+#[derive(Clone, Copy, Debug)]
+pub struct Input<'a> {
+    /// The producing stage's name (`recordings` for the data source).
+    pub stage: &'a str,
+    /// The subject, when the producing unit is per subject.
+    pub subject: Option<&'a str>,
+    /// The array.
+    pub array: &'a LabelledArray,
+}
+
+/// The input layouts handed to [`Op::layout`], in the same order as [`Input`]s would be.
+#[derive(Clone, Copy, Debug)]
+pub struct InputLayout<'a> {
+    /// The producing stage's name.
+    pub stage: &'a str,
+    /// The subject, when the producing unit is per subject.
+    pub subject: Option<&'a str>,
+    /// The layout.
+    pub layout: &'a Layout,
+}
+
+/// Returns the only input, or an error when there are several or none.
+pub fn single<T: Copy>(inputs: &[T]) -> Result<T, StageError> {
+    match inputs {
+        [one] => Ok(*one),
+        _ => Err(StageError::data(format!(
+            "this op takes exactly one input array, got {}",
+            inputs.len()
+        ))),
+    }
+}
+
+/// Side results of a run besides the output array: warnings for the user and records that
+/// the runner copies into the manifest (e.g. epoch counts under the key `epochs`).
+#[derive(Clone, Debug, Default, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct Notes {
+    /// Warnings, each a full sentence naming what it is about.
+    #[serde(default)]
+    pub warnings: Vec<String>,
+    /// Structured records for the manifest.
+    #[serde(default)]
+    pub records: BTreeMap<String, Value>,
+}
+
+impl Notes {
+    /// Add a warning.
+    pub fn warn(&mut self, message: impl Into<String>) {
+        self.warnings.push(message.into());
+    }
+    /// Add a record for the manifest.
+    pub fn record(&mut self, key: impl Into<String>, value: Value) {
+        self.records.insert(key.into(), value);
+    }
+}
+
+/// A signal-processing op with typed parameters.
+pub trait Op: Send + Sync + 'static {
+    /// The op's parameters, deserialised with `deny_unknown_fields`.
+    type Params: DeserializeOwned + Serialize;
+    /// The name used in pipeline files (`op: wavelet`).
+    const NAME: &'static str;
+    /// Bumped whenever the op's numbers change, so that cached results go stale.
+    const VERSION: u32;
+
+    /// Checks of the params on their own (ranges, consistency), before any data is seen.
+    fn check(_params: &Self::Params) -> Result<(), StageError> {
+        Ok(())
+    }
+
+    /// True when a unit of this op joins all subjects (one group unit instead of one per subject).
+    fn joins_subjects(_params: &Self::Params) -> bool {
+        false
+    }
+
+    /// The output layout for these inputs, without computing values. Return `Ok(None)` when it
+    /// cannot be known in advance; downstream checks are then deferred to run time.
+    fn layout(
+        params: &Self::Params,
+        inputs: &[InputLayout<'_>],
+    ) -> Result<Option<Layout>, StageError>;
+
+    /// Compute the output.
+    fn run(
+        params: &Self::Params,
+        inputs: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError>;
+}
+
+/// Object-safe form of [`Op`], taking params as JSON.
+pub trait DynOp: Send + Sync {
+    /// The op's name.
+    fn name(&self) -> &'static str;
+    /// The op's version.
+    fn version(&self) -> u32;
+    /// Deserialise and check the params; returns the effective params (defaults filled in).
+    fn resolve(&self, params: &Value) -> Result<Value, StageError>;
+    /// See [`Op::joins_subjects`]; `params` must be effective params from [`DynOp::resolve`].
+    fn joins_subjects(&self, params: &Value) -> Result<bool, StageError>;
+    /// See [`Op::layout`].
+    fn layout(
+        &self,
+        params: &Value,
+        inputs: &[InputLayout<'_>],
+    ) -> Result<Option<Layout>, StageError>;
+    /// See [`Op::run`].
+    fn run(
+        &self,
+        params: &Value,
+        inputs: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError>;
+}
+
+/// Wraps an [`Op`] type as a [`DynOp`] value.
+pub struct Registered<O: Op>(PhantomData<O>);
+
+impl<O: Op> Registered<O> {
+    /// The wrapper (a zero-sized value).
+    pub const fn new() -> Self {
+        Registered(PhantomData)
+    }
+}
+
+impl<O: Op> Default for Registered<O> {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+/// Deserialise typed params from JSON, reporting the dotted path of the offending field.
+pub fn parse_params<P: DeserializeOwned>(params: &Value) -> Result<P, StageError> {
+    serde_path_to_error::deserialize(params).map_err(|e| {
+        let path = e.path().to_string();
+        let field = if path == "." { String::new() } else { path };
+        StageError::param(field, e.into_inner().to_string())
+    })
+}
+
+impl<O: Op> DynOp for Registered<O> {
+    fn name(&self) -> &'static str {
+        O::NAME
+    }
+    fn version(&self) -> u32 {
+        O::VERSION
+    }
+    fn resolve(&self, params: &Value) -> Result<Value, StageError> {
+        let typed: O::Params = parse_params(params)?;
+        O::check(&typed)?;
+        serde_json::to_value(&typed)
+            .map_err(|e| StageError::data(format!("cannot serialise params: {e}")))
+    }
+    fn joins_subjects(&self, params: &Value) -> Result<bool, StageError> {
+        Ok(O::joins_subjects(&parse_params(params)?))
+    }
+    fn layout(
+        &self,
+        params: &Value,
+        inputs: &[InputLayout<'_>],
+    ) -> Result<Option<Layout>, StageError> {
+        O::layout(&parse_params(params)?, inputs)
+    }
+    fn run(
+        &self,
+        params: &Value,
+        inputs: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        O::run(&parse_params(params)?, inputs, notes)
+    }
+}

@@ -1,0 +1,29 @@
+//! The `baseline` op (placeholder: being implemented).
+
+use serde::{Deserialize, Serialize};
+
+use crate::array::{LabelledArray, Layout};
+use crate::error::StageError;
+use crate::op::{Input, InputLayout, Notes, Op};
+
+/// The `baseline` op.
+pub struct Baseline;
+
+/// Parameters of `baseline`.
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BaselineParams {}
+
+impl Op for Baseline {
+    type Params = BaselineParams;
+    const NAME: &'static str = "baseline";
+    const VERSION: u32 = 1;
+
+    fn layout(_p: &Self::Params, _inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
+        Ok(None)
+    }
+
+    fn run(_p: &Self::Params, _inputs: &[Input<'_>], _notes: &mut Notes) -> Result<LabelledArray, StageError> {
+        Err(StageError::data("not implemented yet"))
+    }
+}

@@ -1,0 +1,37 @@
+//! Helpers for unit tests: reading the reference fixtures that `tests/reference/gen_*.py`
+//! wrote with pinned numpy/scipy/pyedflib.
+
+use std::path::PathBuf;
+
+use ndarray::ArrayD;
+
+/// `tests/reference/fixtures/<area>/<name>` in the workspace.
+pub fn fixture_path(area: &str, name: &str) -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+        .join("../tests/reference/fixtures")
+        .join(area)
+        .join(name)
+}
+
+/// A float64 NPY fixture.
+pub fn read_f64(area: &str, name: &str) -> ArrayD<f64> {
+    let path = fixture_path(area, &format!("{name}.npy"));
+    ndarray_npy::read_npy(&path).unwrap_or_else(|e| panic!("reading {}: {e}", path.display()))
+}
+
+/// A JSON fixture.
+pub fn read_json(area: &str, name: &str) -> serde_json::Value {
+    let path = fixture_path(area, &format!("{name}.json"));
+    let text = std::fs::read_to_string(&path)
+        .unwrap_or_else(|e| panic!("reading {}: {e}", path.display()));
+    serde_json::from_str(&text).unwrap_or_else(|e| panic!("parsing {}: {e}", path.display()))
+}
+
+/// Largest |a - b| / max(|b|, floor) over two equally long slices.
+pub fn max_rel_diff(a: &[f64], b: &[f64], floor: f64) -> f64 {
+    assert_eq!(a.len(), b.len(), "length mismatch");
+    a.iter()
+        .zip(b)
+        .map(|(x, y)| (x - y).abs() / y.abs().max(floor))
+        .fold(0.0, f64::max)
+}
