@@ -16,6 +16,8 @@ pub mod io;
 pub mod op;
 pub mod ops;
 pub mod registry;
+pub mod simulate;
+pub mod table;
 
 pub use array::{Coord, Event, LabelledArray, Layout, Meta, TrialInfo, Values};
 pub use error::StageError;

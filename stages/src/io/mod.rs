@@ -9,6 +9,9 @@ use serde::{Deserialize, Serialize};
 
 use crate::array::{LabelledArray, Layout};
 use crate::error::StageError;
+use crate::op::Notes;
+
+pub mod edf;
 
 /// Where the events of a recording come from (`data.events` in the pipeline file).
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
@@ -22,8 +25,12 @@ pub enum EventSource {
 
 /// Read a recording (EDF, EDF+ or BDF) with its events and channel types:
 /// dims `[channel, time]`, values in volts, `meta.sampling_rate`, `meta.channel_types`,
-/// `meta.events`.
-pub fn read_recording(_path: &Path, _events: EventSource) -> Result<LabelledArray, StageError> {
+/// `meta.events`. Warnings (a channel dropped for its rate, ...) go to `notes`.
+pub fn read_recording(
+    _path: &Path,
+    _events: EventSource,
+    _notes: &mut Notes,
+) -> Result<LabelledArray, StageError> {
     Err(StageError::input("not implemented yet"))
 }
 
