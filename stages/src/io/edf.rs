@@ -1,43 +1,25 @@
-//! EDF / EDF+ / BDF reading and EDF+ writing (placeholder: being implemented).
+//! EDF, EDF+ and BDF: header parsing, bulk sample decoding, annotation lists, and the EDF+C
+//! writer.
+//!
+//! The formats follow Kemp et al. 1992 (EDF: a 256-byte fixed header, 256 bytes per signal, then
+//! data records of 16-bit little-endian two's-complement samples), Kemp & Olivan 2003 (EDF+:
+//! `EDF+C`/`EDF+D` in the reserved field and an `EDF Annotations` signal holding time-stamped
+//! annotation lists, TALs) and BioSemi's BDF variant (first byte 0xFF, `BIOSEMI`, 24-bit
+//! samples). This module owns the byte-level format only; turning a file into a labelled array
+//! (channel names and types, units, which channels to keep) is done in [`crate::io`].
+//!
+//! Submodules: `header` (parse and check the header), `samples` (decode records in bulk,
+//! extract annotation bytes), `tal` (parse and format TALs) and `write` (the EDF+C writer).
 
-use std::path::Path;
+mod header;
+mod samples;
+mod tal;
+mod write;
 
-use crate::array::Event;
-use crate::error::StageError;
+pub use header::{FileKind, Header, SignalHeader};
+pub use samples::{read_annotation_bytes, read_samples, Scaling};
+pub use tal::{parse_record_tals, RecordTals};
+pub use write::{write_edf_plus, EdfWriteSpec, SignalSpec};
 
-/// One signal to write.
-#[derive(Clone, Debug)]
-pub struct SignalSpec {
-    /// The EDF label (e.g. `EEG Fz`, `EOG left`).
-    pub label: String,
-    /// Physical dimension as written in the header (`uV`, `V`).
-    pub unit: String,
-    /// Samples in that physical unit; their count must be a whole number of records.
-    pub samples: Vec<f64>,
-}
-
-/// What [`write_edf_plus`] writes.
-#[derive(Clone, Debug)]
-pub struct EdfWriteSpec {
-    /// Local patient identification field (EDF+ subfields, `X` for unknown).
-    pub patient: String,
-    /// Local recording identification field.
-    pub recording: String,
-    /// Start date `dd.mm.yy`.
-    pub start_date: String,
-    /// Start time `hh.mm.ss`.
-    pub start_time: String,
-    /// Duration of one data record in seconds.
-    pub record_seconds: f64,
-    /// Sampling rate in Hz shared by all signals.
-    pub sampling_rate: f64,
-    /// The signals.
-    pub signals: Vec<SignalSpec>,
-    /// Annotations, written to an `EDF Annotations` signal.
-    pub annotations: Vec<Event>,
-}
-
-/// Write an EDF+C file with 16-bit samples; the same spec always gives the same bytes.
-pub fn write_edf_plus(_path: &Path, _spec: &EdfWriteSpec) -> Result<(), StageError> {
-    Err(StageError::input("not implemented yet"))
-}
+/// Width in bytes of the fixed part of the header and of each signal's header block.
+pub const BLOCK: usize = 256;
