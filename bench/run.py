@@ -1,0 +1,403 @@
+#!/usr/bin/env python3
+"""Benchmark harness: phasewise against its numpy/scipy peer (bench/peer.py) on one workload.
+
+Run through bench/run.sh, which builds what this needs first:
+
+    bench/run.sh quick            # ~2 minutes on a 2-core machine
+    bench/run.sh medium           # 10 subjects x 64 channels x 200 trials
+
+Steps, all printed and also written to bench/out/<size>/report.json and report.txt:
+1. simulate the study with `phasewise simulate` (the same files feed both sides);
+2. full chain, alternating phasewise (cold cache) and the peer, `reps` times each, each process
+   under /usr/bin/time -v for its peak RSS; per-stage seconds from phasewise's manifest and from
+   the peer's perf_counter timings; the agreement of the two (baseline-corrected measures of
+   every subject, and the group means);
+3. the wavelet op against the bare FFTs its work needs (bench/fft, same sizes, same threads);
+4. reruns on the warm cache: after a baseline-window change, and with nothing changed;
+5. scaling of phasewise's time with trials, channels (pairs) and frequencies (>= 4 sizes each,
+   fitted log-log slope) and of its peak RSS with frequencies.
+"""
+
+import argparse
+import json
+import math
+import os
+import shutil
+import statistics
+import subprocess
+import sys
+import time
+
+import numpy as np
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+BENCH = os.path.join(ROOT, "bench")
+PHASEWISE = os.path.join(ROOT, "target", "release", "phasewise")
+FFT_BIN = os.path.join(BENCH, "out", "fft-target", "release", "phasewise-bench-fft")
+PYTHON = sys.executable
+TIME = "/usr/bin/time"
+
+# Workload sizes. `study` goes to `phasewise simulate`; `freqs` to the wavelet's count; scaling
+# runs vary one axis of a one-subject study at a time around `base`.
+SIZES = {
+    "quick": {
+        "study": {"subjects": 2, "channels": 16, "trials": 40, "rate": 250},
+        "freqs": 12,
+        "reps": 2,
+        "scaling": {
+            "base": {"subjects": 1, "channels": 16, "trials": 40, "rate": 250, "freqs": 8},
+            "trials": [20, 40, 80, 160],
+            "channels": [8, 16, 24, 32],
+            "freqs": [4, 8, 16, 32],
+        },
+    },
+    "medium": {
+        "study": {"subjects": 10, "channels": 64, "trials": 200, "rate": 250},
+        "freqs": 24,
+        "reps": 2,
+        "scaling": {
+            "base": {"subjects": 1, "channels": 32, "trials": 100, "rate": 250, "freqs": 12},
+            "trials": [50, 100, 200, 400],
+            "channels": [16, 32, 48, 64],
+            "freqs": [6, 12, 24, 48],
+        },
+    },
+}
+
+# The wavelet's frequency range in bench/chain.yaml; only the count changes.
+FREQ_RANGE = {"from": 4, "to": 30, "spacing": "log"}
+BASELINE_CHANGE = "norm.window=[-0.4, -0.2]"
+AGREEMENT_TOL = 1e-4  # max |phasewise − peer| of baseline-corrected measures (see BENCHMARKS.md)
+
+
+class Report:
+    """Prints lines and keeps them (and structured results) for report.txt / report.json."""
+
+    def __init__(self):
+        self.lines, self.data = [], {}
+
+    def say(self, text=""):
+        print(text, flush=True)
+        self.lines.append(text)
+
+    def table(self, header, rows):
+        widths = [max(len(str(r[i])) for r in [header] + rows) for i in range(len(header))]
+        for row in [header] + rows:
+            self.say("  ".join(str(c).rjust(w) for c, w in zip(row, widths)))
+
+
+# ---------------------------------------------------------------------------------------------
+# Processes
+
+
+def timed(cmd, cwd=None):
+    """Run cmd under GNU time; return wall seconds, peak RSS (MiB), stdout, stderr."""
+    start = time.perf_counter()
+    proc = subprocess.run([TIME, "-v"] + cmd, cwd=cwd, capture_output=True, text=True)
+    wall = time.perf_counter() - start
+    rss = None
+    for line in proc.stderr.splitlines():
+        if "Maximum resident set size" in line:
+            rss = int(line.split(":")[-1]) / 1024.0
+    if proc.returncode != 0:
+        tail = "\n".join(proc.stderr.splitlines()[-25:])
+        raise SystemExit(f"command failed ({proc.returncode}): {' '.join(cmd)}\n{tail}")
+    return wall, rss, proc.stdout, proc.stderr
+
+
+def simulate(folder, study, seed=1):
+    """`phasewise simulate` into folder/data (skipped when the same size is already there)."""
+    data = os.path.join(folder, "data")
+    stamp = os.path.join(folder, "study.json")
+    want = dict(study, seed=seed)
+    # The pipeline is copied every time, so an edit of bench/chain.yaml always takes effect.
+    os.makedirs(folder, exist_ok=True)
+    shutil.copy(os.path.join(BENCH, "chain.yaml"), os.path.join(folder, "pipeline.yaml"))
+    if os.path.exists(stamp) and json.load(open(stamp)) == want:
+        return data
+    shutil.rmtree(data, ignore_errors=True)
+    cmd = [PHASEWISE, "simulate", "--out", data, "--subjects", str(study["subjects"]),
+           "--seed", str(seed)]
+    for flag in ("channels", "trials", "rate"):
+        cmd += [f"--{flag}", str(study[flag])]
+    subprocess.run(cmd, check=True, capture_output=True)
+    json.dump(want, open(stamp, "w"))
+    return data
+
+
+def freq_set(count):
+    """The --set that gives the wavelet `count` frequencies over the bench range."""
+    spec = dict(FREQ_RANGE, count=count)
+    inner = ", ".join(f"{k}: {v}" for k, v in spec.items())
+    return f"tf.freqs={{{inner}}}"
+
+
+def run_phasewise(folder, sets, cache, fresh=True):
+    """One `phasewise run`; returns wall, RSS and the manifest's per-stage computed seconds."""
+    if fresh:
+        shutil.rmtree(cache, ignore_errors=True)
+    cmd = [PHASEWISE, "run", os.path.join(folder, "pipeline.yaml"), "--cache", cache]
+    for s in sets:
+        cmd += ["--set", s]
+    wall, rss, _, _ = timed(cmd)
+    manifest = json.load(open(os.path.join(folder, "results", "manifest.json")))
+    stages, computed = {}, 0
+    for unit in manifest["units"]:
+        stages[unit["stage"]] = stages.get(unit["stage"], 0.0) + float(unit.get("seconds") or 0)
+        computed += unit.get("status") == "computed"
+    return {"wall": wall, "rss": rss, "stages": stages, "computed": computed,
+            "units": len(manifest["units"]), "manifest": manifest}
+
+
+def run_peer(folder, sets):
+    """One peer run; returns wall, RSS and its per-stage seconds."""
+    out = os.path.join(folder, "peer")
+    shutil.rmtree(out, ignore_errors=True)
+    timings = os.path.join(folder, "peer-timings.json")
+    cmd = [PYTHON, os.path.join(BENCH, "peer.py"), os.path.join(folder, "pipeline.yaml"),
+           "--out", out, "--save", "norm", "--timings", timings]
+    for s in sets:
+        cmd += ["--set", s]
+    wall, rss, _, _ = timed(cmd)
+    t = json.load(open(timings))
+    return {"wall": wall, "rss": rss, "stages": t["stages"], "total": t["total"]}
+
+
+# ---------------------------------------------------------------------------------------------
+# Agreement
+
+
+def load_phasewise(path):
+    """A phasewise output array and its layout sidecar."""
+    layout = json.load(open(path[:-4] + ".json"))
+    return np.load(path), layout
+
+
+def coord_values(layout, dim):
+    """The coordinate list of `dim` in a phasewise layout sidecar."""
+    coord = layout["coords"][layout["dims"].index(dim)]
+    return coord["values"] if isinstance(coord, dict) else coord
+
+
+def align_norm(pw, layout, peer_meta):
+    """phasewise's norm array reordered to the peer's (condition, measure, pair) order."""
+    dims = layout["dims"]
+    want = ["condition", "measure", "pair", "freq", "time"]
+    arr = np.transpose(pw, [dims.index(d) for d in want])
+    idx = {}
+    for dim, key in (("condition", "conditions"), ("measure", "measures"), ("pair", "pairs")):
+        have = [tuple(v) if isinstance(v, list) else v for v in coord_values(layout, dim)]
+        peer_order = [tuple(v) if isinstance(v, list) else v for v in peer_meta[key]]
+        idx[dim] = [have.index(v) for v in peer_order]
+    arr = arr[idx["condition"]][:, idx["measure"]][:, :, idx["pair"]]
+    freqs = np.array(coord_values(layout, "freq"))
+    times = np.array(coord_values(layout, "time"))
+    return arr, freqs, times
+
+
+def agreement(folder):
+    """Max |phasewise − peer| per measure over all subjects (baseline-corrected), and the
+    largest coordinate differences, so a mismatch of axes is not mistaken for agreement."""
+    peer_dir = os.path.join(folder, "peer")
+    res_dir = os.path.join(folder, "results")
+    worst, coords, subjects = {}, 0.0, 0
+    for subject in sorted(os.listdir(peer_dir)):
+        if subject == "group":
+            continue
+        candidates = [subject, subject.replace("sub-", "")]
+        pw_path = next((os.path.join(res_dir, c, "norm.npy") for c in candidates
+                        if os.path.exists(os.path.join(res_dir, c, "norm.npy"))), None)
+        if pw_path is None:
+            raise SystemExit(f"no phasewise output norm.npy for {subject} under {res_dir}")
+        meta = json.load(open(os.path.join(peer_dir, subject, "norm.json")))
+        peer = np.load(os.path.join(peer_dir, subject, "norm.npy")).astype(np.float64)
+        pw, freqs, times = align_norm(*load_phasewise(pw_path), meta)
+        if pw.shape != peer.shape:
+            raise SystemExit(f"{subject}: shapes differ: phasewise {pw.shape}, peer {peer.shape}")
+        coords = max(coords, np.abs(freqs - meta["freqs"]).max(), np.abs(times - meta["times"]).max())
+        for mi, m in enumerate(meta["measures"]):
+            d = np.abs(pw[:, mi].astype(np.float64) - peer[:, mi])
+            both_nan = np.isnan(pw[:, mi]) & np.isnan(peer[:, mi])
+            d = np.where(both_nan, 0.0, d)
+            worst[m] = max(worst.get(m, 0.0), float(np.nan_to_num(d, nan=np.inf).max()))
+        subjects += 1
+    return {"max_abs_diff": worst, "coord_diff": float(coords), "subjects": subjects}
+
+
+# ---------------------------------------------------------------------------------------------
+# Sections
+
+
+def median_stages(runs):
+    """Per-stage median seconds over repeated runs."""
+    names = []
+    for r in runs:
+        names += [n for n in r["stages"] if n not in names]
+    return {n: statistics.median(r["stages"].get(n, 0.0) for r in runs) for n in names}
+
+
+def full_chain(rep, folder, size, reps):
+    """Alternating cold phasewise and peer runs; the table, ratios and the agreement check."""
+    sets = [freq_set(size["freqs"])]
+    cache = os.path.join(folder, "cache")
+    pw_runs, peer_runs = [], []
+    for i in range(reps):
+        order = ("pw", "peer") if i % 2 == 0 else ("peer", "pw")
+        for side in order:
+            if side == "pw":
+                pw_runs.append(run_phasewise(folder, sets, cache))
+            else:
+                peer_runs.append(run_peer(folder, sets))
+        rep.say(f"  rep {i + 1}: phasewise {pw_runs[-1]['wall']:.2f} s, "
+                f"peer {peer_runs[-1]['wall']:.2f} s")
+    pw, peer = median_stages(pw_runs), median_stages(peer_runs)
+    rows = []
+    for name in list(dict.fromkeys(list(peer) + list(pw))):
+        a, b = pw.get(name), peer.get(name)
+        ratio = f"{b / a:.1f}x" if a and b else "-"
+        rows.append([name, f"{a:.3f}" if a is not None else "-",
+                     f"{b:.3f}" if b is not None else "-", ratio])
+    pw_wall = statistics.median(r["wall"] for r in pw_runs)
+    peer_wall = statistics.median(r["wall"] for r in peer_runs)
+    rows.append(["WALL (process)", f"{pw_wall:.3f}", f"{peer_wall:.3f}", f"{peer_wall / pw_wall:.1f}x"])
+    pw_rss = max(r["rss"] for r in pw_runs)
+    peer_rss = max(r["rss"] for r in peer_runs)
+    rows.append(["PEAK RSS MiB", f"{pw_rss:.0f}", f"{peer_rss:.0f}", f"{pw_rss / peer_rss:.2f} (pw/peer)"])
+    rep.say("\nPer-stage seconds (median of reps; phasewise from manifest, summed over subjects):")
+    rep.table(["stage", "phasewise", "peer", "peer/phasewise"], rows)
+    agree = agreement(folder)
+    ok = max(agree["max_abs_diff"].values()) <= AGREEMENT_TOL and agree["coord_diff"] < 1e-6
+    rep.say(f"\nAgreement over {agree['subjects']} subjects (baseline-corrected, max |pw − peer|): "
+            + ", ".join(f"{m} {v:.2e}" for m, v in agree["max_abs_diff"].items())
+            + f"; coords {agree['coord_diff']:.1e}; tolerance {AGREEMENT_TOL:g}: "
+            + ("AGREE" if ok else "DISAGREE"))
+    rep.data["full_chain"] = {"phasewise": pw, "peer": peer, "phasewise_wall": pw_wall,
+                              "peer_wall": peer_wall, "phasewise_rss_mib": pw_rss,
+                              "peer_rss_mib": peer_rss, "agreement": agree, "agree": ok,
+                              "walls": {"phasewise": [r["wall"] for r in pw_runs],
+                                        "peer": [r["wall"] for r in peer_runs]}}
+    return pw_runs[-1]
+
+
+def wavelet_vs_fft(rep, last_run, size):
+    """The wavelet op's manifest seconds against the bare FFTs of the same sizes."""
+    units = [u for u in last_run["manifest"]["units"] if u["stage"] == "tf"]
+    epochs = [u for u in last_run["manifest"]["units"] if u["stage"] == "trials"]
+    signals, epoch_len = 0, None
+    for u in epochs:
+        shape = u["outputs"][0]["shape"]  # [channel, trial, time]
+        signals += shape[0] * shape[1]
+        epoch_len = shape[2]
+    sys.path.insert(0, BENCH)
+    import peer  # the same plan (frequencies, cycles, FFT length) as the peer and DESIGN §4
+
+    rate = float(size["study"]["rate"])
+    times = np.arange(epoch_len) / rate - 1.0
+    p = {"freqs": dict(FREQ_RANGE, count=size["freqs"]), "cycles": {"from": 3, "to": 8}}
+    freqs, taps, _, _, _, nfft = peer.wavelet_plan(times, rate, p)
+    threads = os.cpu_count() or 1
+    out = subprocess.run([FFT_BIN, str(nfft), str(signals), str(len(freqs)), str(threads), "3"],
+                         check=True, capture_output=True, text=True).stdout
+    bare = json.loads(out)["seconds"]
+    op = sum(float(u.get("seconds") or 0) for u in units)
+    ratio = op / bare
+    rep.say(f"\nWavelet op {op:.3f} s vs bare FFTs {bare:.3f} s ({signals} signals x (1 forward + "
+            f"{len(freqs)} inverse) of length {nfft}, {threads} threads): {ratio:.2f}x")
+    rep.data["wavelet_vs_fft"] = {"op": op, "bare_fft": bare, "ratio": ratio, "nfft": nfft,
+                                  "signals": signals, "freqs": len(freqs), "threads": threads}
+
+
+def reruns(rep, folder, size):
+    """Warm-cache reruns: a baseline-window change, then nothing changed."""
+    sets = [freq_set(size["freqs"])]
+    cache = os.path.join(folder, "cache")
+    full = run_phasewise(folder, sets, cache)
+    changed = run_phasewise(folder, sets + [BASELINE_CHANGE], cache, fresh=False)
+    noop = run_phasewise(folder, sets + [BASELINE_CHANGE], cache, fresh=False)
+    share = changed["wall"] / full["wall"]
+    rep.say(f"\nReruns (wall, whole process): full cold {full['wall']:.3f} s; after --set "
+            f"{BASELINE_CHANGE}: {changed['wall']:.3f} s ({100 * share:.1f} % of full, "
+            f"{changed['computed']}/{changed['units']} units computed); no-op: "
+            f"{noop['wall']:.3f} s ({noop['computed']}/{noop['units']} units computed)")
+    rep.data["reruns"] = {"full": full["wall"], "baseline_change": changed["wall"],
+                          "share": share, "noop": noop["wall"],
+                          "computed": [full["computed"], changed["computed"], noop["computed"]]}
+
+
+def slope(xs, ys):
+    """Least-squares slope of log y against log x."""
+    return float(np.polyfit(np.log(xs), np.log(ys), 1)[0])
+
+
+def scaling(rep, folder, size):
+    """phasewise cold runs over >= 4 sizes of trials, channels and frequencies."""
+    sc = size["scaling"]
+    base = sc["base"]
+    rep.say("\nScaling (one subject, phasewise cold runs; seconds from the manifest):")
+    results = {}
+    for axis in ("trials", "channels", "freqs"):
+        rows, points = [], []
+        for value in sc[axis]:
+            cfg = dict(base, **{axis: value})
+            study = {k: cfg[k] for k in ("subjects", "channels", "trials", "rate")}
+            sub = os.path.join(folder, f"scale-{axis}-{value}")
+            simulate(sub, study)
+            r = run_phasewise(sub, [freq_set(cfg["freqs"])], os.path.join(sub, "cache"))
+            s = r["stages"]
+            total = sum(s.values())
+            pairs = cfg["channels"] * (cfg["channels"] - 1) // 2
+            points.append({"value": value, "pairs": pairs, "total": total, "wall": r["wall"],
+                           "rss": r["rss"], "tf": s.get("tf", 0.0), "sync": s.get("sync", 0.0)})
+            rows.append([value, pairs if axis == "channels" else "", f"{total:.3f}",
+                         f"{s.get('tf', 0.0):.3f}", f"{s.get('sync', 0.0):.3f}", f"{r['rss']:.0f}"])
+        rep.say(f"\n  by {axis}:")
+        rep.table([axis, "pairs", "chain s", "wavelet s", "clustering s", "peak RSS MiB"], rows)
+        xs = [p["pairs"] if axis == "channels" else p["value"] for p in points]
+        fit = {k: slope(xs, [max(p[k], 1e-6) for p in points]) for k in ("total", "tf", "sync")}
+        label = "pairs" if axis == "channels" else axis
+        rep.say(f"  log-log slope vs {label}: chain {fit['total']:.2f}, wavelet {fit['tf']:.2f}, "
+                f"clustering {fit['sync']:.2f}")
+        if axis == "freqs":
+            fit["rss"] = slope(xs, [p["rss"] for p in points])
+            rep.say(f"  peak RSS vs freqs: {points[0]['rss']:.0f} → {points[-1]['rss']:.0f} MiB "
+                    f"(log-log slope {fit['rss']:.2f})")
+        results[axis] = {"points": points, "slopes": fit}
+    rep.data["scaling"] = results
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("size", choices=sorted(SIZES), nargs="?", default="quick")
+    ap.add_argument("--reps", type=int, help="full-chain repetitions of each side")
+    ap.add_argument("--skip", action="append", default=[],
+                    choices=["chain", "fft", "reruns", "scaling"], help="leave a section out")
+    args = ap.parse_args()
+    size = SIZES[args.size]
+    folder = os.path.join(BENCH, "out", args.size)
+    rep = Report()
+    started = time.perf_counter()
+    st = size["study"]
+    rep.say(f"phasewise benchmark, size {args.size}: {st['subjects']} subjects x {st['channels']} "
+            f"channels x {st['trials']} trials at {st['rate']} Hz, {size['freqs']} frequencies; "
+            f"{os.cpu_count()} CPUs")
+    simulate(folder, st)
+    rep.data["size"] = dict(size, name=args.size)
+    last = None
+    if "chain" not in args.skip:
+        last = full_chain(rep, folder, size, args.reps or size["reps"])
+    if "fft" not in args.skip and last is not None:
+        wavelet_vs_fft(rep, last, size)
+    if "reruns" not in args.skip:
+        reruns(rep, folder, size)
+    if "scaling" not in args.skip:
+        scaling(rep, folder, size)
+    rep.data["seconds"] = time.perf_counter() - started
+    rep.say(f"\nHarness finished in {rep.data['seconds']:.0f} s")
+    with open(os.path.join(folder, "report.json"), "w") as fh:
+        json.dump(rep.data, fh, indent=1, sort_keys=True, default=str)
+    with open(os.path.join(folder, "report.txt"), "w") as fh:
+        fh.write("\n".join(rep.lines) + "\n")
+
+
+if __name__ == "__main__":
+    main()
