@@ -1,0 +1,244 @@
+//! From EDF signal headers to the channels of a recording: names and types, the unit factor to
+//! volts, and which channels share the one sampling rate the array can have.
+//!
+//! Types come from the BIDS channels sidecar when it names the channel, else from an EDF+ label
+//! prefix (`EEG Fz` → type `EEG`, name `Fz`), else `EEG`. The recording's rate is the rate most
+//! EEG-type channels have (ties: the one that comes first in the file; when there is no EEG
+//! channel, all channels vote). Every other channel is dropped with a warning naming it.
+
+use super::edf::{FileKind, Header};
+use super::tsv::ChannelRow;
+
+/// EDF+ signal-type prefixes (Kemp & Olivan 2003, "standard texts"; list recalled from memory,
+/// so only prefixes that are unambiguous signal types are split off).
+const EDF_PLUS_TYPES: [&str; 14] = [
+    "EEG", "ECG", "EOG", "ERG", "EMG", "MEG", "MCG", "EP", "Temp", "Resp", "SaO2", "Light",
+    "Sound", "Event",
+];
+
+/// One data signal that becomes a channel.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Channel {
+    /// Index of the signal in the header.
+    pub signal: usize,
+    /// Channel name (label with any EDF+ type prefix split off).
+    pub name: String,
+    /// Channel type, upper case (`EEG`, `EOG`, ...).
+    pub kind: String,
+    /// Factor from the file's physical unit to volts (1 when the unit is not a voltage).
+    pub to_volts: f64,
+}
+
+/// The channels to read, the shared sampling rate and their samples per record.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Selection {
+    /// Kept channels in file order.
+    pub channels: Vec<Channel>,
+    /// Sampling rate in Hz.
+    pub rate: f64,
+    /// Samples per data record of every kept channel.
+    pub samples_per_record: usize,
+}
+
+/// Name, type and unit factor of every data signal, then keep those at the recording's rate.
+/// Warnings (dropped channels, units that are not voltages, channels the sidecar misses) are
+/// appended to `warnings`.
+pub fn select(
+    header: &Header,
+    sidecar: Option<&[ChannelRow]>,
+    warnings: &mut Vec<String>,
+) -> Result<Selection, String> {
+    // Each channel's own warnings are kept apart so that a dropped channel reports only its drop.
+    let all: Vec<(Channel, usize, Vec<String>)> = header
+        .signals
+        .iter()
+        .enumerate()
+        .filter(|(_, s)| !s.annotation)
+        .map(|(i, s)| {
+            let mut own = Vec::new();
+            let channel = describe(header, i, sidecar, &mut own);
+            (channel, s.samples_per_record, own)
+        })
+        .collect();
+    let spr = majority_samples_per_record(&all);
+    let mut channels = Vec::with_capacity(all.len());
+    for (channel, n, own) in all {
+        if n == spr {
+            warnings.extend(own);
+            channels.push(channel);
+        } else {
+            warnings.push(format!(
+                "channel {} ({}) is sampled at {} Hz, not at the recording's {} Hz; it was dropped",
+                channel.name,
+                channel.kind,
+                n as f64 / header.record_seconds,
+                spr as f64 / header.record_seconds
+            ));
+        }
+    }
+    check_unique(&channels)?;
+    Ok(Selection {
+        channels,
+        rate: spr as f64 / header.record_seconds,
+        samples_per_record: spr,
+    })
+}
+
+/// Name, type and unit factor of signal `index`.
+fn describe(
+    header: &Header,
+    index: usize,
+    sidecar: Option<&[ChannelRow]>,
+    warnings: &mut Vec<String>,
+) -> Channel {
+    let signal = &header.signals[index];
+    let (name, prefix_type) = split_label(&signal.label);
+    let row = sidecar.and_then(|rows| {
+        rows.iter()
+            .find(|r| r.name == signal.label || r.name == name)
+    });
+    if sidecar.is_some() && row.is_none() {
+        warnings.push(format!(
+            "channel {name} is not listed in the channels sidecar; its type is taken from its label"
+        ));
+    }
+    let default_type = match (header.kind, name.as_str()) {
+        // BioSemi's trigger channel.
+        (FileKind::Bdf, "Status") => "TRIG".to_string(),
+        _ => "EEG".to_string(),
+    };
+    let kind = row
+        .and_then(|r| r.kind.clone())
+        .or(prefix_type)
+        .unwrap_or(default_type);
+    let unit_from_sidecar = row.and_then(|r| r.units.as_deref());
+    let to_volts = unit_factor(&name, &signal.unit, unit_from_sidecar, warnings);
+    Channel {
+        signal: index,
+        name,
+        kind,
+        to_volts,
+    }
+}
+
+/// Split an EDF+ label `"<type> <name>"` into name and upper-case type; a label that is just a
+/// type word (`ECG`) is its own name with that type.
+pub fn split_label(label: &str) -> (String, Option<String>) {
+    let label = label.trim();
+    let (first, rest) = match label.split_once(' ') {
+        Some((first, rest)) => (first, rest.trim()),
+        None => (label, ""),
+    };
+    let known = EDF_PLUS_TYPES
+        .iter()
+        .find(|t| t.eq_ignore_ascii_case(first));
+    match known {
+        Some(t) if rest.is_empty() => (label.to_string(), Some(t.to_ascii_uppercase())),
+        Some(t) => (rest.to_string(), Some(t.to_ascii_uppercase())),
+        None => (label.to_string(), None),
+    }
+}
+
+/// Factor from a physical dimension to volts; `None` when it is not a voltage unit.
+pub fn volts_per_unit(unit: &str) -> Option<f64> {
+    match unit.trim() {
+        "V" | "v" => Some(1.0),
+        "mV" | "mv" => Some(1e-3),
+        // micro sign U+00B5 (also what Latin-1 0xB5 reads as) and Greek mu U+03BC
+        "uV" | "uv" | "UV" | "\u{b5}V" | "\u{3bc}V" => Some(1e-6),
+        "nV" | "nv" => Some(1e-9),
+        _ => None,
+    }
+}
+
+/// The header's unit, or the sidecar's when the header's is not a voltage.
+fn unit_factor(
+    name: &str,
+    header_unit: &str,
+    sidecar_unit: Option<&str>,
+    warnings: &mut Vec<String>,
+) -> f64 {
+    if let Some(f) = volts_per_unit(header_unit) {
+        return f;
+    }
+    if let Some(f) = sidecar_unit.and_then(volts_per_unit) {
+        return f;
+    }
+    warnings.push(format!(
+        "channel {name} has the physical dimension {header_unit:?}, which is not a voltage unit (V, mV, uV, nV); its values are kept unconverted"
+    ));
+    1.0
+}
+
+/// Samples per record that most EEG-type channels have; all channels vote when none is EEG.
+/// Ties go to the value met first in file order.
+fn majority_samples_per_record(all: &[(Channel, usize, Vec<String>)]) -> usize {
+    let eeg: Vec<usize> = all
+        .iter()
+        .filter(|(c, _, _)| c.kind == "EEG")
+        .map(|&(_, n, _)| n)
+        .collect();
+    let voters: Vec<usize> = if eeg.is_empty() {
+        all.iter().map(|&(_, n, _)| n).collect()
+    } else {
+        eeg
+    };
+    let mut best = (0usize, 0usize);
+    for &n in &voters {
+        let votes = voters.iter().filter(|&&m| m == n).count();
+        if votes > best.1 {
+            best = (n, votes);
+        }
+    }
+    best.0
+}
+
+/// Channel names must be unique: every op addresses channels by name.
+fn check_unique(channels: &[Channel]) -> Result<(), String> {
+    for (i, c) in channels.iter().enumerate() {
+        if channels[..i].iter().any(|d| d.name == c.name) {
+            return Err(format!(
+                "two channels are named {:?}; channel names must be unique",
+                c.name
+            ));
+        }
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // Label forms from the EDF+ specification's examples (Kemp & Olivan 2003): "EEG Fpz-Cz",
+    // "EOG horizontal", "ECG".
+    #[test]
+    fn splits_edf_plus_type_prefixes() {
+        assert_eq!(
+            split_label("EEG Fpz-Cz"),
+            ("Fpz-Cz".into(), Some("EEG".into()))
+        );
+        assert_eq!(
+            split_label("EOG horizontal"),
+            ("horizontal".into(), Some("EOG".into()))
+        );
+        assert_eq!(split_label("ECG"), ("ECG".into(), Some("ECG".into())));
+        assert_eq!(
+            split_label("Resp nasal"),
+            ("nasal".into(), Some("RESP".into()))
+        );
+        assert_eq!(split_label("Fz"), ("Fz".into(), None));
+        assert_eq!(split_label("Fp1 ref"), ("Fp1 ref".into(), None));
+    }
+
+    #[test]
+    fn converts_voltage_units() {
+        assert_eq!(volts_per_unit("uV"), Some(1e-6));
+        assert_eq!(volts_per_unit("\u{b5}V"), Some(1e-6));
+        assert_eq!(volts_per_unit("mV"), Some(1e-3));
+        assert_eq!(volts_per_unit("V"), Some(1.0));
+        assert_eq!(volts_per_unit("nV"), Some(1e-9));
+        assert_eq!(volts_per_unit("degC"), None);
+        assert_eq!(volts_per_unit(""), None);
+    }
+}

@@ -1,0 +1,464 @@
+//! Opening a recording: header and sidecars → channel selection, events and the output layout;
+//! then, on request, the sample values.
+//!
+//! [`Opened`] is computed the same way for the layout-only path and for the full read, so both
+//! agree by construction. File-level rules (documented for users in [`crate::io`]): the file size
+//! must equal what the header declares (a truncated or padded file is an error, because a
+//! silently shorter recording would shift every later result); EDF+D files are read only when
+//! their records are contiguous.
+
+use std::fs::File;
+use std::io::Read;
+use std::path::{Path, PathBuf};
+
+use ndarray::Array2;
+
+use super::channels::{select, Selection};
+use super::edf::{parse_record_tals, read_annotation_bytes, read_samples, Header, Scaling, BLOCK};
+use super::tsv::{candidate_sidecars, read_channels, read_events};
+use super::EventSource;
+use crate::array::{Coord, Event, LabelledArray, Layout, Meta};
+use crate::error::StageError;
+
+/// A recording whose header and sidecars have been read and checked.
+pub struct Opened {
+    path: PathBuf,
+    header: Header,
+    selection: Selection,
+    /// The output layout (values not read yet).
+    pub layout: Layout,
+    /// Warnings found while opening.
+    pub warnings: Vec<String>,
+}
+
+impl Opened {
+    /// Read and check the header and sidecars of `path`.
+    pub fn open(path: &Path, events: EventSource) -> Result<Opened, StageError> {
+        let fail = |m: String| StageError::input(format!("{}: {m}", path.display()));
+        let mut file = File::open(path).map_err(|e| fail(format!("cannot open: {e}")))?;
+        let header = read_header(&mut file).map_err(fail)?;
+        let [events_path, channels_path] = candidate_sidecars(path);
+        let sidecar = match channels_path.is_file() {
+            true => Some(read_channels(&channels_path)?),
+            false => None,
+        };
+        let mut warnings = Vec::new();
+        let selection = select(&header, sidecar.as_deref(), &mut warnings).map_err(fail)?;
+        let samples = header.records * selection.samples_per_record;
+        let length = samples as f64 / selection.rate;
+        let annotations = annotations(&mut file, &header, selection.rate).map_err(fail)?;
+        let events = match events {
+            EventSource::Sidecar if !events_path.is_file() => {
+                return Err(fail(format!(
+                    "`events: sidecar` needs the events file {}, which does not exist",
+                    events_path.display()
+                )))
+            }
+            EventSource::Sidecar => read_events(&events_path, length, &mut warnings)?,
+            EventSource::Annotations => annotations.ok_or_else(|| {
+                fail("`events: annotations` needs an EDF+/BDF+ file with an annotations signal; this is plain EDF/BDF (use `events: sidecar`)".into())
+            })?,
+        };
+        let layout = layout(&selection, samples, events);
+        Ok(Opened {
+            path: path.to_path_buf(),
+            header,
+            selection,
+            layout,
+            warnings,
+        })
+    }
+
+    /// Read the samples of the kept channels, in volts.
+    pub fn read(self) -> Result<LabelledArray, StageError> {
+        let fail = |m: String| StageError::input(format!("{}: {m}", self.path.display()));
+        let chosen: Vec<(usize, Scaling)> = self
+            .selection
+            .channels
+            .iter()
+            .map(|c| {
+                (
+                    c.signal,
+                    Scaling::of(&self.header.signals[c.signal], c.to_volts),
+                )
+            })
+            .collect();
+        let samples = self.header.records * self.selection.samples_per_record;
+        let mut values = Array2::<f32>::zeros((chosen.len(), samples));
+        let out = values
+            .as_slice_mut()
+            .ok_or_else(|| fail("internal: the output array is not contiguous".into()))?;
+        let mut file = File::open(&self.path).map_err(|e| fail(format!("cannot open: {e}")))?;
+        read_samples(&mut file, &self.header, &chosen, out)
+            .map_err(|e| fail(format!("reading the data records failed: {e}")))?;
+        LabelledArray::real(self.layout, values.into_dyn())
+    }
+}
+
+/// Read and check the header, and that the file size matches it.
+fn read_header(file: &mut File) -> Result<Header, String> {
+    let size = file
+        .metadata()
+        .map_err(|e| format!("cannot read its size: {e}"))?
+        .len();
+    if size < BLOCK as u64 {
+        return Err(format!(
+            "the file is {size} bytes long, shorter than the {BLOCK}-byte EDF/BDF header"
+        ));
+    }
+    let mut bytes = vec![0u8; BLOCK];
+    file.read_exact(&mut bytes)
+        .map_err(|e| format!("cannot read the header: {e}"))?;
+    let ns = Header::signal_count(&bytes)?;
+    let full = BLOCK * (ns + 1);
+    if size < full as u64 {
+        return Err(format!(
+            "the file is {size} bytes long, shorter than the {full}-byte header its {ns} signals need"
+        ));
+    }
+    bytes.resize(full, 0);
+    file.read_exact(&mut bytes[BLOCK..])
+        .map_err(|e| format!("cannot read the header: {e}"))?;
+    let header = Header::parse(&bytes)?;
+    check_size(&header, size)?;
+    Ok(header)
+}
+
+/// The file must hold exactly the records the header declares.
+fn check_size(header: &Header, size: u64) -> Result<(), String> {
+    if header.records == 0 {
+        return Err("the header declares 0 data records: the file holds no samples".into());
+    }
+    let record = header.record_bytes() as u64;
+    let expected = header.expected_file_size();
+    if expected == Some(size) {
+        return Ok(());
+    }
+    let data = size.saturating_sub(header.header_bytes as u64);
+    let whole = data / record.max(1);
+    let partial = match data.is_multiple_of(record.max(1)) {
+        true => "",
+        false => " and part of another",
+    };
+    let expected = expected.map_or("more than 2^64".to_string(), |e| e.to_string());
+    Err(format!(
+        "the header declares {} data records of {record} bytes (a file of {expected} bytes), but the file is {size} bytes and holds {whole} whole records{partial}; it is truncated or its record count is wrong",
+        header.records
+    ))
+}
+
+/// EDF+ annotations as events relative to the first sample, or `None` for plain EDF/BDF.
+/// Also checks that an EDF+D file's records are contiguous.
+fn annotations(file: &mut File, header: &Header, rate: f64) -> Result<Option<Vec<Event>>, String> {
+    let signals: Vec<usize> = (0..header.signals.len())
+        .filter(|&i| header.signals[i].annotation)
+        .collect();
+    if header.plus_continuous.is_none() || signals.is_empty() {
+        return Ok(None);
+    }
+    let mut stamps = Vec::new();
+    let mut events = Vec::new();
+    for (n, &signal) in signals.iter().enumerate() {
+        let records = read_annotation_bytes(file, header, signal)
+            .map_err(|e| format!("cannot read the annotations: {e}"))?;
+        for (r, bytes) in records.iter().enumerate() {
+            let tals = parse_record_tals(bytes, n == 0)
+                .map_err(|m| format!("data record {}: {m}", r + 1))?;
+            stamps.extend(tals.stamp);
+            events.extend(tals.annotations);
+        }
+    }
+    let start = stamps.first().copied().unwrap_or(0.0);
+    if header.plus_continuous == Some(false) {
+        check_contiguous(&stamps, header.record_seconds, rate)?;
+    }
+    // TAL onsets count from the header's start time; the first sample lies at the first
+    // record's time stamp, which EDF+ allows to be non-zero (a sub-second start).
+    for e in &mut events {
+        e.onset -= start;
+    }
+    events.sort_by(|a, b| a.onset.total_cmp(&b.onset));
+    Ok(Some(events))
+}
+
+/// EDF+D records may have gaps between them; a [channel, time] array cannot show a gap.
+fn check_contiguous(stamps: &[f64], record_seconds: f64, rate: f64) -> Result<(), String> {
+    let start = stamps.first().copied().unwrap_or(0.0);
+    for (r, &s) in stamps.iter().enumerate() {
+        let expected = start + r as f64 * record_seconds;
+        if (s - expected).abs() > 0.5 / rate {
+            return Err(format!(
+                "this EDF+D (discontinuous) file has a gap: data record {} starts at {s} s, not at {expected} s; recordings with gaps are not supported",
+                r + 1
+            ));
+        }
+    }
+    Ok(())
+}
+
+/// dims [channel, time], time k/fs in s, values in volts.
+fn layout(selection: &Selection, samples: usize, events: Vec<Event>) -> Layout {
+    let names = selection.channels.iter().map(|c| c.name.clone()).collect();
+    let kinds = selection.channels.iter().map(|c| c.kind.clone()).collect();
+    let time = (0..samples).map(|k| k as f64 / selection.rate).collect();
+    Layout {
+        dims: vec!["channel".into(), "time".into()],
+        coords: vec![Coord::Labels(names), Coord::Numbers(time)],
+        units: "V".into(),
+        complex: false,
+        meta: Meta {
+            sampling_rate: Some(selection.rate),
+            channel_types: Some(kinds),
+            events: Some(events),
+            ..Meta::default()
+        },
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::io::edf::{write_edf_plus, EdfWriteSpec, SignalSpec};
+    use crate::io::{read_recording, read_recording_layout, sidecar_paths};
+    use crate::op::Notes;
+
+    const FS: f64 = 100.0;
+
+    fn spec() -> EdfWriteSpec {
+        let wave = |a: f64, f: f64| -> Vec<f64> {
+            (0..300)
+                .map(|k| a * (2.0 * std::f64::consts::PI * f * k as f64 / FS).cos())
+                .collect()
+        };
+        EdfWriteSpec {
+            patient: String::new(),
+            recording: String::new(),
+            start_date: "02.03.21".into(),
+            start_time: "08.00.00".into(),
+            record_seconds: 1.0,
+            sampling_rate: FS,
+            signals: vec![
+                SignalSpec {
+                    label: "EEG Fz".into(),
+                    unit: "uV".into(),
+                    samples: wave(40.0, 3.0),
+                },
+                SignalSpec {
+                    label: "Cz".into(),
+                    unit: "uV".into(),
+                    samples: wave(-75.5, 7.0),
+                },
+                SignalSpec {
+                    label: "EOG left".into(),
+                    unit: "mV".into(),
+                    samples: wave(0.3, 0.5),
+                },
+            ],
+            annotations: vec![
+                Event {
+                    onset: 0.25,
+                    duration: 0.0,
+                    label: "cue-a".into(),
+                },
+                Event {
+                    onset: 1.5,
+                    duration: 0.2,
+                    label: "cue-b".into(),
+                },
+            ],
+        }
+    }
+
+    /// A recording `sub-01_task-x_eeg.edf` written by our writer into a fresh folder.
+    fn recording() -> (tempfile::TempDir, PathBuf) {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("sub-01_task-x_eeg.edf");
+        write_edf_plus(&path, &spec()).unwrap();
+        (dir, path)
+    }
+
+    fn patch(path: &Path, at: usize, width: usize, text: &str) {
+        let mut bytes = std::fs::read(path).unwrap();
+        let mut field = text.as_bytes().to_vec();
+        field.resize(width, b' ');
+        bytes[at..at + width].copy_from_slice(&field);
+        std::fs::write(path, bytes).unwrap();
+    }
+
+    fn error(path: &Path, events: EventSource) -> String {
+        let err = read_recording(path, events, &mut Notes::default()).unwrap_err();
+        assert!(matches!(err, StageError::Input(_)), "{err:?}");
+        err.to_string()
+    }
+
+    // Round trip: our writer, then our reader; values agree within half a quantisation step
+    // (2·pmax / 65535, the 16-bit EDF resolution of Kemp et al. 1992), converted to volts.
+    #[test]
+    fn round_trip_through_our_writer() {
+        let (_dir, path) = recording();
+        let mut notes = Notes::default();
+        let array = read_recording(&path, EventSource::Annotations, &mut notes).unwrap();
+        assert!(notes.warnings.is_empty(), "{:?}", notes.warnings);
+        let layout = &array.layout;
+        assert_eq!(layout.labels("channel").unwrap(), ["Fz", "Cz", "left"]);
+        let kinds = layout.meta.channel_types.clone().unwrap();
+        assert_eq!(kinds, ["EEG", "EEG", "EOG"]);
+        assert_eq!(layout.meta.sampling_rate, Some(FS));
+        assert_eq!(layout.units, "V");
+        assert_eq!(layout.meta.events.as_deref(), Some(&spec().annotations[..]));
+        let values = array.real_values().unwrap();
+        for (row, (signal, factor)) in spec().signals.iter().zip([1e-6, 1e-6, 1e-3]).enumerate() {
+            let peak = signal.samples.iter().fold(0.0f64, |m, x| m.max(x.abs()));
+            let half_step = peak / 65535.0 * 1.001;
+            for (k, &x) in signal.samples.iter().enumerate() {
+                let got = f64::from(values[[row, k]]) / factor;
+                assert!(
+                    (got - x).abs() <= half_step,
+                    "{} sample {k}: {got} vs {x}",
+                    signal.label
+                );
+            }
+        }
+        assert_eq!(
+            read_recording_layout(&path, EventSource::Annotations).unwrap(),
+            array.layout
+        );
+    }
+
+    // BIDS sidecars (Pernet et al. 2019): channels.tsv types override label prefixes.
+    #[test]
+    fn sidecars_give_events_and_types() {
+        let (dir, path) = recording();
+        assert!(sidecar_paths(&path).is_empty());
+        let events = dir.path().join("sub-01_task-x_events.tsv");
+        let channels = dir.path().join("sub-01_task-x_channels.tsv");
+        std::fs::write(
+            &events,
+            "onset\tduration\ttrial_type\n2.0\tn/a\tcue-a\n0.5\t0.1\tcue-b\n",
+        )
+        .unwrap();
+        std::fs::write(&channels, "name\ttype\tunits\nFz\tEEG\tuV\nCz\tmisc\tuV\n").unwrap();
+        assert_eq!(sidecar_paths(&path), [events.clone(), channels]);
+        let mut notes = Notes::default();
+        let array = read_recording(&path, EventSource::Sidecar, &mut notes).unwrap();
+        let kinds = array.layout.meta.channel_types.clone().unwrap();
+        assert_eq!(kinds, ["EEG", "MISC", "EOG"]);
+        let onsets: Vec<f64> = array
+            .layout
+            .meta
+            .events
+            .unwrap()
+            .iter()
+            .map(|e| e.onset)
+            .collect();
+        assert_eq!(onsets, [0.5, 2.0]);
+        // "left" is not in the channels sidecar: its type came from its label, with a warning.
+        assert_eq!(notes.warnings.len(), 1);
+        assert!(notes.warnings[0].contains("left"), "{:?}", notes.warnings);
+        std::fs::remove_file(&events).unwrap();
+        let err = error(&path, EventSource::Sidecar);
+        assert!(
+            err.contains("sub-01_task-x_events.tsv") && err.contains("does not exist"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn bad_events_rows_name_file_and_line() {
+        let (dir, path) = recording();
+        let events = dir.path().join("sub-01_task-x_events.tsv");
+        std::fs::write(&events, "onset\tduration\ttrial_type\n1\t0\ta\n3.5\t0\tb\n").unwrap();
+        let err = error(&path, EventSource::Sidecar);
+        assert!(
+            err.contains("line 3") && err.contains("past the end") && err.contains("3 s"),
+            "{err}"
+        );
+        std::fs::write(&events, "onset\tduration\tvalue\n1\t0\ta\n").unwrap();
+        let err = error(&path, EventSource::Sidecar);
+        assert!(
+            err.contains("_events.tsv") && err.contains("trial_type"),
+            "{err}"
+        );
+    }
+
+    // Offsets below are those of the EDF header fields (Kemp et al. 1992); with ns = 4 signals
+    // the per-signal fields start at 256 + width_sum_before · 4.
+    #[test]
+    fn broken_headers_are_clear_errors() {
+        let ns = 4;
+        let cases: Vec<(usize, usize, &str, &str)> = vec![
+            (236, 8, "many", "number of data records is \"many\""),
+            (236, 8, "-1", "-1 data records"),
+            (244, 8, "0", "must be positive"),
+            (244, 8, "1s", "duration of a data record is \"1s\""),
+            (252, 4, "0", "at least one"),
+            (252, 4, "x", "number of signals"),
+            (184, 8, "512", "must be 1280"),
+            (0, 8, "1.0", "version field"),
+            (256 + 120 * ns, 8, "32767", "digital range 32767..32767"),
+            (256 + 128 * ns + 8, 8, "abc", "digital maximum of signal 2"),
+            (
+                256 + 104 * ns + 16,
+                8,
+                "0.3",
+                "physical minimum 0.3 and maximum",
+            ),
+            (256 + 216 * ns, 8, "0", "sampling rate is not positive"),
+            (256 + 216 * ns + 8, 8, "-5", "must not be negative"),
+            (236, 8, "4", "truncated"),
+            (256 + 16, 16, "Fz", "two channels are named \"Fz\""),
+        ];
+        for (at, width, text, needle) in cases {
+            let (_dir, path) = recording();
+            patch(&path, at, width, text);
+            let err = error(&path, EventSource::Annotations);
+            assert!(
+                err.contains(needle) && err.contains("sub-01_task-x_eeg.edf"),
+                "{text}: {err}"
+            );
+        }
+    }
+
+    #[test]
+    fn wrong_sizes_are_clear_errors() {
+        let (_dir, path) = recording();
+        let bytes = std::fs::read(&path).unwrap();
+        std::fs::write(&path, &bytes[..100]).unwrap();
+        assert!(error(&path, EventSource::Annotations).contains("shorter than the 256-byte"));
+        std::fs::write(&path, &bytes[..600]).unwrap();
+        assert!(
+            error(&path, EventSource::Annotations).contains("shorter than the 1280-byte header")
+        );
+        // A truncated last record: the file holds 2 whole records and part of a third.
+        std::fs::write(&path, &bytes[..bytes.len() - 10]).unwrap();
+        let err = error(&path, EventSource::Annotations);
+        assert!(
+            err.contains("holds 2 whole records and part of another"),
+            "{err}"
+        );
+        let mut longer = bytes.clone();
+        longer.extend_from_slice(&[0; 7]);
+        std::fs::write(&path, &longer).unwrap();
+        assert!(error(&path, EventSource::Annotations).contains("record count is wrong"));
+        std::fs::write(&path, &bytes[..1280]).unwrap();
+        patch(&path, 236, 8, "0");
+        assert!(error(&path, EventSource::Annotations).contains("0 data records"));
+        let missing = path.with_file_name("nothing.edf");
+        assert!(error(&missing, EventSource::Annotations).contains("cannot open"));
+    }
+
+    #[test]
+    fn broken_annotations_are_clear_errors() {
+        let (_dir, path) = recording();
+        let bytes = std::fs::read(&path).unwrap();
+        // The annotation signal is the last one; its first record starts with "+0\x14\x14\0".
+        let at = 1280 + 3 * 100 * 2;
+        assert_eq!(&bytes[at..at + 5], b"+0\x14\x14\x00");
+        patch(&path, at, 2, "x0");
+        let err = error(&path, EventSource::Annotations);
+        assert!(
+            err.contains("data record 1") && err.contains("\"x0\""),
+            "{err}"
+        );
+    }
+}
