@@ -35,3 +35,24 @@ pub fn max_rel_diff(a: &[f64], b: &[f64], floor: f64) -> f64 {
         .map(|(x, y)| (x - y).abs() / y.abs().max(floor))
         .fold(0.0, f64::max)
 }
+
+/// Asserts that NaNs sit at the same places and that the finite values agree within `tol`
+/// relative to max(|expected|, floor). (`max_rel_diff` alone would skip NaNs: `f64::max`
+/// ignores them.)
+pub fn assert_close(actual: &[f64], expected: &[f64], floor: f64, tol: f64, what: &str) {
+    assert_eq!(actual.len(), expected.len(), "{what}: length mismatch");
+    for (i, (a, e)) in actual.iter().zip(expected).enumerate() {
+        assert_eq!(
+            a.is_nan(),
+            e.is_nan(),
+            "{what}: element {i} is {a}, expected {e}"
+        );
+    }
+    let keep = |(a, e): (&f64, &f64)| (!e.is_nan()).then_some((*a, *e));
+    let (a, e): (Vec<f64>, Vec<f64>) = actual.iter().zip(expected).filter_map(keep).unzip();
+    let err = max_rel_diff(&a, &e, floor);
+    assert!(
+        err <= tol,
+        "{what}: largest relative difference {err:e} > {tol:e}"
+    );
+}

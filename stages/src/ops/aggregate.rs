@@ -1,10 +1,32 @@
-//! The `aggregate` op (placeholder: being implemented).
+//! The `aggregate` op: means over named frequency bands, time windows and pair groups, and
+//! (with `over: subjects`) the group mean, SEM and n over subjects.
+//!
+//! Per subject, each of `bands` (on `freq`), `windows` (on `time`) and `pair_groups` (on `pair`)
+//! replaces its axis by one of names (`band`, `window`, `pair_group`) holding the mean over the
+//! coordinates inside each (inclusive ranges; a pair group lists pairs). An axis with no
+//! grouping given stays as it is, so the op works on any real array. Within a subject NaN
+//! propagates: a NaN inside a band is a fault upstream (clustering warned about it) and should
+//! not be averaged away silently.
+//!
+//! With `over: subjects` the op joins all subjects' arrays (equal layouts required) into
+//! dims `[statistic, subject, ...]`: `statistic` is `[mean, sem, n]` and `subject` holds every
+//! subject id and then `group`. A subject's own row holds its value as `mean`, `sem` NaN and `n`
+//! 1 (0 when the value is NaN); the `group` row holds the mean over subjects, the SEM
+//! sd (ddof 1) / √n, and n, all over the finite values only (a subject missing a value drops out
+//! of that cell's n). So one array and one tidy table give both the per-subject values and the
+//! group summary. Outputs carry `meta.extra["table"] = true`: the runner writes a TSV of them.
 
+use std::collections::BTreeMap;
+
+use ndarray::{concatenate, ArrayD, ArrayViewD, Axis, Dimension, IxDyn, Zip};
 use serde::{Deserialize, Serialize};
+use serde_json::json;
 
-use crate::array::{LabelledArray, Layout};
+use crate::array::{Coord, LabelledArray, Layout, Meta};
 use crate::error::StageError;
-use crate::op::{Input, InputLayout, Notes, Op};
+use crate::op::{single, Input, InputLayout, Notes, Op};
+use crate::ops::baseline::{points_within, range_text};
+use crate::table::coord_text;
 
 /// The `aggregate` op.
 pub struct Aggregate;
@@ -12,18 +34,828 @@ pub struct Aggregate;
 /// Parameters of `aggregate`.
 #[derive(Clone, Debug, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct AggregateParams {}
+pub struct AggregateParams {
+    /// Frequency bands `name: [lo, hi]` in Hz (inclusive); the `freq` axis becomes `band`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub bands: Option<BTreeMap<String, [f64; 2]>>,
+    /// Time windows `name: [t0, t1]` in s (inclusive); the `time` axis becomes `window`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub windows: Option<BTreeMap<String, [f64; 2]>>,
+    /// Pair groups `name: [[a, b], ..]`: the mean over those pairs; `pair` becomes `pair_group`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub pair_groups: Option<BTreeMap<String, Vec<[String; 2]>>>,
+    /// `subjects`: join all subjects into mean, SEM and n.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub over: Option<Over>,
+}
+
+/// What `over` can join.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Over {
+    /// One input per subject; the output summarises them.
+    Subjects,
+}
+
+/// The statistics of a group output, in the order of the `statistic` axis.
+pub const STATISTICS: [&str; 3] = ["mean", "sem", "n"];
+/// The `subject` coordinate of the group summary row.
+pub const GROUP: &str = "group";
+
+/// One axis reduction: the axis, its new name, and the named index groups to average.
+#[derive(Clone, Debug)]
+struct Reduction {
+    axis: usize,
+    new_name: &'static str,
+    groups: Vec<(String, Vec<usize>)>,
+}
+
+/// What the per-subject layout step works out, reused by `run`.
+struct Plan {
+    layout: Layout,
+    reductions: Vec<Reduction>,
+}
+
+/// Ranges sorted by start, end, then name, so bands read low to high whatever their names.
+fn sorted_ranges(ranges: &BTreeMap<String, [f64; 2]>) -> Vec<(&String, [f64; 2])> {
+    let mut v: Vec<_> = ranges.iter().map(|(k, r)| (k, *r)).collect();
+    v.sort_by(|a, b| {
+        (a.1[0], a.1[1])
+            .partial_cmp(&(b.1[0], b.1[1]))
+            .unwrap_or(std::cmp::Ordering::Equal)
+            .then_with(|| a.0.cmp(b.0))
+    });
+    v
+}
+
+/// A reduction over named inclusive ranges of a numeric axis.
+fn range_reduction(
+    input: &Layout,
+    field: &str,
+    (axis_name, new_name, unit): (&str, &'static str, &str),
+    ranges: &BTreeMap<String, [f64; 2]>,
+) -> Result<Reduction, StageError> {
+    let axis = input
+        .axis(axis_name)
+        .map_err(|e| StageError::param(field, e.to_string()))?;
+    let coords = input
+        .numbers(axis_name)
+        .map_err(|e| StageError::param(field, e.to_string()))?;
+    let mut groups = Vec::new();
+    for (name, range) in sorted_ranges(ranges) {
+        let points = points_within(coords, range);
+        if points.is_empty() {
+            return Err(StageError::param(
+                format!("{field}.{name}"),
+                format!(
+                    "`{name}` {} {unit} holds no {axis_name} point of the input, whose {} {axis_name} \
+                     points run over {} {unit}",
+                    range_text(range),
+                    coords.len(),
+                    span_text(coords)
+                ),
+            ));
+        }
+        groups.push((name.clone(), points));
+    }
+    Ok(Reduction {
+        axis,
+        new_name,
+        groups,
+    })
+}
+
+fn span_text(coords: &[f64]) -> String {
+    match (coords.first(), coords.last()) {
+        (Some(&a), Some(&b)) => range_text([a, b]),
+        _ => "[] (none)".into(),
+    }
+}
+
+/// A reduction over named lists of pairs. Pairs match in their order only: a signed measure
+/// (icoh) changes sign when the pair is reversed, so `P4-F3` is not the same as `F3-P4`.
+fn pair_reduction(
+    input: &Layout,
+    groups_param: &BTreeMap<String, Vec<[String; 2]>>,
+) -> Result<Reduction, StageError> {
+    let field = "pair_groups";
+    let axis = input
+        .axis("pair")
+        .map_err(|e| StageError::param(field, e.to_string()))?;
+    let pairs = input.coord("pair")?.pairs().ok_or_else(|| {
+        StageError::param(field, "the input's `pair` axis does not hold channel pairs")
+    })?;
+    let mut groups = Vec::new();
+    for (name, members) in groups_param {
+        let mut points = Vec::new();
+        for (k, [a, b]) in members.iter().enumerate() {
+            let found = pairs.iter().position(|p| p[0] == *a && p[1] == *b);
+            let Some(i) = found else {
+                let reversed = pairs.iter().any(|p| p[0] == *b && p[1] == *a);
+                let hint = if reversed {
+                    format!(" (the input has {b}-{a}: pairs keep their order, because signed measures change sign with it)")
+                } else {
+                    String::new()
+                };
+                return Err(StageError::param(
+                    format!("{field}.{name}[{k}]"),
+                    format!(
+                        "pair {a}-{b} is not among the input's {} pairs{hint}",
+                        pairs.len()
+                    ),
+                ));
+            };
+            points.push(i);
+        }
+        groups.push((name.clone(), points));
+    }
+    Ok(Reduction {
+        axis,
+        new_name: "pair_group",
+        groups,
+    })
+}
+
+fn reductions(p: &AggregateParams, input: &Layout) -> Result<Vec<Reduction>, StageError> {
+    let mut out = Vec::new();
+    if let Some(bands) = &p.bands {
+        out.push(range_reduction(
+            input,
+            "bands",
+            ("freq", "band", "Hz"),
+            bands,
+        )?);
+    }
+    if let Some(windows) = &p.windows {
+        out.push(range_reduction(
+            input,
+            "windows",
+            ("time", "window", "s"),
+            windows,
+        )?);
+    }
+    if let Some(groups) = &p.pair_groups {
+        out.push(pair_reduction(input, groups)?);
+    }
+    Ok(out)
+}
+
+/// The per-subject plan: the reductions and the layout they give.
+fn plan_one(p: &AggregateParams, input: &Layout) -> Result<Plan, StageError> {
+    if input.complex {
+        return Err(StageError::data(
+            "aggregate needs real values (a measure or power), but the input holds complex \
+             wavelet coefficients",
+        ));
+    }
+    let reductions = reductions(p, input)?;
+    let mut layout = input.clone();
+    for r in &reductions {
+        layout.dims[r.axis] = r.new_name.to_string();
+        layout.coords[r.axis] = Coord::Labels(r.groups.iter().map(|(n, _)| n.clone()).collect());
+    }
+    layout.complex = false;
+    let keeps_time = layout.dims.iter().any(|d| d == "time");
+    layout.meta = Meta {
+        sampling_rate: input.meta.sampling_rate.filter(|_| keeps_time),
+        extra: input.meta.extra.clone(),
+        ..Meta::default()
+    };
+    add_table_meta(p, &mut layout.meta);
+    Ok(Plan { layout, reductions })
+}
+
+/// Marks the output as a table for the runner and records the ranges behind the names.
+fn add_table_meta(p: &AggregateParams, meta: &mut Meta) {
+    meta.extra.insert("table".into(), json!(true));
+    if let Some(bands) = &p.bands {
+        meta.extra.insert("bands".into(), json!(bands));
+    }
+    if let Some(windows) = &p.windows {
+        meta.extra.insert("windows".into(), json!(windows));
+    }
+    if let Some(groups) = &p.pair_groups {
+        meta.extra.insert("pair_groups".into(), json!(groups));
+    }
+}
+
+/// The mean along `axis` over each index group, in f64, in group order.
+fn reduce_axis<T: Copy + Into<f64>>(input: &ArrayViewD<T>, r: &Reduction) -> ArrayD<f64> {
+    let axis = Axis(r.axis);
+    let mut shape = input.shape().to_vec();
+    shape.remove(r.axis);
+    let parts: Vec<ArrayD<f64>> = r
+        .groups
+        .iter()
+        .map(|(_, points)| {
+            let mut acc = ArrayD::<f64>::zeros(IxDyn(&shape));
+            for &i in points {
+                Zip::from(&mut acc)
+                    .and(input.index_axis(axis, i))
+                    .for_each(|a, &v| *a += v.into());
+            }
+            let n = points.len() as f64;
+            acc.mapv_inplace(|a| a / n);
+            acc.insert_axis(axis)
+        })
+        .collect();
+    let views: Vec<_> = parts.iter().map(|a| a.view()).collect();
+    // Equal shapes but the reduced axis: concatenation cannot fail.
+    concatenate(axis, &views).unwrap_or_else(|_| ArrayD::zeros(IxDyn(&[0])))
+}
+
+/// One subject's means: the reductions applied in turn (means of means over rectangular groups
+/// equal the mean over the whole band × window × group).
+fn reduce_all(values: &ArrayD<f32>, reductions: &[Reduction]) -> ArrayD<f64> {
+    let mut current = values.mapv(f64::from);
+    for r in reductions {
+        current = reduce_axis(&current.view(), r);
+    }
+    current
+}
+
+/// The group layout: `[statistic, subject, ...]` over the common per-subject layout.
+fn group_layout(one: &Layout, subjects: &[&str]) -> Layout {
+    let mut layout = one.clone();
+    let mut ids: Vec<String> = subjects.iter().map(|s| s.to_string()).collect();
+    ids.push(GROUP.into());
+    layout
+        .dims
+        .splice(0..0, ["statistic".to_string(), "subject".to_string()]);
+    layout.coords.splice(
+        0..0,
+        [
+            Coord::Labels(STATISTICS.iter().map(|s| s.to_string()).collect()),
+            Coord::Labels(ids),
+        ],
+    );
+    layout
+        .meta
+        .extra
+        .retain(|k, _| ["bands", "windows", "pair_groups", "table"].contains(&k.as_str()));
+    layout
+}
+
+/// The subject ids of the inputs, or a data error when one has none or an id repeats.
+fn subject_ids<'a>(ids: impl Iterator<Item = Option<&'a str>>) -> Result<Vec<&'a str>, StageError> {
+    let mut out: Vec<&str> = Vec::new();
+    for id in ids {
+        let id = id.ok_or_else(|| {
+            StageError::data(
+                "aggregate over subjects needs one input per subject, but an input has no subject",
+            )
+        })?;
+        if out.contains(&id) || id == GROUP {
+            return Err(StageError::data(format!(
+                "subject id `{id}` appears twice or clashes with the summary row `{GROUP}`"
+            )));
+        }
+        out.push(id);
+    }
+    if out.is_empty() {
+        return Err(StageError::data("aggregate over subjects got no subjects"));
+    }
+    Ok(out)
+}
+
+/// Per-subject plans that must all give the same layout; the error names the subjects.
+fn plan_subjects(
+    p: &AggregateParams,
+    inputs: &[(&str, &Layout)],
+) -> Result<(Vec<Plan>, Layout), StageError> {
+    let plans: Vec<Plan> = inputs
+        .iter()
+        .map(|(id, l)| plan_one(p, l).map_err(|e| with_subject(e, id)))
+        .collect::<Result<_, _>>()?;
+    let (Some((first_id, _)), Some(first)) = (inputs.first(), plans.first()) else {
+        return Err(StageError::data("aggregate over subjects got no subjects"));
+    };
+    let first = &first.layout;
+    for ((id, _), plan) in inputs.iter().zip(&plans).skip(1) {
+        compare_layouts(first_id, first, id, &plan.layout)?;
+    }
+    let ids: Vec<&str> = inputs.iter().map(|(id, _)| *id).collect();
+    let layout = group_layout(first, &ids);
+    Ok((plans, layout))
+}
+
+fn with_subject(e: StageError, id: &str) -> StageError {
+    match e {
+        StageError::Param { field, message } => {
+            StageError::param(field, format!("subject {id}: {message}"))
+        }
+        StageError::Data(m) => StageError::data(format!("subject {id}: {m}")),
+        StageError::Input(m) => StageError::input(format!("subject {id}: {m}")),
+    }
+}
+
+/// A data error naming both subjects and the first axis on which their outputs differ.
+fn compare_layouts(a_id: &str, a: &Layout, b_id: &str, b: &Layout) -> Result<(), StageError> {
+    if a.dims != b.dims {
+        return Err(StageError::data(format!(
+            "subjects {a_id} and {b_id} cannot be joined: their axes differ ([{}] vs [{}])",
+            a.dims.join(", "),
+            b.dims.join(", ")
+        )));
+    }
+    for (dim, (ca, cb)) in a.dims.iter().zip(a.coords.iter().zip(&b.coords)) {
+        if ca != cb {
+            return Err(StageError::data(format!(
+                "subjects {a_id} and {b_id} cannot be joined: their `{dim}` axes differ \
+                 ({a_id}: {}; {b_id}: {})",
+                coord_summary(ca),
+                coord_summary(cb)
+            )));
+        }
+    }
+    if a.units != b.units {
+        return Err(StageError::data(format!(
+            "subjects {a_id} and {b_id} cannot be joined: units `{}` vs `{}`",
+            a.units, b.units
+        )));
+    }
+    Ok(())
+}
+
+/// `n entries: a, b, c, …` (at most 6 shown).
+fn coord_summary(c: &Coord) -> String {
+    let shown: Vec<String> = (0..c.len().min(6)).map(|i| coord_text(c, i)).collect();
+    let more = if c.len() > 6 { ", …" } else { "" };
+    format!("{} entries: {}{more}", c.len(), shown.join(", "))
+}
+
+/// Mean, SEM (sd ddof 1 / √n) and n of the finite values of one cell across subjects.
+pub fn mean_sem_n(values: impl Iterator<Item = f64>) -> [f64; 3] {
+    let finite: Vec<f64> = values.filter(|v| v.is_finite()).collect();
+    let n = finite.len() as f64;
+    if finite.is_empty() {
+        return [f64::NAN, f64::NAN, 0.0];
+    }
+    let mean = finite.iter().sum::<f64>() / n;
+    let sem = if finite.len() > 1 {
+        let ss: f64 = finite.iter().map(|v| (v - mean).powi(2)).sum();
+        (ss / (n - 1.0)).sqrt() / n.sqrt()
+    } else {
+        f64::NAN
+    };
+    [mean, sem, n]
+}
+
+/// The group array from the per-subject means (each of the common per-subject shape).
+fn group_values(per_subject: &[ArrayD<f64>], layout: &Layout) -> ArrayD<f32> {
+    let s = per_subject.len();
+    let value = |k: usize, rest: &[usize]| -> f64 {
+        per_subject
+            .get(k)
+            .and_then(|a| a.get(IxDyn(rest)).copied())
+            .unwrap_or(f64::NAN)
+    };
+    ArrayD::from_shape_fn(IxDyn(&layout.shape()), |idx| {
+        let idx = idx.slice();
+        let (stat, subject, rest) = (idx[0], idx[1], &idx[2..]);
+        let cell = if subject < s {
+            let v = value(subject, rest);
+            [v, f64::NAN, if v.is_finite() { 1.0 } else { 0.0 }]
+        } else {
+            mean_sem_n((0..s).map(|k| value(k, rest)))
+        };
+        cell[stat] as f32
+    })
+}
+
+fn run_group(
+    p: &AggregateParams,
+    inputs: &[Input<'_>],
+    notes: &mut Notes,
+) -> Result<LabelledArray, StageError> {
+    let ids = subject_ids(inputs.iter().map(|i| i.subject))?;
+    let layouts: Vec<(&str, &Layout)> = ids
+        .iter()
+        .zip(inputs)
+        .map(|(id, i)| (*id, &i.array.layout))
+        .collect();
+    let (plans, layout) = plan_subjects(p, &layouts)?;
+    let per_subject: Vec<ArrayD<f64>> = inputs
+        .iter()
+        .zip(&plans)
+        .map(|(i, plan)| Ok(reduce_all(i.array.real_values()?, &plan.reductions)))
+        .collect::<Result<_, StageError>>()?;
+    if ids.len() < 2 {
+        notes.warn(format!(
+            "aggregate over subjects got {} subject; the SEM needs at least 2 and is NaN",
+            ids.len()
+        ));
+    }
+    let values = group_values(&per_subject, &layout);
+    LabelledArray::real(layout, values)
+}
 
 impl Op for Aggregate {
     type Params = AggregateParams;
     const NAME: &'static str = "aggregate";
     const VERSION: u32 = 1;
 
-    fn layout(_p: &Self::Params, _inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
-        Ok(None)
+    fn check(p: &Self::Params) -> Result<(), StageError> {
+        for (field, ranges) in [("bands", &p.bands), ("windows", &p.windows)] {
+            check_ranges(field, ranges.as_ref())?;
+        }
+        check_pair_groups(p.pair_groups.as_ref())
     }
 
-    fn run(_p: &Self::Params, _inputs: &[Input<'_>], _notes: &mut Notes) -> Result<LabelledArray, StageError> {
-        Err(StageError::data("not implemented yet"))
+    fn joins_subjects(p: &Self::Params) -> bool {
+        p.over == Some(Over::Subjects)
+    }
+
+    fn layout(p: &Self::Params, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
+        if !Self::joins_subjects(p) {
+            return Ok(Some(plan_one(p, single(inputs)?.layout)?.layout));
+        }
+        let ids = subject_ids(inputs.iter().map(|i| i.subject))?;
+        let layouts: Vec<(&str, &Layout)> = ids
+            .iter()
+            .zip(inputs)
+            .map(|(id, i)| (*id, i.layout))
+            .collect();
+        Ok(Some(plan_subjects(p, &layouts)?.1))
+    }
+
+    fn run(
+        p: &Self::Params,
+        inputs: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        if Self::joins_subjects(p) {
+            return run_group(p, inputs, notes);
+        }
+        let input = single(inputs)?.array;
+        let plan = plan_one(p, &input.layout)?;
+        let values = reduce_all(input.real_values()?, &plan.reductions);
+        LabelledArray::real(plan.layout, values.mapv(|v| v as f32))
+    }
+}
+
+fn check_ranges(
+    field: &str,
+    ranges: Option<&BTreeMap<String, [f64; 2]>>,
+) -> Result<(), StageError> {
+    let Some(ranges) = ranges else {
+        return Ok(());
+    };
+    if ranges.is_empty() {
+        return Err(StageError::param(
+            field,
+            format!("give at least one `name: [start, end]`, or leave `{field}` out"),
+        ));
+    }
+    for (name, &[lo, hi]) in ranges {
+        if name.is_empty() || !(lo.is_finite() && hi.is_finite() && lo <= hi) {
+            return Err(StageError::param(
+                format!("{field}.{name}"),
+                format!(
+                    "expected a non-empty name and [start, end] with start ≤ end, got `{name}`: {}",
+                    range_text([lo, hi])
+                ),
+            ));
+        }
+    }
+    Ok(())
+}
+
+fn check_pair_groups(
+    groups: Option<&BTreeMap<String, Vec<[String; 2]>>>,
+) -> Result<(), StageError> {
+    let Some(groups) = groups else {
+        return Ok(());
+    };
+    if groups.is_empty() {
+        return Err(StageError::param(
+            "pair_groups",
+            "give at least one `name: [[a, b], ..]`, or leave `pair_groups` out",
+        ));
+    }
+    for (name, members) in groups {
+        if members.is_empty() {
+            return Err(StageError::param(
+                format!("pair_groups.{name}"),
+                "a pair group needs at least one pair [a, b]",
+            ));
+        }
+        for (k, pair) in members.iter().enumerate() {
+            if members[..k].contains(pair) {
+                return Err(StageError::param(
+                    format!("pair_groups.{name}[{k}]"),
+                    format!("pair {}-{} is listed twice", pair[0], pair[1]),
+                ));
+            }
+        }
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::testutil::{assert_close, read_f64, read_json};
+    use ndarray::Axis;
+
+    fn strings(v: &serde_json::Value) -> Vec<String> {
+        serde_json::from_value(v.clone()).expect("strings")
+    }
+
+    /// One subject's array of the numpy fixture (tests/reference/gen_norm.py).
+    fn subject_input(k: usize) -> LabelledArray {
+        let meta = read_json("norm", "aggregate");
+        let numbers =
+            |key: &str| -> Vec<f64> { serde_json::from_value(meta[key].clone()).unwrap() };
+        let pairs: Vec<[String; 2]> = serde_json::from_value(meta["pairs"].clone()).unwrap();
+        let layout = Layout {
+            dims: ["condition", "measure", "pair", "freq", "time"]
+                .map(String::from)
+                .to_vec(),
+            coords: vec![
+                Coord::Labels(strings(&meta["conditions"])),
+                Coord::Labels(strings(&meta["measures"])),
+                Coord::Pairs(pairs),
+                Coord::Numbers(numbers("freqs")),
+                Coord::Numbers(numbers("times")),
+            ],
+            units: "1".into(),
+            meta: Meta {
+                sampling_rate: Some(50.0),
+                ..Meta::default()
+            },
+            ..Layout::default()
+        };
+        let all = read_f64("norm", "aggregate_input");
+        let values = all.index_axis(Axis(0), k).mapv(|v| v as f32);
+        LabelledArray::real(layout, values).expect("consistent fixture")
+    }
+
+    fn params(extra: serde_json::Value) -> AggregateParams {
+        let meta = read_json("norm", "aggregate");
+        let mut p = serde_json::json!({ "bands": meta["bands"], "windows": meta["windows"] });
+        if let (Some(p), Some(extra)) = (p.as_object_mut(), extra.as_object()) {
+            p.extend(extra.clone());
+        }
+        crate::op::parse_params(&p).expect("params")
+    }
+
+    fn run_one(p: &AggregateParams, a: &LabelledArray) -> Result<LabelledArray, StageError> {
+        let input = Input {
+            stage: "norm",
+            subject: Some("sub-01"),
+            array: a,
+        };
+        Aggregate::run(p, &[input], &mut Notes::default())
+    }
+
+    fn f64s(a: &LabelledArray) -> Vec<f64> {
+        a.real_values().unwrap().iter().map(|&v| v.into()).collect()
+    }
+
+    #[test]
+    fn band_and_window_means_match_numpy() {
+        // Reference: numpy means over inclusive masks (gen_norm.py; common practice, CHECKS.md);
+        // NaN propagates within a subject as np.mean does. f32 output: 1e-6 relative.
+        let meta = read_json("norm", "aggregate");
+        let expected = read_f64("norm", "aggregate_subject_means");
+        for k in 0..5 {
+            let out = run_one(&params(serde_json::json!({})), &subject_input(k)).unwrap();
+            assert_eq!(
+                out.layout.dims,
+                ["condition", "measure", "pair", "band", "window"]
+            );
+            assert_eq!(
+                out.layout.coords[3],
+                Coord::Labels(strings(&meta["band_order"]))
+            );
+            assert_eq!(
+                out.layout.coords[4],
+                Coord::Labels(strings(&meta["window_order"]))
+            );
+            assert_eq!(
+                out.layout.meta.extra.get("table"),
+                Some(&serde_json::json!(true))
+            );
+            assert_eq!(out.layout.meta.sampling_rate, None);
+            let e = expected.index_axis(Axis(0), k).to_owned();
+            assert_close(
+                &f64s(&out),
+                e.as_slice().unwrap(),
+                1e-6,
+                1e-6,
+                "subject means",
+            );
+        }
+    }
+
+    #[test]
+    fn pair_group_means_match_numpy() {
+        let meta = read_json("norm", "aggregate");
+        let p = params(serde_json::json!({ "pair_groups": meta["pair_groups"] }));
+        let expected = read_f64("norm", "aggregate_pair_group_means");
+        let out = run_one(&p, &subject_input(2)).unwrap();
+        assert_eq!(out.layout.dims[2], "pair_group");
+        assert_eq!(
+            out.layout.coords[2],
+            Coord::Labels(vec!["front_back".into()])
+        );
+        let e = expected.index_axis(Axis(0), 2).to_owned();
+        assert_close(
+            &f64s(&out),
+            e.as_slice().unwrap(),
+            1e-6,
+            1e-6,
+            "pair groups",
+        );
+    }
+
+    fn group_inputs() -> (Vec<String>, Vec<LabelledArray>) {
+        let ids = strings(&read_json("norm", "aggregate")["subjects"]);
+        let arrays = (0..ids.len()).map(subject_input).collect();
+        (ids, arrays)
+    }
+
+    fn run_group_on(
+        p: &AggregateParams,
+        ids: &[String],
+        arrays: &[LabelledArray],
+    ) -> Result<LabelledArray, StageError> {
+        let inputs: Vec<Input> = ids
+            .iter()
+            .zip(arrays)
+            .map(|(id, a)| Input {
+                stage: "norm",
+                subject: Some(id),
+                array: a,
+            })
+            .collect();
+        Aggregate::run(p, &inputs, &mut Notes::default())
+    }
+
+    #[test]
+    fn mean_sem_n_over_subjects_match_numpy() {
+        // Reference: np.nanmean, np.nanstd(ddof=1) / sqrt(n) with n the finite count
+        // (gen_norm.py); the fixture has cells with n = 4, 1 (SEM NaN) and 0 (all NaN).
+        let p = params(serde_json::json!({ "over": "subjects" }));
+        assert!(Aggregate::joins_subjects(&p));
+        let (ids, arrays) = group_inputs();
+        let out = run_group_on(&p, &ids, &arrays).unwrap();
+        let l = &out.layout;
+        assert_eq!(
+            l.dims,
+            [
+                "statistic",
+                "subject",
+                "condition",
+                "measure",
+                "pair",
+                "band",
+                "window"
+            ]
+        );
+        assert_eq!(
+            l.coords[0],
+            Coord::Labels(STATISTICS.map(String::from).to_vec())
+        );
+        let mut subjects = ids.clone();
+        subjects.push(GROUP.into());
+        assert_eq!(l.coords[1], Coord::Labels(subjects));
+        let values = out.real_values().unwrap();
+        let group = values.index_axis(Axis(1), ids.len());
+        for (k, name) in ["mean", "sem", "n"].iter().enumerate() {
+            let expected = read_f64("norm", &format!("aggregate_group_{name}"));
+            let actual: Vec<f64> = group
+                .index_axis(Axis(0), k)
+                .iter()
+                .map(|&v| v.into())
+                .collect();
+            assert_close(&actual, expected.as_slice().unwrap(), 1e-6, 1e-6, name);
+        }
+        // Each subject's own row: its mean, SEM n/a, n = 1 where finite.
+        let means = read_f64("norm", "aggregate_subject_means");
+        let subject_rows = values.index_axis(Axis(0), 0);
+        let actual: Vec<f64> = subject_rows
+            .slice_axis(Axis(0), (0..ids.len()).into())
+            .iter()
+            .map(|&v| v.into())
+            .collect();
+        assert_close(
+            &actual,
+            means.as_slice().unwrap(),
+            1e-6,
+            1e-6,
+            "subject rows",
+        );
+        let planned = Aggregate::layout(
+            &p,
+            &arrays
+                .iter()
+                .zip(&ids)
+                .map(|(a, id)| InputLayout {
+                    stage: "norm",
+                    subject: Some(id),
+                    layout: &a.layout,
+                })
+                .collect::<Vec<_>>(),
+        )
+        .unwrap();
+        assert_eq!(planned.as_ref(), Some(l));
+    }
+
+    #[test]
+    fn subjects_that_disagree_are_named() {
+        let p = params(serde_json::json!({ "over": "subjects" }));
+        let (ids, mut arrays) = group_inputs();
+        arrays[3].layout.coords[2] = Coord::Pairs(
+            [["F3", "P4"], ["F3", "Pz"], ["Cz", "P4"]]
+                .map(|p| p.map(String::from))
+                .to_vec(),
+        );
+        let err = run_group_on(&p, &ids, &arrays).unwrap_err();
+        assert_eq!(
+            err,
+            StageError::data(
+                "subjects sub-01 and sub-04 cannot be joined: their `pair` axes differ \
+                 (sub-01: 3 entries: F3-P4, F3-Cz, Cz-P4; sub-04: 3 entries: F3-P4, F3-Pz, Cz-P4)"
+            )
+        );
+    }
+
+    #[test]
+    fn empty_band_and_window_name_the_available_range() {
+        let mut layouts = subject_input(0);
+        layouts.layout.coords[3] = Coord::Numbers(vec![3.0, 5.0, 7.0]);
+        let p: AggregateParams = crate::op::parse_params(&serde_json::json!({
+            "bands": { "theta": [4.0, 8.0], "gamma": [35.0, 45.0] }
+        }))
+        .unwrap();
+        let input = InputLayout {
+            stage: "norm",
+            subject: None,
+            layout: &layouts.layout,
+        };
+        let err = Aggregate::layout(&p, &[input]).unwrap_err();
+        assert_eq!(
+            err,
+            StageError::param(
+                "bands.gamma",
+                "`gamma` [35, 45] Hz holds no freq point of the input, whose 3 freq points run \
+                 over [3, 7] Hz"
+            )
+        );
+        let p: AggregateParams = crate::op::parse_params(&serde_json::json!({
+            "windows": { "late": [0.5, 0.7] }
+        }))
+        .unwrap();
+        let err = Aggregate::layout(&p, &[input]).unwrap_err();
+        assert!(
+            matches!(&err, StageError::Param { field, message }
+                if field == "windows.late" && message.contains("run over [-0.2, 0.38] s")),
+            "{err:?}"
+        );
+    }
+
+    #[test]
+    fn pair_groups_must_name_existing_pairs_in_order() {
+        let a = subject_input(0);
+        let p: AggregateParams = crate::op::parse_params(&serde_json::json!({
+            "pair_groups": { "back": [["P4", "F3"]] }
+        }))
+        .unwrap();
+        let err = run_one(&p, &a).unwrap_err();
+        let StageError::Param { field, message } = err else {
+            panic!("not a param error")
+        };
+        assert_eq!(field, "pair_groups.back[0]");
+        assert!(message.contains("the input has F3-P4"), "{message}");
+        let twice = serde_json::json!({ "pair_groups": { "g": [["F3", "P4"], ["F3", "P4"]] } });
+        let p: AggregateParams = crate::op::parse_params(&twice).unwrap();
+        assert!(
+            matches!(Aggregate::check(&p), Err(StageError::Param { field, .. }) if field == "pair_groups.g[1]")
+        );
+    }
+
+    #[test]
+    fn bad_ranges_are_param_errors() {
+        let p: AggregateParams =
+            crate::op::parse_params(&serde_json::json!({ "bands": { "theta": [8, 4] } })).unwrap();
+        assert!(
+            matches!(Aggregate::check(&p), Err(StageError::Param { field, .. }) if field == "bands.theta")
+        );
+        let e =
+            crate::op::parse_params::<AggregateParams>(&serde_json::json!({ "over": "trials" }))
+                .unwrap_err();
+        assert!(matches!(e, StageError::Param { field, .. } if field == "over"));
+    }
+
+    #[test]
+    fn mean_sem_n_small_cases() {
+        // SEM = sd(ddof 1) / √n: for [1, 2, 3] sd = 1, so SEM = 1/√3 (worked by hand).
+        let [m, s, n] = mean_sem_n([1.0, 2.0, f64::NAN, 3.0].into_iter());
+        assert_eq!((m, n), (2.0, 3.0));
+        assert!((s - 1.0 / 3f64.sqrt()).abs() < 1e-15);
+        let [m, s, n] = mean_sem_n([f64::NAN].into_iter());
+        assert!(m.is_nan() && s.is_nan() && n == 0.0);
     }
 }

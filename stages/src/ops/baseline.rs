@@ -1,10 +1,22 @@
-//! The `baseline` op (placeholder: being implemented).
+//! The `baseline` op: normalise every time course by its own pre-event baseline.
+//!
+//! For every position of all axes but `time` (for clustering output: condition × measure × pair ×
+//! freq), b̄ and s are the mean and standard deviation (ddof 1) of the values at the time points
+//! inside `window` (inclusive), accumulated in f64. DESIGN §4 fixes the modes:
+//! `subtract` v − b̄, `percent` 100 (v − b̄) / b̄, `db` 10 log10(v / b̄), `zscore` (v − b̄) / s.
+//! The op works on any real array with a numeric `time` axis.
+//!
+//! `db` is only defined for non-negative quantities; measures that can be negative by definition
+//! are refused from the layout alone, any other negative value at run time. A zero baseline mean
+//! (percent, db) or zero spread (zscore) gives NaN for that time course, with a warning.
 
+use ndarray::{ArrayD, ArrayView1, ArrayViewMut1, Axis, Dimension, Zip};
 use serde::{Deserialize, Serialize};
 
 use crate::array::{LabelledArray, Layout};
 use crate::error::StageError;
-use crate::op::{Input, InputLayout, Notes, Op};
+use crate::op::{single, Input, InputLayout, Notes, Op};
+use crate::table::{number_text, position_text};
 
 /// The `baseline` op.
 pub struct Baseline;
@@ -12,18 +24,484 @@ pub struct Baseline;
 /// Parameters of `baseline`.
 #[derive(Clone, Debug, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct BaselineParams {}
+pub struct BaselineParams {
+    /// Baseline window `[t0, t1]` in seconds on the `time` axis, both ends included.
+    pub window: [f64; 2],
+    /// How each value is related to its baseline.
+    pub mode: BaselineMode,
+}
+
+/// How a value is expressed relative to its baseline (DESIGN §4).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum BaselineMode {
+    /// v − b̄, in the input's units.
+    Subtract,
+    /// 100 (v − b̄) / b̄, in %.
+    Percent,
+    /// 10 log10(v / b̄), in dB; non-negative quantities only.
+    Db,
+    /// (v − b̄) / s with s the baseline's standard deviation (ddof 1).
+    Zscore,
+}
+
+impl BaselineMode {
+    /// The output unit for an input in `units`.
+    fn units(self, units: &str) -> String {
+        match self {
+            BaselineMode::Subtract => units.to_string(),
+            BaselineMode::Percent => "%".into(),
+            BaselineMode::Db => "dB".into(),
+            BaselineMode::Zscore => "z".into(),
+        }
+    }
+}
+
+/// Measures (clustering `measure` coordinates) that can be negative by their definition, so a
+/// ratio in dB is meaningless: imaginary coherency is signed; the bias-corrected ppc and dwpli go
+/// below zero when there is no coupling (their expectation is then 0).
+const SIGNED_MEASURES: &[&str] = &["icoh", "ppc", "dwpli"];
+
+/// Coordinates typed by a user (`-0.2`) and those computed by an op (`-50 / 250`) may differ in
+/// the last bits; this slack keeps such points inside an inclusive range.
+fn slack(x: f64) -> f64 {
+    1e-9 * x.abs().max(1.0)
+}
+
+/// Indices of the coordinates inside the inclusive range `[lo, hi]`. Shared with `aggregate`,
+/// whose bands and windows are inclusive too (DESIGN §4).
+pub fn points_within(coords: &[f64], [lo, hi]: [f64; 2]) -> Vec<usize> {
+    coords
+        .iter()
+        .enumerate()
+        .filter(|(_, &x)| x >= lo - slack(lo) && x <= hi + slack(hi))
+        .map(|(i, _)| i)
+        .collect()
+}
+
+/// `[a, b]` as text for messages.
+pub fn range_text([lo, hi]: [f64; 2]) -> String {
+    format!("[{}, {}]", number_text(lo), number_text(hi))
+}
+
+/// What `layout` works out once and `run` reuses.
+struct Plan {
+    layout: Layout,
+    time_axis: usize,
+    points: Vec<usize>,
+}
+
+fn plan(p: &BaselineParams, input: &Layout) -> Result<Plan, StageError> {
+    if input.complex {
+        return Err(StageError::data(
+            "baseline needs real values (a measure or power), but the input holds complex \
+             wavelet coefficients",
+        ));
+    }
+    let time_axis = input.axis("time")?;
+    let times = input.numbers("time")?;
+    let points = window_points(p, times)?;
+    if p.mode == BaselineMode::Db {
+        refuse_signed_measures(input)?;
+    }
+    let mut layout = input.clone();
+    layout.units = p.mode.units(&input.units);
+    Ok(Plan {
+        layout,
+        time_axis,
+        points,
+    })
+}
+
+/// The time points of the window, or a param error naming the window and the time axis.
+fn window_points(p: &BaselineParams, times: &[f64]) -> Result<Vec<usize>, StageError> {
+    let (Some(&first), Some(&last)) = (times.first(), times.last()) else {
+        return Err(StageError::data("the input's time axis is empty"));
+    };
+    let [lo, hi] = p.window;
+    if lo < first - slack(first) || hi > last + slack(last) {
+        return Err(StageError::param(
+            "window",
+            format!(
+                "the baseline window {} s reaches outside the time axis of the input, which runs \
+                 over {} s",
+                range_text(p.window),
+                range_text([first, last])
+            ),
+        ));
+    }
+    let points = points_within(times, p.window);
+    let needed = if p.mode == BaselineMode::Zscore { 2 } else { 1 };
+    if points.len() < needed {
+        return Err(StageError::param(
+            "window",
+            format!(
+                "the baseline window {} s holds {} time point(s) of the input, but mode {:?} \
+                 needs at least {needed} (a standard deviation needs 2); widen the window",
+                range_text(p.window),
+                points.len(),
+                p.mode
+            ),
+        ));
+    }
+    Ok(points)
+}
+
+fn refuse_signed_measures(input: &Layout) -> Result<(), StageError> {
+    let Ok(measures) = input.labels("measure") else {
+        return Ok(());
+    };
+    match measures
+        .iter()
+        .find(|m| SIGNED_MEASURES.contains(&m.as_str()))
+    {
+        Some(m) => Err(StageError::param(
+            "mode",
+            format!(
+                "db takes the logarithm of a ratio and needs a non-negative quantity, but measure \
+                 `{m}` can be negative; use subtract, percent or zscore (or leave `{m}` out)"
+            ),
+        )),
+        None => Ok(()),
+    }
+}
+
+/// Refuses `db` on data holding a negative value, naming the first one.
+fn refuse_negative_values(input: &LabelledArray, values: &ArrayD<f32>) -> Result<(), StageError> {
+    match values.indexed_iter().find(|(_, &v)| v < 0.0) {
+        Some((index, v)) => Err(StageError::param(
+            "mode",
+            format!(
+                "db needs non-negative values, but the input holds {} at {}; use subtract, \
+                 percent or zscore",
+                number_text(f64::from(*v)),
+                position_text(&input.layout, index.slice())
+            ),
+        )),
+        None => Ok(()),
+    }
+}
+
+/// Mean and standard deviation (ddof 1) of one time course's baseline points, in f64.
+#[derive(Clone, Copy, Debug)]
+struct Stats {
+    mean: f64,
+    sd: f64,
+}
+
+fn baseline_stats(lane: ArrayView1<f32>, points: &[usize]) -> Stats {
+    let n = points.len() as f64;
+    let value = |&i: &usize| lane.get(i).map_or(f64::NAN, |&v| f64::from(v));
+    let mean = points.iter().map(value).sum::<f64>() / n;
+    // Two passes: numerically safer than the sum of squares.
+    let ss: f64 = points.iter().map(|i| (value(i) - mean).powi(2)).sum();
+    let sd = if points.len() > 1 {
+        (ss / (n - 1.0)).sqrt()
+    } else {
+        f64::NAN
+    };
+    Stats { mean, sd }
+}
+
+/// The divisor of a mode, when the mode divides.
+fn divisor(mode: BaselineMode, s: Stats) -> Option<f64> {
+    match mode {
+        BaselineMode::Subtract => None,
+        BaselineMode::Percent | BaselineMode::Db => Some(s.mean),
+        BaselineMode::Zscore => Some(s.sd),
+    }
+}
+
+fn normalise_lane(
+    input: ArrayView1<f32>,
+    mut out: ArrayViewMut1<f32>,
+    s: Stats,
+    mode: BaselineMode,
+) {
+    let degenerate = divisor(mode, s) == Some(0.0);
+    for (o, &v) in out.iter_mut().zip(input) {
+        let v = f64::from(v);
+        let y = match mode {
+            _ if degenerate => f64::NAN,
+            BaselineMode::Subtract => v - s.mean,
+            BaselineMode::Percent => 100.0 * (v - s.mean) / s.mean,
+            BaselineMode::Db => 10.0 * (v / s.mean).log10(),
+            BaselineMode::Zscore => (v - s.mean) / s.sd,
+        };
+        *o = y as f32;
+    }
+}
+
+/// Warnings about time courses whose baseline made them NaN, naming the first of each kind.
+fn warn_degenerate(p: &BaselineParams, plan: &Plan, stats: &ArrayD<Stats>, notes: &mut Notes) {
+    let mut rest = plan.layout.clone();
+    rest.dims.remove(plan.time_axis);
+    rest.coords.remove(plan.time_axis);
+    let what = match p.mode {
+        BaselineMode::Zscore => "a zero standard deviation",
+        _ => "a zero mean",
+    };
+    let zero: Vec<_> = stats
+        .indexed_iter()
+        .filter(|(_, s)| divisor(p.mode, **s) == Some(0.0))
+        .collect();
+    let nan: Vec<_> = stats
+        .indexed_iter()
+        .filter(|(_, s)| s.mean.is_nan())
+        .collect();
+    for (list, why) in [(zero, what), (nan, "NaN values")] {
+        if let Some((index, _)) = list.first() {
+            notes.warn(format!(
+                "baseline: {} of {} time courses have {why} in the window {} s, so their \
+                 normalised values are NaN (first at {})",
+                list.len(),
+                stats.len(),
+                range_text(p.window),
+                position_text(&rest, index.slice())
+            ));
+        }
+    }
+}
 
 impl Op for Baseline {
     type Params = BaselineParams;
     const NAME: &'static str = "baseline";
     const VERSION: u32 = 1;
 
-    fn layout(_p: &Self::Params, _inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
-        Ok(None)
+    fn check(p: &Self::Params) -> Result<(), StageError> {
+        let [lo, hi] = p.window;
+        if !(lo.is_finite() && hi.is_finite() && lo <= hi) {
+            return Err(StageError::param(
+                "window",
+                format!(
+                    "expected [start, end] in seconds with start ≤ end, got {}",
+                    range_text(p.window)
+                ),
+            ));
+        }
+        Ok(())
     }
 
-    fn run(_p: &Self::Params, _inputs: &[Input<'_>], _notes: &mut Notes) -> Result<LabelledArray, StageError> {
-        Err(StageError::data("not implemented yet"))
+    fn layout(p: &Self::Params, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
+        Ok(Some(plan(p, single(inputs)?.layout)?.layout))
+    }
+
+    fn run(
+        p: &Self::Params,
+        inputs: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        let input = single(inputs)?.array;
+        let plan = plan(p, &input.layout)?;
+        let values = input.real_values()?;
+        if p.mode == BaselineMode::Db {
+            refuse_negative_values(input, values)?;
+        }
+        let axis = Axis(plan.time_axis);
+        let stats = values.map_axis(axis, |lane| baseline_stats(lane, &plan.points));
+        let mut out = ArrayD::<f32>::zeros(values.raw_dim());
+        Zip::from(out.lanes_mut(axis))
+            .and(values.lanes(axis))
+            .and(&stats)
+            .for_each(|o, i, &s| normalise_lane(i, o, s, p.mode));
+        warn_degenerate(p, &plan, &stats, notes);
+        LabelledArray::real(plan.layout, out)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::array::{Coord, Values};
+    use crate::testutil::{assert_close, read_f64, read_json};
+    use serde_json::json;
+
+    fn labels(v: &[&str]) -> Coord {
+        Coord::Labels(v.iter().map(|s| s.to_string()).collect())
+    }
+
+    /// The clustering-shaped input of the numpy fixture (tests/reference/gen_norm.py).
+    fn fixture_input() -> LabelledArray {
+        let meta = read_json("norm", "baseline");
+        let numbers =
+            |k: &str| -> Vec<f64> { serde_json::from_value(meta[k].clone()).expect("numbers") };
+        let measures: Vec<String> = serde_json::from_value(meta["measures"].clone()).unwrap();
+        let layout = Layout {
+            dims: ["condition", "measure", "pair", "freq", "time"]
+                .map(String::from)
+                .to_vec(),
+            coords: vec![
+                labels(&["A", "B"]),
+                Coord::Labels(measures),
+                Coord::Pairs(
+                    [["F3", "P4"], ["F3", "Cz"], ["Cz", "P4"], ["Fz", "Pz"]]
+                        .map(|p| p.map(String::from))
+                        .to_vec(),
+                ),
+                Coord::Numbers(vec![4.0, 6.0, 8.0, 10.0, 12.0]),
+                Coord::Numbers(numbers("times")),
+            ],
+            units: "1".into(),
+            ..Layout::default()
+        };
+        let values = read_f64("norm", "baseline_input").mapv(|v| v as f32);
+        LabelledArray::real(layout, values).expect("consistent fixture")
+    }
+
+    fn params(window: [f64; 2], mode: &str) -> BaselineParams {
+        serde_json::from_value(json!({ "window": window, "mode": mode })).expect("params")
+    }
+
+    fn run_on(p: &BaselineParams, a: &LabelledArray) -> Result<(LabelledArray, Notes), StageError> {
+        let mut notes = Notes::default();
+        let input = Input {
+            stage: "sync",
+            subject: Some("sub-01"),
+            array: a,
+        };
+        Baseline::run(p, &[input], &mut notes).map(|out| (out, notes))
+    }
+
+    fn layout_of(p: &BaselineParams, a: &LabelledArray) -> Result<Option<Layout>, StageError> {
+        let input = InputLayout {
+            stage: "sync",
+            subject: None,
+            layout: &a.layout,
+        };
+        Baseline::layout(p, &[input])
+    }
+
+    #[test]
+    fn every_mode_matches_numpy() {
+        // Reference: numpy with DESIGN §4's formulas (gen_norm.py; common practice, CHECKS.md).
+        // Our output is f32 computed in f64, so 1e-6 relative (floor 1e-6) is the tolerance.
+        let input = fixture_input();
+        let meta = read_json("norm", "baseline");
+        let window: [f64; 2] = serde_json::from_value(meta["window"].clone()).unwrap();
+        let expected_points = meta["points_in_window"].as_u64().unwrap() as usize;
+        let times = input.layout.numbers("time").unwrap();
+        assert_eq!(points_within(times, window).len(), expected_points);
+        for (mode, units) in [
+            ("subtract", "1"),
+            ("percent", "%"),
+            ("db", "dB"),
+            ("zscore", "z"),
+        ] {
+            let (out, notes) = run_on(&params(window, mode), &input).expect(mode);
+            let expected = read_f64("norm", &format!("baseline_{mode}"));
+            let actual: Vec<f64> = out
+                .real_values()
+                .unwrap()
+                .iter()
+                .map(|&v| v.into())
+                .collect();
+            assert_close(&actual, expected.as_slice().unwrap(), 1e-6, 1e-6, mode);
+            assert_eq!(out.layout.units, units);
+            assert_eq!(out.layout.dims, input.layout.dims);
+            // The fixture plants a zero baseline (zero mean and spread) and a constant one
+            // (zero spread only).
+            let flagged = if mode == "zscore" { 2 } else { 1 };
+            if mode != "subtract" {
+                assert_eq!(notes.warnings.len(), 1, "{mode}: {:?}", notes.warnings);
+                let text = format!("{flagged} of 120 time courses");
+                assert!(notes.warnings[0].contains(&text), "{:?}", notes.warnings);
+            }
+        }
+    }
+
+    #[test]
+    fn layout_equals_the_run_layout() {
+        let input = fixture_input();
+        let p = params([-0.3, -0.1], "zscore");
+        let planned = layout_of(&p, &input).unwrap().unwrap();
+        assert_eq!(planned, run_on(&p, &input).unwrap().0.layout);
+    }
+
+    #[test]
+    fn window_outside_the_time_axis_names_both_ranges() {
+        let input = fixture_input();
+        let err = layout_of(&params([-1.0, -0.1], "subtract"), &input).unwrap_err();
+        assert_eq!(
+            err,
+            StageError::param(
+                "window",
+                "the baseline window [-1, -0.1] s reaches outside the time axis of the input, \
+                 which runs over [-0.4, 0.38] s"
+            )
+        );
+    }
+
+    #[test]
+    fn zscore_needs_two_points() {
+        // Times are k/50: [-0.3, -0.29] holds only -0.3.
+        let input = fixture_input();
+        let err = layout_of(&params([-0.3, -0.29], "zscore"), &input).unwrap_err();
+        let StageError::Param { field, message } = err else {
+            panic!("not a param error")
+        };
+        assert_eq!(field, "window");
+        assert!(message.contains("holds 1 time point(s)"), "{message}");
+        assert!(layout_of(&params([-0.3, -0.29], "subtract"), &input).is_ok());
+        let err = layout_of(&params([-0.299, -0.281], "subtract"), &input).unwrap_err();
+        assert!(err.to_string().contains("holds 0 time point(s)"), "{err}");
+    }
+
+    #[test]
+    fn db_refuses_signed_measures_and_negative_values() {
+        let mut input = fixture_input();
+        input.layout.coords[1] = labels(&["plv", "icoh", "wpli"]);
+        let err = layout_of(&params([-0.3, -0.1], "db"), &input).unwrap_err();
+        let StageError::Param { field, message } = err else {
+            panic!("not a param error")
+        };
+        assert_eq!(field, "mode");
+        assert!(
+            message.contains("measure `icoh` can be negative"),
+            "{message}"
+        );
+        // Negative values in a measure not known to be signed: refused at run time, by value.
+        let mut input = fixture_input();
+        if let Values::Real(v) = &mut input.values {
+            v[[1, 0, 2, 3, 5]] = -0.25;
+        }
+        let err = run_on(&params([-0.3, -0.1], "db"), &input).unwrap_err();
+        assert_eq!(
+            err,
+            StageError::param(
+                "mode",
+                "db needs non-negative values, but the input holds -0.25 at condition=B, \
+                 measure=plv, pair=Cz-P4, freq=10, time=-0.3; use subtract, percent or zscore"
+            )
+        );
+    }
+
+    #[test]
+    fn bad_params_are_refused() {
+        let p = params([0.2, -0.1], "subtract");
+        assert!(
+            matches!(Baseline::check(&p), Err(StageError::Param { field, .. }) if field == "window")
+        );
+        let e =
+            crate::op::parse_params::<BaselineParams>(&json!({"window": [0, 1], "mode": "ratio"}))
+                .unwrap_err();
+        assert!(matches!(e, StageError::Param { field, .. } if field == "mode"));
+        let e = crate::op::parse_params::<BaselineParams>(
+            &json!({"window": [0, 1], "mode": "db", "extra": 1}),
+        )
+        .unwrap_err();
+        assert!(e.to_string().contains("extra"), "{e}");
+    }
+
+    #[test]
+    fn complex_input_is_a_data_error() {
+        let mut layout = fixture_input().layout;
+        layout.complex = true;
+        let input = InputLayout {
+            stage: "tf",
+            subject: None,
+            layout: &layout,
+        };
+        let err = Baseline::layout(&params([-0.3, -0.1], "subtract"), &[input]).unwrap_err();
+        assert!(matches!(err, StageError::Data(m) if m.contains("complex")));
     }
 }
