@@ -459,6 +459,17 @@ def save(out_dir, subject, name, rec):
         json.dump(meta, fh, sort_keys=True)
 
 
+def save_group(out_dir, name, group, params, pair_meta):
+    """Write the group mean [condition, measure, pair, band, window] with its names."""
+    folder = os.path.join(out_dir, "group")
+    os.makedirs(folder, exist_ok=True)
+    np.save(os.path.join(folder, f"{name}.npy"), group["mean"])
+    meta = dict(pair_meta, bands=list(params.get("bands", {})),
+                windows=list(params.get("windows", {})), n=group["n"])
+    with open(os.path.join(folder, f"{name}.json"), "w", encoding="utf-8") as fh:
+        json.dump(meta, fh, sort_keys=True)
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("pipeline")
@@ -480,19 +491,18 @@ def main():
     for path in recordings:
         subject = subject_of(path)
         last, kept = run_subject(path, order, stages, clock)
+        pair_meta = {k: last[k] for k in ("conditions", "measures", "pairs") if k in last}
         for name in args.save:
             save(args.out, subject, name, last)
         for name, value in kept.items():
             if name != "_last":
                 per_subject.setdefault(name, []).append(value)
         del last, kept
-    groups = {}
     for name, values in per_subject.items():
         t = time.perf_counter()
-        groups[name] = aggregate_group(values)
+        group = aggregate_group(values)
         clock.add(name, time.perf_counter() - t)
-        os.makedirs(os.path.join(args.out, "group"), exist_ok=True)
-        np.save(os.path.join(args.out, "group", f"{name}.npy"), groups[name]["mean"])
+        save_group(args.out, name, group, stages[name].get("params", {}), pair_meta)
     total = time.perf_counter() - start
     with open(args.timings, "w", encoding="utf-8") as fh:
         json.dump({"stages": clock.seconds, "total": total, "subjects": len(recordings)},

@@ -179,20 +179,44 @@ def coord_values(layout, dim):
     return coord["values"] if isinstance(coord, dict) else coord
 
 
-def align_norm(pw, layout, peer_meta):
-    """phasewise's norm array reordered to the peer's (condition, measure, pair) order."""
+def keyed(values):
+    """Coordinates as hashable keys (pairs come as lists)."""
+    return [tuple(v) if isinstance(v, list) else v for v in values]
+
+
+def align(pw, layout, order):
+    """phasewise's array with its axes in `order` [(dim, labels or None)], each label axis
+    reordered to the given labels (so the peer's order); other dims must be picked out first."""
+    arr = np.transpose(pw, [layout["dims"].index(d) for d, _ in order])
+    for axis, (dim, labels) in enumerate(order):
+        if labels is not None:
+            have = keyed(coord_values(layout, dim))
+            arr = np.take(arr, [have.index(v) for v in keyed(labels)], axis=axis)
+    return arr
+
+
+def group_mean(pw, layout):
+    """The `mean` statistic of the `group` row of phasewise's group array, with its layout
+    minus those two axes."""
     dims = layout["dims"]
-    want = ["condition", "measure", "pair", "freq", "time"]
-    arr = np.transpose(pw, [dims.index(d) for d in want])
-    idx = {}
-    for dim, key in (("condition", "conditions"), ("measure", "measures"), ("pair", "pairs")):
-        have = [tuple(v) if isinstance(v, list) else v for v in coord_values(layout, dim)]
-        peer_order = [tuple(v) if isinstance(v, list) else v for v in peer_meta[key]]
-        idx[dim] = [have.index(v) for v in peer_order]
-    arr = arr[idx["condition"]][:, idx["measure"]][:, :, idx["pair"]]
-    freqs = np.array(coord_values(layout, "freq"))
-    times = np.array(coord_values(layout, "time"))
-    return arr, freqs, times
+    stat = coord_values(layout, "statistic").index("mean")
+    subj = coord_values(layout, "subject").index("group")
+    arr = np.take(np.take(pw, [stat], axis=dims.index("statistic")), [subj],
+                  axis=dims.index("subject"))
+    arr = arr.squeeze(axis=(dims.index("statistic"), dims.index("subject")))
+    keep = [i for i, d in enumerate(dims) if d not in ("statistic", "subject")]
+    return arr, {"dims": [dims[i] for i in keep], "coords": [layout["coords"][i] for i in keep]}
+
+
+def group_agreement(folder):
+    """Max |phasewise − peer| of the group means, per measure."""
+    meta = json.load(open(os.path.join(folder, "peer", "group", "group.json")))
+    peer = np.load(os.path.join(folder, "peer", "group", "group.npy"))
+    pw, layout = group_mean(*load_phasewise(os.path.join(folder, "results", "group", "group.npy")))
+    order = [("condition", meta["conditions"]), ("measure", meta["measures"]),
+             ("pair", meta["pairs"]), ("band", meta["bands"]), ("window", meta["windows"])]
+    pw = align(pw, layout, order).astype(np.float64)
+    return {m: float(np.nanmax(np.abs(pw[:, i] - peer[:, i]))) for i, m in enumerate(meta["measures"])}
 
 
 def agreement(folder):
@@ -211,7 +235,11 @@ def agreement(folder):
             raise SystemExit(f"no phasewise output norm.npy for {subject} under {res_dir}")
         meta = json.load(open(os.path.join(peer_dir, subject, "norm.json")))
         peer = np.load(os.path.join(peer_dir, subject, "norm.npy")).astype(np.float64)
-        pw, freqs, times = align_norm(*load_phasewise(pw_path), meta)
+        pw, layout = load_phasewise(pw_path)
+        pw = align(pw, layout, [("condition", meta["conditions"]), ("measure", meta["measures"]),
+                                ("pair", meta["pairs"]), ("freq", None), ("time", None)])
+        freqs = np.array(coord_values(layout, "freq"))
+        times = np.array(coord_values(layout, "time"))
         if pw.shape != peer.shape:
             raise SystemExit(f"{subject}: shapes differ: phasewise {pw.shape}, peer {peer.shape}")
         coords = max(coords, np.abs(freqs - meta["freqs"]).max(), np.abs(times - meta["times"]).max())
@@ -221,7 +249,8 @@ def agreement(folder):
             d = np.where(both_nan, 0.0, d)
             worst[m] = max(worst.get(m, 0.0), float(np.nan_to_num(d, nan=np.inf).max()))
         subjects += 1
-    return {"max_abs_diff": worst, "coord_diff": float(coords), "subjects": subjects}
+    return {"max_abs_diff": worst, "coord_diff": float(coords), "subjects": subjects,
+            "group_max_abs_diff": group_agreement(folder)}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -266,11 +295,14 @@ def full_chain(rep, folder, size, reps):
     rep.say("\nPer-stage seconds (median of reps; phasewise from manifest, summed over subjects):")
     rep.table(["stage", "phasewise", "peer", "peer/phasewise"], rows)
     agree = agreement(folder)
-    ok = max(agree["max_abs_diff"].values()) <= AGREEMENT_TOL and agree["coord_diff"] < 1e-6
+    worst = max(list(agree["max_abs_diff"].values()) + list(agree["group_max_abs_diff"].values()))
+    ok = worst <= AGREEMENT_TOL and agree["coord_diff"] < 1e-6
     rep.say(f"\nAgreement over {agree['subjects']} subjects (baseline-corrected, max |pw − peer|): "
             + ", ".join(f"{m} {v:.2e}" for m, v in agree["max_abs_diff"].items())
             + f"; coords {agree['coord_diff']:.1e}; tolerance {AGREEMENT_TOL:g}: "
             + ("AGREE" if ok else "DISAGREE"))
+    rep.say("Group means (band x window), max |pw − peer|: "
+            + ", ".join(f"{m} {v:.2e}" for m, v in agree["group_max_abs_diff"].items()))
     rep.data["full_chain"] = {"phasewise": pw, "peer": peer, "phasewise_wall": pw_wall,
                               "peer_wall": peer_wall, "phasewise_rss_mib": pw_rss,
                               "peer_rss_mib": peer_rss, "agreement": agree, "agree": ok,
