@@ -11,6 +11,7 @@
 #![deny(missing_docs)]
 
 pub mod array;
+pub mod dsp;
 pub mod error;
 pub mod io;
 pub mod op;
