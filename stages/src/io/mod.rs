@@ -100,13 +100,11 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let mut path = fixture_path("edf", file);
         if events == EventSource::Sidecar {
-            let copy = dir
-                .path()
-                .join(format!("sub-01_{file}").replace(".", "_eeg."));
+            // BIDS names: sub-01_<x>_eeg.<ext> with sub-01_<x>_events.tsv beside it.
+            let (base, ext) = file.split_once('.').unwrap();
+            let copy = dir.path().join(format!("sub-01_{base}_eeg.{ext}"));
             std::fs::copy(&path, &copy).unwrap();
-            let tsv = dir
-                .path()
-                .join("sub-01_plain_events.tsv".replace("plain", file.split('.').next().unwrap()));
+            let tsv = dir.path().join(format!("sub-01_{base}_events.tsv"));
             std::fs::write(tsv, "onset\tduration\ttrial_type\n1.5\tn/a\tcue-a\n").unwrap();
             path = copy;
         }

@@ -47,17 +47,9 @@ impl Opened {
         let samples = header.records * selection.samples_per_record;
         let length = samples as f64 / selection.rate;
         let annotations = annotations(&mut file, &header, selection.rate).map_err(fail)?;
-        let events = match events {
-            EventSource::Sidecar if !events_path.is_file() => {
-                return Err(fail(format!(
-                    "`events: sidecar` needs the events file {}, which does not exist",
-                    events_path.display()
-                )))
-            }
-            EventSource::Sidecar => read_events(&events_path, length, &mut warnings)?,
-            EventSource::Annotations => annotations.ok_or_else(|| {
-                fail("`events: annotations` needs an EDF+/BDF+ file with an annotations signal; this is plain EDF/BDF (use `events: sidecar`)".into())
-            })?,
+        let events = match annotations {
+            Some(found) if events == EventSource::Annotations => found,
+            _ => sidecar_events(path, events, &events_path, length, &mut warnings)?,
         };
         let layout = layout(&selection, samples, events);
         Ok(Opened {
@@ -92,6 +84,28 @@ impl Opened {
         read_samples(&mut file, &self.header, &chosen, out)
             .map_err(|e| fail(format!("reading the data records failed: {e}")))?;
         LabelledArray::real(self.layout, values.into_dyn())
+    }
+}
+
+/// The events of `events: sidecar`, or the error for `events: annotations` on a file without
+/// annotations.
+fn sidecar_events(
+    path: &Path,
+    source: EventSource,
+    events_path: &Path,
+    length: f64,
+    warnings: &mut Vec<String>,
+) -> Result<Vec<Event>, StageError> {
+    let fail = |m: String| StageError::input(format!("{}: {m}", path.display()));
+    match source {
+        EventSource::Annotations => Err(fail(
+            "`events: annotations` needs an EDF+/BDF+ file with an annotations signal; this is plain EDF/BDF (use `events: sidecar`)".into(),
+        )),
+        EventSource::Sidecar if !events_path.is_file() => Err(fail(format!(
+            "`events: sidecar` needs the events file {}, which does not exist",
+            events_path.display()
+        ))),
+        EventSource::Sidecar => read_events(events_path, length, warnings),
     }
 }
 
@@ -460,5 +474,58 @@ mod tests {
             err.contains("data record 1") && err.contains("\"x0\""),
             "{err}"
         );
+    }
+
+    // EDF+D (Kemp & Olivan 2003): records carry their own start times; contiguous ones read
+    // like EDF+C, a gap is refused.
+    #[test]
+    fn discontinuous_files_read_only_without_gaps() {
+        let (_dir, path) = recording();
+        patch(&path, 192, 44, "EDF+D");
+        let array = read_recording(&path, EventSource::Annotations, &mut Notes::default());
+        assert_eq!(array.unwrap().layout.meta.events.unwrap().len(), 2);
+        let bytes = std::fs::read(&path).unwrap();
+        let header = Header::parse(&bytes[..1280]).unwrap();
+        let at = 1280 + 2 * header.record_bytes() + header.signal_offset(3);
+        assert_eq!(&bytes[at..at + 5], b"+2\x14\x14\x00");
+        patch(&path, at, 2, "+5");
+        let err = error(&path, EventSource::Annotations);
+        assert!(
+            err.contains("gap") && err.contains("data record 3 starts at 5 s"),
+            "{err}"
+        );
+    }
+
+    // A header unit that is not a voltage: the channels sidecar's units (BIDS) decide, else the
+    // values stay unconverted with a warning.
+    #[test]
+    fn units_from_the_sidecar_or_a_warning() {
+        let (dir, path) = recording();
+        let mut notes = Notes::default();
+        let before = read_recording(&path, EventSource::Annotations, &mut notes).unwrap();
+        // Unit field of signal 2 (Cz): 256 + (16 + 80) · 4 + 8.
+        patch(&path, 256 + 96 * 4 + 8, 8, "");
+        let after = read_recording(&path, EventSource::Annotations, &mut notes).unwrap();
+        let (b, a) = (before.real_values().unwrap(), after.real_values().unwrap());
+        // Both are f32 roundings of the same value in different units: equal to ~2^-23.
+        let (raw, volts) = (f64::from(a[[1, 0]]), f64::from(b[[1, 0]]));
+        assert!(
+            (raw - volts * 1e6).abs() <= 1.2e-7 * raw.abs(),
+            "{raw} vs {volts}"
+        );
+        assert!(notes
+            .warnings
+            .iter()
+            .any(|w| w.contains("Cz") && w.contains("not a voltage")));
+        let channels = dir.path().join("sub-01_task-x_channels.tsv");
+        std::fs::write(
+            channels,
+            "name\ttype\tunits\nFz\tEEG\tuV\nCz\tEEG\tuV\nleft\tEOG\tmV\n",
+        )
+        .unwrap();
+        let mut notes = Notes::default();
+        let fixed = read_recording(&path, EventSource::Annotations, &mut notes).unwrap();
+        assert_eq!(fixed.values, before.values);
+        assert!(notes.warnings.is_empty(), "{:?}", notes.warnings);
     }
 }
