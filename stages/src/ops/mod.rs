@@ -6,6 +6,11 @@ pub mod baseline;
 pub mod clustering;
 pub mod epoch;
 pub mod filter;
+pub mod measures;
+pub mod morlet;
 pub mod notch;
+pub mod params_de;
 pub mod reref;
+#[cfg(test)]
+mod tf_testing;
 pub mod wavelet;
