@@ -144,6 +144,51 @@ where
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::array::{Coord, Meta};
+
+    fn layout(types: Option<Vec<&str>>, fs: f64) -> Layout {
+        Layout {
+            dims: vec!["channel".into(), "time".into()],
+            coords: vec![
+                Coord::Labels(vec!["Fz".into(), "HEOG".into()]),
+                Coord::Numbers(vec![0.0, 0.5, 1.0]),
+            ],
+            units: "V".into(),
+            complex: false,
+            meta: Meta {
+                sampling_rate: Some(fs),
+                channel_types: types.map(|t| t.into_iter().map(String::from).collect()),
+                ..Meta::default()
+            },
+        }
+    }
+
+    #[test]
+    fn continuous_input_is_checked() {
+        let l = layout(Some(vec!["EEG", "EOG"]), 2.0);
+        let rec = Continuous::of(&l).unwrap();
+        assert_eq!((rec.n_times, rec.is_data.clone()), (3, vec![true, false]));
+        let err = rec.channel_index("Cz", "channels[0]").unwrap_err();
+        assert_eq!(
+            err.to_string(),
+            "channels[0]: no channel named `Cz`; the recording's channels are [Fz, HEOG]"
+        );
+        // Without types every channel counts as EEG.
+        assert_eq!(
+            Continuous::of(&layout(None, 2.0)).unwrap().is_data,
+            [true, true]
+        );
+        let err = Continuous::of(&layout(Some(vec!["EEG"]), 2.0)).unwrap_err();
+        assert_eq!(
+            err.to_string(),
+            "the recording lists 1 channel types for 2 channels"
+        );
+        let err = Continuous::of(&layout(None, 0.0)).unwrap_err();
+        assert_eq!(
+            err.to_string(),
+            "the sampling rate must be a positive number of Hz, found 0"
+        );
+    }
 
     #[test]
     fn voltage_types_are_recognised_case_insensitively() {

@@ -119,10 +119,11 @@ impl Op for Epoch {
     fn layout(p: &Self::Params, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
         let input = single(inputs)?.layout;
         let sel = select(p, input)?;
+        // Rejection can only lower the counts, so an empty condition is known already.
+        check_nonempty(&sel.counts)?;
         if p.reject.is_some() {
             return Ok(None);
         }
-        check_nonempty(&sel.counts)?;
         Ok(Some(epoched_layout(input, &sel)?))
     }
 

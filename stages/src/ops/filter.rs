@@ -253,8 +253,9 @@ mod tests {
 
     #[test]
     fn a_passband_sine_keeps_its_phase() {
-        // Analytic: forward–backward filtering has zero phase; a 10 Hz sine in an 8–12 Hz... here a
-        // 1–40 Hz band keeps amplitude |H(10 Hz)|² ≈ 1 and phase exactly.
+        // Analytic: forward–backward filtering has zero phase (Oppenheim & Schafer, Discrete-Time
+        // Signal Processing, zero-phase filtering), so a 10 Hz sine through a 1–40 Hz band-pass
+        // keeps its phase, and its amplitude since |H(10 Hz)|² ≈ 1 well inside the band.
         let fs = 500.0;
         let x: Vec<f64> = (0..5000)
             .map(|k| (2.0 * PI * 10.0 * k as f64 / fs + 0.4).sin())
@@ -274,6 +275,34 @@ mod tests {
         let (amp, phase) = ((2.0 * c / 3000.0).hypot(2.0 * s / 3000.0), c.atan2(s));
         assert!((amp - 1.0).abs() < 1e-3, "amplitude {amp}");
         assert!((phase - 0.4).abs() < 1e-4, "phase {phase}");
+    }
+
+    #[test]
+    fn the_layout_passes_through_unchanged() {
+        // DESIGN.md §2: filtering changes values only; events and channel types flow on.
+        let mut x = continuous(&vec![0.0; 100], 200.0);
+        x.layout.meta.events = Some(vec![crate::array::Event {
+            onset: 0.1,
+            duration: 0.0,
+            label: "cue".into(),
+        }]);
+        let p = params(json!({ "high": 30 }));
+        let lay = InputLayout {
+            stage: "raw",
+            subject: None,
+            layout: &x.layout,
+        };
+        assert_eq!(
+            Filter::layout(&p, &[lay]).unwrap().as_ref(),
+            Some(&x.layout)
+        );
+        let input = Input {
+            stage: "raw",
+            subject: None,
+            array: &x,
+        };
+        let out = Filter::run(&p, &[input], &mut Notes::default()).unwrap();
+        assert_eq!(out.layout, x.layout);
     }
 
     #[test]

@@ -339,6 +339,29 @@ mod tests {
     }
 
     #[test]
+    #[ignore = "measurement: 64 channels x 1 h at 500 Hz (0.9 GB of f32); run with --ignored"]
+    fn one_hour_of_64_channels_notches_in_seconds() {
+        let (n_ch, fs) = (64, 500.0);
+        let n = 3600 * 500;
+        let mut v = Array2::<f32>::zeros((n_ch, n));
+        v.indexed_iter_mut()
+            .for_each(|((c, k), x)| *x = ((k * (c + 1)) as f32 * 0.001).sin() * 1e-5);
+        let mut x = continuous(&[vec![0.0; 16]], fs);
+        x.layout.coords[0] = Coord::Labels((0..n_ch).map(|i| format!("C{i}")).collect());
+        x.layout.coords[1] = Coord::Numbers((0..n).map(|k| k as f64 / fs).collect());
+        x.values = crate::array::Values::Real(v.into_dyn());
+        let p = params(json!({ "freqs": [50], "harmonics": true }));
+        let start = std::time::Instant::now();
+        run(&p, &x).unwrap();
+        let secs = start.elapsed().as_secs_f64();
+        eprintln!(
+            "notch 50 Hz + 3 harmonics, 64 ch x 1 h x 500 Hz: {secs:.2} s on {} threads",
+            rayon::current_num_threads()
+        );
+        assert!(secs < 60.0, "took {secs} s");
+    }
+
+    #[test]
     fn result_does_not_depend_on_the_thread_count() {
         // Determinism requirement (DESIGN.md §5): bit-identical for any thread count.
         let rows: Vec<Vec<f64>> = (0..6)
