@@ -69,23 +69,8 @@ impl Op for ReReference {
     const VERSION: u32 = 1;
 
     fn check(p: &Self::Params) -> Result<(), StageError> {
-        let needs =
-            |field: &str, given: bool, method: &str| match (given, p.method_name() == method) {
-                (false, true) => Err(StageError::param(
-                    field,
-                    format!("`method: {method}` needs a non-empty `{field}` list"),
-                )),
-                (true, false) => Err(StageError::param(
-                    field,
-                    format!(
-                        "`{field}` is only used with `method: {field}`, not `method: {}`",
-                        p.method_name()
-                    ),
-                )),
-                _ => Ok(()),
-            };
-        needs("channels", !p.channels.is_empty(), "channels")?;
-        needs("bipolar", !p.bipolar.is_empty(), "bipolar")?;
+        list_fits_method(p, "channels", !p.channels.is_empty())?;
+        list_fits_method(p, "bipolar", !p.bipolar.is_empty())?;
         if let Some(i) = p.bipolar.iter().position(|[a, b]| a == b) {
             return Err(StageError::param(
                 format!("bipolar[{i}]"),
@@ -126,6 +111,22 @@ impl ReReferenceParams {
             Method::Channels => "channels",
             Method::Bipolar => "bipolar",
         }
+    }
+}
+
+/// The list `field` must be given exactly when `method` is the method of the same name.
+fn list_fits_method(p: &ReReferenceParams, field: &str, given: bool) -> Result<(), StageError> {
+    let method = p.method_name();
+    match (given, method == field) {
+        (false, true) => Err(StageError::param(
+            field,
+            format!("`method: {method}` needs a non-empty `{field}` list"),
+        )),
+        (true, false) => Err(StageError::param(
+            field,
+            format!("`{field}` is only used with `method: {field}`, not `method: {method}`"),
+        )),
+        _ => Ok(()),
     }
 }
 
