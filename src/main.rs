@@ -1,1 +1,5 @@
-fn main() {}
+//! The `phasewise` command; everything happens in [`phasewise::cli`].
+
+fn main() {
+    std::process::exit(phasewise::cli::main());
+}

@@ -1,0 +1,326 @@
+//! The command line (DESIGN §7): clap definitions and the glue from arguments to the library.
+//!
+//! Exit status: 0 success; 1 a stage failed (or `verify` found a difference); 2 the pipeline or
+//! the command line is wrong. `--cache DIR` (or `PHASEWISE_CACHE`) is accepted by every command
+//! that reads or writes the cache. Logs go to stderr through `tracing`; `-v`/`-q` set the level.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{anyhow, Context, Result};
+use clap::{Args, Parser, Subcommand};
+
+use crate::plan::Status;
+use crate::session::{self, Env, Options};
+use crate::sources::RecordingReader;
+use crate::study::{subject_label, RunError};
+
+/// Declarative, cached, reproducible pipelines for phase-synchronization connectivity studies.
+#[derive(Parser, Debug)]
+#[command(name = "phasewise", version, about)]
+pub struct Cli {
+    /// More log output (repeat for more).
+    #[arg(short, long, global = true, action = clap::ArgAction::Count)]
+    pub verbose: u8,
+    /// Only errors.
+    #[arg(short, long, global = true)]
+    pub quiet: bool,
+    /// The command.
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// The commands.
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Run a pipeline: compute what is stale, export results, write the manifest.
+    Run {
+        /// Pipeline selection and overrides.
+        #[command(flatten)]
+        target: Target,
+        /// Number of threads (default: all cores).
+        #[arg(long, short = 'j')]
+        jobs: Option<usize>,
+    },
+    /// Show, for every stage × subject, whether it is fresh or stale and why.
+    Plan {
+        /// Pipeline selection and overrides.
+        #[command(flatten)]
+        target: Target,
+    },
+    /// Recompute a study from its manifest in a fresh cache and compare the outputs.
+    Verify {
+        /// The manifest.json of a run.
+        manifest: PathBuf,
+    },
+    /// Describe a cached result: dims, shape, coords, value summary.
+    Inspect {
+        /// Pipeline selection and overrides.
+        #[command(flatten)]
+        target: Target,
+        /// The stage.
+        stage: String,
+    },
+    /// Write the simulated demo study.
+    Simulate {
+        /// Where to write it.
+        #[arg(long)]
+        out: PathBuf,
+        /// Number of simulated participants.
+        #[arg(long, default_value_t = 8)]
+        subjects: usize,
+        /// Seed of the simulation.
+        #[arg(long, default_value_t = 1)]
+        seed: u64,
+    },
+    /// Remove cache objects that no manifest of these pipelines refers to.
+    Prune {
+        /// The pipelines whose manifests are kept.
+        #[arg(required = true)]
+        pipelines: Vec<PathBuf>,
+        /// Only list what would be removed.
+        #[arg(long)]
+        dry_run: bool,
+        /// The cache folder (default: `.phasewise/` beside the first pipeline).
+        #[arg(long, env = "PHASEWISE_CACHE")]
+        cache: Option<PathBuf>,
+    },
+    /// Write a commented pipeline fitted to a dataset.
+    New {
+        /// The dataset folder.
+        #[arg(long)]
+        data: PathBuf,
+        /// The pipeline file to write (default: print it).
+        #[arg(long)]
+        out: Option<PathBuf>,
+    },
+    /// Write a self-contained HTML report of a run.
+    Report {
+        /// The pipeline.
+        pipeline: PathBuf,
+        /// The HTML file to write.
+        #[arg(long)]
+        out: Option<PathBuf>,
+    },
+}
+
+/// A pipeline with its overrides, subject selection and cache.
+#[derive(Args, Debug)]
+pub struct Target {
+    /// The pipeline file.
+    pub pipeline: PathBuf,
+    /// Override a param: STAGE.PARAM=VALUE (VALUE is YAML, e.g. `norm.window=[-0.4,-0.1]`).
+    #[arg(long = "set", value_name = "STAGE.PARAM=VALUE")]
+    pub set: Vec<String>,
+    /// Only this subject (repeatable); group stages are skipped.
+    #[arg(long = "subject", value_name = "ID")]
+    pub subjects: Vec<String>,
+    /// The cache folder (default: `.phasewise/` beside the pipeline file).
+    #[arg(long, env = "PHASEWISE_CACHE")]
+    pub cache: Option<PathBuf>,
+}
+
+/// An error with the exit status it calls for.
+#[derive(Debug, thiserror::Error)]
+#[error("{message}")]
+struct Exit {
+    code: i32,
+    message: String,
+}
+
+/// Parse arguments, run, and return the exit status.
+pub fn main() -> i32 {
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(e) => {
+            let _ = e.print();
+            return if e.use_stderr() { 2 } else { 0 };
+        }
+    };
+    init_logging(cli.verbose, cli.quiet);
+    match dispatch(&cli) {
+        Ok(code) => code,
+        Err(e) => {
+            eprintln!("error: {e:#}");
+            e.downcast_ref::<Exit>().map_or(1, |x| x.code)
+        }
+    }
+}
+
+fn init_logging(verbose: u8, quiet: bool) {
+    let level = match (quiet, verbose) {
+        (true, _) => "error",
+        (false, 0) => "warn",
+        (false, 1) => "info",
+        (false, 2) => "debug",
+        _ => "trace",
+    };
+    let filter = tracing_subscriber::EnvFilter::try_from_default_env()
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(level));
+    let _ = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr)
+        .try_init();
+}
+
+fn run_error(e: RunError) -> anyhow::Error {
+    anyhow!(Exit {
+        code: e.exit_code(),
+        message: e.to_string(),
+    })
+}
+
+fn options(target: &Target, jobs: Option<usize>, quiet: bool) -> Options {
+    Options {
+        overrides: target.set.clone(),
+        subjects: target.subjects.clone(),
+        cache: target.cache.clone(),
+        jobs,
+        output: None,
+        progress: !quiet,
+    }
+}
+
+fn dispatch(cli: &Cli) -> Result<i32> {
+    let ops = phasewise_stages::registry::all();
+    let env = Env {
+        ops: &ops,
+        reader: &RecordingReader,
+    };
+    match &cli.command {
+        Command::Run { target, jobs } => run(target, *jobs, cli.quiet, env),
+        Command::Plan { target } => plan(target, env),
+        Command::Verify { manifest } => verify(manifest, env),
+        Command::Inspect { target, stage } => inspect(target, stage, env),
+        Command::Simulate {
+            out,
+            subjects,
+            seed,
+        } => simulate(out, *subjects, *seed),
+        Command::Prune {
+            pipelines,
+            dry_run,
+            cache,
+        } => prune(pipelines, *dry_run, cache.as_deref(), env),
+        Command::New { data, out } => {
+            crate::scaffold::run(data, out.as_deref())?;
+            Ok(0)
+        }
+        Command::Report { .. } => Err(anyhow!(Exit {
+            code: 2,
+            message: "`phasewise report` is not available yet".into(),
+        })),
+    }
+}
+
+fn run(target: &Target, jobs: Option<usize>, quiet: bool, env: Env<'_>) -> Result<i32> {
+    let summary =
+        session::run(&target.pipeline, &options(target, jobs, quiet), env).map_err(run_error)?;
+    if !quiet {
+        println!(
+            "{} units: {} computed, {} cached; {} outputs; manifest {}",
+            summary.computed + summary.cached,
+            summary.computed,
+            summary.cached,
+            summary.outputs,
+            summary.manifest_path.display()
+        );
+    }
+    if !summary.warnings.is_empty() {
+        eprintln!("{} warnings:", summary.warnings.len());
+        for w in &summary.warnings {
+            eprintln!(
+                "  {} ({}): {}",
+                w.stage,
+                subject_label(w.subject.as_deref()),
+                w.message
+            );
+        }
+    }
+    Ok(0)
+}
+
+fn plan(target: &Target, env: Env<'_>) -> Result<i32> {
+    let (study, plan) =
+        session::plan(&target.pipeline, &options(target, None, true), env).map_err(run_error)?;
+    for (u, line) in plan.units.iter().enumerate() {
+        let status = match line.status {
+            Status::Fresh => "fresh",
+            Status::Stale(_) => "stale",
+        };
+        let who = study.subject(u).unwrap_or("group");
+        match &line.status {
+            Status::Fresh => println!("{status}  {} [{who}]", line.stage),
+            Status::Stale(reason) => println!("{status}  {} [{who}]: {reason}", line.stage),
+        }
+    }
+    println!("{} of {} units stale", plan.stale_count(), plan.units.len());
+    Ok(0)
+}
+
+fn verify(manifest: &Path, env: Env<'_>) -> Result<i32> {
+    let report = crate::verify::verify(manifest, env).map_err(|e| {
+        anyhow!(Exit {
+            code: 2,
+            message: e.to_string(),
+        })
+    })?;
+    for line in report.lines() {
+        println!("{line}");
+    }
+    if report.reproduced() {
+        println!("verified: every output is bit-identical");
+        Ok(0)
+    } else {
+        println!("not reproduced");
+        Ok(1)
+    }
+}
+
+fn inspect(target: &Target, stage: &str, env: Env<'_>) -> Result<i32> {
+    let mut opts = options(target, None, true);
+    let subject = opts.subjects.first().cloned();
+    // Inspecting one subject of a group pipeline still needs all subjects' units.
+    opts.subjects.clear();
+    let study = session::open(&target.pipeline, &opts, env).map_err(run_error)?;
+    let subject = subject.map(|s| s.strip_prefix("sub-").unwrap_or(&s).to_string());
+    let text = crate::inspect::inspect(&study, stage, subject.as_deref()).map_err(|e| {
+        anyhow!(Exit {
+            code: 1,
+            message: e.to_string(),
+        })
+    })?;
+    print!("{text}");
+    Ok(0)
+}
+
+fn simulate(out: &Path, subjects: usize, seed: u64) -> Result<i32> {
+    let config = phasewise_stages::simulate::SimulateConfig::new(subjects, seed);
+    phasewise_stages::simulate::write_study(out, &config)
+        .with_context(|| format!("simulating into {}", out.display()))?;
+    println!(
+        "wrote a simulated study of {subjects} subjects to {}",
+        out.display()
+    );
+    Ok(0)
+}
+
+fn prune(pipelines: &[PathBuf], dry_run: bool, cache: Option<&Path>, env: Env<'_>) -> Result<i32> {
+    let mut outputs = Vec::new();
+    let mut store_root = cache.map(Path::to_path_buf);
+    for file in pipelines {
+        let p = crate::pipeline::load(file, &[], env.ops).map_err(|e| run_error(e.into()))?;
+        store_root.get_or_insert_with(|| session::cache_dir(&p, None));
+        outputs.push(p.output.clone());
+    }
+    let store = crate::store::Store::new(store_root.unwrap_or_default());
+    let keep = crate::prune::referenced_keys(&outputs).map_err(|e| anyhow!(e))?;
+    let report = crate::prune::prune(&store, &keep, dry_run);
+    let verb = if dry_run { "would remove" } else { "removed" };
+    println!(
+        "{verb} {} files ({} bytes); {} objects kept",
+        report.removed.len(),
+        report.bytes,
+        report.kept
+    );
+    Ok(0)
+}

@@ -1,0 +1,423 @@
+//! The executor: runs a [`Plan`] over a [`Study`].
+//!
+//! Each subject's chain of units runs on its own rayon task (`--jobs N` sizes the pool), the
+//! units of a chain in topological order; group units run afterwards, in order. Results are
+//! collected by unit index, never in completion order, so outputs and manifests are identical
+//! for any number of threads.
+//!
+//! Values are obtained on demand: from memory if a unit of the same chain just produced them,
+//! else from the store (hash-checked), else by computing the unit — which is also what happens
+//! when a cached object turns out to be damaged (with a warning) and for `cache: false` stages.
+//! An array is dropped from memory as soon as the last consumer in its chain has run.
+//! A failing unit stops its subject's chain; other chains finish and stay cached, group units
+//! are skipped, and the run reports every failure with its stage and subject.
+
+use std::collections::{BTreeMap, HashMap};
+use std::sync::Arc;
+use std::time::Instant;
+
+use indicatif::ProgressBar;
+use phasewise_stages::{Input, LabelledArray, Notes};
+use rayon::prelude::*;
+
+use crate::graph::UnitInput;
+use crate::output::{self, ExportTarget};
+use crate::pipeline::SOURCE;
+use crate::plan::{Plan, Status};
+use crate::sources::Reader;
+use crate::store::{npy_bytes, LoadError, Lookup, ObjectRecord};
+use crate::study::{RunError, Study, UnitFailure};
+
+/// What happened to one unit.
+#[derive(Clone, Debug)]
+pub struct UnitResult {
+    /// The object record (layout, hash, notes).
+    pub record: ObjectRecord,
+    /// True when the unit ran in this run.
+    pub computed: bool,
+    /// Seconds spent computing it in this run (0 when cached).
+    pub seconds: f64,
+    /// The exported NPY, relative to the output folder.
+    pub export: Option<String>,
+}
+
+/// A warning of this run, attributed to a unit.
+#[derive(Clone, Debug, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+pub struct Warning {
+    /// The stage.
+    pub stage: String,
+    /// The subject, `None` for group units.
+    pub subject: Option<String>,
+    /// The warning.
+    pub message: String,
+}
+
+/// The result of a run.
+#[derive(Clone, Debug)]
+pub struct Outcome {
+    /// One result per unit of the study, in unit order.
+    pub results: Vec<UnitResult>,
+    /// Warnings of the executor itself (damaged objects recomputed), in unit order.
+    pub warnings: Vec<Warning>,
+}
+
+impl Outcome {
+    /// Number of units computed in this run.
+    pub fn computed(&self) -> usize {
+        self.results.iter().filter(|r| r.computed).count()
+    }
+}
+
+/// Run the plan: `jobs` threads (all cores when `None`), `bar` ticked per unit.
+pub fn execute(
+    study: &Study<'_>,
+    plan: &Plan,
+    reader: &dyn Reader,
+    jobs: Option<usize>,
+    bar: &ProgressBar,
+) -> Result<Outcome, RunError> {
+    let mut builder = rayon::ThreadPoolBuilder::new();
+    if let Some(n) = jobs {
+        builder = builder.num_threads(n.max(1));
+    }
+    let pool = builder
+        .build()
+        .map_err(|e| RunError::Other(format!("cannot start {jobs:?} threads: {e}")))?;
+    let ctx = Ctx {
+        study,
+        plan,
+        reader,
+        bar,
+    };
+    let chains: Vec<Vec<usize>> = (0..study.sources.len())
+        .map(|s| units_where(study, |u| study.units[u].subject == Some(s)))
+        .collect();
+    let done: Vec<ChainResult> =
+        pool.install(|| chains.par_iter().map(|c| ctx.run_chain(c)).collect());
+    let mut merged = Merged::default();
+    for chain in done {
+        merged.absorb(chain);
+    }
+    if merged.failures.is_empty() {
+        let group = units_where(study, |u| study.units[u].subject.is_none());
+        let chain = pool.install(|| ctx.run_chain(&group));
+        merged.absorb(chain);
+    }
+    merged.finish(study)
+}
+
+fn units_where(study: &Study<'_>, keep: impl Fn(usize) -> bool) -> Vec<usize> {
+    (0..study.units.len()).filter(|&u| keep(u)).collect()
+}
+
+struct Ctx<'a, 'o> {
+    study: &'a Study<'o>,
+    plan: &'a Plan,
+    reader: &'a dyn Reader,
+    bar: &'a ProgressBar,
+}
+
+/// What one chain produced.
+#[derive(Default)]
+struct ChainResult {
+    results: BTreeMap<usize, UnitResult>,
+    warnings: Vec<(usize, String)>,
+    failure: Option<UnitFailure>,
+}
+
+#[derive(Default)]
+struct Merged {
+    results: BTreeMap<usize, UnitResult>,
+    warnings: Vec<(usize, String)>,
+    failures: Vec<UnitFailure>,
+}
+
+impl Merged {
+    fn absorb(&mut self, chain: ChainResult) {
+        for (u, r) in chain.results {
+            // A unit recomputed by another chain (a `cache: false` input of a group unit) counts
+            // as computed.
+            let entry = self.results.entry(u).or_insert_with(|| r.clone());
+            if r.computed && !entry.computed {
+                entry.computed = true;
+                entry.seconds = r.seconds;
+            }
+            if entry.export.is_none() {
+                entry.export = r.export;
+            }
+        }
+        self.warnings.extend(chain.warnings);
+        self.failures.extend(chain.failure);
+    }
+
+    fn finish(mut self, study: &Study<'_>) -> Result<Outcome, RunError> {
+        if !self.failures.is_empty() {
+            return Err(RunError::Units(self.failures));
+        }
+        self.warnings.sort_by_key(|(u, _)| *u);
+        let warnings = self
+            .warnings
+            .into_iter()
+            .map(|(u, message)| Warning {
+                stage: study.stage_name(u).to_string(),
+                subject: study.subject(u).map(str::to_string),
+                message,
+            })
+            .collect();
+        let results: Vec<UnitResult> = self.results.into_values().collect();
+        if results.len() != study.units.len() {
+            return Err(RunError::Other(format!(
+                "internal: {} of {} units have results",
+                results.len(),
+                study.units.len()
+            )));
+        }
+        Ok(Outcome { results, warnings })
+    }
+}
+
+/// An array in memory, with the notes of reading it (for sources).
+type Held = (Arc<LabelledArray>, Vec<String>);
+
+struct Worker<'c, 'a, 'o> {
+    ctx: &'c Ctx<'a, 'o>,
+    memory: HashMap<UnitInput, Held>,
+    /// Consumers left in this chain, per array held.
+    uses_left: HashMap<UnitInput, usize>,
+    out: ChainResult,
+}
+
+impl Ctx<'_, '_> {
+    fn run_chain(&self, chain: &[usize]) -> ChainResult {
+        let mut worker = Worker {
+            ctx: self,
+            memory: HashMap::new(),
+            uses_left: HashMap::new(),
+            out: ChainResult::default(),
+        };
+        for &u in chain {
+            for input in &self.study.units[u].inputs {
+                *worker.uses_left.entry(*input).or_default() += 1;
+            }
+        }
+        for &u in chain {
+            if let Err(failure) = worker.process(u) {
+                worker.out.failure = Some(failure);
+                break;
+            }
+            worker.release_inputs(u);
+            self.bar.inc(1);
+        }
+        worker.out
+    }
+}
+
+impl Worker<'_, '_, '_> {
+    fn study(&self) -> &Study<'_> {
+        self.ctx.study
+    }
+
+    fn fail(&self, u: usize, message: impl Into<String>) -> UnitFailure {
+        UnitFailure {
+            stage: self.study().stage_name(u).to_string(),
+            subject: self.study().subject(u).map(str::to_string),
+            message: message.into(),
+        }
+    }
+
+    /// Bring one unit up to date and export it if asked.
+    fn process(&mut self, u: usize) -> Result<(), UnitFailure> {
+        let stale = self.ctx.plan.units[u].status != Status::Fresh;
+        let mut npy = None;
+        if stale {
+            npy = Some(self.compute(u)?);
+        } else {
+            self.record_cached(u)?;
+        }
+        let stage = &self.study().pipeline.stages[self.study().units[u].stage];
+        if stage.export {
+            let bytes = match npy {
+                Some(b) => b,
+                None => self.verified_bytes(u)?,
+            };
+            self.export(u, &bytes)?;
+        }
+        if !self.uses_left.contains_key(&UnitInput::Unit(u)) {
+            self.memory.remove(&UnitInput::Unit(u));
+        }
+        Ok(())
+    }
+
+    fn record_cached(&mut self, u: usize) -> Result<(), UnitFailure> {
+        match self.study().store.lookup(&self.study().keys[u]) {
+            Lookup::Present(record) => {
+                self.out.results.insert(
+                    u,
+                    UnitResult {
+                        record: *record,
+                        computed: false,
+                        seconds: 0.0,
+                        export: None,
+                    },
+                );
+                Ok(())
+            }
+            // Gone or damaged since the plan was made (another process, a disk): recompute.
+            Lookup::Absent | Lookup::Damaged(_) => self.compute(u).map(|_| ()),
+        }
+    }
+
+    /// The NPY bytes of a fresh unit, hash-checked; a damaged object is recomputed.
+    fn verified_bytes(&mut self, u: usize) -> Result<Vec<u8>, UnitFailure> {
+        let key = self.study().keys[u].clone();
+        let record = self.out.results.get(&u).map(|r| r.record.clone());
+        let loaded = match &record {
+            Some(r) if r.stored => self.study().store.load_bytes(&key, r),
+            _ => Err("its values are not stored".into()),
+        };
+        match loaded {
+            Ok(bytes) => Ok(bytes),
+            Err(why) => {
+                self.warn_damaged(u, &why);
+                self.compute(u)
+            }
+        }
+    }
+
+    fn warn_damaged(&mut self, u: usize, why: &str) {
+        self.out.warnings.push((
+            u,
+            format!("the cached result was damaged ({why}); it was recomputed"),
+        ));
+    }
+
+    fn export(&mut self, u: usize, npy: &[u8]) -> Result<(), UnitFailure> {
+        let study = self.ctx.study;
+        let target = ExportTarget {
+            output: &study.pipeline.output,
+            subject: study.subject(u),
+            stage: study.stage_name(u),
+        };
+        let record = match self.out.results.get(&u) {
+            Some(r) => r.record.clone(),
+            None => return Err(self.fail(u, "internal: export before result")),
+        };
+        let file =
+            output::export(&target, &record, npy).map_err(|e| self.fail(u, e.to_string()))?;
+        if let Some(r) = self.out.results.get_mut(&u) {
+            r.export = Some(file);
+        }
+        Ok(())
+    }
+
+    /// The values of an input: memory, then the store, then computing it.
+    fn values(&mut self, input: UnitInput) -> Result<Held, UnitFailure> {
+        if let Some(held) = self.memory.get(&input) {
+            return Ok(held.clone());
+        }
+        let held = match input {
+            UnitInput::Source(s) => self.read_source(s)?,
+            UnitInput::Unit(u) => match self.study().store.load(&self.study().keys[u]) {
+                Ok((array, _)) => (Arc::new(array), Vec::new()),
+                Err(e) => {
+                    if let LoadError::Damaged(why) = e {
+                        self.warn_damaged(u, &why);
+                    }
+                    self.compute(u)?;
+                    match self.memory.get(&input) {
+                        Some(held) => held.clone(),
+                        None => return Err(self.fail(u, "internal: computed value missing")),
+                    }
+                }
+            },
+        };
+        self.memory.insert(input, held.clone());
+        Ok(held)
+    }
+
+    fn read_source(&mut self, s: usize) -> Result<Held, UnitFailure> {
+        let study = self.ctx.study;
+        let source = &study.sources[s];
+        let mut notes = Notes::default();
+        let array = self
+            .ctx
+            .reader
+            .read(&source.path, study.pipeline.events, &mut notes)
+            .map_err(|e| UnitFailure {
+                stage: SOURCE.into(),
+                subject: Some(source.subject.clone()),
+                message: format!("{}: {e}", study.display_path(&source.path)),
+            })?;
+        let warnings = notes
+            .warnings
+            .into_iter()
+            .map(|w| format!("reading {}: {w}", study.display_path(&source.path)))
+            .collect();
+        Ok((Arc::new(array), warnings))
+    }
+
+    /// Run one unit's op, store the result, keep it in memory; returns the NPY bytes.
+    fn compute(&mut self, u: usize) -> Result<Vec<u8>, UnitFailure> {
+        let started = Instant::now();
+        let study = self.ctx.study;
+        let unit = &study.units[u];
+        let mut held = Vec::new();
+        for &input in &unit.inputs {
+            held.push((input, self.values(input)?));
+        }
+        let mut notes = Notes::default();
+        let mut inputs = Vec::new();
+        for (input, (array, warnings)) in &held {
+            notes.warnings.extend(warnings.iter().cloned());
+            let (stage, subject) = match *input {
+                UnitInput::Source(s) => (SOURCE, Some(study.sources[s].subject.as_str())),
+                UnitInput::Unit(i) => (study.stage_name(i), study.subject(i)),
+            };
+            inputs.push(Input {
+                stage,
+                subject,
+                array: array.as_ref(),
+            });
+        }
+        let stage = &study.pipeline.stages[unit.stage];
+        tracing::debug!(stage = %stage.name, subject = ?study.subject(u), "computing");
+        let array = stage
+            .op
+            .run(&stage.params, &inputs, &mut notes)
+            .map_err(|e| self.fail(u, e.to_string()))?;
+        drop(inputs);
+        let npy = npy_bytes(&array.values).map_err(|e| self.fail(u, e.to_string()))?;
+        let fingerprint = &study.fingerprints[u];
+        let record = study
+            .store
+            .put(&array, &npy, &notes, fingerprint, stage.cache)
+            .map_err(|e| self.fail(u, e.to_string()))?;
+        study.store.set_last(&study.last_id(u), fingerprint);
+        self.memory
+            .insert(UnitInput::Unit(u), (Arc::new(array), Vec::new()));
+        let export = self.out.results.get(&u).and_then(|r| r.export.clone());
+        self.out.results.insert(
+            u,
+            UnitResult {
+                record,
+                computed: true,
+                seconds: started.elapsed().as_secs_f64(),
+                export,
+            },
+        );
+        Ok(npy)
+    }
+
+    /// Drop arrays whose last consumer in this chain has run.
+    fn release_inputs(&mut self, u: usize) {
+        for input in &self.ctx.study.units[u].inputs {
+            if let Some(left) = self.uses_left.get_mut(input) {
+                *left = left.saturating_sub(1);
+                if *left == 0 {
+                    self.uses_left.remove(input);
+                    self.memory.remove(input);
+                }
+            }
+        }
+    }
+}

@@ -1,0 +1,150 @@
+//! `inspect PIPELINE STAGE [--subject ID]`: what a cached result looks like — dims, shape,
+//! coordinates, units and a summary of the values — without loading it into another tool.
+
+use std::fmt::Write as _;
+
+use phasewise_stages::{Coord, LabelledArray, Values};
+
+use crate::plan::Status;
+use crate::study::{subject_label, Study};
+
+/// Why a unit cannot be inspected.
+#[derive(Debug, thiserror::Error)]
+pub enum InspectError {
+    /// No such stage.
+    #[error("no stage `{stage}`; the stages are: {known}")]
+    UnknownStage {
+        /// The name given.
+        stage: String,
+        /// The stages.
+        known: String,
+    },
+    /// Several subjects and none chosen.
+    #[error("stage {stage} runs once per subject; choose one with --subject (the subjects are: {known})")]
+    NeedSubject {
+        /// The stage.
+        stage: String,
+        /// The subjects.
+        known: String,
+    },
+    /// The result is not cached (yet).
+    #[error("{stage} ({who}) is not cached: {reason}; run the pipeline first")]
+    NotCached {
+        /// The stage.
+        stage: String,
+        /// Whose.
+        who: String,
+        /// Why.
+        reason: String,
+    },
+}
+
+/// Describe the cached result of `stage` for `subject`.
+pub fn inspect(
+    study: &Study<'_>,
+    stage: &str,
+    subject: Option<&str>,
+) -> Result<String, InspectError> {
+    let Some(stage_index) = study.pipeline.stage_index(stage) else {
+        let known: Vec<&str> = study
+            .pipeline
+            .stages
+            .iter()
+            .map(|s| s.name.as_str())
+            .collect();
+        return Err(InspectError::UnknownStage {
+            stage: stage.into(),
+            known: known.join(", "),
+        });
+    };
+    let candidates: Vec<usize> = (0..study.units.len())
+        .filter(|&u| study.units[u].stage == stage_index)
+        .filter(|&u| subject.is_none() || study.subject(u) == subject)
+        .collect();
+    let unit = match candidates.as_slice() {
+        [one] => *one,
+        _ => {
+            let known: Vec<&str> = study.sources.iter().map(|s| s.subject.as_str()).collect();
+            return Err(InspectError::NeedSubject {
+                stage: stage.into(),
+                known: known.join(", "),
+            });
+        }
+    };
+    let plan = study.plan();
+    let who = subject_label(study.subject(unit));
+    let not_cached = |reason: String| InspectError::NotCached {
+        stage: stage.into(),
+        who: who.clone(),
+        reason,
+    };
+    if let Status::Stale(reason) = &plan.units[unit].status {
+        return Err(not_cached(reason.to_string()));
+    }
+    let (array, _) = study
+        .store
+        .load(&study.keys[unit])
+        .map_err(|e| not_cached(format!("{e:?}")))?;
+    Ok(describe(stage, &who, &study.keys[unit], &array))
+}
+
+/// The text `inspect` prints.
+pub fn describe(stage: &str, who: &str, key: &str, array: &LabelledArray) -> String {
+    let layout = &array.layout;
+    let mut out = String::new();
+    let _ = writeln!(out, "{stage} ({who}), key {key}");
+    let _ = writeln!(
+        out,
+        "dtype {}, shape {:?}, units {}",
+        array.values.dtype(),
+        array.values.shape(),
+        layout.units
+    );
+    for (dim, coord) in layout.dims.iter().zip(&layout.coords) {
+        let _ = writeln!(out, "  {dim} [{}]: {}", coord.len(), coord_summary(coord));
+    }
+    if let Some(rate) = layout.meta.sampling_rate {
+        let _ = writeln!(out, "sampling rate {rate} Hz");
+    }
+    let _ = writeln!(out, "{}", value_summary(&array.values));
+    out
+}
+
+fn coord_summary(coord: &Coord) -> String {
+    let items: Vec<String> = match coord {
+        Coord::Labels(v) => v.clone(),
+        Coord::Numbers(v) => v.iter().map(|x| format!("{x}")).collect(),
+        Coord::Pairs(v) => v.iter().map(|[a, b]| format!("{a}–{b}")).collect(),
+    };
+    if items.len() <= 8 {
+        items.join(", ")
+    } else {
+        format!(
+            "{}, …, {}",
+            items[..3].join(", "),
+            items[items.len() - 3..].join(", ")
+        )
+    }
+}
+
+/// min, max, mean and NaN count (of magnitudes, for complex values), accumulated in f64.
+fn value_summary(values: &Values) -> String {
+    let numbers: Vec<f64> = match values {
+        Values::Real(a) => a.iter().map(|&x| f64::from(x)).collect(),
+        Values::Complex(a) => a.iter().map(|z| f64::from(z.norm())).collect(),
+    };
+    let what = if matches!(values, Values::Complex(_)) {
+        "|values|"
+    } else {
+        "values"
+    };
+    let nan = numbers.iter().filter(|x| x.is_nan()).count();
+    let finite: Vec<f64> = numbers.into_iter().filter(|x| !x.is_nan()).collect();
+    if finite.is_empty() {
+        return format!("{what}: none finite ({nan} NaN)");
+    }
+    let min = finite.iter().copied().fold(f64::INFINITY, f64::min);
+    let max = finite.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let mean = finite.iter().sum::<f64>() / finite.len() as f64;
+    format!("{what}: min {min:e}, max {max:e}, mean {mean:e}, {nan} NaN")
+}

@@ -1,0 +1,381 @@
+//! `manifest.json`: the documented, versioned record of a run (DESIGN §6), and the merge of
+//! per-subject parts.
+//!
+//! Core shape (format version 1):
+//! ```text
+//! { "format": "phasewise-manifest", "format_version": 1,
+//!   "tool": { "name", "version", "revision" }, "platform": { "os", "arch" },
+//!   "pipeline": { "path", "blake3", "name", "overrides", "subjects", "stages" },
+//!   "inputs": [ { "path", "size", "blake3" } ],
+//!   "units": [ { "stage", "subject", "op", "op_version", "params", "key", "inputs",
+//!                "outputs": [ { "file", "blake3", "shape", "dtype" } ],
+//!                "status": "computed" | "cached", "seconds" } ],
+//!   "epochs": { subject or "group": { stage: record } }, "warnings": [ { "stage", "subject",
+//!   "message" } ], "started", "finished" }
+//! ```
+//! Paths: `pipeline.path` is relative to the manifest's folder, input paths relative to the
+//! pipeline's folder, output files relative to the output folder — so an archived study can
+//! be verified wherever it is unpacked. `pipeline.subjects` is `null` for a full run and the
+//! selection for a `run --subject` part. Ordering is deterministic: units in topological stage
+//! order then subject, inputs by path, warnings in unit order.
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use serde::{Deserialize, Serialize};
+use serde_json::Value;
+
+use crate::exec::{Outcome, Warning};
+use crate::paths::relative_to;
+use crate::study::Study;
+
+/// `format` of a manifest.
+pub const FORMAT: &str = "phasewise-manifest";
+/// `format_version` this phasewise writes and reads.
+pub const FORMAT_VERSION: u32 = 1;
+
+/// The manifest.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Manifest {
+    /// [`FORMAT`].
+    pub format: String,
+    /// [`FORMAT_VERSION`].
+    pub format_version: u32,
+    /// The program that wrote it.
+    pub tool: Tool,
+    /// Where it ran.
+    pub platform: Platform,
+    /// The pipeline.
+    pub pipeline: PipelineInfo,
+    /// Every input file.
+    pub inputs: Vec<InputFile>,
+    /// Every unit.
+    pub units: Vec<UnitRecord>,
+    /// Epoch counts: subject (or `group`) → stage → record.
+    pub epochs: BTreeMap<String, BTreeMap<String, Value>>,
+    /// Warnings.
+    pub warnings: Vec<Warning>,
+    /// Start time (RFC 3339, UTC).
+    pub started: String,
+    /// End time.
+    pub finished: String,
+}
+
+/// The program.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Tool {
+    /// `phasewise`.
+    pub name: String,
+    /// The crate version.
+    pub version: String,
+    /// The source revision (`git rev-parse HEAD` at build time, or `unknown`).
+    pub revision: String,
+}
+
+/// The machine.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Platform {
+    /// Operating system.
+    pub os: String,
+    /// CPU architecture.
+    pub arch: String,
+}
+
+/// The pipeline that ran.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct PipelineInfo {
+    /// The pipeline file, relative to the manifest's folder.
+    pub path: String,
+    /// Its blake3.
+    pub blake3: String,
+    /// Its `name`.
+    pub name: String,
+    /// The `--set` arguments.
+    pub overrides: Vec<String>,
+    /// The `--subject` selection, `None` for all subjects.
+    pub subjects: Option<Vec<String>>,
+    /// Stage names in topological order (used to order merged parts).
+    pub stages: Vec<String>,
+}
+
+/// One input file.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct InputFile {
+    /// Relative to the pipeline's folder.
+    pub path: String,
+    /// Size in bytes.
+    pub size: u64,
+    /// blake3 of its bytes.
+    pub blake3: String,
+}
+
+/// One unit.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct UnitRecord {
+    /// The stage.
+    pub stage: String,
+    /// The subject (`null` for group units).
+    pub subject: Option<String>,
+    /// The op.
+    pub op: String,
+    /// The op's version.
+    pub op_version: u32,
+    /// Effective params.
+    pub params: Value,
+    /// The unit's key.
+    pub key: String,
+    /// The input keys.
+    pub inputs: Vec<String>,
+    /// The output.
+    pub outputs: Vec<OutputRecord>,
+    /// `computed` or `cached`.
+    pub status: String,
+    /// Seconds spent in this run.
+    pub seconds: f64,
+}
+
+/// One output array.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct OutputRecord {
+    /// The exported NPY relative to the output folder, `null` when not exported.
+    pub file: Option<String>,
+    /// blake3 of the NPY bytes.
+    pub blake3: String,
+    /// Shape.
+    pub shape: Vec<usize>,
+    /// numpy dtype (`<f4`, `<c8`).
+    pub dtype: String,
+}
+
+/// The tool record of this build.
+pub fn this_tool() -> Tool {
+    Tool {
+        name: env!("CARGO_PKG_NAME").into(),
+        version: env!("CARGO_PKG_VERSION").into(),
+        revision: option_env!("PHASEWISE_REVISION")
+            .unwrap_or("unknown")
+            .into(),
+    }
+}
+
+/// Build the manifest of a finished run.
+pub fn build(study: &Study<'_>, outcome: &Outcome, started: &str, finished: &str) -> Manifest {
+    let pipeline = &study.pipeline;
+    let path = relative_to(&pipeline.file, &pipeline.output)
+        .unwrap_or_else(|| pipeline.file.clone())
+        .to_string_lossy()
+        .into_owned();
+    let mut inputs: Vec<InputFile> = study
+        .source_files
+        .iter()
+        .flatten()
+        .map(|f| InputFile {
+            path: study.display_path(&f.path),
+            size: f.size,
+            blake3: f.blake3.clone(),
+        })
+        .collect();
+    inputs.sort_by(|a, b| a.path.cmp(&b.path));
+    let units = (0..study.units.len())
+        .map(|u| unit_record(study, outcome, u))
+        .collect();
+    Manifest {
+        format: FORMAT.into(),
+        format_version: FORMAT_VERSION,
+        tool: this_tool(),
+        platform: Platform {
+            os: std::env::consts::OS.into(),
+            arch: std::env::consts::ARCH.into(),
+        },
+        pipeline: PipelineInfo {
+            path,
+            blake3: pipeline.file_blake3.clone(),
+            name: pipeline.name.clone(),
+            overrides: pipeline.overrides.clone(),
+            subjects: (!study.selection.is_empty()).then(|| study.selection.clone()),
+            stages: pipeline.stages.iter().map(|s| s.name.clone()).collect(),
+        },
+        inputs,
+        units,
+        epochs: epochs(study, outcome),
+        warnings: warnings(study, outcome),
+        started: started.into(),
+        finished: finished.into(),
+    }
+}
+
+fn unit_record(study: &Study<'_>, outcome: &Outcome, u: usize) -> UnitRecord {
+    let fp = &study.fingerprints[u];
+    let result = &outcome.results[u];
+    UnitRecord {
+        stage: study.stage_name(u).into(),
+        subject: study.subject(u).map(str::to_string),
+        op: fp.op.clone(),
+        op_version: fp.op_version,
+        params: fp.params.clone(),
+        key: study.keys[u].clone(),
+        inputs: fp.inputs.iter().map(|i| i.key.clone()).collect(),
+        outputs: vec![OutputRecord {
+            file: result.export.clone(),
+            blake3: result.record.blake3.clone(),
+            shape: result.record.shape.clone(),
+            dtype: result.record.dtype.clone(),
+        }],
+        status: if result.computed {
+            "computed"
+        } else {
+            "cached"
+        }
+        .into(),
+        seconds: result.seconds,
+    }
+}
+
+fn epochs(study: &Study<'_>, outcome: &Outcome) -> BTreeMap<String, BTreeMap<String, Value>> {
+    let mut out: BTreeMap<String, BTreeMap<String, Value>> = BTreeMap::new();
+    for (u, result) in outcome.results.iter().enumerate() {
+        if let Some(record) = result.record.notes.records.get("epochs") {
+            let who = study.subject(u).unwrap_or("group").to_string();
+            out.entry(who)
+                .or_default()
+                .insert(study.stage_name(u).into(), record.clone());
+        }
+    }
+    out
+}
+
+/// Warnings of every unit's notes (cached ones included), then the executor's, in unit order.
+fn warnings(study: &Study<'_>, outcome: &Outcome) -> Vec<Warning> {
+    let mut out = Vec::new();
+    for (u, result) in outcome.results.iter().enumerate() {
+        for message in &result.record.notes.warnings {
+            out.push(Warning {
+                stage: study.stage_name(u).into(),
+                subject: study.subject(u).map(str::to_string),
+                message: message.clone(),
+            });
+        }
+        let stage = study.stage_name(u);
+        let subject = study.subject(u);
+        out.extend(
+            outcome
+                .warnings
+                .iter()
+                .filter(|w| w.stage == stage && w.subject.as_deref() == subject)
+                .cloned(),
+        );
+    }
+    out
+}
+
+/// Where a run writes its manifest: `manifest.json`, or `manifest.parts/<subjects>.json` for a
+/// `run --subject` part (so that parallel parts never overwrite each other).
+pub fn path_for(output: &Path, selection: &[String]) -> std::path::PathBuf {
+    if selection.is_empty() {
+        output.join("manifest.json")
+    } else {
+        output
+            .join("manifest.parts")
+            .join(format!("{}.json", selection.join("+")))
+    }
+}
+
+/// Read a manifest, checking its format and version.
+pub fn read(path: &Path) -> Result<Manifest, String> {
+    let bytes = std::fs::read(path).map_err(|e| format!("cannot read {}: {e}", path.display()))?;
+    let value: Value = serde_json::from_slice(&bytes)
+        .map_err(|e| format!("{} is not valid JSON: {e}", path.display()))?;
+    if value.get("format").and_then(Value::as_str) != Some(FORMAT)
+        || value.get("format_version").and_then(Value::as_u64) != Some(u64::from(FORMAT_VERSION))
+    {
+        return Err(format!(
+            "{} is not a phasewise manifest of format version {FORMAT_VERSION}",
+            path.display()
+        ));
+    }
+    serde_json::from_value(value).map_err(|e| format!("{}: {e}", path.display()))
+}
+
+/// The manifest as written: pretty JSON with a final newline.
+pub fn to_bytes(manifest: &Manifest) -> Vec<u8> {
+    let mut bytes = serde_json::to_vec_pretty(manifest).unwrap_or_default();
+    bytes.push(b'\n');
+    bytes
+}
+
+/// Merge per-subject parts (and a part holding the group units) into one manifest, as a run on
+/// one machine would have written it: units in the pipeline's stage order then subject, each
+/// unit taken from the part that computed it, inputs by path, times spanning all parts.
+pub fn merge(parts: &[Manifest]) -> Result<Manifest, String> {
+    let first = parts.first().ok_or("no manifest parts to merge")?;
+    for part in parts {
+        if part.pipeline.blake3 != first.pipeline.blake3
+            || part.pipeline.overrides != first.pipeline.overrides
+        {
+            return Err("the parts come from different pipelines or overrides".into());
+        }
+    }
+    let stage_rank = |stage: &str| first.pipeline.stages.iter().position(|s| s == stage);
+    let mut units: BTreeMap<(Option<usize>, Option<String>), UnitRecord> = BTreeMap::new();
+    let mut inputs: BTreeMap<String, InputFile> = BTreeMap::new();
+    let mut epochs = first.epochs.clone();
+    for part in parts {
+        for unit in &part.units {
+            let slot = (stage_rank(&unit.stage), unit.subject.clone());
+            let replace = units
+                .get(&slot)
+                .is_none_or(|u| u.status != "computed" && unit.status == "computed");
+            if replace {
+                units.insert(slot, unit.clone());
+            }
+        }
+        for input in &part.inputs {
+            inputs.insert(input.path.clone(), input.clone());
+        }
+        for (who, stages) in &part.epochs {
+            epochs
+                .entry(who.clone())
+                .or_default()
+                .extend(stages.clone());
+        }
+    }
+    // Group units (subject None) sort before subjects in a BTreeMap; a one-machine run lists
+    // them by stage order, and group stages come after the stages feeding them.
+    let mut ordered: Vec<UnitRecord> = units.into_values().collect();
+    ordered.sort_by_key(|u| (stage_rank(&u.stage), u.subject.is_none(), u.subject.clone()));
+    let mut merged = first.clone();
+    merged.pipeline.subjects = None;
+    merged.warnings = merged_warnings(parts, &ordered);
+    merged.units = ordered;
+    merged.inputs = inputs.into_values().collect();
+    merged.epochs = epochs;
+    merged.started = parts
+        .iter()
+        .map(|p| p.started.clone())
+        .min()
+        .unwrap_or_default();
+    merged.finished = parts
+        .iter()
+        .map(|p| p.finished.clone())
+        .max()
+        .unwrap_or_default();
+    Ok(merged)
+}
+
+fn merged_warnings(parts: &[Manifest], units: &[UnitRecord]) -> Vec<Warning> {
+    let mut out: Vec<Warning> = Vec::new();
+    for unit in units {
+        for part in parts {
+            let mine: Vec<&Warning> = part
+                .warnings
+                .iter()
+                .filter(|w| w.stage == unit.stage && w.subject == unit.subject)
+                .collect();
+            if !mine.is_empty() {
+                out.extend(mine.into_iter().cloned());
+                break;
+            }
+        }
+    }
+    out
+}

@@ -1,0 +1,531 @@
+//! Validation of a raw pipeline into a [`ResolvedPipeline`], the form the planner and executor
+//! take: ops looked up, params replaced by each op's effective params, inputs checked, stages in
+//! topological order, group stages marked, paths made absolute.
+//!
+//! Path rules (documented in DEVELOPERS.md): `data.recordings` is a glob relative to the pipeline
+//! file and may point anywhere (data are only read). `output` must be relative to the pipeline
+//! file; after `.`/`..` are resolved it may climb at most one level above the pipeline's folder
+//! (`../results/x` from `pipelines/`), so a pipeline cannot write into arbitrary places. Stage
+//! names become file names, so they are restricted to letters, digits, `-` and `_`.
+
+use std::path::{Component, Path, PathBuf};
+
+use phasewise_stages::io::EventSource;
+use phasewise_stages::{DynOp, StageError};
+use serde_json::Value;
+
+use super::raw::{self, Collector, Override, RawPipeline, RawStage};
+use super::yaml::{self, split_path, Node, NodeKind, Origin, PathStep};
+use super::{Diagnostic, PipelineError};
+use crate::graph::StageGraph;
+
+/// The name by which stages refer to the data source.
+pub const SOURCE: &str = "recordings";
+
+/// A validated pipeline.
+#[derive(Clone)]
+pub struct ResolvedPipeline<'o> {
+    /// The pipeline file as given.
+    pub file: PathBuf,
+    /// Its folder (paths in the file are relative to it).
+    pub dir: PathBuf,
+    /// blake3 of the file's bytes.
+    pub file_blake3: String,
+    /// The pipeline's name (the file stem when the file gives none).
+    pub name: String,
+    /// The recordings glob, relative to `dir`.
+    pub recordings: String,
+    /// Where events come from.
+    pub events: EventSource,
+    /// The output folder.
+    pub output: PathBuf,
+    /// Reserved for the report issue.
+    pub report: bool,
+    /// The `--set` arguments as given.
+    pub overrides: Vec<String>,
+    /// The stages in topological order.
+    pub stages: Vec<ResolvedStage<'o>>,
+}
+
+/// A validated stage.
+#[derive(Clone)]
+pub struct ResolvedStage<'o> {
+    /// The stage's name.
+    pub name: String,
+    /// The op.
+    pub op: &'o dyn DynOp,
+    /// Effective params (the op's defaults filled in): what is hashed into keys.
+    pub params: Value,
+    /// Input stage indices into `ResolvedPipeline::stages`; `None` is the data source.
+    pub inputs: Vec<Option<usize>>,
+    /// Consumers (indices).
+    pub consumers: Vec<usize>,
+    /// Whether outputs are stored in the cache.
+    pub cache: bool,
+    /// Whether outputs are exported (asked for, or consumed by nothing).
+    pub export: bool,
+    /// True when the op joins subjects.
+    pub joins: bool,
+    /// True for a group stage (joins, or is downstream of one).
+    pub group: bool,
+    /// The params as written (with overrides), to point errors at lines.
+    pub params_node: Node,
+}
+
+impl ResolvedPipeline<'_> {
+    /// The stage called `name`.
+    pub fn stage_index(&self, name: &str) -> Option<usize> {
+        self.stages.iter().position(|s| s.name == name)
+    }
+
+    /// A diagnostic for an op's error about stage `stage`, pointing at the param's line.
+    pub fn stage_diagnostic(&self, stage: usize, error: &StageError) -> Diagnostic {
+        let overrides: Vec<Override> = raw::parse_overrides(&self.overrides).0;
+        let mut c = Collector::new(&self.file, &overrides);
+        let s = &self.stages[stage];
+        report_stage_error(&mut c, &s.name, &s.params_node, error);
+        c.diagnostics.pop().unwrap_or_else(|| Diagnostic {
+            file: Some(self.file.clone()),
+            line: 0,
+            col: 0,
+            field: format!("stages.{}", s.name),
+            message: error.to_string(),
+        })
+    }
+}
+
+/// Load, check and resolve a pipeline file with `--set` overrides against the given ops.
+pub fn load<'o>(
+    file: &Path,
+    overrides: &[String],
+    ops: &[&'o dyn DynOp],
+) -> Result<ResolvedPipeline<'o>, PipelineError> {
+    let bytes = std::fs::read(file).map_err(|source| PipelineError::Read {
+        path: file.to_path_buf(),
+        source,
+    })?;
+    let (parsed, mut problems) = raw::parse_overrides(overrides);
+    let text = String::from_utf8_lossy(&bytes);
+    let root = yaml::parse(&text, |line, col| Origin::File { line, col }).map_err(|e| {
+        PipelineError::Invalid(vec![Diagnostic {
+            file: Some(file.to_path_buf()),
+            line: e.line,
+            col: e.col,
+            field: "(YAML)".into(),
+            message: e.message,
+        }])
+    })?;
+    let mut c = Collector::new(file, &parsed);
+    let mut raw = raw::read(&root, file, &mut c);
+    raw::apply_overrides(&mut raw, &parsed, &mut c);
+    let resolved = resolve(&raw, &bytes, overrides, ops, &mut c);
+    problems.append(&mut c.diagnostics);
+    match resolved {
+        Some(p) if problems.is_empty() => Ok(p),
+        _ => Err(PipelineError::Invalid(problems)),
+    }
+}
+
+fn resolve<'o>(
+    raw: &RawPipeline,
+    bytes: &[u8],
+    overrides: &[String],
+    ops: &[&'o dyn DynOp],
+    c: &mut Collector<'_>,
+) -> Option<ResolvedPipeline<'o>> {
+    let dir = raw.file.parent().map(Path::to_path_buf).unwrap_or_default();
+    let recordings = required(&raw.recordings, "data.recordings", raw.stages_origin, c);
+    let events = events(raw, c);
+    let output = output_path(raw, &dir, c);
+    let stages = resolve_stages(raw, ops, c);
+    if raw.stages.is_empty() {
+        c.at(raw.stages_origin, "stages", "expected at least one stage");
+    }
+    let name = raw.name.clone().unwrap_or_else(|| {
+        raw.file
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_default()
+    });
+    Some(ResolvedPipeline {
+        file: raw.file.clone(),
+        dir,
+        file_blake3: blake3::hash(bytes).to_hex().to_string(),
+        name,
+        recordings: recordings?,
+        events: events?,
+        output: output?,
+        report: raw.report,
+        overrides: overrides.to_vec(),
+        stages: stages?,
+    })
+}
+
+fn required(
+    value: &Option<raw::Spanned<String>>,
+    field: &str,
+    fallback: Origin,
+    c: &mut Collector<'_>,
+) -> Option<String> {
+    if value.is_none() {
+        let origin = match fallback {
+            Origin::File { .. } => Origin::File { line: 1, col: 1 },
+            other => other,
+        };
+        c.at(origin, field, "missing; expected a value here");
+    }
+    value.as_ref().map(|v| v.value.clone())
+}
+
+fn events(raw: &RawPipeline, c: &mut Collector<'_>) -> Option<EventSource> {
+    let Some(events) = &raw.events else {
+        return Some(EventSource::Sidecar);
+    };
+    match events.value.as_str() {
+        "sidecar" => Some(EventSource::Sidecar),
+        "annotations" => Some(EventSource::Annotations),
+        other => {
+            c.at(
+                events.origin,
+                "data.events",
+                format!("expected `sidecar` or `annotations`, found `{other}`"),
+            );
+            None
+        }
+    }
+}
+
+fn output_path(raw: &RawPipeline, dir: &Path, c: &mut Collector<'_>) -> Option<PathBuf> {
+    let written = required(&raw.output, "output", raw.stages_origin, c)?;
+    let origin = raw.output.as_ref().map_or(raw.stages_origin, |o| o.origin);
+    match check_output(&written) {
+        Ok(relative) => Some(dir.join(relative)),
+        Err(message) => {
+            c.at(origin, "output", message);
+            None
+        }
+    }
+}
+
+/// Normalise an output path lexically and check that it stays near the pipeline file.
+pub fn check_output(written: &str) -> Result<PathBuf, String> {
+    let path = Path::new(written);
+    if path.is_absolute() {
+        return Err(format!(
+            "expected a path relative to the pipeline file, found the absolute path `{written}`"
+        ));
+    }
+    let mut kept: Vec<String> = Vec::new();
+    let mut ups = 0usize;
+    for component in path.components() {
+        match component {
+            Component::Normal(part) => kept.push(part.to_string_lossy().into_owned()),
+            Component::ParentDir if kept.pop().is_none() => ups += 1,
+            _ => {}
+        }
+    }
+    if ups > 1 {
+        return Err(format!(
+            "`{written}` climbs {ups} levels above the pipeline's folder; at most one (`../results/x`) is allowed"
+        ));
+    }
+    if kept.is_empty() {
+        return Err(format!(
+            "`{written}` is the pipeline's folder or its parent; expected a folder of its own"
+        ));
+    }
+    let mut out: PathBuf = std::iter::repeat_n("..", ups).collect();
+    out.extend(kept);
+    Ok(out)
+}
+
+/// A stage checked on its own, before the graph is known.
+struct Partial<'o> {
+    op: Option<&'o dyn DynOp>,
+    params: Option<Value>,
+    inputs: Vec<Option<usize>>,
+}
+
+fn resolve_stages<'o>(
+    raw: &RawPipeline,
+    ops: &[&'o dyn DynOp],
+    c: &mut Collector<'_>,
+) -> Option<Vec<ResolvedStage<'o>>> {
+    let mut ok = true;
+    let mut partial: Vec<Partial<'o>> = Vec::new();
+    for stage in &raw.stages {
+        ok &= check_name(stage, c);
+        let op = find_op(stage, ops, c);
+        let params = op.and_then(|op| resolve_params(stage, op, c));
+        let inputs = resolve_inputs(stage, raw, c);
+        ok &= op.is_some() && params.is_some() && inputs.is_some();
+        partial.push(Partial {
+            op,
+            params,
+            inputs: inputs.unwrap_or_default(),
+        });
+    }
+    let edges: Vec<Vec<usize>> = partial
+        .iter()
+        .map(|p| p.inputs.iter().flatten().copied().collect())
+        .collect();
+    let graph = match StageGraph::build(&edges) {
+        Ok(g) => g,
+        Err(cycle) => {
+            report_cycle(raw, &cycle.0, c);
+            return None;
+        }
+    };
+    if !ok {
+        return None;
+    }
+    finish_stages(raw, partial, &graph, c)
+}
+
+/// Put stages in topological order, renumber inputs, mark group and exported stages.
+fn finish_stages<'o>(
+    raw: &RawPipeline,
+    partial: Vec<Partial<'o>>,
+    graph: &StageGraph,
+    c: &mut Collector<'_>,
+) -> Option<Vec<ResolvedStage<'o>>> {
+    let mut position = vec![0; partial.len()];
+    for (new, &old) in graph.order.iter().enumerate() {
+        position[old] = new;
+    }
+    let mut stages: Vec<ResolvedStage<'o>> = Vec::new();
+    let mut ok = true;
+    for &old in &graph.order {
+        let Partial { op, params, inputs } = &partial[old];
+        let (op, params) = (op.as_ref()?, params.clone()?);
+        let r = &raw.stages[old];
+        let joins = match op.joins_subjects(&params) {
+            Ok(j) => j,
+            Err(e) => {
+                report_stage_error(c, &r.name.value, &r.params, &e);
+                ok = false;
+                false
+            }
+        };
+        let inputs: Vec<Option<usize>> = inputs.iter().map(|i| i.map(|o| position[o])).collect();
+        let group = joins || inputs.iter().flatten().any(|&i| stages[i].group);
+        let consumers: Vec<usize> = graph.consumers[old].iter().map(|&c| position[c]).collect();
+        let export = r.export || consumers.is_empty();
+        if !r.cache && export {
+            c.at(
+                r.name.origin,
+                format!("stages.{}.cache", r.name.value),
+                "a stage with `cache: false` must feed another stage and not be exported (its output is never stored)",
+            );
+            ok = false;
+        }
+        stages.push(ResolvedStage {
+            name: r.name.value.clone(),
+            op: *op,
+            params,
+            inputs,
+            consumers,
+            cache: r.cache,
+            export,
+            joins,
+            group,
+            params_node: r.params.clone(),
+        });
+    }
+    ok.then_some(stages)
+}
+
+fn check_name(stage: &RawStage, c: &mut Collector<'_>) -> bool {
+    let name = &stage.name.value;
+    let safe = !name.is_empty()
+        && name
+            .chars()
+            .all(|ch| ch.is_ascii_alphanumeric() || ch == '-' || ch == '_')
+        && name
+            .chars()
+            .next()
+            .is_some_and(|ch| ch.is_ascii_alphanumeric());
+    if !safe {
+        c.at(
+            stage.name.origin,
+            format!("stages.{name}"),
+            "a stage name becomes a file name: expected letters, digits, `-` and `_`, starting with a letter or digit",
+        );
+    } else if name == SOURCE {
+        c.at(
+            stage.name.origin,
+            format!("stages.{name}"),
+            format!("`{SOURCE}` names the data source; choose another stage name"),
+        );
+        return false;
+    }
+    safe
+}
+
+fn find_op<'o>(
+    stage: &RawStage,
+    ops: &[&'o dyn DynOp],
+    c: &mut Collector<'_>,
+) -> Option<&'o dyn DynOp> {
+    let field = format!("stages.{}.op", stage.name.value);
+    let Some(op) = &stage.op else {
+        c.at(
+            stage.name.origin,
+            field,
+            "missing; expected the name of an op",
+        );
+        return None;
+    };
+    let found = ops.iter().find(|o| o.name() == op.value).copied();
+    if found.is_none() {
+        let names: Vec<&str> = ops.iter().map(|o| o.name()).collect();
+        c.at(
+            op.origin,
+            field,
+            format!(
+                "unknown op `{}`; the ops are: {}",
+                op.value,
+                names.join(", ")
+            ),
+        );
+    }
+    found
+}
+
+fn resolve_params(stage: &RawStage, op: &dyn DynOp, c: &mut Collector<'_>) -> Option<Value> {
+    match op.resolve(&stage.params.to_json()) {
+        Ok(v) => Some(v),
+        Err(e) => {
+            report_stage_error(c, &stage.name.value, &stage.params, &e);
+            None
+        }
+    }
+}
+
+/// Point an op's error at the line of the param it names (or of the params mapping).
+fn report_stage_error(c: &mut Collector<'_>, stage: &str, params: &Node, error: &StageError) {
+    match error {
+        StageError::Param { field, message } => {
+            let mut steps = split_path(field);
+            if let Some(unknown) = unknown_field(message) {
+                steps.push(PathStep::Key(unknown));
+            }
+            let node = deepest_key_or_value(params, &steps);
+            let dotted = if field.is_empty() {
+                format!("stages.{stage}.params")
+            } else {
+                format!("stages.{stage}.params.{field}")
+            };
+            c.at(node, dotted, message.clone());
+        }
+        other => c.at(params.origin, format!("stages.{stage}"), other.to_string()),
+    }
+}
+
+/// The origin of the deepest node on `steps`; for a final key, the key itself rather than its value.
+fn deepest_key_or_value(params: &Node, steps: &[PathStep]) -> Origin {
+    if let Some((PathStep::Key(last), parent)) = steps.split_last() {
+        let parent_node = params.deepest(parent);
+        if let NodeKind::Map(entries) = &parent_node.kind {
+            if let Some((k, v)) = entries.iter().find(|(k, _)| k.as_str() == Some(last)) {
+                return if matches!(v.origin, Origin::Override(_)) {
+                    v.origin
+                } else {
+                    k.origin
+                };
+            }
+        }
+    }
+    params.deepest(steps).origin
+}
+
+/// serde's message for a key that `deny_unknown_fields` rejects: "unknown field `x`, expected …".
+fn unknown_field(message: &str) -> Option<String> {
+    let rest = message.strip_prefix("unknown field `")?;
+    Some(rest[..rest.find('`')?].to_string())
+}
+
+fn resolve_inputs(
+    stage: &RawStage,
+    raw: &RawPipeline,
+    c: &mut Collector<'_>,
+) -> Option<Vec<Option<usize>>> {
+    let field = format!("stages.{}.input", stage.name.value);
+    if stage.inputs.is_empty() {
+        c.at(
+            stage.name.origin,
+            field,
+            format!("missing; expected `{SOURCE}` or the name of another stage"),
+        );
+        return None;
+    }
+    let mut inputs = Vec::new();
+    let mut ok = true;
+    for input in &stage.inputs {
+        if input.value == SOURCE {
+            inputs.push(None);
+        } else if let Some(i) = raw.stages.iter().position(|s| s.name.value == input.value) {
+            inputs.push(Some(i));
+        } else {
+            let names: Vec<&str> = std::iter::once(SOURCE)
+                .chain(raw.stages.iter().map(|s| s.name.value.as_str()))
+                .collect();
+            c.at(
+                input.origin,
+                field.clone(),
+                format!(
+                    "unknown stage `{}`; expected one of: {}",
+                    input.value,
+                    names.join(", ")
+                ),
+            );
+            ok = false;
+        }
+    }
+    ok.then_some(inputs)
+}
+
+fn report_cycle(raw: &RawPipeline, cycle: &[usize], c: &mut Collector<'_>) {
+    let names: Vec<&str> = cycle
+        .iter()
+        .map(|&i| raw.stages[i].name.value.as_str())
+        .collect();
+    let Some(&first) = cycle.first() else {
+        return;
+    };
+    let stage = &raw.stages[first];
+    c.at(
+        stage.name.origin,
+        format!("stages.{}.input", stage.name.value),
+        format!("the stages form a cycle: {}", names.join(" → ")),
+    );
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn output_paths_may_climb_one_level_only() {
+        assert_eq!(
+            check_output("../results/x").unwrap(),
+            PathBuf::from("../results/x")
+        );
+        assert_eq!(
+            check_output("out/./a/../b").unwrap(),
+            PathBuf::from("out/b")
+        );
+        assert!(check_output("../../etc").is_err());
+        assert!(check_output("/tmp/x").is_err());
+        assert!(check_output("a/..").is_err());
+    }
+
+    #[test]
+    fn unknown_field_names_are_taken_from_serde_messages() {
+        assert_eq!(
+            unknown_field("unknown field `cycels`, expected one of `a`, `b`").as_deref(),
+            Some("cycels")
+        );
+        assert_eq!(unknown_field("invalid type"), None);
+    }
+}

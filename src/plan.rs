@@ -1,0 +1,418 @@
+//! The run plan: for every unit, fresh or stale, and why — pure data, decided before anything runs.
+//!
+//! Freshness is decided by the key alone (is an intact object stored under it?). The *reason* for
+//! a stale unit is found by comparing its current fingerprint with the one last computed for the
+//! same stage × subject, field by field in a fixed order: op version, params (the first changed
+//! param in sorted order, old → new), inputs (a changed source file, or an upstream stage).
+//! Root causes are kept apart from cascades: a unit whose only difference is an input key of a
+//! stale upstream unit is [`Reason::Upstream`]. When nothing explains the difference (no record,
+//! pruned cache) the reason is [`Reason::NotCached`]. Every path fails toward recomputing.
+
+use std::fmt;
+
+use serde::{Deserialize, Serialize};
+use serde_json::Value;
+
+use crate::key::{canonical_json, Fingerprint};
+use crate::pipeline::SOURCE;
+
+/// Why a unit must run.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(tag = "reason", rename_all = "snake_case")]
+pub enum Reason {
+    /// The op's version changed.
+    OpVersionChanged {
+        /// The version of the last computation.
+        old: u32,
+        /// The version now.
+        new: u32,
+    },
+    /// A param changed.
+    ParamChanged {
+        /// Dotted path of the param.
+        name: String,
+        /// Its old value (canonical JSON; `absent` when it was not there).
+        old: String,
+        /// Its new value.
+        new: String,
+    },
+    /// A file of the subject's recording changed.
+    InputFileChanged {
+        /// The file.
+        path: String,
+    },
+    /// An upstream stage is stale (a cascade, not a root cause).
+    Upstream {
+        /// The upstream stage.
+        stage: String,
+    },
+    /// Nothing is cached under the key and no earlier record explains why.
+    NotCached,
+    /// The cached object is damaged.
+    Damaged {
+        /// What is wrong with it.
+        why: String,
+    },
+    /// A `cache: false` unit whose consumer must run needs its values recomputed.
+    NotStored {
+        /// The consumer.
+        consumer: String,
+    },
+}
+
+impl Reason {
+    /// True for reasons that are consequences of another unit's change.
+    pub fn is_cascade(&self) -> bool {
+        matches!(self, Reason::Upstream { .. } | Reason::NotStored { .. })
+    }
+}
+
+impl fmt::Display for Reason {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Reason::OpVersionChanged { old, new } => write!(f, "op version changed: {old} → {new}"),
+            Reason::ParamChanged { name, old, new } => {
+                write!(f, "param {name} changed: {old} → {new}")
+            }
+            Reason::InputFileChanged { path } => write!(f, "input file changed: {path}"),
+            Reason::Upstream { stage } => write!(f, "upstream {stage} changed"),
+            Reason::NotCached => write!(f, "not cached"),
+            Reason::Damaged { why } => write!(f, "cached object damaged: {why}"),
+            Reason::NotStored { consumer } => {
+                write!(f, "not stored (cache: false); {consumer} needs it")
+            }
+        }
+    }
+}
+
+/// Fresh or stale.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(tag = "status", rename_all = "snake_case")]
+pub enum Status {
+    /// An intact result is cached under the unit's key.
+    Fresh,
+    /// The unit must run.
+    Stale(Reason),
+}
+
+/// What the store holds for a unit's key.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum Stored {
+    /// An object (or, for `cache: false`, its record).
+    Present,
+    /// Nothing.
+    Absent,
+    /// Something untrustworthy.
+    Damaged(String),
+}
+
+/// Everything the planner knows about one unit.
+#[derive(Clone, Debug, PartialEq)]
+pub struct UnitFacts {
+    /// Stage name.
+    pub stage: String,
+    /// Subject, `None` for group units.
+    pub subject: Option<String>,
+    /// The current fingerprint.
+    pub fingerprint: Fingerprint,
+    /// What the store holds under its key.
+    pub stored: Stored,
+    /// The fingerprint last computed for this stage × subject.
+    pub last: Option<Fingerprint>,
+    /// Files of the subject's recording whose hash differs from the last recorded one.
+    pub changed_files: Vec<String>,
+    /// Indices (into the same list) of the units consuming this one.
+    pub consumers: Vec<usize>,
+    /// False for `cache: false` stages.
+    pub cache: bool,
+}
+
+/// One line of the plan.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct UnitPlan {
+    /// Stage name.
+    pub stage: String,
+    /// Subject.
+    pub subject: Option<String>,
+    /// The unit's key.
+    pub key: String,
+    /// Fresh or stale, and why.
+    #[serde(flatten)]
+    pub status: Status,
+}
+
+impl UnitPlan {
+    /// `fresh`, or the reason the unit is stale.
+    pub fn status_line(&self) -> String {
+        match &self.status {
+            Status::Fresh => "fresh".into(),
+            Status::Stale(reason) => reason.to_string(),
+        }
+    }
+}
+
+/// The plan: one entry per unit, in the units' order.
+#[derive(Clone, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Plan {
+    /// The units.
+    pub units: Vec<UnitPlan>,
+}
+
+impl Plan {
+    /// Decide every unit (units must come in topological order).
+    pub fn decide(facts: &[UnitFacts]) -> Plan {
+        let mut statuses: Vec<Status> = facts.iter().map(own_status).collect();
+        // A unit without a stored value whose consumer runs must run as well: walk backwards so
+        // that chains of `cache: false` stages propagate.
+        for i in (0..facts.len()).rev() {
+            if facts[i].cache || statuses[i] != Status::Fresh {
+                continue;
+            }
+            let stale_consumer = facts[i]
+                .consumers
+                .iter()
+                .find(|&&c| statuses[c] != Status::Fresh);
+            if let Some(&c) = stale_consumer {
+                statuses[i] = Status::Stale(Reason::NotStored {
+                    consumer: facts[c].stage.clone(),
+                });
+            }
+        }
+        let units = facts
+            .iter()
+            .zip(statuses)
+            .map(|(f, status)| UnitPlan {
+                stage: f.stage.clone(),
+                subject: f.subject.clone(),
+                key: f.fingerprint.key(),
+                status,
+            })
+            .collect();
+        Plan { units }
+    }
+
+    /// Number of stale units.
+    pub fn stale_count(&self) -> usize {
+        self.units
+            .iter()
+            .filter(|u| u.status != Status::Fresh)
+            .count()
+    }
+}
+
+fn own_status(facts: &UnitFacts) -> Status {
+    match &facts.stored {
+        Stored::Present => Status::Fresh,
+        Stored::Damaged(why) => Status::Stale(Reason::Damaged { why: why.clone() }),
+        Stored::Absent => Status::Stale(explain(facts)),
+    }
+}
+
+/// Why the current fingerprint differs from the last one, in cargo's fixed order of fields.
+pub fn explain(facts: &UnitFacts) -> Reason {
+    let Some(last) = &facts.last else {
+        return Reason::NotCached;
+    };
+    let now = &facts.fingerprint;
+    if last.op_version != now.op_version {
+        return Reason::OpVersionChanged {
+            old: last.op_version,
+            new: now.op_version,
+        };
+    }
+    if let Some((name, old, new)) = first_difference("", &last.params, &now.params) {
+        return Reason::ParamChanged { name, old, new };
+    }
+    for (i, input) in now.inputs.iter().enumerate() {
+        let before = last.inputs.get(i);
+        if before.map(|b| &b.key) == Some(&input.key) {
+            continue;
+        }
+        if input.stage == SOURCE {
+            let path = facts.changed_files.first().cloned().unwrap_or_else(|| {
+                format!(
+                    "the recording of {}",
+                    input.subject.as_deref().unwrap_or("?")
+                )
+            });
+            return Reason::InputFileChanged { path };
+        }
+        return Reason::Upstream {
+            stage: input.stage.clone(),
+        };
+    }
+    Reason::NotCached
+}
+
+/// The first leaf (in sorted key order) where two param trees differ.
+fn first_difference(path: &str, old: &Value, new: &Value) -> Option<(String, String, String)> {
+    if canonical_json(old) == canonical_json(new) {
+        return None;
+    }
+    let join = |k: &str| {
+        if path.is_empty() {
+            k.to_string()
+        } else {
+            format!("{path}.{k}")
+        }
+    };
+    if let (Value::Object(a), Value::Object(b)) = (old, new) {
+        let mut keys: Vec<&String> = a.keys().chain(b.keys()).collect();
+        keys.sort();
+        keys.dedup();
+        for k in keys {
+            match (a.get(k), b.get(k)) {
+                (Some(x), Some(y)) => {
+                    if let Some(found) = first_difference(&join(k), x, y) {
+                        return Some(found);
+                    }
+                }
+                (x, y) => return Some((join(k), show(x), show(y))),
+            }
+        }
+        return None;
+    }
+    let name = if path.is_empty() {
+        "(params)".to_string()
+    } else {
+        path.to_string()
+    };
+    Some((name, canonical_json(old), canonical_json(new)))
+}
+
+fn show(value: Option<&Value>) -> String {
+    value.map_or_else(|| "absent".to_string(), canonical_json)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::key::InputKey;
+    use serde_json::json;
+
+    fn fp(params: Value, input_key: &str, input_stage: &str) -> Fingerprint {
+        Fingerprint {
+            op: "scale".into(),
+            op_version: 1,
+            params,
+            inputs: vec![InputKey {
+                stage: input_stage.into(),
+                subject: Some("01".into()),
+                key: input_key.into(),
+            }],
+            subject: Some("01".into()),
+        }
+    }
+
+    fn facts(
+        stage: &str,
+        now: Fingerprint,
+        last: Option<Fingerprint>,
+        stored: Stored,
+    ) -> UnitFacts {
+        UnitFacts {
+            stage: stage.into(),
+            subject: Some("01".into()),
+            fingerprint: now,
+            stored,
+            last,
+            changed_files: vec![],
+            consumers: vec![],
+            cache: true,
+        }
+    }
+
+    #[test]
+    fn a_param_change_is_the_root_and_its_consumer_a_cascade() {
+        let tf_last = fp(json!({"cycles": 4, "freqs": [4, 8]}), "r", SOURCE);
+        let tf_now = fp(json!({"cycles": 6, "freqs": [4, 8]}), "r", SOURCE);
+        let sync_last = fp(json!({}), &tf_last.key(), "tf");
+        let sync_now = fp(json!({}), &tf_now.key(), "tf");
+        let plan = Plan::decide(&[
+            facts("tf", tf_now, Some(tf_last), Stored::Absent),
+            facts("sync", sync_now, Some(sync_last), Stored::Absent),
+        ]);
+        assert_eq!(
+            plan.units[0].status,
+            Status::Stale(Reason::ParamChanged {
+                name: "cycles".into(),
+                old: "4".into(),
+                new: "6".into()
+            })
+        );
+        assert_eq!(
+            plan.units[1].status,
+            Status::Stale(Reason::Upstream { stage: "tf".into() })
+        );
+        assert_eq!(plan.units[0].status_line(), "param cycles changed: 4 → 6");
+    }
+
+    #[test]
+    fn version_file_missing_record_and_damage_are_told_apart() {
+        let last = fp(json!({"a": 1}), "r1", SOURCE);
+        let mut newer = last.clone();
+        newer.op_version = 2;
+        assert_eq!(
+            explain(&facts("s", newer, Some(last.clone()), Stored::Absent)),
+            Reason::OpVersionChanged { old: 1, new: 2 }
+        );
+        let mut changed = facts(
+            "s",
+            fp(json!({"a": 1}), "r2", SOURCE),
+            Some(last.clone()),
+            Stored::Absent,
+        );
+        changed.changed_files = vec!["sub-01/eeg/x.edf".into()];
+        assert_eq!(
+            explain(&changed),
+            Reason::InputFileChanged {
+                path: "sub-01/eeg/x.edf".into()
+            }
+        );
+        assert_eq!(
+            explain(&facts("s", last.clone(), None, Stored::Absent)),
+            Reason::NotCached
+        );
+        let plan = Plan::decide(&[facts(
+            "s",
+            last.clone(),
+            Some(last),
+            Stored::Damaged("x".into()),
+        )]);
+        assert_eq!(
+            plan.units[0].status,
+            Status::Stale(Reason::Damaged { why: "x".into() })
+        );
+    }
+
+    #[test]
+    fn added_params_and_nested_changes_name_their_path() {
+        let old = json!({"freqs": {"from": 3, "to": 30}});
+        let new = json!({"freqs": {"from": 3, "to": 40}, "stride": 2});
+        assert_eq!(
+            first_difference("", &old, &new),
+            Some(("freqs.to".into(), "30".into(), "40".into()))
+        );
+        let new = json!({"freqs": {"from": 3.0, "to": 30}, "stride": 2});
+        assert_eq!(
+            first_difference("", &old, &new),
+            Some(("stride".into(), "absent".into(), "2".into()))
+        );
+    }
+
+    #[test]
+    fn an_unstored_unit_runs_when_its_consumer_does() {
+        let a = fp(json!({}), "r", SOURCE);
+        let b = fp(json!({"k": 1}), &a.key(), "a");
+        let mut first = facts("a", a, None, Stored::Present);
+        first.cache = false;
+        first.consumers = vec![1];
+        let plan = Plan::decide(&[first, facts("b", b, None, Stored::Absent)]);
+        assert_eq!(
+            plan.units[0].status,
+            Status::Stale(Reason::NotStored {
+                consumer: "b".into()
+            })
+        );
+    }
+}

@@ -1,0 +1,147 @@
+//! The runner's entry points: load → prepare → plan → execute → write the manifest.
+//!
+//! Every command goes through [`open`], which loads and resolves the pipeline, prepares the
+//! study and checks layouts, so a mistake is reported the same way by `plan`, `run` and
+//! `inspect` before anything runs. The op registry and the recording reader are parameters
+//! ([`Env`]) so that tests can drive the runner with small ops of their own.
+
+use std::path::{Path, PathBuf};
+use std::time::SystemTime;
+
+use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
+use phasewise_stages::DynOp;
+
+use crate::exec::{self, Outcome, Warning};
+use crate::manifest::{self, Manifest};
+use crate::output::write_atomically;
+use crate::pipeline::{self, ResolvedPipeline};
+use crate::plan::Plan;
+use crate::sources::{Hasher, Reader};
+use crate::store::Store;
+use crate::study::{RunError, Study};
+
+/// The ops and the reader a run uses.
+#[derive(Clone, Copy)]
+pub struct Env<'a> {
+    /// The op registry.
+    pub ops: &'a [&'a dyn DynOp],
+    /// How recordings are read.
+    pub reader: &'a dyn Reader,
+}
+
+/// Options shared by `plan`, `run` and `inspect`.
+#[derive(Clone, Debug, Default)]
+pub struct Options {
+    /// `--set STAGE.PARAM=VALUE` arguments.
+    pub overrides: Vec<String>,
+    /// `--subject ID` selection (empty: all subjects).
+    pub subjects: Vec<String>,
+    /// `--cache DIR` (else `.phasewise/` beside the pipeline file).
+    pub cache: Option<PathBuf>,
+    /// `--jobs N` (else all cores).
+    pub jobs: Option<usize>,
+    /// Write outputs here instead of the pipeline's `output` (used by `verify`).
+    pub output: Option<PathBuf>,
+    /// Show a progress bar on stderr (hidden anyway when stderr is not a terminal).
+    pub progress: bool,
+}
+
+/// The cache folder: `--cache`, else `.phasewise/` beside the pipeline file.
+pub fn cache_dir(pipeline: &ResolvedPipeline<'_>, explicit: Option<&Path>) -> PathBuf {
+    explicit.map_or_else(|| pipeline.dir.join(".phasewise"), Path::to_path_buf)
+}
+
+/// Load the pipeline and prepare the study, checking layouts on the recordings' headers.
+pub fn open<'o>(file: &Path, options: &Options, env: Env<'o>) -> Result<Study<'o>, RunError> {
+    let mut pipeline = pipeline::load(file, &options.overrides, env.ops)?;
+    if let Some(output) = &options.output {
+        pipeline.output = output.clone();
+    }
+    let store = Store::new(cache_dir(&pipeline, options.cache.as_deref()));
+    let hasher = Hasher::with_records(store.root());
+    let subjects: Vec<String> = options
+        .subjects
+        .iter()
+        .map(|s| s.strip_prefix("sub-").unwrap_or(s).to_string())
+        .collect();
+    let study = Study::prepare(pipeline, env.reader, store, &subjects, &hasher)?;
+    study.check_layouts(env.reader)?;
+    Ok(study)
+}
+
+/// What `run` did.
+#[derive(Clone, Debug)]
+pub struct RunSummary {
+    /// The manifest written.
+    pub manifest: Manifest,
+    /// Where.
+    pub manifest_path: PathBuf,
+    /// Units computed in this run.
+    pub computed: usize,
+    /// Units taken from the cache.
+    pub cached: usize,
+    /// Files exported.
+    pub outputs: usize,
+    /// Warnings of all units.
+    pub warnings: Vec<Warning>,
+}
+
+/// Run a pipeline and write its outputs and manifest.
+pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, RunError> {
+    let started = now();
+    let study = open(file, options, env)?;
+    let plan = study.plan();
+    let bar = progress_bar(study.units.len(), options.progress);
+    let outcome = exec::execute(&study, &plan, env.reader, options.jobs, &bar)?;
+    bar.finish_and_clear();
+    study.remember_sources();
+    finish(&study, &outcome, &started)
+}
+
+fn finish(study: &Study<'_>, outcome: &Outcome, started: &str) -> Result<RunSummary, RunError> {
+    let manifest = manifest::build(study, outcome, started, &now());
+    let manifest_path = manifest::path_for(&study.pipeline.output, &study.selection);
+    write_atomically(&manifest_path, &manifest::to_bytes(&manifest))
+        .map_err(|e| RunError::Other(e.to_string()))?;
+    let computed = outcome.computed();
+    Ok(RunSummary {
+        computed,
+        cached: outcome.results.len() - computed,
+        outputs: outcome
+            .results
+            .iter()
+            .filter(|r| r.export.is_some())
+            .count(),
+        warnings: manifest.warnings.clone(),
+        manifest,
+        manifest_path,
+    })
+}
+
+/// The plan of a pipeline (nothing runs).
+pub fn plan<'o>(
+    file: &Path,
+    options: &Options,
+    env: Env<'o>,
+) -> Result<(Study<'o>, Plan), RunError> {
+    let study = open(file, options, env)?;
+    let plan = study.plan();
+    Ok((study, plan))
+}
+
+/// The current time as RFC 3339 (UTC, seconds).
+pub fn now() -> String {
+    humantime::format_rfc3339_seconds(SystemTime::now()).to_string()
+}
+
+fn progress_bar(units: usize, wanted: bool) -> ProgressBar {
+    use std::io::IsTerminal;
+    if !wanted || !std::io::stderr().is_terminal() {
+        return ProgressBar::hidden();
+    }
+    let bar = ProgressBar::with_draw_target(Some(units as u64), ProgressDrawTarget::stderr());
+    if let Ok(style) = ProgressStyle::with_template("{bar:30} {pos}/{len} units {elapsed}") {
+        bar.set_style(style);
+    }
+    bar
+}

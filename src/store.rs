@@ -1,0 +1,433 @@
+//! The content-addressed cache.
+//!
+//! Layout under the cache folder:
+//! - `objects/<first two hex>/<key>.npy`: the values, in numpy's NPY format (f32 or complex64);
+//! - `objects/<first two hex>/<key>.json`: an [`ObjectRecord`] with format version, layout
+//!   (dims, coords, units, meta), shape, dtype, the NPY's size and blake3, the unit's notes
+//!   (warnings and records such as epoch counts, so a cached unit still reports them) and its
+//!   fingerprint. Stages with `cache: false` get the record without the NPY;
+//! - `last/<id>.json`: the fingerprint last computed for a pipeline's stage × subject, read only
+//!   to explain *why* a unit is stale;
+//! - `stat/`: stat records of input files (see [`sources`](crate::sources)).
+//!
+//! Writes go to a temporary file in the target's folder, are fsynced and renamed, the NPY before
+//! its record, so the record is the commit point: a killed run leaves at most a temporary file
+//! or an NPY without a record, neither of which is trusted. Equal keys give equal bytes, so two
+//! writers racing on one key (cluster nodes sharing the cache) are harmless. Reading fails toward
+//! recomputing: a missing, truncated, unparsable or unknown-version object is treated as absent,
+//! and a load checks the content hash.
+
+use std::fs::File;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicU64, Ordering};
+
+use ndarray::ArrayD;
+use ndarray_npy::{ReadNpyExt, WriteNpyExt};
+use num_complex::Complex32;
+use phasewise_stages::{LabelledArray, Layout, Notes, Values};
+use serde::{Deserialize, Serialize};
+
+use crate::key::Fingerprint;
+
+/// Version of the object record format; records of any other version are stale.
+pub const FORMAT_VERSION: u32 = 1;
+const FORMAT: &str = "phasewise-object";
+
+/// Set to make the process abort after a temporary object file is written and before it is
+/// renamed — the test of "a killed run leaves nothing a later run trusts" uses it.
+pub const ABORT_BEFORE_RENAME: &str = "PHASEWISE_TEST_ABORT_BEFORE_RENAME";
+
+/// Errors writing to the store.
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    /// A file could not be written.
+    #[error("cannot write {path}: {source}")]
+    Write {
+        /// The file.
+        path: PathBuf,
+        /// The cause.
+        source: std::io::Error,
+    },
+    /// The values could not be encoded.
+    #[error("cannot encode NPY: {0}")]
+    Encode(String),
+}
+
+/// The record beside every object.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ObjectRecord {
+    /// Always `phasewise-object`.
+    pub format: String,
+    /// [`FORMAT_VERSION`].
+    pub format_version: u32,
+    /// The unit's key.
+    pub key: String,
+    /// False for `cache: false` stages: the record is kept, the values are not.
+    pub stored: bool,
+    /// Dims, coords, units, meta.
+    pub layout: Layout,
+    /// The shape of the values.
+    pub shape: Vec<usize>,
+    /// `<f4` or `<c8`.
+    pub dtype: String,
+    /// Size of the NPY file in bytes.
+    pub npy_size: u64,
+    /// blake3 of the NPY file.
+    pub blake3: String,
+    /// Warnings and records of the run that computed it.
+    pub notes: Notes,
+    /// What the key was computed from.
+    pub fingerprint: Fingerprint,
+}
+
+/// Why an object's values could not be loaded.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum LoadError {
+    /// Nothing is stored under the key (or only a record, for `cache: false`).
+    Unavailable,
+    /// Something is stored but cannot be trusted.
+    Damaged(String),
+}
+
+/// What a cheap look at the store finds for a key.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Lookup {
+    /// A record (and, for stored units, an NPY of the recorded size).
+    Present(Box<ObjectRecord>),
+    /// Nothing.
+    Absent,
+    /// Something that cannot be trusted; the reason says what.
+    Damaged(String),
+}
+
+/// A cache folder.
+#[derive(Clone, Debug)]
+pub struct Store {
+    root: PathBuf,
+}
+
+/// The NPY bytes of an array.
+pub fn npy_bytes(values: &Values) -> Result<Vec<u8>, StoreError> {
+    let mut bytes = Vec::new();
+    let written = match values {
+        Values::Real(a) => a.write_npy(&mut bytes),
+        Values::Complex(a) => a.write_npy(&mut bytes),
+    };
+    written.map_err(|e| StoreError::Encode(e.to_string()))?;
+    Ok(bytes)
+}
+
+/// Decode NPY bytes as real or complex values.
+pub fn values_from_npy(bytes: &[u8], complex: bool) -> Result<Values, String> {
+    if complex {
+        ArrayD::<Complex32>::read_npy(bytes)
+            .map(Values::Complex)
+            .map_err(|e| e.to_string())
+    } else {
+        ArrayD::<f32>::read_npy(bytes)
+            .map(Values::Real)
+            .map_err(|e| e.to_string())
+    }
+}
+
+impl Store {
+    /// The store in `root` (created on first write).
+    pub fn new(root: impl Into<PathBuf>) -> Self {
+        Store { root: root.into() }
+    }
+
+    /// The cache folder.
+    pub fn root(&self) -> &Path {
+        &self.root
+    }
+
+    /// Paths of the NPY and the record of `key`.
+    pub fn object_paths(&self, key: &str) -> (PathBuf, PathBuf) {
+        let dir = self.root.join("objects").join(key.get(..2).unwrap_or("00"));
+        (
+            dir.join(format!("{key}.npy")),
+            dir.join(format!("{key}.json")),
+        )
+    }
+
+    /// A cheap check: record readable, right version and key, NPY present with the recorded size.
+    pub fn lookup(&self, key: &str) -> Lookup {
+        let (npy, json) = self.object_paths(key);
+        let npy_meta = std::fs::metadata(&npy).ok();
+        let bytes = match std::fs::read(&json) {
+            Ok(b) => b,
+            Err(_) if npy_meta.is_some() => {
+                return Lookup::Damaged("its record (.json) is missing".into())
+            }
+            Err(_) => return Lookup::Absent,
+        };
+        let record = match parse_record(&bytes, key) {
+            Ok(r) => r,
+            Err(why) => return Lookup::Damaged(why),
+        };
+        if record.stored {
+            match npy_meta {
+                None => return Lookup::Damaged("its values (.npy) are missing".into()),
+                Some(m) if m.len() != record.npy_size => {
+                    return Lookup::Damaged(format!(
+                        "its values (.npy) have {} bytes, the record says {}",
+                        m.len(),
+                        record.npy_size
+                    ))
+                }
+                Some(_) => {}
+            }
+        }
+        Lookup::Present(Box::new(record))
+    }
+
+    /// Load and verify an object's values.
+    pub fn load(&self, key: &str) -> Result<(LabelledArray, ObjectRecord), LoadError> {
+        let record = match self.lookup(key) {
+            Lookup::Present(r) if r.stored => *r,
+            Lookup::Present(_) | Lookup::Absent => return Err(LoadError::Unavailable),
+            Lookup::Damaged(why) => return Err(LoadError::Damaged(why)),
+        };
+        let bytes = self.load_bytes(key, &record).map_err(LoadError::Damaged)?;
+        let values = values_from_npy(&bytes, record.layout.complex).map_err(LoadError::Damaged)?;
+        let array = LabelledArray::checked(record.layout.clone(), values)
+            .map_err(|e| LoadError::Damaged(e.to_string()))?;
+        Ok((array, record))
+    }
+
+    /// The NPY bytes of an object, verified against its record.
+    pub fn load_bytes(&self, key: &str, record: &ObjectRecord) -> Result<Vec<u8>, String> {
+        let (npy, _) = self.object_paths(key);
+        let bytes = std::fs::read(&npy).map_err(|e| format!("cannot read its values: {e}"))?;
+        let hash = blake3::hash(&bytes).to_hex().to_string();
+        if hash != record.blake3 {
+            return Err(format!(
+                "its values' blake3 is {hash}, the record says {}",
+                record.blake3
+            ));
+        }
+        Ok(bytes)
+    }
+
+    /// Write an object (values only when `stored`), NPY first, record last.
+    pub fn put(
+        &self,
+        array: &LabelledArray,
+        npy: &[u8],
+        notes: &Notes,
+        fingerprint: &Fingerprint,
+        stored: bool,
+    ) -> Result<ObjectRecord, StoreError> {
+        let key = fingerprint.key();
+        let (npy_path, json_path) = self.object_paths(&key);
+        let record = ObjectRecord {
+            format: FORMAT.into(),
+            format_version: FORMAT_VERSION,
+            key,
+            stored,
+            layout: array.layout.clone(),
+            shape: array.values.shape().to_vec(),
+            dtype: array.values.dtype().into(),
+            npy_size: npy.len() as u64,
+            blake3: blake3::hash(npy).to_hex().to_string(),
+            notes: notes.clone(),
+            fingerprint: fingerprint.clone(),
+        };
+        if stored {
+            write_object_file(&npy_path, npy)?;
+        }
+        let json =
+            serde_json::to_vec_pretty(&record).map_err(|e| StoreError::Encode(e.to_string()))?;
+        atomic_write(&json_path, &json).map_err(|source| StoreError::Write {
+            path: json_path,
+            source,
+        })?;
+        Ok(record)
+    }
+
+    /// The fingerprint last computed for `id` (see [`last_id`]), if any.
+    pub fn last(&self, id: &str) -> Option<Fingerprint> {
+        let bytes = std::fs::read(self.last_path(id)).ok()?;
+        let record: LastRecord = serde_json::from_slice(&bytes).ok()?;
+        (record.format_version == FORMAT_VERSION).then_some(record.fingerprint)
+    }
+
+    /// Remember the fingerprint last computed for `id`; a failure only loses an explanation.
+    pub fn set_last(&self, id: &str, fingerprint: &Fingerprint) {
+        let record = LastRecord {
+            format_version: FORMAT_VERSION,
+            fingerprint: fingerprint.clone(),
+        };
+        if let Ok(bytes) = serde_json::to_vec(&record) {
+            let _ = atomic_write(&self.last_path(id), &bytes);
+        }
+    }
+
+    fn last_path(&self, id: &str) -> PathBuf {
+        self.root.join("last").join(format!("{id}.json"))
+    }
+
+    /// Every file under `objects/`, for `prune`.
+    pub fn object_files(&self) -> Vec<PathBuf> {
+        let mut files = Vec::new();
+        let Ok(dirs) = std::fs::read_dir(self.root.join("objects")) else {
+            return files;
+        };
+        for dir in dirs.flatten() {
+            if let Ok(entries) = std::fs::read_dir(dir.path()) {
+                files.extend(entries.flatten().map(|e| e.path()));
+            }
+        }
+        files.sort();
+        files
+    }
+}
+
+/// The id under which the last fingerprint of a stage × subject of a pipeline is kept: from the
+/// pipeline's name, not its path, so that a moved project keeps its explanations.
+pub fn last_id(pipeline: &str, stage: &str, subject: Option<&str>) -> String {
+    let text = format!("{pipeline}\0{stage}\0{}", subject.unwrap_or("\0group"));
+    blake3::hash(text.as_bytes()).to_hex()[..32].to_string()
+}
+
+#[derive(Serialize, Deserialize)]
+struct LastRecord {
+    format_version: u32,
+    fingerprint: Fingerprint,
+}
+
+fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, String> {
+    let value: serde_json::Value =
+        serde_json::from_slice(bytes).map_err(|e| format!("its record is not valid JSON: {e}"))?;
+    let version = value.get("format_version").and_then(|v| v.as_u64());
+    if value.get("format").and_then(|v| v.as_str()) != Some(FORMAT)
+        || version != Some(u64::from(FORMAT_VERSION))
+    {
+        return Err(format!(
+            "its record has format version {version:?}, this phasewise reads {FORMAT_VERSION}"
+        ));
+    }
+    let record: ObjectRecord =
+        serde_json::from_value(value).map_err(|e| format!("its record is incomplete: {e}"))?;
+    if record.key != key {
+        return Err(format!("its record belongs to key {}", record.key));
+    }
+    Ok(record)
+}
+
+fn write_object_file(path: &Path, bytes: &[u8]) -> Result<(), StoreError> {
+    let abort = std::env::var_os(ABORT_BEFORE_RENAME).is_some();
+    write_then_rename(path, bytes, abort).map_err(|source| StoreError::Write {
+        path: path.to_path_buf(),
+        source,
+    })
+}
+
+/// Write `bytes` to `path` atomically: a temporary file in the same folder, fsync, rename.
+pub fn atomic_write(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
+    write_then_rename(path, bytes, false)
+}
+
+static TEMP_COUNTER: AtomicU64 = AtomicU64::new(0);
+
+/// Prefix of temporary files; they are never read, and `prune` removes old ones.
+pub const TEMP_PREFIX: &str = ".tmp-";
+
+fn write_then_rename(path: &Path, bytes: &[u8], abort_before_rename: bool) -> std::io::Result<()> {
+    let dir = path.parent().unwrap_or(Path::new("."));
+    std::fs::create_dir_all(dir)?;
+    let name = path.file_name().map(|n| n.to_string_lossy().into_owned());
+    let temp = dir.join(format!(
+        "{TEMP_PREFIX}{}-{}-{}",
+        std::process::id(),
+        TEMP_COUNTER.fetch_add(1, Ordering::Relaxed),
+        name.unwrap_or_default()
+    ));
+    let mut file = File::create(&temp)?;
+    file.write_all(bytes)?;
+    file.sync_all()?;
+    drop(file);
+    if abort_before_rename {
+        std::process::abort();
+    }
+    std::fs::rename(&temp, path).inspect_err(|_| {
+        let _ = std::fs::remove_file(&temp);
+    })?;
+    // The rename itself must survive a crash too; failing to sync a folder is not fatal.
+    if let Ok(d) = File::open(dir) {
+        let _ = d.sync_all();
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use phasewise_stages::Coord;
+    use serde_json::json;
+
+    fn sample() -> (LabelledArray, Fingerprint) {
+        let layout = Layout {
+            dims: vec!["channel".into(), "time".into()],
+            coords: vec![
+                Coord::Labels(vec!["Fz".into()]),
+                Coord::Numbers(vec![0.0, 0.5, 1.0]),
+            ],
+            units: "V".into(),
+            ..Layout::default()
+        };
+        let values = ArrayD::from_shape_vec(vec![1, 3], vec![1.0f32, -2.5, 3.25]).unwrap();
+        let fp = Fingerprint {
+            op: "test".into(),
+            op_version: 1,
+            params: json!({}),
+            inputs: vec![],
+            subject: None,
+        };
+        (LabelledArray::real(layout, values).unwrap(), fp)
+    }
+
+    #[test]
+    fn objects_round_trip_and_damage_is_detected() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let (array, fp) = sample();
+        let npy = npy_bytes(&array.values).unwrap();
+        // NPY format 1.0 (numpy's format spec): magic `\x93NUMPY`, version 1.0, a header
+        // dict naming the dtype `<f4`.
+        assert_eq!(&npy[..8], b"\x93NUMPY\x01\x00");
+        assert!(String::from_utf8_lossy(&npy[..128]).contains("'descr': '<f4'"));
+        let record = store
+            .put(&array, &npy, &Notes::default(), &fp, true)
+            .unwrap();
+        let (back, _) = store.load(&record.key).unwrap();
+        assert_eq!(back, array);
+        let (npy_path, json_path) = store.object_paths(&record.key);
+        let mut bytes = std::fs::read(&npy_path).unwrap();
+        let last = bytes.len() - 1;
+        bytes[last] ^= 1;
+        std::fs::write(&npy_path, &bytes).unwrap();
+        assert!(
+            matches!(store.load(&record.key), Err(LoadError::Damaged(why)) if why.contains("blake3"))
+        );
+        std::fs::remove_file(&json_path).unwrap();
+        assert!(matches!(store.lookup(&record.key), Lookup::Damaged(_)));
+    }
+
+    #[test]
+    fn an_unknown_format_version_is_not_trusted() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let (array, fp) = sample();
+        let npy = npy_bytes(&array.values).unwrap();
+        let record = store
+            .put(&array, &npy, &Notes::default(), &fp, true)
+            .unwrap();
+        let (_, json_path) = store.object_paths(&record.key);
+        let text = std::fs::read_to_string(&json_path).unwrap();
+        let newer = text.replace("\"format_version\": 1", "\"format_version\": 99");
+        std::fs::write(&json_path, newer).unwrap();
+        assert!(matches!(store.lookup(&record.key), Lookup::Damaged(_)));
+    }
+}

@@ -1,0 +1,442 @@
+//! A study ready to plan or run: the resolved pipeline, its subjects and their recordings, the
+//! units with their fingerprints and keys, and the store.
+//!
+//! Preparing a study reads no samples: recordings are found and hashed (through stat records),
+//! units expanded, keys computed, and every op's `layout` called down the graph on the
+//! recordings' headers, so that a data-dependent mistake in a param (a window outside the data, a
+//! frequency above Nyquist) is reported with its line before anything runs.
+
+use std::collections::BTreeSet;
+use std::path::{Path, PathBuf};
+
+use phasewise_stages::{InputLayout, Layout, StageError};
+use serde_json::json;
+
+use crate::graph::{self, StageShape, Unit, UnitInput};
+use crate::key::{Fingerprint, InputKey};
+use crate::paths::relative_to;
+use crate::pipeline::{Diagnostic, PipelineError, ResolvedPipeline, SOURCE};
+use crate::plan::{Plan, Stored, UnitFacts};
+use crate::sources::{self, FileHash, Hasher, Reader, Source, SourceError};
+use crate::store::{last_id, Lookup, Store};
+
+/// Why a study could not be prepared or run.
+#[derive(Debug, thiserror::Error)]
+pub enum RunError {
+    /// The pipeline file or the command line is wrong.
+    #[error(transparent)]
+    Pipeline(#[from] PipelineError),
+    /// The recordings could not be found or read.
+    #[error(transparent)]
+    Source(#[from] SourceError),
+    /// `--subject` named a subject that has no recording.
+    #[error("--subject {subject}: no such subject; the subjects are: {known}")]
+    UnknownSubject {
+        /// The id given.
+        subject: String,
+        /// The ids found.
+        known: String,
+    },
+    /// A unit failed (at layout time or while running).
+    #[error("{}", .0.iter().map(ToString::to_string).collect::<Vec<_>>().join("\n"))]
+    Units(Vec<UnitFailure>),
+    /// Something else failed (writing outputs, the store).
+    #[error("{0}")]
+    Other(String),
+}
+
+impl RunError {
+    /// The exit status: 2 when the pipeline or command line is wrong, 1 when a stage failed.
+    pub fn exit_code(&self) -> i32 {
+        match self {
+            RunError::Pipeline(_) | RunError::Source(_) | RunError::UnknownSubject { .. } => 2,
+            RunError::Units(_) | RunError::Other(_) => 1,
+        }
+    }
+}
+
+/// A unit that failed.
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+#[error("stage {stage} failed for {}: {message}", subject_label(.subject.as_deref()))]
+pub struct UnitFailure {
+    /// The stage.
+    pub stage: String,
+    /// The subject, `None` for group units.
+    pub subject: Option<String>,
+    /// What went wrong.
+    pub message: String,
+}
+
+/// `subject 01` or `the group`.
+pub fn subject_label(subject: Option<&str>) -> String {
+    match subject {
+        Some(s) => format!("subject {s}"),
+        None => "the group".into(),
+    }
+}
+
+/// A prepared study.
+pub struct Study<'o> {
+    /// The pipeline.
+    pub pipeline: ResolvedPipeline<'o>,
+    /// All subjects' recordings, sorted by subject.
+    pub sources: Vec<Source>,
+    /// Keys of the sources.
+    pub source_keys: Vec<String>,
+    /// Hashes of each source's files.
+    pub source_files: Vec<Vec<FileHash>>,
+    /// The units to consider (all, or those of the `--subject` selection).
+    pub units: Vec<Unit>,
+    /// For each unit, its fingerprint.
+    pub fingerprints: Vec<Fingerprint>,
+    /// For each unit, its key.
+    pub keys: Vec<String>,
+    /// For each unit, the units consuming it.
+    pub consumers: Vec<Vec<usize>>,
+    /// The subject restriction (`--subject`), empty for all.
+    pub selection: Vec<String>,
+    /// The cache.
+    pub store: Store,
+}
+
+impl<'o> Study<'o> {
+    /// Find recordings, expand units and compute keys.
+    pub fn prepare(
+        pipeline: ResolvedPipeline<'o>,
+        reader: &dyn Reader,
+        store: Store,
+        selection: &[String],
+        hasher: &Hasher,
+    ) -> Result<Study<'o>, RunError> {
+        let all = sources::discover(&pipeline.dir, &pipeline.recordings, reader)?;
+        let sources = select(all, selection)?;
+        let mut source_keys = Vec::new();
+        let mut source_files = Vec::new();
+        for source in &sources {
+            let (key, files) = hasher.source_key(source)?;
+            source_keys.push(key);
+            source_files.push(files);
+        }
+        let shapes: Vec<StageShape> = pipeline
+            .stages
+            .iter()
+            .map(|s| StageShape {
+                inputs: s.inputs.clone(),
+                group: s.group,
+            })
+            .collect();
+        let order: Vec<usize> = (0..pipeline.stages.len()).collect();
+        let mut units = graph::expand(&order, &shapes, sources.len());
+        if !selection.is_empty() {
+            // `run --subject` touches only that subject's chain; group units wait for all.
+            units.retain(|u| u.subject.is_some());
+        }
+        let mut study = Study {
+            pipeline,
+            sources,
+            source_keys,
+            source_files,
+            units,
+            fingerprints: Vec::new(),
+            keys: Vec::new(),
+            consumers: Vec::new(),
+            selection: selection.to_vec(),
+            store,
+        };
+        study.compute_keys();
+        Ok(study)
+    }
+
+    fn compute_keys(&mut self) {
+        self.consumers = vec![Vec::new(); self.units.len()];
+        for i in 0..self.units.len() {
+            let unit = &self.units[i];
+            let stage = &self.pipeline.stages[unit.stage];
+            let inputs: Vec<InputKey> = unit.inputs.iter().map(|&i| self.input_key(i)).collect();
+            for input in &unit.inputs {
+                if let UnitInput::Unit(u) = input {
+                    self.consumers[*u].push(i);
+                }
+            }
+            let fingerprint = Fingerprint {
+                op: stage.op.name().to_string(),
+                op_version: stage.op.version(),
+                params: stage.params.clone(),
+                inputs,
+                subject: unit.subject.map(|s| self.sources[s].subject.clone()),
+            };
+            self.keys.push(fingerprint.key());
+            self.fingerprints.push(fingerprint);
+        }
+    }
+
+    fn input_key(&self, input: UnitInput) -> InputKey {
+        match input {
+            UnitInput::Source(s) => InputKey {
+                stage: SOURCE.into(),
+                subject: Some(self.sources[s].subject.clone()),
+                key: self.source_keys[s].clone(),
+            },
+            UnitInput::Unit(u) => InputKey {
+                stage: self.pipeline.stages[self.units[u].stage].name.clone(),
+                subject: self.units[u]
+                    .subject
+                    .map(|s| self.sources[s].subject.clone()),
+                key: self.keys[u].clone(),
+            },
+        }
+    }
+
+    /// The stage name of a unit.
+    pub fn stage_name(&self, unit: usize) -> &str {
+        &self.pipeline.stages[self.units[unit].stage].name
+    }
+
+    /// The subject id of a unit.
+    pub fn subject(&self, unit: usize) -> Option<&str> {
+        self.units[unit]
+            .subject
+            .map(|s| self.sources[s].subject.as_str())
+    }
+
+    /// A path for messages and the manifest: relative to the pipeline's folder when possible.
+    pub fn display_path(&self, path: &Path) -> String {
+        relative_to(path, &self.pipeline.dir)
+            .unwrap_or_else(|| path.to_path_buf())
+            .to_string_lossy()
+            .into_owned()
+    }
+
+    /// The last-record id of a unit.
+    pub fn last_id(&self, unit: usize) -> String {
+        last_id(
+            &self.pipeline.name,
+            self.stage_name(unit),
+            self.subject(unit),
+        )
+    }
+
+    fn source_last_id(&self, source: usize) -> String {
+        last_id(
+            &self.pipeline.name,
+            SOURCE,
+            Some(&self.sources[source].subject),
+        )
+    }
+
+    /// The fingerprint by which a source's files are remembered (to name a changed file).
+    pub fn source_fingerprint(&self, source: usize) -> Fingerprint {
+        let files: Vec<serde_json::Value> = self.source_files[source]
+            .iter()
+            .map(|f| json!({"path": self.display_path(&f.path), "blake3": f.blake3}))
+            .collect();
+        Fingerprint {
+            op: SOURCE.into(),
+            op_version: 0,
+            params: json!({ "files": files }),
+            inputs: Vec::new(),
+            subject: Some(self.sources[source].subject.clone()),
+        }
+    }
+
+    /// Remember the sources' file hashes (after a successful run) for later explanations.
+    pub fn remember_sources(&self) {
+        for s in 0..self.sources.len() {
+            let id = self.source_last_id(s);
+            let now = self.source_fingerprint(s);
+            if self.store.last(&id).as_ref() != Some(&now) {
+                self.store.set_last(&id, &now);
+            }
+        }
+    }
+
+    /// What the planner needs to know about every unit.
+    pub fn facts(&self) -> Vec<UnitFacts> {
+        let changed: Vec<Vec<String>> = (0..self.sources.len())
+            .map(|s| self.changed_files(s))
+            .collect();
+        (0..self.units.len())
+            .map(|u| {
+                let stored = match self.store.lookup(&self.keys[u]) {
+                    Lookup::Present(_) => Stored::Present,
+                    Lookup::Absent => Stored::Absent,
+                    Lookup::Damaged(why) => Stored::Damaged(why),
+                };
+                let changed_files = self.units[u]
+                    .inputs
+                    .iter()
+                    .filter_map(|i| match i {
+                        UnitInput::Source(s) => Some(changed[*s].clone()),
+                        UnitInput::Unit(_) => None,
+                    })
+                    .flatten()
+                    .collect();
+                UnitFacts {
+                    stage: self.stage_name(u).to_string(),
+                    subject: self.subject(u).map(str::to_string),
+                    fingerprint: self.fingerprints[u].clone(),
+                    stored,
+                    last: self.store.last(&self.last_id(u)),
+                    changed_files,
+                    consumers: self.consumers[u].clone(),
+                    cache: self.pipeline.stages[self.units[u].stage].cache,
+                }
+            })
+            .collect()
+    }
+
+    /// The plan of this study.
+    pub fn plan(&self) -> Plan {
+        Plan::decide(&self.facts())
+    }
+
+    fn changed_files(&self, source: usize) -> Vec<String> {
+        let Some(last) = self.store.last(&self.source_last_id(source)) else {
+            return Vec::new();
+        };
+        let old: BTreeSet<(String, String)> = file_list(&last.params);
+        let now: BTreeSet<(String, String)> = file_list(&self.source_fingerprint(source).params);
+        let mut paths: Vec<String> = now.difference(&old).map(|(p, _)| p.clone()).collect();
+        paths.extend(old.difference(&now).map(|(p, _)| p.clone()));
+        paths.sort();
+        paths.dedup();
+        paths
+    }
+
+    /// Call every op's `layout` down the graph on the recordings' headers.
+    pub fn check_layouts(&self, reader: &dyn Reader) -> Result<(), RunError> {
+        let mut source_layouts: Vec<Option<Layout>> = Vec::new();
+        let mut failures = Vec::new();
+        for source in &self.sources {
+            match reader.layout(&source.path, self.pipeline.events) {
+                Ok(l) => source_layouts.push(Some(l)),
+                Err(e) => {
+                    failures.push(UnitFailure {
+                        stage: SOURCE.into(),
+                        subject: Some(source.subject.clone()),
+                        message: format!("{}: {e}", self.display_path(&source.path)),
+                    });
+                    source_layouts.push(None);
+                }
+            }
+        }
+        let mut layouts: Vec<Option<Layout>> = Vec::new();
+        let mut diagnostics: Vec<Diagnostic> = Vec::new();
+        for u in 0..self.units.len() {
+            let layout = self.unit_layout(
+                u,
+                &source_layouts,
+                &layouts,
+                &mut diagnostics,
+                &mut failures,
+            );
+            layouts.push(layout);
+        }
+        if !diagnostics.is_empty() {
+            return Err(RunError::Pipeline(PipelineError::Invalid(diagnostics)));
+        }
+        if !failures.is_empty() {
+            return Err(RunError::Units(failures));
+        }
+        Ok(())
+    }
+
+    fn unit_layout(
+        &self,
+        u: usize,
+        sources: &[Option<Layout>],
+        units: &[Option<Layout>],
+        diagnostics: &mut Vec<Diagnostic>,
+        failures: &mut Vec<UnitFailure>,
+    ) -> Option<Layout> {
+        let unit = &self.units[u];
+        let mut inputs = Vec::new();
+        for input in &unit.inputs {
+            let (stage, subject, layout) = match *input {
+                UnitInput::Source(s) => (
+                    SOURCE,
+                    Some(self.sources[s].subject.as_str()),
+                    sources[s].as_ref(),
+                ),
+                UnitInput::Unit(i) => (self.stage_name(i), self.subject(i), units[i].as_ref()),
+            };
+            inputs.push(InputLayout {
+                stage,
+                subject,
+                layout: layout?,
+            });
+        }
+        let stage = &self.pipeline.stages[unit.stage];
+        match stage.op.layout(&stage.params, &inputs) {
+            Ok(layout) => layout,
+            Err(e @ StageError::Param { .. }) => {
+                let mut d = self.pipeline.stage_diagnostic(unit.stage, &e);
+                if let Some(subject) = self.subject(u) {
+                    d.message = format!("{} (subject {subject})", d.message);
+                }
+                if !diagnostics
+                    .iter()
+                    .any(|x| x.field == d.field && x.line == d.line)
+                {
+                    diagnostics.push(d);
+                }
+                None
+            }
+            Err(e) => {
+                failures.push(UnitFailure {
+                    stage: stage.name.clone(),
+                    subject: self.subject(u).map(str::to_string),
+                    message: e.to_string(),
+                });
+                None
+            }
+        }
+    }
+
+    /// The folder where a unit's exports go: `<output>/<subject>` or `<output>/group`.
+    pub fn export_dir(&self, unit: usize) -> PathBuf {
+        self.pipeline
+            .output
+            .join(self.subject(unit).unwrap_or("group"))
+    }
+}
+
+fn file_list(params: &serde_json::Value) -> BTreeSet<(String, String)> {
+    params
+        .get("files")
+        .and_then(|f| f.as_array())
+        .map(|files| {
+            files
+                .iter()
+                .map(|f| {
+                    let text = |k: &str| {
+                        f.get(k)
+                            .and_then(|v| v.as_str())
+                            .unwrap_or_default()
+                            .to_string()
+                    };
+                    (text("path"), text("blake3"))
+                })
+                .collect()
+        })
+        .unwrap_or_default()
+}
+
+fn select(all: Vec<Source>, selection: &[String]) -> Result<Vec<Source>, RunError> {
+    if selection.is_empty() {
+        return Ok(all);
+    }
+    for wanted in selection {
+        if !all.iter().any(|s| &s.subject == wanted) {
+            let known: Vec<&str> = all.iter().map(|s| s.subject.as_str()).collect();
+            return Err(RunError::UnknownSubject {
+                subject: wanted.clone(),
+                known: known.join(", "),
+            });
+        }
+    }
+    Ok(all
+        .into_iter()
+        .filter(|s| selection.contains(&s.subject))
+        .collect())
+}

@@ -1,0 +1,239 @@
+//! `verify MANIFEST`: does the study still reproduce the numbers it recorded?
+//!
+//! The manifest alone says everything needed: the pipeline file (path relative to the output
+//! folder, and its blake3), the `--set` overrides and subject selection, every input file with
+//! its size and blake3. Every input is rehashed (stat records are not trusted here), the same
+//! effective pipeline is run into a fresh temporary cache and output folder, and each recorded
+//! output is compared: bit-identical, or the largest absolute difference between the old and the
+//! new values (the old values are read from the exported file, or from the pipeline's default
+//! cache when the output was not exported).
+
+use std::path::{Path, PathBuf};
+
+use phasewise_stages::Values;
+
+use crate::manifest::{self, Manifest, UnitRecord};
+use crate::session::{self, Env, Options};
+use crate::sources::hash_file;
+use crate::store::{values_from_npy, Store};
+use crate::study::subject_label;
+
+/// The verdict on one recorded output.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Verdict {
+    /// Same bytes.
+    Identical,
+    /// Different values; the largest absolute difference when both arrays could be read.
+    Differs(Option<f64>),
+    /// The rerun did not produce this unit.
+    Missing,
+}
+
+/// One compared output.
+#[derive(Clone, Debug, PartialEq)]
+pub struct OutputCheck {
+    /// The stage.
+    pub stage: String,
+    /// The subject.
+    pub subject: Option<String>,
+    /// The verdict.
+    pub verdict: Verdict,
+}
+
+/// Everything `verify` found.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct VerifyReport {
+    /// Input files (and the pipeline file) that changed or are missing, one sentence each.
+    pub input_problems: Vec<String>,
+    /// The rerun's failure, if it failed.
+    pub run_failure: Option<String>,
+    /// Per-output verdicts, in the manifest's order.
+    pub outputs: Vec<OutputCheck>,
+}
+
+impl VerifyReport {
+    /// True when inputs are unchanged and every output is bit-identical.
+    pub fn reproduced(&self) -> bool {
+        self.input_problems.is_empty()
+            && self.run_failure.is_none()
+            && self.outputs.iter().all(|o| o.verdict == Verdict::Identical)
+    }
+
+    /// A human-readable report, one line per finding.
+    pub fn lines(&self) -> Vec<String> {
+        let mut lines = self.input_problems.clone();
+        if let Some(f) = &self.run_failure {
+            lines.push(format!("the rerun failed: {f}"));
+        }
+        for o in &self.outputs {
+            let who = format!("{} ({})", o.stage, subject_label(o.subject.as_deref()));
+            lines.push(match &o.verdict {
+                Verdict::Identical => format!("{who}: bit-identical"),
+                Verdict::Differs(Some(d)) => {
+                    format!("{who}: differs, largest absolute difference {d:e}")
+                }
+                Verdict::Differs(None) => format!("{who}: differs (old values not available)"),
+                Verdict::Missing => format!("{who}: not produced by the rerun"),
+            });
+        }
+        lines
+    }
+}
+
+/// Errors that stop `verify` before it can compare anything.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct VerifyError(pub String);
+
+/// Verify a manifest.
+pub fn verify(manifest_path: &Path, env: Env<'_>) -> Result<VerifyReport, VerifyError> {
+    let old = manifest::read(manifest_path).map_err(VerifyError)?;
+    let output = output_dir(manifest_path);
+    let pipeline_file = output.join(&old.pipeline.path);
+    let mut report = VerifyReport {
+        input_problems: check_inputs(&old, &pipeline_file),
+        ..VerifyReport::default()
+    };
+    if !pipeline_file.is_file() {
+        return Ok(report);
+    }
+    let scratch = tempfile::tempdir().map_err(|e| VerifyError(e.to_string()))?;
+    let options = Options {
+        overrides: old.pipeline.overrides.clone(),
+        subjects: old.pipeline.subjects.clone().unwrap_or_default(),
+        cache: Some(scratch.path().join("cache")),
+        output: Some(scratch.path().join("output")),
+        ..Options::default()
+    };
+    let rerun = match session::run(&pipeline_file, &options, env) {
+        Ok(summary) => summary.manifest,
+        Err(e) => {
+            report.run_failure = Some(e.to_string());
+            return Ok(report);
+        }
+    };
+    let new_store = Store::new(scratch.path().join("cache"));
+    let old_store = Store::new(
+        pipeline_file
+            .parent()
+            .unwrap_or(Path::new("."))
+            .join(".phasewise"),
+    );
+    for unit in &old.units {
+        let verdict = compare_unit(unit, &rerun, &output, &old_store, &new_store);
+        report.outputs.push(OutputCheck {
+            stage: unit.stage.clone(),
+            subject: unit.subject.clone(),
+            verdict,
+        });
+    }
+    Ok(report)
+}
+
+/// The output folder of a manifest (parts live one level down, in `manifest.parts/`).
+fn output_dir(manifest_path: &Path) -> PathBuf {
+    let dir = manifest_path.parent().unwrap_or(Path::new("."));
+    if dir.file_name().is_some_and(|n| n == "manifest.parts") {
+        dir.parent().unwrap_or(dir).to_path_buf()
+    } else {
+        dir.to_path_buf()
+    }
+}
+
+fn check_inputs(old: &Manifest, pipeline_file: &Path) -> Vec<String> {
+    let mut problems = Vec::new();
+    match hash_file(pipeline_file) {
+        Err(_) => problems.push(format!(
+            "the pipeline file {} is missing",
+            pipeline_file.display()
+        )),
+        Ok((_, hash)) if hash != old.pipeline.blake3 => problems.push(format!(
+            "the pipeline file {} changed",
+            pipeline_file.display()
+        )),
+        Ok(_) => {}
+    }
+    let dir = pipeline_file.parent().unwrap_or(Path::new("."));
+    for input in &old.inputs {
+        match hash_file(&dir.join(&input.path)) {
+            Err(_) => problems.push(format!("input file {} is missing", input.path)),
+            Ok((size, hash)) if size != input.size || hash != input.blake3 => {
+                problems.push(format!("input file {} changed", input.path))
+            }
+            Ok(_) => {}
+        }
+    }
+    problems
+}
+
+fn compare_unit(
+    unit: &UnitRecord,
+    rerun: &Manifest,
+    output: &Path,
+    old_store: &Store,
+    new_store: &Store,
+) -> Verdict {
+    let Some(new) = rerun
+        .units
+        .iter()
+        .find(|u| u.stage == unit.stage && u.subject == unit.subject)
+    else {
+        return Verdict::Missing;
+    };
+    let (Some(a), Some(b)) = (unit.outputs.first(), new.outputs.first()) else {
+        return Verdict::Missing;
+    };
+    if a.blake3 == b.blake3 {
+        return Verdict::Identical;
+    }
+    let old_values = a
+        .file
+        .as_ref()
+        .and_then(|f| read_npy_file(&output.join(f), a.dtype == "<c8"))
+        .or_else(|| old_store.load(&unit.key).ok().map(|(arr, _)| arr.values));
+    let new_values = new_store.load(&new.key).ok().map(|(arr, _)| arr.values);
+    match (old_values, new_values) {
+        (Some(x), Some(y)) => Verdict::Differs(max_abs_difference(&x, &y)),
+        _ => Verdict::Differs(None),
+    }
+}
+
+fn read_npy_file(path: &Path, complex: bool) -> Option<Values> {
+    let bytes = std::fs::read(path).ok()?;
+    values_from_npy(&bytes, complex).ok()
+}
+
+/// The largest |a − b| over all elements (NaN where exactly one side is NaN counts as infinite);
+/// `None` when shapes or kinds differ.
+pub fn max_abs_difference(a: &Values, b: &Values) -> Option<f64> {
+    let pairs: Vec<f64> = match (a, b) {
+        (Values::Real(x), Values::Real(y)) if x.shape() == y.shape() => x
+            .iter()
+            .zip(y.iter())
+            .map(|(p, q)| difference(f64::from(*p), f64::from(*q)))
+            .collect(),
+        (Values::Complex(x), Values::Complex(y)) if x.shape() == y.shape() => x
+            .iter()
+            .zip(y.iter())
+            .map(|(p, q)| {
+                let re = f64::from(p.re) - f64::from(q.re);
+                let im = f64::from(p.im) - f64::from(q.im);
+                if re.is_nan() || im.is_nan() {
+                    f64::INFINITY
+                } else {
+                    re.hypot(im)
+                }
+            })
+            .collect(),
+        _ => return None,
+    };
+    Some(pairs.into_iter().fold(0.0, f64::max))
+}
+
+fn difference(p: f64, q: f64) -> f64 {
+    match (p.is_nan(), q.is_nan()) {
+        (true, true) => 0.0,
+        (false, false) => (p - q).abs(),
+        _ => f64::INFINITY,
+    }
+}
