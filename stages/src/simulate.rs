@@ -406,10 +406,7 @@ fn add_electrode_noise(x: &mut [f64], config: &SimulateConfig, rng: &mut ChaCha2
 /// The EOG channel: blinks (a 0.3 s raised-cosine bump each) on a 1/f background.
 fn eog(n: usize, rate: f64, rng: &mut ChaCha20Rng) -> Vec<f64> {
     let p = &PLANTED;
-    let mut x: Vec<f64> = pink(n, rate, &p.background_corners_hz, rng)
-        .into_iter()
-        .map(|v| v * p.background_rms_uv)
-        .collect();
+    let mut x = background(n, rate, rng);
     let width = (0.3 * rate) as usize;
     let mut t = rng.gen_range(0.0..p.blink_interval_s);
     while ((t * rate) as usize) + width < n {
@@ -423,6 +420,36 @@ fn eog(n: usize, rate: f64, rng: &mut ChaCha20Rng) -> Vec<f64> {
     x
 }
 
+/// One site's 1/f source in µV.
+fn background(n: usize, rate: f64, rng: &mut ChaCha20Rng) -> Vec<f64> {
+    let p = &PLANTED;
+    let s = pink(n, rate, &p.background_corners_hz, rng);
+    s.into_iter().map(|v| v * p.background_rms_uv).collect()
+}
+
+/// Eye movements reach the frontopolar sites.
+fn add_eog_leak(signals: &mut [Vec<f64>], eog: &[f64]) {
+    for name in ["Fp1", "Fp2"] {
+        let Some(i) = SITES.iter().position(|s| s.0 == name) else {
+            continue;
+        };
+        if let Some(x) = signals.get_mut(i) {
+            for (v, e) in x.iter_mut().zip(eog) {
+                *v += PLANTED.eog_leak * e;
+            }
+        }
+    }
+}
+
+/// Channel names and types: the sites (`EEG`), then the EOG channel.
+fn channels() -> (Vec<String>, Vec<String>) {
+    let mut names: Vec<String> = SITES.iter().map(|s| s.0.to_string()).collect();
+    names.push(EOG.into());
+    let mut types = vec!["EEG".to_string(); SITES.len()];
+    types.push("EOG".into());
+    (names, types)
+}
+
 /// Simulates participant `index` (0-based) of a study.
 pub fn simulate_subject(config: &SimulateConfig, index: usize) -> Result<Recording, StageError> {
     config.check()?;
@@ -433,10 +460,7 @@ pub fn simulate_subject(config: &SimulateConfig, index: usize) -> Result<Recordi
     let n = seconds * rate as usize;
     let mut sources: Vec<Vec<f64>> = SITES
         .iter()
-        .map(|_| {
-            let s = pink(n, rate, &p.background_corners_hz, &mut rng);
-            s.into_iter().map(|v| v * p.background_rms_uv).collect()
-        })
+        .map(|_| background(n, rate, &mut rng))
         .collect();
     let scale = rng.gen_range(p.subject_scale[0]..=p.subject_scale[1]);
     add_coupling(
@@ -448,22 +472,13 @@ pub fn simulate_subject(config: &SimulateConfig, index: usize) -> Result<Recordi
     );
     let mut signals = mix(&sources);
     let eog = eog(n, rate, &mut rng);
-    for name in ["Fp1", "Fp2"] {
-        if let Some(i) = SITES.iter().position(|s| s.0 == name) {
-            for (v, e) in signals[i].iter_mut().zip(&eog) {
-                *v += p.eog_leak * e;
-            }
-        }
-    }
+    add_eog_leak(&mut signals, &eog);
     signals.push(eog);
     let mains: Vec<f64> = signals
         .iter_mut()
         .map(|x| add_electrode_noise(x, config, &mut rng))
         .collect();
-    let mut names: Vec<String> = SITES.iter().map(|s| s.0.to_string()).collect();
-    names.push(EOG.into());
-    let mut types = vec!["EEG".to_string(); SITES.len()];
-    types.push("EOG".into());
+    let (names, types) = channels();
     let mains_by_channel: serde_json::Map<String, serde_json::Value> = names
         .iter()
         .zip(&mains)
@@ -623,6 +638,11 @@ fn truth(
             "amplitude_uv": p.amplitude_uv,
             "subject_scale": p.subject_scale,
             "phase": "uniform per trial, the same at both sites before the lag",
+            "note": "phase_lag_rad is the lag between the two sources. The sensors also record \
+                     their neighbours (zero lag) and a re-reference mixes every channel into \
+                     every other, so the angle measured between sensors is pulled towards 0 or \
+                     π; measures built on the imaginary part of the cross-spectrum ignore those \
+                     zero-lag parts.",
         },
         "generator": p,
         "mixing": { "kind": "zero lag", "weight": p.neighbour_weight, "neighbours": nb },
