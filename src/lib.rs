@@ -37,6 +37,7 @@ pub mod paths;
 pub mod pipeline;
 pub mod plan;
 pub mod prune;
+pub mod report;
 pub mod scaffold;
 pub mod session;
 pub mod sources;

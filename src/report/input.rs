@@ -1,0 +1,379 @@
+//! Reading what a finished run leaves in its output folder: `manifest.json`, the exported arrays
+//! (`<subject>/<stage>.npy` and `group/<stage>.npy`, each with a `.json` sidecar) and the tidy
+//! tables (`<stage>.tsv`).
+//!
+//! Everything is parsed leniently: unknown fields are ignored and fields of unexpected shape are
+//! kept as raw JSON, so the report keeps working while the manifest format grows. Only a missing
+//! or unreadable manifest is an error; an array that cannot be read is listed as skipped.
+
+use std::fs;
+use std::path::{Path, PathBuf};
+
+use ndarray::ArrayD;
+use phasewise_stages::array::Coord;
+use serde_json::Value;
+
+use super::ReportError;
+
+/// One unit (stage × subject) of the manifest.
+#[derive(Clone, Debug, Default)]
+pub struct Unit {
+    /// Stage name.
+    pub stage: String,
+    /// Subject id, `None` for group units.
+    pub subject: Option<String>,
+    /// Op name.
+    pub op: String,
+    /// Effective params.
+    pub params: Value,
+    /// The unit's key.
+    pub key: String,
+    /// Keys of its inputs.
+    pub inputs: Vec<String>,
+    /// `computed` or `cached` (or whatever the manifest says).
+    pub status: String,
+    /// Seconds spent, when recorded.
+    pub seconds: Option<f64>,
+    /// Shapes of its outputs.
+    pub shapes: Vec<Vec<usize>>,
+}
+
+/// The parts of the manifest the report shows.
+#[derive(Clone, Debug, Default)]
+pub struct Manifest {
+    /// The whole document, for fields shown as they are.
+    pub raw: Value,
+    /// Units in manifest order.
+    pub units: Vec<Unit>,
+    /// Epoch counts, as recorded.
+    pub epochs: Value,
+    /// Warnings, each as one line of text.
+    pub warnings: Vec<String>,
+}
+
+/// The layout written beside an exported array.
+#[derive(Clone, Debug, Default)]
+pub struct Sidecar {
+    /// Axis names.
+    pub dims: Vec<String>,
+    /// One coordinate list per axis.
+    pub coords: Vec<Coord>,
+    /// Unit of the values.
+    pub units: String,
+    /// Metadata, as recorded.
+    pub meta: Value,
+}
+
+/// An exported array found in the output folder (values read on demand).
+#[derive(Clone, Debug)]
+pub struct Exported {
+    /// Subject id, or `group`.
+    pub owner: String,
+    /// Stage name (the file stem).
+    pub stage: String,
+    /// Path of the `.npy` file.
+    pub npy: PathBuf,
+    /// Its sidecar.
+    pub sidecar: Sidecar,
+}
+
+/// A tidy table.
+#[derive(Clone, Debug)]
+pub struct Table {
+    /// The subject folder it lies in, `None` for the output folder itself (group tables).
+    pub owner: Option<String>,
+    /// Stage name (the file stem).
+    pub stage: String,
+    /// Path of the file.
+    pub path: PathBuf,
+    /// Column names.
+    pub header: Vec<String>,
+    /// Rows (cells as written).
+    pub rows: Vec<Vec<String>>,
+}
+
+/// Everything read from one output folder.
+#[derive(Clone, Debug)]
+pub struct RunOutput {
+    /// The folder.
+    pub dir: PathBuf,
+    /// The manifest.
+    pub manifest: Manifest,
+    /// Exported arrays, sorted by owner then stage.
+    pub arrays: Vec<Exported>,
+    /// Tables, sorted by stage.
+    pub tables: Vec<Table>,
+    /// Things found but not readable, one sentence each.
+    pub skipped: Vec<String>,
+}
+
+/// Reads an output folder.
+pub fn read_output(dir: &Path) -> Result<RunOutput, ReportError> {
+    let path = dir.join("manifest.json");
+    let text = fs::read_to_string(&path).map_err(|e| ReportError::Manifest {
+        path: path.clone(),
+        msg: format!(
+            "cannot read it ({e}); run the pipeline first so that its output folder has a manifest"
+        ),
+    })?;
+    let raw: Value = serde_json::from_str(&text).map_err(|e| ReportError::Manifest {
+        path: path.clone(),
+        msg: format!("expected a JSON document, found invalid JSON ({e})"),
+    })?;
+    let manifest = parse_manifest(raw);
+    let mut skipped = Vec::new();
+    let arrays = find_arrays(dir, &mut skipped)?;
+    let tables = find_tables(dir, &mut skipped)?;
+    Ok(RunOutput {
+        dir: dir.to_path_buf(),
+        manifest,
+        arrays,
+        tables,
+        skipped,
+    })
+}
+
+fn parse_manifest(raw: Value) -> Manifest {
+    let units = raw
+        .get("units")
+        .and_then(Value::as_array)
+        .map(|u| u.iter().map(parse_unit).collect())
+        .unwrap_or_default();
+    let warnings = raw
+        .get("warnings")
+        .and_then(Value::as_array)
+        .map(|w| w.iter().map(warning_text).collect())
+        .unwrap_or_default();
+    Manifest {
+        epochs: raw.get("epochs").cloned().unwrap_or(Value::Null),
+        units,
+        warnings,
+        raw,
+    }
+}
+
+/// A string field, or empty.
+pub fn str_of(v: &Value, key: &str) -> String {
+    match v.get(key) {
+        Some(Value::String(s)) => s.clone(),
+        Some(Value::Null) | None => String::new(),
+        Some(other) => other.to_string(),
+    }
+}
+
+fn parse_unit(v: &Value) -> Unit {
+    let subject = match v.get("subject") {
+        Some(Value::String(s)) => Some(s.clone()),
+        _ => None,
+    };
+    let inputs = v
+        .get("inputs")
+        .and_then(Value::as_array)
+        .map(|a| {
+            a.iter()
+                .filter_map(|i| match i {
+                    Value::String(s) => Some(s.clone()),
+                    Value::Object(_) => i.get("key").and_then(Value::as_str).map(str::to_string),
+                    _ => None,
+                })
+                .collect()
+        })
+        .unwrap_or_default();
+    let shapes = v
+        .get("outputs")
+        .and_then(Value::as_array)
+        .map(|o| {
+            o.iter()
+                .filter_map(|out| shape_of(out.get("shape")))
+                .collect()
+        })
+        .unwrap_or_default();
+    Unit {
+        stage: str_of(v, "stage"),
+        subject,
+        op: str_of(v, "op"),
+        params: v.get("params").cloned().unwrap_or(Value::Null),
+        key: str_of(v, "key"),
+        inputs,
+        status: str_of(v, "status"),
+        seconds: v.get("seconds").and_then(Value::as_f64),
+        shapes,
+    }
+}
+
+fn shape_of(v: Option<&Value>) -> Option<Vec<usize>> {
+    v?.as_array()?
+        .iter()
+        .map(|d| d.as_u64().map(|d| d as usize))
+        .collect()
+}
+
+/// One line of text for a warning recorded as a string or as an object.
+fn warning_text(w: &Value) -> String {
+    match w {
+        Value::String(s) => s.clone(),
+        Value::Object(_) => {
+            let msg = ["message", "msg", "text"]
+                .iter()
+                .map(|k| str_of(w, k))
+                .find(|s| !s.is_empty())
+                .unwrap_or_else(|| w.to_string());
+            let place: Vec<String> = ["stage", "subject"]
+                .iter()
+                .map(|k| str_of(w, k))
+                .filter(|s| !s.is_empty())
+                .collect();
+            if place.is_empty() {
+                msg
+            } else {
+                format!("[{}] {msg}", place.join(" · "))
+            }
+        }
+        other => other.to_string(),
+    }
+}
+
+fn sorted_entries(dir: &Path) -> Result<Vec<PathBuf>, ReportError> {
+    let rd = fs::read_dir(dir).map_err(|e| ReportError::io(dir, e))?;
+    let mut out: Vec<PathBuf> = rd.filter_map(|e| e.ok().map(|e| e.path())).collect();
+    out.sort();
+    Ok(out)
+}
+
+fn find_arrays(dir: &Path, skipped: &mut Vec<String>) -> Result<Vec<Exported>, ReportError> {
+    let mut out = Vec::new();
+    for sub in sorted_entries(dir)? {
+        // Subject folders and `group`; the report's own `figures` folder holds no arrays.
+        if !sub.is_dir() || sub.file_name().is_some_and(|n| n == "figures") {
+            continue;
+        }
+        let owner = file_name(&sub);
+        for f in sorted_entries(&sub)? {
+            if f.extension().is_some_and(|e| e == "npy") {
+                match read_sidecar(&f.with_extension("json")) {
+                    Ok(sidecar) => out.push(Exported {
+                        owner: owner.clone(),
+                        stage: file_stem(&f),
+                        npy: f,
+                        sidecar,
+                    }),
+                    Err(msg) => skipped.push(format!("{}: {msg}", f.display())),
+                }
+            }
+        }
+    }
+    Ok(out)
+}
+
+fn file_name(p: &Path) -> String {
+    p.file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default()
+}
+
+fn file_stem(p: &Path) -> String {
+    p.file_stem()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default()
+}
+
+/// Reads a sidecar: the layout fields at the top level, or under `layout`.
+pub fn read_sidecar(path: &Path) -> Result<Sidecar, String> {
+    let text = fs::read_to_string(path)
+        .map_err(|e| format!("no readable sidecar {} ({e})", path.display()))?;
+    let v: Value =
+        serde_json::from_str(&text).map_err(|e| format!("sidecar is not valid JSON ({e})"))?;
+    let body = if v.get("dims").is_some() {
+        &v
+    } else {
+        v.get("layout").unwrap_or(&v)
+    };
+    let dims: Vec<String> =
+        serde_json::from_value(body.get("dims").cloned().unwrap_or(Value::Null))
+            .map_err(|e| format!("sidecar `dims` should be a list of axis names ({e})"))?;
+    let coords: Vec<Coord> = serde_json::from_value(
+        body.get("coords").cloned().unwrap_or(Value::Null),
+    )
+    .map_err(|e| format!("sidecar `coords` should be one {{kind, values}} list per axis ({e})"))?;
+    if dims.len() != coords.len() {
+        return Err(format!(
+            "sidecar has {} axis names but {} coordinate lists",
+            dims.len(),
+            coords.len()
+        ));
+    }
+    Ok(Sidecar {
+        dims,
+        coords,
+        units: str_of(body, "units"),
+        meta: body.get("meta").cloned().unwrap_or(Value::Null),
+    })
+}
+
+/// Reads an exported array's values as f32 (f64 files are narrowed; complex ones refused).
+pub fn read_values(a: &Exported) -> Result<ArrayD<f32>, String> {
+    use ndarray_npy::read_npy;
+    let shape: Vec<usize> = a.sidecar.coords.iter().map(Coord::len).collect();
+    let values: ArrayD<f32> = match read_npy::<_, ArrayD<f32>>(&a.npy) {
+        Ok(v) => v,
+        Err(first) => match read_npy::<_, ArrayD<f64>>(&a.npy) {
+            Ok(v) => v.mapv(|x| x as f32),
+            Err(_) => return Err(format!("cannot read it as a real float array ({first})")),
+        },
+    };
+    if values.shape() != shape.as_slice() {
+        return Err(format!(
+            "its shape {:?} does not match the sidecar's coordinates {:?}",
+            values.shape(),
+            shape
+        ));
+    }
+    Ok(values)
+}
+
+/// Tables in the output folder (group stages) first, then in each subject folder.
+fn find_tables(dir: &Path, skipped: &mut Vec<String>) -> Result<Vec<Table>, ReportError> {
+    let mut out = Vec::new();
+    tables_in(dir, None, &mut out, skipped)?;
+    for sub in sorted_entries(dir)? {
+        if sub.is_dir() {
+            tables_in(&sub, Some(file_name(&sub)), &mut out, skipped)?;
+        }
+    }
+    Ok(out)
+}
+
+fn tables_in(
+    dir: &Path,
+    owner: Option<String>,
+    out: &mut Vec<Table>,
+    skipped: &mut Vec<String>,
+) -> Result<(), ReportError> {
+    for f in sorted_entries(dir)? {
+        if f.is_file() && f.extension().is_some_and(|e| e == "tsv") {
+            match fs::read_to_string(&f) {
+                Ok(text) => out.push(parse_tsv(&f, owner.clone(), &text)),
+                Err(e) => skipped.push(format!("{}: cannot read it ({e})", f.display())),
+            }
+        }
+    }
+    Ok(())
+}
+
+fn parse_tsv(path: &Path, owner: Option<String>, text: &str) -> Table {
+    let mut lines = text.lines().filter(|l| !l.trim().is_empty());
+    let header = lines
+        .next()
+        .map(|h| h.split('\t').map(str::to_string).collect())
+        .unwrap_or_default();
+    let rows = lines
+        .map(|l| l.split('\t').map(str::to_string).collect())
+        .collect();
+    Table {
+        owner,
+        stage: file_stem(path),
+        path: path.to_path_buf(),
+        header,
+        rows,
+    }
+}

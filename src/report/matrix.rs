@@ -1,0 +1,341 @@
+//! Channel × channel matrices: for each connectivity array, one figure per measure, band and
+//! window, with a panel per condition and one for the condition difference.
+//!
+//! Aggregated arrays bring their own `band` and `window` axes. Time–frequency arrays are
+//! averaged over each band (Hz) × window (s), inclusive, taken from the options, else from the
+//! `bands` and `windows` params of an `aggregate` stage in the manifest, else the whole range.
+
+use serde_json::Value;
+
+use super::axes::{self, GridAxis, Scale};
+use super::colour::MapKind;
+use super::cube::{self, NamedRange, Plane};
+use super::input::Manifest;
+use super::scene::{HAlign, VAlign, GREY};
+use super::tf::{self, HeatFigure, Loaded, BAR_TOTAL, PLOT_TOP};
+use super::{units_text, AxisInfo, Ctx, Draft, FigureKind, PanelInfo, ReportError};
+
+/// One matrix panel: a title and one value per pair of the array.
+struct MatrixPanel {
+    label: String,
+    by_pair: Vec<f64>,
+}
+
+/// Draws the matrices of one array.
+pub(crate) fn matrix_figures(
+    ctx: &mut Ctx<'_>,
+    l: &Loaded,
+    manifest: &Manifest,
+) -> Result<(), ReportError> {
+    let slices = slices(ctx, l, manifest);
+    let diff = tf::contrast(ctx, &l.cube.conditions, &l.source());
+    for m in 0..l.cube.measures.len() {
+        for (label, values) in &slices {
+            let what = format!("{} {} matrix {label}", l.source(), l.cube.measures[m]);
+            if !ctx.room_for(&what) {
+                return Ok(());
+            }
+            let panels = panels_for(l, m, values, diff);
+            ctx.emit(matrix_figure(l, m, label, &panels, diff.is_some()))?;
+        }
+    }
+    Ok(())
+}
+
+/// Value of (condition, measure, pair) in one band × window.
+type Slice<'a> = Box<dyn Fn(usize, usize, usize) -> f64 + 'a>;
+
+/// The band × window slices to draw, each with its label.
+fn slices<'a>(ctx: &Ctx<'_>, l: &'a Loaded, manifest: &Manifest) -> Vec<(String, Slice<'a>)> {
+    let cube = &l.cube;
+    let mut out: Vec<(String, Slice<'a>)> = Vec::new();
+    match (&cube.rows, &cube.cols, cube.plane) {
+        (GridAxis::Categories(bands), GridAxis::Categories(wins), Plane::BandWindow) => {
+            for (b, band) in bands.iter().enumerate() {
+                for (w, win) in wins.iter().enumerate() {
+                    let v = &cube.values;
+                    out.push((
+                        format!("{band} × {win}"),
+                        Box::new(move |c, m, p| v[[c, m, p, b, w]]),
+                    ));
+                }
+            }
+        }
+        (GridAxis::Numeric { centres: f, .. }, GridAxis::Numeric { centres: t, .. }, _) => {
+            let (bands, wins) = ranges(ctx, manifest, f, t);
+            for band in &bands {
+                for win in &wins {
+                    let label = format!(
+                        "{} ({}–{} Hz) × {} ({}–{} s)",
+                        band.name,
+                        axes::fmt_num(band.lo),
+                        axes::fmt_num(band.hi),
+                        win.name,
+                        axes::fmt_num(win.lo),
+                        axes::fmt_num(win.hi)
+                    );
+                    let (b, w) = (band.clone(), win.clone());
+                    out.push((
+                        label,
+                        Box::new(move |c, m, p| cube::range_mean(cube, c, m, p, &b, &w)),
+                    ));
+                }
+            }
+        }
+        _ => {}
+    }
+    out
+}
+
+/// Bands and windows for a time–frequency array.
+fn ranges(
+    ctx: &Ctx<'_>,
+    manifest: &Manifest,
+    f: &[f64],
+    t: &[f64],
+) -> (Vec<NamedRange>, Vec<NamedRange>) {
+    let whole = |name: &str, v: &[f64]| NamedRange {
+        name: name.to_string(),
+        lo: v.first().copied().unwrap_or(0.0),
+        hi: v.last().copied().unwrap_or(0.0),
+    };
+    let pick = |given: &Vec<NamedRange>, key: &str, fallback: NamedRange| {
+        if !given.is_empty() {
+            return given.clone();
+        }
+        let from_manifest = aggregate_ranges(manifest, key);
+        if from_manifest.is_empty() {
+            vec![fallback]
+        } else {
+            from_manifest
+        }
+    };
+    (
+        pick(&ctx.opts.bands, "bands", whole("all frequencies", f)),
+        pick(&ctx.opts.windows, "windows", whole("whole epoch", t)),
+    )
+}
+
+/// `{name: [lo, hi]}` ranges from the params of the first `aggregate` unit that has them.
+fn aggregate_ranges(manifest: &Manifest, key: &str) -> Vec<NamedRange> {
+    for u in manifest.units.iter().filter(|u| u.op == "aggregate") {
+        if let Some(Value::Object(map)) = u.params.get(key) {
+            let r: Vec<NamedRange> = map
+                .iter()
+                .filter_map(|(name, v)| {
+                    let a = v.as_array()?;
+                    Some(NamedRange {
+                        name: name.clone(),
+                        lo: a.first()?.as_f64()?,
+                        hi: a.get(1)?.as_f64()?,
+                    })
+                })
+                .collect();
+            if !r.is_empty() {
+                return r;
+            }
+        }
+    }
+    Vec::new()
+}
+
+fn panels_for(
+    l: &Loaded,
+    m: usize,
+    value: &Slice<'_>,
+    diff: Option<(usize, usize)>,
+) -> Vec<MatrixPanel> {
+    let np = l.cube.pairs.len();
+    let mut panels: Vec<MatrixPanel> = l
+        .cube
+        .conditions
+        .iter()
+        .enumerate()
+        .map(|(c, name)| MatrixPanel {
+            label: name.clone(),
+            by_pair: (0..np).map(|p| value(c, m, p)).collect(),
+        })
+        .collect();
+    if let Some((a, b)) = diff {
+        panels.push(MatrixPanel {
+            label: format!("{} \u{2212} {}", l.cube.conditions[a], l.cube.conditions[b]),
+            by_pair: (0..np).map(|p| value(a, m, p) - value(b, m, p)).collect(),
+        });
+    }
+    panels
+}
+
+/// Channels in order of first appearance in the pairs.
+fn channels(pairs: &[[String; 2]]) -> Vec<String> {
+    let mut out: Vec<String> = Vec::new();
+    for name in pairs.iter().flatten() {
+        if !out.contains(name) {
+            out.push(name.clone());
+        }
+    }
+    out
+}
+
+/// Square matrix [row][col] of a panel: both triangles hold the pair's value; NaN elsewhere.
+fn square(chans: &[String], pairs: &[[String; 2]], by_pair: &[f64]) -> Vec<Vec<f64>> {
+    let n = chans.len();
+    let mut m = vec![vec![f64::NAN; n]; n];
+    let idx = |name: &String| chans.iter().position(|c| c == name);
+    for (pair, v) in pairs.iter().zip(by_pair) {
+        if let (Some(a), Some(b)) = (idx(&pair[0]), idx(&pair[1])) {
+            m[a][b] = *v;
+            m[b][a] = *v;
+        }
+    }
+    m
+}
+
+fn matrix_figure(
+    l: &Loaded,
+    m: usize,
+    slice: &str,
+    panels: &[MatrixPanel],
+    has_diff: bool,
+) -> Draft {
+    let chans = channels(&l.cube.pairs);
+    let n = chans.len().max(1);
+    let cell = (240.0 / n as f64).clamp(8.0, 30.0);
+    let side = cell * n as f64;
+    let label_w = label_width(&chans);
+    let n_cond = panels.len() - usize::from(has_diff);
+    let groups = 1 + usize::from(has_diff);
+    let width = label_w + panels.len() as f64 * (side + label_w) + groups as f64 * BAR_TOTAL + 16.0;
+    // Column labels stand upright when a cell is too narrow for them (see axes::category_labels).
+    let below = if label_w - 12.0 + 2.0 <= cell {
+        24.0
+    } else {
+        label_w + 8.0
+    };
+    let height = PLOT_TOP + side + below + 8.0;
+    let measure = &l.cube.measures[m];
+    let title = format!("{} · {} · {} · {}", l.owner, l.stage, measure, slice);
+    let mut fig = HeatFigure::with_size(
+        &title,
+        &l.cube.fixed,
+        (width, height),
+        (side, side),
+        label_w,
+    );
+    let unit = units_text(&l.units);
+    let map = if l.signed {
+        MapKind::Diverging
+    } else {
+        MapKind::Sequential
+    };
+    let (cond, diff) = panels.split_at(n_cond);
+    group(
+        &mut fig,
+        &chans,
+        l,
+        cond,
+        map,
+        &format!("{measure} ({unit})"),
+    );
+    if let Some(d) = diff.first() {
+        group(
+            &mut fig,
+            &chans,
+            l,
+            diff,
+            MapKind::Diverging,
+            &format!("{} ({unit})", d.label),
+        );
+    }
+    let caption = format!(
+        "{measure} between every pair of channels in {} (stage {}), {slice}. Rows and columns are \
+         channels; grey: no value (the diagonal, or a pair not computed). Colour: {}.",
+        l.owner,
+        l.stage,
+        map.name()
+    );
+    let id = format!("matrix-{}-{}-{measure}-{slice}", l.owner, l.stage);
+    fig.finish(FigureKind::Matrix, &id, l.source(), caption)
+}
+
+/// Room for the channel labels beside and under a matrix.
+fn label_width(chans: &[String]) -> f64 {
+    chans
+        .iter()
+        .map(|c| axes::estimate_width(c, axes::TICK_PX))
+        .fold(0.0, f64::max)
+        + 12.0
+}
+
+/// Draws matrix panels sharing one colour bar.
+fn group(
+    fig: &mut HeatFigure,
+    chans: &[String],
+    l: &Loaded,
+    panels: &[MatrixPanel],
+    map: MapKind,
+    label: &str,
+) {
+    let range = cube::finite_range(panels.iter().flat_map(|p| p.by_pair.iter().copied()));
+    let (lo, hi) = range.unwrap_or((0.0, 0.0));
+    let scale = Scale::for_range(map, lo, hi);
+    let bar = fig.bars.len();
+    for p in panels {
+        let rect = fig.next_rect(label_width(chans));
+        let info = matrix_panel(fig, rect, chans, l, p, &scale, bar);
+        fig.panels.push(info);
+    }
+    fig.bar(scale, label, &l.units, range);
+}
+
+fn matrix_panel(
+    fig: &mut HeatFigure,
+    rect: [f64; 4],
+    chans: &[String],
+    l: &Loaded,
+    p: &MatrixPanel,
+    scale: &Scale,
+    bar: usize,
+) -> PanelInfo {
+    let sq = square(chans, &l.cube.pairs, &p.by_pair);
+    let axis = GridAxis::Categories(chans.to_vec());
+    let value = |r: usize, c: usize| sq[r][c];
+    axes::draw_cells(&mut fig.scene, rect, &axis, &axis, &value, scale);
+    fig.scene.frame(rect, GREY);
+    axes::category_labels(&mut fig.scene, rect, chans, true);
+    axes::category_labels(&mut fig.scene, rect, chans, false);
+    let mid = (rect[0] + rect[2]) / 2.0;
+    fig.scene.text(
+        (mid, rect[1] - 6.0),
+        p.label.clone(),
+        axes::TITLE_PX,
+        (HAlign::Centre, VAlign::Bottom),
+    );
+    let n = chans.len() as f64;
+    let axis_info = || AxisInfo {
+        name: "channel".to_string(),
+        lo: 0.0,
+        hi: n,
+        log: false,
+    };
+    let best = p
+        .by_pair
+        .iter()
+        .enumerate()
+        .filter(|(_, v)| v.is_finite())
+        .max_by(|a, b| a.1.total_cmp(b.1).then(b.0.cmp(&a.0)));
+    let peak = best.and_then(|(i, _)| {
+        let pair = l.cube.pairs.get(i)?;
+        let a = chans.iter().position(|c| *c == pair[0])?;
+        let b = chans.iter().position(|c| *c == pair[1])?;
+        Some((b as f64, a as f64))
+    });
+    PanelInfo {
+        label: p.label.clone(),
+        rect,
+        x: axis_info(),
+        y: axis_info(),
+        colour_bar: bar,
+        data_range: cube::finite_range(p.by_pair.iter().copied()),
+        peak,
+    }
+}

@@ -1,0 +1,486 @@
+//! Time–frequency maps: for each exported connectivity array with `freq` and `time` axes, one
+//! figure per measure and chosen pair, with a panel per condition (sharing one colour bar) and a
+//! panel for the condition difference (its own bar, diverging around zero).
+//!
+//! Also loads the drawable arrays once for this module and [`super::matrix`], deciding for each
+//! whether its values are signed (baseline-normalised or both signs present), which selects the
+//! diverging colour map centred on zero.
+
+use super::axes::{self, GridAxis, PixelMap, Scale};
+use super::colour::MapKind;
+use super::cube::{self, Cube, Plane};
+use super::input::{self, Exported, RunOutput};
+use super::scene::{HAlign, Scene, VAlign};
+use super::{
+    graph, units_text, AxisInfo, ColourBarInfo, Ctx, Draft, FigureKind, PanelInfo, ReportError,
+};
+
+/// A drawable array: where it came from, its cube, and how to colour it.
+pub(crate) struct Loaded {
+    pub owner: String,
+    pub stage: String,
+    pub units: String,
+    pub cube: Cube,
+    /// Signed values: draw with the diverging map, symmetric around zero.
+    pub signed: bool,
+}
+
+impl Loaded {
+    /// `sub-01/norm`.
+    pub fn source(&self) -> String {
+        format!("{}/{}", self.owner, self.stage)
+    }
+}
+
+/// Reads every exported array that has a pair axis and a plane to draw on; records the rest.
+pub(crate) fn load_cubes(ctx: &mut Ctx<'_>, run: &RunOutput) -> Vec<Loaded> {
+    let mut out = Vec::new();
+    for a in &run.arrays {
+        let Some(plane) = Plane::of(&a.sidecar.dims) else {
+            ctx.not_drawn.push(format!(
+                "{}/{} (axes [{}]): not a connectivity array with pair and freq × time or band × window axes",
+                a.owner,
+                a.stage,
+                a.sidecar.dims.join(", ")
+            ));
+            continue;
+        };
+        match load_one(a, plane, run) {
+            Ok(l) => out.push(l),
+            Err(why) => ctx
+                .not_drawn
+                .push(format!("{}/{}: {why}", a.owner, a.stage)),
+        }
+    }
+    out
+}
+
+fn load_one(a: &Exported, plane: Plane, run: &RunOutput) -> Result<Loaded, String> {
+    let values = input::read_values(a)?;
+    let cube = cube::build(&a.sidecar, &values, plane)?;
+    let units = a.sidecar.units.clone();
+    let both_signs = cube::finite_range(cube.values.iter().copied())
+        .is_some_and(|(lo, hi)| lo < 0.0 && hi > 0.0);
+    let normalised = matches!(units.as_str(), "%" | "dB" | "z");
+    let after_baseline = graph::upstream_ops(&run.manifest, &a.stage)
+        .iter()
+        .any(|op| op == "baseline");
+    Ok(Loaded {
+        owner: a.owner.clone(),
+        stage: a.stage.clone(),
+        units,
+        cube,
+        signed: both_signs || normalised || after_baseline,
+    })
+}
+
+/// The pairs to draw for measure `m`: the requested ones present in the array, else the
+/// `strongest` pairs by mean absolute value over conditions, frequencies and times.
+pub(crate) fn chosen_pairs(ctx: &mut Ctx<'_>, l: &Loaded, m: usize) -> Vec<usize> {
+    let cube = &l.cube;
+    if !ctx.opts.pairs.is_empty() {
+        let mut found = Vec::new();
+        for want in &ctx.opts.pairs {
+            let hit = cube.pairs.iter().position(|p| {
+                (p[0] == want[0] && p[1] == want[1]) || (p[0] == want[1] && p[1] == want[0])
+            });
+            match hit {
+                Some(i) => found.push(i),
+                None => ctx.not_drawn.push(format!(
+                    "{}: pair {}–{} is not in this array",
+                    l.source(),
+                    want[0],
+                    want[1]
+                )),
+            }
+        }
+        return found;
+    }
+    let mut strength: Vec<(usize, f64)> = (0..cube.pairs.len())
+        .map(|p| (p, mean_abs(cube, m, p)))
+        .filter(|(_, s)| s.is_finite())
+        .collect();
+    // Strongest first; ties keep pair order so the choice is deterministic.
+    strength.sort_by(|a, b| b.1.total_cmp(&a.1).then(a.0.cmp(&b.0)));
+    strength
+        .into_iter()
+        .take(ctx.opts.strongest)
+        .map(|(p, _)| p)
+        .collect()
+}
+
+fn mean_abs(cube: &Cube, m: usize, p: usize) -> f64 {
+    let (mut sum, mut n) = (0.0, 0usize);
+    for c in 0..cube.conditions.len() {
+        for v in cube.values.slice(ndarray::s![c, m, p, .., ..]).iter() {
+            if v.is_finite() {
+                sum += v.abs();
+                n += 1;
+            }
+        }
+    }
+    if n == 0 {
+        f64::NAN
+    } else {
+        sum / n as f64
+    }
+}
+
+/// The (a, b) condition indices of the difference to draw, if there are two conditions to use.
+pub(crate) fn contrast(
+    ctx: &mut Ctx<'_>,
+    conditions: &[String],
+    source: &str,
+) -> Option<(usize, usize)> {
+    if let Some([a, b]) = &ctx.opts.contrast {
+        let ia = conditions.iter().position(|c| c == a);
+        let ib = conditions.iter().position(|c| c == b);
+        return match (ia, ib) {
+            (Some(ia), Some(ib)) => Some((ia, ib)),
+            _ => {
+                ctx.not_drawn.push(format!(
+                    "{source}: contrast {a} − {b} not drawn, its conditions are [{}]",
+                    conditions.join(", ")
+                ));
+                None
+            }
+        };
+    }
+    (conditions.len() >= 2).then_some((0, 1))
+}
+
+/// Draws the time–frequency figures of one array.
+pub(crate) fn tf_figures(ctx: &mut Ctx<'_>, l: &Loaded) -> Result<(), ReportError> {
+    if l.cube.plane != Plane::FreqTime {
+        return Ok(());
+    }
+    let diff = contrast(ctx, &l.cube.conditions, &l.source());
+    for m in 0..l.cube.measures.len() {
+        for p in chosen_pairs(ctx, l, m) {
+            let what = format!(
+                "{} {} {}–{}",
+                l.source(),
+                l.cube.measures[m],
+                l.cube.pairs[p][0],
+                l.cube.pairs[p][1]
+            );
+            if !ctx.room_for(&what) {
+                return Ok(());
+            }
+            let draft = tf_figure(l, m, p, diff);
+            ctx.emit(draft)?;
+        }
+    }
+    Ok(())
+}
+
+/// Layout constants of a time–frequency figure, in layout pixels.
+const PLOT_W: f64 = 240.0;
+const PLOT_H: f64 = 190.0;
+const LEFT: f64 = 66.0;
+const GAP: f64 = 48.0;
+const TOP: f64 = 54.0;
+const BAR_GAP: f64 = 12.0;
+const BAR_W: f64 = 14.0;
+const BAR_ROOM: f64 = 76.0;
+
+/// One panel's data: a title and a value function over (row, column).
+pub(crate) struct PanelData<'a> {
+    pub label: String,
+    pub value: Box<dyn Fn(usize, usize) -> f64 + 'a>,
+}
+
+fn tf_figure(l: &Loaded, m: usize, p: usize, diff: Option<(usize, usize)>) -> Draft {
+    let cube = &l.cube;
+    let measure = &cube.measures[m];
+    let pair = &cube.pairs[p];
+    let conds: Vec<PanelData<'_>> = (0..cube.conditions.len())
+        .map(|c| PanelData {
+            label: cube.conditions[c].clone(),
+            value: Box::new(move |r, col| cube.values[[c, m, p, r, col]]),
+        })
+        .collect();
+    let diff_panel = diff.map(|(a, b)| PanelData {
+        label: format!("{} \u{2212} {}", cube.conditions[a], cube.conditions[b]),
+        value: Box::new(move |r, col| {
+            cube.values[[a, m, p, r, col]] - cube.values[[b, m, p, r, col]]
+        }),
+    });
+    let unit = units_text(&l.units);
+    let title = format!(
+        "{} · {} · {} · {}–{}",
+        l.owner, l.stage, measure, pair[0], pair[1]
+    );
+    let mut fig = HeatFigure::new(
+        &title,
+        &cube.fixed,
+        conds.len() + usize::from(diff_panel.is_some()),
+        2,
+    );
+    let map = if l.signed {
+        MapKind::Diverging
+    } else {
+        MapKind::Sequential
+    };
+    fig.group(cube, &conds, map, &format!("{measure} ({unit})"), &l.units);
+    if let Some(d) = &diff_panel {
+        let label = format!("{} ({unit})", d.label);
+        fig.group(
+            cube,
+            std::slice::from_ref(d),
+            MapKind::Diverging,
+            &label,
+            &l.units,
+        );
+    }
+    let caption =
+        format!(
+        "{measure} between {} and {} in {} (stage {}), by time (s, 0 = event onset, dashed) and \
+         frequency (Hz, log scale). Colour: {}.{}",
+        pair[0],
+        pair[1],
+        l.owner,
+        l.stage,
+        map.name(),
+        if diff_panel.is_some() { " The difference panel has its own diverging scale." } else { "" }
+    );
+    fig.finish(
+        FigureKind::TimeFrequency,
+        &format!(
+            "tf-{}-{}-{measure}-{}-{}",
+            l.owner, l.stage, pair[0], pair[1]
+        ),
+        l.source(),
+        caption,
+    )
+}
+
+/// A row of heat-map panels in groups, each group followed by its colour bar.
+pub(crate) struct HeatFigure {
+    pub scene: Scene,
+    pub title: String,
+    pub panels: Vec<PanelInfo>,
+    pub bars: Vec<ColourBarInfo>,
+    x: f64,
+    /// Plot size of each panel (matrices set their own).
+    pub plot: (f64, f64),
+}
+
+impl HeatFigure {
+    /// A figure for `n_panels` time–frequency panels in `n_groups` groups.
+    pub fn new(title: &str, fixed: &[String], n_panels: usize, n_groups: usize) -> Self {
+        let width = LEFT
+            + n_panels as f64 * PLOT_W
+            + (n_panels.saturating_sub(1)) as f64 * GAP
+            + n_groups as f64 * (BAR_GAP + BAR_W + BAR_ROOM)
+            + 10.0;
+        Self::with_size(
+            title,
+            fixed,
+            (width, TOP + PLOT_H + 50.0),
+            (PLOT_W, PLOT_H),
+            LEFT,
+        )
+    }
+
+    /// A figure of a given size, panel plot size and left margin.
+    pub fn with_size(
+        title: &str,
+        fixed: &[String],
+        size: (f64, f64),
+        plot: (f64, f64),
+        left: f64,
+    ) -> Self {
+        let mut scene = Scene::new(size.0, size.1);
+        scene.text((16.0, 10.0), title, 15.0, (HAlign::Left, VAlign::Top));
+        if !fixed.is_empty() {
+            let note = format!("({})", fixed.join(", "));
+            scene.text_in(
+                (size.0 - 10.0, 12.0),
+                note,
+                axes::TICK_PX,
+                (HAlign::Right, VAlign::Top),
+                super::scene::GREY,
+            );
+        }
+        HeatFigure {
+            scene,
+            title: title.to_string(),
+            panels: Vec::new(),
+            bars: Vec::new(),
+            x: left,
+            plot,
+        }
+    }
+
+    /// Draws a group of time–frequency panels sharing one colour bar.
+    pub fn group(
+        &mut self,
+        cube: &Cube,
+        panels: &[PanelData<'_>],
+        map: MapKind,
+        bar_label: &str,
+        units: &str,
+    ) {
+        let (nr, nc) = (cube.rows.len(), cube.cols.len());
+        let range = cube::finite_range(
+            panels
+                .iter()
+                .flat_map(|pd| (0..nr).flat_map(move |r| (0..nc).map(move |c| (pd.value)(r, c)))),
+        );
+        let (lo, hi) = range.unwrap_or((0.0, 0.0));
+        let scale = Scale::for_range(map, lo, hi);
+        let bar = self.bars.len();
+        for pd in panels {
+            let first = self.panels.is_empty();
+            let rect = self.next_rect(GAP);
+            let info = tf_panel(&mut self.scene, rect, cube, pd, &scale, bar, first);
+            self.panels.push(info);
+        }
+        self.bar(scale, bar_label, units, range);
+    }
+
+    /// Draws the colour bar of the panels just drawn.
+    pub fn bar(&mut self, scale: Scale, label: &str, units: &str, range: Option<(f64, f64)>) {
+        let rect = [
+            self.x + BAR_GAP,
+            TOP,
+            self.x + BAR_GAP + BAR_W,
+            TOP + self.plot.1,
+        ];
+        axes::colour_bar(&mut self.scene, rect, &scale, label);
+        self.bars.push(ColourBarInfo {
+            label: label.to_string(),
+            units: units.to_string(),
+            map: scale.map,
+            vmin: scale.vmin,
+            vmax: scale.vmax,
+            data_range: range,
+        });
+        self.x += BAR_GAP + BAR_W + BAR_ROOM;
+    }
+
+    /// Reserves room for the next panel after a gap of `gap` and returns its plot rectangle.
+    pub fn next_rect(&mut self, gap: f64) -> [f64; 4] {
+        if !self.panels.is_empty() {
+            self.x += gap;
+        }
+        let rect = [self.x, TOP, self.x + self.plot.0, TOP + self.plot.1];
+        self.x += self.plot.0;
+        rect
+    }
+
+    /// The figure as a draft.
+    pub fn finish(self, kind: FigureKind, id: &str, source: String, caption: String) -> Draft {
+        Draft {
+            kind,
+            id: id.to_string(),
+            title: self.title,
+            source,
+            caption,
+            scene: self.scene,
+            panels: self.panels,
+            colour_bars: self.bars,
+        }
+    }
+}
+
+/// Top of the plot rectangles.
+pub(crate) const PLOT_TOP: f64 = TOP;
+/// Width a colour bar with its labels takes.
+pub(crate) const BAR_TOTAL: f64 = BAR_GAP + BAR_W + BAR_ROOM;
+
+fn tf_panel(
+    scene: &mut Scene,
+    rect: [f64; 4],
+    cube: &Cube,
+    pd: &PanelData<'_>,
+    scale: &Scale,
+    bar: usize,
+    first: bool,
+) -> PanelInfo {
+    let (xm, ym) = axes::draw_cells(
+        scene,
+        rect,
+        &cube.cols,
+        &cube.rows,
+        &|r, c| (pd.value)(r, c),
+        scale,
+    );
+    scene.frame(rect, super::scene::GREY);
+    if xm.lo < 0.0 && xm.hi > 0.0 {
+        // The onset line must stand out from the map's own colours: white on the dark-to-light
+        // sequential map, dark on the diverging map whose centre is near white.
+        let ink = match scale.map {
+            MapKind::Sequential => [255, 255, 255],
+            MapKind::Diverging => [40, 40, 48],
+        };
+        let x0 = xm.to_px(0.0);
+        scene.dashed((x0, rect[1]), (x0, rect[3]), ink, 4.0);
+    }
+    axes::x_numeric_axis(scene, rect, &xm, "time (s)");
+    axes::y_numeric_axis(scene, rect, &ym, first.then_some("frequency (Hz)"));
+    let mid = (rect[0] + rect[2]) / 2.0;
+    scene.text(
+        (mid, rect[1] - 6.0),
+        pd.label.clone(),
+        axes::TITLE_PX,
+        (HAlign::Centre, VAlign::Bottom),
+    );
+    panel_info(
+        &pd.label,
+        rect,
+        cube,
+        &|r, c| (pd.value)(r, c),
+        bar,
+        (&xm, &ym),
+    )
+}
+
+/// Summary of a drawn panel: its rectangle, axes, value range and the place of its maximum.
+pub(crate) fn panel_info(
+    label: &str,
+    rect: [f64; 4],
+    cube: &Cube,
+    value: &dyn Fn(usize, usize) -> f64,
+    bar: usize,
+    maps: (&PixelMap, &PixelMap),
+) -> PanelInfo {
+    let (nr, nc) = (cube.rows.len(), cube.cols.len());
+    let mut best: Option<(f64, usize, usize)> = None;
+    for r in 0..nr {
+        for c in 0..nc {
+            let v = value(r, c);
+            if v.is_finite() && best.is_none_or(|b| v > b.0) {
+                best = Some((v, r, c));
+            }
+        }
+    }
+    let centre = |axis: &GridAxis, i: usize| match axis {
+        GridAxis::Numeric { centres, .. } => centres.get(i).copied().unwrap_or(f64::NAN),
+        GridAxis::Categories(_) => i as f64,
+    };
+    let axis_info = |name: &str, m: &PixelMap| AxisInfo {
+        name: name.to_string(),
+        lo: m.lo,
+        hi: m.hi,
+        log: m.log,
+    };
+    let (xname, yname) = match cube.plane {
+        Plane::FreqTime => ("time", "freq"),
+        Plane::BandWindow => ("window", "band"),
+    };
+    PanelInfo {
+        label: label.to_string(),
+        rect,
+        x: axis_info(xname, maps.0),
+        y: axis_info(yname, maps.1),
+        colour_bar: bar,
+        data_range: cube::finite_range(
+            (0..nr)
+                .flat_map(|r| (0..nc).map(move |c| (r, c)))
+                .map(|(r, c)| value(r, c)),
+        ),
+        peak: best.map(|(_, r, c)| (centre(&cube.cols, c), centre(&cube.rows, r))),
+    }
+}

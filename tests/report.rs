@@ -1,0 +1,536 @@
+//! The HTML run report, rendered from a synthetic output folder built here (manifest, exported
+//! arrays with sidecars, a group table), with a planted blob in one pair's time–frequency map.
+//!
+//! Checked against things the report code did not produce: the PNG files decode with the `png`
+//! crate (PNG specification, ISO/IEC 15948), the SVG files parse as XML with `roxmltree`, the
+//! colour-bar limits equal the range of the arrays as written here, and the planted blob is
+//! found in the decoded pixels by its colour: the top entry of the published viridis table
+//! (mpl-colormaps, CC0) for sequential maps, and the published warm end colour of Moreland's
+//! cool–warm map (Moreland 2009) for diverging ones.
+//!
+//! Set `PHASEWISE_REPORT_KEEP=DIR` to keep the rendered report in DIR (the browser check script,
+//! tests/browser-check.sh, uses that).
+
+use std::fs;
+use std::path::{Path, PathBuf};
+
+use ndarray::{ArrayD, IxDyn};
+use phasewise::report::{
+    write_report, FigureInfo, FigureKind, MapKind, ReportOptions, ReportSummary,
+};
+use phasewise_stages::array::Coord;
+use serde_json::{json, Value};
+
+const CHANNELS: [&str; 4] = ["Fz", "Cz", "Pz", "Oz"];
+/// The planted blob: pair Fz–Pz, measure plv, condition A, at 6 Hz and 0.45 s.
+const BLOB_T: f64 = 0.45;
+const BLOB_F: f64 = 6.0;
+
+fn pairs() -> Vec<[String; 2]> {
+    let mut out = Vec::new();
+    for (i, a) in CHANNELS.iter().enumerate() {
+        for b in &CHANNELS[i + 1..] {
+            out.push([a.to_string(), b.to_string()]);
+        }
+    }
+    out
+}
+
+fn blob_pair() -> usize {
+    pairs()
+        .iter()
+        .position(|p| p[0] == "Fz" && p[1] == "Pz")
+        .unwrap()
+}
+
+fn freqs() -> Vec<f64> {
+    (0..16).map(|i| 3.0 * 10f64.powf(i as f64 / 15.0)).collect()
+}
+
+fn times() -> Vec<f64> {
+    (0..76).map(|i| -0.5 + 0.02 * i as f64).collect()
+}
+
+/// Deterministic noise in [-1, 1) (a fixed integer hash; no randomness in tests).
+fn noise(i: usize) -> f64 {
+    let mut x = (i as u64).wrapping_mul(0x9E37_79B9_7F4A_7C15) ^ 0x5851_F42D_4C95_7F2D;
+    x ^= x >> 29;
+    x = x.wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    x ^= x >> 32;
+    (x % 20_000) as f64 / 10_000.0 - 1.0
+}
+
+/// A [condition, measure, pair, freq, time] array: `base + spread·noise`, plus a Gaussian blob
+/// of height `blob` in condition A, measure plv, pair Fz–Pz.
+fn tf_values(base: f64, spread: f64, blob: f64) -> ArrayD<f32> {
+    let (f, t, np) = (freqs(), times(), pairs().len());
+    let shape = [2, 2, np, f.len(), t.len()];
+    let mut k = 0;
+    ArrayD::from_shape_fn(IxDyn(&shape), |ix| {
+        k += 1;
+        let (c, m, p, fi, ti) = (ix[0], ix[1], ix[2], ix[3], ix[4]);
+        let mut v = base + spread * noise(k);
+        if c == 0 && m == 0 && p == blob_pair() {
+            let df = (f[fi] / BLOB_F).ln() / 0.15;
+            let dt = (t[ti] - BLOB_T) / 0.08;
+            v += blob * (-(df * df + dt * dt) / 2.0).exp();
+        }
+        v as f32
+    })
+}
+
+fn tf_coords() -> Vec<Coord> {
+    vec![
+        Coord::Labels(vec!["A".into(), "B".into()]),
+        Coord::Labels(vec!["plv".into(), "wpli".into()]),
+        Coord::Pairs(pairs()),
+        Coord::Numbers(freqs()),
+        Coord::Numbers(times()),
+    ]
+}
+
+fn write_array(
+    dir: &Path,
+    owner: &str,
+    stage: &str,
+    dims: &[&str],
+    coords: Vec<Coord>,
+    units: &str,
+    v: &ArrayD<f32>,
+) {
+    let sub = dir.join(owner);
+    fs::create_dir_all(&sub).unwrap();
+    ndarray_npy::write_npy(sub.join(format!("{stage}.npy")), v).unwrap();
+    let sidecar = json!({
+        "stage": stage, "subject": owner, "dims": dims, "coords": coords,
+        "units": units, "meta": {}, "dtype": "<f4", "shape": v.shape(),
+    });
+    fs::write(
+        sub.join(format!("{stage}.json")),
+        serde_json::to_vec_pretty(&sidecar).unwrap(),
+    )
+    .unwrap();
+}
+
+fn unit(
+    stage: &str,
+    subject: Option<&str>,
+    op: &str,
+    inputs: &[String],
+    status: &str,
+    shape: &[usize],
+) -> Value {
+    let key = format!("key-{stage}-{}", subject.unwrap_or("group"));
+    json!({
+        "stage": stage, "subject": subject, "op": op, "op_version": 1, "params": {}, "key": key,
+        "inputs": inputs, "outputs": [{"file": null, "blake3": "00", "shape": shape, "dtype": "<f4"}],
+        "status": status, "seconds": 0.25,
+    })
+}
+
+fn key(stage: &str, subject: &str) -> String {
+    format!("key-{stage}-{subject}")
+}
+
+fn manifest() -> Value {
+    let chain = [
+        ("reref", "re-reference"),
+        ("trials", "epoch"),
+        ("tf", "wavelet"),
+        ("sync", "clustering"),
+        ("norm", "baseline"),
+    ];
+    let mut units = Vec::new();
+    for (s, status) in [("sub-01", "computed"), ("sub-02", "cached")] {
+        let mut prev = format!("file-{s}");
+        for (stage, op) in chain {
+            units.push(unit(stage, Some(s), op, &[prev.clone()], status, &[2]));
+            prev = key(stage, s);
+        }
+    }
+    let mut agg = unit(
+        "group",
+        None,
+        "aggregate",
+        &[key("norm", "sub-01"), key("norm", "sub-02")],
+        "computed",
+        &[3],
+    );
+    agg["params"] = json!({"over": "subjects", "bands": {"theta": [4.0, 8.0]}, "windows": {"late": [0.3, 0.7]}});
+    units.push(agg);
+    let counts = json!({"A": {"kept": 38, "dropped": 1, "rejected": 1}, "B": {"kept": 40, "dropped": 0, "rejected": 0}});
+    json!({
+        "format": "phasewise-manifest", "format_version": 1,
+        "tool": {"name": "phasewise", "version": "0.1.0", "revision": "test"},
+        "platform": {"os": "linux", "arch": "x86_64"},
+        "pipeline": {"path": "demo.yaml", "blake3": "ab", "name": "synthetic-report-test", "overrides": [], "subjects": null, "stages": []},
+        "inputs": [{"path": "a.edf", "size": 1000, "blake3": "cd"}, {"path": "b.edf", "size": 1200, "blake3": "ef"}],
+        "units": units,
+        "epochs": {"sub-01": {"trials": counts}, "sub-02": {"trials": counts}},
+        "warnings": [{"stage": "tf", "subject": "sub-02", "message": "the wavelet at 3 Hz is longer than the buffer"}],
+        "started": "2026-01-01T00:00:00Z", "finished": "2026-01-01T00:01:00Z",
+        "future_field": {"ignored": true},
+    })
+}
+
+/// Group aggregate [statistic, subject, condition, measure, pair, band, window]; the blob pair
+/// has the largest value in condition A.
+fn group_values() -> ArrayD<f32> {
+    let np = pairs().len();
+    ArrayD::from_shape_fn(IxDyn(&[3, 3, 2, 2, np, 1, 1]), |ix| {
+        let v = 0.02 * noise(1000 + ix[2] * 97 + ix[3] * 31 + ix[4] * 7 + ix[1] * 3 + ix[0]);
+        let planted = if ix[2] == 0 && ix[3] == 0 && ix[4] == blob_pair() {
+            0.3
+        } else {
+            0.0
+        };
+        (v + planted) as f32
+    })
+}
+
+struct Fixture {
+    _tmp: tempfile::TempDir,
+    out: PathBuf,
+    html: PathBuf,
+    norm: ArrayD<f32>,
+    sync: ArrayD<f32>,
+}
+
+fn fixture() -> Fixture {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("results");
+    fs::create_dir_all(&out).unwrap();
+    fs::write(
+        out.join("manifest.json"),
+        serde_json::to_vec_pretty(&manifest()).unwrap(),
+    )
+    .unwrap();
+    let dims = ["condition", "measure", "pair", "freq", "time"];
+    // Baseline-subtracted: values of both signs around zero.
+    let norm = tf_values(0.0, 0.03, 0.4);
+    write_array(&out, "sub-01", "norm", &dims, tf_coords(), "1", &norm);
+    // Raw phase locking: non-negative.
+    let sync = tf_values(0.2, 0.05, 0.5);
+    write_array(&out, "sub-02", "sync", &dims, tf_coords(), "1", &sync);
+    let mut gcoords = vec![
+        Coord::Labels(vec!["mean".into(), "sem".into(), "n".into()]),
+        Coord::Labels(vec!["sub-01".into(), "sub-02".into(), "group".into()]),
+    ];
+    gcoords.extend(tf_coords().into_iter().take(3));
+    gcoords.push(Coord::Labels(vec!["theta".into()]));
+    gcoords.push(Coord::Labels(vec!["late".into()]));
+    let gdims = [
+        "statistic",
+        "subject",
+        "condition",
+        "measure",
+        "pair",
+        "band",
+        "window",
+    ];
+    write_array(
+        &out,
+        "group",
+        "group",
+        &gdims,
+        gcoords,
+        "1",
+        &group_values(),
+    );
+    // Not drawable: epoched voltages.
+    let trials = ArrayD::from_elem(IxDyn(&[4, 2, 3]), 1e-6f32);
+    let tcoords = vec![
+        Coord::Labels(CHANNELS.iter().map(|c| c.to_string()).collect()),
+        Coord::Numbers(vec![0.0, 1.0]),
+        Coord::Numbers(vec![0.0, 0.01, 0.02]),
+    ];
+    write_array(
+        &out,
+        "sub-01",
+        "trials",
+        &["channel", "trial", "time"],
+        tcoords,
+        "V",
+        &trials,
+    );
+    let tsv = "subject\tcondition\tmeasure\tpair\tband\twindow\tmean\tsem\tn\n\
+               sub-01\tA\tplv\tFz-Pz\ttheta\tlate\t0.31\tn/a\t1\n\
+               group\tA\tplv\tFz-Pz\ttheta\tlate\t0.3\t0.01\t2\n";
+    fs::write(out.join("group.tsv"), tsv).unwrap();
+    let html = out.join("report.html");
+    Fixture {
+        _tmp: tmp,
+        out,
+        html,
+        norm,
+        sync,
+    }
+}
+
+fn render(f: &Fixture) -> ReportSummary {
+    let summary = write_report(&f.out, &f.html, &ReportOptions::default()).unwrap();
+    if let Ok(keep) = std::env::var("PHASEWISE_REPORT_KEEP") {
+        copy_report(&f.html, Path::new(&keep));
+    }
+    summary
+}
+
+fn copy_report(html: &Path, to: &Path) {
+    fs::create_dir_all(to.join("figures")).unwrap();
+    fs::copy(html, to.join("report.html")).unwrap();
+    for e in fs::read_dir(html.parent().unwrap().join("figures")).unwrap() {
+        let p = e.unwrap().path();
+        fs::copy(&p, to.join("figures").join(p.file_name().unwrap())).unwrap();
+    }
+}
+
+/// Decodes a PNG (png crate) into (width, height, RGB bytes).
+fn decode_png(bytes: &[u8]) -> (u32, u32, Vec<u8>) {
+    let decoder = png::Decoder::new(bytes);
+    let mut reader = decoder.read_info().expect("PNG header");
+    let mut buf = vec![0; reader.output_buffer_size()];
+    let info = reader.next_frame(&mut buf).expect("PNG data");
+    let channels = info.color_type.samples();
+    assert!(
+        channels >= 3,
+        "expected an RGB(A) PNG, got {:?}",
+        info.color_type
+    );
+    let rgb = buf[..info.buffer_size()]
+        .chunks(channels)
+        .flat_map(|px| px[..3].to_vec())
+        .collect();
+    (info.width, info.height, rgb)
+}
+
+fn tf_figure<'a>(s: &'a ReportSummary, source: &str, measure: &str, pair: &str) -> &'a FigureInfo {
+    s.figures
+        .iter()
+        .find(|f| {
+            f.kind == FigureKind::TimeFrequency
+                && f.source == source
+                && f.title.contains(&format!("· {measure} ·"))
+                && f.title.ends_with(pair)
+        })
+        .unwrap_or_else(|| panic!("no {measure} {pair} figure of {source}"))
+}
+
+/// Range over conditions of one measure and pair, and of the A − B difference, in f64.
+fn ranges(v: &ArrayD<f32>, m: usize, p: usize) -> ((f64, f64), (f64, f64)) {
+    let (mut lo, mut hi, mut dlo, mut dhi) = (f64::MAX, f64::MIN, f64::MAX, f64::MIN);
+    let (nf, nt) = (freqs().len(), times().len());
+    for fi in 0..nf {
+        for ti in 0..nt {
+            let a = f64::from(v[[0, m, p, fi, ti]]);
+            let b = f64::from(v[[1, m, p, fi, ti]]);
+            lo = lo.min(a).min(b);
+            hi = hi.max(a).max(b);
+            dlo = dlo.min(a - b);
+            dhi = dhi.max(a - b);
+        }
+    }
+    ((lo, hi), (dlo, dhi))
+}
+
+/// The pixel of `panel` (figure PNG) whose colour is nearest `target`, as (x, y) in PNG pixels.
+fn nearest_pixel(fig: &FigureInfo, panel: usize, target: [u8; 3]) -> (f64, f64) {
+    let (w, _, rgb) = decode_png(&fs::read(&fig.png).unwrap());
+    let r = fig.panels[panel].rect;
+    let s = fig.png_scale;
+    let mut best = (u32::MAX, 0.0, 0.0);
+    // Stay 2 px inside the frame so frame lines and ticks are not taken for cells.
+    for y in (r[1] * s) as usize + 2..(r[3] * s) as usize - 2 {
+        for x in (r[0] * s) as usize + 2..(r[2] * s) as usize - 2 {
+            let i = 3 * (y * w as usize + x);
+            let d: u32 = (0..3)
+                .map(|k| (rgb[i + k] as i32 - target[k] as i32).pow(2) as u32)
+                .sum();
+            if d < best.0 {
+                best = (d, x as f64 + 0.5, y as f64 + 0.5);
+            }
+        }
+    }
+    (best.1, best.2)
+}
+
+/// Data coordinates (time, freq) of a PNG pixel of a time–frequency panel.
+fn pixel_to_tf(fig: &FigureInfo, panel: usize, (px, py): (f64, f64)) -> (f64, f64) {
+    let p = &fig.panels[panel];
+    let s = fig.png_scale;
+    let (x0, y0, x1, y1) = (p.rect[0] * s, p.rect[1] * s, p.rect[2] * s, p.rect[3] * s);
+    let t = p.x.lo + (px - x0) / (x1 - x0) * (p.x.hi - p.x.lo);
+    assert!(p.y.log, "frequency axis should be logarithmic");
+    let frac = (y1 - py) / (y1 - y0);
+    let f = (p.y.lo.ln() + frac * (p.y.hi.ln() - p.y.lo.ln())).exp();
+    (t, f)
+}
+
+/// Top entry of the published viridis table (0.993248, 0.906157, 0.143936) in 8 bits.
+const VIRIDIS_TOP: [u8; 3] = [253, 231, 37];
+/// Warm end of Moreland's cool–warm map, as published.
+const MORELAND_WARM: [u8; 3] = [180, 4, 38];
+
+#[test]
+fn report_has_every_section_and_every_image_decodes() {
+    let f = fixture();
+    let s = render(&f);
+    let html = fs::read_to_string(&f.html).unwrap();
+    for id in [
+        "caution",
+        "summary",
+        "stages",
+        "epochs",
+        "warnings",
+        "tf-maps",
+        "matrices",
+        "tables",
+        "not-drawn",
+    ] {
+        assert!(
+            html.contains(&format!("<section id=\"{id}\">")),
+            "section {id} missing"
+        );
+        assert!(s.sections.iter().any(|x| x == id));
+    }
+    assert!(html.contains("not a clinical device") && html.contains("diagnosis or treatment"));
+    assert!(!html.contains("<script"), "the page needs no scripts");
+    assert!(
+        !html.contains("http://") && !html.contains("https://"),
+        "the page loads nothing from outside"
+    );
+    // Inline images: every data URI decodes as a PNG.
+    let uris: Vec<&str> = html
+        .split("src=\"data:image/png;base64,")
+        .skip(1)
+        .map(|r| &r[..r.find('"').unwrap()])
+        .collect();
+    assert_eq!(uris.len(), s.figures.len());
+    for u in &uris {
+        use base64::Engine;
+        let bytes = base64::engine::general_purpose::STANDARD.decode(u).unwrap();
+        let (w, h, _) = decode_png(&bytes);
+        assert!(w > 100 && h > 100);
+    }
+    // Linked files: each exists; PNGs decode, SVGs parse as XML with an <svg> root.
+    let hrefs: Vec<&str> = html
+        .split("href=\"")
+        .skip(1)
+        .map(|r| &r[..r.find('"').unwrap()])
+        .collect();
+    assert_eq!(hrefs.len(), 2 * s.figures.len());
+    for h in hrefs {
+        let p = f.html.parent().unwrap().join(h);
+        let bytes = fs::read(&p).unwrap_or_else(|e| panic!("{h}: {e}"));
+        if h.ends_with(".png") {
+            decode_png(&bytes);
+        } else {
+            assert!(h.ends_with(".svg"), "{h}");
+            let text = String::from_utf8(bytes).unwrap();
+            let doc = roxmltree::Document::parse(&text).unwrap_or_else(|e| panic!("{h}: {e}"));
+            assert_eq!(doc.root_element().tag_name().name(), "svg");
+        }
+    }
+    // What the manifest says is shown.
+    assert!(html.contains("synthetic-report-test"));
+    assert!(html.contains("the wavelet at 3 Hz is longer than the buffer"));
+    assert!(html.contains("<th>kept</th>") && html.contains("<td class=\"n\">38</td>"));
+    assert!(html.contains("<th>subject</th><th>stage</th><th>condition</th>"));
+    assert!(s.figures.iter().any(|f| f.kind == FigureKind::StageGraph));
+    assert!(
+        s.not_drawn.iter().any(|n| n.contains("sub-01/trials")),
+        "{:?}",
+        s.not_drawn
+    );
+    // The group table shows the group row, not the subject's.
+    assert!(html.contains("<td class=\"n\">0.3</td><td class=\"n\">0.01</td>"));
+    assert!(!html.contains("<td class=\"n\">0.31</td>"));
+}
+
+#[test]
+fn colour_bars_span_the_arrays_range() {
+    let f = fixture();
+    let s = render(&f);
+    let p = blob_pair();
+    // Non-negative phase locking: sequential map from the smallest to the largest value.
+    let fig = tf_figure(&s, "sub-02/sync", "plv", "Fz–Pz");
+    let ((lo, hi), (dlo, dhi)) = ranges(&f.sync, 0, p);
+    let bar = &fig.colour_bars[0];
+    assert_eq!(bar.map, MapKind::Sequential);
+    assert_eq!((bar.vmin, bar.vmax), (lo, hi));
+    // The difference is signed: diverging, symmetric around zero.
+    let diff = &fig.colour_bars[1];
+    assert_eq!(diff.map, MapKind::Diverging);
+    assert_eq!(diff.vmax, dlo.abs().max(dhi.abs()));
+    assert_eq!(diff.vmin, -diff.vmax);
+    assert_eq!(diff.data_range, Some((dlo, dhi)));
+    // Baseline-subtracted values: diverging, symmetric, reaching the largest magnitude.
+    let fig = tf_figure(&s, "sub-01/norm", "plv", "Fz–Pz");
+    let ((lo, hi), _) = ranges(&f.norm, 0, p);
+    let bar = &fig.colour_bars[0];
+    assert_eq!(bar.map, MapKind::Diverging);
+    assert_eq!(bar.vmax, lo.abs().max(hi.abs()));
+    assert_eq!(bar.data_range, Some((lo, hi)));
+    // The HTML states the same limits as data attributes.
+    let html = fs::read_to_string(&f.html).unwrap();
+    assert!(html.contains(&format!(
+        "data-vmin=\"{}\" data-vmax=\"{}\"",
+        bar.vmin, bar.vmax
+    )));
+}
+
+#[test]
+fn planted_blob_is_drawn_where_it_was_planted() {
+    let f = fixture();
+    let s = render(&f);
+    // The blob pair is among the strongest pairs picked by default, for both arrays.
+    for (source, colour) in [("sub-02/sync", VIRIDIS_TOP), ("sub-01/norm", MORELAND_WARM)] {
+        let fig = tf_figure(&s, source, "plv", "Fz–Pz");
+        assert_eq!(fig.panels[0].label, "A");
+        let px = nearest_pixel(fig, 0, colour);
+        let (t, fr) = pixel_to_tf(fig, 0, px);
+        // The blob is centred between grid points (time step 0.02 s, frequency step a factor
+        // 10^(1/15) ≈ 1.166) and noise may move its top by a cell: allow about two cells.
+        assert!(
+            (t - BLOB_T).abs() <= 0.05,
+            "{source}: strongest colour at t = {t}"
+        );
+        assert!(
+            (fr / BLOB_F).ln().abs() <= 1.35f64.ln(),
+            "{source}: strongest colour at f = {fr}"
+        );
+    }
+    // The group matrix shows the blob pair as its strongest cell in condition A.
+    let m = s
+        .figures
+        .iter()
+        .find(|f| {
+            f.kind == FigureKind::Matrix && f.source == "group/group" && f.title.contains("· plv ·")
+        })
+        .expect("group plv matrix");
+    let labels: Vec<&str> = m.panels.iter().map(|p| p.label.as_str()).collect();
+    assert_eq!(labels, ["A", "B", "A \u{2212} B"]);
+    let (px, py) = nearest_pixel(m, 0, MORELAND_WARM);
+    let r = m.panels[0].rect;
+    let n = CHANNELS.len() as f64;
+    let col = ((px / m.png_scale - r[0]) / (r[2] - r[0]) * n) as usize;
+    let row = ((py / m.png_scale - r[1]) / (r[3] - r[1]) * n) as usize;
+    let mut hit = [CHANNELS[row], CHANNELS[col]];
+    hit.sort();
+    assert_eq!(hit, ["Fz", "Pz"]);
+}
+
+#[test]
+fn a_folder_without_manifest_is_an_error_naming_it() {
+    let tmp = tempfile::tempdir().unwrap();
+    let e = write_report(
+        tmp.path(),
+        &tmp.path().join("r.html"),
+        &ReportOptions::default(),
+    )
+    .unwrap_err();
+    let msg = e.to_string();
+    assert!(
+        msg.contains("manifest.json") && msg.contains("run the pipeline first"),
+        "{msg}"
+    );
+}
