@@ -125,6 +125,21 @@ def subject_of(path):
     return match.group(1) if match else os.path.splitext(os.path.basename(path))[0]
 
 
+# Signal-type words that EDF+ labels may start with ("EEG Fz"); Kemp & Olivan 2003, list
+# recalled from memory.
+_EDF_TYPES = {"EEG", "ECG", "EOG", "ERG", "EMG", "MEG", "MCG", "EP", "TEMP", "RESP", "SAO2",
+              "LIGHT", "SOUND", "EVENT"}
+
+
+def split_label(label):
+    """`"EEG Fz"` → (`Fz`, `EEG`); a label without a type word is its own name, type None."""
+    label = label.strip()
+    first, _, rest = label.partition(" ")
+    if first.upper() not in _EDF_TYPES:
+        return label, None
+    return (rest.strip() or label), first.upper()
+
+
 def read_recording(path):
     """Continuous data [channel, time] in volts (float32), with rate, channel types, events."""
     with pyedflib.EdfReader(path) as edf:
@@ -137,13 +152,17 @@ def read_recording(path):
         raise SystemExit(f"peer: {path}: channels have different rates {sorted(set(rates))}")
     scale = np.array([_VOLT_SCALE.get(u, 1.0) for u in units])[:, None]
     data = (data * scale).astype(np.float32)
-    types = {r["name"]: r["type"].upper() for r in read_tsv(sidecar(path, "channels"))}
-    names = [label.strip() for label in labels]
+    rows = {r["name"]: r["type"].upper() for r in read_tsv(sidecar(path, "channels"))}
+    split = [split_label(label) for label in labels]
+    names = [name for name, _ in split]
+    # Type: the channels sidecar (by full label or by name), else the EDF+ prefix, else EEG.
+    types = [rows.get(label.strip(), rows.get(name, prefix or "EEG"))
+             for label, (name, prefix) in zip(labels, split)]
     events = read_tsv(sidecar(path, "events"))
     return {
         "data": data,
         "channels": names,
-        "types": [types.get(n, "EEG") for n in names],
+        "types": types,
         "fs": float(rates[0]),
         "events": [(float(e["onset"]), e["trial_type"]) for e in events],
     }

@@ -41,14 +41,14 @@ TIME = "/usr/bin/time"
 # runs vary one axis of a one-subject study at a time around `base`.
 SIZES = {
     "quick": {
-        "study": {"subjects": 2, "channels": 16, "trials": 40, "rate": 250},
+        "study": {"subjects": 2, "channels": 19, "trials": 80, "rate": 250},
         "freqs": 12,
         "reps": 2,
         "scaling": {
-            "base": {"subjects": 1, "channels": 16, "trials": 40, "rate": 250, "freqs": 8},
-            "trials": [20, 40, 80, 160],
-            "channels": [8, 16, 24, 32],
-            "freqs": [4, 8, 16, 32],
+            "base": {"subjects": 1, "channels": 19, "trials": 80, "rate": 250, "freqs": 12},
+            "trials": [40, 80, 160, 320],
+            "channels": [8, 16, 32, 48],
+            "freqs": [6, 12, 24, 48],
         },
     },
     "medium": {
@@ -91,22 +91,30 @@ class Report:
 
 
 def timed(cmd, cwd=None):
-    """Run cmd under GNU time; return wall seconds, peak RSS (MiB), stdout, stderr."""
+    """Run cmd under GNU time; return wall seconds, peak RSS (MiB), CPU seconds (user + sys)."""
     start = time.perf_counter()
     proc = subprocess.run([TIME, "-v"] + cmd, cwd=cwd, capture_output=True, text=True)
     wall = time.perf_counter() - start
-    rss = None
+    rss, cpu = None, 0.0
     for line in proc.stderr.splitlines():
         if "Maximum resident set size" in line:
             rss = int(line.split(":")[-1]) / 1024.0
+        elif "User time (seconds)" in line or "System time (seconds)" in line:
+            cpu += float(line.split(":")[-1])
     if proc.returncode != 0:
         tail = "\n".join(proc.stderr.splitlines()[-25:])
         raise SystemExit(f"command failed ({proc.returncode}): {' '.join(cmd)}\n{tail}")
-    return wall, rss, proc.stdout, proc.stderr
+    return wall, rss, cpu
+
+
+# What `phasewise simulate` writes (its command line takes only --subjects and --seed).
+SIM_CHANNELS, SIM_TRIALS, SIM_RATE = 19, 80, 250
 
 
 def simulate(folder, study, seed=1):
-    """`phasewise simulate` into folder/data (skipped when the same size is already there)."""
+    """`phasewise simulate` into folder/data, resized by bench/resize.py to the study's EEG
+    channels and trials when they differ from the simulator's own (skipped when the same size
+    is already there)."""
     data = os.path.join(folder, "data")
     stamp = os.path.join(folder, "study.json")
     want = dict(study, seed=seed)
@@ -115,12 +123,18 @@ def simulate(folder, study, seed=1):
     shutil.copy(os.path.join(BENCH, "chain.yaml"), os.path.join(folder, "pipeline.yaml"))
     if os.path.exists(stamp) and json.load(open(stamp)) == want:
         return data
+    if study["rate"] != SIM_RATE:
+        raise SystemExit(f"the simulator writes {SIM_RATE} Hz only; asked for {study['rate']}")
     shutil.rmtree(data, ignore_errors=True)
-    cmd = [PHASEWISE, "simulate", "--out", data, "--subjects", str(study["subjects"]),
-           "--seed", str(seed)]
-    for flag in ("channels", "trials", "rate"):
-        cmd += [f"--{flag}", str(study[flag])]
-    subprocess.run(cmd, check=True, capture_output=True)
+    raw = data if (study["channels"], study["trials"]) == (SIM_CHANNELS, SIM_TRIALS) else data + "-sim"
+    shutil.rmtree(raw, ignore_errors=True)
+    subprocess.run([PHASEWISE, "simulate", "--out", raw, "--subjects", str(study["subjects"]),
+                    "--seed", str(seed)], check=True, capture_output=True)
+    if raw != data:
+        subprocess.run([PYTHON, os.path.join(BENCH, "resize.py"), "--src", raw, "--out", data,
+                        "--channels", str(study["channels"]), "--trials", str(study["trials"]),
+                        "--seed", str(seed)], check=True, capture_output=True)
+        shutil.rmtree(raw)
     json.dump(want, open(stamp, "w"))
     return data
 
@@ -132,20 +146,22 @@ def freq_set(count):
     return f"tf.freqs={{{inner}}}"
 
 
-def run_phasewise(folder, sets, cache, fresh=True):
-    """One `phasewise run`; returns wall, RSS and the manifest's per-stage computed seconds."""
+def run_phasewise(folder, sets, cache, fresh=True, jobs=None, pipeline="pipeline.yaml"):
+    """One `phasewise run`; returns wall, RSS, CPU and the manifest's per-stage seconds."""
     if fresh:
         shutil.rmtree(cache, ignore_errors=True)
-    cmd = [PHASEWISE, "run", os.path.join(folder, "pipeline.yaml"), "--cache", cache]
+    cmd = [PHASEWISE, "run", os.path.join(folder, pipeline), "--cache", cache, "-q"]
+    if jobs:
+        cmd += ["--jobs", str(jobs)]
     for s in sets:
         cmd += ["--set", s]
-    wall, rss, _, _ = timed(cmd)
+    wall, rss, cpu = timed(cmd)
     manifest = json.load(open(os.path.join(folder, "results", "manifest.json")))
     stages, computed = {}, 0
     for unit in manifest["units"]:
         stages[unit["stage"]] = stages.get(unit["stage"], 0.0) + float(unit.get("seconds") or 0)
         computed += unit.get("status") == "computed"
-    return {"wall": wall, "rss": rss, "stages": stages, "computed": computed,
+    return {"wall": wall, "rss": rss, "cpu": cpu, "stages": stages, "computed": computed,
             "units": len(manifest["units"]), "manifest": manifest}
 
 
@@ -158,9 +174,9 @@ def run_peer(folder, sets):
            "--out", out, "--save", "norm", "--timings", timings]
     for s in sets:
         cmd += ["--set", s]
-    wall, rss, _, _ = timed(cmd)
+    wall, rss, cpu = timed(cmd)
     t = json.load(open(timings))
-    return {"wall": wall, "rss": rss, "stages": t["stages"], "total": t["total"]}
+    return {"wall": wall, "rss": rss, "cpu": cpu, "stages": t["stages"], "total": t["total"]}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -289,10 +305,15 @@ def full_chain(rep, folder, size, reps):
     pw_wall = statistics.median(r["wall"] for r in pw_runs)
     peer_wall = statistics.median(r["wall"] for r in peer_runs)
     rows.append(["WALL (process)", f"{pw_wall:.3f}", f"{peer_wall:.3f}", f"{peer_wall / pw_wall:.1f}x"])
+    pw_cpu = statistics.median(r["cpu"] for r in pw_runs)
+    peer_cpu = statistics.median(r["cpu"] for r in peer_runs)
+    rows.append(["CPU user+sys", f"{pw_cpu:.3f}", f"{peer_cpu:.3f}", f"{peer_cpu / pw_cpu:.1f}x"])
     pw_rss = max(r["rss"] for r in pw_runs)
     peer_rss = max(r["rss"] for r in peer_runs)
     rows.append(["PEAK RSS MiB", f"{pw_rss:.0f}", f"{peer_rss:.0f}", f"{pw_rss / peer_rss:.2f} (pw/peer)"])
-    rep.say("\nPer-stage seconds (median of reps; phasewise from manifest, summed over subjects):")
+    rep.say("\nPer-stage seconds, median of reps. phasewise: unit seconds from the manifest (load "
+            "inputs + compute + store), summed over subjects; units of different subjects run "
+            "concurrently, so the sum can exceed the wall time. peer: perf_counter per stage.")
     rep.table(["stage", "phasewise", "peer", "peer/phasewise"], rows)
     agree = agreement(folder)
     worst = max(list(agree["max_abs_diff"].values()) + list(agree["group_max_abs_diff"].values()))
@@ -305,54 +326,74 @@ def full_chain(rep, folder, size, reps):
             + ", ".join(f"{m} {v:.2e}" for m, v in agree["group_max_abs_diff"].items()))
     rep.data["full_chain"] = {"phasewise": pw, "peer": peer, "phasewise_wall": pw_wall,
                               "peer_wall": peer_wall, "phasewise_rss_mib": pw_rss,
+                              "phasewise_cpu": pw_cpu, "peer_cpu": peer_cpu,
                               "peer_rss_mib": peer_rss, "agreement": agree, "agree": ok,
                               "walls": {"phasewise": [r["wall"] for r in pw_runs],
                                         "peer": [r["wall"] for r in peer_runs]}}
-    return pw_runs[-1]
 
 
-def wavelet_vs_fft(rep, last_run, size):
-    """The wavelet op's manifest seconds against the bare FFTs of the same sizes."""
-    units = [u for u in last_run["manifest"]["units"] if u["stage"] == "tf"]
-    epochs = [u for u in last_run["manifest"]["units"] if u["stage"] == "trials"]
+def wavelet_vs_fft(rep, folder, size, tries=3):
+    """The wavelet op's manifest seconds against the bare FFTs of the same sizes, both on one
+    thread (`--jobs 1`), on a one-subject study of the workload's size; best of `tries` cold
+    runs, since unit seconds are wall times and other processes on the machine inflate them."""
+    sub = os.path.join(folder, "fft-one-subject")
+    simulate(sub, dict(size["study"], subjects=1))
+    runs = [run_phasewise(sub, [freq_set(size["freqs"])], os.path.join(sub, "cache"), jobs=1)
+            for _ in range(tries)]
+    op = min(sum(float(u.get("seconds") or 0) for u in r["manifest"]["units"]
+                 if u["stage"] == "tf") for r in runs)
+    units = runs[0]["manifest"]["units"]
     signals, epoch_len = 0, None
-    for u in epochs:
-        shape = u["outputs"][0]["shape"]  # [channel, trial, time]
-        signals += shape[0] * shape[1]
-        epoch_len = shape[2]
+    for u in units:
+        if u["stage"] == "trials":
+            shape = u["outputs"][0]["shape"]  # [channel, trial, time]
+            signals += shape[0] * shape[1]
+            epoch_len = shape[2]
     sys.path.insert(0, BENCH)
     import peer  # the same plan (frequencies, cycles, FFT length) as the peer and DESIGN §4
 
     rate = float(size["study"]["rate"])
     times = np.arange(epoch_len) / rate - 1.0
     p = {"freqs": dict(FREQ_RANGE, count=size["freqs"]), "cycles": {"from": 3, "to": 8}}
-    freqs, taps, _, _, _, nfft = peer.wavelet_plan(times, rate, p)
-    threads = os.cpu_count() or 1
-    out = subprocess.run([FFT_BIN, str(nfft), str(signals), str(len(freqs)), str(threads), "3"],
+    freqs, _, _, _, _, nfft = peer.wavelet_plan(times, rate, p)
+    out = subprocess.run([FFT_BIN, str(nfft), str(signals), str(len(freqs)), "1", "3"],
                          check=True, capture_output=True, text=True).stdout
     bare = json.loads(out)["seconds"]
-    op = sum(float(u.get("seconds") or 0) for u in units)
     ratio = op / bare
-    rep.say(f"\nWavelet op {op:.3f} s vs bare FFTs {bare:.3f} s ({signals} signals x (1 forward + "
-            f"{len(freqs)} inverse) of length {nfft}, {threads} threads): {ratio:.2f}x")
+    rep.say(f"\nWavelet op {op:.3f} s (--jobs 1, manifest, best of {tries}) vs bare FFTs {bare:.3f} s (1 thread, "
+            f"best of 3: {signals} signals x (1 forward + {len(freqs)} inverse) complex f64 "
+            f"FFTs of length {nfft}): {ratio:.2f}x")
     rep.data["wavelet_vs_fft"] = {"op": op, "bare_fft": bare, "ratio": ratio, "nfft": nfft,
-                                  "signals": signals, "freqs": len(freqs), "threads": threads}
+                                  "signals": signals, "freqs": len(freqs), "threads": 1}
+
+
+def lean_pipeline(folder):
+    """The bench pipeline without the export that only the agreement check needs (as a study
+    would run it: only the group result exported)."""
+    with open(os.path.join(folder, "pipeline.yaml"), encoding="utf-8") as fh:
+        lines = [line for line in fh if "bench: exported for the agreement check" not in line]
+    with open(os.path.join(folder, "pipeline-lean.yaml"), "w", encoding="utf-8") as fh:
+        fh.writelines(lines)
+    return "pipeline-lean.yaml"
 
 
 def reruns(rep, folder, size):
     """Warm-cache reruns: a baseline-window change, then nothing changed."""
     sets = [freq_set(size["freqs"])]
-    cache = os.path.join(folder, "cache")
-    full = run_phasewise(folder, sets, cache)
-    changed = run_phasewise(folder, sets + [BASELINE_CHANGE], cache, fresh=False)
-    noop = run_phasewise(folder, sets + [BASELINE_CHANGE], cache, fresh=False)
+    cache = os.path.join(folder, "cache-lean")
+    lean = lean_pipeline(folder)
+    full = run_phasewise(folder, sets, cache, pipeline=lean)
+    changed = run_phasewise(folder, sets + [BASELINE_CHANGE], cache, fresh=False, pipeline=lean)
+    noop = run_phasewise(folder, sets + [BASELINE_CHANGE], cache, fresh=False, pipeline=lean)
     share = changed["wall"] / full["wall"]
-    rep.say(f"\nReruns (wall, whole process): full cold {full['wall']:.3f} s; after --set "
-            f"{BASELINE_CHANGE}: {changed['wall']:.3f} s ({100 * share:.1f} % of full, "
-            f"{changed['computed']}/{changed['units']} units computed); no-op: "
-            f"{noop['wall']:.3f} s ({noop['computed']}/{noop['units']} units computed)")
+    rep.say(f"\nReruns (whole-process wall; pipeline exporting only the group result): full cold "
+            f"{full['wall']:.3f} s; after --set {BASELINE_CHANGE}: {changed['wall']:.3f} s "
+            f"({100 * share:.1f} % of full, {changed['computed']}/{changed['units']} units "
+            f"computed); no-op: {noop['wall']:.3f} s ({noop['computed']}/{noop['units']} units "
+            f"computed)")
     rep.data["reruns"] = {"full": full["wall"], "baseline_change": changed["wall"],
                           "share": share, "noop": noop["wall"],
+                          "cpu": [full["cpu"], changed["cpu"], noop["cpu"]],
                           "computed": [full["computed"], changed["computed"], noop["computed"]]}
 
 
@@ -414,11 +455,10 @@ def main():
             f"{os.cpu_count()} CPUs")
     simulate(folder, st)
     rep.data["size"] = dict(size, name=args.size)
-    last = None
     if "chain" not in args.skip:
-        last = full_chain(rep, folder, size, args.reps or size["reps"])
-    if "fft" not in args.skip and last is not None:
-        wavelet_vs_fft(rep, last, size)
+        full_chain(rep, folder, size, args.reps or size["reps"])
+    if "fft" not in args.skip:
+        wavelet_vs_fft(rep, folder, size)
     if "reruns" not in args.skip:
         reruns(rep, folder, size)
     if "scaling" not in args.skip:
