@@ -356,7 +356,10 @@ fn run_subject_touches_only_that_subject_and_parts_merge_into_the_one_machine_ma
     assert_eq!(computed(&part1), labels(&["a/01", "b/01", "c/01"]));
     assert!(p.output().join("manifest.parts/01.json").is_file());
     assert!(!p.output().join("02").exists(), "subject 02 untouched");
-    assert!(!p.output().join("manifest.json").exists(), "a part is not the manifest");
+    assert!(
+        !p.output().join("manifest.json").exists(),
+        "a part is not the manifest"
+    );
     let part2 = p.run_with(&only("sub-02"));
     assert_eq!(computed(&part2), labels(&["a/02", "b/02", "c/02"]));
     let group = p.run();
@@ -597,4 +600,70 @@ fn the_cli_runs_real_ops_end_to_end_and_a_rerun_is_cached() {
     assert_eq!(code, 0, "{stderr}");
     let (code, stderr) = cli(p.dir(), &["report", "pipelines/p.yaml"]);
     assert_eq!(code, 2, "{stderr}");
+}
+
+// --- cache: false, inspect, prune -----------------------------------------------------------
+
+#[test]
+fn an_unstored_stage_is_recomputed_only_when_a_consumer_needs_it() {
+    let p = Project::new(&["01", "02"]);
+    let file = p.pipeline(&CHAIN.replace(
+        "    input: a\n    params: { factor: 3 }",
+        "    input: a\n    cache: false\n    params: { factor: 3 }",
+    ));
+    let first = p.run();
+    let (npy, json) = p.object(&first, "b", Some("01"));
+    assert!(!npy.exists(), "a cache: false stage stores no values");
+    assert!(json.is_file(), "but keeps its record (notes, hash)");
+    assert_eq!(computed(&p.run()), Vec::<String>::new());
+
+    replace_in(&file, "params: { factor: 0.5 }", "params: { factor: 0.25 }");
+    let lines = plan_lines(&p.plan(&Options::default()));
+    assert_eq!(lines["b/01"], "not stored (cache: false); c needs it");
+    let second = p.run();
+    assert_eq!(
+        computed(&second),
+        labels(&["b/01", "b/02", "c/01", "c/02", "g"])
+    );
+    assert_eq!(cached(&second), labels(&["a/01", "a/02"]));
+}
+
+#[test]
+fn inspect_describes_a_cached_result_and_prune_drops_what_no_manifest_names() {
+    let p = Project::new(&["01", "02"]);
+    let file = p.pipeline(CHAIN);
+    p.run();
+    let ops = ops();
+    let env = phasewise::session::Env {
+        ops: &ops,
+        reader: &RecordingReader,
+    };
+    let study = phasewise::session::open(&file, &Options::default(), env).unwrap();
+    let text = phasewise::inspect::inspect(&study, "g", None).unwrap();
+    assert!(
+        text.contains("dtype <f4, shape [2, 128], units V"),
+        "{text}"
+    );
+    assert!(text.contains("channel [2]: Fz, Cz"), "{text}");
+    let err = phasewise::inspect::inspect(&study, "a", None).unwrap_err();
+    assert!(
+        err.to_string().contains("choose one with --subject"),
+        "{err}"
+    );
+
+    // After a param change and a run, the old b, c and g objects are referenced by no manifest.
+    replace_in(&file, "params: { factor: 3 }", "params: { factor: 6 }");
+    p.run();
+    let before = files_under(&p.cache().join("objects")).len();
+    let keep = phasewise::prune::referenced_keys(&[p.output()]).unwrap();
+    let store = phasewise::store::Store::new(p.cache());
+    let report = phasewise::prune::prune(&store, &keep, false);
+    // 5 units (b, c per subject and g), each an .npy and a .json.
+    assert_eq!(report.removed.len(), 10, "{:#?}", report.removed);
+    assert_eq!(files_under(&p.cache().join("objects")).len(), before - 10);
+    assert_eq!(
+        computed(&p.run()),
+        Vec::<String>::new(),
+        "nothing needed was pruned"
+    );
 }
