@@ -267,8 +267,13 @@ fn reduce_axis<T: Copy + Into<f64>>(input: &ArrayViewD<T>, r: &Reduction) -> Arr
 /// One subject's means: the reductions applied in turn (means of means over rectangular groups
 /// equal the mean over the whole band × window × group).
 fn reduce_all(values: &ArrayD<f32>, reductions: &[Reduction]) -> ArrayD<f64> {
-    let mut current = values.mapv(f64::from);
-    for r in reductions {
+    // The first reduction reads the f32 input directly, so no f64 copy of the (large) input
+    // is made; reductions replace their axis in place, so the later axis indices stay valid.
+    let Some((first, rest)) = reductions.split_first() else {
+        return values.mapv(f64::from);
+    };
+    let mut current = reduce_axis(&values.view(), first);
+    for r in rest {
         current = reduce_axis(&current.view(), r);
     }
     current
