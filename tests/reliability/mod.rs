@@ -315,15 +315,57 @@ pub fn store_problems(cache: &Path, references: &[&Path], leftovers_allowed: boo
             match reference.get(&path) {
                 None => Some(format!("{}: not in the reference store", path.display())),
                 Some(want) if *want != bytes => Some(format!(
-                    "{}: {} bytes differ from the reference's {}",
+                    "{}: {} bytes differ from the reference's {}{}",
                     path.display(),
                     bytes.len(),
-                    want.len()
+                    want.len(),
+                    json_difference(&bytes, want)
                 )),
                 Some(_) => None,
             }
         })
         .collect()
+}
+
+/// Where two JSON texts differ (`" at fingerprint.inputs[0]: a → b"`), or nothing when either
+/// is not JSON: a hint for whoever reads a failing test.
+fn json_difference(got: &[u8], want: &[u8]) -> String {
+    let parse = |b: &[u8]| serde_json::from_slice::<serde_json::Value>(b).ok();
+    match (parse(got), parse(want)) {
+        (Some(g), Some(w)) => first_difference(&g, &w, String::new())
+            .map(|(at, g, w)| format!(" at {at}: {w} → {g}"))
+            .unwrap_or_default(),
+        _ => String::new(),
+    }
+}
+
+fn first_difference(
+    got: &serde_json::Value,
+    want: &serde_json::Value,
+    at: String,
+) -> Option<(String, String, String)> {
+    use serde_json::Value;
+    match (got, want) {
+        (Value::Object(g), Value::Object(w)) => w.iter().find_map(|(k, wv)| {
+            let gv = g.get(k).unwrap_or(&Value::Null);
+            first_difference(gv, wv, format!("{at}.{k}"))
+        }),
+        (Value::Array(g), Value::Array(w)) if g.len() == w.len() => g
+            .iter()
+            .zip(w)
+            .enumerate()
+            .find_map(|(i, (gv, wv))| first_difference(gv, wv, format!("{at}[{i}]"))),
+        _ if got == want => None,
+        _ => Some((at, short(got), short(want))),
+    }
+}
+
+fn short(v: &serde_json::Value) -> String {
+    let text = v.to_string();
+    match text.char_indices().nth(120) {
+        Some((i, _)) => format!("{}…", &text[..i]),
+        None => text,
+    }
 }
 
 /// The files of a store that are not objects (`<key>.npy`, `<key>.json`).
