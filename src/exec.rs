@@ -285,6 +285,11 @@ impl Worker<'_, '_, '_> {
     }
 
     fn warn_damaged(&mut self, u: usize, why: &str) {
+        tracing::warn!(
+            stage = %self.study().stage_name(u),
+            subject = ?self.study().subject(u),
+            "damaged cache object recomputed: {why}"
+        );
         self.out.warnings.push((
             u,
             format!("the cached result was damaged ({why}); it was recomputed"),
@@ -380,7 +385,7 @@ impl Worker<'_, '_, '_> {
             });
         }
         let stage = &study.pipeline.stages[unit.stage];
-        tracing::debug!(stage = %stage.name, subject = ?study.subject(u), "computing");
+        tracing::info!(stage = %stage.name, subject = ?study.subject(u), "computing");
         let array = stage
             .op
             .run(&stage.params, &inputs, &mut notes)

@@ -22,6 +22,22 @@ pub fn normalize(path: &Path) -> PathBuf {
     out
 }
 
+/// `path` with `.` and `name/..` removed lexically, staying relative if it was (for messages:
+/// `pipelines/../results/x` → `results/x`).
+pub fn clean(path: &Path) -> PathBuf {
+    let mut out: Vec<Component> = Vec::new();
+    for component in path.components() {
+        match component {
+            Component::CurDir => {}
+            Component::ParentDir if matches!(out.last(), Some(Component::Normal(_))) => {
+                out.pop();
+            }
+            other => out.push(other),
+        }
+    }
+    out.iter().collect()
+}
+
 /// `path` relative to the folder `base` (both made absolute first), with `..` where needed.
 pub fn relative_to(path: &Path, base: &Path) -> Option<PathBuf> {
     let path = normalize(path);
@@ -51,5 +67,10 @@ mod tests {
             relative_to(Path::new("/a/./b/../c"), Path::new("/a")).unwrap(),
             PathBuf::from("c")
         );
+        assert_eq!(
+            clean(Path::new("pipelines/../results/./x")),
+            PathBuf::from("results/x")
+        );
+        assert_eq!(clean(Path::new("../a/../b")), PathBuf::from("../b"));
     }
 }

@@ -14,6 +14,7 @@ use phasewise_stages::DynOp;
 use crate::exec::{self, Outcome, Warning};
 use crate::manifest::{self, Manifest};
 use crate::output::write_atomically;
+use crate::paths::clean;
 use crate::pipeline::{self, ResolvedPipeline};
 use crate::plan::Plan;
 use crate::sources::{Hasher, Reader};
@@ -91,6 +92,12 @@ pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, R
     let started = now();
     let study = open(file, options, env)?;
     let plan = study.plan();
+    tracing::info!(
+        units = plan.units.len(),
+        stale = plan.stale_count(),
+        subjects = study.sources.len(),
+        "planned"
+    );
     let bar = progress_bar(study.units.len(), options.progress);
     let outcome = exec::execute(&study, &plan, env.reader, options.jobs, &bar)?;
     bar.finish_and_clear();
@@ -100,7 +107,10 @@ pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, R
 
 fn finish(study: &Study<'_>, outcome: &Outcome, started: &str) -> Result<RunSummary, RunError> {
     let manifest = manifest::build(study, outcome, started, &now());
-    let manifest_path = manifest::path_for(&study.pipeline.output, &study.selection);
+    let manifest_path = clean(&manifest::path_for(
+        &study.pipeline.output,
+        &study.selection,
+    ));
     write_atomically(&manifest_path, &manifest::to_bytes(&manifest))
         .map_err(|e| RunError::Other(e.to_string()))?;
     let computed = outcome.computed();

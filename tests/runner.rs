@@ -667,3 +667,101 @@ fn inspect_describes_a_cached_result_and_prune_drops_what_no_manifest_names() {
         "nothing needed was pruned"
     );
 }
+
+// --- manifest shape -------------------------------------------------------------------------
+
+fn keys_of(value: &serde_json::Value) -> Vec<String> {
+    let mut keys: Vec<String> = value.as_object().unwrap().keys().cloned().collect();
+    keys.sort();
+    keys
+}
+
+#[test]
+fn the_manifest_has_the_core_shape_of_design_section_6() {
+    let p = Project::new(&["01", "02"]);
+    p.pipeline(CHAIN);
+    p.run();
+    let text = std::fs::read_to_string(p.output().join("manifest.json")).unwrap();
+    let m: serde_json::Value = serde_json::from_str(&text).unwrap();
+    // DESIGN.md §6: the fixed core shape (plus `platform`, which §6 lists in its prose).
+    assert_eq!(
+        keys_of(&m),
+        labels(&[
+            "format",
+            "format_version",
+            "tool",
+            "platform",
+            "pipeline",
+            "inputs",
+            "units",
+            "epochs",
+            "warnings",
+            "started",
+            "finished"
+        ])
+    );
+    assert_eq!(m["format"], "phasewise-manifest");
+    assert_eq!(m["format_version"], 1);
+    assert_eq!(
+        keys_of(&m["tool"]),
+        labels(&["name", "version", "revision"])
+    );
+    let unit = &m["units"][0];
+    assert_eq!(
+        keys_of(unit),
+        labels(&[
+            "stage",
+            "subject",
+            "op",
+            "op_version",
+            "params",
+            "key",
+            "inputs",
+            "outputs",
+            "status",
+            "seconds"
+        ])
+    );
+    assert_eq!(
+        keys_of(&unit["outputs"][0]),
+        labels(&["file", "blake3", "shape", "dtype"])
+    );
+    assert_eq!(
+        keys_of(&m["inputs"][0]),
+        labels(&["path", "size", "blake3"])
+    );
+    // Units in topological stage order, then subject; the group unit's subject is null.
+    let order: Vec<String> = m["units"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|u| label(u["stage"].as_str().unwrap(), u["subject"].as_str()))
+        .collect();
+    assert_eq!(order, ["a/01", "a/02", "b/01", "b/02", "c/01", "c/02", "g"]);
+    // The recorded output hash and shape are those of the exported file (blake3 of its bytes;
+    // shape as the NPY header gives it).
+    let g = m["units"].as_array().unwrap().last().unwrap();
+    let file = p.output().join(g["outputs"][0]["file"].as_str().unwrap());
+    let bytes = std::fs::read(&file).unwrap();
+    assert_eq!(
+        g["outputs"][0]["blake3"],
+        blake3::hash(&bytes).to_hex().as_str()
+    );
+    assert_eq!(
+        g["outputs"][0]["shape"],
+        serde_json::json!(read_npy(&file).shape())
+    );
+    assert_eq!(
+        m["epochs"]["group"]["g"],
+        serde_json::json!({"subjects": 2})
+    );
+    // Input sizes are the files' sizes.
+    for input in m["inputs"].as_array().unwrap() {
+        let path = p
+            .pipeline_path()
+            .parent()
+            .unwrap()
+            .join(input["path"].as_str().unwrap());
+        assert_eq!(input["size"], std::fs::metadata(&path).unwrap().len());
+    }
+}
