@@ -193,6 +193,7 @@ struct Fixture {
     out: PathBuf,
     html: PathBuf,
     norm: ArrayD<f32>,
+    norm2: ArrayD<f32>,
     sync: ArrayD<f32>,
 }
 
@@ -209,6 +210,9 @@ fn fixture() -> Fixture {
     // Baseline-subtracted: values of both signs around zero.
     let norm = tf_values(0.0, 0.03, 0.4);
     write_array(&out, "sub-01", "norm", &dims, tf_coords(), "1", &norm);
+    // A second subject of the same stage: the report also draws their mean.
+    let norm2 = tf_values(0.0, 0.05, 0.3);
+    write_array(&out, "sub-02", "norm", &dims, tf_coords(), "1", &norm2);
     // Raw phase locking: non-negative.
     let sync = tf_values(0.2, 0.05, 0.5);
     write_array(&out, "sub-02", "sync", &dims, tf_coords(), "1", &sync);
@@ -263,6 +267,7 @@ fn fixture() -> Fixture {
         out,
         html,
         norm,
+        norm2,
         sync,
     }
 }
@@ -470,6 +475,18 @@ fn colour_bars_span_the_arrays_range() {
     assert_eq!(bar.map, MapKind::Diverging);
     assert_eq!(bar.vmax, lo.abs().max(hi.abs()));
     assert_eq!(bar.data_range, Some((lo, hi)));
+    // The mean over the two subjects' norm arrays (f64, as the report documents).
+    let mean: ArrayD<f32> = ndarray::Zip::from(&f.norm)
+        .and(&f.norm2)
+        .map_collect(|&a, &b| ((f64::from(a) + f64::from(b)) / 2.0) as f32);
+    let fig_mean = tf_figure(&s, "subject-mean/norm", "plv", "Fz–Pz");
+    let ((mlo, mhi), _) = ranges(&mean, 0, p);
+    let got = fig_mean.colour_bars[0].data_range.unwrap();
+    // The test's mean is rounded to f32 on the way; the report keeps f64.
+    assert!(
+        (got.0 - mlo).abs() < 1e-6 && (got.1 - mhi).abs() < 1e-6,
+        "{got:?} vs {mlo}, {mhi}"
+    );
     // The HTML states the same limits as data attributes.
     let html = fs::read_to_string(&f.html).unwrap();
     assert!(html.contains(&format!(
@@ -483,7 +500,11 @@ fn planted_blob_is_drawn_where_it_was_planted() {
     let f = fixture();
     let s = render(&f);
     // The blob pair is among the strongest pairs picked by default, for both arrays.
-    for (source, colour) in [("sub-02/sync", VIRIDIS_TOP), ("sub-01/norm", MORELAND_WARM)] {
+    for (source, colour) in [
+        ("sub-02/sync", VIRIDIS_TOP),
+        ("sub-01/norm", MORELAND_WARM),
+        ("subject-mean/norm", MORELAND_WARM),
+    ] {
         let fig = tf_figure(&s, source, "plv", "Fz–Pz");
         assert_eq!(fig.panels[0].label, "A");
         let px = nearest_pixel(fig, 0, colour);

@@ -63,7 +63,7 @@ impl Scale {
 }
 
 /// One axis of a heat-map panel.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq)]
 pub enum GridAxis {
     /// Numeric coordinates (cell centres), on a linear or log scale.
     Numeric {

@@ -363,7 +363,7 @@ fn figures_of(ctx: &Ctx<'_>, kind: FigureKind, html_dir: &Path) -> String {
     let mut last_source = None;
     for f in ctx.figures.iter().filter(|f| f.info.kind == kind) {
         if kind != FigureKind::StageGraph && last_source != Some(&f.info.source) {
-            let _ = writeln!(out, "<h3>{}</h3>", esc(&f.info.source));
+            let _ = writeln!(out, "<h3>{}</h3>", esc(&heading(&f.info.source)));
             last_source = Some(&f.info.source);
         }
         out.push_str(&figure(f, html_dir));
@@ -372,6 +372,16 @@ fn figures_of(ctx: &Ctx<'_>, kind: FigureKind, html_dir: &Path) -> String {
         out.push_str("<p>No exported array of this kind (see “Not drawn”).</p>\n");
     }
     out
+}
+
+/// `subject · stage` heading of an array's figures.
+fn heading(source: &str) -> String {
+    let (owner, stage) = source.split_once('/').unwrap_or((source, ""));
+    match owner {
+        super::tf::MEAN_OWNER => format!("Mean over subjects · stage {stage}"),
+        "group" => format!("Group · stage {stage}"),
+        s => format!("Subject {s} · stage {stage}"),
+    }
 }
 
 fn rel(path: &Path, base: &Path) -> String {

@@ -204,7 +204,8 @@ fn matrix_figure(
     let label_w = label_width(&chans);
     let n_cond = panels.len() - usize::from(has_diff);
     let groups = 1 + usize::from(has_diff);
-    let width = label_w + panels.len() as f64 * (side + label_w) + groups as f64 * BAR_TOTAL + 16.0;
+    let width =
+        label_w + panels.len() as f64 * (side + label_w + 10.0) + groups as f64 * BAR_TOTAL + 16.0;
     // Column labels stand upright when a cell is too narrow for them (see axes::category_labels).
     let below = if label_w - 12.0 + 2.0 <= cell {
         24.0
@@ -213,7 +214,7 @@ fn matrix_figure(
     };
     let height = PLOT_TOP + side + below + 8.0;
     let measure = &l.cube.measures[m];
-    let title = format!("{} · {} · {} · {}", l.owner, l.stage, measure, slice);
+    let title = format!("{} · {} · {} · {}", l.who(), l.stage, measure, slice);
     let mut fig = HeatFigure::with_size(
         &title,
         &l.cube.fixed,
@@ -247,11 +248,12 @@ fn matrix_figure(
         );
     }
     let caption = format!(
-        "{measure} between every pair of channels in {} (stage {}), {slice}. Rows and columns are \
-         channels; grey: no value (the diagonal, or a pair not computed). Colour: {}.",
-        l.owner,
+        "{measure} between every pair of channels, {} (stage {}), {slice}. Rows and columns are \
+         channels; grey: no value (the diagonal, or a pair not computed). Colour: {}.{}",
+        l.who(),
         l.stage,
-        map.name()
+        map.name(),
+        tf::mean_note(l)
     );
     let id = format!("matrix-{}-{}-{measure}-{slice}", l.owner, l.stage);
     fig.finish(FigureKind::Matrix, &id, l.source(), caption)
@@ -280,7 +282,7 @@ fn group(
     let scale = Scale::for_range(map, lo, hi);
     let bar = fig.bars.len();
     for p in panels {
-        let rect = fig.next_rect(label_width(chans));
+        let rect = fig.next_rect(label_width(chans) + 10.0);
         let info = matrix_panel(fig, rect, chans, l, p, &scale, bar);
         fig.panels.push(info);
     }

@@ -57,7 +57,7 @@ impl Default for ReportOptions {
             bands: Vec::new(),
             windows: Vec::new(),
             contrast: None,
-            max_figures: 60,
+            max_figures: 48,
             max_table_rows: 300,
             png_scale: 2.0,
         }
@@ -339,12 +339,19 @@ pub fn write_report(
         not_drawn: run.skipped.clone(),
     };
     graph::stage_graph(&mut ctx, &run.manifest)?;
+    // Group-level figures first, then the compact per-subject matrices, then per-subject maps,
+    // so that the figure budget (max_figures) drops the most numerous ones.
     let arrays = tf::load_cubes(&mut ctx, &run);
-    for a in &arrays {
+    let (group, subjects): (Vec<_>, Vec<_>) = arrays.iter().partition(|a| a.group_level());
+    for a in &group {
         tf::tf_figures(&mut ctx, a)?;
-    }
-    for a in &arrays {
         matrix::matrix_figures(&mut ctx, a, &run.manifest)?;
+    }
+    for a in &subjects {
+        matrix::matrix_figures(&mut ctx, a, &run.manifest)?;
+    }
+    for a in &subjects {
+        tf::tf_figures(&mut ctx, a)?;
     }
     let (text, sections) = html::page(&run, &ctx, parent);
     fs::write(out_file, text).map_err(|e| ReportError::io(out_file, e))?;

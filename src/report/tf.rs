@@ -17,22 +17,43 @@ use super::{
 
 /// A drawable array: where it came from, its cube, and how to colour it.
 pub(crate) struct Loaded {
+    /// Subject id, `group`, or [`MEAN_OWNER`].
     pub owner: String,
     pub stage: String,
     pub units: String,
     pub cube: Cube,
     /// Signed values: draw with the diverging map, symmetric around zero.
     pub signed: bool,
+    /// The subjects averaged, for a mean over subjects made by the report.
+    pub averaged: Vec<String>,
 }
 
+/// Owner name of the subject means the report computes.
+pub(crate) const MEAN_OWNER: &str = "subject-mean";
+
 impl Loaded {
-    /// `sub-01/norm`.
+    /// `sub-01/norm`: the array's place in the output folder.
     pub fn source(&self) -> String {
         format!("{}/{}", self.owner, self.stage)
     }
+
+    /// How titles name the array's owner.
+    pub fn who(&self) -> String {
+        match self.owner.as_str() {
+            "group" => "group".to_string(),
+            MEAN_OWNER => format!("mean of {} subjects", self.averaged.len()),
+            s => format!("subject {s}"),
+        }
+    }
+
+    /// Group-level arrays (aggregates, subject means) are drawn before per-subject ones.
+    pub fn group_level(&self) -> bool {
+        self.owner == "group" || self.owner == MEAN_OWNER
+    }
 }
 
-/// Reads every exported array that has a pair axis and a plane to draw on; records the rest.
+/// Reads every exported array that has a pair axis and a plane to draw on, and adds, for each
+/// per-subject stage exported for several subjects with equal axes, their mean; records the rest.
 pub(crate) fn load_cubes(ctx: &mut Ctx<'_>, run: &RunOutput) -> Vec<Loaded> {
     let mut out = Vec::new();
     for a in &run.arrays {
@@ -52,7 +73,81 @@ pub(crate) fn load_cubes(ctx: &mut Ctx<'_>, run: &RunOutput) -> Vec<Loaded> {
                 .push(format!("{}/{}: {why}", a.owner, a.stage)),
         }
     }
+    let means = subject_means(ctx, &out);
+    means.into_iter().chain(out).collect()
+}
+
+/// Same axes (names, coordinates, fixed slices): arrays that can be averaged cell by cell.
+fn same_axes(a: &Cube, b: &Cube) -> bool {
+    a.plane == b.plane
+        && a.conditions == b.conditions
+        && a.measures == b.measures
+        && a.pairs == b.pairs
+        && a.rows == b.rows
+        && a.cols == b.cols
+        && a.fixed == b.fixed
+}
+
+/// The mean over subjects of each per-subject stage with two or more subjects, cell by cell:
+/// f64, subjects in folder order, NaN cells left out of that cell's mean.
+fn subject_means(ctx: &mut Ctx<'_>, loaded: &[Loaded]) -> Vec<Loaded> {
+    let mut stages: Vec<&str> = Vec::new();
+    for l in loaded.iter().filter(|l| !l.group_level()) {
+        if !stages.contains(&l.stage.as_str()) {
+            stages.push(&l.stage);
+        }
+    }
+    let mut out = Vec::new();
+    for stage in stages {
+        let members: Vec<&Loaded> = loaded
+            .iter()
+            .filter(|l| !l.group_level() && l.stage == stage)
+            .collect();
+        let Some(first) = members.first() else {
+            continue;
+        };
+        if members.len() < 2 {
+            continue;
+        }
+        if members.iter().any(|m| !same_axes(&m.cube, &first.cube)) {
+            ctx.not_drawn.push(format!(
+                "mean over subjects of stage {stage}: not computed, the subjects' arrays have different axes"
+            ));
+            continue;
+        }
+        out.push(mean_of(&members));
+    }
     out
+}
+
+fn mean_of(members: &[&Loaded]) -> Loaded {
+    let first = members[0];
+    let mut sum = ndarray::Array5::<f64>::zeros(first.cube.values.raw_dim());
+    let mut n = ndarray::Array5::<f64>::zeros(first.cube.values.raw_dim());
+    for m in members {
+        ndarray::Zip::from(&mut sum)
+            .and(&mut n)
+            .and(&m.cube.values)
+            .for_each(|s, k, &v| {
+                if v.is_finite() {
+                    *s += v;
+                    *k += 1.0;
+                }
+            });
+    }
+    let mut cube = first.cube.clone();
+    cube.values =
+        ndarray::Zip::from(&sum)
+            .and(&n)
+            .map_collect(|&s, &k| if k > 0.0 { s / k } else { f64::NAN });
+    Loaded {
+        owner: MEAN_OWNER.to_string(),
+        stage: first.stage.clone(),
+        units: first.units.clone(),
+        cube,
+        signed: members.iter().any(|m| m.signed),
+        averaged: members.iter().map(|m| m.owner.clone()).collect(),
+    }
 }
 
 fn load_one(a: &Exported, plane: Plane, run: &RunOutput) -> Result<Loaded, String> {
@@ -71,6 +166,7 @@ fn load_one(a: &Exported, plane: Plane, run: &RunOutput) -> Result<Loaded, Strin
         units,
         cube,
         signed: both_signs || normalised || after_baseline,
+        averaged: Vec::new(),
     })
 }
 
@@ -209,7 +305,11 @@ fn tf_figure(l: &Loaded, m: usize, p: usize, diff: Option<(usize, usize)>) -> Dr
     let unit = units_text(&l.units);
     let title = format!(
         "{} · {} · {} · {}–{}",
-        l.owner, l.stage, measure, pair[0], pair[1]
+        l.who(),
+        l.stage,
+        measure,
+        pair[0],
+        pair[1]
     );
     let mut fig = HeatFigure::new(
         &title,
@@ -233,16 +333,20 @@ fn tf_figure(l: &Loaded, m: usize, p: usize, diff: Option<(usize, usize)>) -> Dr
             &l.units,
         );
     }
-    let caption =
-        format!(
-        "{measure} between {} and {} in {} (stage {}), by time (s, 0 = event onset, dashed) and \
-         frequency (Hz, log scale). Colour: {}.{}",
+    let diff_note = if diff_panel.is_some() {
+        " The difference panel has its own diverging scale."
+    } else {
+        ""
+    };
+    let caption = format!(
+        "{measure} between {} and {}, {} (stage {}), by time (s, 0 = event onset, dashed) and \
+         frequency (Hz, log scale). Colour: {}.{diff_note}{}",
         pair[0],
         pair[1],
-        l.owner,
+        l.who(),
         l.stage,
         map.name(),
-        if diff_panel.is_some() { " The difference panel has its own diverging scale." } else { "" }
+        mean_note(l)
     );
     fig.finish(
         FigureKind::TimeFrequency,
@@ -252,6 +356,17 @@ fn tf_figure(l: &Loaded, m: usize, p: usize, diff: Option<(usize, usize)>) -> Dr
         ),
         l.source(),
         caption,
+    )
+}
+
+/// Says how a subject mean was made (empty for arrays read as they are).
+pub(crate) fn mean_note(l: &Loaded) -> String {
+    if l.averaged.is_empty() {
+        return String::new();
+    }
+    format!(
+        " Mean over subjects {} computed by the report, cell by cell (NaN cells left out).",
+        l.averaged.join(", ")
     )
 }
 
