@@ -25,7 +25,7 @@
 use std::collections::BTreeMap;
 
 use ndarray::{ArrayD, IxDyn};
-use num_complex::{Complex32, Complex64};
+use num_complex::Complex32;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
@@ -36,7 +36,7 @@ use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
 
 pub use super::measures::Measure;
-use super::measures::Sums;
+use super::measures::{polar, sums_over, Sums};
 use super::params_de::map_only;
 
 /// The `clustering` op.
@@ -487,10 +487,6 @@ impl<'a> Coefs<'a> {
     }
 }
 
-fn widen(z: Complex32) -> Complex64 {
-    Complex64::new(f64::from(z.re), f64::from(z.im))
-}
-
 /// The channels that appear in a pair, in channel order.
 fn used_channels(plan: &Plan) -> Vec<usize> {
     let mut used: Vec<usize> = plan.pairs.iter().flat_map(|&(a, b)| [a, b]).collect();
@@ -533,27 +529,51 @@ fn check_coefficients(
     Ok(())
 }
 
+/// A channel's coefficients split by [`polar`] into unit phasors and amplitudes.
+struct Polar {
+    unit: Vec<Complex32>,
+    amp: Vec<f32>,
+}
+
+impl Polar {
+    fn with_len(len: usize) -> Polar {
+        Polar {
+            unit: vec![Complex32::default(); len],
+            amp: vec![0.0; len],
+        }
+    }
+}
+
 /// Output values, laid out [condition, measure, pair, freq, time].
 fn compute(plan: &Plan, x: &Coefs) -> Vec<f32> {
     let plane = x.freqs * x.times;
+    let used = used_channels(plan);
+    // Across time reads each channel in its own [trial, freq, time] order: convert once.
+    let whole = plan.halves.as_ref().map(|_| as_polar(x, &used));
     let mut out = Vec::with_capacity(plan.layout.shape().iter().product());
     for (_, trials) in &plan.conditions {
         // Each pair's block is [measure, freq, time]; collected in pair order (deterministic).
-        let blocks: Vec<Vec<f32>> = match &plan.halves {
-            None => {
-                let moved = by_trial_last(x, trials, &used_channels(plan));
-                plan.pairs
-                    .par_iter()
-                    .map(|&(a, b)| {
-                        across_trials(&plan.measures, &moved[&a], &moved[&b], trials.len())
-                    })
-                    .collect()
-            }
-            Some(halves) => plan
+        let blocks: Vec<Vec<f32>> = match (&plan.halves, &whole) {
+            (Some(halves), Some(whole)) => plan
                 .pairs
                 .par_iter()
-                .map(|&(a, b)| across_time(&plan.measures, x, (a, b), trials, halves))
+                .map(|&(a, b)| {
+                    let (pa, pb) = (&whole[&a], &whole[&b]);
+                    across_time(&plan.measures, x, (pa, pb), trials, halves)
+                })
                 .collect(),
+            _ => {
+                let moved = by_trial_last(x, trials, &used);
+                let pairs: Vec<(&Polar, &Polar)> = plan
+                    .pairs
+                    .iter()
+                    .map(|(a, b)| (&moved[a], &moved[b]))
+                    .collect();
+                per_pair(
+                    across_trials(&plan.measures, &pairs, trials.len(), used.len()),
+                    plan,
+                )
+            }
         };
         for m in 0..plan.measures.len() {
             for block in &blocks {
@@ -564,18 +584,35 @@ fn compute(plan: &Plan, x: &Coefs) -> Vec<f32> {
     out
 }
 
-/// Copies the trials of one condition so that, per channel, they are the innermost axis
-/// ([freq, time, trial]): the sum over trials then reads contiguous memory.
-fn by_trial_last(x: &Coefs, trials: &[usize], used: &[usize]) -> BTreeMap<usize, Vec<Complex32>> {
-    let n = trials.len();
-    let moved: Vec<Vec<Complex32>> = used
+/// Every used channel in polar form, in the input's [trial, freq, time] order.
+fn as_polar(x: &Coefs, used: &[usize]) -> BTreeMap<usize, Polar> {
+    let converted: Vec<Polar> = used
         .par_iter()
         .map(|&c| {
-            let mut dst = vec![Complex32::default(); x.freqs * x.times * n];
+            let src = x.channel(c);
+            let mut dst = Polar::with_len(src.len());
+            for ((u, a), &z) in dst.unit.iter_mut().zip(dst.amp.iter_mut()).zip(src) {
+                (*u, *a) = polar(z);
+            }
+            dst
+        })
+        .collect();
+    used.iter().copied().zip(converted).collect()
+}
+
+/// The trials of one condition in polar form with the trial as the innermost axis
+/// ([freq, time, trial]): the sums over trials then read contiguous memory.
+fn by_trial_last(x: &Coefs, trials: &[usize], used: &[usize]) -> BTreeMap<usize, Polar> {
+    let n = trials.len();
+    let moved: Vec<Polar> = used
+        .par_iter()
+        .map(|&c| {
+            let mut dst = Polar::with_len(x.freqs * x.times * n);
             for (k, &trial) in trials.iter().enumerate() {
                 for f in 0..x.freqs {
                     for (t, &z) in x.series(c, trial, f).iter().enumerate() {
-                        dst[(f * x.times + t) * n + k] = z;
+                        let i = (f * x.times + t) * n + k;
+                        (dst.unit[i], dst.amp[i]) = polar(z);
                     }
                 }
             }
@@ -585,27 +622,73 @@ fn by_trial_last(x: &Coefs, trials: &[usize], used: &[usize]) -> BTreeMap<usize,
     used.iter().copied().zip(moved).collect()
 }
 
-/// One pair's measures over the trials, from [freq, time, trial] blocks of its two channels.
-fn across_trials(measures: &[Measure], a: &[Complex32], b: &[Complex32], n: usize) -> Vec<f32> {
-    let plane = a.len() / n.max(1);
-    let mut out = vec![0.0f32; measures.len() * plane];
-    for (p, (xa, xb)) in a.chunks(n).zip(b.chunks(n)).enumerate() {
-        let mut s = Sums::default();
-        for (&u, &v) in xa.iter().zip(xb) {
-            s.add(widen(u), widen(v));
-        }
-        for (m, &measure) in measures.iter().enumerate() {
-            out[m * plane + p] = s.value(measure) as f32;
-        }
-    }
-    out
+/// Bytes of one tile of the across-trials loop (all used channels): small enough to stay in a
+/// core's L2 cache while every pair reads it, so memory is streamed once per condition.
+const TILE_BYTES: usize = 512 * 1024;
+
+/// The measures of every pair over the trials, from [freq, time, trial] blocks, computed in
+/// tiles of (freq, time) points in parallel. Returns one vector per tile, laid out
+/// [pair, measure, point of the tile]; the tiles are fixed by the sizes alone (deterministic).
+fn across_trials(
+    measures: &[Measure],
+    pairs: &[(&Polar, &Polar)],
+    n: usize,
+    used: usize,
+) -> Vec<Vec<f32>> {
+    let n = n.max(1);
+    let plane = pairs.first().map_or(0, |p| p.0.unit.len() / n);
+    let per_point = used.max(1) * n * std::mem::size_of::<(Complex32, f32)>();
+    let tile = (TILE_BYTES / per_point).clamp(1, plane.max(1));
+    let starts: Vec<usize> = (0..plane).step_by(tile).collect();
+    starts
+        .par_iter()
+        .map(|&p0| {
+            let points = p0..(p0 + tile).min(plane);
+            let mut out = Vec::with_capacity(pairs.len() * measures.len() * points.len());
+            for (a, b) in pairs {
+                let mut vals = vec![0.0f32; measures.len() * points.len()];
+                for (k, p) in points.clone().enumerate() {
+                    let r = p * n..(p + 1) * n;
+                    let s = sums_over(
+                        &a.unit[r.clone()],
+                        &a.amp[r.clone()],
+                        &b.unit[r.clone()],
+                        &b.amp[r],
+                    );
+                    for (m, &measure) in measures.iter().enumerate() {
+                        vals[m * points.len() + k] = s.value(measure) as f32;
+                    }
+                }
+                out.extend(vals);
+            }
+            out
+        })
+        .collect()
 }
 
-/// One pair's measures over a sliding window of each trial, averaged over the trials.
+/// Regroups tiles laid out [pair, measure, point] into one [measure, freq, time] block per pair.
+fn per_pair(tiles: Vec<Vec<f32>>, plan: &Plan) -> Vec<Vec<f32>> {
+    let (np, nm) = (plan.pairs.len(), plan.measures.len());
+    let plane: usize = tiles.iter().map(|t| t.len() / (np * nm).max(1)).sum();
+    let mut blocks = vec![Vec::with_capacity(nm * plane); np];
+    for m in 0..nm {
+        for tile in &tiles {
+            let len = tile.len() / (np * nm).max(1);
+            for (pair, block) in blocks.iter_mut().enumerate() {
+                let at = (pair * nm + m) * len;
+                block.extend_from_slice(&tile[at..at + len]);
+            }
+        }
+    }
+    blocks
+}
+
+/// One pair's measures over a sliding window of each trial, averaged over the trials. Window
+/// sums are differences of running (prefix) sums along time, all in f64.
 fn across_time(
     measures: &[Measure],
     x: &Coefs,
-    (a, b): (usize, usize),
+    (a, b): (&Polar, &Polar),
     trials: &[usize],
     halves: &[usize],
 ) -> Vec<f32> {
@@ -614,10 +697,13 @@ fn across_time(
     let mut prefix = vec![Sums::default(); x.times + 1];
     for &n in trials {
         for (f, &h) in halves.iter().enumerate() {
-            let (xa, xb) = (x.series(a, n, f), x.series(b, n, f));
-            for (t, (&u, &v)) in xa.iter().zip(xb).enumerate() {
+            let start = (n * x.freqs + f) * x.times;
+            let span = start..start + x.times;
+            let terms = a.unit[span.clone()].iter().zip(&a.amp[span.clone()]);
+            let terms = terms.zip(b.unit[span.clone()].iter().zip(&b.amp[span]));
+            for (t, ((&ua, &aa), (&ub, &ab))) in terms.enumerate() {
                 let mut next = prefix[t];
-                next.add(widen(u), widen(v));
+                next.add_polar(ua, aa, ub, ab);
                 prefix[t + 1] = next;
             }
             for t in 0..x.times {
@@ -639,6 +725,7 @@ mod tests {
     use crate::ops::tf_testing::{coefficients, names, run_err, run_op};
     use crate::testutil::{read_f64, read_json};
     use ndarray::Array4;
+    use num_complex::Complex64;
     use rand::{Rng, SeedableRng};
     use rand_chacha::ChaCha8Rng;
     use serde_json::json;
@@ -851,12 +938,15 @@ mod tests {
     fn clustering_fast_path_matches_plain_loop_oracle() {
         // Oracle: the plain loops above, over several sizes and seeds, with an EOG channel that
         // must stay out of the pairs and one zero coefficient; tolerance 1e-5 relative (floor
-        // 1e-2), the op's output being f32.
+        // 1e-2), the op's output being f32. The last size spans several across-trials tiles.
         for (seed, (ch, tr, nf, nt)) in [
             (1u64, (3, 5, 2, 12)),
             (2, (5, 7, 3, 30)),
             (3, (4, 1, 1, 9)),
             (4, (3, 12, 2, 5)),
+            // 2 data channels × ≈100 trials per condition × 12 B ≈ 2.4 kB per (freq, time) point:
+            // tiles of ≈ 218 of the 240 points, so two tiles per condition.
+            (5, (3, 300, 2, 120)),
         ] {
             let mut rng = ChaCha8Rng::seed_from_u64(seed);
             let pool = ["X", "Y", "Z"];
@@ -1315,5 +1405,57 @@ mod tests {
             StageError::Data(m) => assert!(m.contains("carries no sampling rate")),
             other => panic!("{other:?}"),
         }
+    }
+
+    /// CPU seconds (user + system) of this process so far, from /proc/self/stat (Linux; 0 when
+    /// unreadable). Wall-clock time on a shared machine mostly measures the neighbours.
+    fn cpu_seconds() -> f64 {
+        let stat = std::fs::read_to_string("/proc/self/stat").unwrap_or_default();
+        let after = stat.rsplit(')').next().unwrap_or("");
+        let f: Vec<f64> = after
+            .split_whitespace()
+            .map(|v| v.parse().unwrap_or(0.0))
+            .collect();
+        // Fields 14 and 15 of the file (utime, stime) in clock ticks of 1/100 s.
+        (f.get(11).unwrap_or(&0.0) + f.get(12).unwrap_or(&0.0)) / 100.0
+    }
+
+    #[test]
+    #[ignore = "timing of a mid-size case; run in release with --ignored --nocapture"]
+    fn timing_mid_size() {
+        // 32 channels × 100 trials × 1000 samples at 500 Hz → 20 frequencies → plv, ppc, wpli
+        // over all 496 pairs. Prints wall-clock and CPU seconds; asserts nothing about speed.
+        use crate::ops::tf_testing::epoched;
+        use crate::ops::wavelet::Wavelet;
+        use std::time::Instant;
+        let mut rng = ChaCha8Rng::seed_from_u64(1);
+        let v = ndarray::Array3::from_shape_fn((32, 100, 1000), |_| rng.gen_range(-1e-5f32..1e-5));
+        let conds: Vec<&str> = (0..100)
+            .map(|n| if n % 2 == 0 { "A" } else { "B" })
+            .collect();
+        let data = epoched(v.into_dyn(), 500.0, -400, &conds);
+        let clock = || (Instant::now(), cpu_seconds());
+        let report = |what: &str, shape: &[usize], (t0, c0): (Instant, f64)| {
+            let (t1, c1) = clock();
+            eprintln!(
+                "{what} {shape:?}: {:.2} s wall, {:.2} s CPU",
+                (t1 - t0).as_secs_f64(),
+                c1 - c0
+            );
+        };
+        eprintln!("threads {}", rayon::current_num_threads());
+        let start = clock();
+        let wp =
+            json!({"freqs": {"from": 3, "to": 30, "count": 20}, "cycles": {"from": 3, "to": 8}});
+        let (tf, _) = run_op::<Wavelet>(wp, &data).unwrap();
+        report("wavelet", tf.values.shape(), start);
+        let start = clock();
+        let cp = json!({"measure": ["plv", "ppc", "wpli"], "pairs": "all"});
+        let (sync, _) = run_op::<Clustering>(cp, &tf).unwrap();
+        report("clustering across trials", sync.values.shape(), start);
+        let start = clock();
+        let tp = json!({"measure": ["plv", "ppc", "wpli"], "pairs": {"seed": ["C0"]}, "across": "time", "window_cycles": 3});
+        let (win, _) = run_op::<Clustering>(tp, &tf).unwrap();
+        report("clustering across time", win.values.shape(), start);
     }
 }

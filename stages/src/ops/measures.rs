@@ -6,7 +6,7 @@
 //! Σ |Im S_n|, Σ (Im S_n)², Σ |X_n|² and Σ |Y_n|² — note Im Σ S_n = Σ Im S_n, so imaginary
 //! coherency needs no sum of its own. All sums are f64.
 
-use num_complex::Complex64;
+use num_complex::{Complex32, Complex64};
 use serde::{Deserialize, Serialize};
 
 /// A phase-clustering measure.
@@ -64,37 +64,90 @@ pub struct Sums {
     pub py: f64,
 }
 
-/// sign with sign(0) = 0 (f64::signum gives ±1 at zero, which would count a zero imaginary
-/// part as a lead or a lag).
-fn sign(v: f64) -> f64 {
-    if v > 0.0 {
-        1.0
-    } else if v < 0.0 {
-        -1.0
-    } else {
-        0.0
+/// A coefficient as (unit phasor, amplitude), computed in f64 and stored as f32; a zero
+/// coefficient gives a zero phasor. Channels are converted once, so the per-pair loops need no
+/// square root or division.
+pub fn polar(z: Complex32) -> (Complex32, f32) {
+    let z = Complex64::new(f64::from(z.re), f64::from(z.im));
+    let a = z.norm();
+    let u = if a > 0.0 { z / a } else { Complex64::default() };
+    (Complex32::new(u.re as f32, u.im as f32), a as f32)
+}
+
+fn widen(z: Complex32) -> Complex64 {
+    Complex64::new(f64::from(z.re), f64::from(z.im))
+}
+
+/// 1.0 when `b` holds, else 0.0 (branch-free, so the loops stay straight-line).
+fn indicator(b: bool) -> f64 {
+    f64::from(u8::from(b))
+}
+
+/// Sums over paired series of (phasor, amplitude) terms. Four interleaved partial sums, added
+/// in a fixed order at the end, keep four independent chains of additions in flight; the
+/// grouping depends only on the index, so the result is the same for any thread count.
+pub fn sums_over(ua: &[Complex32], aa: &[f32], ub: &[Complex32], ab: &[f32]) -> Sums {
+    let mut lanes = [Sums::default(); 4];
+    let blocks = ua
+        .chunks_exact(4)
+        .zip(aa.chunks_exact(4))
+        .zip(ub.chunks_exact(4).zip(ab.chunks_exact(4)));
+    for ((u, a), (v, b)) in blocks {
+        for (l, lane) in lanes.iter_mut().enumerate() {
+            lane.add_polar(u[l], a[l], v[l], b[l]);
+        }
     }
+    let done = ua.len() / 4 * 4;
+    let rest = ua[done..]
+        .iter()
+        .zip(&aa[done..])
+        .zip(ub[done..].iter().zip(&ab[done..]));
+    for (lane, ((&u, &a), (&v, &b))) in lanes.iter_mut().zip(rest) {
+        lane.add_polar(u, a, v, b);
+    }
+    lanes[0].plus(&lanes[1]).plus(&lanes[2].plus(&lanes[3]))
 }
 
 impl Sums {
     /// Adds the term of one trial or sample with coefficients `x` (first channel), `y` (second).
-    #[inline]
-    pub fn add(&mut self, x: Complex64, y: Complex64) {
-        let s = x * y.conj();
-        let (ax, ay) = (x.norm_sqr(), y.norm_sqr());
+    pub fn add(&mut self, x: Complex32, y: Complex32) {
+        let ((ua, aa), (ub, ab)) = (polar(x), polar(y));
+        self.add_polar(ua, aa, ub, ab);
+    }
+
+    /// Adds one term from the unit phasors and amplitudes of X and Y:
+    /// e^{iΔφ} = u_x · conj(u_y) and Im S = |X| |Y| Im(e^{iΔφ}).
+    #[inline(always)]
+    pub fn add_polar(&mut self, ua: Complex32, aa: f32, ub: Complex32, ab: f32) {
+        let p = widen(ua) * widen(ub).conj();
+        let (aa, ab) = (f64::from(aa), f64::from(ab));
+        let im = aa * ab * p.im;
         self.n += 1.0;
-        if ax == 0.0 || ay == 0.0 {
-            self.zeros += 1.0;
-        } else {
-            // |S| = |X| |Y|: one square root.
-            self.phasor += s / (ax * ay).sqrt();
+        self.zeros += indicator(aa == 0.0 || ab == 0.0);
+        self.phasor += p;
+        // sign with sign(0) = 0 (f64::signum gives ±1 at zero, which would count a zero
+        // imaginary part as a lead or a lag).
+        self.sign += indicator(im > 0.0) - indicator(im < 0.0);
+        self.im += im;
+        self.abs_im += im.abs();
+        self.im2 += im * im;
+        self.px += aa * aa;
+        self.py += ab * ab;
+    }
+
+    /// The sums of the terms of `self` and `other` together.
+    pub fn plus(&self, other: &Sums) -> Sums {
+        Sums {
+            n: self.n + other.n,
+            zeros: self.zeros + other.zeros,
+            phasor: self.phasor + other.phasor,
+            sign: self.sign + other.sign,
+            im: self.im + other.im,
+            abs_im: self.abs_im + other.abs_im,
+            im2: self.im2 + other.im2,
+            px: self.px + other.px,
+            py: self.py + other.py,
         }
-        self.sign += sign(s.im);
-        self.im += s.im;
-        self.abs_im += s.im.abs();
-        self.im2 += s.im * s.im;
-        self.px += ax;
-        self.py += ay;
     }
 
     /// The sums of the terms in `self` but not in `earlier` (a window from two prefix sums).
@@ -142,7 +195,7 @@ mod tests {
         // Worked by hand from the DESIGN.md §4 formulas: X = (1, i, i), Y = (1, 1, 1), so
         // S = (1, i, i), Δφ = (0, π/2, π/2), Σe^{iΔφ} = 1 + 2i, Im S = (0, 1, 1).
         let mut s = Sums::default();
-        let (one, i) = (Complex64::new(1.0, 0.0), Complex64::new(0.0, 1.0));
+        let (one, i) = (Complex32::new(1.0, 0.0), Complex32::new(0.0, 1.0));
         for x in [one, i, i] {
             s.add(x, one);
         }
@@ -158,8 +211,8 @@ mod tests {
     #[test]
     fn measures_zero_coefficient_gives_nan() {
         let mut s = Sums::default();
-        s.add(Complex64::new(1.0, 0.0), Complex64::new(0.5, 0.5));
-        s.add(Complex64::new(0.0, 0.0), Complex64::new(1.0, 0.0));
+        s.add(Complex32::new(1.0, 0.0), Complex32::new(0.5, 0.5));
+        s.add(Complex32::new(0.0, 0.0), Complex32::new(1.0, 0.0));
         for m in [Measure::Plv, Measure::Ppc, Measure::Icoh] {
             assert!(s.value(m).is_nan());
         }
