@@ -608,11 +608,16 @@ fn by_trial_last(x: &Coefs, trials: &[usize], used: &[usize]) -> BTreeMap<usize,
         .par_iter()
         .map(|&c| {
             let mut dst = Polar::with_len(x.freqs * x.times * n);
-            for (k, &trial) in trials.iter().enumerate() {
-                for f in 0..x.freqs {
-                    for (t, &z) in x.series(c, trial, f).iter().enumerate() {
-                        let i = (f * x.times + t) * n + k;
-                        (dst.unit[i], dst.amp[i]) = polar(z);
+            // Blocks of 64 time points: the block's destination (64 × n entries) stays in cache
+            // while every trial writes into it, instead of one cache line per written value.
+            for f in 0..x.freqs {
+                for t0 in (0..x.times).step_by(64) {
+                    let t1 = (t0 + 64).min(x.times);
+                    for (k, &trial) in trials.iter().enumerate() {
+                        for (t, &z) in (t0..t1).zip(&x.series(c, trial, f)[t0..t1]) {
+                            let i = (f * x.times + t) * n + k;
+                            (dst.unit[i], dst.amp[i]) = polar(z);
+                        }
                     }
                 }
             }
