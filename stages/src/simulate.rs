@@ -186,6 +186,13 @@ pub struct Planted {
     pub background_corners_hz: [f64; 7],
     /// Fraction of each neighbouring source a sensor records (zero lag).
     pub neighbour_weight: f64,
+    /// Two sites that both record one strong extra generator, equally and at zero lag (a
+    /// midline occipital source seen by both occipital sensors): the demo's volume-conducted pair.
+    pub shared_sites: [&'static str; 2],
+    /// RMS in µV of that shared generator.
+    pub shared_rms_uv: f64,
+    /// Centre frequency and bandwidth in Hz of the shared generator's resonance.
+    pub shared_band_hz: [f64; 2],
     /// Sites closer than this on the grid are neighbours (grid units; diagonals included).
     pub neighbour_distance: f64,
     /// Range of the mains amplitude per channel, in µV.
@@ -215,6 +222,9 @@ pub const PLANTED: Planted = Planted {
     background_rms_uv: 12.0,
     background_corners_hz: [0.5, 1.25, 3.1, 7.8, 19.5, 48.8, 122.0],
     neighbour_weight: 0.2,
+    shared_sites: ["O1", "O2"],
+    shared_rms_uv: 12.0,
+    shared_band_hz: [7.0, 6.0],
     neighbour_distance: 1.5,
     mains_uv: [5.0, 20.0],
     harmonic_ratio: 0.33,
@@ -427,6 +437,39 @@ fn background(n: usize, rate: f64, rng: &mut ChaCha20Rng) -> Vec<f64> {
     s.into_iter().map(|v| v * p.background_rms_uv).collect()
 }
 
+/// One band-limited generator added, unchanged and at zero lag, to both `shared_sites` (volume
+/// conduction: coupling that phase-locking measures see and imaginary-part measures ignore).
+/// It is white noise through a two-pole resonator, x[k] = 2r·cos(ω)·x[k−1] − r²·x[k−2] + e[k]
+/// with r = exp(−π·B/fs) for a bandwidth of about B Hz, scaled to `shared_rms_uv`.
+fn add_shared_source(sources: &mut [Vec<f64>], rate: f64, rng: &mut ChaCha20Rng) {
+    let p = &PLANTED;
+    let n = sources.first().map_or(0, Vec::len);
+    let [centre, width] = p.shared_band_hz;
+    let r = (-PI * width / rate).exp();
+    let (a1, a2) = (2.0 * r * (2.0 * PI * centre / rate).cos(), -r * r);
+    let mut shared = Vec::with_capacity(n);
+    let (mut x1, mut x2) = (0.0, 0.0);
+    for _ in 0..n {
+        let e: f64 = rng.sample(StandardNormal);
+        let x = a1 * x1 + a2 * x2 + e;
+        shared.push(x);
+        (x2, x1) = (x1, x);
+    }
+    let rms = (shared.iter().map(|v| v * v).sum::<f64>() / n.max(1) as f64).sqrt();
+    let gain = if rms > 0.0 {
+        p.shared_rms_uv / rms
+    } else {
+        0.0
+    };
+    for name in p.shared_sites {
+        if let Some(i) = SITES.iter().position(|s| s.0 == name) {
+            for (v, s) in sources[i].iter_mut().zip(&shared) {
+                *v += gain * s;
+            }
+        }
+    }
+}
+
 /// Eye movements reach the frontopolar sites.
 fn add_eog_leak(signals: &mut [Vec<f64>], eog: &[f64]) {
     for name in ["Fp1", "Fp2"] {
@@ -470,6 +513,7 @@ pub fn simulate_subject(config: &SimulateConfig, index: usize) -> Result<Recordi
         scale * p.amplitude_uv,
         &mut rng,
     );
+    add_shared_source(&mut sources, rate, &mut rng);
     let mut signals = mix(&sources);
     let eog = eog(n, rate, &mut rng);
     add_eog_leak(&mut signals, &eog);
@@ -646,6 +690,13 @@ fn truth(
         },
         "generator": p,
         "mixing": { "kind": "zero lag", "weight": p.neighbour_weight, "neighbours": nb },
+        "volume_conduction": {
+            "pair": p.shared_sites,
+            "rms_uv": p.shared_rms_uv,
+            "lag_s": 0.0,
+            "note": "one generator recorded equally by both sites at zero lag: plv and ppc are \
+                     high for this pair, pli, wpli, dwpli and icoh are not",
+        },
         "subjects": per_subject,
         "eog_channel": EOG,
     })
