@@ -66,7 +66,7 @@ pub enum Command {
         #[arg(long)]
         out: PathBuf,
         /// Number of simulated participants.
-        #[arg(long, default_value_t = 8)]
+        #[arg(long, default_value_t = 6)]
         subjects: usize,
         /// Seed of the simulation.
         #[arg(long, default_value_t = 1)]
