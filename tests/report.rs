@@ -370,10 +370,60 @@ fn pixel_to_tf(fig: &FigureInfo, panel: usize, (px, py): (f64, f64)) -> (f64, f6
     (t, f)
 }
 
+/// The report's sections, in order.
+const SECTIONS: [&str; 9] = [
+    "caution",
+    "summary",
+    "stages",
+    "epochs",
+    "warnings",
+    "tf-maps",
+    "matrices",
+    "tables",
+    "not-drawn",
+];
+
 /// Top entry of the published viridis table (0.993248, 0.906157, 0.143936) in 8 bits.
 const VIRIDIS_TOP: [u8; 3] = [253, 231, 37];
 /// Warm end of Moreland's cool–warm map, as published.
 const MORELAND_WARM: [u8; 3] = [180, 4, 38];
+
+/// Every inline image decodes as a PNG; every linked file exists, PNGs decode and SVGs parse as
+/// XML with an `<svg>` root; one inline image and two links per figure of the summary.
+fn check_images(html: &str, html_path: &Path, s: &ReportSummary) {
+    // Inline images: every data URI decodes as a PNG.
+    let uris: Vec<&str> = html
+        .split("src=\"data:image/png;base64,")
+        .skip(1)
+        .map(|r| &r[..r.find('"').unwrap()])
+        .collect();
+    assert_eq!(uris.len(), s.figures.len());
+    for u in &uris {
+        use base64::Engine;
+        let bytes = base64::engine::general_purpose::STANDARD.decode(u).unwrap();
+        let (w, h, _) = decode_png(&bytes);
+        assert!(w > 100 && h > 100);
+    }
+    // Linked files: each exists; PNGs decode, SVGs parse as XML with an <svg> root.
+    let hrefs: Vec<&str> = html
+        .split("href=\"")
+        .skip(1)
+        .map(|r| &r[..r.find('"').unwrap()])
+        .collect();
+    assert_eq!(hrefs.len(), 2 * s.figures.len());
+    for h in hrefs {
+        let p = html_path.parent().unwrap().join(h);
+        let bytes = fs::read(&p).unwrap_or_else(|e| panic!("{h}: {e}"));
+        if h.ends_with(".png") {
+            decode_png(&bytes);
+        } else {
+            assert!(h.ends_with(".svg"), "{h}");
+            let text = String::from_utf8(bytes).unwrap();
+            let doc = roxmltree::Document::parse(&text).unwrap_or_else(|e| panic!("{h}: {e}"));
+            assert_eq!(doc.root_element().tag_name().name(), "svg");
+        }
+    }
+}
 
 #[test]
 fn report_has_every_section_and_every_image_decodes() {
@@ -403,38 +453,7 @@ fn report_has_every_section_and_every_image_decodes() {
         !html.contains("http://") && !html.contains("https://"),
         "the page loads nothing from outside"
     );
-    // Inline images: every data URI decodes as a PNG.
-    let uris: Vec<&str> = html
-        .split("src=\"data:image/png;base64,")
-        .skip(1)
-        .map(|r| &r[..r.find('"').unwrap()])
-        .collect();
-    assert_eq!(uris.len(), s.figures.len());
-    for u in &uris {
-        use base64::Engine;
-        let bytes = base64::engine::general_purpose::STANDARD.decode(u).unwrap();
-        let (w, h, _) = decode_png(&bytes);
-        assert!(w > 100 && h > 100);
-    }
-    // Linked files: each exists; PNGs decode, SVGs parse as XML with an <svg> root.
-    let hrefs: Vec<&str> = html
-        .split("href=\"")
-        .skip(1)
-        .map(|r| &r[..r.find('"').unwrap()])
-        .collect();
-    assert_eq!(hrefs.len(), 2 * s.figures.len());
-    for h in hrefs {
-        let p = f.html.parent().unwrap().join(h);
-        let bytes = fs::read(&p).unwrap_or_else(|e| panic!("{h}: {e}"));
-        if h.ends_with(".png") {
-            decode_png(&bytes);
-        } else {
-            assert!(h.ends_with(".svg"), "{h}");
-            let text = String::from_utf8(bytes).unwrap();
-            let doc = roxmltree::Document::parse(&text).unwrap_or_else(|e| panic!("{h}: {e}"));
-            assert_eq!(doc.root_element().tag_name().name(), "svg");
-        }
-    }
+    check_images(&html, &f.html, &s);
     // What the manifest says is shown.
     assert!(html.contains("synthetic-report-test"));
     assert!(html.contains("the wavelet at 3 Hz is longer than the buffer"));
@@ -554,4 +573,111 @@ fn a_folder_without_manifest_is_an_error_naming_it() {
         msg.contains("manifest.json") && msg.contains("run the pipeline first"),
         "{msg}"
     );
+}
+
+/// The demo pipeline of this test: DESIGN §3's chain on the simulated study, with the
+/// baseline-subtracted maps exported so that the report can draw them.
+const DEMO_PIPELINE: &str = r#"
+name: report-demo
+data:
+  recordings: "demo-data/sub-*/eeg/*_eeg.edf"
+  events: sidecar
+output: results
+stages:
+  reref: { op: re-reference, input: recordings, params: { method: average } }
+  line: { op: notch, input: reref, params: { freqs: [50], harmonics: true, q: 30 } }
+  trials:
+    op: epoch
+    input: line
+    params: { conditions: { left: [cue-left], right: [cue-right] }, window: [-1.0, 1.5] }
+  tf:
+    op: wavelet
+    input: trials
+    params:
+      freqs: { from: 3, to: 30, count: 16, spacing: log }
+      cycles: { from: 3, to: 8 }
+      crop: [-0.6, 1.1]
+      stride: 5
+    cache: false
+  sync: { op: clustering, input: tf, params: { measure: [plv, wpli], pairs: all, across: trials } }
+  norm:
+    op: baseline
+    input: sync
+    params: { window: [-0.5, -0.2], mode: subtract }
+    export: true
+  group:
+    op: aggregate
+    input: norm
+    params: { over: subjects, bands: { theta: [4, 8] }, windows: { late: [0.3, 0.8] } }
+    export: true
+"#;
+
+/// End to end: simulate the demo study, run the pipeline with the `phasewise` binary, render
+/// the report, and find the planted coupling (read from the simulator's truth.json, not from
+/// the report) where it was planted.
+#[test]
+fn demo_report_shows_the_planted_coupling() {
+    use assert_cmd::Command;
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path();
+    Command::cargo_bin("phasewise")
+        .unwrap()
+        .args(["simulate", "--subjects", "4", "--out"])
+        .arg(dir.join("demo-data"))
+        .assert()
+        .success();
+    fs::write(dir.join("demo.yaml"), DEMO_PIPELINE).unwrap();
+    Command::cargo_bin("phasewise")
+        .unwrap()
+        .arg("run")
+        .arg(dir.join("demo.yaml"))
+        .assert()
+        .success();
+    let out = dir.join("results");
+    let html_path = out.join("report.html");
+    let s = write_report(&out, &html_path, &ReportOptions::default()).unwrap();
+    if let Ok(keep) = std::env::var("PHASEWISE_REPORT_KEEP") {
+        copy_report(&html_path, &Path::new(&keep).join("demo"));
+    }
+    let html = fs::read_to_string(&html_path).unwrap();
+    for id in SECTIONS {
+        assert!(
+            html.contains(&format!("<section id=\"{id}\">")),
+            "section {id} missing"
+        );
+    }
+    check_images(&html, &html_path, &s);
+
+    let truth: Value =
+        serde_json::from_slice(&fs::read(dir.join("demo-data/truth.json")).unwrap()).unwrap();
+    let c = &truth["coupling"];
+    let pair = format!(
+        "{}–{}",
+        c["pair"][0].as_str().unwrap(),
+        c["pair"][1].as_str().unwrap()
+    );
+    let freq = c["frequency_hz"].as_f64().unwrap();
+    let (w0, w1) = (
+        c["window_s"][0].as_f64().unwrap(),
+        c["window_s"][1].as_f64().unwrap(),
+    );
+    assert_eq!(
+        c["condition"], "cue-left",
+        "the pipeline above maps cue-left to `left`"
+    );
+    // The planted pair is among the strongest pairs the report picks by default, and its
+    // strongest colour in the `left` panel lies inside the planted window, near the frequency.
+    // wPLI: the coupling is lagged, and the imaginary part ignores the zero-lag mixing.
+    let fig = tf_figure(&s, "subject-mean/norm", "wpli", &pair);
+    assert_eq!(fig.panels[0].label, "left");
+    let (t, f) = pixel_to_tf(fig, 0, nearest_pixel(fig, 0, MORELAND_WARM));
+    assert!(
+        t >= w0 && t <= w1,
+        "strongest wpli at t = {t}, planted in [{w0}, {w1}] s"
+    );
+    assert!(
+        (f / freq).ln().abs() <= 1.35f64.ln(),
+        "strongest wpli at f = {f}, planted at {freq} Hz"
+    );
+    println!("planted coupling {pair}: strongest colour of the mean wpli map at t = {t:.3} s, f = {f:.2} Hz");
 }
