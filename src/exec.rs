@@ -17,13 +17,13 @@ use std::sync::Arc;
 use std::time::Instant;
 
 use indicatif::ProgressBar;
-use phasewise_stages::{Input, LabelledArray, Notes};
+use phasewise_stages::{Input, LabelledArray, Notes, StageError};
 use rayon::prelude::*;
 
 use crate::graph::UnitInput;
 use crate::output::{self, ExportTarget};
 use crate::pipeline::SOURCE;
-use crate::plan::{Plan, Status};
+use crate::plan::{Plan, Reason, Status};
 use crate::sources::Reader;
 use crate::store::{npy_bytes, LoadError, Lookup, ObjectRecord};
 use crate::study::{RunError, Study, UnitFailure};
@@ -222,12 +222,27 @@ impl Worker<'_, '_, '_> {
             stage: self.study().stage_name(u).to_string(),
             subject: self.study().subject(u).map(str::to_string),
             message: message.into(),
+            diagnostic: None,
         }
+    }
+
+    /// An op's error; a param error also points at the param's line.
+    fn op_failure(&self, u: usize, error: &StageError) -> UnitFailure {
+        let mut failure = self.fail(u, error.to_string());
+        if matches!(error, StageError::Param { .. }) {
+            let stage = self.study().units[u].stage;
+            failure.diagnostic = Some(self.study().pipeline.stage_diagnostic(stage, error));
+        }
+        failure
     }
 
     /// Bring one unit up to date and export it if asked.
     fn process(&mut self, u: usize) -> Result<(), UnitFailure> {
-        let stale = self.ctx.plan.units[u].status != Status::Fresh;
+        let status = &self.ctx.plan.units[u].status;
+        let stale = *status != Status::Fresh;
+        if let Status::Stale(Reason::Damaged { why }) = status {
+            self.warn_damaged(u, why);
+        }
         let mut npy = None;
         if stale {
             npy = Some(self.compute(u)?);
@@ -352,6 +367,7 @@ impl Worker<'_, '_, '_> {
                 stage: SOURCE.into(),
                 subject: Some(source.subject.clone()),
                 message: format!("{}: {e}", study.display_path(&source.path)),
+                diagnostic: None,
             })?;
         let warnings = notes
             .warnings
@@ -389,7 +405,7 @@ impl Worker<'_, '_, '_> {
         let array = stage
             .op
             .run(&stage.params, &inputs, &mut notes)
-            .map_err(|e| self.fail(u, e.to_string()))?;
+            .map_err(|e| self.op_failure(u, &e))?;
         drop(inputs);
         let npy = npy_bytes(&array.values).map_err(|e| self.fail(u, e.to_string()))?;
         let fingerprint = &study.fingerprints[u];

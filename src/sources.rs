@@ -60,7 +60,7 @@ impl Reader for RecordingReader {
 #[derive(Debug, thiserror::Error)]
 pub enum SourceError {
     /// The glob is malformed.
-    #[error("data.recordings: `{pattern}` is not a valid glob: {message}")]
+    #[error("`{pattern}` is not a valid glob: {message}")]
     BadPattern {
         /// The glob.
         pattern: String,
@@ -68,7 +68,7 @@ pub enum SourceError {
         message: String,
     },
     /// The glob matched no file.
-    #[error("data.recordings: `{pattern}` matches no file (looked in {dir})")]
+    #[error("`{pattern}` matches no file (looked in {})", shown(.dir))]
     NoMatch {
         /// The glob.
         pattern: String,
@@ -76,7 +76,9 @@ pub enum SourceError {
         dir: PathBuf,
     },
     /// Two recordings map to the same subject.
-    #[error("data.recordings: subject `{subject}` has two recordings, {first} and {second}; expected one per subject")]
+    #[error(
+        "subject `{subject}` has two recordings, {first} and {second}; expected one per subject"
+    )]
     DuplicateSubject {
         /// The subject.
         subject: String,
@@ -101,6 +103,15 @@ pub enum SourceError {
         /// The cause.
         source: std::io::Error,
     },
+}
+
+/// A folder for messages: `.` rather than nothing.
+fn shown(dir: &Path) -> String {
+    if dir.as_os_str().is_empty() {
+        ".".into()
+    } else {
+        dir.display().to_string()
+    }
 }
 
 /// One subject's recording.

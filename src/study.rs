@@ -50,14 +50,15 @@ impl RunError {
     pub fn exit_code(&self) -> i32 {
         match self {
             RunError::Pipeline(_) | RunError::Source(_) | RunError::UnknownSubject { .. } => 2,
+            // A param error found only while running still means the pipeline is wrong.
+            RunError::Units(f) if f.iter().any(|f| f.diagnostic.is_some()) => 2,
             RunError::Units(_) | RunError::Other(_) => 1,
         }
     }
 }
 
 /// A unit that failed.
-#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
-#[error("stage {stage} failed for {}: {message}", subject_label(.subject.as_deref()))]
+#[derive(Clone, Debug, PartialEq, Eq)]
 pub struct UnitFailure {
     /// The stage.
     pub stage: String,
@@ -65,7 +66,21 @@ pub struct UnitFailure {
     pub subject: Option<String>,
     /// What went wrong.
     pub message: String,
+    /// For an op's param error found only at run time: where the param is in the file.
+    pub diagnostic: Option<Diagnostic>,
 }
+
+impl std::fmt::Display for UnitFailure {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        let who = subject_label(self.subject.as_deref());
+        match &self.diagnostic {
+            Some(d) => write!(f, "{d} ({who})"),
+            None => write!(f, "stage {} failed for {who}: {}", self.stage, self.message),
+        }
+    }
+}
+
+impl std::error::Error for UnitFailure {}
 
 /// `subject 01` or `the group`.
 pub fn subject_label(subject: Option<&str>) -> String {
@@ -108,12 +123,21 @@ impl<'o> Study<'o> {
         selection: &[String],
         hasher: &Hasher,
     ) -> Result<Study<'o>, RunError> {
-        let all = sources::discover(&pipeline.dir, &pipeline.recordings, reader)?;
+        let all = match sources::discover(&pipeline.dir, &pipeline.recordings, reader) {
+            Ok(all) => all,
+            Err(e @ SourceError::Io { .. }) => return Err(RunError::Other(e.to_string())),
+            Err(e) => {
+                let d = pipeline.recordings_diagnostic(e.to_string());
+                return Err(RunError::Pipeline(PipelineError::Invalid(vec![d])));
+            }
+        };
         let sources = select(all, selection)?;
         let mut source_keys = Vec::new();
         let mut source_files = Vec::new();
         for source in &sources {
-            let (key, files) = hasher.source_key(source)?;
+            let (key, files) = hasher
+                .source_key(source)
+                .map_err(|e| RunError::Other(e.to_string()))?;
             source_keys.push(key);
             source_files.push(files);
         }
@@ -315,6 +339,7 @@ impl<'o> Study<'o> {
                         stage: SOURCE.into(),
                         subject: Some(source.subject.clone()),
                         message: format!("{}: {e}", self.display_path(&source.path)),
+                        diagnostic: None,
                     });
                     source_layouts.push(None);
                 }
@@ -387,6 +412,7 @@ impl<'o> Study<'o> {
                     stage: stage.name.clone(),
                     subject: self.subject(u).map(str::to_string),
                     message: e.to_string(),
+                    diagnostic: None,
                 });
                 None
             }

@@ -35,6 +35,8 @@ pub struct ResolvedPipeline<'o> {
     pub name: String,
     /// The recordings glob, relative to `dir`.
     pub recordings: String,
+    /// Line and column of the glob in the file, for errors about it.
+    pub recordings_at: (usize, usize),
     /// Where events come from.
     pub events: EventSource,
     /// The output folder.
@@ -76,6 +78,17 @@ impl ResolvedPipeline<'_> {
     /// The stage called `name`.
     pub fn stage_index(&self, name: &str) -> Option<usize> {
         self.stages.iter().position(|s| s.name == name)
+    }
+
+    /// A diagnostic about the recordings glob.
+    pub fn recordings_diagnostic(&self, message: String) -> Diagnostic {
+        Diagnostic {
+            file: Some(self.file.clone()),
+            line: self.recordings_at.0,
+            col: self.recordings_at.1,
+            field: "data.recordings".into(),
+            message,
+        }
     }
 
     /// A diagnostic for an op's error about stage `stage`, pointing at the param's line.
@@ -153,6 +166,10 @@ fn resolve<'o>(
         file_blake3: blake3::hash(bytes).to_hex().to_string(),
         name,
         recordings: recordings?,
+        recordings_at: raw
+            .recordings
+            .as_ref()
+            .map_or((0, 0), |r| yaml::file_position(r.origin)),
         events: events?,
         output: output?,
         report: raw.report,
@@ -411,14 +428,29 @@ fn report_stage_error(c: &mut Collector<'_>, stage: &str, params: &Node, error: 
                 steps.push(PathStep::Key(unknown));
             }
             let node = deepest_key_or_value(params, &steps);
+            let message = with_found_value(message, params.at(&split_path(field)));
             let dotted = if field.is_empty() {
                 format!("stages.{stage}.params")
             } else {
                 format!("stages.{stage}.params.{field}")
             };
-            c.at(node, dotted, message.clone());
+            c.at(node, dotted, message);
         }
         other => c.at(params.origin, format!("stages.{stage}"), other.to_string()),
+    }
+}
+
+/// Ops do not always repeat the offending value; a message that lacks it gets it appended.
+fn with_found_value(message: &str, node: Option<&Node>) -> String {
+    let found = match node.map(|n| (&n.kind, n.to_json())) {
+        Some((NodeKind::Scalar { text, .. }, _)) => text.clone(),
+        Some((_, json)) => json.to_string(),
+        None => return message.to_string(),
+    };
+    if found.is_empty() || found.len() > 80 || message.contains(&found) {
+        message.to_string()
+    } else {
+        format!("{message} (found `{found}`)")
     }
 }
 

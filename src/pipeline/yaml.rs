@@ -116,6 +116,22 @@ impl Node {
         }
     }
 
+    /// The node at exactly this path, if there is one.
+    pub fn at<'a>(&'a self, path: &[PathStep]) -> Option<&'a Node> {
+        let Some((step, rest)) = path.split_first() else {
+            return Some(self);
+        };
+        let next = match (&self.kind, step) {
+            (NodeKind::Map(entries), PathStep::Key(key)) => entries
+                .iter()
+                .find(|(k, _)| k.as_str() == Some(key.as_str()))
+                .map(|(_, v)| v),
+            (NodeKind::Seq(items), PathStep::Index(i)) => items.get(*i),
+            _ => None,
+        };
+        next?.at(rest)
+    }
+
     /// The node at a dotted path (`freqs.to`, `window[1]`), or the deepest node on the way there.
     pub fn deepest<'a>(&'a self, path: &[PathStep]) -> &'a Node {
         let mut node = self;
