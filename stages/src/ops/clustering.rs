@@ -32,6 +32,7 @@ use serde::{Deserialize, Serialize};
 #[cfg(test)]
 use crate::array::Values;
 use crate::array::{Coord, LabelledArray, Layout};
+use crate::dsp::recording::is_voltage_data_type;
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
 
@@ -132,10 +133,10 @@ impl ClusteringParams {
     }
 }
 
-/// True for the channel types whose signals form pairs.
+/// True for the channel types whose signals form pairs: the voltage data channels of
+/// [`is_voltage_data_type`] and MEG sensors (a phase needs no voltage unit).
 pub fn is_data_channel(kind: &str) -> bool {
-    let k = kind.to_ascii_uppercase();
-    matches!(k.as_str(), "EEG" | "SEEG" | "ECOG" | "DBS" | "LFP") || k.starts_with("MEG")
+    is_voltage_data_type(kind) || kind.trim().to_ascii_uppercase().starts_with("MEG")
 }
 
 /// Everything [`Clustering::run`] needs, derived from params and the input layout alone.
