@@ -231,7 +231,9 @@ impl Worker<'_, '_, '_> {
         let mut failure = self.fail(u, error.to_string());
         if matches!(error, StageError::Param { .. }) {
             let stage = self.study().units[u].stage;
-            failure.diagnostic = Some(self.study().pipeline.stage_diagnostic(stage, error));
+            failure.diagnostic = Some(Box::new(
+                self.study().pipeline.stage_diagnostic(stage, error),
+            ));
         }
         failure
     }

@@ -67,7 +67,7 @@ pub struct UnitFailure {
     /// What went wrong.
     pub message: String,
     /// For an op's param error found only at run time: where the param is in the file.
-    pub diagnostic: Option<Diagnostic>,
+    pub diagnostic: Option<Box<Diagnostic>>,
 }
 
 impl std::fmt::Display for UnitFailure {
