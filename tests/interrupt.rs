@@ -2,46 +2,58 @@
 //! with outputs bit-identical to an uninterrupted run's (DESIGN §5: objects are written to a
 //! temporary file, synced and renamed, so a killed run leaves no half object).
 //!
-//! The harness runs the tiny pipeline once, uninterrupted, to get the reference outputs and
-//! store and to measure how long a run takes; then, for 20 delays spread evenly over that
-//! duration, it starts a fresh run, kills it after the delay, runs again to completion and
-//! compares outputs and store with the reference.
+//! The harness runs the demo pipeline (`pipelines/demo.yaml`, which also has a `cache: false`
+//! stage) on the first subject of the committed demo study, once, uninterrupted, to get the
+//! reference outputs and store and to measure how long a run takes; then, for 20 delays spread
+//! evenly over that duration, it starts a fresh run, kills it after the delay, runs again to
+//! completion and compares outputs and store with the reference. One subject keeps the test
+//! near a minute on a 2-core machine.
 
 mod reliability;
 
+use std::fs;
 use std::path::Path;
 use std::thread::sleep;
 use std::time::{Duration, Instant};
 
-use reliability::{
-    assert_success, command, copy_tree, output_arrays, run_cli, store_problems, tiny_project,
-    StudySpec,
-};
+use reliability::{assert_success, command, copy_tree, output_arrays, run_cli, store_problems};
 
 /// How many moments to kill at (issue 5).
 const KILLS: u32 = 20;
 
-/// A study a little larger than the bad-input one, so a run lasts long enough for 20 distinct
-/// kill moments to land in different stages.
-fn study() -> StudySpec {
-    StudySpec {
-        rates: vec![128.0; 6],
-        seconds: 200,
-    }
+/// A copy of the demo project with its first subject only: `pipelines/demo.yaml` and
+/// `demo-data/sub-01/`, laid out as in the repository so the pipeline's relative paths hold.
+fn demo_project(dir: &Path) {
+    let repo = Path::new(env!("CARGO_MANIFEST_DIR"));
+    copy_tree(
+        &repo.join("demo-data/sub-01"),
+        &dir.join("demo-data/sub-01"),
+    );
+    fs::create_dir_all(dir.join("pipelines")).expect("mkdir");
+    fs::copy(
+        repo.join("pipelines/demo.yaml"),
+        dir.join("pipelines/demo.yaml"),
+    )
+    .expect("copy the demo pipeline");
 }
+
+/// The demo pipeline's `output`, relative to the project.
+const OUTPUT: &str = "results/demo";
+/// The command line of a run.
+const RUN: [&str; 4] = ["run", "pipelines/demo.yaml", "--cache", "cache"];
 
 #[test]
 fn a_killed_run_resumes_to_bit_identical_outputs() {
     let root = tempfile::tempdir().expect("tempdir");
     let pristine = root.path().join("pristine");
-    tiny_project(&pristine, &study());
+    demo_project(&pristine);
     let reference = root.path().join("reference");
     copy_tree(&pristine, &reference);
     let started = Instant::now();
     assert_success(&run(&reference), "the uninterrupted run");
     let duration = started.elapsed();
     eprintln!("uninterrupted run: {duration:?}");
-    let want = output_arrays(&reference.join("results"));
+    let want = output_arrays(&reference.join(OUTPUT));
     assert!(!want.is_empty(), "the reference run exported nothing");
 
     let mut failures = Vec::new();
@@ -63,7 +75,7 @@ fn a_killed_run_resumes_to_bit_identical_outputs() {
                 String::from_utf8_lossy(&out.stderr)
             ));
         }
-        let got = output_arrays(&dir.join("results"));
+        let got = output_arrays(&dir.join(OUTPUT));
         problems.extend(reliability::output_differences(&got, &want));
         problems.extend(store_problems(
             &dir.join("cache"),
@@ -99,12 +111,12 @@ fn a_killed_run_resumes_to_bit_identical_outputs() {
 
 /// A complete run of the project in `dir`, with its cache in `dir/cache`.
 fn run(dir: &Path) -> std::process::Output {
-    run_cli(dir, &["run", "pipeline.yaml", "--cache", "cache"])
+    run_cli(dir, &RUN)
 }
 
 /// Start a run in `dir` and SIGKILL it after `delay`; false when it had finished before.
 fn kill_after(dir: &Path, delay: Duration) -> bool {
-    let mut child = command(dir, &["run", "pipeline.yaml", "--cache", "cache"])
+    let mut child = command(dir, &RUN)
         .stdout(std::process::Stdio::null())
         .stderr(std::process::Stdio::null())
         .spawn()
