@@ -10,7 +10,8 @@
 //!   pipeline file's name followed by the line on which that text first appears;
 //! - that nothing panicked.
 //!
-//! Every failing case is collected, so one run lists them all.
+//! Every failing case is collected, so one run lists them all. With `PHASEWISE_SHOW_CORPUS=1`
+//! (and `--nocapture`) every case's stderr is printed, to review the messages themselves.
 
 mod reliability;
 
@@ -20,6 +21,9 @@ use std::path::{Path, PathBuf};
 use serde::Deserialize;
 
 use reliability::{corpus_dir, has_panic_text, run_cli, stderr_of, write_study, StudySpec};
+
+/// Set this variable to see every case's stderr (to review the messages themselves).
+const SHOW: &str = "PHASEWISE_SHOW_CORPUS";
 
 /// A case's `case.json`.
 #[derive(Debug, Deserialize)]
@@ -141,6 +145,9 @@ fn check_case(dir: &Path) -> Result<(), String> {
         .collect();
     let out = run_cli(work.path(), &args);
     let err = stderr_of(&out);
+    if std::env::var_os(SHOW).is_some() {
+        eprintln!("== {name} (exit {:?})\n{err}", out.status.code());
+    }
     let mut problems = Vec::new();
     if out.status.code() != Some(case.exit) {
         problems.push(format!(
