@@ -9,14 +9,15 @@
 //!
 //! The NPY is the cached object's bytes, unchanged; the JSON holds dims, coords, units, meta and
 //! the NPY's blake3. Every file is written atomically, and only when its bytes differ from what is
-//! there, so a no-op rerun writes nothing.
+//! there, so a no-op rerun writes nothing. Temporary files a killed run left in an output folder
+//! are removed by the next run that exports there.
 
 use std::path::{Path, PathBuf};
 
 use phasewise_stages::LabelledArray;
 use serde_json::json;
 
-use crate::store::{atomic_write, values_from_npy, ObjectRecord};
+use crate::store::{atomic_write, values_from_npy, ObjectRecord, TEMP_PREFIX};
 
 /// An export that could not be written.
 #[derive(Debug, thiserror::Error)]
@@ -53,6 +54,9 @@ pub fn export(
 ) -> Result<String, OutputError> {
     let relative = target.relative_npy();
     let npy_path = target.output.join(&relative);
+    if let Some(dir) = npy_path.parent() {
+        remove_dead_temps(dir);
+    }
     write_atomically(&npy_path, npy)?;
     let sidecar = json!({
         "stage": target.stage,
@@ -99,6 +103,33 @@ fn write_table(
         LabelledArray::checked(record.layout.clone(), values).map_err(|e| fail(e.to_string()))?;
     let table = phasewise_stages::table::tidy_tsv(&array);
     write_atomically(&path, table.as_bytes())
+}
+
+/// Remove temporary files left in `dir` by killed runs: those named after a process that no
+/// longer exists on this machine. Where liveness cannot be told (no `/proc`), nothing is removed.
+/// Another machine's live temporary file could be taken for dead; its rename then fails and that
+/// run reports an error — never a wrong file — and in the planned cluster mode each subject's
+/// folder has a single writer anyway.
+pub fn remove_dead_temps(dir: &Path) {
+    let proc_dir = Path::new("/proc");
+    if !proc_dir.join("self").exists() {
+        return;
+    }
+    let Ok(entries) = std::fs::read_dir(dir) else {
+        return;
+    };
+    for entry in entries.flatten() {
+        let name = entry.file_name().to_string_lossy().into_owned();
+        let pid = name
+            .strip_prefix(TEMP_PREFIX)
+            .and_then(|rest| rest.split('-').next())
+            .and_then(|pid| pid.parse::<u32>().ok());
+        if let Some(pid) = pid {
+            if !proc_dir.join(pid.to_string()).exists() {
+                let _ = std::fs::remove_file(entry.path());
+            }
+        }
+    }
 }
 
 /// Write a file atomically unless it already holds exactly these bytes.

@@ -13,7 +13,7 @@ use phasewise_stages::DynOp;
 
 use crate::exec::{self, Outcome, Warning};
 use crate::manifest::{self, Manifest};
-use crate::output::write_atomically;
+use crate::output::{remove_dead_temps, write_atomically};
 use crate::paths::clean;
 use crate::pipeline::{self, ResolvedPipeline};
 use crate::plan::Plan;
@@ -111,6 +111,9 @@ fn finish(study: &Study<'_>, outcome: &Outcome, started: &str) -> Result<RunSumm
         &study.pipeline.output,
         &study.selection,
     ));
+    if let Some(dir) = manifest_path.parent() {
+        remove_dead_temps(dir);
+    }
     write_atomically(&manifest_path, &manifest::to_bytes(&manifest))
         .map_err(|e| RunError::Other(e.to_string()))?;
     let computed = outcome.computed();
