@@ -31,7 +31,7 @@ pub(crate) fn matrix_figures(
     let diff = tf::contrast(ctx, &l.cube.conditions, &l.source());
     for m in 0..l.cube.measures.len() {
         for (label, values) in &slices {
-            let what = format!("{} {} matrix {label}", l.source(), l.cube.measures[m]);
+            let what = format!("{}: matrices, {} {label}", l.source(), l.cube.measures[m]);
             if !ctx.room_for(&what) {
                 return Ok(());
             }

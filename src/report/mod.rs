@@ -57,7 +57,7 @@ impl Default for ReportOptions {
             bands: Vec::new(),
             windows: Vec::new(),
             contrast: None,
-            max_figures: 48,
+            max_figures: 80,
             max_table_rows: 300,
             png_scale: 2.0,
         }
@@ -245,7 +245,7 @@ impl Ctx<'_> {
             return true;
         }
         self.not_drawn.push(format!(
-            "{what}: not drawn, the report already holds {} figures (max_figures)",
+            "{what}: not drawn from here on, the report already holds {} figures (max_figures)",
             self.opts.max_figures
         ));
         false
@@ -339,13 +339,25 @@ pub fn write_report(
         not_drawn: run.skipped.clone(),
     };
     graph::stage_graph(&mut ctx, &run.manifest)?;
-    // Group-level figures first, then the compact per-subject matrices, then per-subject maps,
-    // so that the figure budget (max_figures) drops the most numerous ones.
+    // Order of drawing, so that the figure budget (max_figures) drops the most numerous
+    // figures: the group aggregate's matrices, the subject means' maps (and their matrices
+    // only when no aggregate gives them), then per-subject matrices, then per-subject maps.
     let arrays = tf::load_cubes(&mut ctx, &run);
     let (group, subjects): (Vec<_>, Vec<_>) = arrays.iter().partition(|a| a.group_level());
-    for a in &group {
+    let (means, aggregates): (Vec<_>, Vec<_>) =
+        group.into_iter().partition(|a| !a.averaged.is_empty());
+    let has_aggregate = aggregates
+        .iter()
+        .any(|a| a.cube.plane == cube::Plane::BandWindow);
+    for a in &aggregates {
         tf::tf_figures(&mut ctx, a)?;
         matrix::matrix_figures(&mut ctx, a, &run.manifest)?;
+    }
+    for a in &means {
+        tf::tf_figures(&mut ctx, a)?;
+        if !has_aggregate {
+            matrix::matrix_figures(&mut ctx, a, &run.manifest)?;
+        }
     }
     for a in &subjects {
         matrix::matrix_figures(&mut ctx, a, &run.manifest)?;

@@ -254,7 +254,7 @@ pub(crate) fn tf_figures(ctx: &mut Ctx<'_>, l: &Loaded) -> Result<(), ReportErro
     for m in 0..l.cube.measures.len() {
         for p in chosen_pairs(ctx, l, m) {
             let what = format!(
-                "{} {} {}–{}",
+                "{}: time–frequency maps, {} {}–{}",
                 l.source(),
                 l.cube.measures[m],
                 l.cube.pairs[p][0],
