@@ -205,10 +205,7 @@ fn dispatch(cli: &Cli) -> Result<i32> {
             crate::scaffold::run(data, out.as_deref())?;
             Ok(0)
         }
-        Command::Report { .. } => Err(anyhow!(Exit {
-            code: 2,
-            message: "`phasewise report` is not available yet".into(),
-        })),
+        Command::Report { pipeline, out } => report(pipeline, out.as_deref(), env),
     }
 }
 
@@ -225,6 +222,10 @@ fn run(target: &Target, jobs: Option<usize>, quiet: bool, env: Env<'_>) -> Resul
             summary.manifest_path.display()
         );
     }
+    if summary.report && summary.manifest_path.file_name() == Some("manifest.json".as_ref()) {
+        let output = summary.manifest_path.parent().unwrap_or(Path::new("."));
+        write_report(output, None, quiet)?;
+    }
     if !summary.warnings.is_empty() {
         eprintln!("{} warnings:", summary.warnings.len());
         for w in &summary.warnings {
@@ -237,6 +238,35 @@ fn run(target: &Target, jobs: Option<usize>, quiet: bool, env: Env<'_>) -> Resul
         }
     }
     Ok(0)
+}
+
+/// `phasewise report PIPELINE`: the HTML report of the pipeline's last complete run.
+fn report(pipeline: &Path, out: Option<&Path>, env: Env<'_>) -> Result<i32> {
+    let resolved = crate::pipeline::load(pipeline, &[], env.ops)
+        .map_err(|e| run_error(RunError::Pipeline(e)))?;
+    write_report(&resolved.output, out, false)?;
+    Ok(0)
+}
+
+/// Render the report of the run whose outputs are in `output` (default `<output>/report.html`).
+fn write_report(output: &Path, out: Option<&Path>, quiet: bool) -> Result<()> {
+    let file = out.map_or_else(|| output.join("report.html"), Path::to_path_buf);
+    let options = crate::report::ReportOptions::default();
+    let summary = crate::report::write_report(output, &file, &options).map_err(|e| {
+        anyhow!(Exit {
+            code: 2,
+            message: e.to_string(),
+        })
+    })?;
+    if !quiet {
+        println!(
+            "report {}: {} figures (SVG and PNG in {})",
+            summary.html.display(),
+            summary.figures.len(),
+            summary.figures_dir.display()
+        );
+    }
+    Ok(())
 }
 
 fn plan(target: &Target, env: Env<'_>) -> Result<i32> {

@@ -53,13 +53,18 @@ pub struct DatasetSummary {
     pub shortest_recording: Option<f64>,
 }
 
-/// Look at `data_dir` and write a commented pipeline to `out` (default `pipeline.yaml` in the
-/// current folder). An existing file is never overwritten.
+/// Look at `data_dir` and write a commented pipeline to `out`, or print it on stdout when no
+/// file is given (the dataset summary then goes to stderr). An existing file is never
+/// overwritten.
 pub fn run(data_dir: &Path, out: Option<&Path>) -> Result<()> {
     let summary = survey(data_dir)?;
-    let out = out
-        .map(Path::to_path_buf)
-        .unwrap_or_else(|| "pipeline.yaml".into());
+    let Some(out) = out else {
+        let here = absolute(Path::new("."))?;
+        let data_rel = relative_to(&absolute(data_dir)?, &here);
+        eprint!("{}", summary_text(&summary));
+        print!("{}", pipeline_text(&summary, &data_rel, data_dir)?);
+        return Ok(());
+    };
     if out.exists() {
         bail!(
             "{} already exists; choose another name with --out (nothing was written)",
@@ -70,7 +75,7 @@ pub fn run(data_dir: &Path, out: Option<&Path>) -> Result<()> {
     let data_rel = relative_to(&absolute(data_dir)?, &out_dir);
     let text = pipeline_text(&summary, &data_rel, data_dir)?;
     print!("{}", summary_text(&summary));
-    std::fs::write(&out, text).with_context(|| format!("writing {}", out.display()))?;
+    std::fs::write(out, text).with_context(|| format!("writing {}", out.display()))?;
     println!(
         "\nwrote {}: read it, confirm the lines marked CONFIRM, then `phasewise plan {}`",
         out.display(),

@@ -85,6 +85,8 @@ pub struct RunSummary {
     pub outputs: usize,
     /// Warnings of all units.
     pub warnings: Vec<Warning>,
+    /// The pipeline asks for the HTML report after the run (`report: true`).
+    pub report: bool,
 }
 
 /// Run a pipeline and write its outputs and manifest.
@@ -126,6 +128,7 @@ fn finish(study: &Study<'_>, outcome: &Outcome, started: &str) -> Result<RunSumm
             .filter(|r| r.export.is_some())
             .count(),
         warnings: manifest.warnings.clone(),
+        report: study.pipeline.report,
         manifest,
         manifest_path,
     })

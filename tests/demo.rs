@@ -402,3 +402,60 @@ fn demo_data_is_what_the_documented_command_writes() {
         assert!(a == b, "{} differs from a fresh simulation", rel.display());
     }
 }
+
+#[test]
+fn new_writes_a_pipeline_that_fits_the_demo_data_and_plans() {
+    let tmp = tempfile::tempdir().unwrap();
+    let file = tmp.path().join("study.yaml");
+    let data = repo().join("demo-data");
+    let out = phasewise(
+        &[
+            "new",
+            "--data",
+            data.to_str().unwrap(),
+            "--out",
+            file.to_str().unwrap(),
+        ],
+        tmp.path(),
+    );
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let summary = String::from_utf8_lossy(&out.stdout);
+    // truth.json: 6 subjects × 40 cues of each type, 2.6–3.2 s apart, 19 EEG sites + VEOG at 250 Hz.
+    assert!(summary.contains("recordings: 6"), "{summary}");
+    assert!(
+        summary.contains("cue-left: 240") && summary.contains("cue-right: 240"),
+        "{summary}"
+    );
+    assert!(
+        summary.contains("channels (EEG, 19)") && summary.contains("channels (EOG, 1): VEOG"),
+        "{summary}"
+    );
+    let text = std::fs::read_to_string(&file).unwrap();
+    assert!(text.contains("CONFIRM the mains frequency"), "{text}");
+    // The written pipeline is valid for this data: `plan` accepts it (every unit not cached yet).
+    let plan = phasewise(&["plan", file.to_str().unwrap()], tmp.path());
+    let stdout = String::from_utf8_lossy(&plan.stdout);
+    assert!(
+        plan.status.success(),
+        "{}\n{stdout}",
+        String::from_utf8_lossy(&plan.stderr)
+    );
+    assert!(stdout.contains("37 of 37 units stale"), "{stdout}");
+    // Never overwrite.
+    let again = phasewise(
+        &[
+            "new",
+            "--data",
+            data.to_str().unwrap(),
+            "--out",
+            file.to_str().unwrap(),
+        ],
+        tmp.path(),
+    );
+    assert!(!again.status.success());
+    assert!(String::from_utf8_lossy(&again.stderr).contains("already exists"));
+}

@@ -39,7 +39,7 @@ pub struct RawPipeline {
     pub events: Option<Spanned<String>>,
     /// The output folder, relative to the file.
     pub output: Option<Spanned<String>>,
-    /// Reserved: whether `run` also writes the HTML report.
+    /// Whether `run` also writes the HTML report (`<output>/report.html`).
     pub report: bool,
     /// The stages, in file order.
     pub stages: Vec<RawStage>,
