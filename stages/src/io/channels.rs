@@ -60,7 +60,7 @@ pub fn select(
             (channel, s.samples_per_record, own)
         })
         .collect();
-    let spr = majority_samples_per_record(&all);
+    let spr = majority_samples_per_record(&all, header.record_seconds)?;
     let mut channels = Vec::with_capacity(all.len());
     for (channel, n, own) in all {
         if n == spr {
@@ -171,26 +171,45 @@ fn unit_factor(
 }
 
 /// Samples per record that most EEG-type channels have; all channels vote when none is EEG.
-/// Ties go to the value met first in file order.
-fn majority_samples_per_record(all: &[(Channel, usize, Vec<String>)]) -> usize {
-    let eeg: Vec<usize> = all
-        .iter()
-        .filter(|(c, _, _)| c.kind == "EEG")
-        .map(|&(_, n, _)| n)
-        .collect();
-    let voters: Vec<usize> = if eeg.is_empty() {
-        all.iter().map(|&(_, n, _)| n).collect()
+/// A tie between different values is an error: there is no honest way to choose which EEG
+/// channels to keep, so the user must resample or drop channels.
+fn majority_samples_per_record(
+    all: &[(Channel, usize, Vec<String>)],
+    record_seconds: f64,
+) -> Result<usize, String> {
+    let eeg: Vec<&(Channel, usize, Vec<String>)> =
+        all.iter().filter(|(c, _, _)| c.kind == "EEG").collect();
+    let voters: Vec<&(Channel, usize, Vec<String>)> = if eeg.is_empty() {
+        all.iter().collect()
     } else {
         eeg
     };
-    let mut best = (0usize, 0usize);
-    for &n in &voters {
-        let votes = voters.iter().filter(|&&m| m == n).count();
-        if votes > best.1 {
-            best = (n, votes);
+    let votes = |n: usize| voters.iter().filter(|v| v.1 == n).count();
+    let most = voters.iter().map(|v| votes(v.1)).max().unwrap_or(0);
+    let mut leaders: Vec<usize> = voters
+        .iter()
+        .map(|v| v.1)
+        .filter(|&n| votes(n) == most)
+        .collect();
+    leaders.dedup();
+    leaders.sort_unstable();
+    leaders.dedup();
+    match leaders.as_slice() {
+        [] => Ok(0),
+        [one] => Ok(*one),
+        _ => {
+            let rates: Vec<String> = voters
+                .iter()
+                .map(|(c, n, _)| format!("{} {} Hz", c.name, *n as f64 / record_seconds))
+                .collect();
+            Err(format!(
+                "the EEG channels share no sampling rate that most of them have ({}); \
+                 phasewise analyses the EEG channels at one rate: resample the recording or \
+                 leave channels out",
+                rates.join(", ")
+            ))
         }
     }
-    best.0
 }
 
 /// Channel names must be unique: every op addresses channels by name.
