@@ -37,8 +37,8 @@ pub enum Command {
         /// Pipeline selection and overrides.
         #[command(flatten)]
         target: Target,
-        /// Number of threads (default: all cores).
-        #[arg(long, short = 'j')]
+        /// Number of threads, at least 1 (default: all cores).
+        #[arg(long, short = 'j', value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
         jobs: Option<usize>,
     },
     /// Show, for every stage × subject, whether it is fresh or stale and why.

@@ -338,7 +338,8 @@ impl<'o> Study<'o> {
                     failures.push(UnitFailure {
                         stage: SOURCE.into(),
                         subject: Some(source.subject.clone()),
-                        message: format!("{}: {e}", self.display_path(&source.path)),
+                        // The reader's messages already name the file.
+                        message: e.to_string(),
                         diagnostic: None,
                     });
                     source_layouts.push(None);
