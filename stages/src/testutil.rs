@@ -56,3 +56,15 @@ pub fn assert_close(actual: &[f64], expected: &[f64], floor: f64, tol: f64, what
         "{what}: largest relative difference {err:e} > {tol:e}"
     );
 }
+
+/// Largest |got − want| divided by the peak |want|: the error of a filter output measured against
+/// the signal's size, so tiny values near zero crossings do not dominate.
+pub fn largest_error_of_peak(got: &[f64], want: &[f64]) -> f64 {
+    assert_eq!(got.len(), want.len(), "length mismatch");
+    let peak = want.iter().fold(0.0_f64, |m, v| m.max(v.abs()));
+    got.iter()
+        .zip(want)
+        .map(|(g, w)| (g - w).abs())
+        .fold(0.0, f64::max)
+        / peak
+}

@@ -150,7 +150,7 @@ fn band(p: &FilterParams) -> Option<Band> {
 mod tests {
     use super::*;
     use crate::array::{Coord, Meta};
-    use crate::testutil::{max_rel_diff, read_f64, read_json};
+    use crate::testutil::{largest_error_of_peak, max_rel_diff, read_f64, read_json};
     use ndarray::{Array2, ArrayD};
     use serde_json::json;
     use std::f64::consts::PI;
@@ -239,13 +239,7 @@ mod tests {
                 .iter()
                 .map(|&v| f64::from(v))
                 .collect();
-            let peak = want.iter().fold(0.0_f64, |m, v| m.max(v.abs()));
-            let err = got
-                .iter()
-                .zip(&want)
-                .map(|(g, w)| (g - w).abs())
-                .fold(0.0, f64::max)
-                / peak;
+            let err = largest_error_of_peak(&got, &want);
             eprintln!("butter {name}: largest error {err:.2e} of the peak");
             assert!(err < 1e-6, "{name}: largest error {err:e} of the peak");
         }
