@@ -244,7 +244,7 @@ fn run(target: &Target, jobs: Option<usize>, quiet: bool, env: Env<'_>) -> Resul
 fn report(pipeline: &Path, out: Option<&Path>, env: Env<'_>) -> Result<i32> {
     let resolved = crate::pipeline::load(pipeline, &[], env.ops)
         .map_err(|e| run_error(RunError::Pipeline(e)))?;
-    write_report(&resolved.output, out, false)?;
+    write_report(&crate::paths::clean(&resolved.output), out, false)?;
     Ok(0)
 }
 
