@@ -19,6 +19,11 @@ pub fn read_f64(area: &str, name: &str) -> ArrayD<f64> {
     ndarray_npy::read_npy(&path).unwrap_or_else(|e| panic!("reading {}: {e}", path.display()))
 }
 
+/// A float64 NPY fixture, flattened in C order.
+pub fn read_vec(area: &str, name: &str) -> Vec<f64> {
+    read_f64(area, name).iter().copied().collect()
+}
+
 /// A JSON fixture.
 pub fn read_json(area: &str, name: &str) -> serde_json::Value {
     let path = fixture_path(area, &format!("{name}.json"));

@@ -150,7 +150,7 @@ fn band(p: &FilterParams) -> Option<Band> {
 mod tests {
     use super::*;
     use crate::array::{Coord, Meta};
-    use crate::testutil::{largest_error_of_peak, max_rel_diff, read_f64, read_json};
+    use crate::testutil::{largest_error_of_peak, max_rel_diff, read_f64, read_json, read_vec};
     use ndarray::{Array2, ArrayD};
     use serde_json::json;
     use std::f64::consts::PI;
@@ -227,13 +227,10 @@ mod tests {
         // Reference: scipy.signal.sosfiltfilt(sos, x) with default padding
         // (tests/reference/gen_preproc.py). Tolerance: f32 storage (measured ~3e-8), 1e-6 of the
         // output's peak.
-        let x: Vec<f64> = read_f64("preproc", "signal").iter().copied().collect();
+        let x = read_vec("preproc", "signal");
         let input = continuous(&x, 500.0);
         for (name, p) in cases() {
-            let want: Vec<f64> = read_f64("preproc", &format!("butter_{name}_out"))
-                .iter()
-                .copied()
-                .collect();
+            let want: Vec<f64> = read_vec("preproc", &format!("butter_{name}_out"));
             let got: Vec<f64> = run(&p, &input)
                 .unwrap()
                 .iter()

@@ -149,7 +149,7 @@ fn notch_frequencies(p: &NotchParams, fs: f64) -> Vec<f64> {
 mod tests {
     use super::*;
     use crate::array::{Coord, Meta};
-    use crate::testutil::{largest_error_of_peak, max_rel_diff, read_f64, read_json};
+    use crate::testutil::{largest_error_of_peak, max_rel_diff, read_f64, read_json, read_vec};
     use ndarray::{Array2, ArrayD};
     use serde_json::json;
     use std::f64::consts::PI;
@@ -221,10 +221,7 @@ mod tests {
         for case in ["single", "harmonics", "wide"] {
             let meta = read_json("preproc", &format!("notch_{case}"));
             let p = params(json!({ "freqs": meta["freqs"], "q": meta["q"] }));
-            let want: Vec<f64> = read_f64("preproc", &format!("notch_{case}"))
-                .iter()
-                .copied()
-                .collect();
+            let want: Vec<f64> = read_vec("preproc", &format!("notch_{case}"));
             let got: Vec<f64> = run(&p, &input)
                 .unwrap()
                 .iter()
