@@ -37,8 +37,9 @@ use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
 
 pub use super::measures::Measure;
-use super::measures::{polar, sums_over, Sums};
+use super::measures::{polar, Sums};
 use super::params_de::map_only;
+use super::trial_sums::{self, Needs, PairSums, Planes};
 
 /// The `clustering` op.
 pub struct Clustering;
@@ -549,33 +550,24 @@ impl Polar {
 fn compute(plan: &Plan, x: &Coefs) -> Vec<f32> {
     let plane = x.freqs * x.times;
     let used = used_channels(plan);
+    let Some(halves) = &plan.halves else {
+        let mut out = vec![0.0f32; plan.layout.shape().iter().product()];
+        let per_condition = out.len() / plan.conditions.len().max(1);
+        for ((_, trials), out) in plan.conditions.iter().zip(out.chunks_mut(per_condition)) {
+            across_trials(plan, x, trials, &used, out);
+        }
+        return out;
+    };
     // Across time reads each channel in its own [trial, freq, time] order: convert once.
-    let whole = plan.halves.as_ref().map(|_| as_polar(x, &used));
+    let whole = as_polar(x, &used);
     let mut out = Vec::with_capacity(plan.layout.shape().iter().product());
     for (_, trials) in &plan.conditions {
         // Each pair's block is [measure, freq, time]; collected in pair order (deterministic).
-        let blocks: Vec<Vec<f32>> = match (&plan.halves, &whole) {
-            (Some(halves), Some(whole)) => plan
-                .pairs
-                .par_iter()
-                .map(|&(a, b)| {
-                    let (pa, pb) = (&whole[&a], &whole[&b]);
-                    across_time(&plan.measures, x, (pa, pb), trials, halves)
-                })
-                .collect(),
-            _ => {
-                let moved = by_trial_last(x, trials, &used);
-                let pairs: Vec<(&Polar, &Polar)> = plan
-                    .pairs
-                    .iter()
-                    .map(|(a, b)| (&moved[a], &moved[b]))
-                    .collect();
-                per_pair(
-                    across_trials(&plan.measures, &pairs, trials.len(), used.len()),
-                    plan,
-                )
-            }
-        };
+        let blocks: Vec<Vec<f32>> = plan
+            .pairs
+            .par_iter()
+            .map(|&(a, b)| across_time(&plan.measures, x, (&whole[&a], &whole[&b]), trials, halves))
+            .collect();
         for m in 0..plan.measures.len() {
             for block in &blocks {
                 out.extend_from_slice(&block[m * plane..(m + 1) * plane]);
@@ -601,92 +593,55 @@ fn as_polar(x: &Coefs, used: &[usize]) -> BTreeMap<usize, Polar> {
     used.iter().copied().zip(converted).collect()
 }
 
-/// The trials of one condition in polar form with the trial as the innermost axis
-/// ([freq, time, trial]): the sums over trials then read contiguous memory.
-fn by_trial_last(x: &Coefs, trials: &[usize], used: &[usize]) -> BTreeMap<usize, Polar> {
+/// Pairs per parallel task of the across-trials loop (fixed, so the work split, and with it
+/// everything else, is the same for any thread count; each pair's sums are sequential anyway).
+const PAIR_CHUNK: usize = 64;
+
+/// The measures of every pair over the trials of one condition into `out`, laid out
+/// [measure, pair, freq, time]: one frequency at a time (one slab of all used channels in
+/// memory), the pairs in parallel chunks.
+fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: &mut [f32]) {
+    let needs = Needs::of(&plan.measures);
+    let (nm, np, nf, nt) = (plan.measures.len(), plan.pairs.len(), x.freqs, x.times);
     let n = trials.len();
-    let moved: Vec<Polar> = used
-        .par_iter()
-        .map(|&c| {
-            let mut dst = Polar::with_len(x.freqs * x.times * n);
-            // Blocks of 64 time points: the block's destination (64 × n entries) stays in cache
-            // while every trial writes into it, instead of one cache line per written value.
-            for f in 0..x.freqs {
-                for t0 in (0..x.times).step_by(64) {
-                    let t1 = (t0 + 64).min(x.times);
-                    for (k, &trial) in trials.iter().enumerate() {
-                        for (t, &z) in (t0..t1).zip(&x.series(c, trial, f)[t0..t1]) {
-                            let i = (f * x.times + t) * n + k;
-                            (dst.unit[i], dst.amp[i]) = polar(z);
+    let mut slot = vec![0; used.iter().max().map_or(0, |&c| c + 1)];
+    for (i, &c) in used.iter().enumerate() {
+        slot[c] = i;
+    }
+    let mut slab = vec![Planes::new(needs, n, nt); used.len()];
+    for f in 0..nf {
+        slab.par_iter_mut()
+            .zip(used)
+            .for_each(|(p, &c)| p.fill(needs, |k| x.series(c, trials[k], f)));
+        let chunks: Vec<Vec<f32>> = plan
+            .pairs
+            .par_chunks(PAIR_CHUNK)
+            .map(|chunk| {
+                let mut sums = PairSums::new(needs, trial_sums::blocks(nt));
+                let mut vals = vec![0.0f32; chunk.len() * nm * nt];
+                for (i, &(a, b)) in chunk.iter().enumerate() {
+                    let (pa, pb) = (&slab[slot[a]], &slab[slot[b]]);
+                    sums.compute(needs, pa, pb, n);
+                    let pair_vals = &mut vals[i * nm * nt..(i + 1) * nm * nt];
+                    for (&measure, v) in plan.measures.iter().zip(pair_vals.chunks_exact_mut(nt)) {
+                        for (t, v) in v.iter_mut().enumerate() {
+                            *v = sums.at(t, n, pa, pb).value(measure) as f32;
                         }
                     }
                 }
-            }
-            dst
-        })
-        .collect();
-    used.iter().copied().zip(moved).collect()
-}
-
-/// Bytes of one tile of the across-trials loop (all used channels): small enough to stay in a
-/// core's L2 cache while every pair reads it, so memory is streamed once per condition.
-const TILE_BYTES: usize = 512 * 1024;
-
-/// The measures of every pair over the trials, from [freq, time, trial] blocks, computed in
-/// tiles of (freq, time) points in parallel. Returns one vector per tile, laid out
-/// [pair, measure, point of the tile]; the tiles are fixed by the sizes alone (deterministic).
-fn across_trials(
-    measures: &[Measure],
-    pairs: &[(&Polar, &Polar)],
-    n: usize,
-    used: usize,
-) -> Vec<Vec<f32>> {
-    let n = n.max(1);
-    let plane = pairs.first().map_or(0, |p| p.0.unit.len() / n);
-    let per_point = used.max(1) * n * std::mem::size_of::<(Complex32, f32)>();
-    let tile = (TILE_BYTES / per_point).clamp(1, plane.max(1));
-    let starts: Vec<usize> = (0..plane).step_by(tile).collect();
-    starts
-        .par_iter()
-        .map(|&p0| {
-            let points = p0..(p0 + tile).min(plane);
-            let mut out = Vec::with_capacity(pairs.len() * measures.len() * points.len());
-            for (a, b) in pairs {
-                let mut vals = vec![0.0f32; measures.len() * points.len()];
-                for (k, p) in points.clone().enumerate() {
-                    let r = p * n..(p + 1) * n;
-                    let s = sums_over(
-                        &a.unit[r.clone()],
-                        &a.amp[r.clone()],
-                        &b.unit[r.clone()],
-                        &b.amp[r],
-                    );
-                    for (m, &measure) in measures.iter().enumerate() {
-                        vals[m * points.len() + k] = s.value(measure) as f32;
-                    }
+                vals
+            })
+            .collect();
+        for (ci, vals) in chunks.iter().enumerate() {
+            for (i, pair_vals) in vals.chunks_exact(nm * nt).enumerate() {
+                let p = ci * PAIR_CHUNK + i;
+                for (m, v) in pair_vals.chunks_exact(nt).enumerate() {
+                    let at = ((m * np + p) * nf + f) * nt;
+                    out[at..at + nt].copy_from_slice(v);
                 }
-                out.extend(vals);
-            }
-            out
-        })
-        .collect()
-}
-
-/// Regroups tiles laid out [pair, measure, point] into one [measure, freq, time] block per pair.
-fn per_pair(tiles: Vec<Vec<f32>>, plan: &Plan) -> Vec<Vec<f32>> {
-    let (np, nm) = (plan.pairs.len(), plan.measures.len());
-    let plane: usize = tiles.iter().map(|t| t.len() / (np * nm).max(1)).sum();
-    let mut blocks = vec![Vec::with_capacity(nm * plane); np];
-    for m in 0..nm {
-        for tile in &tiles {
-            let len = tile.len() / (np * nm).max(1);
-            for (pair, block) in blocks.iter_mut().enumerate() {
-                let at = (pair * nm + m) * len;
-                block.extend_from_slice(&tile[at..at + len]);
             }
         }
     }
-    blocks
 }
 
 /// One pair's measures over a sliding window of each trial, averaged over the trials. Window

@@ -13,4 +13,5 @@ pub mod params_de;
 pub mod reref;
 #[cfg(test)]
 mod tf_testing;
+pub mod trial_sums;
 pub mod wavelet;
