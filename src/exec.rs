@@ -22,6 +22,7 @@ use rayon::prelude::*;
 
 use crate::graph::UnitInput;
 use crate::output::{self, ExportTarget};
+use crate::parts;
 use crate::pipeline::SOURCE;
 use crate::plan::{Plan, Reason, Status};
 use crate::sources::Reader;
@@ -246,7 +247,9 @@ impl Worker<'_, '_, '_> {
             self.warn_damaged(u, why);
         }
         let mut npy = None;
-        if stale {
+        if stale && parts::streams(self.study(), u) {
+            // Computed part by part inside its consumer's unit (see `parts`).
+        } else if stale {
             npy = Some(self.compute(u)?);
         } else {
             self.record_cached(u)?;
@@ -381,8 +384,13 @@ impl Worker<'_, '_, '_> {
 
     /// Run one unit's op, store the result, keep it in memory; returns the NPY bytes.
     fn compute(&mut self, u: usize) -> Result<Vec<u8>, UnitFailure> {
-        let started = Instant::now();
         let study = self.ctx.study;
+        if let Some((p, axis)) = parts::streamed_input(study, u) {
+            if !self.memory.contains_key(&UnitInput::Unit(p)) {
+                return self.compute_streamed((p, u), axis);
+            }
+        }
+        let started = Instant::now();
         let unit = &study.units[u];
         let mut held = Vec::new();
         for &input in &unit.inputs {
@@ -425,6 +433,92 @@ impl Worker<'_, '_, '_> {
                 record,
                 computed: true,
                 seconds: started.elapsed().as_secs_f64(),
+                export,
+            },
+        );
+        Ok(npy)
+    }
+
+    /// Producer `p` and its consumer `u` part by part ([`parts`]): the producer gets a record
+    /// without values, the consumer is stored as usual; returns the consumer's NPY bytes.
+    fn compute_streamed(
+        &mut self,
+        (p, u): (usize, usize),
+        axis: &str,
+    ) -> Result<Vec<u8>, UnitFailure> {
+        let started = Instant::now();
+        let study = self.ctx.study;
+        let mut held = Vec::new();
+        for &input in &study.units[p].inputs {
+            held.push((input, self.values(input)?));
+        }
+        let mut carried = Vec::new();
+        let mut inputs = Vec::new();
+        for (input, (array, warnings)) in &held {
+            carried.extend(warnings.iter().cloned());
+            let (stage, subject) = match *input {
+                UnitInput::Source(s) => (SOURCE, Some(study.sources[s].subject.as_str())),
+                UnitInput::Unit(i) => (study.stage_name(i), study.subject(i)),
+            };
+            inputs.push(Input {
+                stage,
+                subject,
+                array: array.as_ref(),
+            });
+        }
+        tracing::info!(stage = %study.stage_name(u), subject = ?study.subject(u), "computing in parts");
+        let streamed =
+            parts::run(study, (p, u), axis, &inputs).map_err(|(at, e)| self.op_failure(at, &e))?;
+        drop(inputs);
+        drop(held);
+        let mut producer_notes = streamed.producer_notes;
+        producer_notes.warnings.splice(0..0, carried);
+        let record = study
+            .store
+            .put_streamed(
+                &streamed.producer_layout,
+                streamed.producer_dtype,
+                &producer_notes,
+                &study.fingerprints[p],
+            )
+            .map_err(|e| self.fail(p, e.to_string()))?;
+        study
+            .store
+            .set_last(&study.last_id(p), &study.fingerprints[p]);
+        self.out.results.insert(
+            p,
+            UnitResult {
+                record,
+                computed: true,
+                seconds: streamed.producer_seconds,
+                export: None,
+            },
+        );
+        let array = streamed.output;
+        let npy = npy_bytes(&array.values).map_err(|e| self.fail(u, e.to_string()))?;
+        let stage = &study.pipeline.stages[study.units[u].stage];
+        let fingerprint = &study.fingerprints[u];
+        let record = study
+            .store
+            .put(
+                &array,
+                &npy,
+                &streamed.consumer_notes,
+                fingerprint,
+                stage.cache,
+            )
+            .map_err(|e| self.fail(u, e.to_string()))?;
+        study.store.set_last(&study.last_id(u), fingerprint);
+        self.memory
+            .insert(UnitInput::Unit(u), (Arc::new(array), Vec::new()));
+        let export = self.out.results.get(&u).and_then(|r| r.export.clone());
+        let seconds = (started.elapsed().as_secs_f64() - streamed.producer_seconds).max(0.0);
+        self.out.results.insert(
+            u,
+            UnitResult {
+                record,
+                computed: true,
+                seconds,
                 export,
             },
         );

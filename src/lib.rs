@@ -33,6 +33,7 @@ pub mod inspect;
 pub mod key;
 pub mod manifest;
 pub mod output;
+pub mod parts;
 pub mod paths;
 pub mod pipeline;
 pub mod plan;

@@ -246,6 +246,40 @@ impl Store {
         Ok(record)
     }
 
+    /// Write the record of a unit whose output was streamed into its consumer part by part
+    /// ([`crate::parts`]): never whole in memory, so neither stored nor hashed (`blake3` and
+    /// `npy_size` are empty).
+    pub fn put_streamed(
+        &self,
+        layout: &Layout,
+        dtype: &str,
+        notes: &Notes,
+        fingerprint: &Fingerprint,
+    ) -> Result<ObjectRecord, StoreError> {
+        let key = fingerprint.key();
+        let (_, json_path) = self.object_paths(&key);
+        let record = ObjectRecord {
+            format: FORMAT.into(),
+            format_version: FORMAT_VERSION,
+            key,
+            stored: false,
+            layout: layout.clone(),
+            shape: layout.shape(),
+            dtype: dtype.into(),
+            npy_size: 0,
+            blake3: String::new(),
+            notes: notes.clone(),
+            fingerprint: fingerprint.clone(),
+        };
+        let json =
+            serde_json::to_vec_pretty(&record).map_err(|e| StoreError::Encode(e.to_string()))?;
+        atomic_write(&json_path, &json).map_err(|source| StoreError::Write {
+            path: json_path,
+            source,
+        })?;
+        Ok(record)
+    }
+
     /// The fingerprint last computed for `id` (see [`last_id`]), if any.
     pub fn last(&self, id: &str) -> Option<Fingerprint> {
         let bytes = std::fs::read(self.last_path(id)).ok()?;

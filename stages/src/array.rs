@@ -38,6 +38,42 @@ impl Coord {
     pub fn is_empty(&self) -> bool {
         self.len() == 0
     }
+    /// The entries in `range`.
+    pub fn slice(&self, range: std::ops::Range<usize>) -> Result<Coord, StageError> {
+        let bad = || {
+            StageError::data(format!(
+                "internal: {range:?} is outside an axis of {}",
+                self.len()
+            ))
+        };
+        Ok(match self {
+            Coord::Labels(v) => Coord::Labels(v.get(range.clone()).ok_or_else(bad)?.to_vec()),
+            Coord::Numbers(v) => Coord::Numbers(v.get(range.clone()).ok_or_else(bad)?.to_vec()),
+            Coord::Pairs(v) => Coord::Pairs(v.get(range.clone()).ok_or_else(bad)?.to_vec()),
+        })
+    }
+
+    /// The entries of `parts` end to end; all parts must be of one kind.
+    pub fn join(parts: &[&Coord]) -> Result<Coord, StageError> {
+        let mut out = match parts.first() {
+            Some(c) => (*c).clone(),
+            None => return Err(StageError::data("internal: no coordinates to join")),
+        };
+        for p in &parts[1..] {
+            match (&mut out, p) {
+                (Coord::Labels(a), Coord::Labels(b)) => a.extend_from_slice(b),
+                (Coord::Numbers(a), Coord::Numbers(b)) => a.extend_from_slice(b),
+                (Coord::Pairs(a), Coord::Pairs(b)) => a.extend_from_slice(b),
+                _ => {
+                    return Err(StageError::data(
+                        "internal: joining coordinates of two kinds",
+                    ))
+                }
+            }
+        }
+        Ok(out)
+    }
+
     /// The labels, if this is a label axis.
     pub fn labels(&self) -> Option<&[String]> {
         match self {
@@ -220,6 +256,65 @@ impl LabelledArray {
             )));
         }
         Ok(LabelledArray { layout, values })
+    }
+
+    /// The slice `range` of the axis `axis`: the values and that axis' coordinate cut, the
+    /// rest of the layout unchanged. Axes with metadata parallel to them (`channel`, `trial`)
+    /// cannot be cut this way.
+    pub fn slice(&self, axis: &str, range: std::ops::Range<usize>) -> Result<Self, StageError> {
+        let k = self.layout.axis(axis)?;
+        if matches!(axis, "channel" | "trial") || range.start > range.end {
+            return Err(StageError::data(format!(
+                "internal: cannot cut axis {axis} to {range:?}"
+            )));
+        }
+        let mut layout = self.layout.clone();
+        layout.coords[k] = self.layout.coords[k].slice(range.clone())?;
+        let cut = ndarray::Slice::from(range);
+        let values = match &self.values {
+            Values::Real(a) => Values::Real(a.slice_axis(ndarray::Axis(k), cut).to_owned()),
+            Values::Complex(a) => Values::Complex(a.slice_axis(ndarray::Axis(k), cut).to_owned()),
+        };
+        Self::checked(layout, values)
+    }
+
+    /// The parts joined end to end along `axis` (values and that axis' coordinate); the rest
+    /// of the layout is the first part's, and every part must have the same dims and values
+    /// type.
+    pub fn join(parts: &[LabelledArray], axis: &str) -> Result<Self, StageError> {
+        let first = parts
+            .first()
+            .ok_or_else(|| StageError::data("internal: nothing to join"))?;
+        let k = first.layout.axis(axis)?;
+        let mut coords = Vec::new();
+        for p in parts {
+            if p.layout.dims != first.layout.dims || p.layout.complex != first.layout.complex {
+                return Err(StageError::data(format!(
+                    "internal: parts to join along {axis} differ in dims or type"
+                )));
+            }
+            coords.push(&p.layout.coords[k]);
+        }
+        let mut layout = first.layout.clone();
+        layout.coords[k] = Coord::join(&coords)?;
+        let joined = |e: ndarray::ShapeError| StageError::data(format!("internal: {e}"));
+        let values = match &first.values {
+            Values::Real(_) => {
+                let views: Result<Vec<_>, _> = parts
+                    .iter()
+                    .map(|p| p.real_values().map(|a| a.view()))
+                    .collect();
+                Values::Real(ndarray::concatenate(ndarray::Axis(k), &views?).map_err(joined)?)
+            }
+            Values::Complex(_) => {
+                let views: Result<Vec<_>, _> = parts
+                    .iter()
+                    .map(|p| p.complex_values().map(|a| a.view()))
+                    .collect();
+                Values::Complex(ndarray::concatenate(ndarray::Axis(k), &views?).map_err(joined)?)
+            }
+        };
+        Self::checked(layout, values)
     }
 
     /// The real values, or an error when they are complex.

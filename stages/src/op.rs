@@ -12,6 +12,14 @@
 //!    so that data-dependent mistakes (a window outside the data, a frequency at or above Nyquist)
 //!    are reported before anything runs.
 //! 3. [`DynOp::run`] computes the output.
+//!
+//! Parts (how a `cache: false` intermediate can stream into its consumer without ever existing
+//! in full): an op whose output's slices along one axis can be computed on their own names that
+//! axis in [`Op::part_axis`] and computes a slice in [`Op::run_part`] (the wavelet: a range of
+//! frequencies). An op whose output slice along an axis depends only on the same slice of its
+//! input says so in [`Op::slices_along`] (the clustering op: each frequency on its own). The
+//! runner may then run the pair part by part and join the consumer's parts; the result must be
+//! the same bits as running both whole, and each op's tests show that it is.
 
 use serde::{de::DeserializeOwned, Serialize};
 use serde_json::Value;
@@ -110,6 +118,31 @@ pub trait Op: Send + Sync + 'static {
         inputs: &[Input<'_>],
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError>;
+
+    /// The axis of the output along which [`Op::run_part`] computes slices, if any.
+    fn part_axis(_params: &Self::Params) -> Option<&'static str> {
+        None
+    }
+
+    /// The slice `part` (index range along [`Op::part_axis`]) of the output of [`Op::run`], with
+    /// the same values bit for bit and the axis' coordinate cut to the range.
+    fn run_part(
+        _params: &Self::Params,
+        _inputs: &[Input<'_>],
+        _part: std::ops::Range<usize>,
+        _notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        Err(StageError::data(format!(
+            "{} cannot compute parts",
+            Self::NAME
+        )))
+    }
+
+    /// True when, for inputs cut to a range along `axis`, [`Op::run`] gives exactly the output
+    /// cut to the same range along the output's axis of the same name.
+    fn slices_along(_params: &Self::Params, _axis: &str) -> bool {
+        false
+    }
 }
 
 /// Object-safe form of [`Op`], taking params as JSON.
@@ -135,6 +168,18 @@ pub trait DynOp: Send + Sync {
         inputs: &[Input<'_>],
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError>;
+    /// See [`Op::part_axis`]; `None` also when the params do not parse.
+    fn part_axis(&self, params: &Value) -> Option<&'static str>;
+    /// See [`Op::run_part`].
+    fn run_part(
+        &self,
+        params: &Value,
+        inputs: &[Input<'_>],
+        part: std::ops::Range<usize>,
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError>;
+    /// See [`Op::slices_along`]; false also when the params do not parse.
+    fn slices_along(&self, params: &Value, axis: &str) -> bool;
 }
 
 /// Wraps an [`Op`] type as a [`DynOp`] value.
@@ -192,5 +237,20 @@ impl<O: Op> DynOp for Registered<O> {
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError> {
         O::run(&parse_params(params)?, inputs, notes)
+    }
+    fn part_axis(&self, params: &Value) -> Option<&'static str> {
+        O::part_axis(&parse_params(params).ok()?)
+    }
+    fn run_part(
+        &self,
+        params: &Value,
+        inputs: &[Input<'_>],
+        part: std::ops::Range<usize>,
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        O::run_part(&parse_params(params)?, inputs, part, notes)
+    }
+    fn slices_along(&self, params: &Value, axis: &str) -> bool {
+        parse_params(params).is_ok_and(|p| O::slices_along(&p, axis))
     }
 }

@@ -431,6 +431,12 @@ impl Op for Clustering {
         Ok(Some(plan(p, single(inputs)?.layout)?.layout))
     }
 
+    /// Every frequency is measured on its own, across trials and across time alike (the time
+    /// window's length depends on the frequency's own value, read from the coordinate).
+    fn slices_along(_p: &Self::Params, axis: &str) -> bool {
+        axis == "freq"
+    }
+
     fn run(
         p: &Self::Params,
         inputs: &[Input<'_>],

@@ -1,0 +1,168 @@
+//! Streaming a `cache: false` unit into its consumer part by part (see the "Parts" section of
+//! `phasewise_stages::op`).
+//!
+//! A unit P streams into its consumer C when P's stage is `cache: false` and not exported, C is
+//! P's only consumer and P is C's only input, P's op computes parts along an axis
+//! (`part_axis`) and C's op slices along that same axis (`slices_along`). The executor then never
+//! holds P's whole output: it computes P a part at a time (a range along the axis), runs C on
+//! each part and joins C's parts. Peak memory holds one part of P instead of all of it, so it
+//! no longer grows with the length of that axis (for the wavelet: the number of frequencies).
+//!
+//! The parts are fixed by the sizes alone ([`part_len`]), and both ops promise the same bits
+//! as whole runs, so outputs do not depend on whether a unit streamed.
+
+use phasewise_stages::{Input, InputLayout, LabelledArray, Layout, Notes, StageError};
+
+use crate::graph::UnitInput;
+use crate::study::Study;
+
+/// Bytes of one part of the streamed unit's output (the axis is cut into parts of at most this
+/// size, at least one index each).
+pub const PART_BYTES: usize = 48 << 20;
+
+/// The unit that streams into `u`, with the axis, when the conditions above hold.
+pub fn streamed_input(study: &Study<'_>, u: usize) -> Option<(usize, &'static str)> {
+    let [UnitInput::Unit(p)] = study.units[u].inputs[..] else {
+        return None;
+    };
+    let producer = &study.pipeline.stages[study.units[p].stage];
+    let consumer = &study.pipeline.stages[study.units[u].stage];
+    if producer.cache || producer.export || study.consumers[p] != [u] {
+        return None;
+    }
+    let axis = producer.op.part_axis(&producer.params)?;
+    consumer
+        .op
+        .slices_along(&consumer.params, axis)
+        .then_some((p, axis))
+}
+
+/// True when `p` streams into a consumer (so it is computed there, not on its own).
+pub fn streams(study: &Study<'_>, p: usize) -> bool {
+    study
+        .consumers
+        .get(p)
+        .is_some_and(|c| c.len() == 1 && streamed_input(study, c[0]).is_some_and(|(q, _)| q == p))
+}
+
+/// Indices per part along an axis of `len` entries, for an output of `bytes` bytes in all.
+pub fn part_len(len: usize, bytes: usize) -> usize {
+    let per_index = bytes / len.max(1);
+    (PART_BYTES / per_index.max(1)).clamp(1, len.max(1))
+}
+
+/// What a streamed pair of units produced.
+pub struct Streamed {
+    /// The producer's layout (of the whole output it never held).
+    pub producer_layout: Layout,
+    /// The producer's shape and values type.
+    pub producer_shape: Vec<usize>,
+    /// `<c8` or `<f4`.
+    pub producer_dtype: &'static str,
+    /// Warnings and records of the producer's parts (repeated warnings once).
+    pub producer_notes: Notes,
+    /// Seconds spent in the producer's parts.
+    pub producer_seconds: f64,
+    /// The consumer's joined output.
+    pub output: LabelledArray,
+    /// Warnings and records of the consumer's parts (repeated warnings once).
+    pub consumer_notes: Notes,
+}
+
+/// Run producer `p` and consumer `u` part by part over the producer's `inputs`.
+pub fn run(
+    study: &Study<'_>,
+    (p, u): (usize, usize),
+    axis: &str,
+    inputs: &[Input<'_>],
+) -> Result<Streamed, (usize, StageError)> {
+    let producer = &study.pipeline.stages[study.units[p].stage];
+    let consumer = &study.pipeline.stages[study.units[u].stage];
+    let layouts: Vec<InputLayout<'_>> = inputs
+        .iter()
+        .map(|i| InputLayout {
+            stage: i.stage,
+            subject: i.subject,
+            layout: &i.array.layout,
+        })
+        .collect();
+    let whole = producer
+        .op
+        .layout(&producer.params, &layouts)
+        .map_err(|e| (p, e))?
+        .ok_or_else(|| {
+            let why = "its output layout is not known in advance, so it cannot stream";
+            (p, StageError::data(why))
+        })?;
+    let shape = whole.shape();
+    let len = whole.coord(axis).map_err(|e| (p, e))?.len();
+    let element = if whole.complex { 8 } else { 4 };
+    let step = part_len(len, shape.iter().product::<usize>() * element);
+    let (mut producer_notes, mut consumer_notes) = (Notes::default(), Notes::default());
+    let mut producer_seconds = 0.0;
+    let mut parts = Vec::new();
+    for start in (0..len).step_by(step) {
+        let clock = std::time::Instant::now();
+        let mut notes = Notes::default();
+        let part = producer
+            .op
+            .run_part(
+                &producer.params,
+                inputs,
+                start..(start + step).min(len),
+                &mut notes,
+            )
+            .map_err(|e| (p, e))?;
+        producer_seconds += clock.elapsed().as_secs_f64();
+        absorb(&mut producer_notes, notes);
+        let mut notes = Notes::default();
+        let input = Input {
+            stage: &producer.name,
+            subject: study.subject(p),
+            array: &part,
+        };
+        let out = consumer
+            .op
+            .run(&consumer.params, &[input], &mut notes)
+            .map_err(|e| (u, e))?;
+        absorb(&mut consumer_notes, notes);
+        parts.push(out);
+    }
+    let output = LabelledArray::join(&parts, axis).map_err(|e| (u, e))?;
+    Ok(Streamed {
+        producer_dtype: if whole.complex { "<c8" } else { "<f4" },
+        producer_shape: shape,
+        producer_layout: whole,
+        producer_notes,
+        producer_seconds,
+        output,
+        consumer_notes,
+    })
+}
+
+/// Adds a part's notes: warnings not seen yet, in order; records of the first part that has
+/// them.
+fn absorb(all: &mut Notes, part: Notes) {
+    for w in part.warnings {
+        if !all.warnings.contains(&w) {
+            all.warnings.push(w);
+        }
+    }
+    for (k, v) in part.records {
+        all.records.entry(k).or_insert(v);
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn parts_are_fixed_by_sizes_and_never_empty() {
+        // 24 frequencies of a 267 MB output: 11 MB per frequency, so 4 per 48 MiB part.
+        assert_eq!(part_len(24, 267_000_000), 4);
+        assert_eq!(part_len(24, 1_000), 24);
+        assert_eq!(part_len(3, 10_000_000_000), 1);
+        assert_eq!(part_len(0, 0), 1);
+    }
+}
