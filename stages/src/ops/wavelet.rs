@@ -412,7 +412,7 @@ fn check_finite(values: &[f32], layout: &Layout, epoch_len: usize) -> Result<(),
 impl Op for Wavelet {
     type Params = WaveletParams;
     const NAME: &'static str = "wavelet";
-    const VERSION: u32 = 1;
+    const VERSION: u32 = 2;
 
     fn check(p: &Self::Params) -> Result<(), StageError> {
         check_freqs(&p.freqs)?;
@@ -456,9 +456,14 @@ impl Op for Wavelet {
     }
 }
 
-/// Coefficients of every (channel, trial) signal, laid out [channel, trial, freq, kept time].
-/// Parallel over channels; every value depends only on its own signal, so the result is the same
-/// for any thread count.
+/// Signals per parallel task. Even, so that the pairs that share a forward FFT
+/// ([`Bank::transform`]) are the same for any split: (0, 1), (2, 3), … over all signals.
+const SIGNALS_PER_TASK: usize = 16;
+
+/// Coefficients of every (channel, trial) signal, laid out [channel, trial, freq, kept time],
+/// written straight into the output vector. Parallel over fixed blocks of signals; every value
+/// depends only on its own signal and its fixed pair partner, so the result is the same for any
+/// thread count.
 fn transform_all(plan: &Plan, values: &[f32]) -> Vec<Complex32> {
     let taps: Vec<Vec<Complex64>> = plan
         .freqs
@@ -466,23 +471,19 @@ fn transform_all(plan: &Plan, values: &[f32]) -> Vec<Complex32> {
         .zip(&plan.cycles)
         .map(|(&f, &n)| morlet::taps(f, n, plan.fs))
         .collect();
-    let bank = Bank::new(&taps, plan.epoch_len);
     let per_signal = plan.freqs.len() * plan.keep.count;
-    let shape = plan.layout.shape();
-    let per_channel = per_signal * shape.get(1).copied().unwrap_or(0);
-    let mut out = vec![Complex32::default(); per_channel * shape.first().copied().unwrap_or(0)];
-    if per_channel == 0 || plan.epoch_len == 0 {
+    let signals: usize = plan.layout.shape().iter().take(2).product();
+    let mut out = vec![Complex32::default(); per_signal * signals];
+    if per_signal == 0 || plan.epoch_len == 0 {
         return out;
     }
-    let signals_per_channel = values.chunks(plan.epoch_len * (per_channel / per_signal));
-    out.par_chunks_mut(per_channel)
-        .zip(signals_per_channel.collect::<Vec<_>>())
-        .for_each(|(dst, src)| {
-            let mut scratch = bank.scratch();
-            for (row, signal) in dst.chunks_mut(per_signal).zip(src.chunks(plan.epoch_len)) {
-                bank.transform(signal, plan.keep, &mut scratch, row);
-            }
-        });
+    let bank = Bank::new(&taps, plan.epoch_len, plan.keep);
+    out.par_chunks_mut(per_signal * SIGNALS_PER_TASK)
+        .zip(values.par_chunks(plan.epoch_len * SIGNALS_PER_TASK))
+        .for_each_init(
+            || bank.scratch(),
+            |scratch, (dst, src)| bank.transform(src, scratch, dst),
+        );
     out
 }
 
@@ -632,8 +633,10 @@ mod tests {
 
     #[test]
     fn wavelet_same_result_for_any_thread_count() {
-        let data = noise((5, 4, 300), 200.0, -100);
-        let params = json!({"freqs": [4, 9.5, 31], "cycles": 5});
+        // 35 signals: three parallel blocks, the last one short and with an odd signal (paired
+        // with zeros); crop and stride so the folded path runs.
+        let data = noise((5, 7, 300), 200.0, -100);
+        let params = json!({"freqs": [4, 9.5, 31], "cycles": 5, "crop": [-0.3, 0.9], "stride": 3});
         let run = |threads| {
             rayon::ThreadPoolBuilder::new()
                 .num_threads(threads)
@@ -641,7 +644,77 @@ mod tests {
                 .unwrap()
                 .install(|| run_op::<Wavelet>(params.clone(), &data).unwrap().0)
         };
-        assert_eq!(run(1), run(3));
+        let one = run(1);
+        assert_eq!(one, run(2));
+        assert_eq!(one, run(3));
+    }
+
+    #[test]
+    fn wavelet_strided_cropped_output_is_the_direct_convolution() {
+        // Reference: DESIGN.md §4 written out plainly. σ = n/(2πf); g(t) = exp(−t²/(2σ²)) at
+        // t_k = k/fs for |t_k| ≤ 5σ; w(t) = (2/Σg) e^{2πi f t} g(t); coefficient at sample t =
+        // Σ_k w(t_k) x[t − k] with x = 0 outside the epoch; kept: the samples inside the crop,
+        // every `stride`-th from the first. Crops start on and off multiples of the stride
+        // (counted from the epoch's first sample). Tolerance 1e-6 of the largest coefficient of
+        // the frequency's row: f32 storage rounds by ≤ 6e-8 of a value.
+        let fs = 250.0;
+        let data = input((2, 3, 400), fs, -150, |c, n, t| {
+            (2.0 * PI * 7.0 * t + c as f64).sin() + 0.5 * ((n * 5 + c) as f64 + 41.0 * t).cos()
+        });
+        let x = data.real_values().unwrap();
+        let times = data.layout.numbers("time").unwrap().to_vec();
+        // cycles {from: 3, to: 8} over three frequencies: 3, 3·(8/3)^(1/2), 8 (log-spaced).
+        let (freqs, cycles) = ([5.0, 11.0, 29.0], [3.0, 3.0 * (8.0f64 / 3.0).sqrt(), 8.0]);
+        for (stride, crop) in [
+            (1usize, [-0.4, 0.8]),
+            (2, [-0.4, 0.8]),
+            (3, [-0.392, 0.8]),
+            (4, [-0.404, 0.9]),
+            (4, [-0.6, 0.996]),
+            (7, [-0.2, 0.5]),
+        ] {
+            let params = json!({"freqs": freqs, "cycles": {"from": 3, "to": 8}, "crop": crop, "stride": stride});
+            let (out, _) = run_op::<Wavelet>(params, &data).unwrap();
+            let v = out.complex_values().unwrap();
+            let first = times.iter().position(|&t| t >= crop[0] - 1e-9).unwrap();
+            let last = times.iter().rposition(|&t| t <= crop[1] + 1e-9).unwrap();
+            let kept: Vec<usize> = (first..=last).step_by(stride).collect();
+            assert_eq!(v.shape(), [2, 3, 3, kept.len()]);
+            for (fi, (&f, &n)) in freqs.iter().zip(&cycles).enumerate() {
+                let sigma = n / (2.0 * PI * f);
+                let m = (5.0 * sigma * fs).floor() as i64;
+                let g = |k: i64| (-(k as f64 / fs).powi(2) / (2.0 * sigma * sigma)).exp();
+                let sum_g: f64 = (-m..=m).map(g).sum();
+                let w = |k: i64| {
+                    Complex64::from_polar(2.0 / sum_g * g(k), 2.0 * PI * f * k as f64 / fs)
+                };
+                for c in 0..2 {
+                    for tr in 0..3 {
+                        let coef = |t: usize| -> Complex64 {
+                            (-m..=m)
+                                .filter_map(|k| {
+                                    let i = t as i64 - k;
+                                    (0..400)
+                                        .contains(&i)
+                                        .then(|| w(k) * f64::from(x[[c, tr, i as usize]]))
+                                })
+                                .sum()
+                        };
+                        let want: Vec<Complex64> = kept.iter().map(|&t| coef(t)).collect();
+                        let peak = want.iter().map(|z| z.norm()).fold(0.0, f64::max);
+                        for (j, want) in want.iter().enumerate() {
+                            let z = v[[c, tr, fi, j]];
+                            let got = Complex64::new(f64::from(z.re), f64::from(z.im));
+                            assert!(
+                                (got - want).norm() <= 1e-6 * peak,
+                                "stride {stride} crop {crop:?} f {f} sample {}: {got} vs {want}",
+                                kept[j]
+                            );
+                        }
+                    }
+                }
+            }
+        }
     }
 
     #[test]
