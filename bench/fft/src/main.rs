@@ -1,12 +1,22 @@
-//! Bare-FFT timer for the benchmark harness: the transforms the `wavelet` op cannot avoid.
+//! Bare-FFT timer for the benchmark harness: the transforms the `wavelet` op performs, and for
+//! context the transforms of the naive plan.
 //!
-//! For each of `signals` signals it runs one forward complex FFT of length `nfft` (the signal,
-//! zero-padded) and then `freqs` inverse FFTs of the same length (one per wavelet), in f64 as
-//! the op does. Each inverse works on a copy of the spectrum, since the op too writes a fresh
-//! product buffer per frequency. Signals are split into `threads` contiguous blocks, one thread
-//! each. Prints one JSON line: `{"seconds": <best of reps>, ...}`.
+//! The op (stages/src/ops/morlet.rs) convolves each signal with `freqs` wavelets through FFTs of
+//! a length N ≥ `min_len` (epoch + longest wavelet − 1) that is a multiple of the stride k:
+//! N = k · m with m the smallest 2,3,5-smooth number ≥ ⌈min_len / k⌉. Two real signals share one
+//! forward complex FFT of length N; per signal and wavelet, the spectrum folded onto N/k bins
+//! goes through one inverse complex FFT of length N/k. So for `signals` signals this times
+//! ⌈signals / 2⌉ forward FFTs of length N and `signals · freqs` inverse FFTs of length N/k, in
+//! f64 as the op does, each inverse on a fresh copy of an N/k-long buffer (the op writes a fresh
+//! folded buffer per wavelet).
 //!
-//! Usage: `phasewise-bench-fft NFFT SIGNALS FREQS THREADS REPS`
+//! For context it also times the naive count: per signal one forward and `freqs` inverse FFTs
+//! of the plain smooth length ≥ `min_len` (what the op did before it folded and paired).
+//!
+//! Signals are split into `threads` contiguous blocks, one thread each; best of `reps`. Prints
+//! one JSON line: `{"seconds": <op's transforms>, "naive_seconds": ..., ...}`.
+//!
+//! Usage: `phasewise-bench-fft MIN_LEN STRIDE SIGNALS FREQS THREADS REPS`
 
 use std::time::Instant;
 
@@ -15,11 +25,21 @@ use rustfft::FftPlanner;
 
 /// The sizes of one measurement.
 struct Job {
-    nfft: usize,
+    min_len: usize,
+    stride: usize,
     signals: usize,
     freqs: usize,
     threads: usize,
     reps: usize,
+}
+
+/// One plan of transforms: per group of `per_forward` signals one forward FFT of `forward`
+/// points; per signal `freqs` inverse FFTs of `inverse` points.
+#[derive(Clone, Copy)]
+struct Plan {
+    forward: usize,
+    inverse: usize,
+    per_forward: usize,
 }
 
 fn parse() -> Result<Job, String> {
@@ -31,53 +51,84 @@ fn parse() -> Result<Job, String> {
         })
         .collect::<Result<_, _>>()?;
     match args[..] {
-        [nfft, signals, freqs, threads, reps] if nfft > 0 && threads > 0 && reps > 0 => Ok(Job {
-            nfft,
-            signals,
-            freqs,
-            threads,
-            reps,
-        }),
-        _ => Err("usage: phasewise-bench-fft NFFT SIGNALS FREQS THREADS REPS (all > 0)".into()),
+        [min_len, stride, signals, freqs, threads, reps]
+            if min_len > 0 && stride > 0 && threads > 0 && reps > 0 =>
+        {
+            Ok(Job {
+                min_len,
+                stride,
+                signals,
+                freqs,
+                threads,
+                reps,
+            })
+        }
+        _ => Err(
+            "usage: phasewise-bench-fft MIN_LEN STRIDE SIGNALS FREQS THREADS REPS (all but SIGNALS, FREQS > 0)"
+                .into(),
+        ),
     }
 }
 
-/// One thread's share: `count` signals, each one forward and `freqs` inverse transforms.
-fn block(job: &Job, count: usize) -> f64 {
+/// Smallest n ≥ `min` whose only prime factors are 2, 3 and 5 (as the op chooses).
+fn fast_len(min: usize) -> usize {
+    let mut n = min.max(1);
+    loop {
+        let mut r = n;
+        for p in [2, 3, 5] {
+            while r.is_multiple_of(p) {
+                r /= p;
+            }
+        }
+        if r == 1 {
+            return n;
+        }
+        n += 1;
+    }
+}
+
+/// One thread's share: `count` signals under `plan`.
+fn block(plan: Plan, freqs: usize, count: usize) -> f64 {
     let mut planner = FftPlanner::<f64>::new();
-    let forward = planner.plan_fft_forward(job.nfft);
-    let inverse = planner.plan_fft_inverse(job.nfft);
+    let forward = planner.plan_fft_forward(plan.forward);
+    let inverse = planner.plan_fft_inverse(plan.inverse);
     let scratch_len = forward
         .get_inplace_scratch_len()
         .max(inverse.get_inplace_scratch_len());
     let mut scratch = vec![Complex64::default(); scratch_len];
-    let mut spectrum = vec![Complex64::default(); job.nfft];
-    let mut work = vec![Complex64::default(); job.nfft];
+    let mut spectrum = vec![Complex64::default(); plan.forward];
+    let mut work = vec![Complex64::default(); plan.inverse];
     let mut checksum = 0.0;
     for s in 0..count {
-        // A cheap, non-constant input so nothing can be folded away.
-        for (k, v) in spectrum.iter_mut().enumerate() {
-            *v = Complex64::new(((k * 7 + s) % 13) as f64, 0.0);
+        if s % plan.per_forward == 0 {
+            // A cheap, non-constant input so nothing can be folded away.
+            for (k, v) in spectrum.iter_mut().enumerate() {
+                *v = Complex64::new(((k * 7 + s) % 13) as f64, ((k * 3 + s) % 11) as f64);
+            }
+            forward.process_with_scratch(&mut spectrum, &mut scratch);
         }
-        forward.process_with_scratch(&mut spectrum, &mut scratch);
-        for _ in 0..job.freqs {
-            work.copy_from_slice(&spectrum);
+        for _ in 0..freqs {
+            work.copy_from_slice(&spectrum[..plan.inverse]);
             inverse.process_with_scratch(&mut work, &mut scratch);
-            checksum += work[s % job.nfft].re;
+            checksum += work[s % plan.inverse].re;
         }
     }
     checksum
 }
 
-/// Wall seconds of one pass over all signals, on `threads` threads.
-fn once(job: &Job) -> (f64, f64) {
-    let per = job.signals.div_ceil(job.threads);
+/// Wall seconds of one pass over all signals under `plan`, on `threads` threads.
+fn once(job: &Job, plan: Plan) -> (f64, f64) {
+    // Blocks of whole pairs, so a pair's forward transform is never split between threads.
+    let per = job
+        .signals
+        .div_ceil(job.threads)
+        .next_multiple_of(plan.per_forward);
     let start = Instant::now();
     let sums: Vec<f64> = std::thread::scope(|scope| {
         let handles: Vec<_> = (0..job.threads)
             .map(|t| {
                 let count = per.min(job.signals.saturating_sub(t * per));
-                scope.spawn(move || block(job, count))
+                scope.spawn(move || block(plan, job.freqs, count))
             })
             .collect();
         handles
@@ -88,6 +139,18 @@ fn once(job: &Job) -> (f64, f64) {
     (start.elapsed().as_secs_f64(), sums.iter().sum())
 }
 
+/// Best of `reps` passes.
+fn best(job: &Job, plan: Plan) -> (f64, f64) {
+    let mut best = f64::INFINITY;
+    let mut checksum = 0.0;
+    for _ in 0..job.reps {
+        let (seconds, sum) = once(job, plan);
+        best = best.min(seconds);
+        checksum = sum;
+    }
+    (best, checksum)
+}
+
 fn main() {
     let job = match parse() {
         Ok(job) => job,
@@ -96,15 +159,34 @@ fn main() {
             std::process::exit(2);
         }
     };
-    let mut best = f64::INFINITY;
-    let mut checksum = 0.0;
-    for _ in 0..job.reps {
-        let (seconds, sum) = once(&job);
-        best = best.min(seconds);
-        checksum = sum;
-    }
+    let nfft = job.stride * fast_len(job.min_len.div_ceil(job.stride));
+    let op = Plan {
+        forward: nfft,
+        inverse: nfft / job.stride,
+        per_forward: 2,
+    };
+    let naive_len = fast_len(job.min_len);
+    let naive = Plan {
+        forward: naive_len,
+        inverse: naive_len,
+        per_forward: 1,
+    };
+    let (seconds, checksum) = best(&job, op);
+    let (naive_seconds, naive_checksum) = best(&job, naive);
     println!(
-        "{{\"seconds\": {best}, \"nfft\": {}, \"signals\": {}, \"freqs\": {}, \"threads\": {}, \"checksum\": {checksum}}}",
-        job.nfft, job.signals, job.freqs, job.threads
+        "{{\"seconds\": {seconds}, \"nfft\": {nfft}, \"folded\": {}, \"forwards\": {}, \"inverses\": {}, \
+         \"naive_seconds\": {naive_seconds}, \"naive_nfft\": {naive_len}, \"naive_forwards\": {}, \"naive_inverses\": {}, \
+         \"signals\": {}, \"freqs\": {}, \"stride\": {}, \"threads\": {}, \"reps\": {}, \"checksum\": {}}}",
+        op.inverse,
+        job.signals.div_ceil(2),
+        job.signals * job.freqs,
+        job.signals,
+        job.signals * job.freqs,
+        job.signals,
+        job.freqs,
+        job.stride,
+        job.threads,
+        job.reps,
+        checksum + naive_checksum
     );
 }
