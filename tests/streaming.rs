@@ -15,7 +15,7 @@ fn repo() -> PathBuf {
 }
 
 /// Run the demo pipeline (with `tf.cache` as given) on subject 01 in `dir`; returns the
-/// manifest.
+/// manifest part (a `--subject` run writes `manifest.parts/<subject>.json`).
 fn run(dir: &Path, cache_tf: bool, part_bytes: &str) -> serde_json::Value {
     let text = std::fs::read_to_string(repo().join("pipelines/demo.yaml")).unwrap();
     let demo = repo().join("demo-data");
@@ -47,7 +47,7 @@ fn run(dir: &Path, cache_tf: bool, part_bytes: &str) -> serde_json::Value {
         "{}",
         String::from_utf8_lossy(&out.stderr)
     );
-    let manifest = std::fs::read_to_string(dir.join("results/manifest.json")).unwrap();
+    let manifest = std::fs::read_to_string(dir.join("results/manifest.parts/01.json")).unwrap();
     serde_json::from_str(&manifest).unwrap()
 }
 

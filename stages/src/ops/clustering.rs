@@ -689,6 +689,7 @@ fn across_time(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::op::{DynOp, Registered};
     use crate::ops::tf_testing::{coefficients, names, run_err, run_op};
     use crate::testutil::{read_f64, read_json};
     use ndarray::Array4;
@@ -1182,6 +1183,32 @@ mod tests {
             out.layout.meta.extra["trials_per_condition"],
             json!({"early": 2, "late": 2, "mid": 1})
         );
+    }
+
+    #[test]
+    fn clustering_slices_along_freq() {
+        // The parts protocol (op.rs): measuring a range of frequencies gives exactly the whole
+        // output's values of those frequencies, across trials and across time.
+        let mut rng = ChaCha8Rng::seed_from_u64(11);
+        let conds = ["A", "B", "A", "A", "B", "B", "A"];
+        let data = coefs((3, 7, 5, 9), &conds, |_| gauss(&mut rng));
+        for params in [
+            json!({"measure": ALL}),
+            json!({"measure": ALL, "across": "time", "window_cycles": 1.5}),
+        ] {
+            let (whole, _) = run_op::<Clustering>(params.clone(), &data).unwrap();
+            assert!(Registered::<Clustering>::new().slices_along(&params, "freq"));
+            for part in [0..1, 1..4, 4..5] {
+                let (cut, _) = run_op::<Clustering>(
+                    params.clone(),
+                    &data.slice("freq", part.clone()).unwrap(),
+                )
+                .unwrap();
+                let want = whole.slice("freq", part.clone()).unwrap();
+                assert_eq!(cut.layout, want.layout);
+                assert!(cut.values == want.values, "{params} {part:?}");
+            }
+        }
     }
 
     #[test]

@@ -180,6 +180,13 @@ impl Bank {
         }
     }
 
+    /// The same bank with only the wavelets in `range` (FFT lengths unchanged, so each kept
+    /// wavelet gives exactly the coefficients it gives in the whole bank).
+    pub fn only(mut self, range: std::ops::Range<usize>) -> Bank {
+        self.spectra = self.spectra.drain(range).collect();
+        self
+    }
+
     /// The forward FFT length in use.
     pub fn nfft(&self) -> usize {
         self.nfft

@@ -122,3 +122,30 @@ pub fn run_err<O: Op>(params: Value, input: &LabelledArray) -> StageError {
         Err(e) => e,
     }
 }
+
+/// The parts protocol of `op.rs`: `run_part` over `parts` (producer) must equal the whole
+/// run's output cut along the part axis, bit for bit; returns the whole output.
+pub fn assert_parts_match<O: Op>(
+    params: Value,
+    input: &LabelledArray,
+    parts: &[std::ops::Range<usize>],
+) -> LabelledArray {
+    let op = Registered::<O>::new();
+    let params = op.resolve(&params).expect("params");
+    let (whole, _) = run_op::<O>(params.clone(), input).expect("whole run");
+    let axis = op.part_axis(&params).expect("the op computes parts");
+    let inputs = [Input {
+        stage: "in",
+        subject: Some("01"),
+        array: input,
+    }];
+    for part in parts {
+        let got = op
+            .run_part(&params, &inputs, part.clone(), &mut Notes::default())
+            .expect("part");
+        let want = whole.slice(axis, part.clone()).expect("slice");
+        assert_eq!(got.layout, want.layout, "layout of part {part:?}");
+        assert!(got.values == want.values, "values of part {part:?} differ");
+    }
+    whole
+}

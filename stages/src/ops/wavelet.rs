@@ -445,15 +445,55 @@ impl Op for Wavelet {
         if let Some(w) = edge_warning(p, &input.layout)? {
             notes.warn(w);
         }
-        let values = input.real_values()?.as_standard_layout();
-        let values = values.as_slice().unwrap_or(&[]);
-        check_finite(values, &input.layout, plan.epoch_len)?;
-        let out = transform_all(&plan, values);
-        let shape = plan.layout.shape();
-        let array = ArrayD::from_shape_vec(IxDyn(&shape), out)
-            .map_err(|e| StageError::data(format!("internal shape error: {e}")))?;
-        LabelledArray::complex(plan.layout, array)
+        let all = 0..plan.freqs.len();
+        transform_part(plan, input, all)
     }
+
+    /// Frequencies are transformed one by one, each with the FFT lengths of the whole set.
+    fn part_axis(_p: &Self::Params) -> Option<&'static str> {
+        Some("freq")
+    }
+
+    fn run_part(
+        p: &Self::Params,
+        inputs: &[Input<'_>],
+        part: std::ops::Range<usize>,
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        let input = single(inputs)?.array;
+        let plan = plan(p, &input.layout)?;
+        if part.start >= part.end || part.end > plan.freqs.len() {
+            return Err(StageError::data(format!(
+                "internal: frequencies {part:?} of {}",
+                plan.freqs.len()
+            )));
+        }
+        // The edge warning is about the lowest frequency: the part that holds it gives it.
+        if part.start == 0 {
+            if let Some(w) = edge_warning(p, &input.layout)? {
+                notes.warn(w);
+            }
+        }
+        transform_part(plan, input, part)
+    }
+}
+
+/// The coefficients of the frequencies in `part` (all of them for a whole run).
+fn transform_part(
+    mut plan: Plan,
+    input: &LabelledArray,
+    part: std::ops::Range<usize>,
+) -> Result<LabelledArray, StageError> {
+    let values = input.real_values()?.as_standard_layout();
+    let values = values.as_slice().unwrap_or(&[]);
+    check_finite(values, &input.layout, plan.epoch_len)?;
+    let out = transform_all(&plan, values, part.clone());
+    let k = plan.layout.axis("freq")?;
+    plan.layout.coords[k] = plan.layout.coords[k].slice(part)?;
+    let shape = plan.layout.shape();
+    let array = ArrayD::from_shape_vec(IxDyn(&shape), out)
+        .map_err(|e| StageError::data(format!("internal shape error: {e}")))?;
+    LabelledArray::complex(plan.layout, array)
 }
 
 /// Signals per parallel task. Even, so that the pairs that share a forward FFT
@@ -464,20 +504,20 @@ const SIGNALS_PER_TASK: usize = 16;
 /// written straight into the output vector. Parallel over fixed blocks of signals; every value
 /// depends only on its own signal and its fixed pair partner, so the result is the same for any
 /// thread count.
-fn transform_all(plan: &Plan, values: &[f32]) -> Vec<Complex32> {
+fn transform_all(plan: &Plan, values: &[f32], part: std::ops::Range<usize>) -> Vec<Complex32> {
     let taps: Vec<Vec<Complex64>> = plan
         .freqs
         .iter()
         .zip(&plan.cycles)
         .map(|(&f, &n)| morlet::taps(f, n, plan.fs))
         .collect();
-    let per_signal = plan.freqs.len() * plan.keep.count;
+    let per_signal = part.len() * plan.keep.count;
     let signals: usize = plan.layout.shape().iter().take(2).product();
     let mut out = vec![Complex32::default(); per_signal * signals];
     if per_signal == 0 || plan.epoch_len == 0 {
         return out;
     }
-    let bank = Bank::new(&taps, plan.epoch_len, plan.keep);
+    let bank = Bank::new(&taps, plan.epoch_len, plan.keep).only(part);
     out.par_chunks_mut(per_signal * SIGNALS_PER_TASK)
         .zip(values.par_chunks(plan.epoch_len * SIGNALS_PER_TASK))
         .for_each_init(
@@ -629,6 +669,20 @@ mod tests {
         // Geometric spacing: 5, 10, 20 (numpy.geomspace(5, 20, 3)).
         let f = out.layout.numbers("freq").unwrap();
         assert!((f[1] - 10.0).abs() < 1e-12 && f[2] == 20.0);
+    }
+
+    #[test]
+    fn wavelet_parts_equal_the_whole_run() {
+        // The parts protocol (op.rs): any range of frequencies gives exactly the whole run's
+        // coefficients of those frequencies — the FFT lengths come from the whole set.
+        let x = noise((2, 3, 200), 100.0, -50);
+        let params = json!({"freqs": {"from": 3, "to": 30, "count": 7}, "cycles": {"from": 3, "to": 8}, "crop": [-0.2, 1.0], "stride": 3});
+        let whole = crate::ops::tf_testing::assert_parts_match::<Wavelet>(
+            params,
+            &x,
+            &[0..1, 0..7, 2..5, 6..7],
+        );
+        assert_eq!(whole.layout.coord("freq").unwrap().len(), 7);
     }
 
     #[test]
