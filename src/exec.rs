@@ -21,12 +21,12 @@ use phasewise_stages::{Input, LabelledArray, Notes, StageError};
 use rayon::prelude::*;
 
 use crate::graph::UnitInput;
-use crate::output::{self, ExportTarget};
+use crate::output::{self, ExportError, ExportFrom, ExportTarget};
 use crate::parts;
 use crate::pipeline::SOURCE;
 use crate::plan::{Plan, Reason, Status};
 use crate::sources::Reader;
-use crate::store::{npy_bytes, LoadError, Lookup, ObjectRecord};
+use crate::store::{LoadError, Lookup, ObjectRecord};
 use crate::study::{RunError, Study, UnitFailure};
 
 /// What happened to one unit.
@@ -202,6 +202,11 @@ impl Ctx<'_, '_> {
             }
         }
         for &u in chain {
+            if self.deferred(u, chain) {
+                // Its consumers compute it when they run (in their own chain).
+                self.bar.inc(1);
+                continue;
+            }
             if let Err(failure) = worker.process(u) {
                 worker.out.failure = Some(failure);
                 break;
@@ -210,6 +215,25 @@ impl Ctx<'_, '_> {
             self.bar.inc(1);
         }
         worker.out
+    }
+}
+
+impl Ctx<'_, '_> {
+    /// True for a unit whose values this chain would compute only to forget them: stale,
+    /// `cache: false`, not exported, and consumed only by stale units of other chains (a subject's
+    /// baseline feeding the group aggregate), which compute it themselves when they need it —
+    /// computing it here as well would do the work twice.
+    fn deferred(&self, u: usize, chain: &[usize]) -> bool {
+        let study = self.study;
+        let stage = &study.pipeline.stages[study.units[u].stage];
+        if stage.cache || stage.export || self.plan.units[u].status == Status::Fresh {
+            return false;
+        }
+        let mut consumers = (0..study.units.len())
+            .filter(|&c| study.units[c].inputs.contains(&UnitInput::Unit(u)))
+            .peekable();
+        consumers.peek().is_some()
+            && consumers.all(|c| !chain.contains(&c) && self.plan.units[c].status != Status::Fresh)
     }
 }
 
@@ -246,21 +270,17 @@ impl Worker<'_, '_, '_> {
         if let Status::Stale(Reason::Damaged { why }) = status {
             self.warn_damaged(u, why);
         }
-        let mut npy = None;
-        if stale && parts::streams(self.study(), u) {
+        let array = if stale && parts::streams(self.study(), u) {
             // Computed part by part inside its consumer's unit (see `parts`).
+            None
         } else if stale {
-            npy = Some(self.compute(u)?);
+            Some(self.compute(u)?)
         } else {
-            self.record_cached(u)?;
-        }
+            self.record_cached(u)?
+        };
         let stage = &self.study().pipeline.stages[self.study().units[u].stage];
         if stage.export {
-            let bytes = match npy {
-                Some(b) => b,
-                None => self.verified_bytes(u)?,
-            };
-            self.export(u, &bytes)?;
+            self.export(u, array)?;
         }
         if !self.uses_left.contains_key(&UnitInput::Unit(u)) {
             self.memory.remove(&UnitInput::Unit(u));
@@ -268,7 +288,8 @@ impl Worker<'_, '_, '_> {
         Ok(())
     }
 
-    fn record_cached(&mut self, u: usize) -> Result<(), UnitFailure> {
+    /// Record a fresh unit; the array when it had to be computed after all.
+    fn record_cached(&mut self, u: usize) -> Result<Option<Arc<LabelledArray>>, UnitFailure> {
         match self.study().store.lookup(&self.study().keys[u]) {
             Lookup::Present(record) => {
                 self.out.results.insert(
@@ -280,27 +301,10 @@ impl Worker<'_, '_, '_> {
                         export: None,
                     },
                 );
-                Ok(())
+                Ok(None)
             }
             // Gone or damaged since the plan was made (another process, a disk): recompute.
-            Lookup::Absent | Lookup::Damaged(_) => self.compute(u).map(|_| ()),
-        }
-    }
-
-    /// The NPY bytes of a fresh unit, hash-checked; a damaged object is recomputed.
-    fn verified_bytes(&mut self, u: usize) -> Result<Vec<u8>, UnitFailure> {
-        let key = self.study().keys[u].clone();
-        let record = self.out.results.get(&u).map(|r| r.record.clone());
-        let loaded = match &record {
-            Some(r) if r.stored => self.study().store.load_bytes(&key, r),
-            _ => Err("its values are not stored".into()),
-        };
-        match loaded {
-            Ok(bytes) => Ok(bytes),
-            Err(why) => {
-                self.warn_damaged(u, &why);
-                self.compute(u)
-            }
+            Lookup::Absent | Lookup::Damaged(_) => self.compute(u).map(Some),
         }
     }
 
@@ -316,26 +320,70 @@ impl Worker<'_, '_, '_> {
         ));
     }
 
-    fn export(&mut self, u: usize, npy: &[u8]) -> Result<(), UnitFailure> {
+    fn record_of(&self, u: usize) -> Result<ObjectRecord, UnitFailure> {
+        match self.out.results.get(&u) {
+            Some(r) => Ok(r.record.clone()),
+            None => Err(self.fail(u, "internal: export before result")),
+        }
+    }
+
+    /// Export a unit unless its exported files already hold its result. `array` is its value
+    /// when this run has it in memory; else the stored object is copied (hash-checked on the
+    /// way), or loaded for a table, and a damaged object is recomputed.
+    fn export(&mut self, u: usize, array: Option<Arc<LabelledArray>>) -> Result<(), UnitFailure> {
         let study = self.ctx.study;
         let target = ExportTarget {
             output: &study.pipeline.output,
             subject: study.subject(u),
             stage: study.stage_name(u),
         };
-        let record = match self.out.results.get(&u) {
-            Some(r) => r.record.clone(),
-            None => return Err(self.fail(u, "internal: export before result")),
+        let record = self.record_of(u)?;
+        let file = if output::is_current(&target, &record, &study.store) {
+            target.relative_npy()
+        } else {
+            let array = match array {
+                Some(a) => Some(a),
+                // `cache: false`: the values were never stored.
+                None if !record.stored => Some(self.compute(u)?),
+                None if output::is_table(&record) => match study.store.load(&record.key) {
+                    Ok((a, _)) => Some(Arc::new(a)),
+                    Err(e) => {
+                        if let LoadError::Damaged(why) = e {
+                            self.warn_damaged(u, &why);
+                        }
+                        Some(self.compute(u)?)
+                    }
+                },
+                None => None,
+            };
+            let from = match &array {
+                Some(a) => ExportFrom::Array(a),
+                None => ExportFrom::Object,
+            };
+            let record = self.record_of(u)?;
+            match output::export(&target, &record, from, &study.store) {
+                Ok(file) => file,
+                Err(ExportError::Output(e)) => return Err(self.fail(u, e.to_string())),
+                Err(ExportError::Damaged(why)) => {
+                    self.warn_damaged(u, &why);
+                    let array = self.compute(u)?;
+                    let record = self.record_of(u)?;
+                    output::export(&target, &record, ExportFrom::Array(&array), &study.store)
+                        .map_err(|e| match e {
+                            ExportError::Output(e) => self.fail(u, e.to_string()),
+                            ExportError::Damaged(why) => self.fail(u, why),
+                        })?
+                }
+            }
         };
-        let file =
-            output::export(&target, &record, npy).map_err(|e| self.fail(u, e.to_string()))?;
         if let Some(r) = self.out.results.get_mut(&u) {
             r.export = Some(file);
         }
         Ok(())
     }
 
-    /// The values of an input: memory, then the store, then computing it.
+    /// The values of an input: memory, then the store, then computing it. The array is kept in
+    /// memory only while a later unit of this chain still needs it.
     fn values(&mut self, input: UnitInput) -> Result<Held, UnitFailure> {
         if let Some(held) = self.memory.get(&input) {
             return Ok(held.clone());
@@ -348,15 +396,13 @@ impl Worker<'_, '_, '_> {
                     if let LoadError::Damaged(why) = e {
                         self.warn_damaged(u, &why);
                     }
-                    self.compute(u)?;
-                    match self.memory.get(&input) {
-                        Some(held) => held.clone(),
-                        None => return Err(self.fail(u, "internal: computed value missing")),
-                    }
+                    (self.compute(u)?, Vec::new())
                 }
             },
         };
-        self.memory.insert(input, held.clone());
+        if self.uses_left.contains_key(&input) {
+            self.memory.insert(input, held.clone());
+        }
         Ok(held)
     }
 
@@ -382,8 +428,8 @@ impl Worker<'_, '_, '_> {
         Ok((Arc::new(array), warnings))
     }
 
-    /// Run one unit's op, store the result, keep it in memory; returns the NPY bytes.
-    fn compute(&mut self, u: usize) -> Result<Vec<u8>, UnitFailure> {
+    /// Run one unit's op and store the result (kept in memory while this chain still needs it).
+    fn compute(&mut self, u: usize) -> Result<Arc<LabelledArray>, UnitFailure> {
         let study = self.ctx.study;
         if let Some((p, axis)) = parts::streamed_input(study, u) {
             if !self.memory.contains_key(&UnitInput::Unit(p)) {
@@ -392,40 +438,72 @@ impl Worker<'_, '_, '_> {
         }
         let started = Instant::now();
         let unit = &study.units[u];
+        let stage = &study.pipeline.stages[unit.stage];
+        let origin = |input: UnitInput| match input {
+            UnitInput::Source(s) => (SOURCE, Some(study.sources[s].subject.as_str())),
+            UnitInput::Unit(i) => (study.stage_name(i), study.subject(i)),
+        };
+        // An op that prepares its inputs one by one gets each input prepared as soon as it is
+        // loaded; the input itself is dropped before the next one is loaded.
+        let mut prepared = unit.inputs.len() > 1;
         let mut held = Vec::new();
         for &input in &unit.inputs {
-            held.push((input, self.values(input)?));
+            let (array, warnings) = self.values(input)?;
+            if prepared {
+                let (stage_name, subject) = origin(input);
+                let whole = Input {
+                    stage: stage_name,
+                    subject,
+                    array: array.as_ref(),
+                };
+                match stage.op.prepare(&stage.params, &whole) {
+                    Some(result) => {
+                        let small = result.map_err(|e| self.op_failure(u, &e))?;
+                        drop(array);
+                        if self.uses_left.get(&input) == Some(&1) {
+                            // This unit is its last use in the chain.
+                            self.memory.remove(&input);
+                        }
+                        held.push((input, (Arc::new(small), warnings)));
+                        continue;
+                    }
+                    None if held.is_empty() => prepared = false,
+                    None => return Err(self.fail(u, "internal: an input could not be prepared")),
+                }
+            }
+            held.push((input, (array, warnings)));
         }
         let mut notes = Notes::default();
         let mut inputs = Vec::new();
         for (input, (array, warnings)) in &held {
             notes.warnings.extend(warnings.iter().cloned());
-            let (stage, subject) = match *input {
-                UnitInput::Source(s) => (SOURCE, Some(study.sources[s].subject.as_str())),
-                UnitInput::Unit(i) => (study.stage_name(i), study.subject(i)),
-            };
+            let (stage, subject) = origin(*input);
             inputs.push(Input {
                 stage,
                 subject,
                 array: array.as_ref(),
             });
         }
-        let stage = &study.pipeline.stages[unit.stage];
         tracing::info!(stage = %stage.name, subject = ?study.subject(u), "computing");
-        let array = stage
-            .op
-            .run(&stage.params, &inputs, &mut notes)
-            .map_err(|e| self.op_failure(u, &e))?;
+        let array = if prepared {
+            stage.op.join(&stage.params, &inputs, &mut notes)
+        } else {
+            stage.op.run(&stage.params, &inputs, &mut notes)
+        }
+        .map_err(|e| self.op_failure(u, &e))?;
         drop(inputs);
-        let npy = npy_bytes(&array.values).map_err(|e| self.fail(u, e.to_string()))?;
+        drop(held);
         let fingerprint = &study.fingerprints[u];
         let record = study
             .store
-            .put(&array, &npy, &notes, fingerprint, stage.cache)
+            .put(&array, &notes, fingerprint, stage.cache)
             .map_err(|e| self.fail(u, e.to_string()))?;
         study.store.set_last(&study.last_id(u), fingerprint);
-        self.memory
-            .insert(UnitInput::Unit(u), (Arc::new(array), Vec::new()));
+        let array = Arc::new(array);
+        if self.uses_left.contains_key(&UnitInput::Unit(u)) {
+            self.memory
+                .insert(UnitInput::Unit(u), (array.clone(), Vec::new()));
+        }
         let export = self.out.results.get(&u).and_then(|r| r.export.clone());
         self.out.results.insert(
             u,
@@ -436,16 +514,16 @@ impl Worker<'_, '_, '_> {
                 export,
             },
         );
-        Ok(npy)
+        Ok(array)
     }
 
     /// Producer `p` and its consumer `u` part by part ([`parts`]): the producer gets a record
-    /// without values, the consumer is stored as usual; returns the consumer's NPY bytes.
+    /// without values, the consumer is stored as usual; returns the consumer's array.
     fn compute_streamed(
         &mut self,
         (p, u): (usize, usize),
         axis: &str,
-    ) -> Result<Vec<u8>, UnitFailure> {
+    ) -> Result<Arc<LabelledArray>, UnitFailure> {
         let started = Instant::now();
         let study = self.ctx.study;
         let mut held = Vec::new();
@@ -495,22 +573,18 @@ impl Worker<'_, '_, '_> {
             },
         );
         let array = streamed.output;
-        let npy = npy_bytes(&array.values).map_err(|e| self.fail(u, e.to_string()))?;
         let stage = &study.pipeline.stages[study.units[u].stage];
         let fingerprint = &study.fingerprints[u];
         let record = study
             .store
-            .put(
-                &array,
-                &npy,
-                &streamed.consumer_notes,
-                fingerprint,
-                stage.cache,
-            )
+            .put(&array, &streamed.consumer_notes, fingerprint, stage.cache)
             .map_err(|e| self.fail(u, e.to_string()))?;
         study.store.set_last(&study.last_id(u), fingerprint);
-        self.memory
-            .insert(UnitInput::Unit(u), (Arc::new(array), Vec::new()));
+        let array = Arc::new(array);
+        if self.uses_left.contains_key(&UnitInput::Unit(u)) {
+            self.memory
+                .insert(UnitInput::Unit(u), (array.clone(), Vec::new()));
+        }
         let export = self.out.results.get(&u).and_then(|r| r.export.clone());
         let seconds = (started.elapsed().as_secs_f64() - streamed.producer_seconds).max(0.0);
         self.out.results.insert(
@@ -522,7 +596,7 @@ impl Worker<'_, '_, '_> {
                 export,
             },
         );
-        Ok(npy)
+        Ok(array)
     }
 
     /// Drop arrays whose last consumer in this chain has run.

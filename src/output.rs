@@ -7,17 +7,28 @@
 //!   other);
 //! - `<output>/manifest.json` (written by the caller through [`write_atomically`]).
 //!
-//! The NPY is the cached object's bytes, unchanged; the JSON holds dims, coords, units, meta and
-//! the NPY's blake3. Every file is written atomically, and only when its bytes differ from what is
-//! there, so a no-op rerun writes nothing. Temporary files a killed run left in an output folder
-//! are removed by the next run that exports there.
+//! The NPY holds the cached object's bytes, unchanged; the JSON holds dims, coords, units, meta
+//! and the NPY's blake3. Every file is written atomically, and only when it does not already
+//! hold this unit's result: after an export, an *export record* in the cache
+//! (`<cache>/exports/<id>.json`, see [`ExportRecord`]) keeps the unit's key and blake3 and the
+//! stat (size, modification and change time, inode) of every file written. A rerun whose record
+//! still matches the unit and every file's stat writes nothing, without reading or formatting
+//! anything; a file that was edited, replaced or deleted no longer matches and the unit's
+//! exports are written again. Exports are copies, never links into the cache, so editing one
+//! cannot damage the cache. Temporary files a killed run left in an output folder are removed by
+//! the next run that exports there.
 
 use std::path::{Path, PathBuf};
 
+use std::io::Write;
+
 use phasewise_stages::LabelledArray;
+use serde::{Deserialize, Serialize};
 use serde_json::json;
 
-use crate::store::{atomic_write, values_from_npy, ObjectRecord, TEMP_PREFIX};
+use crate::store::{
+    atomic_write, write_npy_to, write_then_rename, ObjectRecord, Store, TEMP_PREFIX,
+};
 
 /// An export that could not be written.
 #[derive(Debug, thiserror::Error)]
@@ -46,18 +57,191 @@ impl ExportTarget<'_> {
     }
 }
 
-/// Write a unit's NPY, JSON and (for tables) TSV; returns the NPY's path relative to the output.
+/// Where an export's values come from.
+pub enum ExportFrom<'a> {
+    /// An array in memory (just computed, or loaded for its table).
+    Array(&'a LabelledArray),
+    /// The stored object: copied, and hash-checked on the way.
+    Object,
+}
+
+/// Why an export was not written.
+#[derive(Debug)]
+pub enum ExportError {
+    /// A file could not be written.
+    Output(OutputError),
+    /// The stored object did not match its record (nothing was written from it).
+    Damaged(String),
+}
+
+impl From<OutputError> for ExportError {
+    fn from(e: OutputError) -> Self {
+        ExportError::Output(e)
+    }
+}
+
+/// The stat of one exported file, as recorded after writing it.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct FileStat {
+    /// The file.
+    pub path: String,
+    /// Size in bytes.
+    pub size: u64,
+    /// Modification time, ns since the epoch.
+    pub mtime_ns: i128,
+    /// Status-change time, ns since the epoch (Unix; 0 elsewhere): no edit can set it back.
+    pub ctime_ns: i128,
+    /// Inode number (Unix; 0 elsewhere).
+    pub inode: u64,
+}
+
+/// What a unit's last export wrote (kept in the cache, never in the output folder).
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ExportRecord {
+    /// [`EXPORT_FORMAT_VERSION`].
+    pub format_version: u32,
+    /// The unit's key.
+    pub key: String,
+    /// The blake3 of its NPY.
+    pub blake3: String,
+    /// Every file written, with its stat right after.
+    pub files: Vec<FileStat>,
+}
+
+/// Version of [`ExportRecord`]; records of another version are ignored (the export is written).
+pub const EXPORT_FORMAT_VERSION: u32 = 1;
+
+impl ExportTarget<'_> {
+    fn npy_path(&self) -> PathBuf {
+        self.output.join(self.relative_npy())
+    }
+
+    fn tsv_path(&self) -> PathBuf {
+        match self.subject {
+            None => self.output.join(format!("{}.tsv", self.stage)),
+            Some(s) => self.output.join(s).join(format!("{}.tsv", self.stage)),
+        }
+    }
+
+    /// The files whose stat the export record keeps: the NPY, JSON and (for tables) TSV an
+    /// export of `record` writes, and the stored object it copies, so that an object changed
+    /// since (damaged, rewritten) is exported again — and hash-checked on the way.
+    fn files(&self, record: &ObjectRecord, store: &Store) -> Vec<PathBuf> {
+        let npy = self.npy_path();
+        let mut files = vec![npy.clone(), npy.with_extension("json")];
+        if is_table(record) {
+            files.push(self.tsv_path());
+        }
+        if record.stored {
+            files.push(store.object_paths(&record.key).0);
+        }
+        files
+    }
+
+    /// Where the export record of this target lives in the cache.
+    fn record_path(&self, store: &Store) -> PathBuf {
+        let npy = self.npy_path();
+        let absolute = std::path::absolute(&npy).unwrap_or(npy);
+        let id = blake3::hash(absolute.to_string_lossy().as_bytes()).to_hex();
+        store
+            .root()
+            .join("exports")
+            .join(format!("{}.json", &id[..32]))
+    }
+}
+
+fn stat_of(path: &Path) -> Option<FileStat> {
+    let meta = std::fs::metadata(path).ok()?;
+    let ns = |t: std::time::SystemTime| {
+        t.duration_since(std::time::UNIX_EPOCH)
+            .map(|d| d.as_nanos() as i128)
+            .unwrap_or_else(|e| -(e.duration().as_nanos() as i128))
+    };
+    let mtime_ns = ns(meta.modified().ok()?);
+    #[cfg(unix)]
+    let (ctime_ns, inode) = {
+        use std::os::unix::fs::MetadataExt;
+        (
+            i128::from(meta.ctime()) * 1_000_000_000 + i128::from(meta.ctime_nsec()),
+            meta.ino(),
+        )
+    };
+    #[cfg(not(unix))]
+    let (ctime_ns, inode) = (0, 0);
+    Some(FileStat {
+        path: path.to_string_lossy().into_owned(),
+        size: meta.len(),
+        mtime_ns,
+        ctime_ns,
+        inode,
+    })
+}
+
+/// True when the target's files still hold exactly `record`'s export: its export record names
+/// this key and blake3, and every file's stat is unchanged since it was written. Reads one small
+/// record and stats the files; nothing else.
+pub fn is_current(target: &ExportTarget<'_>, record: &ObjectRecord, store: &Store) -> bool {
+    let Ok(bytes) = std::fs::read(target.record_path(store)) else {
+        return false;
+    };
+    let Ok(last) = serde_json::from_slice::<ExportRecord>(&bytes) else {
+        return false;
+    };
+    if last.format_version != EXPORT_FORMAT_VERSION
+        || last.key != record.key
+        || last.blake3 != record.blake3
+    {
+        return false;
+    }
+    let files = target.files(record, store);
+    files.len() == last.files.len()
+        && files
+            .iter()
+            .zip(&last.files)
+            .all(|(path, was)| stat_of(path).as_ref() == Some(was))
+}
+
+/// Write a unit's NPY, JSON and (for tables) TSV, then its export record; returns the NPY's
+/// path relative to the output. The caller asks [`is_current`] first.
 pub fn export(
     target: &ExportTarget<'_>,
     record: &ObjectRecord,
-    npy: &[u8],
-) -> Result<String, OutputError> {
+    from: ExportFrom<'_>,
+    store: &Store,
+) -> Result<String, ExportError> {
     let relative = target.relative_npy();
-    let npy_path = target.output.join(&relative);
+    let npy_path = target.npy_path();
     if let Some(dir) = npy_path.parent() {
         remove_dead_temps(dir);
     }
-    write_atomically(&npy_path, npy)?;
+    let record_path = target.record_path(store);
+    // A stale export record must never vouch for files about to change.
+    let _ = std::fs::remove_file(&record_path);
+    let fail = |e: std::io::Error| OutputError {
+        path: npy_path.clone(),
+        message: e.to_string(),
+    };
+    match from {
+        ExportFrom::Object => {
+            store
+                .copy_object(&record.key, record, &npy_path)
+                .map_err(fail)?
+                .map_err(ExportError::Damaged)?;
+        }
+        ExportFrom::Array(array) => {
+            let values = &array.values;
+            let written = write_then_rename(&npy_path, false, |file| {
+                let mut out = std::io::BufWriter::with_capacity(1 << 20, file);
+                let done = write_npy_to(values, &mut out).map_err(|e| e.to_string());
+                out.flush()?;
+                Ok(done)
+            });
+            written.map_err(fail)?.map_err(|message| OutputError {
+                path: npy_path.clone(),
+                message,
+            })?;
+        }
+    }
     let sidecar = json!({
         "stage": target.stage,
         "subject": target.subject,
@@ -76,33 +260,47 @@ pub fn export(
     })?;
     write_atomically(&npy_path.with_extension("json"), &text)?;
     if is_table(record) {
-        write_table(target, record, npy)?;
+        match from {
+            ExportFrom::Array(array) => write_table(target, array)?,
+            ExportFrom::Object => {
+                let values = store
+                    .load_values(&record.key, record)
+                    .map_err(ExportError::Damaged)?;
+                let array = LabelledArray::checked(record.layout.clone(), values).map_err(|e| {
+                    ExportError::Damaged(format!("its values do not fit its layout: {e}"))
+                })?;
+                write_table(target, &array)?;
+            }
+        }
+    }
+    let files: Option<Vec<FileStat>> = target
+        .files(record, store)
+        .iter()
+        .map(|p| stat_of(p))
+        .collect();
+    if let Some(files) = files {
+        let last = ExportRecord {
+            format_version: EXPORT_FORMAT_VERSION,
+            key: record.key.clone(),
+            blake3: record.blake3.clone(),
+            files,
+        };
+        // Losing the record only costs a rewrite next time.
+        if let Ok(bytes) = serde_json::to_vec(&last) {
+            let _ = atomic_write(&record_path, &bytes);
+        }
     }
     Ok(relative)
 }
 
-fn is_table(record: &ObjectRecord) -> bool {
+/// True for outputs that are also written as a tidy table.
+pub fn is_table(record: &ObjectRecord) -> bool {
     record.layout.meta.extra.get("table") == Some(&serde_json::Value::Bool(true))
 }
 
-fn write_table(
-    target: &ExportTarget<'_>,
-    record: &ObjectRecord,
-    npy: &[u8],
-) -> Result<(), OutputError> {
-    let path = match target.subject {
-        None => target.output.join(format!("{}.tsv", target.stage)),
-        Some(s) => target.output.join(s).join(format!("{}.tsv", target.stage)),
-    };
-    let fail = |message: String| OutputError {
-        path: path.clone(),
-        message,
-    };
-    let values = values_from_npy(npy, record.layout.complex).map_err(fail)?;
-    let array =
-        LabelledArray::checked(record.layout.clone(), values).map_err(|e| fail(e.to_string()))?;
-    let table = phasewise_stages::table::tidy_tsv(&array);
-    write_atomically(&path, table.as_bytes())
+fn write_table(target: &ExportTarget<'_>, array: &LabelledArray) -> Result<(), OutputError> {
+    let table = phasewise_stages::table::tidy_tsv(array);
+    write_atomically(&target.tsv_path(), table.as_bytes())
 }
 
 /// Remove temporary files left in `dir` by killed runs: those named after a process that no

@@ -18,11 +18,11 @@
 //! and a load checks the content hash.
 
 use std::fs::File;
-use std::io::Write;
+use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
 
-use ndarray::ArrayD;
+use ndarray::{ArrayD, IxDyn, ShapeBuilder};
 use ndarray_npy::{ReadNpyExt, WriteNpyExt};
 use num_complex::Complex32;
 use phasewise_stages::{LabelledArray, Layout, Notes, Values};
@@ -107,15 +107,90 @@ pub struct Store {
     root: PathBuf,
 }
 
-/// The NPY bytes of an array.
+/// The NPY bytes of an array (the reference encoding; the store streams the same bytes through
+/// [`write_npy_to`] without building them in memory).
 pub fn npy_bytes(values: &Values) -> Result<Vec<u8>, StoreError> {
     let mut bytes = Vec::new();
-    let written = match values {
-        Values::Real(a) => a.write_npy(&mut bytes),
-        Values::Complex(a) => a.write_npy(&mut bytes),
-    };
-    written.map_err(|e| StoreError::Encode(e.to_string()))?;
+    write_npy_to(values, &mut bytes)?;
     Ok(bytes)
+}
+
+/// Write an array's NPY encoding to `writer`: the header, then the values straight from the
+/// array's memory (one `write_all` for a contiguous array), so no copy of the values is made.
+pub fn write_npy_to<W: Write>(values: &Values, writer: W) -> Result<(), StoreError> {
+    let written = match values {
+        Values::Real(a) => a.write_npy(writer),
+        Values::Complex(a) => a.write_npy(writer),
+    };
+    written.map_err(|e| StoreError::Encode(e.to_string()))
+}
+
+/// A writer that hashes (blake3) and counts every byte it passes on.
+pub struct HashingWriter<W> {
+    inner: W,
+    hasher: blake3::Hasher,
+    len: u64,
+}
+
+impl<W: Write> HashingWriter<W> {
+    /// Hash and count what goes to `inner`.
+    pub fn new(inner: W) -> Self {
+        HashingWriter {
+            inner,
+            hasher: blake3::Hasher::new(),
+            len: 0,
+        }
+    }
+
+    /// The blake3 (hex) and number of the bytes written so far, and the inner writer.
+    pub fn finish(self) -> (String, u64, W) {
+        (
+            self.hasher.finalize().to_hex().to_string(),
+            self.len,
+            self.inner,
+        )
+    }
+}
+
+impl<W: Write> Write for HashingWriter<W> {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        let n = self.inner.write(buf)?;
+        hash_update(&mut self.hasher, &buf[..n]);
+        self.len += n as u64;
+        Ok(n)
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        self.inner.flush()
+    }
+}
+
+/// Below this many bytes one thread hashes; above, blake3 splits the work over the rayon pool.
+const PARALLEL_HASH_BYTES: usize = 1 << 20;
+
+fn hash_update(hasher: &mut blake3::Hasher, bytes: &[u8]) {
+    if bytes.len() >= PARALLEL_HASH_BYTES {
+        hasher.update_rayon(bytes);
+    } else {
+        hasher.update(bytes);
+    }
+}
+
+/// Stream an array's NPY encoding into `sink`, hashing it on the way; returns (blake3, size).
+/// Small writes (a non-contiguous array is written element by element) are gathered first.
+fn stream_npy<W: Write>(values: &Values, sink: W) -> Result<(String, u64), StoreError> {
+    let mut out = std::io::BufWriter::with_capacity(1 << 20, HashingWriter::new(sink));
+    write_npy_to(values, &mut out)?;
+    let tee = out
+        .into_inner()
+        .map_err(|e| StoreError::Encode(e.error().to_string()))?;
+    let (hash, len, _) = tee.finish();
+    Ok((hash, len))
+}
+
+/// The blake3 (hex) and size of an array's NPY encoding, computed without building it.
+pub fn npy_digest(values: &Values) -> Result<(String, u64), StoreError> {
+    stream_npy(values, std::io::sink())
 }
 
 /// Decode NPY bytes as real or complex values.
@@ -130,6 +205,95 @@ pub fn values_from_npy(bytes: &[u8], complex: bool) -> Result<Values, String> {
             .map_err(|e| e.to_string())
     }
 }
+
+/// Read `file` (whose first `header` bytes were already read into `head`) straight into the
+/// values of `record`'s shape, hashing every byte; the hash is checked before anything decoded
+/// is returned. `None` when the header is not one this fast path knows (the caller then decodes
+/// the slow, general way).
+fn read_values(file: &mut File, record: &ObjectRecord) -> Result<Option<Values>, String> {
+    let count = record
+        .shape
+        .iter()
+        .try_fold(1usize, |n, &d| n.checked_mul(d))
+        .ok_or("its recorded shape overflows")?;
+    let (width, complex) = match record.dtype.as_str() {
+        "<f4" => (4usize, false),
+        "<c8" => (8usize, true),
+        _ => return Ok(None),
+    };
+    if complex != record.layout.complex || !cfg!(target_endian = "little") {
+        return Ok(None);
+    }
+    let data_len = count
+        .checked_mul(width)
+        .ok_or("its recorded shape overflows")? as u64;
+    let Some(header_len) = record.npy_size.checked_sub(data_len) else {
+        return Err(format!(
+            "its values (.npy) have {} bytes, too few for the recorded shape",
+            record.npy_size
+        ));
+    };
+    if header_len > 1 << 20 {
+        return Ok(None);
+    }
+    let mut hasher = blake3::Hasher::new();
+    let mut head = vec![0u8; header_len as usize];
+    let io = |e: std::io::Error| format!("cannot read its values: {e}");
+    file.read_exact(&mut head).map_err(io)?;
+    hasher.update(&head);
+    let mut read_into = |bytes: &mut [u8]| -> Result<(), String> {
+        // Chunks small enough to be hashed while they are still in the CPU's cache.
+        for chunk in bytes.chunks_mut(READ_CHUNK) {
+            file.read_exact(chunk).map_err(io)?;
+            hash_update(&mut hasher, chunk);
+        }
+        Ok(())
+    };
+    let values = if complex {
+        let mut data = vec![Complex32::new(0.0, 0.0); count];
+        read_into(bytemuck::cast_slice_mut(&mut data))?;
+        Data::Complex(data)
+    } else {
+        let mut data = vec![0f32; count];
+        read_into(bytemuck::cast_slice_mut(&mut data))?;
+        Data::Real(data)
+    };
+    let mut rest = [0u8; 1];
+    if file.read(&mut rest).map_err(io)? != 0 {
+        return Err("its values (.npy) are longer than the record says".into());
+    }
+    let hash = hasher.finalize().to_hex().to_string();
+    if hash != record.blake3 {
+        return Err(format!(
+            "its values' blake3 is {hash}, the record says {}",
+            record.blake3
+        ));
+    }
+    // The bytes are exactly those written for this record, so the header is the one the NPY
+    // writer produced for its shape; only the memory order is left to read from it.
+    let text = String::from_utf8_lossy(&head);
+    let fortran = if text.contains("'fortran_order': False") {
+        false
+    } else if text.contains("'fortran_order': True") {
+        true
+    } else {
+        return Ok(None);
+    };
+    let shape = IxDyn(&record.shape).set_f(fortran);
+    let built = match values {
+        Data::Real(v) => ArrayD::from_shape_vec(shape, v).map(Values::Real),
+        Data::Complex(v) => ArrayD::from_shape_vec(shape, v).map(Values::Complex),
+    };
+    built.map(Some).map_err(|e| e.to_string())
+}
+
+enum Data {
+    Real(Vec<f32>),
+    Complex(Vec<Complex32>),
+}
+
+/// Read size of [`read_values`]: the piece just read is hashed while it is still in cache.
+const READ_CHUNK: usize = 1 << 21;
 
 impl Store {
     /// The store in `root` (created on first write).
@@ -182,18 +346,30 @@ impl Store {
         Lookup::Present(Box::new(record))
     }
 
-    /// Load and verify an object's values.
+    /// Load and verify an object's values: read straight into the array's buffer, hashing on the
+    /// way; nothing is returned unless the whole file matches the recorded blake3.
     pub fn load(&self, key: &str) -> Result<(LabelledArray, ObjectRecord), LoadError> {
         let record = match self.lookup(key) {
             Lookup::Present(r) if r.stored => *r,
             Lookup::Present(_) | Lookup::Absent => return Err(LoadError::Unavailable),
             Lookup::Damaged(why) => return Err(LoadError::Damaged(why)),
         };
-        let bytes = self.load_bytes(key, &record).map_err(LoadError::Damaged)?;
-        let values = values_from_npy(&bytes, record.layout.complex).map_err(LoadError::Damaged)?;
+        let values = self.load_values(key, &record).map_err(LoadError::Damaged)?;
         let array = LabelledArray::checked(record.layout.clone(), values)
             .map_err(|e| LoadError::Damaged(e.to_string()))?;
         Ok((array, record))
+    }
+
+    /// The values of a stored object, verified against its record.
+    pub fn load_values(&self, key: &str, record: &ObjectRecord) -> Result<Values, String> {
+        let (npy, _) = self.object_paths(key);
+        let mut file = File::open(&npy).map_err(|e| format!("cannot read its values: {e}"))?;
+        if let Some(values) = read_values(&mut file, record)? {
+            return Ok(values);
+        }
+        // A header this reader does not know: the general way (read, hash, decode).
+        let bytes = self.load_bytes(key, record)?;
+        values_from_npy(&bytes, record.layout.complex)
     }
 
     /// The NPY bytes of an object, verified against its record.
@@ -210,17 +386,62 @@ impl Store {
         Ok(bytes)
     }
 
-    /// Write an object (values only when `stored`), NPY first, record last.
+    /// Copy a stored object's NPY to `path` (atomically), hashing it on the way: `Ok(Err(why))`
+    /// when the object does not match its record, and then nothing is written at `path`.
+    pub fn copy_object(
+        &self,
+        key: &str,
+        record: &ObjectRecord,
+        path: &Path,
+    ) -> std::io::Result<Result<(), String>> {
+        let (npy, _) = self.object_paths(key);
+        let mut from = match File::open(&npy) {
+            Ok(f) => f,
+            Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
+        };
+        write_then_rename(path, false, |to| {
+            let mut hasher = blake3::Hasher::new();
+            let mut buffer = vec![0u8; READ_CHUNK];
+            let mut total = 0u64;
+            loop {
+                let n = match from.read(&mut buffer) {
+                    Ok(0) => break,
+                    Ok(n) => n,
+                    Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
+                    Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
+                };
+                hash_update(&mut hasher, &buffer[..n]);
+                to.write_all(&buffer[..n])?;
+                total += n as u64;
+            }
+            let hash = hasher.finalize().to_hex().to_string();
+            if hash != record.blake3 || total != record.npy_size {
+                return Ok(Err(format!(
+                    "its values' blake3 is {hash}, the record says {}",
+                    record.blake3
+                )));
+            }
+            Ok(Ok(()))
+        })
+    }
+
+    /// Write an object (values only when `stored`), NPY first, record last. The NPY is streamed
+    /// from the array's memory to the file and hashed on the way; for `cache: false` it is only
+    /// hashed. Its bytes (and so its blake3) are those of [`npy_bytes`].
     pub fn put(
         &self,
         array: &LabelledArray,
-        npy: &[u8],
         notes: &Notes,
         fingerprint: &Fingerprint,
         stored: bool,
     ) -> Result<ObjectRecord, StoreError> {
         let key = fingerprint.key();
         let (npy_path, json_path) = self.object_paths(&key);
+        let (blake3, npy_size) = if stored {
+            write_object_file(&npy_path, &array.values)?
+        } else {
+            npy_digest(&array.values)?
+        };
         let record = ObjectRecord {
             format: FORMAT.into(),
             format_version: FORMAT_VERSION,
@@ -229,14 +450,11 @@ impl Store {
             layout: array.layout.clone(),
             shape: array.values.shape().to_vec(),
             dtype: array.values.dtype().into(),
-            npy_size: npy.len() as u64,
-            blake3: blake3::hash(npy).to_hex().to_string(),
+            npy_size,
+            blake3,
             notes: notes.clone(),
             fingerprint: fingerprint.clone(),
         };
-        if stored {
-            write_object_file(&npy_path, npy)?;
-        }
         let json =
             serde_json::to_vec_pretty(&record).map_err(|e| StoreError::Encode(e.to_string()))?;
         atomic_write(&json_path, &json).map_err(|source| StoreError::Write {
@@ -332,6 +550,16 @@ struct LastRecord {
 }
 
 fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, String> {
+    // One pass straight into the record; the slower look at the raw value below only runs to
+    // explain a record that does not parse (or is of another format).
+    if let Ok(record) = serde_json::from_slice::<ObjectRecord>(bytes) {
+        if record.format == FORMAT && record.format_version == FORMAT_VERSION {
+            if record.key != key {
+                return Err(format!("its record belongs to key {}", record.key));
+            }
+            return Ok(record);
+        }
+    }
     let value: serde_json::Value =
         serde_json::from_slice(bytes).map_err(|e| format!("its record is not valid JSON: {e}"))?;
     let version = value.get("format_version").and_then(|v| v.as_u64());
@@ -350,17 +578,25 @@ fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, String> {
     Ok(record)
 }
 
-fn write_object_file(path: &Path, bytes: &[u8]) -> Result<(), StoreError> {
+fn write_object_file(path: &Path, values: &Values) -> Result<(String, u64), StoreError> {
     let abort = std::env::var_os(ABORT_BEFORE_RENAME).is_some();
-    write_then_rename(path, bytes, abort).map_err(|source| StoreError::Write {
-        path: path.to_path_buf(),
-        source,
-    })
+    let written = write_then_rename(path, abort, |file| {
+        Ok(stream_npy(values, file).map_err(|e| e.to_string()))
+    });
+    match written {
+        Ok(Ok(digest)) => Ok(digest),
+        Ok(Err(message)) => Err(StoreError::Encode(message)),
+        Err(source) => Err(StoreError::Write {
+            path: path.to_path_buf(),
+            source,
+        }),
+    }
 }
 
 /// Write `bytes` to `path` atomically: a temporary file in the same folder, fsync, rename.
 pub fn atomic_write(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
-    write_then_rename(path, bytes, false)
+    write_then_rename(path, false, |file| file.write_all(bytes).map(Ok))
+        .map(|r: Result<(), String>| r.unwrap_or(()))
 }
 
 static TEMP_COUNTER: AtomicU64 = AtomicU64::new(0);
@@ -368,7 +604,14 @@ static TEMP_COUNTER: AtomicU64 = AtomicU64::new(0);
 /// Prefix of temporary files; they are never read, and `prune` removes old ones.
 pub const TEMP_PREFIX: &str = ".tmp-";
 
-fn write_then_rename(path: &Path, bytes: &[u8], abort_before_rename: bool) -> std::io::Result<()> {
+/// Fill a temporary file in `path`'s folder with `fill`, fsync it and rename it to `path`. When
+/// `fill` answers `Ok(Err(_))` (the content turned out wrong) the temporary file is removed,
+/// nothing is renamed and the answer is passed on.
+pub(crate) fn write_then_rename<T>(
+    path: &Path,
+    abort_before_rename: bool,
+    fill: impl FnOnce(&mut File) -> std::io::Result<Result<T, String>>,
+) -> std::io::Result<Result<T, String>> {
     let dir = path.parent().unwrap_or(Path::new("."));
     std::fs::create_dir_all(dir)?;
     let name = path.file_name().map(|n| n.to_string_lossy().into_owned());
@@ -379,9 +622,19 @@ fn write_then_rename(path: &Path, bytes: &[u8], abort_before_rename: bool) -> st
         name.unwrap_or_default()
     ));
     let mut file = File::create(&temp)?;
-    file.write_all(bytes)?;
-    file.sync_all()?;
+    let filled = fill(&mut file).and_then(|r| file.sync_all().map(|()| r));
     drop(file);
+    let value = match filled {
+        Ok(Ok(value)) => value,
+        Ok(Err(why)) => {
+            let _ = std::fs::remove_file(&temp);
+            return Ok(Err(why));
+        }
+        Err(e) => {
+            let _ = std::fs::remove_file(&temp);
+            return Err(e);
+        }
+    };
     if abort_before_rename {
         std::process::abort();
     }
@@ -392,7 +645,7 @@ fn write_then_rename(path: &Path, bytes: &[u8], abort_before_rename: bool) -> st
     if let Ok(d) = File::open(dir) {
         let _ = d.sync_all();
     }
-    Ok(())
+    Ok(Ok(value))
 }
 
 #[cfg(test)]
@@ -432,9 +685,7 @@ mod tests {
         // dict naming the dtype `<f4`.
         assert_eq!(&npy[..8], b"\x93NUMPY\x01\x00");
         assert!(String::from_utf8_lossy(&npy[..128]).contains("'descr': '<f4'"));
-        let record = store
-            .put(&array, &npy, &Notes::default(), &fp, true)
-            .unwrap();
+        let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
         let (back, _) = store.load(&record.key).unwrap();
         assert_eq!(back, array);
         let (npy_path, json_path) = store.object_paths(&record.key);
@@ -454,10 +705,7 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let store = Store::new(dir.path());
         let (array, fp) = sample();
-        let npy = npy_bytes(&array.values).unwrap();
-        let record = store
-            .put(&array, &npy, &Notes::default(), &fp, true)
-            .unwrap();
+        let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
         let (_, json_path) = store.object_paths(&record.key);
         let text = std::fs::read_to_string(&json_path).unwrap();
         let newer = text.replace("\"format_version\": 1", "\"format_version\": 99");

@@ -20,6 +20,11 @@
 //! input says so in [`Op::slices_along`] (the clustering op: each frequency on its own). The
 //! runner may then run the pair part by part and join the consumer's parts; the result must be
 //! the same bits as running both whole, and each op's tests show that it is.
+//!
+//! Prepared inputs (how a unit that joins many subjects avoids holding all their arrays at
+//! once): an op may reduce each input on its own first ([`Op::prepare`]) and then join the
+//! prepared arrays ([`Op::join`]); `run` must equal `join` over the prepared inputs. The runner
+//! then prepares each input as soon as it is loaded and drops it before loading the next.
 
 use serde::{de::DeserializeOwned, Serialize};
 use serde_json::Value;
@@ -138,6 +143,24 @@ pub trait Op: Send + Sync + 'static {
         )))
     }
 
+    /// The per-input step of a join, if the op has one (`None`: the runner calls `run`).
+    fn prepare(
+        _params: &Self::Params,
+        _input: &Input<'_>,
+    ) -> Option<Result<LabelledArray, StageError>> {
+        None
+    }
+
+    /// The output from inputs that went through [`Op::prepare`] (their stage and subject
+    /// unchanged). Only called when `prepare` gives `Some`.
+    fn join(
+        params: &Self::Params,
+        prepared: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        Self::run(params, prepared, notes)
+    }
+
     /// True when, for inputs cut to a range along `axis`, [`Op::run`] gives exactly the output
     /// cut to the same range along the output's axis of the same name.
     fn slices_along(_params: &Self::Params, _axis: &str) -> bool {
@@ -180,6 +203,19 @@ pub trait DynOp: Send + Sync {
     ) -> Result<LabelledArray, StageError>;
     /// See [`Op::slices_along`]; false also when the params do not parse.
     fn slices_along(&self, params: &Value, axis: &str) -> bool;
+    /// See [`Op::prepare`].
+    fn prepare(
+        &self,
+        params: &Value,
+        input: &Input<'_>,
+    ) -> Option<Result<LabelledArray, StageError>>;
+    /// See [`Op::join`].
+    fn join(
+        &self,
+        params: &Value,
+        prepared: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError>;
 }
 
 /// Wraps an [`Op`] type as a [`DynOp`] value.
@@ -252,5 +288,23 @@ impl<O: Op> DynOp for Registered<O> {
     }
     fn slices_along(&self, params: &Value, axis: &str) -> bool {
         parse_params(params).is_ok_and(|p| O::slices_along(&p, axis))
+    }
+    fn prepare(
+        &self,
+        params: &Value,
+        input: &Input<'_>,
+    ) -> Option<Result<LabelledArray, StageError>> {
+        match parse_params(params) {
+            Ok(p) => O::prepare(&p, input),
+            Err(e) => Some(Err(e)),
+        }
+    }
+    fn join(
+        &self,
+        params: &Value,
+        prepared: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        O::join(&parse_params(params)?, prepared, notes)
     }
 }

@@ -8,7 +8,7 @@
 
 use std::fmt::Write as _;
 
-use ndarray::{ArrayD, IxDyn};
+use ndarray::ArrayD;
 use num_complex::Complex32;
 
 use crate::array::{Coord, LabelledArray, Layout, Values};
@@ -20,16 +20,24 @@ const PIVOT_AXIS: &str = "statistic";
 /// (the BIDS convention for a missing value). Very small or large magnitudes use exponent form
 /// so that a value is never a long run of zeros.
 pub fn number_text(x: f64) -> String {
+    let mut text = String::new();
+    push_number(&mut text, x);
+    text
+}
+
+/// [`number_text`], appended to `out` (no allocation of its own).
+fn push_number(out: &mut String, x: f64) {
     if x.is_nan() {
-        return "n/a".into();
+        out.push_str("n/a");
+        return;
     }
     let x = x as f32;
     let magnitude = x.abs();
-    if x == 0.0 || x.is_infinite() || (1e-4..1e7).contains(&magnitude) {
-        format!("{x}")
+    let _ = if x == 0.0 || x.is_infinite() || (1e-4..1e7).contains(&magnitude) {
+        write!(out, "{x}")
     } else {
-        format!("{x:e}")
-    }
+        write!(out, "{x:e}")
+    };
 }
 
 /// Entry `i` of an axis as text: labels as they are (tabs and line breaks replaced by spaces,
@@ -66,28 +74,85 @@ pub fn tidy_tsv(array: &LabelledArray) -> String {
     let row_axes: Vec<usize> = (0..layout.dims.len())
         .filter(|&a| Some(a) != pivot)
         .collect();
-    let mut out = String::new();
     let mut header: Vec<String> = row_axes.iter().map(|&a| layout.dims[a].clone()).collect();
     header.extend(value_columns(array, pivot));
-    let _ = writeln!(out, "{}", header.join("\t"));
     let row_shape: Vec<usize> = row_axes.iter().map(|&a| axis_len(array, a)).collect();
     let pivot_len = pivot.map_or(1, |p| axis_len(array, p));
+    // Each coordinate's text once, not once per row.
+    let coord_texts: Vec<Vec<String>> = row_axes
+        .iter()
+        .zip(&row_shape)
+        .map(|(&a, &n)| (0..n).map(|i| coord_text(&layout.coords[a], i)).collect())
+        .collect();
+    // Row-major element strides of the values (read in standard layout).
+    let shape = array.values.shape();
+    let mut strides = vec![1usize; shape.len()];
+    for a in (0..shape.len().saturating_sub(1)).rev() {
+        strides[a] = strides[a + 1] * shape[a + 1];
+    }
+    let pivot_stride = pivot.map_or(0, |p| strides[p]);
+    let flat = Flat::of(&array.values);
+    let rows: usize = row_shape.iter().product();
+    let mut out = String::with_capacity(rows.saturating_mul(16 * (header.len() + 1)));
+    let _ = writeln!(out, "{}", header.join("\t"));
     for_each_index(&row_shape, |row| {
-        let mut cells: Vec<String> = row_axes
-            .iter()
-            .zip(row)
-            .map(|(&a, &i)| coord_text(&layout.coords[a], i))
-            .collect();
-        for k in 0..pivot_len {
-            let mut full: Vec<usize> = row.to_vec();
-            if let Some(p) = pivot {
-                full.insert(p, k);
+        let mut base = 0;
+        let mut first = true;
+        for (k, (&a, &i)) in row_axes.iter().zip(row).enumerate() {
+            base += i * strides[a];
+            if !first {
+                out.push('\t');
             }
-            cells.extend(value_cells(&array.values, &full));
+            first = false;
+            out.push_str(&coord_texts[k][i]);
         }
-        let _ = writeln!(out, "{}", cells.join("\t"));
+        for j in 0..pivot_len {
+            flat.push_cells(&mut out, base + j * pivot_stride, &mut first);
+        }
+        out.push('\n');
     });
     out
+}
+
+/// The values in row-major order (borrowed when they already are).
+enum Flat<'a> {
+    Real(std::borrow::Cow<'a, [f32]>),
+    Complex(std::borrow::Cow<'a, [Complex32]>),
+}
+
+impl<'a> Flat<'a> {
+    fn of(values: &'a Values) -> Self {
+        match values {
+            Values::Real(a) => Flat::Real(standard(a)),
+            Values::Complex(a) => Flat::Complex(standard(a)),
+        }
+    }
+
+    /// The text cells of element `i`, each after a tab unless it is the row's first.
+    fn push_cells(&self, out: &mut String, i: usize, first: &mut bool) {
+        let mut cell = |out: &mut String, x: f64| {
+            if !*first {
+                out.push('\t');
+            }
+            *first = false;
+            push_number(out, x);
+        };
+        match self {
+            Flat::Real(v) => cell(out, v.get(i).map_or(f64::NAN, |&x| f64::from(x))),
+            Flat::Complex(v) => {
+                let z = v.get(i).copied();
+                cell(out, z.map_or(f64::NAN, |z| f64::from(z.re)));
+                cell(out, z.map_or(f64::NAN, |z| f64::from(z.im)));
+            }
+        }
+    }
+}
+
+fn standard<T: Clone>(a: &ArrayD<T>) -> std::borrow::Cow<'_, [T]> {
+    match a.as_slice() {
+        Some(s) => std::borrow::Cow::Borrowed(s),
+        None => std::borrow::Cow::Owned(a.iter().cloned().collect()),
+    }
 }
 
 /// Length of axis `a` as the values have it (the coordinates should agree; the values decide).
@@ -114,26 +179,6 @@ fn value_columns(array: &LabelledArray, pivot: Option<usize>) -> Vec<String> {
         }
     }
     names
-}
-
-/// The text cells of one element.
-fn value_cells(values: &Values, index: &[usize]) -> Vec<String> {
-    match values {
-        Values::Real(a) => vec![real_at(a, index)],
-        Values::Complex(a) => complex_at(a, index),
-    }
-}
-
-fn real_at(a: &ArrayD<f32>, index: &[usize]) -> String {
-    a.get(IxDyn(index))
-        .map_or_else(|| "n/a".into(), |&x| number_text(f64::from(x)))
-}
-
-fn complex_at(a: &ArrayD<Complex32>, index: &[usize]) -> Vec<String> {
-    match a.get(IxDyn(index)) {
-        Some(z) => vec![number_text(z.re.into()), number_text(z.im.into())],
-        None => vec!["n/a".into(), "n/a".into()],
-    }
 }
 
 /// Calls `f` with every index of `shape` in row-major order (once with `[]` for a 0-d shape).
@@ -163,7 +208,7 @@ fn for_each_index(shape: &[usize], mut f: impl FnMut(&[usize])) {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use ndarray::ArrayD;
+    use ndarray::{ArrayD, IxDyn};
 
     fn labels(v: &[&str]) -> Coord {
         Coord::Labels(v.iter().map(|s| s.to_string()).collect())
@@ -239,5 +284,107 @@ mod tests {
             "condition\ttime\tvalue\ncue left\t-0.5\t0.5\ncue left\t0.25\t-1\n\
              B\t-0.5\t2\nB\t0.25\t1e-9\n"
         );
+    }
+
+    /// The table as the previous writer built it, cell by cell (`coord_text` for every
+    /// coordinate of every row, `number_text` of `get(index)` for every value): the oracle of
+    /// the fast writer.
+    fn plain_tsv(array: &LabelledArray) -> String {
+        let layout = &array.layout;
+        let pivot = layout.dims.iter().position(|d| d == PIVOT_AXIS);
+        let row_axes: Vec<usize> = (0..layout.dims.len())
+            .filter(|&a| Some(a) != pivot)
+            .collect();
+        let mut header: Vec<String> = row_axes.iter().map(|&a| layout.dims[a].clone()).collect();
+        header.extend(value_columns(array, pivot));
+        let mut out = format!("{}\n", header.join("\t"));
+        let row_shape: Vec<usize> = row_axes.iter().map(|&a| axis_len(array, a)).collect();
+        let pivot_len = pivot.map_or(1, |p| axis_len(array, p));
+        for_each_index(&row_shape, |row| {
+            let mut cells: Vec<String> = row_axes
+                .iter()
+                .zip(row)
+                .map(|(&a, &i)| coord_text(&layout.coords[a], i))
+                .collect();
+            for k in 0..pivot_len {
+                let mut full = row.to_vec();
+                if let Some(p) = pivot {
+                    full.insert(p, k);
+                }
+                let at = ndarray::IxDyn(&full);
+                match &array.values {
+                    Values::Real(a) => cells.push(number_text(f64::from(a[&at]))),
+                    Values::Complex(a) => {
+                        cells.push(number_text(a[&at].re.into()));
+                        cells.push(number_text(a[&at].im.into()));
+                    }
+                }
+            }
+            out.push_str(&cells.join("\t"));
+            out.push('\n');
+        });
+        out
+    }
+
+    #[test]
+    fn the_fast_writer_equals_the_cell_by_cell_one() {
+        for (pivot_at, complex, transposed) in [
+            (Some(0), false, false),
+            (Some(2), false, false),
+            (None, true, false),
+            (Some(1), true, false),
+            (Some(0), false, true),
+        ] {
+            let shape = [3usize, 4, 3, 2];
+            let mut dims: Vec<String> = ["condition", "pair", "band", "time"]
+                .map(String::from)
+                .to_vec();
+            let mut coords = vec![
+                labels(&["A", "B", "C"]),
+                Coord::Pairs(vec![
+                    ["F3".into(), "P4".into()],
+                    ["Fz".into(), "Cz".into()],
+                    ["a".into(), "b".into()],
+                    ["c".into(), "d".into()],
+                ]),
+                labels(&["theta", "alpha", "beta"]),
+                Coord::Numbers(vec![-0.25, 1e-9]),
+            ];
+            if let Some(p) = pivot_at {
+                dims[p] = PIVOT_AXIS.into();
+                coords[p] = labels(&["mean", "sem", "n", "x"][..shape[p]]);
+            }
+            let layout = Layout {
+                dims,
+                coords,
+                units: "1".into(),
+                complex,
+                ..Layout::default()
+            };
+            let real = ArrayD::from_shape_fn(IxDyn(&shape), |i| {
+                let k = (i[0] * 1000 + i[1] * 100 + i[2] * 10 + i[3]) as f32;
+                if k as usize % 7 == 3 {
+                    f32::NAN
+                } else {
+                    k * 1.37e-6 - 0.01
+                }
+            });
+            let values = if complex {
+                Values::Complex(real.mapv(|x| Complex32::new(x, -2.5 * x)))
+            } else if transposed {
+                // A non-standard memory order (values equal, laid out differently).
+                let mut t = ArrayD::<f32>::zeros(IxDyn(&[2, 3, 4, 3]));
+                t.assign(&real.view().reversed_axes());
+                Values::Real(t.reversed_axes())
+            } else {
+                Values::Real(real)
+            };
+            let array = LabelledArray::checked(layout, values).unwrap();
+            assert_eq!(
+                tidy_tsv(&array),
+                plain_tsv(&array),
+                "{pivot_at:?} {complex}"
+            );
+        }
     }
 }

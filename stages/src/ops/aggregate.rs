@@ -19,6 +19,7 @@
 use std::collections::BTreeMap;
 
 use ndarray::{concatenate, ArrayD, ArrayViewD, Axis, Dimension, IxDyn, Zip};
+use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 use serde_json::json;
 
@@ -239,8 +240,17 @@ fn add_table_meta(p: &AggregateParams, meta: &mut Meta) {
     }
 }
 
-/// The mean along `axis` over each index group, in f64, in group order.
-fn reduce_axis<T: Copy + Into<f64>>(input: &ArrayViewD<T>, r: &Reduction) -> ArrayD<f64> {
+/// The mean along `axis` over each index group, in f64, in group order. Every output value is
+/// the sum of its points in index order, divided by their count, however the array is laid out.
+fn reduce_axis<T: Copy + Into<f64> + Sync>(input: &ArrayViewD<T>, r: &Reduction) -> ArrayD<f64> {
+    match input.as_slice() {
+        Some(data) if !data.is_empty() => reduce_contiguous(data, input.shape(), r),
+        _ => reduce_axis_any(input, r),
+    }
+}
+
+/// [`reduce_axis`] for any memory order.
+fn reduce_axis_any<T: Copy + Into<f64>>(input: &ArrayViewD<T>, r: &Reduction) -> ArrayD<f64> {
     let axis = Axis(r.axis);
     let mut shape = input.shape().to_vec();
     shape.remove(r.axis);
@@ -262,6 +272,40 @@ fn reduce_axis<T: Copy + Into<f64>>(input: &ArrayViewD<T>, r: &Reduction) -> Arr
     let views: Vec<_> = parts.iter().map(|a| a.view()).collect();
     // Equal shapes but the reduced axis: concatenation cannot fail.
     concatenate(axis, &views).unwrap_or_else(|_| ArrayD::zeros(IxDyn(&[0])))
+}
+
+/// [`reduce_axis`] for a standard-layout array seen as `[outer, axis, inner]`: contiguous rows
+/// of `inner` values are summed, in parallel over `outer` (each output value is still summed in
+/// index order by one task, so the split does not change a bit).
+fn reduce_contiguous<T: Copy + Into<f64> + Sync>(
+    data: &[T],
+    shape: &[usize],
+    r: &Reduction,
+) -> ArrayD<f64> {
+    let len = shape[r.axis];
+    let inner: usize = shape[r.axis + 1..].iter().product();
+    let groups = r.groups.len();
+    let mut out_shape = shape.to_vec();
+    out_shape[r.axis] = groups;
+    let mut out = vec![0f64; data.len() / len.max(1) * groups];
+    if inner > 0 && len > 0 {
+        out.par_chunks_mut(groups * inner)
+            .zip(data.par_chunks(len * inner))
+            .for_each(|(out, block)| {
+                for (acc, (_, points)) in out.chunks_exact_mut(inner).zip(&r.groups) {
+                    for &i in points {
+                        let row = &block[i * inner..(i + 1) * inner];
+                        for (a, &v) in acc.iter_mut().zip(row) {
+                            *a += v.into();
+                        }
+                    }
+                    let n = points.len() as f64;
+                    acc.iter_mut().for_each(|a| *a /= n);
+                }
+            });
+    }
+    // The length follows from the shape: this cannot fail.
+    ArrayD::from_shape_vec(IxDyn(&out_shape), out).unwrap_or_else(|_| unreachable!())
 }
 
 /// One subject's means: the reductions applied in turn (means of means over rectangular groups
@@ -408,6 +452,46 @@ pub fn mean_sem_n(values: impl Iterator<Item = f64>) -> [f64; 3] {
 
 /// The group array from the per-subject means (each of the common per-subject shape).
 fn group_values(per_subject: &[ArrayD<f64>], layout: &Layout) -> ArrayD<f32> {
+    let shape = layout.shape();
+    let s = per_subject.len();
+    let rest: usize = shape.iter().skip(2).product();
+    let slices: Option<Vec<&[f64]>> = per_subject
+        .iter()
+        .map(|a| a.as_slice().filter(|v| v.len() == rest))
+        .collect();
+    match slices {
+        Some(slices) if shape.len() >= 2 && shape[0] == 3 && shape[1] == s + 1 => {
+            group_values_contiguous(&slices, &shape, rest)
+        }
+        _ => group_values_any(per_subject, layout),
+    }
+}
+
+/// [`group_values`] over flat per-subject values: the same cells, written in memory order.
+fn group_values_contiguous(slices: &[&[f64]], shape: &[usize], rest: usize) -> ArrayD<f32> {
+    let s = slices.len();
+    let mut out = vec![0f32; 3 * (s + 1) * rest];
+    let at = |stat: usize, subject: usize, r: usize| (stat * (s + 1) + subject) * rest + r;
+    for (k, values) in slices.iter().enumerate() {
+        for (r, &v) in values.iter().enumerate() {
+            let cell = [v, f64::NAN, if v.is_finite() { 1.0 } else { 0.0 }];
+            for (stat, c) in cell.iter().enumerate() {
+                out[at(stat, k, r)] = *c as f32;
+            }
+        }
+    }
+    for r in 0..rest {
+        let cell = mean_sem_n(slices.iter().map(|v| v[r]));
+        for (stat, c) in cell.iter().enumerate() {
+            out[at(stat, s, r)] = *c as f32;
+        }
+    }
+    // The length follows from the shape: this cannot fail.
+    ArrayD::from_shape_vec(IxDyn(shape), out).unwrap_or_else(|_| unreachable!())
+}
+
+/// [`group_values`] for per-subject arrays of any memory order.
+fn group_values_any(per_subject: &[ArrayD<f64>], layout: &Layout) -> ArrayD<f32> {
     let s = per_subject.len();
     let value = |k: usize, rest: &[usize]| -> f64 {
         per_subject
@@ -428,22 +512,28 @@ fn group_values(per_subject: &[ArrayD<f64>], layout: &Layout) -> ArrayD<f32> {
     })
 }
 
-fn run_group(
-    p: &AggregateParams,
-    inputs: &[Input<'_>],
-    notes: &mut Notes,
-) -> Result<LabelledArray, StageError> {
-    let ids = subject_ids(inputs.iter().map(|i| i.subject))?;
-    let layouts: Vec<(&str, &Layout)> = ids
+/// One subject's means (bands, windows, pair groups), as stored in its row of the output.
+fn run_one(p: &AggregateParams, input: &LabelledArray) -> Result<LabelledArray, StageError> {
+    let plan = plan_one(p, &input.layout)?;
+    let values = reduce_all(input.real_values()?, &plan.reductions);
+    LabelledArray::real(plan.layout, values.mapv(|v| v as f32))
+}
+
+/// The group output from every subject's [`run_one`] result: the subject rows are those
+/// values, and the group statistics are taken over them (so the group row is exactly the
+/// mean of the rows shown beside it).
+fn join_group(prepared: &[Input<'_>], notes: &mut Notes) -> Result<LabelledArray, StageError> {
+    let ids = subject_ids(prepared.iter().map(|i| i.subject))?;
+    let (Some(first_id), Some(first)) = (ids.first(), prepared.first()) else {
+        return Err(StageError::data("aggregate over subjects got no subjects"));
+    };
+    for (id, i) in ids.iter().zip(prepared).skip(1) {
+        compare_layouts(first_id, &first.array.layout, id, &i.array.layout)?;
+    }
+    let layout = group_layout(&first.array.layout, &ids);
+    let per_subject: Vec<ArrayD<f64>> = prepared
         .iter()
-        .zip(inputs)
-        .map(|(id, i)| (*id, &i.array.layout))
-        .collect();
-    let (plans, layout) = plan_subjects(p, &layouts)?;
-    let per_subject: Vec<ArrayD<f64>> = inputs
-        .iter()
-        .zip(&plans)
-        .map(|(i, plan)| Ok(reduce_all(i.array.real_values()?, &plan.reductions)))
+        .map(|i| Ok(i.array.real_values()?.mapv(f64::from)))
         .collect::<Result<_, StageError>>()?;
     if ids.len() < 2 {
         notes.warn(format!(
@@ -458,7 +548,8 @@ fn run_group(
 impl Op for Aggregate {
     type Params = AggregateParams;
     const NAME: &'static str = "aggregate";
-    const VERSION: u32 = 1;
+    // 2: group statistics over the f32 subject rows as stored (were: over their f64 means).
+    const VERSION: u32 = 2;
 
     fn check(p: &Self::Params) -> Result<(), StageError> {
         for (field, ranges) in [("bands", &p.bands), ("windows", &p.windows)] {
@@ -489,13 +580,37 @@ impl Op for Aggregate {
         inputs: &[Input<'_>],
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError> {
-        if Self::joins_subjects(p) {
-            return run_group(p, inputs, notes);
+        if !Self::joins_subjects(p) {
+            return run_one(p, single(inputs)?.array);
         }
-        let input = single(inputs)?.array;
-        let plan = plan_one(p, &input.layout)?;
-        let values = reduce_all(input.real_values()?, &plan.reductions);
-        LabelledArray::real(plan.layout, values.mapv(|v| v as f32))
+        let prepared: Vec<LabelledArray> = inputs
+            .iter()
+            .map(|i| Self::prepare(p, i).unwrap_or_else(|| run_one(p, i.array)))
+            .collect::<Result<_, _>>()?;
+        let prepared: Vec<Input<'_>> = inputs
+            .iter()
+            .zip(&prepared)
+            .map(|(i, array)| Input { array, ..*i })
+            .collect();
+        join_group(&prepared, notes)
+    }
+
+    /// Over subjects, each subject's means are taken on their own, so the runner need not hold
+    /// every subject's (large) input at once.
+    fn prepare(p: &Self::Params, input: &Input<'_>) -> Option<Result<LabelledArray, StageError>> {
+        let id = input.subject.unwrap_or("?");
+        Self::joins_subjects(p).then(|| run_one(p, input.array).map_err(|e| with_subject(e, id)))
+    }
+
+    fn join(
+        p: &Self::Params,
+        prepared: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        if !Self::joins_subjects(p) {
+            return Self::run(p, prepared, notes);
+        }
+        join_group(prepared, notes)
     }
 }
 
@@ -862,5 +977,56 @@ mod tests {
         assert!((s - 1.0 / 3f64.sqrt()).abs() < 1e-15);
         let [m, s, n] = mean_sem_n([f64::NAN].into_iter());
         assert!(m.is_nan() && s.is_nan() && n == 0.0);
+    }
+
+    /// The contiguous reduction against the general one (a plain per-index accumulation),
+    /// bit for bit, over several shapes, axes, groups and seeds; and the flat group statistics
+    /// against the index-by-index ones.
+    #[test]
+    fn contiguous_reductions_equal_the_general_ones_bit_for_bit() {
+        use rand::{Rng, SeedableRng};
+        for (seed, shape) in [vec![4usize, 9], vec![2, 3, 5, 7, 6], vec![1, 30, 1]]
+            .into_iter()
+            .enumerate()
+        {
+            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed as u64 + 10);
+            let len: usize = shape.iter().product();
+            let data: Vec<f32> = (0..len).map(|_| rng.gen_range(-1.0..1.0)).collect();
+            let values = ArrayD::from_shape_vec(IxDyn(&shape), data).unwrap();
+            for axis in 0..shape.len() {
+                let n = shape[axis];
+                let r = Reduction {
+                    axis,
+                    new_name: "band",
+                    groups: vec![
+                        ("a".into(), (0..n.div_ceil(2)).collect()),
+                        ("b".into(), (n / 2..n).collect()),
+                        ("c".into(), vec![n - 1]),
+                    ],
+                };
+                let fast = reduce_axis(&values.view(), &r);
+                let plain = reduce_axis_any(&values.view(), &r);
+                assert_eq!(fast.shape(), plain.shape());
+                let bits = |a: &ArrayD<f64>| a.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+                assert_eq!(bits(&fast), bits(&plain), "{shape:?} axis {axis}");
+            }
+            let subjects: Vec<ArrayD<f64>> = (0..3)
+                .map(|k| values.mapv(|v| f64::from(v) * (k as f64 + 1.0)))
+                .collect();
+            let mut layout = Layout {
+                dims: (0..shape.len()).map(|a| format!("d{a}")).collect(),
+                coords: shape
+                    .iter()
+                    .map(|&n| Coord::Numbers((0..n).map(|i| i as f64).collect()))
+                    .collect(),
+                units: "1".into(),
+                ..Layout::default()
+            };
+            layout = group_layout(&layout, &["1", "2", "3"]);
+            let fast = group_values(&subjects, &layout);
+            let plain = group_values_any(&subjects, &layout);
+            let bits = |a: &ArrayD<f32>| a.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&fast), bits(&plain));
+        }
     }
 }

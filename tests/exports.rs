@@ -1,0 +1,276 @@
+//! Exports on reruns (issue 7): a rerun that changes nothing rewrites no exported file; an
+//! exported file that was edited or deleted is written again; and the object files the store
+//! streams from an array's memory are byte for byte the NPY encoding of that array (numpy's NPY
+//! format 1.0 as its specification describes it, and the encoder the store used before).
+
+mod common;
+
+use std::collections::BTreeMap;
+use std::os::unix::fs::MetadataExt;
+use std::path::{Path, PathBuf};
+
+use common::*;
+use ndarray::{ArrayD, IxDyn, ShapeBuilder};
+use num_complex::Complex32;
+use phasewise::session::{self, Env, Options};
+use phasewise::sources::RecordingReader;
+use phasewise::store::{npy_bytes, Store};
+use phasewise_stages::{Coord, LabelledArray, Layout, Notes, Values};
+
+/// (mtime ns, inode, size) of every file under the output folder but the manifest, which
+/// records the run's start and end times and so is rewritten by every run.
+fn export_stats(output: &Path) -> BTreeMap<PathBuf, (i128, u64, u64)> {
+    let mut stats = BTreeMap::new();
+    let mut dirs = vec![output.to_path_buf()];
+    while let Some(dir) = dirs.pop() {
+        for entry in std::fs::read_dir(&dir).unwrap().flatten() {
+            let path = entry.path();
+            let meta = entry.metadata().unwrap();
+            if meta.is_dir() {
+                dirs.push(path);
+            } else if path.file_name().unwrap() != "manifest.json" {
+                let mtime =
+                    i128::from(meta.mtime()) * 1_000_000_000 + i128::from(meta.mtime_nsec());
+                stats.insert(path, (mtime, meta.ino(), meta.len()));
+            }
+        }
+    }
+    stats
+}
+
+/// The test chain with every per-subject stage exported as well.
+fn exported_chain() -> String {
+    CHAIN.replace(
+        "    params: { factor: 3 }",
+        "    export: true\n    params: { factor: 3 }",
+    )
+}
+
+#[test]
+fn a_no_op_rerun_rewrites_no_export() {
+    let p = Project::new(&["01", "02"]);
+    p.pipeline(&exported_chain());
+    p.run();
+    let before = export_stats(&p.output());
+    assert!(
+        before.keys().any(|f| f.ends_with("01/b.npy"))
+            && before.keys().any(|f| f.ends_with("group/g.npy")),
+        "{before:?}"
+    );
+    // Let a rewrite show in the modification time even on coarse clocks.
+    std::thread::sleep(std::time::Duration::from_millis(20));
+    let second = p.run();
+    assert_eq!(computed(&second), Vec::<String>::new());
+    assert_eq!(
+        export_stats(&p.output()),
+        before,
+        "a no-op rerun rewrote an export"
+    );
+    // The manifest still names every export.
+    assert_eq!(
+        unit(&second, "b", Some("01")).outputs[0].file.as_deref(),
+        Some("01/b.npy")
+    );
+}
+
+#[test]
+fn an_edited_or_deleted_export_is_written_again() {
+    let p = Project::new(&["01", "02"]);
+    p.pipeline(&exported_chain());
+    let first = p.run();
+    let out = p.output();
+    let npy = out.join("01/b.npy");
+    let json = out.join("group/g.json");
+    let good_npy = std::fs::read(&npy).unwrap();
+    let good_json = std::fs::read(&json).unwrap();
+    // The export is the cached object's bytes (DESIGN §6), a copy and not a link into the cache.
+    let (object, _) = p.object(&first, "b", Some("01"));
+    assert_eq!(std::fs::read(&object).unwrap(), good_npy);
+    assert_ne!(
+        std::fs::metadata(&object).unwrap().ino(),
+        std::fs::metadata(&npy).unwrap().ino()
+    );
+
+    // An edit of the same size (only the content differs) in an NPY; a deleted sidecar.
+    let mut edited = good_npy.clone();
+    let last = edited.len() - 1;
+    edited[last] ^= 0x10;
+    std::fs::write(&npy, &edited).unwrap();
+    std::fs::remove_file(&json).unwrap();
+    let second = p.run();
+    assert_eq!(
+        computed(&second),
+        Vec::<String>::new(),
+        "exports are rewritten, not recomputed"
+    );
+    assert_eq!(std::fs::read(&npy).unwrap(), good_npy);
+    assert_eq!(std::fs::read(&json).unwrap(), good_json);
+    // The cache was not touched by the edit.
+    assert_eq!(std::fs::read(&object).unwrap(), good_npy);
+
+    // A deleted NPY and an edited sidecar, this time of another subject.
+    let npy2 = out.join("02/b.npy");
+    let good_npy2 = std::fs::read(&npy2).unwrap();
+    std::fs::remove_file(&npy2).unwrap();
+    let json2 = out.join("01/b.json");
+    let good_json2 = std::fs::read(&json2).unwrap();
+    std::fs::write(&json2, b"{}").unwrap();
+    p.run();
+    assert_eq!(std::fs::read(&npy2).unwrap(), good_npy2);
+    assert_eq!(std::fs::read(&json2).unwrap(), good_json2);
+}
+
+#[test]
+fn an_edited_or_deleted_table_is_written_again() {
+    let p = Project::new(&["01", "02"]);
+    p.pipeline(
+        "name: t\ndata:\n  recordings: \"../data/sub-*/eeg/*_eeg.edf\"\n  events: sidecar\n\
+         output: ../results/t\nstages:\n  reref:\n    op: re-reference\n    input: recordings\n    \
+         params: { method: average }\n  group:\n    op: aggregate\n    input: reref\n    \
+         export: true\n    params: { over: subjects }\n",
+    );
+    let ops = phasewise_stages::registry::all();
+    let run = || {
+        let env = Env {
+            ops: &ops,
+            reader: &RecordingReader,
+        };
+        match session::run(&p.pipeline_path(), &Options::default(), env) {
+            Ok(s) => s.manifest,
+            Err(e) => panic!("run failed:\n{e}"),
+        }
+    };
+    run();
+    let table = p.dir().join("results/t/group.tsv");
+    let good = std::fs::read_to_string(&table).unwrap();
+    assert!(good.starts_with("subject\t"), "{good}");
+    let before = export_stats(&p.dir().join("results/t"));
+    std::thread::sleep(std::time::Duration::from_millis(20));
+    run();
+    assert_eq!(export_stats(&p.dir().join("results/t")), before);
+
+    std::fs::write(&table, good.replace("group", "grove")).unwrap();
+    run();
+    assert_eq!(std::fs::read_to_string(&table).unwrap(), good);
+    std::fs::remove_file(&table).unwrap();
+    let again = run();
+    assert_eq!(computed(&again), Vec::<String>::new());
+    assert_eq!(std::fs::read_to_string(&table).unwrap(), good);
+}
+
+fn layout_of(shape: &[usize], complex: bool) -> Layout {
+    Layout {
+        dims: (0..shape.len()).map(|a| format!("d{a}")).collect(),
+        coords: shape
+            .iter()
+            .map(|&n| Coord::Numbers((0..n).map(|i| i as f64).collect()))
+            .collect(),
+        units: "1".into(),
+        complex,
+        ..Layout::default()
+    }
+}
+
+/// numpy's NPY format 1.0, written out from its specification
+/// (numpy.lib.format: magic `\x93NUMPY`, version 1 0, a little-endian u16 header length, the
+/// header dict as a Python literal padded with spaces and ended by `\n` so that the data starts
+/// at a multiple of 64 bytes, then the values in C order, little-endian).
+fn npy_from_spec(shape: &[usize], descr: &str, data: &[u8]) -> Vec<u8> {
+    let dims: Vec<String> = shape.iter().map(|d| d.to_string()).collect();
+    let tuple = match dims.len() {
+        1 => format!("({},)", dims[0]),
+        _ => format!("({})", dims.join(", ")),
+    };
+    // The spec asks for a Python dict literal; numpy's own writer adds a trailing `, ` before
+    // the brace, the Rust encoder the cache has always used does not. Either is valid NPY; the
+    // cache keeps its bytes (and so its hashes), checked here.
+    let dict = format!("{{'descr': '{descr}', 'fortran_order': False, 'shape': {tuple}}}");
+    let mut header = dict.into_bytes();
+    let unpadded = 10 + header.len() + 1;
+    header.resize(header.len() + (64 - unpadded % 64) % 64, b' ');
+    header.push(b'\n');
+    let mut out = b"\x93NUMPY\x01\x00".to_vec();
+    out.extend_from_slice(&(header.len() as u16).to_le_bytes());
+    out.extend_from_slice(&header);
+    out.extend_from_slice(data);
+    out
+}
+
+#[test]
+fn stored_objects_are_the_npy_encoding_of_the_array() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::new(dir.path());
+    let shapes: [&[usize]; 5] = [&[7], &[2, 3], &[2, 3, 4, 5, 6], &[1, 1, 65], &[3, 0, 2]];
+    for (n, shape) in shapes.iter().enumerate() {
+        for complex in [false, true] {
+            let len: usize = shape.iter().product();
+            let reals: Vec<f32> = (0..len)
+                .map(|i| (i as f32 * 0.37 - 3.0).sin() * 1e3)
+                .collect();
+            let (values, descr, data) = if complex {
+                let z: Vec<Complex32> =
+                    reals.iter().map(|&x| Complex32::new(x, -0.5 * x)).collect();
+                let data: Vec<u8> = z
+                    .iter()
+                    .flat_map(|c| [c.re.to_le_bytes(), c.im.to_le_bytes()].concat())
+                    .collect();
+                let a = ArrayD::from_shape_vec(IxDyn(shape), z).unwrap();
+                (Values::Complex(a), "<c8", data)
+            } else {
+                let data: Vec<u8> = reals.iter().flat_map(|x| x.to_le_bytes()).collect();
+                let a = ArrayD::from_shape_vec(IxDyn(shape), reals.clone()).unwrap();
+                (Values::Real(a), "<f4", data)
+            };
+            let array = LabelledArray::checked(layout_of(shape, complex), values).unwrap();
+            let fp = phasewise::key::Fingerprint {
+                op: "test".into(),
+                op_version: 1,
+                params: serde_json::json!({ "n": n, "complex": complex }),
+                inputs: vec![],
+                subject: None,
+            };
+            let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
+            let (path, _) = store.object_paths(&record.key);
+            let written = std::fs::read(&path).unwrap();
+            let spec = npy_from_spec(shape, descr, &data);
+            assert_eq!(written, spec, "shape {shape:?}, {descr}: not numpy's NPY");
+            assert_eq!(
+                written,
+                npy_bytes(&array.values).unwrap(),
+                "differs from the old encoder"
+            );
+            assert_eq!(record.blake3, blake3::hash(&spec).to_hex().to_string());
+            assert_eq!(record.npy_size, spec.len() as u64);
+            // A cache: false record carries the same hash without writing the values.
+            let unstored = store.put(&array, &Notes::default(), &fp, false).unwrap();
+            assert_eq!(unstored.blake3, record.blake3);
+            // Loading reads the same values back.
+            let again = store.put(&array, &Notes::default(), &fp, true).unwrap();
+            let (back, _) = store.load(&again.key).unwrap();
+            assert_eq!(back, array);
+        }
+    }
+}
+
+#[test]
+fn a_fortran_order_array_is_stored_as_the_npy_encoder_writes_it_and_loads_back() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::new(dir.path());
+    let values: Vec<f32> = (0..24).map(|i| i as f32 - 7.5).collect();
+    let a = ArrayD::from_shape_vec(IxDyn(&[2, 3, 4]).f(), values).unwrap();
+    let array = LabelledArray::checked(layout_of(&[2, 3, 4], false), Values::Real(a)).unwrap();
+    let fp = phasewise::key::Fingerprint {
+        op: "test".into(),
+        op_version: 1,
+        params: serde_json::json!({ "fortran": true }),
+        inputs: vec![],
+        subject: None,
+    };
+    let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
+    let (path, _) = store.object_paths(&record.key);
+    let written = std::fs::read(&path).unwrap();
+    assert_eq!(written, npy_bytes(&array.values).unwrap());
+    assert!(String::from_utf8_lossy(&written[..64]).contains("'fortran_order': True"));
+    let (back, _) = store.load(&record.key).unwrap();
+    assert_eq!(back, array);
+}
