@@ -96,12 +96,14 @@ pub fn execute(
     let done: Vec<ChainResult> =
         pool.install(|| chains.par_iter().map(|c| ctx.run_chain(c)).collect());
     let mut merged = Merged::default();
-    for chain in done {
+    let mut prepared = HashMap::new();
+    for mut chain in done {
+        prepared.extend(std::mem::take(&mut chain.prepared));
         merged.absorb(chain);
     }
     if merged.failures.is_empty() {
         let group = units_where(study, |u| study.units[u].subject.is_none());
-        let chain = pool.install(|| ctx.run_chain(&group));
+        let chain = pool.install(|| ctx.run_chain_with(&group, prepared));
         merged.absorb(chain);
     }
     merged.finish(study)
@@ -122,6 +124,8 @@ struct Ctx<'a, 'o> {
 #[derive(Default)]
 struct ChainResult {
     results: BTreeMap<usize, UnitResult>,
+    /// Inputs of group units prepared where they were produced: (group unit, input unit).
+    prepared: HashMap<(usize, usize), Held>,
     warnings: Vec<(usize, String)>,
     failure: Option<UnitFailure>,
 }
@@ -183,6 +187,8 @@ type Held = (Arc<LabelledArray>, Vec<String>);
 struct Worker<'c, 'a, 'o> {
     ctx: &'c Ctx<'a, 'o>,
     memory: HashMap<UnitInput, Held>,
+    /// Inputs already prepared for a group unit (by the chains that produced them).
+    prepared: HashMap<(usize, usize), Held>,
     /// Consumers left in this chain, per array held.
     uses_left: HashMap<UnitInput, usize>,
     out: ChainResult,
@@ -190,9 +196,18 @@ struct Worker<'c, 'a, 'o> {
 
 impl Ctx<'_, '_> {
     fn run_chain(&self, chain: &[usize]) -> ChainResult {
+        self.run_chain_with(chain, HashMap::new())
+    }
+
+    fn run_chain_with(
+        &self,
+        chain: &[usize],
+        prepared: HashMap<(usize, usize), Held>,
+    ) -> ChainResult {
         let mut worker = Worker {
             ctx: self,
             memory: HashMap::new(),
+            prepared,
             uses_left: HashMap::new(),
             out: ChainResult::default(),
         };
@@ -229,11 +244,30 @@ impl Ctx<'_, '_> {
         if stage.cache || stage.export || self.plan.units[u].status == Status::Fresh {
             return false;
         }
+        if self.prepared_for(u).next().is_some() {
+            // Prepared here for its group consumer instead (see `Worker::prepare_for_groups`).
+            return false;
+        }
         let mut consumers = (0..study.units.len())
             .filter(|&c| study.units[c].inputs.contains(&UnitInput::Unit(u)))
             .peekable();
         consumers.peek().is_some()
             && consumers.all(|c| !chain.contains(&c) && self.plan.units[c].status != Status::Fresh)
+    }
+
+    /// The stale group units that consume subject unit `u` and prepare their inputs: `u` is
+    /// prepared for them in its own chain (in parallel with the other subjects), and only the
+    /// prepared (small) array is kept.
+    fn prepared_for(&self, u: usize) -> impl Iterator<Item = usize> + '_ {
+        let study = self.study;
+        let subject_unit = study.units[u].subject.is_some();
+        study.consumers[u].iter().copied().filter(move |&g| {
+            let stage = &study.pipeline.stages[study.units[g].stage];
+            subject_unit
+                && study.units[g].subject.is_none()
+                && self.plan.units[g].status != Status::Fresh
+                && stage.op.prepares(&stage.params)
+        })
     }
 }
 
@@ -278,12 +312,46 @@ impl Worker<'_, '_, '_> {
         } else {
             self.record_cached(u)?
         };
-        let stage = &self.study().pipeline.stages[self.study().units[u].stage];
+        let study = self.ctx.study;
+        let stage = &study.pipeline.stages[study.units[u].stage];
+        let groups: Vec<usize> = self.ctx.prepared_for(u).collect();
+        if !groups.is_empty() {
+            let whole = match &array {
+                Some(a) => a.clone(),
+                None => self.values(UnitInput::Unit(u))?.0,
+            };
+            self.prepare_for_groups(u, &whole, &groups)?;
+        }
         if stage.export {
             self.export(u, array)?;
         }
         if !self.uses_left.contains_key(&UnitInput::Unit(u)) {
             self.memory.remove(&UnitInput::Unit(u));
+        }
+        Ok(())
+    }
+
+    /// Prepare unit `u`'s array for each group unit in `groups` ([`Ctx::prepared_for`]).
+    fn prepare_for_groups(
+        &mut self,
+        u: usize,
+        whole: &LabelledArray,
+        groups: &[usize],
+    ) -> Result<(), UnitFailure> {
+        let study = self.ctx.study;
+        let input = Input {
+            stage: study.stage_name(u),
+            subject: study.subject(u),
+            array: whole,
+        };
+        for &g in groups {
+            let stage = &study.pipeline.stages[study.units[g].stage];
+            if let Some(result) = stage.op.prepare(&stage.params, &input) {
+                let small = result.map_err(|e| self.op_failure(g, &e))?;
+                self.out
+                    .prepared
+                    .insert((g, u), (Arc::new(small), Vec::new()));
+            }
         }
         Ok(())
     }
@@ -445,9 +513,15 @@ impl Worker<'_, '_, '_> {
         };
         // An op that prepares its inputs one by one gets each input prepared as soon as it is
         // loaded; the input itself is dropped before the next one is loaded.
-        let mut prepared = unit.inputs.len() > 1;
+        let mut prepared = unit.inputs.len() > 1 || !self.prepared.is_empty();
         let mut held = Vec::new();
         for &input in &unit.inputs {
+            if let UnitInput::Unit(i) = input {
+                if let Some(ready) = self.prepared.remove(&(u, i)) {
+                    held.push((input, ready));
+                    continue;
+                }
+            }
             let (array, warnings) = self.values(input)?;
             if prepared {
                 let (stage_name, subject) = origin(input);

@@ -143,6 +143,12 @@ pub trait Op: Send + Sync + 'static {
         )))
     }
 
+    /// True when [`Op::prepare`] gives `Some` for these params (so the runner may prepare each
+    /// input where it is produced).
+    fn prepares(_params: &Self::Params) -> bool {
+        false
+    }
+
     /// The per-input step of a join, if the op has one (`None`: the runner calls `run`).
     fn prepare(
         _params: &Self::Params,
@@ -203,6 +209,8 @@ pub trait DynOp: Send + Sync {
     ) -> Result<LabelledArray, StageError>;
     /// See [`Op::slices_along`]; false also when the params do not parse.
     fn slices_along(&self, params: &Value, axis: &str) -> bool;
+    /// See [`Op::prepares`]; false also when the params do not parse.
+    fn prepares(&self, params: &Value) -> bool;
     /// See [`Op::prepare`].
     fn prepare(
         &self,
@@ -288,6 +296,9 @@ impl<O: Op> DynOp for Registered<O> {
     }
     fn slices_along(&self, params: &Value, axis: &str) -> bool {
         parse_params(params).is_ok_and(|p| O::slices_along(&p, axis))
+    }
+    fn prepares(&self, params: &Value) -> bool {
+        parse_params(params).is_ok_and(|p| O::prepares(&p))
     }
     fn prepare(
         &self,

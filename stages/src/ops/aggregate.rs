@@ -595,6 +595,10 @@ impl Op for Aggregate {
         join_group(&prepared, notes)
     }
 
+    fn prepares(p: &Self::Params) -> bool {
+        Self::joins_subjects(p)
+    }
+
     /// Over subjects, each subject's means are taken on their own, so the runner need not hold
     /// every subject's (large) input at once.
     fn prepare(p: &Self::Params, input: &Input<'_>) -> Option<Result<LabelledArray, StageError>> {
