@@ -567,10 +567,23 @@ impl Worker<'_, '_, '_> {
         .map_err(|e| self.op_failure(u, &e))?;
         drop(inputs);
         drop(held);
+        self.store_result(u, array, &notes, started.elapsed().as_secs_f64())
+    }
+
+    /// Store a computed unit's output, keep it while the chain needs it, record its result.
+    fn store_result(
+        &mut self,
+        u: usize,
+        array: LabelledArray,
+        notes: &Notes,
+        seconds: f64,
+    ) -> Result<Arc<LabelledArray>, UnitFailure> {
+        let study = self.ctx.study;
+        let stage = &study.pipeline.stages[study.units[u].stage];
         let fingerprint = &study.fingerprints[u];
         let record = study
             .store
-            .put(&array, &notes, fingerprint, stage.cache)
+            .put(&array, notes, fingerprint, stage.cache)
             .map_err(|e| self.fail(u, e.to_string()))?;
         study.store.set_last(&study.last_id(u), fingerprint);
         let array = Arc::new(array);
@@ -584,7 +597,7 @@ impl Worker<'_, '_, '_> {
             UnitResult {
                 record,
                 computed: true,
-                seconds: started.elapsed().as_secs_f64(),
+                seconds,
                 export,
             },
         );
@@ -646,31 +659,8 @@ impl Worker<'_, '_, '_> {
                 export: None,
             },
         );
-        let array = streamed.output;
-        let stage = &study.pipeline.stages[study.units[u].stage];
-        let fingerprint = &study.fingerprints[u];
-        let record = study
-            .store
-            .put(&array, &streamed.consumer_notes, fingerprint, stage.cache)
-            .map_err(|e| self.fail(u, e.to_string()))?;
-        study.store.set_last(&study.last_id(u), fingerprint);
-        let array = Arc::new(array);
-        if self.uses_left.contains_key(&UnitInput::Unit(u)) {
-            self.memory
-                .insert(UnitInput::Unit(u), (array.clone(), Vec::new()));
-        }
-        let export = self.out.results.get(&u).and_then(|r| r.export.clone());
         let seconds = (started.elapsed().as_secs_f64() - streamed.producer_seconds).max(0.0);
-        self.out.results.insert(
-            u,
-            UnitResult {
-                record,
-                computed: true,
-                seconds,
-                export,
-            },
-        );
-        Ok(array)
+        self.store_result(u, streamed.output, &streamed.consumer_notes, seconds)
     }
 
     /// Drop arrays whose last consumer in this chain has run.

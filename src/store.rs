@@ -455,12 +455,7 @@ impl Store {
             notes: notes.clone(),
             fingerprint: fingerprint.clone(),
         };
-        let json =
-            serde_json::to_vec_pretty(&record).map_err(|e| StoreError::Encode(e.to_string()))?;
-        atomic_write(&json_path, &json).map_err(|source| StoreError::Write {
-            path: json_path,
-            source,
-        })?;
+        write_record(&json_path, &record)?;
         Ok(record)
     }
 
@@ -489,12 +484,7 @@ impl Store {
             notes: notes.clone(),
             fingerprint: fingerprint.clone(),
         };
-        let json =
-            serde_json::to_vec_pretty(&record).map_err(|e| StoreError::Encode(e.to_string()))?;
-        atomic_write(&json_path, &json).map_err(|source| StoreError::Write {
-            path: json_path,
-            source,
-        })?;
+        write_record(&json_path, &record)?;
         Ok(record)
     }
 
@@ -547,6 +537,15 @@ pub fn last_id(pipeline: &str, stage: &str, subject: Option<&str>) -> String {
 struct LastRecord {
     format_version: u32,
     fingerprint: Fingerprint,
+}
+
+/// Write an object's record (atomically).
+fn write_record(json_path: &Path, record: &ObjectRecord) -> Result<(), StoreError> {
+    let json = serde_json::to_vec_pretty(record).map_err(|e| StoreError::Encode(e.to_string()))?;
+    atomic_write(json_path, &json).map_err(|source| StoreError::Write {
+        path: json_path.to_path_buf(),
+        source,
+    })
 }
 
 fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, String> {
