@@ -105,6 +105,17 @@ pub enum Lookup {
 #[derive(Clone, Debug)]
 pub struct Store {
     root: PathBuf,
+    /// Records already parsed in this process, with the size and modification time their file
+    /// had: a record read again (the plan, then the executor) is parsed once while its file is
+    /// unchanged. Records hold large coordinate lists, so parsing them is most of a no-op rerun.
+    parsed: std::sync::Arc<std::sync::Mutex<std::collections::HashMap<String, ParsedRecord>>>,
+}
+
+#[derive(Debug)]
+struct ParsedRecord {
+    len: u64,
+    modified: Option<std::time::SystemTime>,
+    record: ObjectRecord,
 }
 
 /// The NPY bytes of an array (the reference encoding; the store streams the same bytes through
@@ -298,7 +309,10 @@ const READ_CHUNK: usize = 1 << 21;
 impl Store {
     /// The store in `root` (created on first write).
     pub fn new(root: impl Into<PathBuf>) -> Self {
-        Store { root: root.into() }
+        Store {
+            root: root.into(),
+            parsed: Default::default(),
+        }
     }
 
     /// The cache folder.
@@ -319,16 +333,39 @@ impl Store {
     pub fn lookup(&self, key: &str) -> Lookup {
         let (npy, json) = self.object_paths(key);
         let npy_meta = std::fs::metadata(&npy).ok();
-        let bytes = match std::fs::read(&json) {
-            Ok(b) => b,
-            Err(_) if npy_meta.is_some() => {
-                return Lookup::Damaged("its record (.json) is missing".into())
+        let json_meta = std::fs::metadata(&json).ok();
+        let stamp = json_meta.as_ref().map(|m| (m.len(), m.modified().ok()));
+        let known = self.parsed.lock().ok().and_then(|memo| {
+            memo.get(key)
+                .filter(|p| Some((p.len, p.modified)) == stamp)
+                .map(|p| p.record.clone())
+        });
+        let record = match known {
+            Some(record) => record,
+            None => {
+                let bytes = match std::fs::read(&json) {
+                    Ok(b) => b,
+                    Err(_) if npy_meta.is_some() => {
+                        return Lookup::Damaged("its record (.json) is missing".into())
+                    }
+                    Err(_) => return Lookup::Absent,
+                };
+                let record = match parse_record(&bytes, key) {
+                    Ok(r) => r,
+                    Err(why) => return Lookup::Damaged(why),
+                };
+                if let (Some((len, modified)), Ok(mut memo)) = (stamp, self.parsed.lock()) {
+                    if len == bytes.len() as u64 {
+                        let parsed = ParsedRecord {
+                            len,
+                            modified,
+                            record: record.clone(),
+                        };
+                        memo.insert(key.to_string(), parsed);
+                    }
+                }
+                record
             }
-            Err(_) => return Lookup::Absent,
-        };
-        let record = match parse_record(&bytes, key) {
-            Ok(r) => r,
-            Err(why) => return Lookup::Damaged(why),
         };
         if record.stored {
             match npy_meta {
