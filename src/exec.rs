@@ -109,6 +109,33 @@ pub fn execute(
     merged.finish(study)
 }
 
+/// The stage and subject an input comes from.
+fn origin<'s>(study: &'s Study<'_>, input: UnitInput) -> (&'s str, Option<&'s str>) {
+    match input {
+        UnitInput::Source(s) => (SOURCE, Some(study.sources[s].subject.as_str())),
+        UnitInput::Unit(i) => (study.stage_name(i), study.subject(i)),
+    }
+}
+
+/// The op inputs for `held` arrays; their carried warnings are appended to `warnings`.
+fn as_inputs<'h>(
+    study: &'h Study<'_>,
+    held: &'h [(UnitInput, Held)],
+    warnings: &mut Vec<String>,
+) -> Vec<Input<'h>> {
+    held.iter()
+        .map(|(input, (array, carried))| {
+            warnings.extend(carried.iter().cloned());
+            let (stage, subject) = origin(study, *input);
+            Input {
+                stage,
+                subject,
+                array: array.as_ref(),
+            }
+        })
+        .collect()
+}
+
 fn units_where(study: &Study<'_>, keep: impl Fn(usize) -> bool) -> Vec<usize> {
     (0..study.units.len()).filter(|&u| keep(u)).collect()
 }
@@ -507,13 +534,10 @@ impl Worker<'_, '_, '_> {
         let started = Instant::now();
         let unit = &study.units[u];
         let stage = &study.pipeline.stages[unit.stage];
-        let origin = |input: UnitInput| match input {
-            UnitInput::Source(s) => (SOURCE, Some(study.sources[s].subject.as_str())),
-            UnitInput::Unit(i) => (study.stage_name(i), study.subject(i)),
-        };
-        // An op that prepares its inputs one by one gets each input prepared as soon as it is
-        // loaded; the input itself is dropped before the next one is loaded.
-        let mut prepared = unit.inputs.len() > 1 || !self.prepared.is_empty();
+        // An op that prepares its inputs gets each one prepared as soon as it is loaded (or
+        // finds it prepared by the chain that produced it); the whole input is dropped before
+        // the next one is loaded.
+        let prepared = stage.op.prepares(&stage.params);
         let mut held = Vec::new();
         for &input in &unit.inputs {
             if let UnitInput::Unit(i) = input {
@@ -523,41 +547,29 @@ impl Worker<'_, '_, '_> {
                 }
             }
             let (array, warnings) = self.values(input)?;
-            if prepared {
-                let (stage_name, subject) = origin(input);
-                let whole = Input {
-                    stage: stage_name,
-                    subject,
-                    array: array.as_ref(),
-                };
-                match stage.op.prepare(&stage.params, &whole) {
-                    Some(result) => {
-                        let small = result.map_err(|e| self.op_failure(u, &e))?;
-                        drop(array);
-                        if self.uses_left.get(&input) == Some(&1) {
-                            // This unit is its last use in the chain.
-                            self.memory.remove(&input);
-                        }
-                        held.push((input, (Arc::new(small), warnings)));
-                        continue;
-                    }
-                    None if held.is_empty() => prepared = false,
-                    None => return Err(self.fail(u, "internal: an input could not be prepared")),
-                }
+            if !prepared {
+                held.push((input, (array, warnings)));
+                continue;
             }
-            held.push((input, (array, warnings)));
-        }
-        let mut notes = Notes::default();
-        let mut inputs = Vec::new();
-        for (input, (array, warnings)) in &held {
-            notes.warnings.extend(warnings.iter().cloned());
-            let (stage, subject) = origin(*input);
-            inputs.push(Input {
-                stage,
+            let (stage_name, subject) = origin(study, input);
+            let whole = Input {
+                stage: stage_name,
                 subject,
                 array: array.as_ref(),
-            });
+            };
+            let Some(result) = stage.op.prepare(&stage.params, &whole) else {
+                return Err(self.fail(u, "internal: an input could not be prepared"));
+            };
+            let small = result.map_err(|e| self.op_failure(u, &e))?;
+            drop(array);
+            if self.uses_left.get(&input) == Some(&1) {
+                // This unit is its last use in the chain.
+                self.memory.remove(&input);
+            }
+            held.push((input, (Arc::new(small), warnings)));
         }
+        let mut notes = Notes::default();
+        let inputs = as_inputs(study, &held, &mut notes.warnings);
         tracing::info!(stage = %stage.name, subject = ?study.subject(u), "computing");
         let array = if prepared {
             stage.op.join(&stage.params, &inputs, &mut notes)
@@ -618,19 +630,7 @@ impl Worker<'_, '_, '_> {
             held.push((input, self.values(input)?));
         }
         let mut carried = Vec::new();
-        let mut inputs = Vec::new();
-        for (input, (array, warnings)) in &held {
-            carried.extend(warnings.iter().cloned());
-            let (stage, subject) = match *input {
-                UnitInput::Source(s) => (SOURCE, Some(study.sources[s].subject.as_str())),
-                UnitInput::Unit(i) => (study.stage_name(i), study.subject(i)),
-            };
-            inputs.push(Input {
-                stage,
-                subject,
-                array: array.as_ref(),
-            });
-        }
+        let inputs = as_inputs(study, &held, &mut carried);
         tracing::info!(stage = %study.stage_name(u), subject = ?study.subject(u), "computing in parts");
         let streamed =
             parts::run(study, (p, u), axis, &inputs).map_err(|(at, e)| self.op_failure(at, &e))?;

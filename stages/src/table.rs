@@ -65,10 +65,8 @@ pub fn position_text(layout: &Layout, index: &[usize]) -> String {
         .join(", ")
 }
 
-/// A tab-separated table with a header and one row per element: one column per axis holding its
-/// coordinate, then the value (`value`, or `real` and `imag` for complex arrays). A `statistic`
-/// axis is pivoted into one column per statistic. Rows follow the array's (row-major) order.
-pub fn tidy_tsv(array: &LabelledArray) -> String {
+/// The pivoted axis (if any), the axes that become row columns, and the header.
+fn columns(array: &LabelledArray) -> (Option<usize>, Vec<usize>, Vec<String>) {
     let layout = &array.layout;
     let pivot = layout.dims.iter().position(|d| d == PIVOT_AXIS);
     let row_axes: Vec<usize> = (0..layout.dims.len())
@@ -76,6 +74,15 @@ pub fn tidy_tsv(array: &LabelledArray) -> String {
         .collect();
     let mut header: Vec<String> = row_axes.iter().map(|&a| layout.dims[a].clone()).collect();
     header.extend(value_columns(array, pivot));
+    (pivot, row_axes, header)
+}
+
+/// A tab-separated table with a header and one row per element: one column per axis holding its
+/// coordinate, then the value (`value`, or `real` and `imag` for complex arrays). A `statistic`
+/// axis is pivoted into one column per statistic. Rows follow the array's (row-major) order.
+pub fn tidy_tsv(array: &LabelledArray) -> String {
+    let layout = &array.layout;
+    let (pivot, row_axes, header) = columns(array);
     let row_shape: Vec<usize> = row_axes.iter().map(|&a| axis_len(array, a)).collect();
     let pivot_len = pivot.map_or(1, |p| axis_len(array, p));
     // Each coordinate's text once, not once per row.
@@ -291,12 +298,7 @@ mod tests {
     /// the fast writer.
     fn plain_tsv(array: &LabelledArray) -> String {
         let layout = &array.layout;
-        let pivot = layout.dims.iter().position(|d| d == PIVOT_AXIS);
-        let row_axes: Vec<usize> = (0..layout.dims.len())
-            .filter(|&a| Some(a) != pivot)
-            .collect();
-        let mut header: Vec<String> = row_axes.iter().map(|&a| layout.dims[a].clone()).collect();
-        header.extend(value_columns(array, pivot));
+        let (pivot, row_axes, header) = columns(array);
         let mut out = format!("{}\n", header.join("\t"));
         let row_shape: Vec<usize> = row_axes.iter().map(|&a| axis_len(array, a)).collect();
         let pivot_len = pivot.map_or(1, |p| axis_len(array, p));
