@@ -26,6 +26,7 @@
 //! Research software: results are not a clinical measurement.
 #![deny(missing_docs)]
 
+pub mod alloc;
 pub mod cli;
 pub mod exec;
 pub mod graph;

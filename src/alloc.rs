@@ -1,0 +1,202 @@
+//! The process's memory allocator: large arrays in mappings of their own, backed by 2 MiB pages.
+//!
+//! A unit's arrays are tens to hundreds of MiB, allocated once and filled once. With the system
+//! allocator every one of them is a fresh mapping of 4 KiB pages, and profiles of a rerun that
+//! reads cached arrays showed most of its time in the kernel: a page fault (and, on writes to a
+//! zero page, a TLB shootdown across cores) per 4 KiB. [`LargePages`] gives each allocation of
+//! [`LARGE`] bytes or more its own anonymous mapping, aligned to 2 MiB and advised as a candidate
+//! for transparent huge pages (`MADV_HUGEPAGE`), so a 124 MiB array faults in 62 times instead
+//! of 31,744. Smaller allocations, other alignments and other systems go to [`System`]
+//! unchanged. Where the kernel declines huge pages (`transparent_hugepage` set to `never`) the
+//! mapping simply stays in 4 KiB pages: the advice changes speed, never results.
+//!
+//! A fresh anonymous mapping reads as zeros, so zeroed allocations cost nothing extra; growing
+//! one uses `mremap`, which moves page tables instead of copying bytes.
+
+use std::alloc::{GlobalAlloc, Layout, System};
+
+/// Allocations of at least this many bytes get a mapping of their own.
+pub const LARGE: usize = 4 << 20;
+
+#[cfg(target_os = "linux")]
+const HUGE_PAGE: usize = 2 << 20;
+
+/// The allocator: see the module documentation.
+pub struct LargePages;
+
+#[cfg(target_os = "linux")]
+fn ours(layout: Layout) -> bool {
+    layout.size() >= LARGE && layout.align() <= HUGE_PAGE
+}
+
+/// The length of the mapping that holds `size` bytes: whole huge pages.
+#[cfg(target_os = "linux")]
+fn mapped_len(size: usize) -> usize {
+    size.div_ceil(HUGE_PAGE) * HUGE_PAGE
+}
+
+/// A fresh zeroed mapping of `mapped_len(size)` bytes starting on a huge-page boundary, or null.
+#[cfg(target_os = "linux")]
+unsafe fn map(size: usize) -> *mut u8 {
+    let len = mapped_len(size);
+    // Map one huge page more than needed, then unmap the unaligned head and the tail.
+    let Some(padded) = len.checked_add(HUGE_PAGE) else {
+        return std::ptr::null_mut();
+    };
+    let raw = libc::mmap(
+        std::ptr::null_mut(),
+        padded,
+        libc::PROT_READ | libc::PROT_WRITE,
+        libc::MAP_PRIVATE | libc::MAP_ANONYMOUS,
+        -1,
+        0,
+    );
+    if raw == libc::MAP_FAILED {
+        return std::ptr::null_mut();
+    }
+    let start = raw as usize;
+    let aligned = start.next_multiple_of(HUGE_PAGE);
+    let head = aligned - start;
+    let tail = padded - head - len;
+    if head > 0 {
+        libc::munmap(raw, head);
+    }
+    if tail > 0 {
+        libc::munmap((aligned + len) as *mut libc::c_void, tail);
+    }
+    // Advice only: a kernel that refuses it leaves ordinary pages.
+    libc::madvise(aligned as *mut libc::c_void, len, libc::MADV_HUGEPAGE);
+    aligned as *mut u8
+}
+
+#[cfg(target_os = "linux")]
+unsafe impl GlobalAlloc for LargePages {
+    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
+        if ours(layout) {
+            map(layout.size())
+        } else {
+            System.alloc(layout)
+        }
+    }
+
+    unsafe fn alloc_zeroed(&self, layout: Layout) -> *mut u8 {
+        if ours(layout) {
+            map(layout.size()) // anonymous mappings read as zeros
+        } else {
+            System.alloc_zeroed(layout)
+        }
+    }
+
+    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
+        if ours(layout) {
+            libc::munmap(ptr as *mut libc::c_void, mapped_len(layout.size()));
+        } else {
+            System.dealloc(ptr, layout)
+        }
+    }
+
+    unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
+        let Ok(new_layout) = Layout::from_size_align(new_size, layout.align()) else {
+            return std::ptr::null_mut();
+        };
+        match (ours(layout), ours(new_layout)) {
+            (false, false) => System.realloc(ptr, layout, new_size),
+            (true, true) => {
+                let (old_len, new_len) = (mapped_len(layout.size()), mapped_len(new_size));
+                if old_len == new_len {
+                    return ptr;
+                }
+                let moved = libc::mremap(
+                    ptr as *mut libc::c_void,
+                    old_len,
+                    new_len,
+                    libc::MREMAP_MAYMOVE,
+                );
+                if moved == libc::MAP_FAILED {
+                    return std::ptr::null_mut();
+                }
+                // The page-table move keeps the advice, but a moved mapping may start off a
+                // huge-page boundary; it is still correct, only some of it in small pages.
+                moved as *mut u8
+            }
+            _ => {
+                let fresh = self.alloc(new_layout);
+                if !fresh.is_null() {
+                    std::ptr::copy_nonoverlapping(ptr, fresh, layout.size().min(new_size));
+                    self.dealloc(ptr, layout);
+                }
+                fresh
+            }
+        }
+    }
+}
+
+#[cfg(not(target_os = "linux"))]
+unsafe impl GlobalAlloc for LargePages {
+    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
+        System.alloc(layout)
+    }
+
+    unsafe fn alloc_zeroed(&self, layout: Layout) -> *mut u8 {
+        System.alloc_zeroed(layout)
+    }
+
+    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
+        System.dealloc(ptr, layout)
+    }
+
+    unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
+        System.realloc(ptr, layout, new_size)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // The test binary uses the system allocator; these call `LargePages` directly.
+
+    #[test]
+    fn large_blocks_are_zeroed_aligned_writable_and_grow_keeping_their_bytes() {
+        let a = LargePages;
+        let layout = Layout::from_size_align(LARGE + 12_345, 64).unwrap();
+        unsafe {
+            let p = a.alloc_zeroed(layout);
+            assert!(!p.is_null());
+            assert_eq!(p as usize % 64, 0);
+            let bytes = std::slice::from_raw_parts_mut(p, layout.size());
+            assert!(bytes.iter().all(|&b| b == 0));
+            for (i, b) in bytes.iter_mut().enumerate() {
+                *b = (i % 251) as u8;
+            }
+            // Grow across several huge pages, then shrink below the threshold.
+            let grown = a.realloc(p, layout, 3 * LARGE + 7);
+            assert!(!grown.is_null());
+            let kept = std::slice::from_raw_parts(grown, layout.size());
+            assert!(kept.iter().enumerate().all(|(i, &b)| b == (i % 251) as u8));
+            let big = Layout::from_size_align(3 * LARGE + 7, 64).unwrap();
+            let small = a.realloc(grown, big, 1000);
+            assert!(!small.is_null());
+            let kept = std::slice::from_raw_parts(small, 1000);
+            assert!(kept.iter().enumerate().all(|(i, &b)| b == (i % 251) as u8));
+            a.dealloc(small, Layout::from_size_align(1000, 64).unwrap());
+        }
+    }
+
+    #[test]
+    fn small_blocks_round_trip_through_the_system_allocator() {
+        let a = LargePages;
+        let layout = Layout::from_size_align(100, 8).unwrap();
+        unsafe {
+            let p = a.alloc(layout);
+            assert!(!p.is_null());
+            std::ptr::write_bytes(p, 7, 100);
+            let grown = a.realloc(p, layout, LARGE * 2);
+            assert!(!grown.is_null());
+            assert!(std::slice::from_raw_parts(grown, 100)
+                .iter()
+                .all(|&b| b == 7));
+            a.dealloc(grown, Layout::from_size_align(LARGE * 2, 8).unwrap());
+        }
+    }
+}
