@@ -12,6 +12,14 @@
 //!
 //! A fresh anonymous mapping reads as zeros, so zeroed allocations cost nothing extra; growing
 //! one uses `mremap`, which moves page tables instead of copying bytes.
+//!
+//! Freed mappings are kept in a small pool (at most [`POOL_BYTES`] in all) and handed to the
+//! next large allocation, cut or grown to its size: a chain allocates arrays of the same few
+//! sizes over and over (one per part, per subject), and a page the process already holds costs
+//! nothing to reuse, where a fresh one must be faulted in and cleared by the kernel — on a
+//! virtual machine, the first touch of guest memory was measured at 0.38 GB/s against 15 GB/s
+//! for memory touched before. The pool is small because what it holds counts in the process's
+//! resident memory.
 
 use std::alloc::{GlobalAlloc, Layout, System};
 
@@ -20,6 +28,77 @@ pub const LARGE: usize = 4 << 20;
 
 #[cfg(target_os = "linux")]
 const HUGE_PAGE: usize = 2 << 20;
+
+/// The most bytes of freed mappings kept for reuse.
+pub const POOL_BYTES: usize = 96 << 20;
+
+/// Freed mappings (address, mapped length), at most [`SLOTS`] of them.
+#[cfg(target_os = "linux")]
+struct Pool {
+    slots: [(usize, usize); SLOTS],
+    count: usize,
+    bytes: usize,
+}
+
+#[cfg(target_os = "linux")]
+const SLOTS: usize = 8;
+
+#[cfg(target_os = "linux")]
+static POOL: std::sync::Mutex<Pool> = std::sync::Mutex::new(Pool {
+    slots: [(0, 0); SLOTS],
+    count: 0,
+    bytes: 0,
+});
+
+#[cfg(target_os = "linux")]
+impl Pool {
+    /// The freed mapping that best serves `len` bytes: the smallest at least that long, else
+    /// the longest.
+    fn take(&mut self, len: usize) -> Option<(usize, usize)> {
+        let held = &self.slots[..self.count];
+        let fit = (0..held.len())
+            .filter(|&i| held[i].1 >= len)
+            .min_by_key(|&i| held[i].1);
+        let i = fit.or_else(|| (0..held.len()).max_by_key(|&i| held[i].1))?;
+        let slot = self.slots[i];
+        self.count -= 1;
+        self.slots[i] = self.slots[self.count];
+        self.bytes -= slot.1;
+        Some(slot)
+    }
+
+    /// Keep a freed mapping, or answer it back when the pool is full.
+    fn keep(&mut self, slot: (usize, usize)) -> Option<(usize, usize)> {
+        if self.count == SLOTS || self.bytes + slot.1 > POOL_BYTES {
+            return Some(slot);
+        }
+        self.slots[self.count] = slot;
+        self.count += 1;
+        self.bytes += slot.1;
+        None
+    }
+}
+
+/// A mapping of `mapped_len(size)` bytes from the pool (its first `kept` bytes hold old
+/// contents, the rest zeros), or `None`.
+#[cfg(target_os = "linux")]
+unsafe fn reuse(size: usize) -> Option<(*mut u8, usize)> {
+    let len = mapped_len(size);
+    let (ptr, held) = POOL.lock().ok()?.take(len)?;
+    if held > len {
+        libc::munmap((ptr + len) as *mut libc::c_void, held - len);
+        return Some((ptr as *mut u8, len));
+    }
+    if held == len {
+        return Some((ptr as *mut u8, len));
+    }
+    let grown = libc::mremap(ptr as *mut libc::c_void, held, len, libc::MREMAP_MAYMOVE);
+    if grown == libc::MAP_FAILED {
+        libc::munmap(ptr as *mut libc::c_void, held);
+        return None;
+    }
+    Some((grown as *mut u8, held))
+}
 
 /// The allocator: see the module documentation.
 pub struct LargePages;
@@ -72,26 +151,39 @@ unsafe fn map(size: usize) -> *mut u8 {
 #[cfg(target_os = "linux")]
 unsafe impl GlobalAlloc for LargePages {
     unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
-        if ours(layout) {
-            map(layout.size())
-        } else {
-            System.alloc(layout)
+        if !ours(layout) {
+            return System.alloc(layout);
+        }
+        match reuse(layout.size()) {
+            Some((ptr, _)) => ptr,
+            None => map(layout.size()),
         }
     }
 
     unsafe fn alloc_zeroed(&self, layout: Layout) -> *mut u8 {
-        if ours(layout) {
-            map(layout.size()) // anonymous mappings read as zeros
-        } else {
-            System.alloc_zeroed(layout)
+        if !ours(layout) {
+            return System.alloc_zeroed(layout);
+        }
+        match reuse(layout.size()) {
+            Some((ptr, kept)) => {
+                std::ptr::write_bytes(ptr, 0, kept.min(layout.size()));
+                ptr
+            }
+            None => map(layout.size()), // anonymous mappings read as zeros
         }
     }
 
     unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
-        if ours(layout) {
-            libc::munmap(ptr as *mut libc::c_void, mapped_len(layout.size()));
-        } else {
-            System.dealloc(ptr, layout)
+        if !ours(layout) {
+            return System.dealloc(ptr, layout);
+        }
+        let slot = (ptr as usize, mapped_len(layout.size()));
+        let back = match POOL.lock() {
+            Ok(mut pool) => pool.keep(slot),
+            Err(_) => Some(slot),
+        };
+        if let Some((ptr, len)) = back {
+            libc::munmap(ptr as *mut libc::c_void, len);
         }
     }
 
@@ -180,6 +272,28 @@ mod tests {
             let kept = std::slice::from_raw_parts(small, 1000);
             assert!(kept.iter().enumerate().all(|(i, &b)| b == (i % 251) as u8));
             a.dealloc(small, Layout::from_size_align(1000, 64).unwrap());
+        }
+    }
+
+    #[test]
+    fn a_reused_block_is_zeroed_when_asked_and_keeps_its_size() {
+        let a = LargePages;
+        let layout = Layout::from_size_align(LARGE + 3 * 4096, 8).unwrap();
+        for round in 0..4 {
+            unsafe {
+                let p = a.alloc(layout);
+                assert!(!p.is_null());
+                std::ptr::write_bytes(p, 0xab, layout.size());
+                a.dealloc(p, layout);
+                // The next block of this or another size may be the one just freed.
+                let bigger = Layout::from_size_align(layout.size() * (1 + round), 8).unwrap();
+                let q = a.alloc_zeroed(bigger);
+                assert!(!q.is_null());
+                let bytes = std::slice::from_raw_parts_mut(q, bigger.size());
+                assert!(bytes.iter().all(|&b| b == 0), "round {round}");
+                bytes.fill(1); // all of it is writable
+                a.dealloc(q, bigger);
+            }
         }
     }
 

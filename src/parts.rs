@@ -11,7 +11,7 @@
 //! The parts are fixed by the sizes alone ([`part_len`]), and both ops promise the same bits
 //! as whole runs, so outputs do not depend on whether a unit streamed.
 
-use phasewise_stages::{Input, InputLayout, LabelledArray, Layout, Notes, StageError};
+use phasewise_stages::{Input, InputLayout, Joining, LabelledArray, Layout, Notes, StageError};
 
 use crate::graph::UnitInput;
 use crate::study::Study;
@@ -116,6 +116,21 @@ pub fn run(
     let step = part_len(len, shape.iter().product::<usize>() * element);
     let (mut producer_notes, mut consumer_notes) = (Notes::default(), Notes::default());
     let mut producer_seconds = 0.0;
+    // The consumer's output, known in advance from the producer's whole layout, is filled part
+    // by part (each part dropped once copied); an op that cannot say its layout in advance has
+    // its parts kept and joined at the end.
+    let whole_input = [InputLayout {
+        stage: &producer.name,
+        subject: study.subject(p),
+        layout: &whole,
+    }];
+    let mut joining = match consumer.op.layout(&consumer.params, &whole_input) {
+        Ok(Some(out)) => {
+            let k = out.axis(axis).map_err(|e| (u, e))?;
+            Some(Joining::new(&out.shape(), k, out.complex))
+        }
+        _ => None,
+    };
     let mut parts = Vec::new();
     for start in (0..len).step_by(step) {
         let clock = std::time::Instant::now();
@@ -142,9 +157,16 @@ pub fn run(
             .run(&consumer.params, &[input], &mut notes)
             .map_err(|e| (u, e))?;
         absorb(&mut consumer_notes, notes);
-        parts.push(out);
+        match &mut joining {
+            Some(j) => j.push(&out).map_err(|e| (u, e))?,
+            None => parts.push(out),
+        }
     }
-    let output = LabelledArray::join(&parts, axis).map_err(|e| (u, e))?;
+    let output = match joining {
+        Some(j) => j.finish(),
+        None => LabelledArray::join(&parts, axis),
+    }
+    .map_err(|e| (u, e))?;
     Ok(Streamed {
         producer_dtype: if whole.complex { "<c8" } else { "<f4" },
         producer_shape: shape,

@@ -97,46 +97,91 @@ impl Coord {
     }
 }
 
-/// `ndarray::concatenate` in standard (row-major) memory order. `concatenate` itself lays the
-/// joined axis outermost in memory, so a join along an inner axis gave an array that neither the
-/// NPY writer nor the ops' contiguous fast paths could take whole, and was walked element by
-/// element (a profile of the benchmark chain found 12 % of its time there).
-fn concat_standard<T: Clone + Default>(
-    k: usize,
-    views: &[ndarray::ArrayViewD<'_, T>],
-) -> Result<ArrayD<T>, ndarray::ShapeError> {
-    let axis = ndarray::Axis(k);
-    let Some(first) = views.first() else {
-        return Err(ndarray::ShapeError::from_kind(
-            ndarray::ErrorKind::Unsupported,
-        ));
-    };
-    let mut shape = first.shape().to_vec();
-    if k >= shape.len() {
-        return Err(ndarray::ShapeError::from_kind(
-            ndarray::ErrorKind::OutOfBounds,
-        ));
-    }
-    shape[k] = 0;
-    for v in views {
-        let same = v.ndim() == shape.len()
-            && (0..shape.len()).all(|d| d == k || v.shape()[d] == first.shape()[d]);
-        if !same {
-            return Err(ndarray::ShapeError::from_kind(
-                ndarray::ErrorKind::IncompatibleShape,
-            ));
+/// The join of parts along one axis, built a part at a time into values allocated once, in
+/// row-major order. A streamed unit's consumer ([`crate::op`], "Parts") pushes each part's output
+/// as soon as it is made and drops it, so the parts and the whole are never all in memory.
+/// (`ndarray::concatenate` is not used: it lays the joined axis outermost in memory, so a join
+/// along an inner axis gave an array that neither the NPY writer nor the ops' contiguous fast
+/// paths could take whole, and was walked element by element — 12 % of the benchmark chain's
+/// time in one profile.)
+#[derive(Debug)]
+pub struct Joining {
+    axis: usize,
+    first: Option<Layout>,
+    coords: Vec<Coord>,
+    values: Values,
+    at: usize,
+}
+
+impl Joining {
+    /// Room for a join of shape `shape` along axis number `axis`.
+    pub fn new(shape: &[usize], axis: usize, complex: bool) -> Joining {
+        let shape = ndarray::IxDyn(shape);
+        let values = if complex {
+            Values::Complex(ArrayD::from_elem(shape, num_complex::Complex32::default()))
+        } else {
+            Values::Real(ArrayD::zeros(shape))
+        };
+        Joining {
+            axis,
+            first: None,
+            coords: Vec::new(),
+            values,
+            at: 0,
         }
-        shape[k] += v.len_of(axis);
     }
-    let mut out = ArrayD::<T>::from_elem(ndarray::IxDyn(&shape), T::default());
-    let mut at = 0;
-    for v in views {
-        let n = v.len_of(axis);
-        out.slice_axis_mut(axis, ndarray::Slice::from(at..at + n))
-            .assign(v);
-        at += n;
+
+    /// Copy the next part into place.
+    pub fn push(&mut self, part: &LabelledArray) -> Result<(), StageError> {
+        let k = self.axis;
+        let shape = self.values.shape().to_vec();
+        let fits = part.values.shape().len() == shape.len()
+            && (0..shape.len()).all(|d| d == k || part.values.shape()[d] == shape[d])
+            && self.at + part.values.shape().get(k).copied().unwrap_or(0) <= shape[k];
+        let same = self
+            .first
+            .as_ref()
+            .is_none_or(|f| f.dims == part.layout.dims && f.complex == part.layout.complex);
+        if !fits || !same {
+            return Err(StageError::data(format!(
+                "internal: a part of shape {:?} does not fit a join of shape {shape:?} at {}",
+                part.values.shape(),
+                self.at
+            )));
+        }
+        let n = part.values.shape()[k];
+        let place = ndarray::Slice::from(self.at..self.at + n);
+        match (&mut self.values, &part.values) {
+            (Values::Real(to), Values::Real(from)) => {
+                to.slice_axis_mut(ndarray::Axis(k), place).assign(from)
+            }
+            (Values::Complex(to), Values::Complex(from)) => {
+                to.slice_axis_mut(ndarray::Axis(k), place).assign(from)
+            }
+            _ => return Err(StageError::data("internal: parts to join differ in type")),
+        }
+        self.coords.push(part.layout.coords[k].clone());
+        if self.first.is_none() {
+            self.first = Some(part.layout.clone());
+        }
+        self.at += n;
+        Ok(())
     }
-    Ok(out)
+
+    /// The joined array: the first part's layout with the joined axis' coordinates.
+    pub fn finish(self) -> Result<LabelledArray, StageError> {
+        let (Some(mut layout), true) = (self.first, self.at == self.values.shape()[self.axis])
+        else {
+            return Err(StageError::data(format!(
+                "internal: a join of {} along its axis received {}",
+                self.values.shape()[self.axis],
+                self.at
+            )));
+        };
+        let coords: Vec<&Coord> = self.coords.iter().collect();
+        layout.coords[self.axis] = Coord::join(&coords)?;
+        LabelledArray::checked(layout, self.values)
+    }
 }
 
 /// One event of a continuous recording (from a BIDS events sidecar or EDF+ annotations).
@@ -328,35 +373,16 @@ impl LabelledArray {
             .first()
             .ok_or_else(|| StageError::data("internal: nothing to join"))?;
         let k = first.layout.axis(axis)?;
-        let mut coords = Vec::new();
+        let mut shape = first.values.shape().to_vec();
+        shape[k] = parts
+            .iter()
+            .map(|p| p.values.shape().get(k).copied().unwrap_or(0))
+            .sum();
+        let mut joining = Joining::new(&shape, k, first.layout.complex);
         for p in parts {
-            if p.layout.dims != first.layout.dims || p.layout.complex != first.layout.complex {
-                return Err(StageError::data(format!(
-                    "internal: parts to join along {axis} differ in dims or type"
-                )));
-            }
-            coords.push(&p.layout.coords[k]);
+            joining.push(p)?;
         }
-        let mut layout = first.layout.clone();
-        layout.coords[k] = Coord::join(&coords)?;
-        let joined = |e: ndarray::ShapeError| StageError::data(format!("internal: {e}"));
-        let values = match &first.values {
-            Values::Real(_) => {
-                let views: Result<Vec<_>, _> = parts
-                    .iter()
-                    .map(|p| p.real_values().map(|a| a.view()))
-                    .collect();
-                Values::Real(concat_standard(k, &views?).map_err(joined)?)
-            }
-            Values::Complex(_) => {
-                let views: Result<Vec<_>, _> = parts
-                    .iter()
-                    .map(|p| p.complex_values().map(|a| a.view()))
-                    .collect();
-                Values::Complex(concat_standard(k, &views?).map_err(joined)?)
-            }
-        };
-        Self::checked(layout, values)
+        joining.finish()
     }
 
     /// The real values, or an error when they are complex.
@@ -418,5 +444,17 @@ mod tests {
         let got = joined.real_values().unwrap();
         assert_eq!(got, &reference);
         assert!(got.is_standard_layout());
+
+        // Filled part by part: a part that does not fit, or a join left short, is refused.
+        let mut joining = Joining::new(&[2, 5, 3], 1, false);
+        joining.push(&parts[0]).unwrap();
+        assert!(joining.push(&whole).is_err(), "5 more along freq do not fit in 3");
+        joining.push(&parts[1]).unwrap();
+        assert!(joining.finish().is_err(), "2 of 5 entries are missing");
+        let mut joining = Joining::new(&[2, 5, 3], 1, false);
+        for p in &parts {
+            joining.push(p).unwrap();
+        }
+        assert_eq!(joining.finish().unwrap(), whole);
     }
 }

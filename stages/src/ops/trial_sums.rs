@@ -117,19 +117,38 @@ impl Planes {
         let mut unit = vec![Complex32::default(); times];
         for k in 0..n {
             let series = &series(k)[..times];
-            let at = |t: usize| ((t / LANES) * n + k) * LANES + t % LANES;
+            // Block `blk` of trial k starts at ((blk · n) + k) · LANES: one short contiguous run
+            // per block, copied lane by lane (no index arithmetic per element).
+            let runs = |plane_len: usize| {
+                (0..blocks(times)).map(move |blk| {
+                    let at = (blk * n + k) * LANES;
+                    let len = LANES.min(times - blk * LANES);
+                    debug_assert!(at + len <= plane_len);
+                    (blk * LANES, at, len)
+                })
+            };
             if needs.phasor {
                 // Converted in a loop of its own (it vectorises), then scattered into the lanes.
                 for (u, &z) in unit.iter_mut().zip(series) {
                     *u = polar(z).0;
                 }
-                for (t, u) in unit.iter().enumerate() {
-                    (self.unit_re[at(t)], self.unit_im[at(t)]) = (u.re, u.im);
+                for (from, at, len) in runs(self.unit_re.len()) {
+                    let src = &unit[from..from + len];
+                    let re = &mut self.unit_re[at..at + len];
+                    let im = &mut self.unit_im[at..at + len];
+                    for ((re, im), u) in re.iter_mut().zip(im.iter_mut()).zip(src) {
+                        (*re, *im) = (u.re, u.im);
+                    }
                 }
             }
             if needs.raw() {
-                for (t, z) in series.iter().enumerate() {
-                    (self.raw_re[at(t)], self.raw_im[at(t)]) = (z.re, z.im);
+                for (from, at, len) in runs(self.raw_re.len()) {
+                    let src = &series[from..from + len];
+                    let re = &mut self.raw_re[at..at + len];
+                    let im = &mut self.raw_im[at..at + len];
+                    for ((re, im), z) in re.iter_mut().zip(im.iter_mut()).zip(src) {
+                        (*re, *im) = (z.re, z.im);
+                    }
                 }
             }
             for (zero, z) in self.zero.iter_mut().zip(series) {
