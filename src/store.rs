@@ -3,7 +3,8 @@
 //! Layout under the cache folder:
 //! - `objects/<first two hex>/<key>.npy`: the values, in numpy's NPY format (f32 or complex64);
 //! - `objects/<first two hex>/<key>.json`: an [`ObjectRecord`] with format version, layout
-//!   (dims, coords, units, meta), shape, dtype, the NPY's size and blake3, the unit's notes
+//!   (dims, coords, units, meta; long numeric coordinates packed, see [`record_layout`]), shape,
+//!   dtype, the NPY's size and blake3, the unit's notes
 //!   (warnings and records such as epoch counts, so a cached unit still reports them) and its
 //!   fingerprint. Stages with `cache: false` get the record without the NPY;
 //! - `last/<id>.json`: the fingerprint last computed for a pipeline's stage × subject, read only
@@ -30,8 +31,9 @@ use serde::{Deserialize, Serialize};
 
 use crate::key::Fingerprint;
 
-/// Version of the object record format; records of any other version are stale.
-pub const FORMAT_VERSION: u32 = 1;
+/// Version of the object record format; records of any other version are stale. Version 2 packs
+/// long numeric coordinates ([`record_layout`]); version 1 listed every number.
+pub const FORMAT_VERSION: u32 = 2;
 const FORMAT: &str = "phasewise-object";
 
 /// Set to make the process abort after a temporary object file is written and before it is
@@ -65,7 +67,8 @@ pub struct ObjectRecord {
     pub key: String,
     /// False for `cache: false` stages: the record is kept, the values are not.
     pub stored: bool,
-    /// Dims, coords, units, meta.
+    /// Dims, coords, units, meta (long numeric coordinates packed, see [`record_layout`]).
+    #[serde(with = "record_layout")]
     pub layout: Layout,
     /// The shape of the values.
     pub shape: Vec<usize>,
@@ -684,9 +687,198 @@ pub(crate) fn write_then_rename<T>(
     Ok(Ok(value))
 }
 
+/// How an [`ObjectRecord`] writes its layout: as `Layout`'s own serialisation (the form exported
+/// sidecars use, which this module leaves alone), except that a numeric coordinate of more than
+/// [`PLAIN_NUMBERS`](record_layout::PLAIN_NUMBERS) entries, or holding a number JSON cannot write
+/// (NaN, ±infinity), is packed into one base64 string and read back bit for bit:
+///
+/// - `{"kind": "numbers_delta2", "values": "<base64>"}`: for each number, the second difference
+///   of the IEEE-754 bit patterns read as `u64` (`b[k] − 2·b[k−1] + b[k−2]`, wrapping, with
+///   `b[−1] = b[−2] = 0`), zigzag-mapped and written as an unsigned LEB128 varint. Evenly spaced
+///   axes (sample times, trial indices) give residuals of a few units, one byte each;
+/// - `{"kind": "numbers_f64le", "values": "<base64>"}`: the numbers' little-endian bytes, used
+///   when that is the shorter of the two (irregular numbers).
+///
+/// Everything is integer arithmetic on the bit patterns, so no rounding enters either way.
+/// Short coordinates stay plain lists, so records remain readable.
+pub mod record_layout {
+    use base64::Engine;
+    use phasewise_stages::{Coord, Layout, Meta};
+    use serde::{Deserialize, Deserializer, Serialize, Serializer};
+
+    /// Numeric coordinates up to this length are written as plain lists.
+    pub const PLAIN_NUMBERS: usize = 64;
+
+    const BASE64: base64::engine::GeneralPurpose = base64::engine::general_purpose::STANDARD;
+
+    #[derive(Serialize)]
+    #[serde(tag = "kind", content = "values", rename_all = "snake_case")]
+    enum CoordOut<'a> {
+        Labels(&'a [String]),
+        Numbers(&'a [f64]),
+        Pairs(&'a [[String; 2]]),
+        NumbersDelta2(String),
+        NumbersF64le(String),
+    }
+
+    #[derive(Deserialize)]
+    #[serde(tag = "kind", content = "values", rename_all = "snake_case")]
+    enum CoordIn {
+        Labels(Vec<String>),
+        Numbers(Vec<f64>),
+        Pairs(Vec<[String; 2]>),
+        NumbersDelta2(String),
+        NumbersF64le(String),
+    }
+
+    /// `Layout`'s fields, in its order and under its names.
+    #[derive(Serialize)]
+    struct LayoutOut<'a> {
+        dims: &'a [String],
+        coords: Vec<CoordOut<'a>>,
+        units: &'a str,
+        complex: bool,
+        meta: &'a Meta,
+    }
+
+    #[derive(Deserialize)]
+    struct LayoutIn {
+        dims: Vec<String>,
+        coords: Vec<CoordIn>,
+        units: String,
+        complex: bool,
+        meta: Meta,
+    }
+
+    /// `serde(with)`: write a layout with its long numeric coordinates packed.
+    pub fn serialize<S: Serializer>(layout: &Layout, serializer: S) -> Result<S::Ok, S::Error> {
+        LayoutOut {
+            dims: &layout.dims,
+            coords: layout.coords.iter().map(pack).collect(),
+            units: &layout.units,
+            complex: layout.complex,
+            meta: &layout.meta,
+        }
+        .serialize(serializer)
+    }
+
+    /// `serde(with)`: read a layout written by [`serialize`] (plain coordinates read as plain).
+    pub fn deserialize<'de, D: Deserializer<'de>>(deserializer: D) -> Result<Layout, D::Error> {
+        let raw = LayoutIn::deserialize(deserializer)?;
+        let coords = raw
+            .coords
+            .into_iter()
+            .map(unpack)
+            .collect::<Result<Vec<Coord>, String>>()
+            .map_err(serde::de::Error::custom)?;
+        Ok(Layout {
+            dims: raw.dims,
+            coords,
+            units: raw.units,
+            complex: raw.complex,
+            meta: raw.meta,
+        })
+    }
+
+    fn pack(coord: &Coord) -> CoordOut<'_> {
+        match coord {
+            Coord::Labels(v) => CoordOut::Labels(v),
+            Coord::Pairs(v) => CoordOut::Pairs(v),
+            Coord::Numbers(v) if v.len() <= PLAIN_NUMBERS && v.iter().all(|x| x.is_finite()) => {
+                CoordOut::Numbers(v)
+            }
+            Coord::Numbers(v) => {
+                let delta = delta2_bytes(v);
+                if delta.len() <= 8 * v.len() {
+                    CoordOut::NumbersDelta2(BASE64.encode(delta))
+                } else {
+                    let bytes: Vec<u8> = v.iter().flat_map(|x| x.to_le_bytes()).collect();
+                    CoordOut::NumbersF64le(BASE64.encode(bytes))
+                }
+            }
+        }
+    }
+
+    fn unpack(coord: CoordIn) -> Result<Coord, String> {
+        let decode = |text: &str| {
+            BASE64
+                .decode(text)
+                .map_err(|e| format!("a packed coordinate is not base64: {e}"))
+        };
+        Ok(match coord {
+            CoordIn::Labels(v) => Coord::Labels(v),
+            CoordIn::Numbers(v) => Coord::Numbers(v),
+            CoordIn::Pairs(v) => Coord::Pairs(v),
+            CoordIn::NumbersDelta2(text) => Coord::Numbers(from_delta2_bytes(&decode(&text)?)?),
+            CoordIn::NumbersF64le(text) => {
+                let bytes = decode(&text)?;
+                if bytes.len() % 8 != 0 {
+                    return Err(format!(
+                        "a packed coordinate has {} bytes, not a whole number of f64",
+                        bytes.len()
+                    ));
+                }
+                let numbers = bytes
+                    .chunks_exact(8)
+                    .map(|c| f64::from_le_bytes(c.try_into().unwrap_or([0; 8])))
+                    .collect();
+                Coord::Numbers(numbers)
+            }
+        })
+    }
+
+    /// The `numbers_delta2` bytes of `numbers`.
+    pub fn delta2_bytes(numbers: &[f64]) -> Vec<u8> {
+        let mut out = Vec::with_capacity(numbers.len() + 32);
+        let (mut b1, mut b2) = (0u64, 0u64);
+        for x in numbers {
+            let b = x.to_bits();
+            let residual = b.wrapping_sub(b1.wrapping_mul(2)).wrapping_add(b2) as i64;
+            let mut z = ((residual << 1) ^ (residual >> 63)) as u64;
+            while z >= 0x80 {
+                out.push((z as u8) | 0x80);
+                z >>= 7;
+            }
+            out.push(z as u8);
+            (b2, b1) = (b1, b);
+        }
+        out
+    }
+
+    /// The numbers of `numbers_delta2` bytes; an error for a truncated or over-long varint.
+    pub fn from_delta2_bytes(bytes: &[u8]) -> Result<Vec<f64>, String> {
+        let mut out = Vec::with_capacity(bytes.len());
+        let (mut b1, mut b2) = (0u64, 0u64);
+        let mut z = 0u64;
+        let mut shift = 0u32;
+        for &byte in bytes {
+            if shift > 63 || (shift == 63 && byte > 1) {
+                return Err("a packed coordinate has a varint longer than 64 bits".into());
+            }
+            z |= u64::from(byte & 0x7f) << shift;
+            if byte & 0x80 != 0 {
+                shift += 7;
+                continue;
+            }
+            let residual = ((z >> 1) as i64) ^ -((z & 1) as i64);
+            let b = (residual as u64)
+                .wrapping_add(b1.wrapping_mul(2))
+                .wrapping_sub(b2);
+            out.push(f64::from_bits(b));
+            (b2, b1) = (b1, b);
+            (z, shift) = (0, 0);
+        }
+        if shift != 0 {
+            return Err("a packed coordinate ends inside a varint".into());
+        }
+        Ok(out)
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+    use base64::Engine;
     use phasewise_stages::Coord;
     use serde_json::json;
 
@@ -744,8 +936,222 @@ mod tests {
         let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
         let (_, json_path) = store.object_paths(&record.key);
         let text = std::fs::read_to_string(&json_path).unwrap();
-        let newer = text.replace("\"format_version\": 1", "\"format_version\": 99");
+        let current = format!("\"format_version\": {FORMAT_VERSION}");
+        assert!(text.contains(&current));
+        let newer = text.replace(&current, "\"format_version\": 99");
         std::fs::write(&json_path, newer).unwrap();
         assert!(matches!(store.lookup(&record.key), Lookup::Damaged(_)));
+    }
+
+    /// Samples of the benchmark's continuous recordings: 148,750 times `k / 250` s.
+    fn long_time_axis() -> Vec<f64> {
+        (0..148_750).map(|k| k as f64 / 250.0).collect()
+    }
+
+    /// Numbers that text formatting or a packing could get wrong: signed zeros, subnormals,
+    /// 1/3, the extremes, infinities and NaNs with sign and payload.
+    fn awkward() -> Vec<f64> {
+        vec![
+            -0.0,
+            0.0,
+            f64::from_bits(1),
+            f64::MIN_POSITIVE / 3.0,
+            -f64::from_bits(0x000f_ffff_ffff_ffff),
+            f64::MIN_POSITIVE,
+            1.0 / 3.0,
+            -1.0 / 3.0,
+            f64::EPSILON,
+            f64::MAX,
+            f64::MIN,
+            f64::INFINITY,
+            f64::NEG_INFINITY,
+            f64::NAN,
+            -f64::NAN,
+            f64::from_bits(0x7ff0_0000_0000_0001),
+            f64::from_bits(0xfff8_dead_beef_0001),
+        ]
+    }
+
+    /// Numbers without a pattern (every bit pattern, NaNs included): a 64-bit LCG (Knuth's MMIX
+    /// constants).
+    fn irregular(n: usize) -> Vec<f64> {
+        let mut x = 0x9e37_79b9_7f4a_7c15u64;
+        (0..n)
+            .map(|_| {
+                x = x
+                    .wrapping_mul(6_364_136_223_846_793_005)
+                    .wrapping_add(1_442_695_040_888_963_407);
+                f64::from_bits(x)
+            })
+            .collect()
+    }
+
+    fn fingerprint(op: &str) -> Fingerprint {
+        Fingerprint {
+            op: op.into(),
+            op_version: 1,
+            params: json!({}),
+            inputs: vec![],
+            subject: None,
+        }
+    }
+
+    fn bits(coord: &Coord) -> Vec<u64> {
+        coord
+            .numbers()
+            .unwrap()
+            .iter()
+            .map(|x| x.to_bits())
+            .collect()
+    }
+
+    /// A layout as version 1 wrote it: `Layout`'s own serialisation, every number listed.
+    fn version_1_text(record: &ObjectRecord) -> Vec<u8> {
+        let mut value = serde_json::to_value(record).unwrap();
+        value["layout"] = serde_json::to_value(&record.layout).unwrap();
+        value["format_version"] = json!(1);
+        serde_json::to_vec_pretty(&value).unwrap()
+    }
+
+    fn kinds(json_path: &Path) -> Vec<String> {
+        let value: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(json_path).unwrap()).unwrap();
+        value["layout"]["coords"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| c["kind"].as_str().unwrap().to_string())
+            .collect()
+    }
+
+    #[test]
+    fn a_long_time_axis_round_trips_bit_exactly_in_a_third_of_the_size() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let times = long_time_axis();
+        let layout = Layout {
+            dims: vec!["channel".into(), "time".into()],
+            coords: vec![
+                Coord::Labels(vec!["Fz".into()]),
+                Coord::Numbers(times.clone()),
+            ],
+            units: "V".into(),
+            ..Layout::default()
+        };
+        let values = ArrayD::from_elem(vec![1, times.len()], 0.5f32);
+        let array = LabelledArray::real(layout, values).unwrap();
+        let record = store
+            .put(&array, &Notes::default(), &fingerprint("long"), true)
+            .unwrap();
+        let (_, json_path) = store.object_paths(&record.key);
+        assert_eq!(kinds(&json_path), ["labels", "numbers_delta2"]);
+        // A fresh store parses the file (no memo).
+        let (back, back_record) = Store::new(dir.path()).load(&record.key).unwrap();
+        assert_eq!(back_record, record);
+        let want: Vec<u64> = times.iter().map(|x| x.to_bits()).collect();
+        assert_eq!(bits(&back.layout.coords[1]), want);
+        assert_eq!(back, array);
+        let new_size = std::fs::metadata(&json_path).unwrap().len();
+        let old_size = version_1_text(&record).len() as u64;
+        assert!(
+            3 * new_size < old_size,
+            "record of {new_size} bytes, version 1 wrote {old_size}"
+        );
+    }
+
+    #[test]
+    fn awkward_numbers_round_trip_bit_exactly_packed_or_plain() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let finite: Vec<f64> = awkward().into_iter().filter(|x| x.is_finite()).collect();
+        let mut long_awkward = long_time_axis()[..1000].to_vec();
+        long_awkward.extend(awkward());
+        long_awkward.extend(long_time_axis()[..1000].iter().map(|t| -t));
+        let axes = [
+            // Short and finite: a plain list, read back through serde_json's float parsing.
+            (finite, "numbers"),
+            // Short but holding what JSON cannot write (NaN, infinities): packed.
+            (awkward(), "numbers_delta2"),
+            (long_awkward, "numbers_delta2"),
+            // Without a pattern the little-endian bytes are shorter.
+            (irregular(300), "numbers_f64le"),
+            (Vec::new(), "numbers"),
+            (vec![f64::NAN], "numbers_f64le"),
+        ];
+        for (i, (numbers, kind)) in axes.iter().enumerate() {
+            let layout = Layout {
+                dims: vec!["x".into()],
+                coords: vec![Coord::Numbers(numbers.clone())],
+                units: "1".into(),
+                ..Layout::default()
+            };
+            let fp = fingerprint(&format!("awkward {i}"));
+            let record = store
+                .put_streamed(&layout, "<f4", &Notes::default(), &fp)
+                .unwrap();
+            let (_, json_path) = store.object_paths(&record.key);
+            assert_eq!(kinds(&json_path), [*kind], "axis {i}");
+            let Lookup::Present(back) = Store::new(dir.path()).lookup(&record.key) else {
+                panic!("axis {i}: the record does not read back");
+            };
+            let want: Vec<u64> = numbers.iter().map(|x| x.to_bits()).collect();
+            assert_eq!(bits(&back.layout.coords[0]), want, "axis {i}");
+        }
+    }
+
+    #[test]
+    fn a_record_of_version_1_is_damaged_and_the_memo_does_not_hide_it() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let (mut array, fp) = sample();
+        let times = long_time_axis()[..200].to_vec();
+        array.layout.coords[1] = Coord::Numbers(times.clone());
+        array.values = Values::Real(ArrayD::from_elem(vec![1, times.len()], 1.0f32));
+        let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
+        assert!(matches!(store.lookup(&record.key), Lookup::Present(_)));
+        // The file is replaced by what version 1 wrote for the same object; the memo of the
+        // current record must not answer for it.
+        let (_, json_path) = store.object_paths(&record.key);
+        std::fs::write(&json_path, version_1_text(&record)).unwrap();
+        for store in [&store, &Store::new(dir.path())] {
+            match store.lookup(&record.key) {
+                Lookup::Damaged(why) => assert!(why.contains("format version Some(1)"), "{why}"),
+                other => panic!("a version 1 record was read as {other:?}"),
+            }
+            assert!(matches!(
+                store.load(&record.key),
+                Err(LoadError::Damaged(_))
+            ));
+        }
+    }
+
+    #[test]
+    fn a_garbled_packed_coordinate_is_damaged() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let layout = Layout {
+            dims: vec!["time".into()],
+            coords: vec![Coord::Numbers(long_time_axis()[..100].to_vec())],
+            ..Layout::default()
+        };
+        let record = store
+            .put_streamed(&layout, "<f4", &Notes::default(), &fingerprint("garbled"))
+            .unwrap();
+        let (_, json_path) = store.object_paths(&record.key);
+        let text = std::fs::read_to_string(&json_path).unwrap();
+        let packed = record_layout::delta2_bytes(layout.coords[0].numbers().unwrap());
+        let encoded = base64::engine::general_purpose::STANDARD.encode(&packed);
+        assert!(text.contains(&encoded));
+        // The last varint cut short; a varint of more than 64 bits; not base64 at all.
+        let cut = base64::engine::general_purpose::STANDARD
+            .encode([&packed[..packed.len() - 1], &[0x80][..]].concat());
+        let long = base64::engine::general_purpose::STANDARD.encode([0xffu8; 10]);
+        for bad in [cut, long, "not base64!".to_string()] {
+            std::fs::write(&json_path, text.replace(&encoded, &bad)).unwrap();
+            match Store::new(dir.path()).lookup(&record.key) {
+                Lookup::Damaged(why) => assert!(why.contains("packed coordinate"), "{why}"),
+                other => panic!("a garbled record was read as {other:?}"),
+            }
+        }
     }
 }

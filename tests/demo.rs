@@ -281,8 +281,12 @@ fn demo_pipeline_finds_the_planted_coupling_and_reruns_only_what_a_change_touche
             .join("objects")
             .join(&key[..2])
             .join(format!("{key}.npy"));
-        let sidecar = read_json(&npy.with_extension("json"));
-        let sync = Saved::load(&npy, &sidecar["layout"]);
+        // The object record packs long numeric axes; its layout, written the way exported
+        // sidecars write it, lists every coordinate.
+        let record: phasewise::store::ObjectRecord =
+            serde_json::from_value(read_json(&npy.with_extension("json"))).unwrap();
+        let layout = serde_json::to_value(&record.layout).unwrap();
+        let sync = Saved::load(&npy, &layout);
         let sync = sync
             .at("condition", 0)
             .mean_in("freq", 4.0, 8.0)
@@ -304,7 +308,7 @@ fn demo_pipeline_finds_the_planted_coupling_and_reruns_only_what_a_change_touche
         // The bound allows about twice that, and asks the planted pair, in its window, for at
         // least twice the zero-lag pair's value.
         assert!(wpli[i] < 0.3, "subject {subject}: wpli {}", wpli[i]);
-        let during = Saved::load(&npy, &sidecar["layout"]);
+        let during = Saved::load(&npy, &layout);
         let during = during
             .at("condition", during.label_index("condition", condition.0))
             .mean_in("freq", 4.0, 8.0)

@@ -14,7 +14,7 @@ use ndarray::{ArrayD, IxDyn, ShapeBuilder};
 use num_complex::Complex32;
 use phasewise::session::{self, Env, Options};
 use phasewise::sources::RecordingReader;
-use phasewise::store::{npy_bytes, Store};
+use phasewise::store::{npy_bytes, Lookup, Store};
 use phasewise_stages::{Coord, LabelledArray, Layout, Notes, Values};
 
 /// (mtime ns, inode, size) of every file under the output folder but the manifest, which
@@ -118,6 +118,45 @@ fn an_edited_or_deleted_export_is_written_again() {
     p.run();
     assert_eq!(std::fs::read(&npy2).unwrap(), good_npy2);
     assert_eq!(std::fs::read(&json2).unwrap(), good_json2);
+}
+
+/// The cache record packs long numeric axes (its own format), but the exported sidecar, which
+/// users read from Python, lists every coordinate as `{kind: numbers, values: [...]}` with the
+/// very f64s of the cached layout.
+#[test]
+fn exported_sidecars_list_every_coordinate_that_the_cache_record_packs() {
+    let p = Project::new(&["01"]);
+    p.pipeline(&exported_chain());
+    let first = p.run();
+    let (_, record_path) = p.object(&first, "b", Some("01"));
+    let read = |path: &Path| -> serde_json::Value {
+        serde_json::from_slice(&std::fs::read(path).unwrap()).unwrap()
+    };
+    let sidecar = read(&p.output().join("01/b.json"));
+    let raw = read(&record_path);
+    let dims = sidecar["dims"].as_array().unwrap();
+    let t = dims.iter().position(|d| d == "time").expect("a time axis");
+    assert_eq!(raw["layout"]["coords"][t]["kind"], "numbers_delta2");
+    let coord = &sidecar["coords"][t];
+    assert_eq!(coord["kind"], "numbers");
+    let listed: Vec<u64> = coord["values"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_f64().unwrap().to_bits())
+        .collect();
+    let key = unit(&first, "b", Some("01")).key.clone();
+    let Lookup::Present(record) = Store::new(p.cache()).lookup(&key) else {
+        panic!("the record of b/01 does not read back");
+    };
+    let cached: Vec<u64> = record.layout.coords[t]
+        .numbers()
+        .unwrap()
+        .iter()
+        .map(|x| x.to_bits())
+        .collect();
+    assert!(listed.len() > 64, "{} times", listed.len());
+    assert_eq!(listed, cached);
 }
 
 #[test]
