@@ -605,8 +605,13 @@ fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, String> {
     if value.get("format").and_then(|v| v.as_str()) != Some(FORMAT)
         || version != Some(u64::from(FORMAT_VERSION))
     {
+        let found = match version {
+            Some(v) => format!("format version {v}"),
+            None => "no format version".into(),
+        };
         return Err(format!(
-            "its record has format version {version:?}, this phasewise reads {FORMAT_VERSION}"
+            "its record has {found} and this phasewise reads format version {FORMAT_VERSION} \
+             (a cache written by another phasewise version is recomputed, not misread)"
         ));
     }
     let record: ObjectRecord =
@@ -1115,7 +1120,7 @@ mod tests {
         std::fs::write(&json_path, version_1_text(&record)).unwrap();
         for store in [&store, &Store::new(dir.path())] {
             match store.lookup(&record.key) {
-                Lookup::Damaged(why) => assert!(why.contains("format version Some(1)"), "{why}"),
+                Lookup::Damaged(why) => assert!(why.contains("has format version 1 and"), "{why}"),
                 other => panic!("a version 1 record was read as {other:?}"),
             }
             assert!(matches!(

@@ -118,7 +118,8 @@ impl Joining {
     pub fn new(shape: &[usize], axis: usize, complex: bool) -> Joining {
         let shape = ndarray::IxDyn(shape);
         let values = if complex {
-            Values::Complex(ArrayD::from_elem(shape, num_complex::Complex32::default()))
+            let zeros = bytemuck::zeroed_vec(ndarray::Dimension::size(&shape));
+            Values::Complex(ArrayD::from_shape_vec(shape, zeros).expect("the shape's own size"))
         } else {
             Values::Real(ArrayD::zeros(shape))
         };
@@ -448,7 +449,10 @@ mod tests {
         // Filled part by part: a part that does not fit, or a join left short, is refused.
         let mut joining = Joining::new(&[2, 5, 3], 1, false);
         joining.push(&parts[0]).unwrap();
-        assert!(joining.push(&whole).is_err(), "5 more along freq do not fit in 3");
+        assert!(
+            joining.push(&whole).is_err(),
+            "5 more along freq do not fit in 3"
+        );
         joining.push(&parts[1]).unwrap();
         assert!(joining.finish().is_err(), "2 of 5 entries are missing");
         let mut joining = Joining::new(&[2, 5, 3], 1, false);

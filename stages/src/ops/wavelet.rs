@@ -513,7 +513,8 @@ fn transform_all(plan: &Plan, values: &[f32], part: std::ops::Range<usize>) -> V
         .collect();
     let per_signal = part.len() * plan.keep.count;
     let signals: usize = plan.layout.shape().iter().take(2).product();
-    let mut out = vec![Complex32::default(); per_signal * signals];
+    // Zeroed by the allocator (fresh pages are zero): no pass of writes before the real one.
+    let mut out: Vec<Complex32> = bytemuck::zeroed_vec(per_signal * signals);
     if per_signal == 0 || plan.epoch_len == 0 {
         return out;
     }
