@@ -17,7 +17,7 @@ use std::sync::Arc;
 use std::time::Instant;
 
 use indicatif::ProgressBar;
-use phasewise_stages::{Input, LabelledArray, Notes, StageError};
+use phasewise_stages::{Input, LabelledArray, Notes, OwnedInput, StageError};
 use rayon::prelude::*;
 
 use crate::graph::UnitInput;
@@ -532,6 +532,9 @@ impl Worker<'_, '_, '_> {
             }
         }
         let started = Instant::now();
+        if let Some((array, notes)) = self.run_owned(u)? {
+            return self.store_result(u, array, &notes, started.elapsed().as_secs_f64());
+        }
         let unit = &study.units[u];
         let stage = &study.pipeline.stages[unit.stage];
         // An op that prepares its inputs gets each one prepared as soon as it is loaded (or
@@ -580,6 +583,48 @@ impl Worker<'_, '_, '_> {
         drop(inputs);
         drop(held);
         self.store_result(u, array, &notes, started.elapsed().as_secs_f64())
+    }
+
+    /// Run unit `u`'s op on its only input handed over whole ([`phasewise_stages::Op::run_owned`])
+    /// when this unit is that array's last use in the chain and nothing else holds it; `None`
+    /// (and the input left as it was) otherwise.
+    fn run_owned(&mut self, u: usize) -> Result<Option<(LabelledArray, Notes)>, UnitFailure> {
+        let study = self.ctx.study;
+        let unit = &study.units[u];
+        let stage = &study.pipeline.stages[unit.stage];
+        let [input] = unit.inputs[..] else {
+            return Ok(None);
+        };
+        let ready = matches!(input, UnitInput::Unit(i) if self.prepared.contains_key(&(u, i)));
+        if ready || stage.op.prepares(&stage.params) || self.uses_left.get(&input) != Some(&1) {
+            return Ok(None);
+        }
+        let (array, carried) = self.values(input)?;
+        // The chain's own copy goes first, so that the array is ours alone if no other holds it.
+        let was_held = self.memory.remove(&input).is_some();
+        let array = match Arc::try_unwrap(array) {
+            Ok(array) => array,
+            Err(shared) => {
+                if was_held {
+                    self.memory.insert(input, (shared, carried));
+                }
+                return Ok(None);
+            }
+        };
+        let mut notes = Notes::default();
+        notes.warnings.extend(carried);
+        let (stage_name, subject) = origin(study, input);
+        let owned = OwnedInput {
+            stage: stage_name,
+            subject,
+            array,
+        };
+        tracing::info!(stage = %stage.name, subject = ?study.subject(u), "computing");
+        let array = stage
+            .op
+            .run_owned(&stage.params, owned, &mut notes)
+            .map_err(|e| self.op_failure(u, &e))?;
+        Ok(Some((array, notes)))
     }
 
     /// Store a computed unit's output, keep it while the chain needs it, record its result.

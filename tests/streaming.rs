@@ -17,6 +17,11 @@ fn repo() -> PathBuf {
 /// Run the demo pipeline (with `tf.cache` as given) on subject 01 in `dir`; returns the
 /// manifest part (a `--subject` run writes `manifest.parts/<subject>.json`).
 fn run(dir: &Path, cache_tf: bool, part_bytes: &str) -> serde_json::Value {
+    run_with(dir, cache_tf, part_bytes, "")
+}
+
+/// [`run`] with `extra` YAML appended to the pipeline's stages.
+fn run_with(dir: &Path, cache_tf: bool, part_bytes: &str, extra: &str) -> serde_json::Value {
     let text = std::fs::read_to_string(repo().join("pipelines/demo.yaml")).unwrap();
     let demo = repo().join("demo-data");
     assert!(
@@ -35,7 +40,7 @@ fn run(dir: &Path, cache_tf: bool, part_bytes: &str) -> serde_json::Value {
             },
         );
     let pipeline = dir.join("p.yaml");
-    std::fs::write(&pipeline, text).unwrap();
+    std::fs::write(&pipeline, text + extra).unwrap();
     let out = Command::new(env!("CARGO_BIN_EXE_phasewise"))
         .args(["run", pipeline.to_str().unwrap(), "--subject", "01", "-q"])
         .env("PHASEWISE_PART_BYTES", part_bytes)
@@ -93,4 +98,26 @@ fn streamed_wavelet_gives_the_same_bits_as_whole_runs() {
         x == y,
         "exported norm differs between streamed and whole runs"
     );
+}
+
+/// The runner hands the baseline op its input to overwrite (`Op::run_owned`) when the baseline is
+/// the clustering output's last use in the chain. Reference: the same op on a borrowed input,
+/// which it gets when a second consumer of the clustering output comes after it.
+#[test]
+fn baseline_over_its_input_gives_the_bits_of_baseline_beside_it() {
+    let (alone, shared) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    let a = run(alone.path(), false, "48000000");
+    let second = "  again:\n    op: baseline\n    input: sync\n    params: { window: [-0.5, -0.2], mode: zscore }\n";
+    let b = run_with(shared.path(), false, "48000000", second);
+    assert_eq!(unit(&b, "again")["status"], "computed");
+    assert_eq!(
+        unit(&a, "norm")["outputs"][0]["blake3"],
+        unit(&b, "norm")["outputs"][0]["blake3"]
+    );
+    let file = "results/01/norm.npy";
+    let (x, y) = (
+        std::fs::read(alone.path().join(file)).unwrap(),
+        std::fs::read(shared.path().join(file)).unwrap(),
+    );
+    assert!(x == y, "exported norm differs between the two paths");
 }

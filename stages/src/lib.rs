@@ -22,7 +22,7 @@ pub mod table;
 
 pub use array::{Coord, Event, Joining, LabelledArray, Layout, Meta, TrialInfo, Values};
 pub use error::StageError;
-pub use op::{DynOp, Input, InputLayout, Notes, Op};
+pub use op::{DynOp, Input, InputLayout, Notes, Op, OwnedInput};
 
 #[cfg(test)]
 pub(crate) mod testutil;

@@ -46,6 +46,18 @@ pub struct Input<'a> {
     pub array: &'a LabelledArray,
 }
 
+/// The one input of a unit handed to [`Op::run_owned`]: the runner no longer needs the array, so
+/// the op may reuse its memory for the output.
+#[derive(Debug)]
+pub struct OwnedInput<'a> {
+    /// The producing stage's name (`recordings` for the data source).
+    pub stage: &'a str,
+    /// The subject, when the producing unit is per subject.
+    pub subject: Option<&'a str>,
+    /// The array, now the op's.
+    pub array: LabelledArray,
+}
+
 /// The input layouts handed to [`Op::layout`], in the same order as [`Input`]s would be.
 #[derive(Clone, Copy, Debug)]
 pub struct InputLayout<'a> {
@@ -124,6 +136,23 @@ pub trait Op: Send + Sync + 'static {
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError>;
 
+    /// [`Op::run`] on a unit's only input when nothing else needs that array any more: an op
+    /// whose output has the input's shape may write it into the input's memory instead of new
+    /// memory. Must give the same output, bit for bit, as `run` on the same input. The default
+    /// calls `run`.
+    fn run_owned(
+        params: &Self::Params,
+        input: OwnedInput<'_>,
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        let borrowed = Input {
+            stage: input.stage,
+            subject: input.subject,
+            array: &input.array,
+        };
+        Self::run(params, &[borrowed], notes)
+    }
+
     /// The axis of the output along which [`Op::run_part`] computes slices, if any.
     fn part_axis(_params: &Self::Params) -> Option<&'static str> {
         None
@@ -195,6 +224,13 @@ pub trait DynOp: Send + Sync {
         &self,
         params: &Value,
         inputs: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError>;
+    /// See [`Op::run_owned`].
+    fn run_owned(
+        &self,
+        params: &Value,
+        input: OwnedInput<'_>,
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError>;
     /// See [`Op::part_axis`]; `None` also when the params do not parse.
@@ -281,6 +317,14 @@ impl<O: Op> DynOp for Registered<O> {
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError> {
         O::run(&parse_params(params)?, inputs, notes)
+    }
+    fn run_owned(
+        &self,
+        params: &Value,
+        input: OwnedInput<'_>,
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        O::run_owned(&parse_params(params)?, input, notes)
     }
     fn part_axis(&self, params: &Value) -> Option<&'static str> {
         O::part_axis(&parse_params(params).ok()?)
