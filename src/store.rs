@@ -355,7 +355,10 @@ impl Store {
                 };
                 let record = match parse_record(&bytes, key) {
                     Ok(r) => r,
-                    Err(why) => return Lookup::Damaged(why),
+                    // Written by a phasewise of another record format: not damage, just not
+                    // a result this version can use; it is recomputed (and overwritten).
+                    Err(Unreadable::OtherVersion) => return Lookup::Absent,
+                    Err(Unreadable::Damaged(why)) => return Lookup::Damaged(why),
                 };
                 if let (Some((len, modified)), Ok(mut memo)) = (stamp, self.parsed.lock()) {
                     if len == bytes.len() as u64 {
@@ -588,36 +591,41 @@ fn write_record(json_path: &Path, record: &ObjectRecord) -> Result<(), StoreErro
     })
 }
 
-fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, String> {
+/// Why a record could not be used.
+enum Unreadable {
+    /// Another record format or format version.
+    OtherVersion,
+    /// Not a record, or not this key's.
+    Damaged(String),
+}
+
+fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, Unreadable> {
+    let damaged = Unreadable::Damaged;
     // One pass straight into the record; the slower look at the raw value below only runs to
     // explain a record that does not parse (or is of another format).
     if let Ok(record) = serde_json::from_slice::<ObjectRecord>(bytes) {
         if record.format == FORMAT && record.format_version == FORMAT_VERSION {
             if record.key != key {
-                return Err(format!("its record belongs to key {}", record.key));
+                return Err(damaged(format!("its record belongs to key {}", record.key)));
             }
             return Ok(record);
         }
     }
-    let value: serde_json::Value =
-        serde_json::from_slice(bytes).map_err(|e| format!("its record is not valid JSON: {e}"))?;
+    let value: serde_json::Value = serde_json::from_slice(bytes)
+        .map_err(|e| damaged(format!("its record is not valid JSON: {e}")))?;
     let version = value.get("format_version").and_then(|v| v.as_u64());
-    if value.get("format").and_then(|v| v.as_str()) != Some(FORMAT)
-        || version != Some(u64::from(FORMAT_VERSION))
-    {
-        let found = match version {
-            Some(v) => format!("format version {v}"),
-            None => "no format version".into(),
-        };
-        return Err(format!(
-            "its record has {found} and this phasewise reads format version {FORMAT_VERSION} \
-             (a cache written by another phasewise version is recomputed, not misread)"
+    if value.get("format").and_then(|v| v.as_str()) != Some(FORMAT) {
+        return Err(damaged(
+            "its record is not a phasewise object record".into(),
         ));
     }
-    let record: ObjectRecord =
-        serde_json::from_value(value).map_err(|e| format!("its record is incomplete: {e}"))?;
+    if version != Some(u64::from(FORMAT_VERSION)) {
+        return Err(Unreadable::OtherVersion);
+    }
+    let record: ObjectRecord = serde_json::from_value(value)
+        .map_err(|e| damaged(format!("its record is incomplete: {e}")))?;
     if record.key != key {
-        return Err(format!("its record belongs to key {}", record.key));
+        return Err(damaged(format!("its record belongs to key {}", record.key)));
     }
     Ok(record)
 }
@@ -934,7 +942,7 @@ mod tests {
     }
 
     #[test]
-    fn an_unknown_format_version_is_not_trusted() {
+    fn a_record_of_another_format_version_is_not_used() {
         let dir = tempfile::tempdir().unwrap();
         let store = Store::new(dir.path());
         let (array, fp) = sample();
@@ -945,7 +953,8 @@ mod tests {
         assert!(text.contains(&current));
         let newer = text.replace(&current, "\"format_version\": 99");
         std::fs::write(&json_path, newer).unwrap();
-        assert!(matches!(store.lookup(&record.key), Lookup::Damaged(_)));
+        // Recomputed as if absent, without a damage warning.
+        assert!(matches!(store.lookup(&record.key), Lookup::Absent));
     }
 
     /// Samples of the benchmark's continuous recordings: 148,750 times `k / 250` s.
@@ -1105,7 +1114,7 @@ mod tests {
     }
 
     #[test]
-    fn a_record_of_version_1_is_damaged_and_the_memo_does_not_hide_it() {
+    fn a_record_of_version_1_is_not_used_and_the_memo_does_not_hide_it() {
         let dir = tempfile::tempdir().unwrap();
         let store = Store::new(dir.path());
         let (mut array, fp) = sample();
@@ -1120,12 +1129,12 @@ mod tests {
         std::fs::write(&json_path, version_1_text(&record)).unwrap();
         for store in [&store, &Store::new(dir.path())] {
             match store.lookup(&record.key) {
-                Lookup::Damaged(why) => assert!(why.contains("has format version 1 and"), "{why}"),
+                Lookup::Absent => {}
                 other => panic!("a version 1 record was read as {other:?}"),
             }
             assert!(matches!(
                 store.load(&record.key),
-                Err(LoadError::Damaged(_))
+                Err(LoadError::Unavailable)
             ));
         }
     }
