@@ -117,39 +117,15 @@ impl Planes {
         let mut unit = vec![Complex32::default(); times];
         for k in 0..n {
             let series = &series(k)[..times];
-            // Block `blk` of trial k starts at ((blk · n) + k) · LANES: one short contiguous run
-            // per block, copied lane by lane (no index arithmetic per element).
-            let runs = |plane_len: usize| {
-                (0..blocks(times)).map(move |blk| {
-                    let at = (blk * n + k) * LANES;
-                    let len = LANES.min(times - blk * LANES);
-                    debug_assert!(at + len <= plane_len);
-                    (blk * LANES, at, len)
-                })
-            };
             if needs.phasor {
                 // Converted in a loop of its own (it vectorises), then scattered into the lanes.
                 for (u, &z) in unit.iter_mut().zip(series) {
                     *u = polar(z).0;
                 }
-                for (from, at, len) in runs(self.unit_re.len()) {
-                    let src = &unit[from..from + len];
-                    let re = &mut self.unit_re[at..at + len];
-                    let im = &mut self.unit_im[at..at + len];
-                    for ((re, im), u) in re.iter_mut().zip(im.iter_mut()).zip(src) {
-                        (*re, *im) = (u.re, u.im);
-                    }
-                }
+                scatter(&unit, k, n, &mut self.unit_re, &mut self.unit_im);
             }
             if needs.raw() {
-                for (from, at, len) in runs(self.raw_re.len()) {
-                    let src = &series[from..from + len];
-                    let re = &mut self.raw_re[at..at + len];
-                    let im = &mut self.raw_im[at..at + len];
-                    for ((re, im), z) in re.iter_mut().zip(im.iter_mut()).zip(src) {
-                        (*re, *im) = (z.re, z.im);
-                    }
-                }
+                scatter(series, k, n, &mut self.raw_re, &mut self.raw_im);
             }
             for (zero, z) in self.zero.iter_mut().zip(series) {
                 *zero |= z.re == 0.0 && z.im == 0.0;
@@ -157,6 +133,20 @@ impl Planes {
             for (power, z) in self.power.iter_mut().zip(series) {
                 *power += f64::from(z.re).powi(2) + f64::from(z.im).powi(2);
             }
+        }
+    }
+}
+
+/// Trial `k` of `n` (`values` at every time point) into the planes `re`, `im` laid out
+/// `[block][trial][lane]`: block `blk` of trial k starts at (blk · n + k) · LANES, one short
+/// contiguous run per block, copied lane by lane (no index arithmetic per element).
+fn scatter(values: &[Complex32], k: usize, n: usize, re: &mut [f32], im: &mut [f32]) {
+    for (blk, src) in values.chunks(LANES).enumerate() {
+        let at = (blk * n + k) * LANES;
+        let span = at..at + src.len();
+        let pairs = re[span.clone()].iter_mut().zip(im[span].iter_mut());
+        for ((re, im), z) in pairs.zip(src) {
+            (*re, *im) = (z.re, z.im);
         }
     }
 }
