@@ -27,7 +27,8 @@ use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use crate::store::{
-    atomic_write, write_npy_to, write_then_rename, ObjectRecord, Store, TEMP_PREFIX,
+    atomic_write, bookkeeping_write, write_npy_to, write_then_rename, ObjectRecord, Store,
+    TEMP_PREFIX,
 };
 
 /// An export that could not be written.
@@ -287,7 +288,7 @@ pub fn export(
         };
         // Losing the record only costs a rewrite next time.
         if let Ok(bytes) = serde_json::to_vec(&last) {
-            let _ = atomic_write(&record_path, &bytes);
+            let _ = bookkeeping_write(&record_path, &bytes);
         }
     }
     Ok(relative)

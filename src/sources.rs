@@ -19,7 +19,7 @@ use phasewise_stages::{LabelledArray, Layout, Notes, StageError};
 use serde::{Deserialize, Serialize};
 
 use crate::key;
-use crate::store::atomic_write;
+use crate::store::bookkeeping_write;
 
 /// Reads recordings; the CLI uses [`RecordingReader`], tests may substitute their own.
 pub trait Reader: Sync {
@@ -309,7 +309,7 @@ impl Hasher {
             };
             // A record that cannot be written only costs a rehash next time.
             if let Ok(bytes) = serde_json::to_vec(&record) {
-                let _ = atomic_write(&record_path, &bytes);
+                let _ = bookkeeping_write(&record_path, &bytes);
             }
         }
         Ok(FileHash {
