@@ -30,7 +30,7 @@ pub const LARGE: usize = 4 << 20;
 const HUGE_PAGE: usize = 2 << 20;
 
 /// The most bytes of freed mappings kept for reuse.
-pub const POOL_BYTES: usize = 96 << 20;
+pub const POOL_BYTES: usize = 256 << 20;
 
 /// Freed mappings (address, mapped length), at most [`SLOTS`] of them.
 #[cfg(target_os = "linux")]

@@ -255,22 +255,10 @@ fn read_values(file: &mut File, record: &ObjectRecord) -> Result<Option<Values>,
     let io = |e: std::io::Error| format!("cannot read its values: {e}");
     file.read_exact(&mut head).map_err(io)?;
     hasher.update(&head);
-    let mut read_into = |bytes: &mut [u8]| -> Result<(), String> {
-        // Chunks small enough to be hashed while they are still in the CPU's cache.
-        for chunk in bytes.chunks_mut(READ_CHUNK) {
-            file.read_exact(chunk).map_err(io)?;
-            hash_update(&mut hasher, chunk);
-        }
-        Ok(())
-    };
     let values = if complex {
-        let mut data = vec![Complex32::new(0.0, 0.0); count];
-        read_into(bytemuck::cast_slice_mut(&mut data))?;
-        Data::Complex(data)
+        Data::Complex(read_fresh(file, count, &mut hasher)?)
     } else {
-        let mut data = vec![0f32; count];
-        read_into(bytemuck::cast_slice_mut(&mut data))?;
-        Data::Real(data)
+        Data::Real(read_fresh(file, count, &mut hasher)?)
     };
     let mut rest = [0u8; 1];
     if file.read(&mut rest).map_err(io)? != 0 {
@@ -304,6 +292,63 @@ fn read_values(file: &mut File, record: &ObjectRecord) -> Result<Option<Values>,
 enum Data {
     Real(Vec<f32>),
     Complex(Vec<Complex32>),
+}
+
+/// `count` values read from `file` straight into new memory, hashing every byte as it arrives
+/// (in pieces small enough to be hashed while still in the CPU's cache). The memory is not
+/// zeroed first: zeroing would be a pass over the whole array that the read overwrites anyway
+/// (freed arrays are reused by the allocator, so it would not come free from the kernel).
+#[cfg(unix)]
+fn read_fresh<T: bytemuck::Pod>(
+    file: &mut File,
+    count: usize,
+    hasher: &mut blake3::Hasher,
+) -> Result<Vec<T>, String> {
+    use std::os::fd::AsRawFd;
+    let len = count
+        .checked_mul(std::mem::size_of::<T>())
+        .ok_or("its recorded shape overflows")?;
+    let mut data: Vec<T> = Vec::with_capacity(count);
+    let base = data.as_mut_ptr().cast::<u8>();
+    let mut filled = 0;
+    while filled < len {
+        let want = (len - filled).min(READ_CHUNK);
+        // SAFETY: `base + filled .. + want` lies inside the allocation of `count` values, and
+        // read(2) only writes into it.
+        let n = unsafe { libc::read(file.as_raw_fd(), base.add(filled).cast(), want) };
+        if n < 0 {
+            let e = std::io::Error::last_os_error();
+            if e.kind() == std::io::ErrorKind::Interrupted {
+                continue;
+            }
+            return Err(format!("cannot read its values: {e}"));
+        }
+        if n == 0 {
+            return Err("its values (.npy) are shorter than the record says".into());
+        }
+        // SAFETY: read(2) has just written these `n` bytes.
+        let piece = unsafe { std::slice::from_raw_parts(base.add(filled), n as usize) };
+        hash_update(hasher, piece);
+        filled += n as usize;
+    }
+    // SAFETY: every byte of the `count` values is written, and any bytes are a valid `T` (Pod).
+    unsafe { data.set_len(count) };
+    Ok(data)
+}
+
+#[cfg(not(unix))]
+fn read_fresh<T: bytemuck::Pod>(
+    file: &mut File,
+    count: usize,
+    hasher: &mut blake3::Hasher,
+) -> Result<Vec<T>, String> {
+    let mut data = vec![T::zeroed(); count];
+    for piece in bytemuck::cast_slice_mut::<T, u8>(&mut data).chunks_mut(READ_CHUNK) {
+        file.read_exact(piece)
+            .map_err(|e| format!("cannot read its values: {e}"))?;
+        hash_update(hasher, piece);
+    }
+    Ok(data)
 }
 
 /// Read size of [`read_values`]: the piece just read is hashed while it is still in cache.
