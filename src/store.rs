@@ -678,7 +678,6 @@ fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, Unreadable> {
 fn write_object_file(path: &Path, values: &Values) -> Result<(String, u64), StoreError> {
     let abort = std::env::var_os(ABORT_BEFORE_RENAME).is_some();
     let written = write_then_rename(path, abort, |file| {
-        let file = Writeback::new(file);
         Ok(stream_npy(values, file).map_err(|e| e.to_string()))
     });
     match written {
@@ -694,12 +693,12 @@ fn write_object_file(path: &Path, values: &Values) -> Result<(String, u64), Stor
 /// Bytes after which [`Writeback`] asks the kernel to start writing them to disk.
 const WRITEBACK_BYTES: u64 = 8 << 20;
 
-/// A file written in pieces of at most [`WRITEBACK_BYTES`], each handed to the disk as soon as
-/// it is written (Linux `sync_file_range(SYNC_FILE_RANGE_WRITE)`, which starts the write and
+/// The temporary file that [`write_then_rename`] hands its `fill`: written in pieces of at most
+/// [`WRITEBACK_BYTES`], each handed to the disk as soon as it is written (Linux `sync_file_range(SYNC_FILE_RANGE_WRITE)`, which starts the write and
 /// does not wait for it), so that the fsync before the rename finds most of a large object
 /// already on its way and waits less. Only when the write goes to disk changes; what is written,
 /// and the fsync that makes it durable, do not.
-struct Writeback<'f> {
+pub(crate) struct Writeback<'f> {
     file: &'f mut File,
     written: u64,
     started: u64,
@@ -771,7 +770,7 @@ pub const TEMP_PREFIX: &str = ".tmp-";
 pub(crate) fn write_then_rename<T>(
     path: &Path,
     abort_before_rename: bool,
-    fill: impl FnOnce(&mut File) -> std::io::Result<Result<T, String>>,
+    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, String>>,
 ) -> std::io::Result<Result<T, String>> {
     replace_via_temp(path, abort_before_rename, true, fill)
 }
@@ -781,7 +780,7 @@ fn replace_via_temp<T>(
     path: &Path,
     abort_before_rename: bool,
     durable: bool,
-    fill: impl FnOnce(&mut File) -> std::io::Result<Result<T, String>>,
+    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, String>>,
 ) -> std::io::Result<Result<T, String>> {
     let dir = path.parent().unwrap_or(Path::new("."));
     std::fs::create_dir_all(dir)?;
@@ -793,7 +792,7 @@ fn replace_via_temp<T>(
         name.unwrap_or_default()
     ));
     let mut file = File::create(&temp)?;
-    let filled = fill(&mut file).and_then(|r| {
+    let filled = fill(&mut Writeback::new(&mut file)).and_then(|r| {
         if durable {
             file.sync_all()?;
         }
