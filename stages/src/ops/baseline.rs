@@ -255,9 +255,9 @@ const LANES_PER_TASK: usize = 512;
 
 /// The common case, a standard-layout array with time last: every time course is a contiguous
 /// slice; the same arithmetic as [`normalise_lane`], on slices, in parallel over time courses.
-/// The values are normalised where they are (a copy of each time course is taken first, so
-/// every output value is computed from the input values, as in [`normalise_lane`]); the stats
-/// come back.
+/// The values are normalised where they are (the stats of a time course are taken before any of
+/// its values changes, and each value is then computed from itself, as in [`normalise_lane`]);
+/// the stats come back.
 fn normalise_in_place(
     data: &mut [f32],
     shape: &[usize],
@@ -267,14 +267,19 @@ fn normalise_in_place(
     let t = shape[shape.len() - 1];
     let lanes = data.len() / t;
     let mut stats = vec![Stats { mean: 0.0, sd: 0.0 }; lanes];
+    let need_sd = mode == BaselineMode::Zscore;
     data.par_chunks_mut(t * LANES_PER_TASK)
         .zip(stats.par_chunks_mut(LANES_PER_TASK))
         .for_each(|(data, stats)| {
-            let mut lane = vec![0f32; t];
-            for (o, s) in data.chunks_exact_mut(t).zip(stats.iter_mut()) {
-                lane.copy_from_slice(o);
-                *s = baseline_stats(ArrayView1::from(&lane[..]), points);
-                normalise_slice(&lane, o, *s, mode);
+            for (block, s) in data
+                .chunks_mut(t * STATS_BLOCK)
+                .zip(stats.chunks_mut(STATS_BLOCK))
+            {
+                // The stats are taken before any value of the block changes.
+                stats_block(block, t, points, need_sd, s);
+                for (o, s) in block.chunks_exact_mut(t).zip(s.iter()) {
+                    normalise_own(o, *s, mode);
+                }
             }
         });
     let lane_shape = IxDyn(&shape[..shape.len() - 1]);
@@ -296,25 +301,94 @@ fn normalise_contiguous(
     (stats, out)
 }
 
-/// [`normalise_lane`] on contiguous slices, the mode chosen once per time course.
-fn normalise_slice(input: &[f32], out: &mut [f32], s: Stats, mode: BaselineMode) {
+/// Time courses whose stats [`stats_block`] computes together.
+const STATS_BLOCK: usize = 8;
+
+/// [`baseline_stats`] of the consecutive time courses (each `t` long) in `block`, into `out`
+/// (one per time course). The same sums in the same order, each time course's sum on its own:
+/// only the time courses are interleaved, so that the additions of different time courses
+/// overlap instead of each waiting for the previous one. The standard deviation is computed
+/// only when `need_sd` (else NaN: the modes other than `zscore` never read it).
+fn stats_block(block: &[f32], t: usize, points: &[usize], need_sd: bool, out: &mut [Stats]) {
+    let k = out.len();
+    debug_assert!(k <= STATS_BLOCK && block.len() == k * t);
+    let n = points.len() as f64;
+    // As in `baseline_stats`, a point beyond the time course reads as NaN.
+    let value = |l: usize, i: usize| {
+        if i < t {
+            f64::from(block[l * t + i])
+        } else {
+            f64::NAN
+        }
+    };
+    // `Iterator::sum` of f64 starts from −0.0; so do these, to give the same bits.
+    let mut sum = [-0.0f64; STATS_BLOCK];
+    for &i in points {
+        for (l, acc) in sum.iter_mut().enumerate().take(k) {
+            *acc += value(l, i);
+        }
+    }
+    let mut mean = [0f64; STATS_BLOCK];
+    for l in 0..k {
+        mean[l] = sum[l] / n;
+    }
+    let mut ss = [-0.0f64; STATS_BLOCK];
+    if need_sd {
+        for &i in points {
+            for (l, acc) in ss.iter_mut().enumerate().take(k) {
+                *acc += (value(l, i) - mean[l]).powi(2);
+            }
+        }
+    }
+    for (l, s) in out.iter_mut().enumerate() {
+        let sd = if need_sd && points.len() > 1 {
+            (ss[l] / (n - 1.0)).sqrt()
+        } else {
+            f64::NAN
+        };
+        *s = Stats { mean: mean[l], sd };
+    }
+}
+
+/// [`normalise_lane`] on one contiguous time course, in place, the mode chosen once per time
+/// course (each value depends only on itself and the stats taken before).
+fn normalise_own(values: &mut [f32], s: Stats, mode: BaselineMode) {
     if divisor(mode, s) == Some(0.0) {
-        out.fill(f32::NAN);
+        values.fill(f32::NAN);
         return;
     }
-    let pairs = out.iter_mut().zip(input);
+    let each = values.iter_mut();
     match mode {
-        BaselineMode::Subtract => pairs.for_each(|(o, &v)| *o = (f64::from(v) - s.mean) as f32),
+        BaselineMode::Subtract => each.for_each(|o| *o = (f64::from(*o) - s.mean) as f32),
         BaselineMode::Percent => {
-            pairs.for_each(|(o, &v)| *o = (100.0 * (f64::from(v) - s.mean) / s.mean) as f32)
+            each.for_each(|o| *o = (100.0 * (f64::from(*o) - s.mean) / s.mean) as f32)
         }
         BaselineMode::Db => {
-            pairs.for_each(|(o, &v)| *o = (10.0 * (f64::from(v) / s.mean).log10()) as f32)
+            each.for_each(|o| *o = (10.0 * (f64::from(*o) / s.mean).log10()) as f32)
         }
-        BaselineMode::Zscore => {
-            pairs.for_each(|(o, &v)| *o = ((f64::from(v) - s.mean) / s.sd) as f32)
+        BaselineMode::Zscore => each.for_each(|o| *o = ((f64::from(*o) - s.mean) / s.sd) as f32),
+    }
+}
+
+/// The position of the first `true` and the number of `true`s, if any.
+fn first_and_count(flags: impl Iterator<Item = bool>) -> Option<(usize, usize)> {
+    let mut found = None;
+    for (k, flag) in flags.enumerate() {
+        if flag {
+            found = Some(found.map_or((k, 1), |(first, n)| (first, n + 1)));
         }
     }
+    found
+}
+
+/// The index of the `flat`-th element, in row-major order, of an array of `shape`.
+fn unravel(mut flat: usize, shape: &[usize]) -> Vec<usize> {
+    let mut index = vec![0; shape.len()];
+    for (i, &len) in index.iter_mut().zip(shape).rev() {
+        *i = flat % len.max(1);
+        flat /= len.max(1);
+    }
+    index
 }
 
 /// Warnings about time courses whose baseline made them NaN, naming the first of each kind.
@@ -326,23 +400,18 @@ fn warn_degenerate(p: &BaselineParams, plan: &Plan, stats: &ArrayD<Stats>, notes
         BaselineMode::Zscore => "a zero standard deviation",
         _ => "a zero mean",
     };
-    let zero: Vec<_> = stats
-        .indexed_iter()
-        .filter(|(_, s)| divisor(p.mode, **s) == Some(0.0))
-        .collect();
-    let nan: Vec<_> = stats
-        .indexed_iter()
-        .filter(|(_, s)| s.mean.is_nan())
-        .collect();
-    for (list, why) in [(zero, what), (nan, "NaN values")] {
-        if let Some((index, _)) = list.first() {
+    // Counted over the stats in logical order, the first one's position unravelled from its
+    // place in that order (an indexed iteration would build an index per time course).
+    let zero = first_and_count(stats.iter().map(|s| divisor(p.mode, *s) == Some(0.0)));
+    let nan = first_and_count(stats.iter().map(|s| s.mean.is_nan()));
+    for (found, why) in [(zero, what), (nan, "NaN values")] {
+        if let Some((first, count)) = found {
             notes.warn(format!(
-                "baseline: {} of {} time courses have {why} in the window {} s, so their \
+                "baseline: {count} of {} time courses have {why} in the window {} s, so their \
                  normalised values are NaN (first at {})",
-                list.len(),
                 stats.len(),
                 range_text(p.window),
-                position_text(&rest, index.slice())
+                position_text(&rest, &unravel(first, stats.shape()))
             ));
         }
     }
@@ -713,14 +782,40 @@ mod tests {
                     let (s2, o2) = normalise_any(&values, &plan, mode);
                     let bits = |a: &ArrayD<f32>| a.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
                     assert_eq!(bits(&o1), bits(&o2), "{shape:?} {points:?} {mode:?}");
+                    // The fast path computes the standard deviation only for `zscore`, the
+                    // one mode that reads it.
+                    let zscore = mode == BaselineMode::Zscore;
                     let sb = |a: &ArrayD<Stats>| {
                         a.iter()
-                            .map(|s| (s.mean.to_bits(), s.sd.to_bits()))
+                            .map(|s| (s.mean.to_bits(), zscore.then(|| s.sd.to_bits())))
                             .collect::<Vec<_>>()
                     };
-                    assert_eq!(sb(&s1), sb(&s2));
+                    assert_eq!(sb(&s1), sb(&s2), "{shape:?} {points:?} {mode:?}");
                 }
             }
         }
+    }
+
+    /// Reference: ndarray's own indexed iteration, which gives each element's index in logical
+    /// (row-major) order; the warnings name the first flagged time course by this index.
+    #[test]
+    fn unravel_matches_ndarrays_indices() {
+        for shape in [
+            vec![1usize],
+            vec![4],
+            vec![2, 3],
+            vec![3, 1, 4, 2],
+            vec![2, 0, 3],
+        ] {
+            let a = ArrayD::<u8>::zeros(IxDyn(&shape));
+            for (k, (index, _)) in a.indexed_iter().enumerate() {
+                assert_eq!(unravel(k, &shape), index.slice(), "{shape:?} {k}");
+            }
+        }
+        assert_eq!(
+            first_and_count([false, true, false, true].into_iter()),
+            Some((1, 2))
+        );
+        assert_eq!(first_and_count([false, false].into_iter()), None);
     }
 }
