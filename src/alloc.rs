@@ -14,7 +14,8 @@
 //! one uses `mremap`, which moves page tables instead of copying bytes.
 //!
 //! Freed mappings are kept in a small pool (at most [`POOL_BYTES`] in all) and handed to the
-//! next large allocation, cut or grown to its size: a chain allocates arrays of the same few
+//! next large allocation of a size it serves (see [`Pool::take`] and [`Pool::keep`]), cut or
+//! grown to that size: a chain allocates arrays of the same few
 //! sizes over and over (one per part, per subject), and a page the process already holds costs
 //! nothing to reuse, where a fresh one must be faulted in and cleared by the kernel — on a
 //! virtual machine, the first touch of guest memory was measured at 0.38 GB/s against 15 GB/s
@@ -50,16 +51,39 @@ static POOL: std::sync::Mutex<Pool> = std::sync::Mutex::new(Pool {
     bytes: 0,
 });
 
+/// Mappings given back by [`Pool::keep`], to be unmapped.
+#[cfg(target_os = "linux")]
+struct Released {
+    slots: [(usize, usize); SLOTS + 1],
+    count: usize,
+}
+
+#[cfg(target_os = "linux")]
+impl Released {
+    fn push(&mut self, slot: (usize, usize)) {
+        self.slots[self.count] = slot;
+        self.count += 1;
+    }
+}
+
 #[cfg(target_os = "linux")]
 impl Pool {
-    /// The freed mapping that best serves `len` bytes: the smallest at least that long, else
-    /// the longest.
+    /// The freed mapping that best serves `len` bytes: the smallest at least that long but not
+    /// more than twice as long; else the longest one shorter than `len` (grown to fit); else
+    /// none. A mapping much longer than asked for is left for a later, larger request: cutting
+    /// it down would give its pages back and make that request clear fresh ones (a chain asks
+    /// for a few sizes over and over, e.g. a 120 MiB load and a 20 MiB reduction per subject).
     fn take(&mut self, len: usize) -> Option<(usize, usize)> {
         let held = &self.slots[..self.count];
         let fit = (0..held.len())
-            .filter(|&i| held[i].1 >= len)
+            .filter(|&i| held[i].1 >= len && held[i].1 / 2 <= len)
             .min_by_key(|&i| held[i].1);
-        let i = fit.or_else(|| (0..held.len()).max_by_key(|&i| held[i].1))?;
+        let shorter = || {
+            (0..held.len())
+                .filter(|&i| held[i].1 < len)
+                .max_by_key(|&i| held[i].1)
+        };
+        let i = fit.or_else(shorter)?;
         let slot = self.slots[i];
         self.count -= 1;
         self.slots[i] = self.slots[self.count];
@@ -67,15 +91,35 @@ impl Pool {
         Some(slot)
     }
 
-    /// Keep a freed mapping, or answer it back when the pool is full.
-    fn keep(&mut self, slot: (usize, usize)) -> Option<(usize, usize)> {
-        if self.count == SLOTS || self.bytes + slot.1 > POOL_BYTES {
-            return Some(slot);
+    /// Keep a freed mapping. Where the pool has no room for it, shorter mappings are given back
+    /// (shortest first) to make room, since a longer one saves more clearing when reused; a
+    /// mapping that still does not fit is given back itself. Returns what to unmap.
+    fn keep(&mut self, slot: (usize, usize)) -> Released {
+        let mut released = Released {
+            slots: [(0, 0); SLOTS + 1],
+            count: 0,
+        };
+        if slot.1 > POOL_BYTES {
+            released.push(slot);
+            return released;
+        }
+        while self.count == SLOTS || self.bytes + slot.1 > POOL_BYTES {
+            let shortest = (0..self.count)
+                .filter(|&i| self.slots[i].1 < slot.1)
+                .min_by_key(|&i| self.slots[i].1);
+            let Some(i) = shortest else {
+                released.push(slot);
+                return released;
+            };
+            released.push(self.slots[i]);
+            self.bytes -= self.slots[i].1;
+            self.count -= 1;
+            self.slots[i] = self.slots[self.count];
         }
         self.slots[self.count] = slot;
         self.count += 1;
         self.bytes += slot.1;
-        None
+        released
     }
 }
 
@@ -178,11 +222,14 @@ unsafe impl GlobalAlloc for LargePages {
             return System.dealloc(ptr, layout);
         }
         let slot = (ptr as usize, mapped_len(layout.size()));
-        let back = match POOL.lock() {
+        let released = match POOL.lock() {
             Ok(mut pool) => pool.keep(slot),
-            Err(_) => Some(slot),
+            Err(_) => {
+                libc::munmap(ptr as *mut libc::c_void, slot.1);
+                return;
+            }
         };
-        if let Some((ptr, len)) = back {
+        for &(ptr, len) in &released.slots[..released.count] {
             libc::munmap(ptr as *mut libc::c_void, len);
         }
     }
@@ -312,5 +359,41 @@ mod tests {
                 .all(|&b| b == 7));
             a.dealloc(grown, Layout::from_size_align(LARGE * 2, 8).unwrap());
         }
+    }
+
+    /// The pool's choices, on made-up addresses (nothing is mapped): a chain that loads a
+    /// 120 MiB array and reduces it into a 20 MiB one per subject, two subjects at a time,
+    /// must find its 120 MiB mappings again instead of cutting them down for the 20 MiB ones.
+    #[cfg(target_os = "linux")]
+    #[test]
+    fn the_pool_keeps_long_mappings_for_long_requests() {
+        const MIB: usize = 1 << 20;
+        let mut pool = Pool {
+            slots: [(0, 0); SLOTS],
+            count: 0,
+            bytes: 0,
+        };
+        let unmapped =
+            |r: Released| -> Vec<usize> { r.slots[..r.count].iter().map(|s| s.1 / MIB).collect() };
+        assert!(unmapped(pool.keep((1, 20 * MIB))).is_empty());
+        assert!(unmapped(pool.keep((2, 20 * MIB))).is_empty());
+        assert!(unmapped(pool.keep((3, 120 * MIB))).is_empty());
+        // 160 + 120 > 256 MiB: both 20 MiB mappings make room for the second long one.
+        assert_eq!(unmapped(pool.keep((4, 120 * MIB))), vec![20, 20]);
+        assert_eq!(pool.bytes, 240 * MIB);
+        // No room, and nothing shorter to give back: a short one is refused.
+        assert_eq!(unmapped(pool.keep((5, 20 * MIB))), vec![20]);
+        // A 20 MiB request does not cut a 120 MiB mapping down...
+        assert_eq!(pool.take(20 * MIB), None);
+        // ...which serves the next 120 MiB request whole, and a 100 MiB one too.
+        assert_eq!(pool.take(120 * MIB).map(|s| s.1), Some(120 * MIB));
+        assert_eq!(pool.take(100 * MIB).map(|s| s.1), Some(120 * MIB));
+        assert_eq!((pool.count, pool.bytes), (0, 0));
+        // Nothing long enough: the longest shorter one is grown.
+        pool.keep((6, 8 * MIB));
+        pool.keep((7, 16 * MIB));
+        assert_eq!(pool.take(40 * MIB), Some((7, 16 * MIB)));
+        // Larger than the whole pool: given back at once.
+        assert_eq!(unmapped(pool.keep((8, 300 * MIB))), vec![300]);
     }
 }
