@@ -13,10 +13,16 @@
 //! For context it also times the naive count: per signal one forward and `freqs` inverse FFTs
 //! of the plain smooth length ≥ `min_len` (what the op did before it folded and paired).
 //!
+//! With KEPT (the op's kept time points per signal and frequency), it also times what the op
+//! must do besides transforms whatever its algorithm: write its output, `signals · freqs · kept`
+//! complex f32 values, once, into memory fresh from the kernel (a new mapping per repetition,
+//! written in order on one thread). On a machine where the first touch of memory is slow this
+//! is a large part of the op's time; the op's FFTs never see it.
+//!
 //! Signals are split into `threads` contiguous blocks, one thread each; best of `reps`. Prints
 //! one JSON line: `{"seconds": <op's transforms>, "naive_seconds": ..., ...}`.
 //!
-//! Usage: `phasewise-bench-fft MIN_LEN STRIDE SIGNALS FREQS THREADS REPS`
+//! Usage: `phasewise-bench-fft MIN_LEN STRIDE SIGNALS FREQS THREADS REPS [KEPT]`
 
 use std::time::Instant;
 
@@ -31,6 +37,7 @@ struct Job {
     freqs: usize,
     threads: usize,
     reps: usize,
+    kept: Option<usize>,
 }
 
 /// One plan of transforms: per group of `per_forward` signals one forward FFT of `forward`
@@ -50,7 +57,11 @@ fn parse() -> Result<Job, String> {
                 .map_err(|_| format!("`{a}` is not a whole number"))
         })
         .collect::<Result<_, _>>()?;
-    match args[..] {
+    let (fixed, kept) = match args.len() {
+        7 => (&args[..6], Some(args[6])),
+        _ => (&args[..], None),
+    };
+    match fixed[..] {
         [min_len, stride, signals, freqs, threads, reps]
             if min_len > 0 && stride > 0 && threads > 0 && reps > 0 =>
         {
@@ -61,10 +72,11 @@ fn parse() -> Result<Job, String> {
                 freqs,
                 threads,
                 reps,
+                kept,
             })
         }
         _ => Err(
-            "usage: phasewise-bench-fft MIN_LEN STRIDE SIGNALS FREQS THREADS REPS (all but SIGNALS, FREQS > 0)"
+            "usage: phasewise-bench-fft MIN_LEN STRIDE SIGNALS FREQS THREADS REPS [KEPT] (all but SIGNALS, FREQS > 0)"
                 .into(),
         ),
     }
@@ -151,6 +163,19 @@ fn best(job: &Job, plan: Plan) -> (f64, f64) {
     (best, checksum)
 }
 
+/// Best of `reps`: seconds to write `values` complex f32 values once into a new buffer.
+fn output_write(values: usize, reps: usize) -> f64 {
+    let mut best = f64::INFINITY;
+    for rep in 0..reps {
+        let start = Instant::now();
+        let mut out: Vec<[f32; 2]> = Vec::with_capacity(values);
+        out.extend((0..values).map(|k| [(k % 7) as f32, rep as f32]));
+        best = best.min(start.elapsed().as_secs_f64());
+        std::hint::black_box(&out);
+    }
+    best
+}
+
 fn main() {
     let job = match parse() {
         Ok(job) => job,
@@ -173,8 +198,11 @@ fn main() {
     };
     let (seconds, checksum) = best(&job, op);
     let (naive_seconds, naive_checksum) = best(&job, naive);
+    let output = job.kept.map_or("null".to_string(), |kept| {
+        output_write(job.signals * job.freqs * kept, job.reps).to_string()
+    });
     println!(
-        "{{\"seconds\": {seconds}, \"nfft\": {nfft}, \"folded\": {}, \"forwards\": {}, \"inverses\": {}, \
+        "{{\"seconds\": {seconds}, \"output_seconds\": {output}, \"nfft\": {nfft}, \"folded\": {}, \"forwards\": {}, \"inverses\": {}, \
          \"naive_seconds\": {naive_seconds}, \"naive_nfft\": {naive_len}, \"naive_forwards\": {}, \"naive_inverses\": {}, \
          \"signals\": {}, \"freqs\": {}, \"stride\": {}, \"threads\": {}, \"reps\": {}, \"checksum\": {}}}",
         op.inverse,
