@@ -135,8 +135,9 @@ pub struct Bank {
 /// Per-thread buffers for [`Bank::transform`].
 pub struct Scratch {
     pair: Vec<Complex64>,
-    x: Vec<Complex64>,
-    y: Vec<Complex64>,
+    /// Per bin j: [Re X̃[j], Im X̃[j], Re Ỹ[j], Im Ỹ[j]] (both signals' spectra side by side,
+    /// so a fold multiplies one bin of both by the wavelet's spectrum in one vector operation).
+    xy: Vec<[f64; 4]>,
     folded: Vec<Complex64>,
     fft: Vec<Complex64>,
 }
@@ -210,8 +211,7 @@ impl Bank {
             .max(self.inverse.get_inplace_scratch_len());
         Scratch {
             pair: vec![Complex64::default(); self.nfft],
-            x: vec![Complex64::default(); self.nfft],
-            y: vec![Complex64::default(); self.nfft],
+            xy: vec![[0.0; 4]; self.nfft],
             folded: vec![Complex64::default(); 2 * self.folded],
             fft: vec![Complex64::default(); fft_len],
         }
@@ -260,7 +260,7 @@ impl Bank {
         }
     }
 
-    /// Spectra of `x` and `y` (empty: zeros), each rotated by −start, into `s.x`, `s.y`, each
+    /// Spectra of `x` and `y` (empty: zeros), each rotated by −start, into `s.xy`, each
     /// times 2 (the 1/2 is in the wavelets' spectra).
     #[inline(always)]
     fn pair(&self, x: &[f32], y: &[f32], s: &mut Scratch) {
@@ -285,17 +285,12 @@ impl Bank {
         self.forward.process_with_scratch(&mut s.pair, &mut s.fft);
         // Bin 0 pairs with itself, bin j ≥ 1 with N − j.
         let mirrored = std::iter::once(&s.pair[0]).chain(s.pair[1..].iter().rev());
-        for (((xj, yj), &z), m) in
-            s.x.iter_mut()
-                .zip(s.y.iter_mut())
-                .zip(&s.pair)
-                .zip(mirrored)
-        {
+        for ((xy, &z), m) in s.xy.iter_mut().zip(&s.pair).zip(mirrored) {
             let c = m.conj();
-            *xj = z + c;
+            let x = z + c;
             let d = z - c;
             // (Z − Z*) / i = −i (Z − Z*).
-            *yj = Complex64::new(d.im, -d.re);
+            *xy = [x.re, x.im, d.im, -d.re];
         }
     }
 
@@ -308,27 +303,23 @@ impl Bank {
         debug_assert!(count <= p);
         for (w, spec) in self.spectra.iter().enumerate() {
             let (fx, fy) = s.folded.split_at_mut(p);
-            // F[q] = Σ_r X̃[q + rP] C[q + rP], summed in order r = 0, 1, …, k' − 1.
-            let rows =
-                s.x.chunks_exact(p)
-                    .zip(s.y.chunks_exact(p))
-                    .zip(spec.chunks_exact(p));
-            for (r, ((xs, ys), cs)) in rows.enumerate() {
-                let terms = fx
-                    .iter_mut()
-                    .zip(fy.iter_mut())
-                    .zip(xs.iter().zip(ys).zip(cs));
-                if r == 0 {
-                    for ((a, b), ((x, y), &c)) in terms {
-                        *a = x * c;
-                        *b = y * c;
-                    }
-                } else {
-                    for ((a, b), ((x, y), &c)) in terms {
-                        *a += x * c;
-                        *b += y * c;
+            // F[q] = Σ_r X̃[q + rP] C[q + rP], summed in order r = 0, 1, …, k' − 1, for both
+            // signals at once; each bin's sum stays in a register until it is stored.
+            let rows = s.xy.len() / p;
+            for (q, (a, b)) in fx.iter_mut().zip(fy.iter_mut()).enumerate() {
+                let mul = |j: usize| {
+                    let (v, c) = (&s.xy[j], spec[j]);
+                    [v[0] * c, v[1] * c, v[2] * c, v[3] * c]
+                };
+                let mut acc = mul(q);
+                for r in 1..rows {
+                    let t = mul(q + r * p);
+                    for (acc, t) in acc.iter_mut().zip(t) {
+                        *acc += t;
                     }
                 }
+                *a = Complex64::new(acc[0], acc[1]);
+                *b = Complex64::new(acc[2], acc[3]);
             }
             self.inverse.process_with_scratch(&mut s.folded, &mut s.fft);
             let rows = [(&mut *out_x, 0), (&mut *out_y, p)];
