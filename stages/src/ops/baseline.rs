@@ -313,14 +313,16 @@ fn stats_block(block: &[f32], t: usize, points: &[usize], need_sd: bool, out: &m
     let k = out.len();
     debug_assert!(k <= STATS_BLOCK && block.len() == k * t);
     let n = points.len() as f64;
-    // As in `baseline_stats`, a point beyond the time course reads as NaN.
-    let value = |l: usize, i: usize| {
-        if i < t {
-            f64::from(block[l * t + i])
-        } else {
-            f64::NAN
-        }
-    };
+    // As in `baseline_stats`, a point beyond the time course reads as NaN, which makes every
+    // sum NaN: checked once here, not per value in the loops below.
+    if points.iter().any(|&i| i >= t) {
+        out.fill(Stats {
+            mean: f64::NAN,
+            sd: f64::NAN,
+        });
+        return;
+    }
+    let value = |l: usize, i: usize| f64::from(block[l * t + i]);
     // `Iterator::sum` of f64 starts from −0.0; so do these, to give the same bits.
     let mut sum = [-0.0f64; STATS_BLOCK];
     for &i in points {
@@ -771,6 +773,8 @@ mod tests {
                 vec![0],
                 (0..t.min(3)).collect(),
                 (t / 2..t).collect::<Vec<_>>(),
+                // A point beyond the time course: NaN statistics on both paths.
+                vec![t - 1, t],
             ] {
                 for mode in modes {
                     let plan = Plan {
