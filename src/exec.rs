@@ -17,7 +17,7 @@ use std::sync::Arc;
 use std::time::Instant;
 
 use indicatif::ProgressBar;
-use phasewise_stages::{Input, LabelledArray, Notes, OwnedInput, StageError};
+use phasewise_stages::{Input, InputLayout, LabelledArray, Layout, Notes, OwnedInput, StageError};
 use rayon::prelude::*;
 
 use crate::graph::UnitInput;
@@ -25,6 +25,7 @@ use crate::output::{self, ExportError, ExportFrom, ExportTarget};
 use crate::parts;
 use crate::pipeline::SOURCE;
 use crate::plan::{Plan, Reason, Status};
+use crate::slabs;
 use crate::sources::Reader;
 use crate::store::{LoadError, Lookup, ObjectRecord};
 use crate::study::{RunError, Study, UnitFailure};
@@ -331,8 +332,13 @@ impl Worker<'_, '_, '_> {
         if let Status::Stale(Reason::Damaged { why }) = status {
             self.warn_damaged(u, why);
         }
+        let mut prepared_here = false;
         let array = if stale && parts::streams(self.study(), u) {
             // Computed part by part inside its consumer's unit (see `parts`).
+            None
+        } else if stale && self.compute_slabs(u)? {
+            // Computed, stored and prepared box by box (see `slabs`).
+            prepared_here = true;
             None
         } else if stale {
             Some(self.compute(u)?)
@@ -342,7 +348,7 @@ impl Worker<'_, '_, '_> {
         let study = self.ctx.study;
         let stage = &study.pipeline.stages[study.units[u].stage];
         let groups: Vec<usize> = self.ctx.prepared_for(u).collect();
-        if !groups.is_empty() {
+        if !groups.is_empty() && !prepared_here {
             let whole = match &array {
                 Some(a) => a.clone(),
                 None => self.values(UnitInput::Unit(u))?.0,
@@ -706,6 +712,140 @@ impl Worker<'_, '_, '_> {
         );
         let seconds = (started.elapsed().as_secs_f64() - streamed.producer_seconds).max(0.0);
         self.store_result(u, streamed.output, &streamed.consumer_notes, seconds)
+    }
+
+    /// Unit `u` box by box from its stored input ([`slabs`]), when its op and the `prepare`
+    /// of every group unit it feeds slice along the input's leading axes, its output is not
+    /// needed whole in this chain, and every consumer either is prepared here or can read the
+    /// stored result. True when done (result recorded, stored, prepared for the groups); false
+    /// when the unit is to be computed whole, which then also finds and reports a damaged input.
+    fn compute_slabs(&mut self, u: usize) -> Result<bool, UnitFailure> {
+        let study = self.ctx.study;
+        let unit = &study.units[u];
+        let stage = &study.pipeline.stages[unit.stage];
+        let [input @ UnitInput::Unit(i)] = unit.inputs[..] else {
+            return Ok(false);
+        };
+        let groups: Vec<usize> = self.ctx.prepared_for(u).collect();
+        let elsewhere = study.consumers[u].iter().any(|c| !groups.contains(c));
+        if self.memory.contains_key(&input)
+            || self.uses_left.contains_key(&UnitInput::Unit(u))
+            || (elsewhere || stage.export) && !stage.cache
+        {
+            return Ok(false);
+        }
+        let Lookup::Present(record) = study.store.lookup(&study.keys[i]) else {
+            return Ok(false);
+        };
+        let group_stages: Vec<_> = groups
+            .iter()
+            .map(|&g| &study.pipeline.stages[study.units[g].stage])
+            .collect();
+        let k = record
+            .layout
+            .dims
+            .iter()
+            .take_while(|d| {
+                stage.op.slices_along(&stage.params, d)
+                    && group_stages
+                        .iter()
+                        .all(|g| g.op.prepare_slices_along(&g.params, d))
+            })
+            .count();
+        let (stage_name, subject) = origin(study, input);
+        let whole_input = [InputLayout {
+            stage: stage_name,
+            subject,
+            layout: &record.layout,
+        }];
+        let Ok(Some(out_layout)) = stage.op.layout(&stage.params, &whole_input) else {
+            return Ok(false);
+        };
+        let keeps = |l: &Layout| l.dims.get(..k) == record.layout.dims.get(..k);
+        if !record.stored || k == 0 || !keeps(&out_layout) || out_layout.shape() != record.shape {
+            return Ok(false);
+        }
+        let started = Instant::now();
+        let element = if record.layout.complex { 8 } else { 4 };
+        let boxes = slabs::boxes(&record.shape, k, element);
+        let mut prepared: Vec<Vec<LabelledArray>> = vec![Vec::new(); groups.len()];
+        tracing::info!(stage = %stage.name, subject = ?study.subject(u), "computing in slabs");
+        let written =
+            study
+                .store
+                .put_slabs(&out_layout, &study.fingerprints[u], stage.cache, |write| {
+                    let read =
+                        study
+                            .store
+                            .read_slabs(&study.keys[i], &record, &boxes, |b, slab| {
+                                let mut notes = Notes::default();
+                                let owned = OwnedInput {
+                                    stage: stage_name,
+                                    subject,
+                                    array: slab,
+                                };
+                                let out = stage
+                                    .op
+                                    .run_owned(&stage.params, owned, &mut notes)
+                                    .map_err(|e| e.to_string())?;
+                                if notes != Notes::default() {
+                                    return Err("the op noted something about one box".into());
+                                }
+                                if out.layout
+                                    != slabs::box_layout(&out_layout, b)
+                                        .map_err(|e| e.to_string())?
+                                {
+                                    return Err(
+                                        "a box's output is not the whole output's cut".into()
+                                    );
+                                }
+                                write(&out.values).map_err(|e| e.to_string())?;
+                                let input = Input {
+                                    stage: &stage.name,
+                                    subject: study.subject(u),
+                                    array: &out,
+                                };
+                                for (g, list) in group_stages.iter().zip(&mut prepared) {
+                                    match g.op.prepare(&g.params, &input) {
+                                        Some(Ok(small)) => list.push(small),
+                                        Some(Err(e)) => return Err(e.to_string()),
+                                        None => return Err("a group unit did not prepare".into()),
+                                    }
+                                }
+                                Ok(())
+                            });
+                    read.map(|()| Notes::default()).map_err(|stop| match stop {
+                        slabs::SlabStop::Damaged(why) | slabs::SlabStop::Declined(why) => why,
+                    })
+                });
+        let record = match written {
+            Ok(Ok(record)) => record,
+            Ok(Err(why)) => {
+                tracing::debug!(stage = %stage.name, subject = ?study.subject(u), "computed whole: {why}");
+                return Ok(false);
+            }
+            Err(e) => return Err(self.fail(u, e.to_string())),
+        };
+        for (&g, parts) in groups.iter().zip(prepared) {
+            let joined = slabs::join_boxes(parts, &boxes).map_err(|e| self.op_failure(g, &e))?;
+            self.out
+                .prepared
+                .insert((g, u), (Arc::new(joined), Vec::new()));
+        }
+        study
+            .store
+            .set_last(&study.last_id(u), &study.fingerprints[u]);
+        let export = self.out.results.get(&u).and_then(|r| r.export.clone());
+        self.out.results.insert(
+            u,
+            UnitResult {
+                record,
+                computed: true,
+                seconds: started.elapsed().as_secs_f64(),
+                export,
+            },
+        );
+        Ok(true)
     }
 
     /// Drop arrays whose last consumer in this chain has run.

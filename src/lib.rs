@@ -42,6 +42,7 @@ pub mod prune;
 pub mod report;
 pub mod scaffold;
 pub mod session;
+pub mod slabs;
 pub mod sources;
 pub mod store;
 pub mod study;

@@ -25,11 +25,16 @@ pub const PART_BYTES: usize = 48 << 20;
 pub const PART_BYTES_VAR: &str = "PHASEWISE_PART_BYTES";
 
 fn part_bytes() -> usize {
-    std::env::var(PART_BYTES_VAR)
+    bytes_from_env(PART_BYTES_VAR, PART_BYTES)
+}
+
+/// A positive byte count from the environment variable `var`, else `default`.
+pub fn bytes_from_env(var: &str, default: usize) -> usize {
+    std::env::var(var)
         .ok()
         .and_then(|v| v.parse().ok())
         .filter(|&b| b > 0)
-        .unwrap_or(PART_BYTES)
+        .unwrap_or(default)
 }
 
 /// The unit that streams into `u`, with the axis, when the conditions above hold.

@@ -84,6 +84,41 @@ pub struct ObjectRecord {
     pub fingerprint: Fingerprint,
 }
 
+impl ObjectRecord {
+    /// The record of a unit with this output layout (its shape from the coordinates), values
+    /// type, notes and fingerprint; neither stored nor hashed until [`ObjectRecord::with_values`].
+    pub(crate) fn new(
+        layout: &Layout,
+        dtype: &str,
+        notes: &Notes,
+        fingerprint: &Fingerprint,
+    ) -> ObjectRecord {
+        ObjectRecord {
+            format: FORMAT.into(),
+            format_version: FORMAT_VERSION,
+            key: fingerprint.key(),
+            stored: false,
+            layout: layout.clone(),
+            shape: layout.shape(),
+            dtype: dtype.into(),
+            npy_size: 0,
+            blake3: String::new(),
+            notes: notes.clone(),
+            fingerprint: fingerprint.clone(),
+        }
+    }
+
+    /// With the NPY's blake3 and size, and whether the NPY is kept.
+    pub(crate) fn with_values(self, stored: bool, blake3: String, npy_size: u64) -> ObjectRecord {
+        ObjectRecord {
+            stored,
+            blake3,
+            npy_size,
+            ..self
+        }
+    }
+}
+
 /// Why an object's values could not be loaded.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub enum LoadError {
@@ -182,7 +217,7 @@ impl<W: Write> Write for HashingWriter<W> {
 /// Below this many bytes one thread hashes; above, blake3 splits the work over the rayon pool.
 const PARALLEL_HASH_BYTES: usize = 1 << 20;
 
-fn hash_update(hasher: &mut blake3::Hasher, bytes: &[u8]) {
+pub(crate) fn hash_update(hasher: &mut blake3::Hasher, bytes: &[u8]) {
     if bytes.len() >= PARALLEL_HASH_BYTES {
         hasher.update_rayon(bytes);
     } else {
@@ -225,6 +260,51 @@ pub fn values_from_npy(bytes: &[u8], complex: bool) -> Result<Values, String> {
 /// is returned. `None` when the header is not one this fast path knows (the caller then decodes
 /// the slow, general way).
 fn read_values(file: &mut File, record: &ObjectRecord) -> Result<Option<Values>, String> {
+    let Some(Geometry {
+        count,
+        complex,
+        header_len,
+    }) = geometry(record)?
+    else {
+        return Ok(None);
+    };
+    let mut hasher = blake3::Hasher::new();
+    let mut head = vec![0u8; header_len];
+    let io = |e: std::io::Error| format!("cannot read its values: {e}");
+    file.read_exact(&mut head).map_err(io)?;
+    hasher.update(&head);
+    let values = if complex {
+        Data::Complex(read_fresh(file, count, &mut hasher)?)
+    } else {
+        Data::Real(read_fresh(file, count, &mut hasher)?)
+    };
+    check_end(file, hasher, record)?;
+    // The bytes are exactly those written for this record, so the header is the one the NPY
+    // writer produced for its shape; only the memory order is left to read from it.
+    let Some(fortran) = fortran_order(&head) else {
+        return Ok(None);
+    };
+    let shape = IxDyn(&record.shape).set_f(fortran);
+    let built = match values {
+        Data::Real(v) => ArrayD::from_shape_vec(shape, v).map(Values::Real),
+        Data::Complex(v) => ArrayD::from_shape_vec(shape, v).map(Values::Complex),
+    };
+    built.map(Some).map_err(|e| e.to_string())
+}
+
+/// Where a stored object's values lie in its NPY file.
+pub(crate) struct Geometry {
+    /// Number of values.
+    pub count: usize,
+    /// Complex (`<c8`) rather than real (`<f4`).
+    pub complex: bool,
+    /// Bytes before the first value.
+    pub header_len: usize,
+}
+
+/// The [`Geometry`] of `record`'s NPY, from its shape, dtype and size; `None` for a form the
+/// fast readers do not take (another dtype, a big-endian machine, a header over 1 MiB).
+pub(crate) fn geometry(record: &ObjectRecord) -> Result<Option<Geometry>, String> {
     let count = record
         .shape
         .iter()
@@ -250,17 +330,35 @@ fn read_values(file: &mut File, record: &ObjectRecord) -> Result<Option<Values>,
     if header_len > 1 << 20 {
         return Ok(None);
     }
-    let mut hasher = blake3::Hasher::new();
-    let mut head = vec![0u8; header_len as usize];
-    let io = |e: std::io::Error| format!("cannot read its values: {e}");
-    file.read_exact(&mut head).map_err(io)?;
-    hasher.update(&head);
-    let values = if complex {
-        Data::Complex(read_fresh(file, count, &mut hasher)?)
+    Ok(Some(Geometry {
+        count,
+        complex,
+        header_len: header_len as usize,
+    }))
+}
+
+/// The memory order an NPY header (as the NPY writer produced it) declares: `Some(true)` for
+/// Fortran order, `Some(false)` for C order, `None` when it says neither.
+pub(crate) fn fortran_order(head: &[u8]) -> Option<bool> {
+    let text = String::from_utf8_lossy(head);
+    if text.contains("'fortran_order': False") {
+        Some(false)
+    } else if text.contains("'fortran_order': True") {
+        Some(true)
     } else {
-        Data::Real(read_fresh(file, count, &mut hasher)?)
-    };
+        None
+    }
+}
+
+/// After the last value: the file must end there and everything read must hash to the record's
+/// blake3.
+pub(crate) fn check_end(
+    file: &mut File,
+    hasher: blake3::Hasher,
+    record: &ObjectRecord,
+) -> Result<(), String> {
     let mut rest = [0u8; 1];
+    let io = |e: std::io::Error| format!("cannot read its values: {e}");
     if file.read(&mut rest).map_err(io)? != 0 {
         return Err("its values (.npy) are longer than the record says".into());
     }
@@ -271,22 +369,7 @@ fn read_values(file: &mut File, record: &ObjectRecord) -> Result<Option<Values>,
             record.blake3
         ));
     }
-    // The bytes are exactly those written for this record, so the header is the one the NPY
-    // writer produced for its shape; only the memory order is left to read from it.
-    let text = String::from_utf8_lossy(&head);
-    let fortran = if text.contains("'fortran_order': False") {
-        false
-    } else if text.contains("'fortran_order': True") {
-        true
-    } else {
-        return Ok(None);
-    };
-    let shape = IxDyn(&record.shape).set_f(fortran);
-    let built = match values {
-        Data::Real(v) => ArrayD::from_shape_vec(shape, v).map(Values::Real),
-        Data::Complex(v) => ArrayD::from_shape_vec(shape, v).map(Values::Complex),
-    };
-    built.map(Some).map_err(|e| e.to_string())
+    Ok(())
 }
 
 enum Data {
@@ -299,7 +382,7 @@ enum Data {
 /// zeroed first: zeroing would be a pass over the whole array that the read overwrites anyway
 /// (freed arrays are reused by the allocator, so it would not come free from the kernel).
 #[cfg(unix)]
-fn read_fresh<T: bytemuck::Pod>(
+pub(crate) fn read_fresh<T: bytemuck::Pod>(
     file: &mut File,
     count: usize,
     hasher: &mut blake3::Hasher,
@@ -337,7 +420,7 @@ fn read_fresh<T: bytemuck::Pod>(
 }
 
 #[cfg(not(unix))]
-fn read_fresh<T: bytemuck::Pod>(
+pub(crate) fn read_fresh<T: bytemuck::Pod>(
     file: &mut File,
     count: usize,
     hasher: &mut blake3::Hasher,
@@ -530,19 +613,8 @@ impl Store {
         } else {
             npy_digest(&array.values)?
         };
-        let record = ObjectRecord {
-            format: FORMAT.into(),
-            format_version: FORMAT_VERSION,
-            key,
-            stored,
-            layout: array.layout.clone(),
-            shape: array.values.shape().to_vec(),
-            dtype: array.values.dtype().into(),
-            npy_size,
-            blake3,
-            notes: notes.clone(),
-            fingerprint: fingerprint.clone(),
-        };
+        let record = ObjectRecord::new(&array.layout, array.values.dtype(), notes, fingerprint)
+            .with_values(stored, blake3, npy_size);
         write_record(&json_path, &record)?;
         Ok(record)
     }
@@ -557,22 +629,8 @@ impl Store {
         notes: &Notes,
         fingerprint: &Fingerprint,
     ) -> Result<ObjectRecord, StoreError> {
-        let key = fingerprint.key();
-        let (_, json_path) = self.object_paths(&key);
-        let record = ObjectRecord {
-            format: FORMAT.into(),
-            format_version: FORMAT_VERSION,
-            key,
-            stored: false,
-            layout: layout.clone(),
-            shape: layout.shape(),
-            dtype: dtype.into(),
-            npy_size: 0,
-            blake3: String::new(),
-            notes: notes.clone(),
-            fingerprint: fingerprint.clone(),
-        };
-        write_record(&json_path, &record)?;
+        let record = ObjectRecord::new(layout, dtype, notes, fingerprint);
+        write_record(&self.object_paths(&record.key).1, &record)?;
         Ok(record)
     }
 
@@ -628,7 +686,7 @@ struct LastRecord {
 }
 
 /// Write an object's record (atomically).
-fn write_record(json_path: &Path, record: &ObjectRecord) -> Result<(), StoreError> {
+pub(crate) fn write_record(json_path: &Path, record: &ObjectRecord) -> Result<(), StoreError> {
     let json = serde_json::to_vec_pretty(record).map_err(|e| StoreError::Encode(e.to_string()))?;
     atomic_write(json_path, &json).map_err(|source| StoreError::Write {
         path: json_path.to_path_buf(),

@@ -277,6 +277,22 @@ impl Layout {
             .ok_or_else(|| StageError::data(format!("the `{name}` axis does not hold labels")))
     }
 
+    /// The layout of the slice `range` of axis number `k`: that axis' coordinate cut, the rest
+    /// unchanged. Axes with metadata parallel to them (`channel`, `trial`) cannot be cut this
+    /// way.
+    pub fn slice(&self, k: usize, range: std::ops::Range<usize>) -> Result<Layout, StageError> {
+        let axis = self.dims.get(k).map(String::as_str).unwrap_or("?");
+        if matches!(axis, "channel" | "trial") || range.start > range.end || k >= self.coords.len()
+        {
+            return Err(StageError::data(format!(
+                "internal: cannot cut axis {axis} to {range:?}"
+            )));
+        }
+        let mut layout = self.clone();
+        layout.coords[k] = self.coords[k].slice(range)?;
+        Ok(layout)
+    }
+
     /// The sampling rate, or an error saying the input has none.
     pub fn sampling_rate(&self) -> Result<f64, StageError> {
         self.meta
@@ -351,13 +367,7 @@ impl LabelledArray {
     /// cannot be cut this way.
     pub fn slice(&self, axis: &str, range: std::ops::Range<usize>) -> Result<Self, StageError> {
         let k = self.layout.axis(axis)?;
-        if matches!(axis, "channel" | "trial") || range.start > range.end {
-            return Err(StageError::data(format!(
-                "internal: cannot cut axis {axis} to {range:?}"
-            )));
-        }
-        let mut layout = self.layout.clone();
-        layout.coords[k] = self.layout.coords[k].slice(range.clone())?;
+        let layout = self.layout.slice(k, range.clone())?;
         let cut = ndarray::Slice::from(range);
         let values = match &self.values {
             Values::Real(a) => Values::Real(a.slice_axis(ndarray::Axis(k), cut).to_owned()),

@@ -197,8 +197,16 @@ pub trait Op: Send + Sync + 'static {
     }
 
     /// True when, for inputs cut to a range along `axis`, [`Op::run`] gives exactly the output
-    /// cut to the same range along the output's axis of the same name.
+    /// cut to the same range along the output's axis of the same name (its warnings may then
+    /// speak of the slice alone).
     fn slices_along(_params: &Self::Params, _axis: &str) -> bool {
+        false
+    }
+
+    /// True when [`Op::prepare`] slices along `axis` as [`Op::slices_along`] says of `run`:
+    /// the input cut to a range along `axis` gives exactly the prepared array cut to that range
+    /// along its axis of the same name, at the same position.
+    fn prepare_slices_along(_params: &Self::Params, _axis: &str) -> bool {
         false
     }
 }
@@ -245,6 +253,8 @@ pub trait DynOp: Send + Sync {
     ) -> Result<LabelledArray, StageError>;
     /// See [`Op::slices_along`]; false also when the params do not parse.
     fn slices_along(&self, params: &Value, axis: &str) -> bool;
+    /// See [`Op::prepare_slices_along`]; false also when the params do not parse.
+    fn prepare_slices_along(&self, params: &Value, axis: &str) -> bool;
     /// See [`Op::prepares`]; false also when the params do not parse.
     fn prepares(&self, params: &Value) -> bool;
     /// See [`Op::prepare`].
@@ -340,6 +350,9 @@ impl<O: Op> DynOp for Registered<O> {
     }
     fn slices_along(&self, params: &Value, axis: &str) -> bool {
         parse_params(params).is_ok_and(|p| O::slices_along(&p, axis))
+    }
+    fn prepare_slices_along(&self, params: &Value, axis: &str) -> bool {
+        parse_params(params).is_ok_and(|p| O::prepare_slices_along(&p, axis))
     }
     fn prepares(&self, params: &Value) -> bool {
         parse_params(params).is_ok_and(|p| O::prepares(&p))

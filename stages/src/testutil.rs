@@ -73,3 +73,12 @@ pub fn largest_error_of_peak(got: &[f64], want: &[f64]) -> f64 {
         .fold(0.0, f64::max)
         / peak
 }
+
+/// The bit patterns of a real array's values in logical order (for bit-for-bit comparisons).
+pub fn real_bits(a: &crate::LabelledArray) -> Vec<u32> {
+    a.real_values()
+        .expect("real values")
+        .iter()
+        .map(|v| v.to_bits())
+        .collect()
+}

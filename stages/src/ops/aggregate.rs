@@ -606,6 +606,18 @@ impl Op for Aggregate {
         Self::joins_subjects(p).then(|| run_one(p, input.array).map_err(|e| with_subject(e, id)))
     }
 
+    /// Each subject's means keep every axis that no reduction takes (condition, measure, and
+    /// pair unless pair groups are asked for), value for value.
+    fn prepare_slices_along(p: &Self::Params, axis: &str) -> bool {
+        let reduced = match axis {
+            "freq" => p.bands.is_some(),
+            "time" => p.windows.is_some(),
+            "pair" => p.pair_groups.is_some(),
+            _ => false,
+        };
+        Self::joins_subjects(p) && !reduced
+    }
+
     fn join(
         p: &Self::Params,
         prepared: &[Input<'_>],
@@ -735,6 +747,47 @@ mod tests {
 
     fn f64s(a: &LabelledArray) -> Vec<f64> {
         a.real_values().unwrap().iter().map(|&v| v.into()).collect()
+    }
+
+    #[test]
+    fn prepared_means_slice_along_every_axis_no_reduction_takes() {
+        // The slicing protocol (op.rs), which the runner relies on to prepare a subject in
+        // slabs: each cut of the numpy fixture along an axis the reductions keep gives the
+        // whole prepared array's slice bit for bit, with the same layout.
+        let input = subject_input(1);
+        let over = serde_json::json!({ "over": "subjects" });
+        let mut grouped = over.clone();
+        let pairs = input.layout.coords[2].pairs().unwrap()[..2].to_vec();
+        grouped["pair_groups"] = serde_json::json!({ "front": pairs });
+        for extra in [over, grouped, serde_json::json!({})] {
+            let p = params(extra.clone());
+            let prepare = |a: &LabelledArray| {
+                let input = Input {
+                    stage: "norm",
+                    subject: Some("sub-02"),
+                    array: a,
+                };
+                Aggregate::prepare(&p, &input).map(Result::unwrap)
+            };
+            let whole = prepare(&input);
+            for (k, axis) in input.layout.dims.iter().enumerate() {
+                let slices = Aggregate::prepare_slices_along(&p, axis);
+                let kept = matches!(axis.as_str(), "condition" | "measure")
+                    || axis == "pair" && p.pair_groups.is_none();
+                assert_eq!(slices, kept && p.over.is_some(), "{extra} {axis}");
+                if !slices {
+                    continue;
+                }
+                let (whole, n) = (whole.as_ref().unwrap(), input.layout.coords[k].len());
+                for part in [0..1, 1..n] {
+                    let cut = prepare(&input.slice(axis, part.clone()).unwrap()).unwrap();
+                    let want = whole.slice(axis, part.clone()).unwrap();
+                    assert_eq!(cut.layout, want.layout, "{extra} {axis} {part:?}");
+                    let bits = crate::testutil::real_bits;
+                    assert_eq!(bits(&cut), bits(&want), "{extra} {axis} {part:?}");
+                }
+            }
+        }
     }
 
     #[test]
