@@ -341,7 +341,7 @@ impl Worker<'_, '_, '_> {
             prepared_here = true;
             None
         } else if stale {
-            Some(self.compute(u)?)
+            self.compute_spooling(u)?
         } else {
             self.record_cached(u)?
         };
@@ -534,7 +534,8 @@ impl Worker<'_, '_, '_> {
         let study = self.ctx.study;
         if let Some((p, axis)) = parts::streamed_input(study, u) {
             if !self.memory.contains_key(&UnitInput::Unit(p)) {
-                return self.compute_streamed((p, u), axis);
+                let whole = self.compute_streamed((p, u), axis, false)?;
+                return whole.ok_or_else(|| self.fail(u, "internal: a streamed unit was spooled"));
             }
         }
         let started = Instant::now();
@@ -648,12 +649,21 @@ impl Worker<'_, '_, '_> {
             .store
             .put(&array, notes, fingerprint, stage.cache)
             .map_err(|e| self.fail(u, e.to_string()))?;
-        study.store.set_last(&study.last_id(u), fingerprint);
         let array = Arc::new(array);
         if self.uses_left.contains_key(&UnitInput::Unit(u)) {
             self.memory
                 .insert(UnitInput::Unit(u), (array.clone(), Vec::new()));
         }
+        self.record_result(u, record, seconds);
+        Ok(array)
+    }
+
+    /// Note that unit `u` was computed in this run (its object just written as `record`).
+    fn record_result(&mut self, u: usize, record: ObjectRecord, seconds: f64) {
+        let study = self.ctx.study;
+        study
+            .store
+            .set_last(&study.last_id(u), &study.fingerprints[u]);
         let export = self.out.results.get(&u).and_then(|r| r.export.clone());
         self.out.results.insert(
             u,
@@ -664,85 +674,32 @@ impl Worker<'_, '_, '_> {
                 export,
             },
         );
-        Ok(array)
     }
 
-    /// Producer `p` and its consumer `u` part by part ([`parts`]): the producer gets a record
-    /// without values, the consumer is stored as usual; returns the consumer's array.
-    fn compute_streamed(
-        &mut self,
-        (p, u): (usize, usize),
-        axis: &str,
-    ) -> Result<Arc<LabelledArray>, UnitFailure> {
-        let started = Instant::now();
-        let study = self.ctx.study;
-        let mut held = Vec::new();
-        for &input in &study.units[p].inputs {
-            held.push((input, self.values(input)?));
-        }
-        let mut carried = Vec::new();
-        let inputs = as_inputs(study, &held, &mut carried);
-        tracing::info!(stage = %study.stage_name(u), subject = ?study.subject(u), "computing in parts");
-        let streamed =
-            parts::run(study, (p, u), axis, &inputs).map_err(|(at, e)| self.op_failure(at, &e))?;
-        drop(inputs);
-        drop(held);
-        let mut producer_notes = streamed.producer_notes;
-        producer_notes.warnings.splice(0..0, carried);
-        let record = study
-            .store
-            .put_streamed(
-                &streamed.producer_layout,
-                streamed.producer_dtype,
-                &producer_notes,
-                &study.fingerprints[p],
-            )
-            .map_err(|e| self.fail(p, e.to_string()))?;
-        study
-            .store
-            .set_last(&study.last_id(p), &study.fingerprints[p]);
-        self.out.results.insert(
-            p,
-            UnitResult {
-                record,
-                computed: true,
-                seconds: streamed.producer_seconds,
-                export: None,
-            },
-        );
-        let seconds = (started.elapsed().as_secs_f64() - streamed.producer_seconds).max(0.0);
-        self.store_result(u, streamed.output, &streamed.consumer_notes, seconds)
-    }
-
-    /// Unit `u` box by box from its stored input ([`slabs`]), when its op and the `prepare`
-    /// of every group unit it feeds slice along the input's leading axes, its output is not
-    /// needed whole in this chain, and every consumer either is prepared here or can read the
-    /// stored result. True when done (result recorded, stored, prepared for the groups); false
-    /// when the unit is to be computed whole, which then also finds and reports a damaged input.
-    fn compute_slabs(&mut self, u: usize) -> Result<bool, UnitFailure> {
+    /// How unit `u` would run in slabs on an input of layout `input` ([`slabs`]): the number
+    /// of leading axes to cut along, its output layout and the group units it prepares for.
+    /// `None` unless its op and the `prepare` of every group unit it feeds slice along those
+    /// axes (at least one), the output keeps them, the output is not needed whole later in this
+    /// chain, and every consumer either is prepared here or can read the stored result.
+    fn slab_cut(&self, u: usize, input: &Layout) -> Option<(usize, Layout, Vec<usize>)> {
         let study = self.ctx.study;
         let unit = &study.units[u];
         let stage = &study.pipeline.stages[unit.stage];
-        let [input @ UnitInput::Unit(i)] = unit.inputs[..] else {
-            return Ok(false);
+        let [from @ UnitInput::Unit(_)] = unit.inputs[..] else {
+            return None;
         };
         let groups: Vec<usize> = self.ctx.prepared_for(u).collect();
         let elsewhere = study.consumers[u].iter().any(|c| !groups.contains(c));
-        if self.memory.contains_key(&input)
-            || self.uses_left.contains_key(&UnitInput::Unit(u))
+        if self.uses_left.contains_key(&UnitInput::Unit(u))
             || (elsewhere || stage.export) && !stage.cache
         {
-            return Ok(false);
+            return None;
         }
-        let Lookup::Present(record) = study.store.lookup(&study.keys[i]) else {
-            return Ok(false);
-        };
         let group_stages: Vec<_> = groups
             .iter()
             .map(|&g| &study.pipeline.stages[study.units[g].stage])
             .collect();
-        let k = record
-            .layout
+        let k = input
             .dims
             .iter()
             .take_while(|d| {
@@ -752,19 +709,47 @@ impl Worker<'_, '_, '_> {
                         .all(|g| g.op.prepare_slices_along(&g.params, d))
             })
             .count();
-        let (stage_name, subject) = origin(study, input);
+        let (stage_name, subject) = origin(study, from);
         let whole_input = [InputLayout {
             stage: stage_name,
             subject,
-            layout: &record.layout,
+            layout: input,
         }];
-        let Ok(Some(out_layout)) = stage.op.layout(&stage.params, &whole_input) else {
+        let Ok(Some(out)) = stage.op.layout(&stage.params, &whole_input) else {
+            return None;
+        };
+        let keeps = out.dims.get(..k) == input.dims.get(..k) && out.shape() == input.shape();
+        (k > 0 && keeps).then_some((k, out, groups))
+    }
+
+    /// Unit `u` box by box from its stored input ([`slabs`]) when [`Worker::slab_cut`] allows
+    /// and the input is not in memory. True when done (result recorded, stored, prepared for
+    /// the groups); false when the unit is to be computed whole, which then also finds and
+    /// reports a damaged input.
+    fn compute_slabs(&mut self, u: usize) -> Result<bool, UnitFailure> {
+        let study = self.ctx.study;
+        let unit = &study.units[u];
+        let stage = &study.pipeline.stages[unit.stage];
+        let [input @ UnitInput::Unit(i)] = unit.inputs[..] else {
             return Ok(false);
         };
-        let keeps = |l: &Layout| l.dims.get(..k) == record.layout.dims.get(..k);
-        if !record.stored || k == 0 || !keeps(&out_layout) || out_layout.shape() != record.shape {
+        if self.memory.contains_key(&input) {
             return Ok(false);
         }
+        let Lookup::Present(record) = study.store.lookup(&study.keys[i]) else {
+            return Ok(false);
+        };
+        let Some((k, out_layout, groups)) = self.slab_cut(u, &record.layout) else {
+            return Ok(false);
+        };
+        if !record.stored || out_layout.shape() != record.shape {
+            return Ok(false);
+        }
+        let group_stages: Vec<_> = groups
+            .iter()
+            .map(|&g| &study.pipeline.stages[study.units[g].stage])
+            .collect();
+        let (stage_name, subject) = origin(study, input);
         let started = Instant::now();
         let element = if record.layout.complex { 8 } else { 4 };
         let boxes = slabs::boxes(&record.shape, k, element);
@@ -799,7 +784,8 @@ impl Worker<'_, '_, '_> {
                                         "a box's output is not the whole output's cut".into()
                                     );
                                 }
-                                write(&out.values).map_err(|e| e.to_string())?;
+                                slabs::value_bytes(&out.values, &mut *write)
+                                    .map_err(|e| e.to_string())?;
                                 let input = Input {
                                     stage: &stage.name,
                                     subject: study.subject(u),
@@ -832,20 +818,126 @@ impl Worker<'_, '_, '_> {
                 .prepared
                 .insert((g, u), (Arc::new(joined), Vec::new()));
         }
+        self.record_result(u, record, started.elapsed().as_secs_f64());
+        Ok(true)
+    }
+
+    /// A stale unit that is not streamed into its consumer: its array, or `None` when it was
+    /// streamed from its producer into the cache without ever being whole in memory (see
+    /// [`Worker::compute_streamed`]).
+    fn compute_spooling(&mut self, u: usize) -> Result<Option<Arc<LabelledArray>>, UnitFailure> {
+        let study = self.ctx.study;
+        let stage = &study.pipeline.stages[study.units[u].stage];
+        match parts::streamed_input(study, u) {
+            Some((p, axis)) if stage.cache && !self.memory.contains_key(&UnitInput::Unit(p)) => {
+                self.compute_streamed((p, u), axis, true)
+            }
+            _ => self.compute(u).map(Some),
+        }
+    }
+
+    /// Producer `p` and its consumer `u` part by part ([`parts`]): the producer gets a record
+    /// without values, the consumer is stored. Returns the consumer's array, joined in memory;
+    /// or, when `spool` allows, `u` is stored and every consumer of `u` could read it in slabs
+    /// ([`Worker::slab_cut`]), `None`: the parts went through a [`slabs::Spool`] into the store
+    /// and `u` was never whole in memory.
+    fn compute_streamed(
+        &mut self,
+        (p, u): (usize, usize),
+        axis: &'static str,
+        spool: bool,
+    ) -> Result<Option<Arc<LabelledArray>>, UnitFailure> {
+        let started = Instant::now();
+        let study = self.ctx.study;
+        let mut held = Vec::new();
+        for &input in &study.units[p].inputs {
+            held.push((input, self.values(input)?));
+        }
+        let mut carried = Vec::new();
+        let inputs = as_inputs(study, &held, &mut carried);
+        let plan =
+            parts::plan(study, (p, u), axis, &inputs).map_err(|(at, e)| self.op_failure(at, &e))?;
+        let spooled = match &plan.consumer_layout {
+            Some(out) if spool && self.slabs_can_read(u, out) => {
+                let k = out.axis(axis).map_err(|e| self.op_failure(u, &e))?;
+                let dir = study.store.root().join("objects");
+                let spool = slabs::Spool::new(&dir, out, k)
+                    .map_err(|e| self.fail(u, format!("cannot spool in {}: {e}", dir.display())))?;
+                Some(spool)
+            }
+            _ => None,
+        };
+        tracing::info!(
+            stage = %study.stage_name(u),
+            subject = ?study.subject(u),
+            "computing in parts{}",
+            if spooled.is_some() { ", spooled" } else { "" }
+        );
+        let (streamed, output) = match spooled {
+            Some(mut spool) => {
+                let streamed = parts::run(study, (p, u), &plan, &inputs, |part| spool.push(&part));
+                (streamed, Err(spool))
+            }
+            None => {
+                let mut joined = parts::Joined::new(&plan).map_err(|e| self.op_failure(u, &e))?;
+                let streamed = parts::run(study, (p, u), &plan, &inputs, |part| joined.push(part));
+                (streamed, Ok(joined))
+            }
+        };
+        let streamed = streamed.map_err(|(at, e)| self.op_failure(at, &e))?;
+        drop(inputs);
+        drop(held);
+        let mut producer_notes = streamed.producer_notes;
+        producer_notes.warnings.splice(0..0, carried);
+        let record = study
+            .store
+            .put_streamed(
+                &plan.producer_layout,
+                streamed.producer_dtype,
+                &producer_notes,
+                &study.fingerprints[p],
+            )
+            .map_err(|e| self.fail(p, e.to_string()))?;
         study
             .store
-            .set_last(&study.last_id(u), &study.fingerprints[u]);
-        let export = self.out.results.get(&u).and_then(|r| r.export.clone());
+            .set_last(&study.last_id(p), &study.fingerprints[p]);
         self.out.results.insert(
-            u,
+            p,
             UnitResult {
                 record,
                 computed: true,
-                seconds: started.elapsed().as_secs_f64(),
-                export,
+                seconds: streamed.producer_seconds,
+                export: None,
             },
         );
-        Ok(true)
+        let notes = &streamed.consumer_notes;
+        let producer_seconds = streamed.producer_seconds;
+        let seconds = || (started.elapsed().as_secs_f64() - producer_seconds).max(0.0);
+        match output {
+            Ok(joined) => {
+                let array = joined.finish().map_err(|e| self.op_failure(u, &e))?;
+                self.store_result(u, array, notes, seconds()).map(Some)
+            }
+            Err(spool) => {
+                let record = match spool.commit(&study.store, &study.fingerprints[u], notes) {
+                    Ok(Ok(record)) => record,
+                    Ok(Err(why)) => return Err(self.fail(u, why)),
+                    Err(e) => return Err(self.fail(u, e.to_string())),
+                };
+                self.record_result(u, record, seconds());
+                Ok(None)
+            }
+        }
+    }
+
+    /// True when every consumer of `u` (whose output has layout `out`) is fresh or could run
+    /// in slabs on it in this chain, so `u` need not be held whole in memory.
+    fn slabs_can_read(&self, u: usize, out: &Layout) -> bool {
+        let study = self.ctx.study;
+        study.consumers[u].iter().all(|&c| {
+            self.ctx.plan.units[c].status == Status::Fresh
+                || study.units[c].subject.is_some() && self.slab_cut(c, out).is_some()
+        })
     }
 
     /// Drop arrays whose last consumer in this chain has run.

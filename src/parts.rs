@@ -72,10 +72,21 @@ fn part_len_within(len: usize, bytes: usize, part: usize) -> usize {
     (part / per_index.max(1)).clamp(1, len.max(1))
 }
 
-/// What a streamed pair of units produced.
-pub struct Streamed {
-    /// The producer's layout (of the whole output it never held).
+/// How a streamed pair of units will run, from the layouts alone.
+pub struct PartPlan {
+    /// The producer's layout (of the whole output it never holds).
     pub producer_layout: Layout,
+    /// The consumer's whole output layout, when its op can say it in advance.
+    pub consumer_layout: Option<Layout>,
+    /// The axis cut into parts.
+    pub axis: &'static str,
+    /// Length of that axis, and indices per part.
+    len: usize,
+    step: usize,
+}
+
+/// What a streamed pair of units produced besides the consumer's parts.
+pub struct Streamed {
     /// The producer's shape and values type.
     pub producer_shape: Vec<usize>,
     /// `<c8` or `<f4`.
@@ -84,19 +95,18 @@ pub struct Streamed {
     pub producer_notes: Notes,
     /// Seconds spent in the producer's parts.
     pub producer_seconds: f64,
-    /// The consumer's joined output.
-    pub output: LabelledArray,
     /// Warnings and records of the consumer's parts (repeated warnings once).
     pub consumer_notes: Notes,
 }
 
-/// Run producer `p` and consumer `u` part by part over the producer's `inputs`.
-pub fn run(
+/// The plan of producer `p` streaming into consumer `u` along `axis`, over the producer's
+/// `inputs`.
+pub fn plan(
     study: &Study<'_>,
     (p, u): (usize, usize),
-    axis: &str,
+    axis: &'static str,
     inputs: &[Input<'_>],
-) -> Result<Streamed, (usize, StageError)> {
+) -> Result<PartPlan, (usize, StageError)> {
     let producer = &study.pipeline.stages[study.units[p].stage];
     let consumer = &study.pipeline.stages[study.units[u].stage];
     let layouts: Vec<InputLayout<'_>> = inputs
@@ -119,24 +129,39 @@ pub fn run(
     let len = whole.coord(axis).map_err(|e| (p, e))?.len();
     let element = if whole.complex { 8 } else { 4 };
     let step = part_len(len, shape.iter().product::<usize>() * element);
-    let (mut producer_notes, mut consumer_notes) = (Notes::default(), Notes::default());
-    let mut producer_seconds = 0.0;
-    // The consumer's output, known in advance from the producer's whole layout, is filled part
-    // by part (each part dropped once copied); an op that cannot say its layout in advance has
-    // its parts kept and joined at the end.
     let whole_input = [InputLayout {
         stage: &producer.name,
         subject: study.subject(p),
         layout: &whole,
     }];
-    let mut joining = match consumer.op.layout(&consumer.params, &whole_input) {
-        Ok(Some(out)) => {
-            let k = out.axis(axis).map_err(|e| (u, e))?;
-            Some(Joining::new(&out.shape(), k, out.complex))
-        }
-        _ => None,
-    };
-    let mut parts = Vec::new();
+    let consumer_layout = consumer
+        .op
+        .layout(&consumer.params, &whole_input)
+        .ok()
+        .flatten();
+    Ok(PartPlan {
+        producer_layout: whole,
+        consumer_layout,
+        axis,
+        len,
+        step,
+    })
+}
+
+/// Run producer `p` and consumer `u` part by part over the producer's `inputs`, handing each
+/// of the consumer's parts to `take` in order along the axis.
+pub fn run(
+    study: &Study<'_>,
+    (p, u): (usize, usize),
+    plan: &PartPlan,
+    inputs: &[Input<'_>],
+    mut take: impl FnMut(LabelledArray) -> Result<(), StageError>,
+) -> Result<Streamed, (usize, StageError)> {
+    let producer = &study.pipeline.stages[study.units[p].stage];
+    let consumer = &study.pipeline.stages[study.units[u].stage];
+    let (len, step) = (plan.len, plan.step);
+    let (mut producer_notes, mut consumer_notes) = (Notes::default(), Notes::default());
+    let mut producer_seconds = 0.0;
     for start in (0..len).step_by(step) {
         let clock = std::time::Instant::now();
         let mut notes = Notes::default();
@@ -162,25 +187,61 @@ pub fn run(
             .run(&consumer.params, &[input], &mut notes)
             .map_err(|e| (u, e))?;
         absorb(&mut consumer_notes, notes);
-        match &mut joining {
-            Some(j) => j.push(&out).map_err(|e| (u, e))?,
-            None => parts.push(out),
-        }
+        take(out).map_err(|e| (u, e))?;
     }
-    let output = match joining {
-        Some(j) => j.finish(),
-        None => LabelledArray::join(&parts, axis),
-    }
-    .map_err(|e| (u, e))?;
+    let whole = &plan.producer_layout;
     Ok(Streamed {
         producer_dtype: if whole.complex { "<c8" } else { "<f4" },
-        producer_shape: shape,
-        producer_layout: whole,
+        producer_shape: whole.shape(),
         producer_notes,
         producer_seconds,
-        output,
         consumer_notes,
     })
+}
+
+/// The consumer's parts joined in memory: filled part by part into the whole output (each part
+/// dropped once copied) when its layout is known in advance, else kept and joined at the end.
+pub struct Joined {
+    joining: Option<Joining>,
+    parts: Vec<LabelledArray>,
+    axis: &'static str,
+}
+
+impl Joined {
+    /// Room for the consumer's whole output as `plan` says it.
+    pub fn new(plan: &PartPlan) -> Result<Joined, StageError> {
+        let joining = match &plan.consumer_layout {
+            Some(out) => {
+                let k = out.axis(plan.axis)?;
+                Some(Joining::new(&out.shape(), k, out.complex))
+            }
+            None => None,
+        };
+        Ok(Joined {
+            joining,
+            parts: Vec::new(),
+            axis: plan.axis,
+        })
+    }
+
+    /// Take the next part.
+    pub fn push(&mut self, part: LabelledArray) -> Result<(), StageError> {
+        match &mut self.joining {
+            Some(j) => j.push(&part),
+            None => {
+                self.parts.push(part);
+                Ok(())
+            }
+        }
+    }
+
+    /// The whole output.
+    pub fn finish(self) -> Result<LabelledArray, StageError> {
+        match self.joining {
+            Some(j) => j.finish(),
+            None => LabelledArray::join(&self.parts, self.axis),
+        }
+    }
 }
 
 /// Adds a part's notes: warnings not seen yet, in order; records of the first part that has

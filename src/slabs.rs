@@ -207,7 +207,7 @@ pub fn npy_header(shape: &[usize], descr: &str) -> Vec<u8> {
 }
 
 /// The values of an array in row-major order, as bytes.
-fn value_bytes(
+pub fn value_bytes(
     values: &Values,
     mut sink: impl FnMut(&[u8]) -> std::io::Result<()>,
 ) -> std::io::Result<()> {
@@ -294,7 +294,7 @@ impl Store {
         layout: &Layout,
         fingerprint: &Fingerprint,
         stored: bool,
-        fill: impl FnOnce(&mut dyn FnMut(&Values) -> std::io::Result<()>) -> Result<Notes, String>,
+        fill: impl FnOnce(&mut dyn FnMut(&[u8]) -> std::io::Result<()>) -> Result<Notes, String>,
     ) -> Result<Result<ObjectRecord, String>, StoreError> {
         let dtype = if layout.complex { "<c8" } else { "<f4" };
         let key = fingerprint.key();
@@ -303,8 +303,8 @@ impl Store {
             let mut tee = HashingWriter::new(out);
             tee.write_all(&npy_header(&layout.shape(), dtype))?;
             let mut failed = None;
-            let notes = fill(&mut |values: &Values| {
-                value_bytes(values, |bytes| tee.write_all(bytes)).inspect_err(|e| {
+            let notes = fill(&mut |bytes: &[u8]| {
+                tee.write_all(bytes).inspect_err(|e| {
                     failed = Some(e.kind());
                 })
             });
@@ -333,6 +333,108 @@ impl Store {
             .with_values(stored, blake3, npy_size);
         store::write_record(&json_path, &record)?;
         Ok(Ok(record))
+    }
+}
+
+/// A unit's output arriving in parts along an inner axis (a streamed consumer's parts, see
+/// [`crate::parts`]), kept in an anonymous temporary file in the cache folder instead of
+/// memory, then written to the store in file order: for each run of rows (the axes before the
+/// part axis, flattened) the rows of every part are read back and interleaved. The NPY is the
+/// same bytes as the joined array's encoding.
+pub struct Spool {
+    file: std::fs::File,
+    layout: Layout,
+    axis: usize,
+    /// Values per index of the part axis in one row.
+    inner: usize,
+    element: usize,
+    /// Each part's length along the axis and its offset in the file.
+    parts: Vec<(usize, u64)>,
+    at: usize,
+    written: u64,
+}
+
+impl Spool {
+    /// An empty spool for an output of `layout`, in parts along axis number `axis`, in a
+    /// temporary file under `dir`.
+    pub fn new(dir: &std::path::Path, layout: &Layout, axis: usize) -> std::io::Result<Spool> {
+        std::fs::create_dir_all(dir)?;
+        let shape = layout.shape();
+        Ok(Spool {
+            file: tempfile::tempfile_in(dir)?,
+            layout: layout.clone(),
+            axis,
+            inner: shape.get(axis + 1..).unwrap_or(&[]).iter().product(),
+            element: if layout.complex { 8 } else { 4 },
+            parts: Vec::new(),
+            at: 0,
+            written: 0,
+        })
+    }
+
+    /// Add the next part (its layout the whole's with the axis cut to the next range).
+    pub fn push(&mut self, part: &LabelledArray) -> Result<(), StageError> {
+        let n = part.values.shape().get(self.axis).copied().unwrap_or(0);
+        let expected = self.layout.slice(self.axis, self.at..self.at + n);
+        if expected.as_ref().ok() != Some(&part.layout) {
+            return Err(StageError::data(format!(
+                "internal: a part of shape {:?} does not continue an output of shape {:?} at {}",
+                part.values.shape(),
+                self.layout.shape(),
+                self.at
+            )));
+        }
+        let io = |e: std::io::Error| StageError::data(format!("cannot spool a part: {e}"));
+        value_bytes(&part.values, |bytes| self.file.write_all(bytes)).map_err(io)?;
+        self.parts.push((n, self.written));
+        self.written += (part.values.shape().iter().product::<usize>() * self.element) as u64;
+        self.at += n;
+        Ok(())
+    }
+
+    /// Write the whole output to the store as the object of `fingerprint`, with `notes`.
+    pub fn commit(
+        self,
+        store: &Store,
+        fingerprint: &Fingerprint,
+        notes: &Notes,
+    ) -> Result<Result<ObjectRecord, String>, StoreError> {
+        let shape = self.layout.shape();
+        if shape.get(self.axis) != Some(&self.at) {
+            return Ok(Err(format!(
+                "internal: {} of {:?} spooled along axis {}",
+                self.at, shape, self.axis
+            )));
+        }
+        let rows: usize = shape[..self.axis].iter().product();
+        let row_bytes = self.at * self.inner * self.element;
+        let step = (slab_bytes() / row_bytes.max(1)).clamp(1, rows.max(1));
+        let parts = &self.parts;
+        let (file, inner, element) = (&self.file, self.inner, self.element);
+        store.put_slabs(&self.layout, fingerprint, true, |write| {
+            use std::os::unix::fs::FileExt;
+            let mut pieces: Vec<Vec<u8>> = vec![Vec::new(); parts.len()];
+            let mut out = Vec::with_capacity(step * row_bytes);
+            for first in (0..rows).step_by(step) {
+                let count = step.min(rows - first);
+                for (piece, &(n, offset)) in pieces.iter_mut().zip(parts) {
+                    let part_row = n * inner * element;
+                    piece.resize(count * part_row, 0);
+                    let at = offset + (first * part_row) as u64;
+                    file.read_exact_at(piece, at)
+                        .map_err(|e| format!("cannot read the spooled parts back: {e}"))?;
+                }
+                out.clear();
+                for r in 0..count {
+                    for (piece, &(n, _)) in pieces.iter().zip(parts) {
+                        let part_row = n * inner * element;
+                        out.extend_from_slice(&piece[r * part_row..(r + 1) * part_row]);
+                    }
+                }
+                write(&out).map_err(|e| e.to_string())?;
+            }
+            Ok(notes.clone())
+        })
     }
 }
 
@@ -407,6 +509,60 @@ mod tests {
                 "k {k}, bytes {bytes}"
             );
         }
+    }
+
+    #[test]
+    fn a_spooled_output_is_stored_as_the_joined_array_would_be() {
+        // Reference: the store's own writer of the whole array (ndarray-npy's NPY encoding).
+        // Parts of uneven lengths along an inner axis and along the first one.
+        let whole = counting(&[2, 3, 5, 7, 4]);
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let fingerprint = |op: &str| Fingerprint {
+            op: op.into(),
+            op_version: 1,
+            params: serde_json::json!({}),
+            inputs: vec![],
+            subject: None,
+        };
+        let notes = Notes::default();
+        let joined = store
+            .put(&whole, &notes, &fingerprint("whole"), true)
+            .unwrap();
+        let want = std::fs::read(store.object_paths(&joined.key).0).unwrap();
+        for (axis, cuts) in [
+            (3, vec![0..2, 2..3, 3..7]),
+            (0, vec![0..1, 1..2]),
+            (4, vec![0..1, 1..4]),
+        ] {
+            let mut spool = Spool::new(dir.path(), &whole.layout, axis).unwrap();
+            let name = &whole.layout.dims[axis];
+            for cut in &cuts {
+                spool
+                    .push(&whole.slice(name, cut.clone()).unwrap())
+                    .unwrap();
+            }
+            let f = fingerprint(&format!("spooled along {axis}"));
+            let record = spool.commit(&store, &f, &notes).unwrap().unwrap();
+            assert_eq!(record.blake3, joined.blake3, "axis {axis}");
+            assert_eq!(record.npy_size, joined.npy_size, "axis {axis}");
+            assert_eq!(record.layout, joined.layout, "axis {axis}");
+            let got = std::fs::read(store.object_paths(&record.key).0).unwrap();
+            assert!(got == want, "axis {axis}");
+            let (loaded, _) = store.load(&record.key).unwrap();
+            assert_eq!(loaded, whole);
+        }
+        // A part out of order is refused.
+        let mut spool = Spool::new(dir.path(), &whole.layout, 3).unwrap();
+        assert!(spool.push(&whole.slice("freq", 2..3).unwrap()).is_err());
+        // Parts that stop short are not committed.
+        spool.push(&whole.slice("freq", 0..2).unwrap()).unwrap();
+        let f = fingerprint("short");
+        assert!(spool.commit(&store, &f, &notes).unwrap().is_err());
+        assert!(matches!(
+            store.lookup(&f.key()),
+            crate::store::Lookup::Absent
+        ));
     }
 
     #[test]

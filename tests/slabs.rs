@@ -1,8 +1,10 @@
 //! A unit computed box by box from its stored input (src/slabs.rs) must give exactly what
 //! computing it whole gives: the same output bytes, records, exports, group results and
-//! warnings. The demo pipeline's baseline is computed whole in a cold run (the clustering
-//! output it reads is still in memory there) and in slabs when only its window changes (the
-//! clustering output is read from the cache); the two are compared byte for byte.
+//! warnings. The reference is the demo pipeline with its wavelet stored, so that nothing
+//! streams: the clustering output is joined in memory and the baseline computed whole from it.
+//! As written (wavelet `cache: false`), the clustering output streams through a spool into the
+//! cache and the baseline reads it in slabs, both in a cold run and when only the baseline's
+//! window changes; each is compared with the reference byte for byte.
 //!
 //! The reference is the whole computation itself, whose ops are checked against numpy elsewhere
 //! (stages/src/ops/baseline.rs, aggregate.rs); what is tested here is that slabs change nothing.
@@ -25,6 +27,12 @@ const AVERAGE: &str = "params: { method: average }";
 /// Run the demo pipeline in `dir` with the baseline `norm` and re-reference as given; returns the manifest and
 /// the runner's log (which says which units ran in slabs).
 fn run(dir: &Path, norm: &str, reference: &str) -> (Value, String) {
+    run_with(dir, norm, reference, false)
+}
+
+/// [`run`], with the wavelet stored (`cache: true`) when `whole`: nothing streams then, so the
+/// clustering output is joined in memory and the baseline computed whole from it.
+fn run_with(dir: &Path, norm: &str, reference: &str, whole: bool) -> (Value, String) {
     let text = std::fs::read_to_string(repo().join("pipelines/demo.yaml")).unwrap();
     let demo = repo().join("demo-data");
     let old = "params: { window: [-0.5, -0.2], mode: subtract }";
@@ -37,7 +45,11 @@ fn run(dir: &Path, norm: &str, reference: &str) -> (Value, String) {
         .replace("../demo-data", demo.to_str().unwrap())
         .replace("output: ../results/demo", "output: results")
         .replace(old, norm)
-        .replace(average, reference);
+        .replace(average, reference)
+        .replace(
+            "cache: false",
+            if whole { "cache: true" } else { "cache: false" },
+        );
     let pipeline = dir.join("p.yaml");
     std::fs::write(&pipeline, text).unwrap();
     let out = Command::new(env!("CARGO_BIN_EXE_phasewise"))
@@ -104,6 +116,27 @@ fn log_lines(log: &str, what: &str) -> usize {
     log.lines().filter(|l| l.contains(what)).count()
 }
 
+/// The units of `stage` computed in both runs, with the same hashes, and every export equal.
+fn assert_same_results((whole, cold): (&Value, &Path), (other, warm): (&Value, &Path)) {
+    assert_eq!(statuses(other, "norm"), statuses(whole, "norm"));
+    assert!(statuses(other, "norm").iter().all(|s| s == "computed"));
+    for stage in ["sync", "norm", "group"] {
+        assert_eq!(
+            hashes(whole, stage),
+            hashes(other, stage),
+            "{stage} differs between whole and slabs"
+        );
+    }
+    let (a, b) = (exports(cold), exports(warm));
+    assert_eq!(
+        a.iter().map(|(n, _)| n).collect::<Vec<_>>(),
+        b.iter().map(|(n, _)| n).collect::<Vec<_>>()
+    );
+    for ((name, x), (_, y)) in a.iter().zip(&b) {
+        assert!(x == y, "exported {name} differs between whole and slabs");
+    }
+}
+
 /// Cold run with `norm` in one folder; in another, a cold run with `before` and then a rerun
 /// with `norm`. Returns both final manifests and logs; the exports must be equal.
 fn cold_and_changed(
@@ -113,8 +146,15 @@ fn cold_and_changed(
     damage: bool,
 ) -> [(Value, String); 2] {
     let (cold, warm) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
-    let whole = run(cold.path(), norm, reference);
-    let (first, _) = run(warm.path(), before, reference);
+    let whole = run_with(cold.path(), norm, reference, true);
+    let (first, first_log) = run(warm.path(), before, reference);
+    // A cold run: the clustering output spooled to the cache, never whole in memory.
+    let subjects = units(&first, "sync").len();
+    assert_eq!(
+        log_lines(&first_log, "computing in parts, spooled"),
+        subjects,
+        "{first_log}"
+    );
     if damage {
         // Flip one byte in the middle of subject 01's stored clustering output.
         let sync = units(&first, "sync")[0]["key"]
@@ -132,24 +172,27 @@ fn cold_and_changed(
         std::fs::write(&npy, bytes).unwrap();
     }
     let changed = run(warm.path(), norm, reference);
-    assert_eq!(statuses(&changed.0, "norm"), statuses(&whole.0, "norm"));
-    assert!(statuses(&changed.0, "norm").iter().all(|s| s == "computed"));
-    for stage in ["sync", "norm", "group"] {
-        assert_eq!(
-            hashes(&whole.0, stage),
-            hashes(&changed.0, stage),
-            "{stage} differs between whole and slabs"
-        );
-    }
-    let (a, b) = (exports(cold.path()), exports(warm.path()));
-    assert_eq!(
-        a.iter().map(|(n, _)| n).collect::<Vec<_>>(),
-        b.iter().map(|(n, _)| n).collect::<Vec<_>>()
-    );
-    for ((name, x), (_, y)) in a.iter().zip(&b) {
-        assert!(x == y, "exported {name} differs between whole and slabs");
-    }
+    assert_eq!(hashes(&whole.0, "sync"), hashes(&first, "sync"));
+    assert_same_results((&whole.0, cold.path()), (&changed.0, warm.path()));
     [whole, changed]
+}
+
+#[test]
+fn a_cold_run_spooled_and_in_slabs_gives_the_bits_of_a_whole_run() {
+    let norm = "params: { window: [-0.45, -0.2], mode: percent }";
+    let (cold, streamed) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    let whole = run_with(cold.path(), norm, AVERAGE, true);
+    let (other, log) = run(streamed.path(), norm, AVERAGE);
+    let subjects = units(&other, "norm").len();
+    assert_eq!(
+        log_lines(&log, "computing in parts, spooled"),
+        subjects,
+        "{log}"
+    );
+    assert_eq!(log_lines(&log, "computing in slabs"), subjects, "{log}");
+    assert_eq!(log_lines(&log, "computed whole"), 0, "{log}");
+    assert_same_results((&whole.0, cold.path()), (&other, streamed.path()));
+    assert_eq!(whole.0["warnings"], other["warnings"]);
 }
 
 #[test]
@@ -158,13 +201,14 @@ fn a_baseline_change_computed_in_slabs_gives_the_bits_of_a_whole_run() {
     let before = "params: { window: [-0.5, -0.2], mode: zscore }";
     let [(whole, whole_log), (changed, log)] = cold_and_changed(norm, before, AVERAGE, false);
     let subjects = units(&changed, "norm").len();
-    // The cold run had the clustering output in memory; the rerun read it from the cache in
+    // The reference had the clustering output in memory; the rerun read it from the cache in
     // slabs, every subject.
     assert_eq!(
         log_lines(&whole_log, "computing in slabs"),
         0,
         "{whole_log}"
     );
+    assert_eq!(log_lines(&whole_log, "spooled"), 0, "{whole_log}");
     assert_eq!(log_lines(&log, "computing in slabs"), subjects, "{log}");
     assert_eq!(log_lines(&log, "computed whole"), 0, "{log}");
     assert_eq!(whole["warnings"], changed["warnings"]);
