@@ -60,7 +60,7 @@ SIZES = {
             "base": {"subjects": 1, "channels": 32, "trials": 100, "rate": 250, "freqs": 12},
             "trials": [50, 100, 200, 400],
             "channels": [16, 32, 48, 64],
-            "freqs": [6, 12, 24, 48],
+            "freqs": [6, 12, 24, 48, 96],
         },
     },
 }
@@ -146,6 +146,10 @@ def freq_set(count):
     spec = dict(FREQ_RANGE, count=count)
     inner = ", ".join(f"{k}: {v}" for k, v in spec.items())
     return f"tf.freqs={{{inner}}}"
+
+
+# The part size of the wavelet's streaming into the clustering op (PART_BYTES in src/parts.rs).
+PART_BYTES = 48 << 20
 
 
 def run_phasewise(folder, sets, cache, fresh=True, jobs=None, pipeline="pipeline.yaml", env=None):
@@ -505,6 +509,23 @@ def scaling(rep, folder, size):
             fit["rss"] = slope(xs, [p["rss"] for p in points])
             rep.say(f"  peak RSS vs freqs: {points[0]['rss']:.0f} → {points[-1]['rss']:.0f} MiB "
                     f"(log-log slope {fit['rss']:.2f})")
+            # The wavelet streams into the clustering op in parts of at most PART_BYTES of
+            # coefficients (src/parts.rs): below one part's worth of frequencies the whole
+            # output is one part and grows with the count; above it, memory should not.
+            tf = next(u for u in r["manifest"]["units"] if u["stage"] == "tf")
+            shape = tf["outputs"][0]["shape"]  # [channel, trial, freq, time], complex f32
+            per_freq = shape[0] * shape[1] * shape[3] * 8
+            per_part = max(1, PART_BYTES // per_freq)
+            above = [p for p in points if p["value"] >= per_part]
+            note = ""
+            if len(above) >= 2:
+                fit["rss_above_part"] = slope([p["value"] for p in above], [p["rss"] for p in above])
+                note = (f"; over the {len(above)} sizes of at least that many: "
+                        + " → ".join(f"{p['rss']:.0f}" for p in above)
+                        + f" MiB (log-log slope {fit['rss_above_part']:.2f})")
+            rep.say(f"  one wavelet part (<= {PART_BYTES >> 20} MiB of coefficients, "
+                    f"{per_freq / 2**20:.1f} MiB per frequency here) holds {per_part} "
+                    f"frequencies{note}")
         results[axis] = {"points": points, "slopes": fit}
     rep.data["scaling"] = results
 

@@ -5,8 +5,11 @@
 //! P's only consumer and P is C's only input, P's op computes parts along an axis
 //! (`part_axis`) and C's op slices along that same axis (`slices_along`). The executor then never
 //! holds P's whole output: it computes P a part at a time (a range along the axis), runs C on
-//! each part and joins C's parts. Peak memory holds one part of P instead of all of it, so it
-//! no longer grows with the length of that axis (for the wavelet: the number of frequencies).
+//! each part and hands C's parts on: joined in memory ([`Joined`]), or, when C is stored and
+//! every consumer of C can read it in slabs, through a spool file into the cache
+//! ([`crate::slabs::Spool`]), so C is never whole in memory either. Peak memory holds one part
+//! of P instead of all of it, so it no longer grows with the length of that axis (for the
+//! wavelet: the number of frequencies) once the axis is longer than one part.
 //!
 //! The parts are fixed by the sizes alone ([`part_len`]), and both ops promise the same bits
 //! as whole runs, so outputs do not depend on whether a unit streamed.
@@ -87,8 +90,6 @@ pub struct PartPlan {
 
 /// What a streamed pair of units produced besides the consumer's parts.
 pub struct Streamed {
-    /// The producer's shape and values type.
-    pub producer_shape: Vec<usize>,
     /// `<c8` or `<f4`.
     pub producer_dtype: &'static str,
     /// Warnings and records of the producer's parts (repeated warnings once).
@@ -192,7 +193,6 @@ pub fn run(
     let whole = &plan.producer_layout;
     Ok(Streamed {
         producer_dtype: if whole.complex { "<c8" } else { "<f4" },
-        producer_shape: whole.shape(),
         producer_notes,
         producer_seconds,
         consumer_notes,

@@ -17,6 +17,11 @@
 //! input damaged, an op that notes something about a box (a warning would then speak of the box
 //! alone), a box whose layout is not the whole output's cut — gives up, and the runner computes
 //! the unit whole as before. So outputs, warnings and records are those of a whole run.
+//!
+//! The other half is [`Spool`]: a stored unit that streams from its producer in parts along an
+//! inner axis (the clustering output, in ranges of frequencies) is written to the store through
+//! a temporary file when every consumer can read it in slabs, instead of being joined in memory.
+//! With both, the chain after the wavelet holds one part and one box at a time.
 
 use std::io::Write;
 use std::ops::Range;
