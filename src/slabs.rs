@@ -320,7 +320,8 @@ impl Store {
             Ok(notes.map(|n| (n, hash, len)))
         };
         let written = if stored {
-            store::write_then_rename(&npy_path, false, |file| write(file))
+            let abort = std::env::var_os(store::ABORT_BEFORE_RENAME).is_some();
+            store::write_then_rename(&npy_path, abort, |file| write(file))
         } else {
             write(&mut std::io::sink())
         };
@@ -417,7 +418,8 @@ impl Spool {
         let parts = &self.parts;
         let (file, inner, element) = (&self.file, self.inner, self.element);
         store.put_slabs(&self.layout, fingerprint, true, |write| {
-            use std::os::unix::fs::FileExt;
+            use std::io::{Read, Seek, SeekFrom};
+            let mut file = file;
             let mut pieces: Vec<Vec<u8>> = vec![Vec::new(); parts.len()];
             let mut out = Vec::with_capacity(step * row_bytes);
             for first in (0..rows).step_by(step) {
@@ -426,7 +428,8 @@ impl Spool {
                     let part_row = n * inner * element;
                     piece.resize(count * part_row, 0);
                     let at = offset + (first * part_row) as u64;
-                    file.read_exact_at(piece, at)
+                    file.seek(SeekFrom::Start(at))
+                        .and_then(|_| file.read_exact(piece))
                         .map_err(|e| format!("cannot read the spooled parts back: {e}"))?;
                 }
                 out.clear();
