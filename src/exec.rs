@@ -742,7 +742,7 @@ impl Worker<'_, '_, '_> {
         let Some((k, out_layout, groups)) = self.slab_cut(u, &record.layout) else {
             return Ok(false);
         };
-        if !record.stored || out_layout.shape() != record.shape {
+        if !record.stored {
             return Ok(false);
         }
         let group_stages: Vec<_> = groups

@@ -102,7 +102,7 @@ pub fn box_layout(whole: &Layout, b: &SlabBox) -> Result<Layout, StageError> {
         });
     }
     let cut_dims = whole.dims.get(..=cut).unwrap_or(&whole.dims);
-    if cut >= whole.coords.len() || cut_dims.iter().any(|d| d == "channel" || d == "trial") {
+    if cut >= whole.coords.len() || !cut_dims.iter().all(|d| Layout::can_cut(d)) {
         return Err(StageError::data(format!(
             "internal: cannot cut [{}] into boxes after {} axes",
             whole.dims.join(", "),
@@ -307,14 +307,16 @@ impl Store {
         let write = |out: &mut dyn Write| -> std::io::Result<Result<(Notes, String, u64), String>> {
             let mut tee = HashingWriter::new(out);
             tee.write_all(&npy_header(&layout.shape(), dtype))?;
+            // A write error is the caller's failure to report (a full disk, say), not the
+            // fill's reason to give up, so it is kept whole and passed on as an I/O error.
             let mut failed = None;
             let notes = fill(&mut |bytes: &[u8]| {
                 tee.write_all(bytes).inspect_err(|e| {
-                    failed = Some(e.kind());
+                    failed = Some(std::io::Error::new(e.kind(), e.to_string()));
                 })
             });
-            if let Some(kind) = failed {
-                return Err(kind.into());
+            if let Some(e) = failed {
+                return Err(e);
             }
             let (hash, len, _) = tee.finish();
             Ok(notes.map(|n| (n, hash, len)))

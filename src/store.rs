@@ -217,7 +217,7 @@ impl<W: Write> Write for HashingWriter<W> {
 /// Below this many bytes one thread hashes; above, blake3 splits the work over the rayon pool.
 const PARALLEL_HASH_BYTES: usize = 1 << 20;
 
-pub(crate) fn hash_update(hasher: &mut blake3::Hasher, bytes: &[u8]) {
+fn hash_update(hasher: &mut blake3::Hasher, bytes: &[u8]) {
     if bytes.len() >= PARALLEL_HASH_BYTES {
         hasher.update_rayon(bytes);
     } else {

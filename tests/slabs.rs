@@ -116,7 +116,8 @@ fn log_lines(log: &str, what: &str) -> usize {
     log.lines().filter(|l| l.contains(what)).count()
 }
 
-/// The units of `stage` computed in both runs, with the same hashes, and every export equal.
+/// Every baseline unit computed in both runs; the clustering, baseline and group outputs with
+/// the same hashes; every export byte for byte equal.
 fn assert_same_results((whole, cold): (&Value, &Path), (other, warm): (&Value, &Path)) {
     assert_eq!(statuses(other, "norm"), statuses(whole, "norm"));
     assert!(statuses(other, "norm").iter().all(|s| s == "computed"));
@@ -137,6 +138,16 @@ fn assert_same_results((whole, cold): (&Value, &Path), (other, warm): (&Value, &
     }
 }
 
+/// A cold [`run`] in which every subject's clustering output was spooled to the cache, never
+/// whole in memory.
+fn spooled_run(dir: &Path, norm: &str, reference: &str) -> (Value, String) {
+    let (manifest, log) = run(dir, norm, reference);
+    let subjects = units(&manifest, "sync").len();
+    let spooled = log_lines(&log, "computing in parts, spooled");
+    assert_eq!(spooled, subjects, "{log}");
+    (manifest, log)
+}
+
 /// Cold run with `norm` in one folder; in another, a cold run with `before` and then a rerun
 /// with `norm`. Returns both final manifests and logs; the exports must be equal.
 fn cold_and_changed(
@@ -147,14 +158,7 @@ fn cold_and_changed(
 ) -> [(Value, String); 2] {
     let (cold, warm) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
     let whole = run_with(cold.path(), norm, reference, true);
-    let (first, first_log) = run(warm.path(), before, reference);
-    // A cold run: the clustering output spooled to the cache, never whole in memory.
-    let subjects = units(&first, "sync").len();
-    assert_eq!(
-        log_lines(&first_log, "computing in parts, spooled"),
-        subjects,
-        "{first_log}"
-    );
+    let (first, _) = spooled_run(warm.path(), before, reference);
     if damage {
         // Flip one byte in the middle of subject 01's stored clustering output.
         let sync = units(&first, "sync")[0]["key"]
@@ -182,13 +186,8 @@ fn a_cold_run_spooled_and_in_slabs_gives_the_bits_of_a_whole_run() {
     let norm = "params: { window: [-0.45, -0.2], mode: percent }";
     let (cold, streamed) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
     let whole = run_with(cold.path(), norm, AVERAGE, true);
-    let (other, log) = run(streamed.path(), norm, AVERAGE);
+    let (other, log) = spooled_run(streamed.path(), norm, AVERAGE);
     let subjects = units(&other, "norm").len();
-    assert_eq!(
-        log_lines(&log, "computing in parts, spooled"),
-        subjects,
-        "{log}"
-    );
     assert_eq!(log_lines(&log, "computing in slabs"), subjects, "{log}");
     assert_eq!(log_lines(&log, "computed whole"), 0, "{log}");
     assert_same_results((&whole.0, cold.path()), (&other, streamed.path()));

@@ -277,13 +277,18 @@ impl Layout {
             .ok_or_else(|| StageError::data(format!("the `{name}` axis does not hold labels")))
     }
 
+    /// False for axes with metadata parallel to them (`channel`, `trial`), which cannot be cut
+    /// by their coordinate alone.
+    pub fn can_cut(axis: &str) -> bool {
+        !matches!(axis, "channel" | "trial")
+    }
+
     /// The layout of the slice `range` of axis number `k`: that axis' coordinate cut, the rest
     /// unchanged. Axes with metadata parallel to them (`channel`, `trial`) cannot be cut this
     /// way.
     pub fn slice(&self, k: usize, range: std::ops::Range<usize>) -> Result<Layout, StageError> {
         let axis = self.dims.get(k).map(String::as_str).unwrap_or("?");
-        if matches!(axis, "channel" | "trial") || range.start > range.end || k >= self.coords.len()
-        {
+        if !Layout::can_cut(axis) || range.start > range.end || k >= self.coords.len() {
             return Err(StageError::data(format!(
                 "internal: cannot cut axis {axis} to {range:?}"
             )));
