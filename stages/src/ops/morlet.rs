@@ -126,7 +126,9 @@ pub struct Bank {
     nfft: usize,
     folded: usize,
     keep: Keep,
-    /// Per wavelet: the real spectrum C of the centred taps, times 1/(2N).
+    /// Per wavelet: the real spectrum C of the centred taps, times 1/(2N), each bin's value
+    /// twice in a row (`[C[0], C[0], C[1], C[1], …]`), so that it lines up with the interleaved
+    /// real and imaginary parts of a signal's spectrum and a fold is a plain element-wise loop.
     spectra: Vec<Vec<f64>>,
     forward: Arc<dyn Fft<f64>>,
     inverse: Arc<dyn Fft<f64>>,
@@ -135,9 +137,10 @@ pub struct Bank {
 /// Per-thread buffers for [`Bank::transform`].
 pub struct Scratch {
     pair: Vec<Complex64>,
-    /// Per bin j: [Re X̃[j], Im X̃[j], Re Ỹ[j], Im Ỹ[j]] (both signals' spectra side by side,
-    /// so a fold multiplies one bin of both by the wavelet's spectrum in one vector operation).
-    xy: Vec<[f64; 4]>,
+    /// The first signal's spectrum X̃, interleaved: `[Re X̃[0], Im X̃[0], Re X̃[1], …]`.
+    x: Vec<f64>,
+    /// The second signal's spectrum Ỹ, laid out the same way.
+    y: Vec<f64>,
     folded: Vec<Complex64>,
     fft: Vec<Complex64>,
 }
@@ -167,7 +170,7 @@ impl Bank {
                     spec[(n + nfft - h) % nfft] = tap;
                 }
                 forward.process_with_scratch(&mut spec, &mut scratch);
-                spec.iter().map(|v| v.re * scale).collect()
+                spec.iter().flat_map(|v| [v.re * scale; 2]).collect()
             })
             .collect();
         Bank {
@@ -211,7 +214,8 @@ impl Bank {
             .max(self.inverse.get_inplace_scratch_len());
         Scratch {
             pair: vec![Complex64::default(); self.nfft],
-            xy: vec![[0.0; 4]; self.nfft],
+            x: vec![0.0; 2 * self.nfft],
+            y: vec![0.0; 2 * self.nfft],
             folded: vec![Complex64::default(); 2 * self.folded],
             fft: vec![Complex64::default(); fft_len],
         }
@@ -260,8 +264,8 @@ impl Bank {
         }
     }
 
-    /// Spectra of `x` and `y` (empty: zeros), each rotated by −start, into `s.xy`, each
-    /// times 2 (the 1/2 is in the wavelets' spectra).
+    /// Spectra of `x` and `y` (empty: zeros), each rotated by −start, into `s.x` and `s.y`,
+    /// each times 2 (the 1/2 is in the wavelets' spectra).
     #[inline(always)]
     fn pair(&self, x: &[f32], y: &[f32], s: &mut Scratch) {
         let (n, start) = (self.nfft, self.keep.start);
@@ -285,12 +289,14 @@ impl Bank {
         self.forward.process_with_scratch(&mut s.pair, &mut s.fft);
         // Bin 0 pairs with itself, bin j ≥ 1 with N − j.
         let mirrored = std::iter::once(&s.pair[0]).chain(s.pair[1..].iter().rev());
-        for ((xy, &z), m) in s.xy.iter_mut().zip(&s.pair).zip(mirrored) {
+        let bins = s.x.chunks_exact_mut(2).zip(s.y.chunks_exact_mut(2));
+        for (((x, y), &z), m) in bins.zip(&s.pair).zip(mirrored) {
             let c = m.conj();
-            let x = z + c;
+            let sum = z + c;
             let d = z - c;
             // (Z − Z*) / i = −i (Z − Z*).
-            *xy = [x.re, x.im, d.im, -d.re];
+            x.copy_from_slice(&[sum.re, sum.im]);
+            y.copy_from_slice(&[d.im, -d.re]);
         }
     }
 
@@ -302,25 +308,9 @@ impl Bank {
         let count = self.keep.count;
         debug_assert!(count <= p);
         for (w, spec) in self.spectra.iter().enumerate() {
-            let (fx, fy) = s.folded.split_at_mut(p);
-            // F[q] = Σ_r X̃[q + rP] C[q + rP], summed in order r = 0, 1, …, k' − 1, for both
-            // signals at once; each bin's sum stays in a register until it is stored.
-            let rows = s.xy.len() / p;
-            for (q, (a, b)) in fx.iter_mut().zip(fy.iter_mut()).enumerate() {
-                let mul = |j: usize| {
-                    let (v, c) = (&s.xy[j], spec[j]);
-                    [v[0] * c, v[1] * c, v[2] * c, v[3] * c]
-                };
-                let mut acc = mul(q);
-                for r in 1..rows {
-                    let t = mul(q + r * p);
-                    for (acc, t) in acc.iter_mut().zip(t) {
-                        *acc += t;
-                    }
-                }
-                *a = Complex64::new(acc[0], acc[1]);
-                *b = Complex64::new(acc[2], acc[3]);
-            }
+            let folded: &mut [f64] = bytemuck::cast_slice_mut(&mut s.folded);
+            let (fx, fy) = folded.split_at_mut(2 * p);
+            fold(fx, fy, &s.x, &s.y, spec);
             self.inverse.process_with_scratch(&mut s.folded, &mut s.fft);
             let rows = [(&mut *out_x, 0), (&mut *out_y, p)];
             for (out, at) in rows {
@@ -330,6 +320,62 @@ impl Bank {
                     }
                 }
             }
+        }
+    }
+}
+
+/// F[q] = Σ_r X̃[q + rP] C[q + rP] for both signals of a pair, on interleaved values:
+/// `fx[i] = Σ_r x[i + r·n] · spec[i + r·n]` with n = `fx.len()`, and the same for `fy` from `y`,
+/// summed in order r = 0, 1, … (each element's sum its own, so the order, and the bits, do not
+/// depend on how the loops are vectorised). Each pass reads a run of the wavelet's spectrum once
+/// for both signals. The aliases after the first are taken three at a time, so the folded
+/// values are read and written once per three (the common stride 4 is two passes); each pass is
+/// a plain element-wise loop that the compiler vectorises.
+#[inline(always)]
+fn fold(fx: &mut [f64], fy: &mut [f64], x: &[f64], y: &[f64], spec: &[f64]) {
+    let n = fx.len();
+    debug_assert!(n > 0 && fy.len() == n);
+    debug_assert!(x.len() == spec.len() && y.len() == spec.len() && spec.len().is_multiple_of(n));
+    let mut rows = x
+        .chunks_exact(n)
+        .zip(y.chunks_exact(n))
+        .zip(spec.chunks_exact(n));
+    let Some(((x0, y0), c0)) = rows.next() else {
+        return;
+    };
+    let dst = fx.iter_mut().zip(fy.iter_mut());
+    for ((a, b), ((x, y), c)) in dst.zip(x0.iter().zip(y0).zip(c0)) {
+        *a = x * c;
+        *b = y * c;
+    }
+    loop {
+        let dst = fx.iter_mut().zip(fy.iter_mut());
+        match (rows.next(), rows.next(), rows.next()) {
+            (Some(((xa, ya), ca)), Some(((xb, yb), cb)), Some(((xc, yc), cc))) => {
+                let terms = (xa.iter().zip(ya).zip(ca))
+                    .zip(xb.iter().zip(yb).zip(cb))
+                    .zip(xc.iter().zip(yc).zip(cc));
+                for ((a, b), ((((xa, ya), ca), ((xb, yb), cb)), ((xc, yc), cc))) in dst.zip(terms) {
+                    *a = ((*a + xa * ca) + xb * cb) + xc * cc;
+                    *b = ((*b + ya * ca) + yb * cb) + yc * cc;
+                }
+            }
+            (Some(((xa, ya), ca)), Some(((xb, yb), cb)), None) => {
+                let terms = (xa.iter().zip(ya).zip(ca)).zip(xb.iter().zip(yb).zip(cb));
+                for ((a, b), (((xa, ya), ca), ((xb, yb), cb))) in dst.zip(terms) {
+                    *a = (*a + xa * ca) + xb * cb;
+                    *b = (*b + ya * ca) + yb * cb;
+                }
+                return;
+            }
+            (Some(((xa, ya), ca)), None, None) => {
+                for ((a, b), ((xa, ya), ca)) in dst.zip(xa.iter().zip(ya).zip(ca)) {
+                    *a += xa * ca;
+                    *b += ya * ca;
+                }
+                return;
+            }
+            _ => return,
         }
     }
 }
