@@ -342,12 +342,22 @@ def full_chain(rep, folder, size, reps):
                                         "peer": [r["wall"] for r in peer_runs]}}
 
 
-def chain_stride():
-    """The wavelet's `stride` in bench/chain.yaml (the bench changes only its frequency count)."""
+def chain_tf():
+    """The wavelet's params in bench/chain.yaml (the bench changes only its frequency count)."""
     import yaml
 
     with open(os.path.join(BENCH, "chain.yaml")) as fh:
-        return yaml.safe_load(fh)["stages"]["tf"]["params"].get("stride", 1)
+        return yaml.safe_load(fh)["stages"]["tf"]["params"]
+
+
+def op_fft_min_len(epoch_len, start, stride, count, half):
+    """The shortest circular convolution the wavelet op uses (`reach` in stages/src/ops/morlet.rs,
+    derived there): only samples [lo, hi) within a wavelet's half-length `half` of the kept ones
+    enter the FFT, and N >= max(hi - start + half, last + half + 1 - lo) leaves every kept
+    coefficient free of wrap-around. Mirrored here so bench/fft times the op's own lengths."""
+    last = start + stride * (count - 1)
+    lo, hi = max(0, start - half), min(epoch_len, last + half + 1)
+    return max(hi - start + half, last + half + 1 - lo)
 
 
 def wavelet_vs_fft(rep, folder, size, tries=3):
@@ -356,8 +366,10 @@ def wavelet_vs_fft(rep, folder, size, tries=3):
     runs, since unit seconds are wall times and other processes on the machine inflate them.
     bench/fft times the op's transforms (one forward FFT of length N per pair of real signals,
     one inverse of length N/stride per signal and frequency, N the smallest multiple of the
-    stride of the form stride x 2,3,5-smooth that is >= epoch + longest wavelet - 1) and, for
-    context, the naive count (per signal 1 forward + F inverse of the smooth length >= that)."""
+    stride of the form stride x 2,3,5-smooth that is >= the op's shortest circular convolution
+    reaching every kept coefficient, see op_fft_min_len) and, for context, the naive count (per
+    signal 1 forward + F inverse of the smooth length >= epoch + longest wavelet - 1, the full
+    linear convolution a plain implementation such as the peer transforms)."""
     sub = os.path.join(folder, "fft-one-subject")
     simulate(sub, dict(size["study"], subjects=1))
     cache = os.path.join(sub, "cache")
@@ -392,11 +404,14 @@ def wavelet_vs_fft(rep, folder, size, tries=3):
     rate = float(size["study"]["rate"])
     times = np.arange(epoch_len) / rate - 1.0
     p = {"freqs": dict(FREQ_RANGE, count=size["freqs"]), "cycles": {"from": 3, "to": 8}}
-    freqs, taps, _, _, _, _ = peer.wavelet_plan(times, rate, p)
-    min_len = epoch_len + max(len(w) for w in taps) - 1  # DESIGN §4: no wrap-around
-    stride = int(chain_stride())
+    tf = chain_tf()
+    p["crop"], p["stride"] = tf.get("crop"), int(tf.get("stride", 1))
+    freqs, taps, start, stride, count, _ = peer.wavelet_plan(times, rate, p)
+    assert count == kept, (count, kept)
+    naive_len = epoch_len + max(len(w) for w in taps) - 1  # the full linear convolution
+    min_len = op_fft_min_len(epoch_len, start, stride, count, max(len(w) for w in taps) // 2)
     out = subprocess.run([FFT_BIN, str(min_len), str(stride), str(signals), str(len(freqs)), "1", "3",
-                          str(kept)], check=True, capture_output=True, text=True).stdout
+                          str(kept), str(naive_len)], check=True, capture_output=True, text=True).stdout
     fft = json.loads(out)
     bare, naive, write = fft["seconds"], fft["naive_seconds"], fft["output_seconds"]
     ratio = op / bare

@@ -2,7 +2,9 @@
 //! context the transforms of the naive plan.
 //!
 //! The op (stages/src/ops/morlet.rs) convolves each signal with `freqs` wavelets through FFTs of
-//! a length N ≥ `min_len` (epoch + longest wavelet − 1) that is a multiple of the stride k:
+//! a length N ≥ `min_len` that is a multiple of the stride k (`min_len` is the op's shortest
+//! circular convolution that reaches every kept coefficient without wrap-around: the kept span
+//! plus the longest wavelet's length, clipped at the epoch's ends; `reach` in morlet.rs):
 //! N = k · m with m the smallest 2,3,5-smooth number ≥ ⌈min_len / k⌉. Two real signals share one
 //! forward complex FFT of length N; per signal and wavelet, the spectrum folded onto N/k bins
 //! goes through one inverse complex FFT of length N/k. So for `signals` signals this times
@@ -11,7 +13,8 @@
 //! folded buffer per wavelet).
 //!
 //! For context it also times the naive count: per signal one forward and `freqs` inverse FFTs
-//! of the plain smooth length ≥ `min_len` (what the op did before it folded and paired).
+//! of the plain smooth length ≥ `naive_len` (default `min_len`; the harness passes epoch +
+//! longest wavelet − 1, the full linear convolution a plain implementation transforms).
 //!
 //! With KEPT (the op's kept time points per signal and frequency), it also times what the op
 //! must do besides transforms whatever its algorithm: write its output, `signals · freqs · kept`
@@ -22,7 +25,7 @@
 //! Signals are split into `threads` contiguous blocks, one thread each; best of `reps`. Prints
 //! one JSON line: `{"seconds": <op's transforms>, "naive_seconds": ..., ...}`.
 //!
-//! Usage: `phasewise-bench-fft MIN_LEN STRIDE SIGNALS FREQS THREADS REPS [KEPT]`
+//! Usage: `phasewise-bench-fft MIN_LEN STRIDE SIGNALS FREQS THREADS REPS [KEPT [NAIVE_LEN]]`
 
 use std::time::Instant;
 
@@ -38,6 +41,7 @@ struct Job {
     threads: usize,
     reps: usize,
     kept: Option<usize>,
+    naive_len: usize,
 }
 
 /// One plan of transforms: per group of `per_forward` signals one forward FFT of `forward`
@@ -57,9 +61,10 @@ fn parse() -> Result<Job, String> {
                 .map_err(|_| format!("`{a}` is not a whole number"))
         })
         .collect::<Result<_, _>>()?;
-    let (fixed, kept) = match args.len() {
-        7 => (&args[..6], Some(args[6])),
-        _ => (&args[..], None),
+    let (fixed, kept, naive) = match args.len() {
+        7 => (&args[..6], Some(args[6]), None),
+        8 => (&args[..6], Some(args[6]), Some(args[7])),
+        _ => (&args[..], None, None),
     };
     match fixed[..] {
         [min_len, stride, signals, freqs, threads, reps]
@@ -73,10 +78,11 @@ fn parse() -> Result<Job, String> {
                 threads,
                 reps,
                 kept,
+                naive_len: naive.unwrap_or(min_len).max(1),
             })
         }
         _ => Err(
-            "usage: phasewise-bench-fft MIN_LEN STRIDE SIGNALS FREQS THREADS REPS [KEPT] (all but SIGNALS, FREQS > 0)"
+            "usage: phasewise-bench-fft MIN_LEN STRIDE SIGNALS FREQS THREADS REPS [KEPT [NAIVE_LEN]] (all but SIGNALS, FREQS > 0)"
                 .into(),
         ),
     }
@@ -190,7 +196,7 @@ fn main() {
         inverse: nfft / job.stride,
         per_forward: 2,
     };
-    let naive_len = fast_len(job.min_len);
+    let naive_len = fast_len(job.naive_len);
     let naive = Plan {
         forward: naive_len,
         inverse: naive_len,

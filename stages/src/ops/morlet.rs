@@ -85,15 +85,26 @@ pub fn plan_len(min: usize, stride: usize) -> usize {
 // (w(k) at time k/fs). The op keeps y[t] = Σ_k w(k) x[t − k] ("same" alignment) at t = s + k'·m,
 // with s the first kept sample, k' the stride and m = 0 … count − 1.
 //
-// Circular form. Take N ≥ T + 2h (= epoch + longest wavelet − 1) and the centred wavelet
-// c[k mod N] = w(k) (zeros elsewhere). For 0 ≤ t < T, the circular sum Σ_k c[k] x[(t − k) mod N]
-// equals y[t]: an index t − k outside [0, T) lies in [−h, −1] or [T, T + h − 1], which modulo N
-// falls in [N − h, N − 1] or [T, T + h − 1], both inside the zero padding [T, N) because
-// N − h ≥ T + h. So with DFTs X[j] = Σ_n x[n] e^{−2πi jn/N} and C[j] = Σ_n c[n] e^{−2πi jn/N},
-//     y[t] = (1/N) Σ_{j=0}^{N−1} X[j] C[j] e^{2πi jt/N}.
+// The samples that matter. Let b = s + k'(count − 1) be the last kept sample. A kept y[t] reads
+// x only at t − k ∈ [s − h, b + h], so only the samples in [lo, hi) = [max(0, s − h),
+// min(T, b + h + 1)) reach a kept coefficient; the others are set to zero (x' below), which
+// changes no kept coefficient.
+//
+// Circular form. Take N ≥ max(hi − s + h, b + h + 1 − lo) and the centred wavelet
+// c[j] = Σ_{k ≡ j mod N} w(k) (the taps placed at their lags modulo N, added where a short N
+// makes them meet). For a kept t, the circular sum Σ_j c[j] x'[(t − j) mod N] = Σ_k w(k)
+// x'[(t − k) mod N] equals y[t], because every index t − k ∈ [s − h, b + h] outside [lo, hi)
+// lands, modulo N, where x' is zero: if t − k < 0 then t − k + N ∈ [s − h + N, N) ⊆ [hi, N)
+// (N ≥ hi − s + h); if 0 ≤ t − k < lo it is itself below lo; if t − k ≥ hi then either t − k < N
+// (the zero padding [hi, N)) or t − k − N ∈ [0, lo) (t − k ≤ b + h < N + lo). This bound is at
+// most the kept span plus the wavelet's length, b − s + 2h + 1, and never more than the full
+// linear convolution's T + 2h; wrap-around of the full convolution's tails lands only on
+// coefficients that are not kept. So with DFTs X[j] = Σ_n x'[n] e^{−2πi jn/N} and
+// C[j] = Σ_n c[n] e^{−2πi jn/N},
+//     y[t] = (1/N) Σ_{j=0}^{N−1} X[j] C[j] e^{2πi jt/N}   for every kept t.
 //
 // C is real. The taps are Hermitian, w(−k) = conj w(k) (an even Gaussian times e^{2πi f t} at
-// t_{−k} = −t_k; checked by a test), so
+// t_{−k} = −t_k; checked by a test), and so is c (c[−j mod N] = conj c[j], wrapped or not), so
 // C[j] = w(0) + Σ_{k≥1} 2 Re(w(k) e^{−2πi jk/N}). The FFT of c gives it up to rounding; its
 // imaginary part (rounding only) is dropped. Each bin then costs two real multiplies per signal.
 //
@@ -106,7 +117,7 @@ pub fn plan_len(min: usize, stride: usize) -> usize {
 //     y[s + k'm] = Σ_{q=0}^{P−1} e^{2πi qm/P} F[q],   F[q] = (1/N) Σ_{r=0}^{k'−1} X̃[q + rP] C[q + rP],
 // with X̃ the rotated signal's DFT: an (unnormalised) inverse DFT of length P of the product
 // folded onto P bins (the k' aliases of each bin summed). m stays below P because
-// s + k'(count − 1) ≤ T − 1 < N. This is the same sum as the full-length inverse transform
+// k'(count − 1) = b − s < N (N ≥ b + h + 1 − lo and lo ≤ s). This is the same sum as the full-length inverse transform
 // followed by every k'-th sample, rearranged, so the numbers agree up to f64 rounding.
 //
 // The pair. The input is real, so two signals x, y share one forward transform: with
@@ -123,6 +134,8 @@ pub fn plan_len(min: usize, stride: usize) -> usize {
 /// of the spectrum onto `nfft / stride` bins and one inverse FFT of that length.
 pub struct Bank {
     len: usize,
+    /// The signal samples `[lo, hi)` that reach a kept coefficient (the derivation above).
+    span: (usize, usize),
     nfft: usize,
     folded: usize,
     keep: Keep,
@@ -147,12 +160,19 @@ pub struct Scratch {
 
 impl Bank {
     /// Plans the FFTs once and computes each wavelet's (centred, scaled) spectrum once, for
-    /// signals of `len` samples of which the samples of `keep` are wanted. Each wavelet has an
-    /// odd number of taps, centre in the middle (as [`taps`] makes them).
+    /// signals of `len` samples of which the samples of `keep` are wanted (`keep.start < len`).
+    /// Each wavelet has an odd number of taps, centre in the middle (as [`taps`] makes them).
     pub fn new(wavelets: &[Vec<Complex64>], len: usize, keep: Keep) -> Bank {
         let stride = keep.stride.max(1);
-        let longest = wavelets.iter().map(Vec::len).max().unwrap_or(1);
-        let nfft = plan_len(len + longest - 1, stride);
+        let h = wavelets.iter().map(Vec::len).max().unwrap_or(1) / 2;
+        // The op never asks for a first sample past the end; clamped so a bad call cannot panic.
+        let keep = Keep {
+            stride,
+            start: keep.start.min(len.saturating_sub(1)),
+            ..keep
+        };
+        let (span, min) = reach(len, keep, h);
+        let nfft = plan_len(min, stride);
         let folded = nfft / stride;
         let mut planner = FftPlanner::<f64>::new();
         let forward = planner.plan_fft_forward(nfft);
@@ -166,8 +186,8 @@ impl Bank {
                 let h = w.len() / 2;
                 let mut spec = vec![Complex64::default(); nfft];
                 for (n, &tap) in w.iter().enumerate() {
-                    // Tap n is at lag n − h: index (n − h) mod N.
-                    spec[(n + nfft - h) % nfft] = tap;
+                    // Tap n is at lag n − h: index (n − h) mod N (taps meeting there add up).
+                    spec[(n + nfft - h % nfft) % nfft] += tap;
                 }
                 forward.process_with_scratch(&mut spec, &mut scratch);
                 spec.iter().flat_map(|v| [v.re * scale; 2]).collect()
@@ -175,9 +195,10 @@ impl Bank {
             .collect();
         Bank {
             len,
+            span,
             nfft,
             folded,
-            keep: Keep { stride, ..keep },
+            keep,
             spectra,
             forward,
             inverse,
@@ -269,21 +290,21 @@ impl Bank {
     #[inline(always)]
     fn pair(&self, x: &[f32], y: &[f32], s: &mut Scratch) {
         let (n, start) = (self.nfft, self.keep.start);
-        let len = self.len;
+        let (lo, hi) = self.span;
         let sample = |i: usize| {
             let re = x.get(i).map_or(0.0, |&v| f64::from(v));
             let im = y.get(i).map_or(0.0, |&v| f64::from(v));
             Complex64::new(re, im)
         };
-        // Sample i goes to (i − start) mod N: samples start … len − 1 first, then zeros, then
-        // samples 0 … start − 1 at the end.
-        let (head, rest) = s.pair.split_at_mut(len - start);
-        let (zeros, tail) = rest.split_at_mut(n - len);
-        for (i, z) in (start..len).zip(head) {
+        // Sample i of [lo, hi) goes to (i − start) mod N: samples start … hi − 1 first, then
+        // zeros, then samples lo … start − 1 at the end (hi − lo ≤ N, see `reach`).
+        let (head, rest) = s.pair.split_at_mut(hi - start);
+        let (zeros, tail) = rest.split_at_mut(n - (hi - lo));
+        for (i, z) in (start..hi).zip(head) {
             *z = sample(i);
         }
         zeros.fill(Complex64::default());
-        for (i, z) in tail.iter_mut().enumerate() {
+        for (i, z) in (lo..start).zip(tail) {
             *z = sample(i);
         }
         self.forward.process_with_scratch(&mut s.pair, &mut s.fft);
@@ -322,6 +343,18 @@ impl Bank {
             }
         }
     }
+}
+
+/// For signals of `len` samples, the kept samples `keep` (`keep.start < len`) and wavelets of
+/// half-length `h`: the samples `[lo, hi)` that reach a kept coefficient, and the shortest
+/// circular convolution that gives every kept coefficient without wrap-around,
+/// max(hi − start + h, last + h + 1 − lo) (the derivation above [`Bank`]). It is at least
+/// hi − lo, so those samples fit in one FFT buffer.
+fn reach(len: usize, keep: Keep, h: usize) -> ((usize, usize), usize) {
+    let start = keep.start;
+    let last = start + keep.stride * keep.count.saturating_sub(1);
+    let (lo, hi) = (start.saturating_sub(h), len.min(last + h + 1));
+    ((lo, hi), (hi - start + h).max(last + h + 1 - lo))
 }
 
 /// F[q] = Σ_r X̃[q + rP] C[q + rP] for both signals of a pair, on interleaved values:
@@ -433,7 +466,10 @@ mod tests {
                 count: len,
             };
             let bank = Bank::new(&ws, len, keep);
-            assert!(bank.nfft() >= len + ws[0].len() - 1);
+            // The "same" output needs N ≥ T + h, not the full convolution's T + 2h (derivation
+            // beside `Bank`); with a 2 Hz wavelet on 16 or 50 samples N is even shorter than
+            // the wavelet, so its taps wrap around and add up.
+            assert!(bank.nfft() >= len + ws[0].len() / 2);
             let mut out = vec![Complex32::default(); count * ws.len() * len];
             bank.transform(&x, &mut bank.scratch(), &mut out);
             for (signal, rows) in x.chunks(len).zip(out.chunks(ws.len() * len)) {
@@ -486,7 +522,9 @@ mod tests {
         // the definition for strides 1, 2, 3, 4 and 7 (7 cannot divide a 2,3,5-smooth length,
         // so the length is chosen as a multiple of it), first kept samples that are and are not
         // multiples of the stride, and lengths whose plain smooth FFT length the stride does not
-        // divide. Tolerance 1e-6 of the row's largest coefficient: f32 storage rounds each value
+        // divide; crops deep inside a long epoch (only the samples within a wavelet's reach of
+        // the kept ones go into the FFT) and a crop so short that the FFT is shorter than the
+        // longest wavelet (its taps wrap around). Tolerance 1e-6 of the row's largest coefficient: f32 storage rounds each value
         // by ≤ 6e-8 of its size, f64 FFT error is ~1e-15.
         let fs = 250.0;
         let specs = [(4.0, 3.0), (9.0, 5.0), (30.0, 8.0)];
@@ -504,6 +542,9 @@ mod tests {
             (17, 500, 7, 13, 499),
             (18, 300, 2, 299, 299),
             (19, 80, 5, 3, 70),
+            (20, 2000, 4, 700, 1300),
+            (21, 2000, 3, 701, 1301),
+            (22, 40, 1, 10, 20),
         ] {
             let keep = Keep {
                 start,
@@ -511,8 +552,10 @@ mod tests {
                 count: (end - start) / stride + 1,
             };
             let bank = Bank::new(&ws, len, keep);
-            let min = len + longest - 1;
+            let (_, min) = reach(len, keep, longest / 2);
             assert!(bank.nfft() >= min && bank.nfft().is_multiple_of(stride));
+            // Never longer than the full linear convolution's length.
+            assert!(bank.nfft() <= plan_len(len + longest - 1, stride));
             assert_eq!(bank.folded_len() * stride, bank.nfft());
             not_dividing += usize::from(!fast_len(min).is_multiple_of(stride));
             let x = signals(seed, 3, len);

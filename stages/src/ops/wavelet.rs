@@ -412,7 +412,7 @@ fn check_finite(values: &[f32], layout: &Layout, epoch_len: usize) -> Result<(),
 impl Op for Wavelet {
     type Params = WaveletParams;
     const NAME: &'static str = "wavelet";
-    const VERSION: u32 = 2;
+    const VERSION: u32 = 3;
 
     fn check(p: &Self::Params) -> Result<(), StageError> {
         check_freqs(&p.freqs)?;
