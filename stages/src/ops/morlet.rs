@@ -300,24 +300,48 @@ impl Bank {
         // zeros, then samples lo … start − 1 at the end (hi − lo ≤ N, see `reach`).
         let (head, rest) = s.pair.split_at_mut(hi - start);
         let (zeros, tail) = rest.split_at_mut(n - (hi - lo));
-        for (i, z) in (start..hi).zip(head) {
-            *z = sample(i);
+        for (run, from) in [(head, start), (tail, lo)] {
+            let to = from + run.len();
+            match (x.get(from..to), y.get(from..to)) {
+                // Both signals hold the run (every pair but a last odd signal): plain loops.
+                (Some(xs), Some(ys)) => {
+                    for ((z, &a), &b) in run.iter_mut().zip(xs).zip(ys) {
+                        *z = Complex64::new(f64::from(a), f64::from(b));
+                    }
+                }
+                (Some(xs), None) if y.is_empty() => {
+                    for (z, &a) in run.iter_mut().zip(xs) {
+                        *z = Complex64::new(f64::from(a), 0.0);
+                    }
+                }
+                _ => {
+                    for (i, z) in (from..to).zip(run) {
+                        *z = sample(i);
+                    }
+                }
+            }
         }
         zeros.fill(Complex64::default());
-        for (i, z) in (lo..start).zip(tail) {
-            *z = sample(i);
-        }
         self.forward.process_with_scratch(&mut s.pair, &mut s.fft);
-        // Bin 0 pairs with itself, bin j ≥ 1 with N − j.
-        let mirrored = std::iter::once(&s.pair[0]).chain(s.pair[1..].iter().rev());
-        let bins = s.x.chunks_exact_mut(2).zip(s.y.chunks_exact_mut(2));
-        for (((x, y), &z), m) in bins.zip(&s.pair).zip(mirrored) {
-            let c = m.conj();
-            let sum = z + c;
-            let d = z - c;
-            // (Z − Z*) / i = −i (Z − Z*).
-            x.copy_from_slice(&[sum.re, sum.im]);
-            y.copy_from_slice(&[d.im, -d.re]);
+        // X̃[j] = Z[j] + C[j] and Ỹ[j] = −i (Z[j] − C[j]) (each times 2), C[j] = conj Z[N − j]
+        // (bin 0 pairs with itself). C goes into `s.y` first, so every step below is a plain
+        // loop over the bins in order; the same operations as the textbook per-bin form.
+        let c: &mut [Complex64] = bytemuck::cast_slice_mut(&mut s.y);
+        if let (Some((c0, c)), Some((z0, z))) = (c.split_first_mut(), s.pair.split_first()) {
+            *c0 = z0.conj();
+            for (c, m) in c.iter_mut().zip(z.iter().rev()) {
+                *c = m.conj();
+            }
+        }
+        let z: &[f64] = bytemuck::cast_slice(&s.pair);
+        for ((x, &z), &c) in s.x.iter_mut().zip(z).zip(&s.y) {
+            *x = z + c;
+        }
+        // (Z − C) / i = −i (Z − C): (re, im) → (im, −re).
+        for (y, z) in s.y.chunks_exact_mut(2).zip(z.chunks_exact(2)) {
+            let (c_re, c_im) = (y[0], y[1]);
+            y[0] = z[1] - c_im;
+            y[1] = -(z[0] - c_re);
         }
     }
 
@@ -361,9 +385,9 @@ fn reach(len: usize, keep: Keep, h: usize) -> ((usize, usize), usize) {
 /// `fx[i] = Σ_r x[i + r·n] · spec[i + r·n]` with n = `fx.len()`, and the same for `fy` from `y`,
 /// summed in order r = 0, 1, … (each element's sum its own, so the order, and the bits, do not
 /// depend on how the loops are vectorised). Each pass reads a run of the wavelet's spectrum once
-/// for both signals. The aliases after the first are taken three at a time, so the folded
-/// values are read and written once per three (the common stride 4 is two passes); each pass is
-/// a plain element-wise loop that the compiler vectorises.
+/// for both signals. The first pass sums up to four aliases, later ones add three at a time, so
+/// the common stride 4 is one pass; each pass is a plain element-wise loop that the compiler
+/// vectorises.
 #[inline(always)]
 fn fold(fx: &mut [f64], fy: &mut [f64], x: &[f64], y: &[f64], spec: &[f64]) {
     let n = fx.len();
@@ -373,13 +397,52 @@ fn fold(fx: &mut [f64], fy: &mut [f64], x: &[f64], y: &[f64], spec: &[f64]) {
         .chunks_exact(n)
         .zip(y.chunks_exact(n))
         .zip(spec.chunks_exact(n));
-    let Some(((x0, y0), c0)) = rows.next() else {
-        return;
-    };
+    // The first pass writes the sum of up to four aliases; later passes add three at a time.
     let dst = fx.iter_mut().zip(fy.iter_mut());
-    for ((a, b), ((x, y), c)) in dst.zip(x0.iter().zip(y0).zip(c0)) {
-        *a = x * c;
-        *b = y * c;
+    match (rows.next(), rows.next(), rows.next(), rows.next()) {
+        (
+            Some(((x0, y0), c0)),
+            Some(((x1, y1), c1)),
+            Some(((x2, y2), c2)),
+            Some(((x3, y3), c3)),
+        ) => {
+            let terms = (x0.iter().zip(y0).zip(c0))
+                .zip(x1.iter().zip(y1).zip(c1))
+                .zip(x2.iter().zip(y2).zip(c2))
+                .zip(x3.iter().zip(y3).zip(c3));
+            for ((a, b), (((((x0, y0), c0), ((x1, y1), c1)), ((x2, y2), c2)), ((x3, y3), c3))) in
+                dst.zip(terms)
+            {
+                *a = ((x0 * c0 + x1 * c1) + x2 * c2) + x3 * c3;
+                *b = ((y0 * c0 + y1 * c1) + y2 * c2) + y3 * c3;
+            }
+        }
+        (Some(((x0, y0), c0)), Some(((x1, y1), c1)), Some(((x2, y2), c2)), None) => {
+            let terms = (x0.iter().zip(y0).zip(c0))
+                .zip(x1.iter().zip(y1).zip(c1))
+                .zip(x2.iter().zip(y2).zip(c2));
+            for ((a, b), ((((x0, y0), c0), ((x1, y1), c1)), ((x2, y2), c2))) in dst.zip(terms) {
+                *a = (x0 * c0 + x1 * c1) + x2 * c2;
+                *b = (y0 * c0 + y1 * c1) + y2 * c2;
+            }
+            return;
+        }
+        (Some(((x0, y0), c0)), Some(((x1, y1), c1)), None, None) => {
+            let terms = (x0.iter().zip(y0).zip(c0)).zip(x1.iter().zip(y1).zip(c1));
+            for ((a, b), (((x0, y0), c0), ((x1, y1), c1))) in dst.zip(terms) {
+                *a = x0 * c0 + x1 * c1;
+                *b = y0 * c0 + y1 * c1;
+            }
+            return;
+        }
+        (Some(((x0, y0), c0)), None, None, None) => {
+            for ((a, b), ((x0, y0), c0)) in dst.zip(x0.iter().zip(y0).zip(c0)) {
+                *a = x0 * c0;
+                *b = y0 * c0;
+            }
+            return;
+        }
+        _ => return,
     }
     loop {
         let dst = fx.iter_mut().zip(fy.iter_mut());
