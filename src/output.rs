@@ -333,11 +333,78 @@ pub fn remove_dead_temps(dir: &Path) {
 
 /// Write a file atomically unless it already holds exactly these bytes.
 pub fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), OutputError> {
-    if std::fs::read(path).is_ok_and(|existing| existing == bytes) {
+    if holds(path, bytes) {
         return Ok(());
     }
     atomic_write(path, bytes).map_err(|e| OutputError {
         path: path.to_path_buf(),
         message: e.to_string(),
     })
+}
+
+/// Whether the file at `path` holds exactly `bytes`: its size first, then its contents piece by
+/// piece, stopping at the first piece that differs (a changed table usually differs in its first
+/// rows, so a rerun reads little of the old one and never holds it whole).
+fn holds(path: &Path, bytes: &[u8]) -> bool {
+    use std::io::Read;
+    let Ok(mut file) = std::fs::File::open(path) else {
+        return false;
+    };
+    if !file
+        .metadata()
+        .is_ok_and(|m| m.is_file() && m.len() == bytes.len() as u64)
+    {
+        return false;
+    }
+    let mut piece = vec![0u8; bytes.len().clamp(1, 1 << 18)];
+    for want in bytes.chunks(piece.len()) {
+        let got = &mut piece[..want.len()];
+        if file.read_exact(got).is_err() || got != want {
+            return false;
+        }
+    }
+    // Nothing after them (the file may have grown since its size was read).
+    matches!(file.read(&mut piece[..1]), Ok(0))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn holds_compares_size_and_every_byte() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("t.tsv");
+        // Longer than one piece, so a difference in a later piece must be found too.
+        let bytes: Vec<u8> = (0..700_000u32).map(|i| (i % 251) as u8).collect();
+        assert!(!holds(&path, &bytes), "no file");
+        std::fs::write(&path, &bytes).unwrap();
+        assert!(holds(&path, &bytes));
+        let mut late = bytes.clone();
+        *late.last_mut().unwrap() ^= 1;
+        assert!(!holds(&path, &late), "last byte differs");
+        assert!(!holds(&path, &bytes[..bytes.len() - 1]), "file is longer");
+        let mut longer = bytes.clone();
+        longer.push(0);
+        assert!(!holds(&path, &longer), "file is shorter");
+        std::fs::write(&path, b"").unwrap();
+        assert!(holds(&path, b""));
+        assert!(!holds(dir.path(), b""), "a folder holds nothing");
+    }
+
+    #[test]
+    fn write_atomically_replaces_changed_contents_only() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("m.json");
+        write_atomically(&path, b"one").unwrap();
+        let before = std::fs::metadata(&path).unwrap().modified().unwrap();
+        std::thread::sleep(std::time::Duration::from_millis(20));
+        write_atomically(&path, b"one").unwrap();
+        assert_eq!(
+            std::fs::metadata(&path).unwrap().modified().unwrap(),
+            before
+        );
+        write_atomically(&path, b"two").unwrap();
+        assert_eq!(std::fs::read(&path).unwrap(), b"two");
+    }
 }
