@@ -33,8 +33,8 @@ use crate::study::{RunError, Study, UnitFailure};
 /// What happened to one unit.
 #[derive(Clone, Debug)]
 pub struct UnitResult {
-    /// The object record (layout, hash, notes).
-    pub record: ObjectRecord,
+    /// The object record (layout, hash, notes), shared with the store's memo.
+    pub record: Arc<ObjectRecord>,
     /// True when the unit ran in this run.
     pub computed: bool,
     /// Seconds spent computing it in this run (0 when cached).
@@ -396,7 +396,7 @@ impl Worker<'_, '_, '_> {
                 self.out.results.insert(
                     u,
                     UnitResult {
-                        record: *record,
+                        record,
                         computed: false,
                         seconds: 0.0,
                         export: None,
@@ -421,9 +421,9 @@ impl Worker<'_, '_, '_> {
         ));
     }
 
-    fn record_of(&self, u: usize) -> Result<ObjectRecord, UnitFailure> {
+    fn record_of(&self, u: usize) -> Result<Arc<ObjectRecord>, UnitFailure> {
         match self.out.results.get(&u) {
-            Some(r) => Ok(r.record.clone()),
+            Some(r) => Ok(Arc::clone(&r.record)),
             None => Err(self.fail(u, "internal: export before result")),
         }
     }
@@ -668,7 +668,7 @@ impl Worker<'_, '_, '_> {
         self.out.results.insert(
             u,
             UnitResult {
-                record,
+                record: Arc::new(record),
                 computed: true,
                 seconds,
                 export,
@@ -904,7 +904,7 @@ impl Worker<'_, '_, '_> {
         self.out.results.insert(
             p,
             UnitResult {
-                record,
+                record: Arc::new(record),
                 computed: true,
                 seconds: streamed.producer_seconds,
                 export: None,

@@ -22,6 +22,7 @@ use std::fs::File;
 use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
 
 use ndarray::{ArrayD, IxDyn, ShapeBuilder};
 use ndarray_npy::{ReadNpyExt, WriteNpyExt};
@@ -131,8 +132,10 @@ pub enum LoadError {
 /// What a cheap look at the store finds for a key.
 #[derive(Clone, Debug, PartialEq)]
 pub enum Lookup {
-    /// A record (and, for stored units, an NPY of the recorded size).
-    Present(Box<ObjectRecord>),
+    /// A record (and, for stored units, an NPY of the recorded size), shared with the store's
+    /// memo of parsed records: a record holds the whole layout (thousands of pair labels), and
+    /// a run looks each one up several times.
+    Present(Arc<ObjectRecord>),
     /// Nothing.
     Absent,
     /// Something that cannot be trusted; the reason says what.
@@ -146,14 +149,14 @@ pub struct Store {
     /// Records already parsed in this process, with the size and modification time their file
     /// had: a record read again (the plan, then the executor) is parsed once while its file is
     /// unchanged. Records hold large coordinate lists, so parsing them is most of a no-op rerun.
-    parsed: std::sync::Arc<std::sync::Mutex<std::collections::HashMap<String, ParsedRecord>>>,
+    parsed: Arc<std::sync::Mutex<std::collections::HashMap<String, ParsedRecord>>>,
 }
 
 #[derive(Debug)]
 struct ParsedRecord {
     len: u64,
     modified: Option<std::time::SystemTime>,
-    record: ObjectRecord,
+    record: Arc<ObjectRecord>,
 }
 
 /// The NPY bytes of an array (the reference encoding; the store streams the same bytes through
@@ -469,7 +472,7 @@ impl Store {
         let known = self.parsed.lock().ok().and_then(|memo| {
             memo.get(key)
                 .filter(|p| Some((p.len, p.modified)) == stamp)
-                .map(|p| p.record.clone())
+                .map(|p| Arc::clone(&p.record))
         });
         let record = match known {
             Some(record) => record,
@@ -482,7 +485,7 @@ impl Store {
                     Err(_) => return Lookup::Absent,
                 };
                 let record = match parse_record(&bytes, key) {
-                    Ok(r) => r,
+                    Ok(r) => Arc::new(r),
                     // Written by a phasewise of another record format: not damage, just not
                     // a result this version can use; it is recomputed (and overwritten).
                     Err(Unreadable::OtherVersion) => return Lookup::Absent,
@@ -493,7 +496,7 @@ impl Store {
                         let parsed = ParsedRecord {
                             len,
                             modified,
-                            record: record.clone(),
+                            record: Arc::clone(&record),
                         };
                         memo.insert(key.to_string(), parsed);
                     }
@@ -514,14 +517,14 @@ impl Store {
                 Some(_) => {}
             }
         }
-        Lookup::Present(Box::new(record))
+        Lookup::Present(record)
     }
 
     /// Load and verify an object's values: read straight into the array's buffer, hashing on the
     /// way; nothing is returned unless the whole file matches the recorded blake3.
-    pub fn load(&self, key: &str) -> Result<(LabelledArray, ObjectRecord), LoadError> {
+    pub fn load(&self, key: &str) -> Result<(LabelledArray, Arc<ObjectRecord>), LoadError> {
         let record = match self.lookup(key) {
-            Lookup::Present(r) if r.stored => *r,
+            Lookup::Present(r) if r.stored => r,
             Lookup::Present(_) | Lookup::Absent => return Err(LoadError::Unavailable),
             Lookup::Damaged(why) => return Err(LoadError::Damaged(why)),
         };
@@ -1269,7 +1272,7 @@ mod tests {
         assert_eq!(kinds(&json_path), ["labels", "numbers_delta2"]);
         // A fresh store parses the file (no memo).
         let (back, back_record) = Store::new(dir.path()).load(&record.key).unwrap();
-        assert_eq!(back_record, record);
+        assert_eq!(*back_record, record);
         let want: Vec<u64> = times.iter().map(|x| x.to_bits()).collect();
         assert_eq!(bits(&back.layout.coords[1]), want);
         assert_eq!(back, array);
