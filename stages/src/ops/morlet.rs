@@ -117,8 +117,9 @@ pub fn plan_len(min: usize, stride: usize) -> usize {
 //     y[s + k'm] = Σ_{q=0}^{P−1} e^{2πi qm/P} F[q],   F[q] = (1/N) Σ_{r=0}^{k'−1} X̃[q + rP] C[q + rP],
 // with X̃ the rotated signal's DFT: an (unnormalised) inverse DFT of length P of the product
 // folded onto P bins (the k' aliases of each bin summed). m stays below P because
-// k'(count − 1) = b − s < N (N ≥ b + h + 1 − lo and lo ≤ s). This is the same sum as the full-length inverse transform
-// followed by every k'-th sample, rearranged, so the numbers agree up to f64 rounding.
+// k'(count − 1) = b − s < N (N ≥ b + h + 1 − lo and lo ≤ s). This is the same sum as the
+// full-length inverse transform followed by every k'-th sample, rearranged, so the numbers agree
+// up to f64 rounding.
 //
 // The pair. The input is real, so two signals x, y share one forward transform: with
 // Z = DFT(x̃ + i ỹ) and Z*[j] = conj Z[(N − j) mod N], X̃ = (Z + Z*)/2 and Ỹ = (Z − Z*)/(2i) (the
