@@ -13,6 +13,9 @@ use std::time::Instant;
 
 use num_complex::Complex32;
 use phasewise_stages::ops::morlet::{taps, Bank, Keep};
+use phasewise_stages::ops::wavelet::{
+    CycleRamp, CycleSpec, FreqRange, FreqSpec, Spacing, WaveletParams,
+};
 
 const SIGNALS: usize = 13000;
 const LEN: usize = 625;
@@ -21,12 +24,21 @@ const FREQS: usize = 24;
 const PART: usize = 4;
 
 fn main() {
-    let freqs: Vec<f64> = (0..FREQS)
-        .map(|k| 4.0 * (30.0f64 / 4.0).powf(k as f64 / (FREQS - 1) as f64))
-        .collect();
-    let cycles: Vec<f64> = (0..FREQS)
-        .map(|k| 3.0 * (8.0f64 / 3.0).powf(k as f64 / (FREQS - 1) as f64))
-        .collect();
+    // The op's own plan of frequencies and cycles (the harness's `tf` params; its crop and
+    // stride are the `Keep` below: samples 100 … 524 of the epoch, every 4th).
+    let params = WaveletParams {
+        freqs: FreqSpec::Range(FreqRange {
+            from: 4.0,
+            to: 30.0,
+            count: FREQS,
+            spacing: Spacing::Log,
+        }),
+        cycles: CycleSpec::Ramp(CycleRamp { from: 3.0, to: 8.0 }),
+        crop: Some([-0.6, 1.1]),
+        stride: 4,
+    };
+    let freqs = params.frequencies();
+    let cycles = params.cycle_counts(freqs.len());
     let wavelets: Vec<_> = freqs
         .iter()
         .zip(&cycles)
