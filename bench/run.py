@@ -14,7 +14,8 @@ Steps, all printed and also written to bench/out/<size>/report.json and report.t
    every subject, and the group means);
 3. the wavelet op against the bare FFTs it performs (bench/fft, same sizes, one thread), and
    the naive FFT count for context;
-4. reruns on the warm cache: after a baseline-window change, and with nothing changed;
+4. reruns on the warm cache: after each of three baseline-window changes, and three times with
+   nothing changed (medians);
 5. scaling of phasewise's time with trials, channels (pairs) and frequencies (>= 4 sizes each,
    fitted log-log slope) and of its peak RSS with frequencies.
 """
@@ -67,7 +68,11 @@ SIZES = {
 
 # The wavelet's frequency range in bench/chain.yaml; only the count changes.
 FREQ_RANGE = {"from": 4, "to": 30, "spacing": "log"}
-BASELINE_CHANGE = "norm.window=[-0.4, -0.2]"
+# Baseline-window changes for the rerun measure, each applied after the one before (the
+# pipeline's own window is [-0.5, -0.2]); the coefficients are kept every 16 ms, so each change
+# moves the window's first kept sample and changes every baseline-corrected value.
+BASELINE_CHANGES = ["norm.window=[-0.4, -0.2]", "norm.window=[-0.45, -0.2]",
+                    "norm.window=[-0.35, -0.2]"]
 AGREEMENT_TOL = 1e-4  # max |phasewise − peer| of baseline-corrected measures (see BENCHMARKS.md)
 
 
@@ -360,10 +365,12 @@ def op_fft_min_len(epoch_len, start, stride, count, half):
     return max(hi - start + half, last + half + 1 - lo)
 
 
-def wavelet_vs_fft(rep, folder, size, tries=3):
+def wavelet_vs_fft(rep, folder, size, tries=5):
     """The wavelet op's manifest seconds against the bare FFTs the op performs, both on one
     thread (`--jobs 1`), on a one-subject study of the workload's size; best of `tries` cold
-    runs, since unit seconds are wall times and other processes on the machine inflate them.
+    runs, since unit seconds are wall times and other processes on the machine inflate them, and
+    so does the first touch of the op's fresh output memory, which on a virtual machine varies
+    from run to run far more than the op's own work (all tries are printed).
     bench/fft times the op's transforms (one forward FFT of length N per pair of real signals,
     one inverse of length N/stride per signal and frequency, N the smallest multiple of the
     stride of the form stride x 2,3,5-smooth that is >= the op's shortest circular convolution
@@ -387,8 +394,9 @@ def wavelet_vs_fft(rep, folder, size, tries=3):
         return sum(float(u.get("seconds") or 0) for u in r["manifest"]["units"]
                    if u["stage"] == "tf")
 
-    op = min(tf_seconds(r) for r in whole_runs)
-    op_parts = min(tf_seconds(r) for r in runs)
+    op_all = sorted(tf_seconds(r) for r in whole_runs)
+    parts_all = sorted(tf_seconds(r) for r in runs)
+    op, op_parts = op_all[0], parts_all[0]
     units = runs[0]["manifest"]["units"]
     signals, epoch_len, kept = 0, None, None
     for u in units:
@@ -415,20 +423,23 @@ def wavelet_vs_fft(rep, folder, size, tries=3):
     fft = json.loads(out)
     bare, naive, write = fft["seconds"], fft["naive_seconds"], fft["output_seconds"]
     ratio = op / bare
-    rep.say(f"\nWavelet op {op:.3f} s (--jobs 1, all frequencies in one part, manifest, best of {tries}) vs the bare FFTs the op "
+    rep.say(f"\nWavelet op {op:.3f} s (--jobs 1, all frequencies in one part, manifest, best of {tries}: "
+            f"{', '.join(f'{t:.3f}' for t in op_all)} s) vs the bare FFTs the op "
             f"performs {bare:.3f} s (1 thread, best of 3: {fft['forwards']} forward complex f64 FFTs "
             f"of length {fft['nfft']}, one per pair of real signals, and {fft['inverses']} inverse "
             f"of length {fft['folded']} = {fft['nfft']}/stride {stride}, one per signal and "
             f"frequency): {ratio:.2f}x. For context, the naive count ({signals} x (1 forward + "
             f"{len(freqs)} inverse) of length {fft['naive_nfft']}) takes {naive:.3f} s: "
             f"op / naive FFTs {op / naive:.2f}x. In the chain's parts of <= 48 MiB (each part "
-            f"repeats the forward FFTs) the op takes {op_parts:.3f} s: {op_parts / bare:.2f}x "
+            f"repeats the forward FFTs) the op takes {op_parts:.3f} s (best of {tries}: "
+            f"{', '.join(f'{t:.3f}' for t in parts_all)} s): {op_parts / bare:.2f}x "
             f"the bare FFTs. Context: writing the op's output ({signals} x {len(freqs)} x {kept} "
             f"complex f32, {signals * len(freqs) * kept * 8 / 2**20:.0f} MiB) once into fresh "
             f"memory takes {write:.3f} s (bench/fft, best of 3), which no FFT timing includes; "
             f"op / (bare FFTs + that write) {op / (bare + write):.2f}x")
     rep.data["wavelet_vs_fft"] = {"op": op, "bare_fft": bare, "ratio": ratio, "nfft": fft["nfft"],
                                   "op_in_parts": op_parts, "ratio_in_parts": op_parts / bare,
+                                  "op_tries": op_all, "op_in_parts_tries": parts_all,
                                   "folded": fft["folded"], "stride": stride,
                                   "forwards": fft["forwards"], "inverses": fft["inverses"],
                                   "naive_fft": naive, "naive_nfft": fft["naive_nfft"],
@@ -460,24 +471,35 @@ def lean_pipeline(folder):
 
 
 def reruns(rep, folder, size):
-    """Warm-cache reruns: a baseline-window change, then nothing changed."""
+    """Warm-cache reruns: after each of BASELINE_CHANGES in turn, then three times with nothing
+    changed; the medians are the figures (a single rerun of well under a second moves by tens
+    of percent with what else the machine is doing)."""
     sets = [freq_set(size["freqs"])]
     cache = os.path.join(folder, "cache-lean")
     lean = lean_pipeline(folder)
     full = run_phasewise(folder, sets, cache, pipeline=lean)
-    changed = run_phasewise(folder, sets + [BASELINE_CHANGE], cache, fresh=False, pipeline=lean)
-    noop = run_phasewise(folder, sets + [BASELINE_CHANGE], cache, fresh=False, pipeline=lean)
-    share = changed["wall"] / full["wall"]
+    changed = [run_phasewise(folder, sets + [change], cache, fresh=False, pipeline=lean)
+               for change in BASELINE_CHANGES]
+    last = sets + [BASELINE_CHANGES[-1]]
+    noops = [run_phasewise(folder, last, cache, fresh=False, pipeline=lean) for _ in range(3)]
+    change_walls = [r["wall"] for r in changed]
+    noop_walls = [r["wall"] for r in noops]
+    change, noop = statistics.median(change_walls), statistics.median(noop_walls)
+    share = change / full["wall"]
+    windows = ", ".join(c.split("=", 1)[1] for c in BASELINE_CHANGES)
     rep.say(f"\nReruns (whole-process wall; pipeline exporting only the group result, norm "
-            f"`cache: false`): full cold "
-            f"{full['wall']:.3f} s; after --set {BASELINE_CHANGE}: {changed['wall']:.3f} s "
-            f"({100 * share:.1f} % of full, {changed['computed']}/{changed['units']} units "
-            f"computed); no-op: {noop['wall']:.3f} s ({noop['computed']}/{noop['units']} units "
+            f"`cache: false`): full cold {full['wall']:.3f} s; after a change of norm.window "
+            f"(to {windows} in turn): median {change:.3f} s ({100 * share:.1f} % of full; "
+            f"{', '.join(f'{w:.3f}' for w in change_walls)} s; "
+            f"{'/'.join(str(r['computed']) for r in changed)} of {changed[0]['units']} units "
+            f"computed); no-op: median {noop:.3f} s ({', '.join(f'{w:.3f}' for w in noop_walls)} "
+            f"s; {'/'.join(str(r['computed']) for r in noops)} of {noops[0]['units']} units "
             f"computed)")
-    rep.data["reruns"] = {"full": full["wall"], "baseline_change": changed["wall"],
-                          "share": share, "noop": noop["wall"],
-                          "cpu": [full["cpu"], changed["cpu"], noop["cpu"]],
-                          "computed": [full["computed"], changed["computed"], noop["computed"]]}
+    rep.data["reruns"] = {"full": full["wall"], "baseline_change": change,
+                          "baseline_changes": change_walls, "share": share, "noop": noop,
+                          "noops": noop_walls,
+                          "cpu": [full["cpu"]] + [r["cpu"] for r in changed + noops],
+                          "computed": [full["computed"]] + [r["computed"] for r in changed + noops]}
 
 
 def slope(xs, ys):
