@@ -437,6 +437,14 @@ def wavelet_vs_fft(rep, folder, size, tries=5):
             f"complex f32, {signals * len(freqs) * kept * 8 / 2**20:.0f} MiB) once into fresh "
             f"memory takes {write:.3f} s (bench/fft, best of 3), which no FFT timing includes; "
             f"op / (bare FFTs + that write) {op / (bare + write):.2f}x")
+    loop = warm_loop(fft, signals, len(freqs), kept)
+    if loop:
+        rep.say(f"The op's loop alone on warm memory (cargo bench --bench morlet: Bank::transform "
+                f"on one thread over the same sizes into memory written before, best of 5): "
+                f"{loop['one']:.3f} s with all frequencies in one call, {loop['one'] / bare:.2f}x "
+                f"the bare FFTs; {loop['split']:.3f} s in {loop['calls']} calls "
+                f"({loop['split'] / bare:.2f}x)")
+    rep.data["wavelet_loop"] = loop
     rep.data["wavelet_vs_fft"] = {"op": op, "bare_fft": bare, "ratio": ratio, "nfft": fft["nfft"],
                                   "op_in_parts": op_parts, "ratio_in_parts": op_parts / bare,
                                   "op_tries": op_all, "op_in_parts_tries": parts_all,
@@ -455,6 +463,25 @@ def wavelet_vs_fft(rep, folder, size, tries=5):
     rep.data["one_subject"] = {"phasewise_rss_mib": pw_rss, "peer_rss_mib": one["rss"],
                                "phasewise_wall": min(r["wall"] for r in runs),
                                "peer_wall": one["wall"]}
+
+
+def warm_loop(fft, signals, freqs, kept):
+    """The wavelet micro-benchmark (stages/benches/morlet.rs), when its fixed sizes (one medium
+    subject) are those the harness timed the bare FFTs at; else None."""
+    out = subprocess.run(["cargo", "bench", "-q", "-p", "phasewise-stages", "--bench", "morlet"],
+                         cwd=ROOT, check=True, capture_output=True, text=True).stdout
+    want = (f"{signals} signals x", f"{freqs} frequencies, FFT {fft['nfft']} -> {fft['folded']}, "
+            f"{kept} kept samples")
+    if not all(w in out for w in want):
+        return None
+    found = {}
+    for line in out.splitlines():
+        if "all frequencies in one call:" in line:
+            found["one"] = float(line.split(":")[1].split()[0])
+        elif " calls of " in line:
+            found["split"] = float(line.split(":")[1].split()[0])
+            found["calls"] = int(line.split(" calls of ")[0].split()[-1])
+    return found if len(found) == 3 else None
 
 
 def lean_pipeline(folder):
