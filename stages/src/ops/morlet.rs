@@ -9,6 +9,7 @@
 //! inverted at that length (the derivation is beside [`Bank`]).
 
 use std::f64::consts::PI;
+use std::mem::MaybeUninit;
 use std::sync::Arc;
 
 use num_complex::{Complex32, Complex64};
@@ -254,7 +255,10 @@ impl Bank {
     /// conversion to f32) are compiled a second time for AVX2 and chosen at run time. They are
     /// the same IEEE operations in the same order (no fused multiply-add), so both versions give
     /// the same bits; the FFTs are rustfft's, which chooses its own instructions.
-    pub fn transform(&self, signals: &[f32], s: &mut Scratch, out: &mut [Complex32]) {
+    ///
+    /// Every element of `out` is written (when it holds `per_signal` values for each signal), so
+    /// `out` may be memory not written before ([`Slot`]).
+    pub fn transform<T: Slot>(&self, signals: &[f32], s: &mut Scratch, out: &mut [T]) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU supports AVX2, checked on the line above.
@@ -266,14 +270,17 @@ impl Bank {
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn transform_avx2(&self, signals: &[f32], s: &mut Scratch, out: &mut [Complex32]) {
+    unsafe fn transform_avx2<T: Slot>(&self, signals: &[f32], s: &mut Scratch, out: &mut [T]) {
         self.transform_any(signals, s, out);
     }
 
     #[inline(always)]
-    fn transform_any(&self, signals: &[f32], s: &mut Scratch, out: &mut [Complex32]) {
+    fn transform_any<T: Slot>(&self, signals: &[f32], s: &mut Scratch, out: &mut [T]) {
         let per = self.per_signal();
         if self.len == 0 || per == 0 {
+            // Nothing to transform; `out` is written all the same (it is empty unless the
+            // caller's sizes disagree with the bank's).
+            out.iter_mut().for_each(|o| o.set(Complex32::default()));
             return;
         }
         debug_assert_eq!(signals.len() % self.len, 0);
@@ -349,7 +356,7 @@ impl Bank {
     /// For every wavelet: folds both products onto `folded` bins, one inverse call for the two,
     /// and the `count` kept samples to `out_x` and `out_y` (which may be empty).
     #[inline(always)]
-    fn fold_and_invert(&self, s: &mut Scratch, out_x: &mut [Complex32], out_y: &mut [Complex32]) {
+    fn fold_and_invert<T: Slot>(&self, s: &mut Scratch, out_x: &mut [T], out_y: &mut [T]) {
         let p = self.folded;
         let count = self.keep.count;
         debug_assert!(count <= p);
@@ -362,11 +369,33 @@ impl Bank {
             for (out, at) in rows {
                 if let Some(row) = out.get_mut(w * count..(w + 1) * count) {
                     for (dst, v) in row.iter_mut().zip(&s.folded[at..at + count]) {
-                        *dst = Complex32::new(v.re as f32, v.im as f32);
+                        dst.set(Complex32::new(v.re as f32, v.im as f32));
                     }
                 }
             }
         }
+    }
+}
+
+/// An element of the output of [`Bank::transform`]: an initialised value, or memory not written
+/// yet (`MaybeUninit`), for callers that would otherwise clear the memory only for the transform
+/// to overwrite every value.
+pub trait Slot {
+    /// Store `v`.
+    fn set(&mut self, v: Complex32);
+}
+
+impl Slot for Complex32 {
+    #[inline(always)]
+    fn set(&mut self, v: Complex32) {
+        *self = v;
+    }
+}
+
+impl Slot for MaybeUninit<Complex32> {
+    #[inline(always)]
+    fn set(&mut self, v: Complex32) {
+        self.write(v);
     }
 }
 
@@ -642,6 +671,40 @@ mod tests {
             }
         }
         assert!(not_dividing >= 3, "{not_dividing}");
+    }
+
+    #[test]
+    fn morlet_transform_writes_every_output_value() {
+        // The op hands `transform` memory not written before and relies on every value being
+        // written. Outputs prefilled with NaN must come back finite everywhere: odd and even
+        // signal counts (a last odd signal is paired with zeros), strides, crops, one wavelet
+        // and several, and the empty bank.
+        let fs = 250.0;
+        let ws: Vec<_> = [(4.0, 3.0), (12.0, 5.0), (30.0, 8.0)]
+            .iter()
+            .map(|&(f, n)| taps(f, n, fs))
+            .collect();
+        for (len, count, start, stride, kept, wavelets) in [
+            (300usize, 5usize, 20usize, 3usize, 90usize, 3usize),
+            (300, 4, 0, 1, 300, 3),
+            (64, 1, 10, 4, 12, 1),
+            (64, 3, 0, 2, 32, 2),
+            (64, 2, 0, 1, 64, 0),
+        ] {
+            let keep = Keep {
+                start,
+                stride,
+                count: kept,
+            };
+            let bank = Bank::new(&ws, len, keep).only(0..wavelets);
+            let x = signals(30 + len as u64, count, len);
+            let mut out = vec![Complex32::new(f32::NAN, f32::NAN); count * bank.per_signal()];
+            bank.transform(&x, &mut bank.scratch(), &mut out);
+            assert!(
+                out.iter().all(|z| z.re.is_finite() && z.im.is_finite()),
+                "len {len}, {count} signals, stride {stride}, {wavelets} wavelets"
+            );
+        }
     }
 
     #[test]

@@ -493,7 +493,7 @@ fn transform_part(
     let values = input.real_values()?.as_standard_layout();
     let values = values.as_slice().unwrap_or(&[]);
     check_finite(values, &input.layout, plan.epoch_len)?;
-    let out = transform_all(&plan, values, part.clone());
+    let out = transform_all(&plan, values, part.clone())?;
     let k = plan.layout.axis("freq")?;
     plan.layout.coords[k] = plan.layout.coords[k].slice(part)?;
     let shape = plan.layout.shape();
@@ -510,7 +510,11 @@ const SIGNALS_PER_TASK: usize = 16;
 /// written straight into the output vector. Parallel over fixed blocks of signals; every value
 /// depends only on its own signal and its fixed pair partner, so the result is the same for any
 /// thread count.
-fn transform_all(plan: &Plan, values: &[f32], part: std::ops::Range<usize>) -> Vec<Complex32> {
+fn transform_all(
+    plan: &Plan,
+    values: &[f32],
+    part: std::ops::Range<usize>,
+) -> Result<Vec<Complex32>, StageError> {
     let taps: Vec<Vec<Complex64>> = plan
         .freqs
         .iter()
@@ -519,19 +523,33 @@ fn transform_all(plan: &Plan, values: &[f32], part: std::ops::Range<usize>) -> V
         .collect();
     let per_signal = part.len() * plan.keep.count;
     let signals: usize = plan.layout.shape().iter().take(2).product();
-    // Zeroed by the allocator (fresh pages are zero): no pass of writes before the real one.
-    let mut out: Vec<Complex32> = bytemuck::zeroed_vec(per_signal * signals);
+    let len = per_signal * signals;
     if per_signal == 0 || plan.epoch_len == 0 {
-        return out;
+        return Ok(vec![Complex32::default(); len]);
+    }
+    if values.len() != signals * plan.epoch_len {
+        return Err(StageError::data(format!(
+            "internal: {} samples for {signals} signals of {}",
+            values.len(),
+            plan.epoch_len
+        )));
     }
     let bank = Bank::new(&taps, plan.epoch_len, plan.keep).only(part);
-    out.par_chunks_mut(per_signal * SIGNALS_PER_TASK)
+    // Not cleared first: the transform writes every value, and clearing would cost a pass over
+    // the whole output (memory the allocator hands back from an earlier part is not zero).
+    let mut out: Vec<Complex32> = Vec::with_capacity(len);
+    out.spare_capacity_mut()[..len]
+        .par_chunks_mut(per_signal * SIGNALS_PER_TASK)
         .zip(values.par_chunks(plan.epoch_len * SIGNALS_PER_TASK))
         .for_each_init(
             || bank.scratch(),
             |scratch, (dst, src)| bank.transform(src, scratch, dst),
         );
-    out
+    // SAFETY: the first `len` values were all written above: `values` holds `signals` signals
+    // (checked), the two chunkings pair every block of signals with its block of outputs, and
+    // `Bank::transform` writes all `per_signal` values of each signal it is given.
+    unsafe { out.set_len(len) };
+    Ok(out)
 }
 
 #[cfg(test)]
