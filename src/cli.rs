@@ -298,7 +298,13 @@ fn verify(manifest: &Path, env: Env<'_>) -> Result<i32> {
         println!("{line}");
     }
     if report.reproduced() {
-        println!("verified: every output is bit-identical");
+        match report.not_hashed() {
+            0 => println!("verified: every output is bit-identical"),
+            n => println!(
+                "verified: every hashed output is bit-identical; {n} streamed output(s) had no \
+                 hash and are checked through the outputs they feed"
+            ),
+        }
         Ok(0)
     } else {
         println!("not reproduced");

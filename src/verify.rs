@@ -27,6 +27,10 @@ pub enum Verdict {
     Differs(Option<f64>),
     /// The rerun did not produce this unit.
     Missing,
+    /// No content hash to compare: the output was streamed into its consumer a part at a time
+    /// and never existed whole (DEVELOPERS.md, execution), in the recorded run or the rerun.
+    /// Its values are checked through the outputs it feeds.
+    NotHashed,
 }
 
 /// One compared output.
@@ -52,11 +56,23 @@ pub struct VerifyReport {
 }
 
 impl VerifyReport {
-    /// True when inputs are unchanged and every output is bit-identical.
+    /// True when inputs are unchanged and every hashed output is bit-identical (outputs that
+    /// were streamed and never hashed are checked through the outputs they feed).
     pub fn reproduced(&self) -> bool {
         self.input_problems.is_empty()
             && self.run_failure.is_none()
-            && self.outputs.iter().all(|o| o.verdict == Verdict::Identical)
+            && self
+                .outputs
+                .iter()
+                .all(|o| matches!(o.verdict, Verdict::Identical | Verdict::NotHashed))
+    }
+
+    /// How many outputs could not be compared because they were never hashed.
+    pub fn not_hashed(&self) -> usize {
+        self.outputs
+            .iter()
+            .filter(|o| o.verdict == Verdict::NotHashed)
+            .count()
     }
 
     /// A human-readable report, one line per finding.
@@ -74,6 +90,10 @@ impl VerifyReport {
                 }
                 Verdict::Differs(None) => format!("{who}: differs (old values not available)"),
                 Verdict::Missing => format!("{who}: not produced by the rerun"),
+                Verdict::NotHashed => format!(
+                    "{who}: not compared (streamed into its consumer, never whole, so not \
+                     hashed); checked through the outputs it feeds"
+                ),
             });
         }
         lines
@@ -183,6 +203,9 @@ fn compare_unit(
     let (Some(a), Some(b)) = (unit.outputs.first(), new.outputs.first()) else {
         return Verdict::Missing;
     };
+    if a.blake3.is_empty() || b.blake3.is_empty() {
+        return Verdict::NotHashed;
+    }
     if a.blake3 == b.blake3 {
         return Verdict::Identical;
     }

@@ -121,3 +121,48 @@ fn baseline_over_its_input_gives_the_bits_of_baseline_beside_it() {
     );
     assert!(x == y, "exported norm differs between the two paths");
 }
+
+/// `verify` on a run whose wavelet was streamed: that unit has no content hash in either run,
+/// so it must not be reported bit-identical (it was never compared); the stages it feeds are
+/// compared as usual, and the study still counts as reproduced.
+#[test]
+fn verify_does_not_call_a_streamed_unit_bit_identical() {
+    let dir = tempfile::tempdir().unwrap();
+    let manifest = run(dir.path(), false, "1000000");
+    assert_eq!(unit(&manifest, "tf")["outputs"][0]["blake3"], "");
+    let out = Command::new(env!("CARGO_BIN_EXE_phasewise"))
+        .args(["verify", "results/manifest.parts/01.json"])
+        .env("PHASEWISE_PART_BYTES", "1000000")
+        .current_dir(dir.path())
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{text}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let lines: Vec<&str> = text.lines().collect();
+    assert!(
+        lines.contains(
+            &"tf (subject 01): not compared (streamed into its consumer, never whole, so not \
+              hashed); checked through the outputs it feeds"
+        ),
+        "{text}"
+    );
+    assert!(!text.contains("tf (subject 01): bit-identical"), "{text}");
+    for stage in ["sync", "norm"] {
+        assert!(
+            lines.contains(&format!("{stage} (subject 01): bit-identical").as_str()),
+            "{text}"
+        );
+    }
+    assert_eq!(
+        lines.last().copied(),
+        Some(
+            "verified: every hashed output is bit-identical; 1 streamed output(s) had no hash \
+             and are checked through the outputs they feed"
+        ),
+        "{text}"
+    );
+}
