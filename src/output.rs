@@ -299,10 +299,47 @@ pub fn is_table(record: &ObjectRecord) -> bool {
     record.layout.meta.extra.get("table") == Some(&serde_json::Value::Bool(true))
 }
 
+/// The table of `array`, streamed to its file as it is formatted (never whole in memory).
 fn write_table(target: &ExportTarget<'_>, array: &LabelledArray) -> Result<(), OutputError> {
-    let table = phasewise_stages::table::tidy_tsv(array);
-    write_atomically(&target.tsv_path(), table.as_bytes())
+    write_streamed_atomically(&target.tsv_path(), |sink| {
+        phasewise_stages::table::write_tidy_tsv(array, sink)
+    })
 }
+
+/// [`write_atomically`] for text that `fill` hands on piece by piece: through a temporary file,
+/// and the file already at `path` left alone (with its modification time) when it holds exactly
+/// this text, found by comparing along the way.
+fn write_streamed_atomically(
+    path: &Path,
+    fill: impl FnOnce(&mut (dyn FnMut(&str) -> std::io::Result<()> + Send)) -> std::io::Result<()>,
+) -> Result<(), OutputError> {
+    let mut old = SameAs::open(path);
+    let written = write_then_rename(path, false, |file| {
+        fill(&mut |piece: &str| {
+            old.feed(piece.as_bytes());
+            file.write_all(piece.as_bytes())
+        })?;
+        // `Err` here only stops the rename (and removes the temporary file).
+        Ok(if old.finish() {
+            Err(UNCHANGED.to_string())
+        } else {
+            Ok(())
+        })
+    });
+    let message = match written {
+        Ok(Ok(())) => return Ok(()),
+        Ok(Err(why)) if why == UNCHANGED => return Ok(()),
+        Ok(Err(why)) => why,
+        Err(e) => e.to_string(),
+    };
+    Err(OutputError {
+        path: path.to_path_buf(),
+        message,
+    })
+}
+
+/// What [`write_streamed_atomically`]'s fill answers when the file already holds the table.
+const UNCHANGED: &str = "unchanged";
 
 /// Remove temporary files left in `dir` by killed runs: those named after a process that no
 /// longer exists on this machine. Where liveness cannot be told (no `/proc`), nothing is removed.
@@ -346,30 +383,102 @@ pub fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), OutputError> {
 /// piece, stopping at the first piece that differs (a changed table usually differs in its first
 /// rows, so a rerun reads little of the old one and never holds it whole).
 fn holds(path: &Path, bytes: &[u8]) -> bool {
-    use std::io::Read;
-    let Ok(mut file) = std::fs::File::open(path) else {
-        return false;
-    };
-    if !file
-        .metadata()
-        .is_ok_and(|m| m.is_file() && m.len() == bytes.len() as u64)
-    {
+    let mut old = SameAs::open(path);
+    if old.len() != Some(bytes.len() as u64) {
         return false;
     }
-    let mut piece = vec![0u8; bytes.len().clamp(1, 1 << 18)];
-    for want in bytes.chunks(piece.len()) {
-        let got = &mut piece[..want.len()];
-        if file.read_exact(got).is_err() || got != want {
-            return false;
+    old.feed(bytes);
+    old.finish()
+}
+
+/// Compares bytes handed to it piece by piece with the contents of a file, reading the file
+/// along (in pieces of at most [`SAME_AS_PIECE`] bytes) and no further once they differ.
+struct SameAs {
+    /// The file, while everything fed so far matched it.
+    file: Option<std::fs::File>,
+    piece: Vec<u8>,
+}
+
+const SAME_AS_PIECE: usize = 1 << 18;
+
+impl SameAs {
+    /// The file at `path` (none, or not a plain file: nothing matches).
+    fn open(path: &Path) -> SameAs {
+        let file = std::fs::File::open(path)
+            .ok()
+            .filter(|f| f.metadata().is_ok_and(|m| m.is_file()));
+        SameAs {
+            file,
+            piece: Vec::new(),
         }
     }
-    // Nothing after them (the file may have grown since its size was read).
-    matches!(file.read(&mut piece[..1]), Ok(0))
+
+    /// The file's size, if there is a file.
+    fn len(&self) -> Option<u64> {
+        self.file.as_ref()?.metadata().ok().map(|m| m.len())
+    }
+
+    /// Compare the next bytes.
+    fn feed(&mut self, mut bytes: &[u8]) {
+        use std::io::Read;
+        while let (Some(file), false) = (&mut self.file, bytes.is_empty()) {
+            let n = bytes.len().min(SAME_AS_PIECE);
+            self.piece.resize(n, 0);
+            if file.read_exact(&mut self.piece).is_err() || self.piece[..] != bytes[..n] {
+                self.file = None;
+            }
+            bytes = &bytes[n..];
+        }
+    }
+
+    /// Whether everything fed matched and the file ends there (it may have grown since).
+    fn finish(mut self) -> bool {
+        use std::io::Read;
+        self.file
+            .as_mut()
+            .is_some_and(|f| matches!(f.read(&mut [0u8; 1]), Ok(0)))
+    }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    #[cfg(unix)]
+    fn streamed_writes_replace_changed_contents_only() {
+        use std::os::unix::fs::MetadataExt;
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("t.tsv");
+        let write = |pieces: &[&str]| {
+            write_streamed_atomically(&path, |sink| pieces.iter().try_for_each(|p| sink(p)))
+                .unwrap();
+            let meta = std::fs::metadata(&path).unwrap();
+            (std::fs::read_to_string(&path).unwrap(), meta.ino())
+        };
+        // Longer than one comparison piece, so later pieces are compared too.
+        let long = "x".repeat(SAME_AS_PIECE + 10);
+        let (text, first) = write(&["ab", &long, "cd"]);
+        assert_eq!(text, format!("ab{long}cd"));
+        // The same text in other pieces: the file is left alone (a rename would change it).
+        let (text, inode) = write(&["a", &format!("b{long}c"), "d"]);
+        assert_eq!((text.len(), inode), (long.len() + 4, first));
+        for changed in [
+            vec!["ab", &long, "ce"],
+            vec!["ab", &long, "c"],
+            vec!["ab", &long, "cde"],
+        ] {
+            let (text, _) = write(&changed);
+            assert_eq!(text, changed.concat());
+        }
+        let no_temps = std::fs::read_dir(dir.path()).unwrap().all(|e| {
+            !e.unwrap()
+                .file_name()
+                .to_string_lossy()
+                .starts_with(TEMP_PREFIX)
+        });
+        assert!(no_temps, "temporary files left behind");
+    }
 
     #[test]
     fn holds_compares_size_and_every_byte() {

@@ -82,6 +82,26 @@ fn columns(array: &LabelledArray) -> (Option<usize>, Vec<usize>, Vec<String>) {
 /// coordinate, then the value (`value`, or `real` and `imag` for complex arrays). A `statistic`
 /// axis is pivoted into one column per statistic. Rows follow the array's (row-major) order.
 pub fn tidy_tsv(array: &LabelledArray) -> String {
+    let mut out = String::new();
+    let done: Result<(), std::convert::Infallible> = write_tidy_tsv(array, &mut |piece| {
+        out.push_str(piece);
+        Ok(())
+    });
+    match done {
+        Ok(()) => out,
+        Err(never) => match never {},
+    }
+}
+
+/// [`tidy_tsv`], handed to `sink` piece by piece in order (the pieces joined are exactly that
+/// text) instead of built whole: a group table of a large study is tens of MB, and building it
+/// whole first costs as much as writing it. Blocks of rows are formatted in parallel a batch at
+/// a time, the next batch while `sink` takes the last, into buffers that are reused; the first
+/// error of `sink` stops the writing and is returned.
+pub fn write_tidy_tsv<E: Send>(
+    array: &LabelledArray,
+    sink: &mut (dyn FnMut(&str) -> Result<(), E> + Send),
+) -> Result<(), E> {
     let layout = &array.layout;
     let (pivot, row_axes, header) = columns(array);
     let row_shape: Vec<usize> = row_axes.iter().map(|&a| axis_len(array, a)).collect();
@@ -101,8 +121,10 @@ pub fn tidy_tsv(array: &LabelledArray) -> String {
     let pivot_stride = pivot.map_or(0, |p| strides[p]);
     let flat = Flat::of(&array.values);
     let rows: usize = row_shape.iter().product();
-    let format_rows = |range: std::ops::Range<usize>| {
-        let mut out = String::with_capacity(range.len().saturating_mul(16 * (header.len() + 1)));
+    let blocks = rows.div_ceil(ROWS_PER_BLOCK);
+    let format_block = |out: &mut String, block: usize| {
+        out.clear();
+        let range = block * ROWS_PER_BLOCK..((block + 1) * ROWS_PER_BLOCK).min(rows);
         for_each_index_in(&row_shape, range, |row| {
             let mut base = 0;
             let mut first = true;
@@ -115,30 +137,43 @@ pub fn tidy_tsv(array: &LabelledArray) -> String {
                 out.push_str(&coord_texts[k][i]);
             }
             for j in 0..pivot_len {
-                flat.push_cells(&mut out, base + j * pivot_stride, &mut first);
+                flat.push_cells(out, base + j * pivot_stride, &mut first);
             }
             out.push('\n');
         });
-        out
     };
-    // Blocks of rows are formatted in parallel and joined in order: the same text as one pass
-    // (a group table of a large study has hundreds of thousands of rows).
-    let blocks: Vec<String> = (0..rows.div_ceil(ROWS_PER_BLOCK))
-        .into_par_iter()
-        .map(|b| format_rows(b * ROWS_PER_BLOCK..((b + 1) * ROWS_PER_BLOCK).min(rows)))
-        .collect();
-    let mut out = String::with_capacity(
-        blocks.iter().map(String::len).sum::<usize>() + 16 * (header.len() + 1),
-    );
-    let _ = writeln!(out, "{}", header.join("\t"));
-    for block in blocks {
-        out.push_str(&block);
+    // Blocks `from …` of one batch, one buffer each (buffers past the last block left empty).
+    let format_batch = |bufs: &mut [String], from: usize| {
+        bufs.par_iter_mut().enumerate().for_each(|(i, buf)| {
+            buf.clear();
+            if from + i < blocks {
+                format_block(buf, from + i);
+            }
+        });
+    };
+    sink(&format!("{}\n", header.join("\t")))?;
+    let mut ready = vec![String::new(); BLOCKS_PER_BATCH];
+    let mut next = vec![String::new(); BLOCKS_PER_BATCH];
+    format_batch(&mut ready, 0);
+    let mut from = 0;
+    while from < blocks {
+        let (written, ()) = rayon::join(
+            || ready.iter().try_for_each(|piece| sink(piece)),
+            || format_batch(&mut next, from + BLOCKS_PER_BATCH),
+        );
+        written?;
+        std::mem::swap(&mut ready, &mut next);
+        from += BLOCKS_PER_BATCH;
     }
-    out
+    Ok(())
 }
 
-/// Rows per parallel piece of [`tidy_tsv`].
+/// Rows per parallel piece of [`write_tidy_tsv`].
 const ROWS_PER_BLOCK: usize = 4096;
+
+/// Blocks formatted (in parallel) per batch of [`write_tidy_tsv`]: about 1.6 MB of a group
+/// table's text.
+const BLOCKS_PER_BATCH: usize = 8;
 
 /// The values in row-major order (borrowed when they already are).
 enum Flat<'a> {
@@ -378,9 +413,10 @@ mod tests {
 
     #[test]
     fn a_table_of_many_blocks_equals_the_cell_by_cell_one() {
-        // 18000 rows: several blocks of ROWS_PER_BLOCK, formatted in parallel and joined.
-        let (n, m) = (3000usize, 2usize);
-        assert!(3 * n * m > 4 * ROWS_PER_BLOCK);
+        // 72000 rows: 18 blocks of ROWS_PER_BLOCK in three batches (the last one short),
+        // formatted in parallel and handed on in order.
+        let (n, m) = (12000usize, 2usize);
+        assert!(3 * n * m > 2 * BLOCKS_PER_BATCH * ROWS_PER_BLOCK);
         let layout = Layout {
             dims: ["condition", "trial", "time"].map(String::from).to_vec(),
             coords: vec![
@@ -396,6 +432,22 @@ mod tests {
         });
         let array = LabelledArray::checked(layout, Values::Real(values)).unwrap();
         assert_eq!(tidy_tsv(&array), plain_tsv(&array));
+        // The first error of the sink ends the writing: nothing is handed on after it.
+        let mut pieces = 0;
+        let mut after_error = 0;
+        let done = write_tidy_tsv(&array, &mut |_| {
+            pieces += 1;
+            if pieces > 3 {
+                after_error += 1;
+            }
+            if pieces == 3 {
+                Err("disk full")
+            } else {
+                Ok(())
+            }
+        });
+        assert_eq!(done, Err("disk full"));
+        assert_eq!((pieces, after_error), (3, 0));
     }
 
     #[test]
