@@ -285,10 +285,15 @@ impl Bank {
         }
         debug_assert_eq!(signals.len() % self.len, 0);
         debug_assert_eq!(out.len(), signals.len() / self.len * per);
-        for (src, dst) in signals.chunks(2 * self.len).zip(out.chunks_mut(2 * per)) {
+        let pairs = signals.chunks(2 * self.len);
+        let next = signals.chunks(2 * self.len).skip(1).map(Some).chain([None]);
+        for ((src, next), dst) in pairs.zip(next).zip(out.chunks_mut(2 * per)) {
             let (x, y) = src.split_at(self.len.min(src.len()));
             let (out_x, out_y) = dst.split_at_mut(per.min(dst.len()));
             self.pair(x, y, s);
+            // The next pair's samples are read from memory while this pair's transforms run,
+            // instead of when its first loop waits for them.
+            prefetch(next.unwrap_or_default());
             self.fold_and_invert(s, out_x, out_y);
         }
     }
@@ -375,6 +380,24 @@ impl Bank {
             }
         }
     }
+}
+
+/// Asks the CPU to bring `values` into its caches (a hint: no result, no fault, no change to any
+/// number; nothing on other architectures).
+#[inline(always)]
+fn prefetch(values: &[f32]) {
+    #[cfg(target_arch = "x86_64")]
+    for line in values.chunks(16) {
+        // SAFETY: a prefetch only hints at an address (here one inside `values`); it reads
+        // nothing the program can see and never faults.
+        unsafe {
+            std::arch::x86_64::_mm_prefetch::<{ std::arch::x86_64::_MM_HINT_T0 }>(
+                line.as_ptr().cast(),
+            )
+        };
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    let _ = values;
 }
 
 /// An element of the output of [`Bank::transform`]: an initialised value, or memory not written
