@@ -4,10 +4,13 @@
 //! Preparing a study reads no samples: recordings are found and hashed (through stat records),
 //! units expanded, keys computed, and every op's `layout` called down the graph on the
 //! recordings' headers, so that a data-dependent mistake in a param (a window outside the data, a
-//! frequency above Nyquist) is reported with its line before anything runs.
+//! frequency above Nyquist) is reported with its line before anything runs. Units already in the
+//! cache (same key: same inputs, params and op version) are not planned again: their recorded
+//! layout stands in, and recordings that only they read are not opened.
 
 use std::collections::BTreeSet;
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 
 use phasewise_stages::{InputLayout, Layout, StageError};
 use serde_json::json;
@@ -18,7 +21,7 @@ use crate::paths::relative_to;
 use crate::pipeline::{Diagnostic, PipelineError, ResolvedPipeline, SOURCE};
 use crate::plan::{Plan, Stored, UnitFacts};
 use crate::sources::{self, FileHash, Hasher, Reader, Source, SourceError};
-use crate::store::{last_id, Lookup, Store};
+use crate::store::{last_id, Lookup, ObjectRecord, Store};
 
 /// Why a study could not be prepared or run.
 #[derive(Debug, thiserror::Error)]
@@ -327,11 +330,31 @@ impl<'o> Study<'o> {
         paths
     }
 
-    /// Call every op's `layout` down the graph on the recordings' headers.
+    /// Call every op's `layout` down the graph on the recordings' headers. A unit whose record
+    /// is in the cache was computed from these very inputs and params (its key says so): its
+    /// layout is the record's and there is nothing left to check, so only the other units are
+    /// planned, and only the recordings they read are opened (a rerun after a late change reads
+    /// no recording header at all).
     pub fn check_layouts(&self, reader: &dyn Reader) -> Result<(), RunError> {
+        let recorded: Vec<Option<Arc<ObjectRecord>>> = self
+            .keys
+            .iter()
+            .map(|key| match self.store.lookup(key) {
+                Lookup::Present(record) => Some(record),
+                Lookup::Absent | Lookup::Damaged(_) => None,
+            })
+            .collect();
+        let mut read = vec![false; self.sources.len()];
+        for (unit, known) in self.units.iter().zip(&recorded) {
+            for input in unit.inputs.iter().filter(|_| known.is_none()) {
+                if let UnitInput::Source(s) = *input {
+                    read[s] = true;
+                }
+            }
+        }
         let mut source_layouts: Vec<Option<Layout>> = Vec::new();
         let mut failures = Vec::new();
-        for source in &self.sources {
+        for (source, _) in self.sources.iter().zip(&read).filter(|(_, &r)| r) {
             match reader.layout(&source.path, self.pipeline.events) {
                 Ok(l) => source_layouts.push(Some(l)),
                 Err(e) => {
@@ -346,16 +369,33 @@ impl<'o> Study<'o> {
                 }
             }
         }
-        let mut layouts: Vec<Option<Layout>> = Vec::new();
+        // Back to one entry per source (none for those not read).
+        let mut read_layouts = source_layouts.into_iter();
+        let source_layouts: Vec<Option<Layout>> = read
+            .iter()
+            .map(|&r| {
+                if r {
+                    read_layouts.next().flatten()
+                } else {
+                    None
+                }
+            })
+            .collect();
+        let mut layouts: Vec<Option<Planned>> = Vec::new();
         let mut diagnostics: Vec<Diagnostic> = Vec::new();
-        for u in 0..self.units.len() {
-            let layout = self.unit_layout(
-                u,
-                &source_layouts,
-                &layouts,
-                &mut diagnostics,
-                &mut failures,
-            );
+        for (u, known) in recorded.into_iter().enumerate() {
+            let layout = match known {
+                Some(record) => Some(Planned::Recorded(record)),
+                None => self
+                    .unit_layout(
+                        u,
+                        &source_layouts,
+                        &layouts,
+                        &mut diagnostics,
+                        &mut failures,
+                    )
+                    .map(Planned::Computed),
+            };
             layouts.push(layout);
         }
         if !diagnostics.is_empty() {
@@ -371,7 +411,7 @@ impl<'o> Study<'o> {
         &self,
         u: usize,
         sources: &[Option<Layout>],
-        units: &[Option<Layout>],
+        units: &[Option<Planned>],
         diagnostics: &mut Vec<Diagnostic>,
         failures: &mut Vec<UnitFailure>,
     ) -> Option<Layout> {
@@ -384,7 +424,11 @@ impl<'o> Study<'o> {
                     Some(self.sources[s].subject.as_str()),
                     sources[s].as_ref(),
                 ),
-                UnitInput::Unit(i) => (self.stage_name(i), self.subject(i), units[i].as_ref()),
+                UnitInput::Unit(i) => (
+                    self.stage_name(i),
+                    self.subject(i),
+                    units[i].as_ref().map(Planned::layout),
+                ),
             };
             inputs.push(InputLayout {
                 stage,
@@ -425,6 +469,21 @@ impl<'o> Study<'o> {
         self.pipeline
             .output
             .join(self.subject(unit).unwrap_or("group"))
+    }
+}
+
+/// A unit's output layout while layouts are checked: its record's, or planned by its op.
+enum Planned {
+    Recorded(Arc<ObjectRecord>),
+    Computed(Layout),
+}
+
+impl Planned {
+    fn layout(&self) -> &Layout {
+        match self {
+            Planned::Recorded(record) => &record.layout,
+            Planned::Computed(layout) => layout,
+        }
     }
 }
 

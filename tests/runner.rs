@@ -48,6 +48,84 @@ fn item1_a_mid_chain_param_change_recomputes_that_stage_and_its_descendants_only
     assert_eq!(read_npy(&p.output().join("group/g.npy")), a);
 }
 
+/// The reader of the stages crate, counting the recording headers it is asked for.
+struct CountingReader(std::sync::atomic::AtomicUsize);
+
+impl phasewise::sources::Reader for CountingReader {
+    fn sidecars(&self, path: &std::path::Path) -> Vec<std::path::PathBuf> {
+        phasewise::sources::Reader::sidecars(&RecordingReader, path)
+    }
+    fn layout(
+        &self,
+        path: &std::path::Path,
+        events: phasewise_stages::io::EventSource,
+    ) -> Result<phasewise_stages::Layout, phasewise_stages::StageError> {
+        self.0.fetch_add(1, std::sync::atomic::Ordering::SeqCst);
+        phasewise::sources::Reader::layout(&RecordingReader, path, events)
+    }
+    fn read(
+        &self,
+        path: &std::path::Path,
+        events: phasewise_stages::io::EventSource,
+        notes: &mut phasewise_stages::Notes,
+    ) -> Result<phasewise_stages::LabelledArray, phasewise_stages::StageError> {
+        phasewise::sources::Reader::read(&RecordingReader, path, events, notes)
+    }
+}
+
+/// Layouts are checked before anything runs, from the recordings' headers down; a unit already
+/// in the cache stands in with its recorded layout, so a late change opens no header, while a
+/// data-dependent mistake in a stale unit is still found (on its cached input's layout) before
+/// anything runs, and a change at the top reads each subject's header again.
+#[test]
+fn layouts_of_cached_units_come_from_their_records() {
+    let p = Project::new(&["01", "02"]);
+    p.pipeline(CHAIN);
+    let ops = ops();
+    let reader = CountingReader(Default::default());
+    let run = |set: &[&str]| {
+        reader.0.store(0, std::sync::atomic::Ordering::SeqCst);
+        let options = Options {
+            overrides: set.iter().map(|s| s.to_string()).collect(),
+            ..Options::default()
+        };
+        let env = phasewise::session::Env {
+            ops: &ops,
+            reader: &reader,
+        };
+        let result = phasewise::session::run(&p.pipeline_path(), &options, env);
+        (result, reader.0.load(std::sync::atomic::Ordering::SeqCst))
+    };
+    let (first, headers) = run(&[]);
+    assert_eq!(computed(&first.unwrap().manifest).len(), 7);
+    assert_eq!(headers, 2, "a cold run checks both subjects' headers");
+
+    let (late, headers) = run(&["c.factor=0.25"]);
+    assert_eq!(
+        computed(&late.unwrap().manifest),
+        labels(&["c/01", "c/02", "g"])
+    );
+    assert_eq!(headers, 0, "every unit the change leaves alone is cached");
+
+    // The channel list the check needs comes from b's record.
+    let (bad, headers) = run(&["c.channel=Nope"]);
+    let message = bad.expect_err("an unknown channel is refused").to_string();
+    assert!(
+        message.contains("no channel `Nope` in the data"),
+        "{message}"
+    );
+    assert_eq!(headers, 0);
+    let (known, _) = run(&["c.channel=Cz"]);
+    assert_eq!(
+        computed(&known.unwrap().manifest),
+        labels(&["c/01", "c/02", "g"])
+    );
+
+    let (top, headers) = run(&["a.factor=5"]);
+    assert_eq!(computed(&top.unwrap().manifest).len(), 7);
+    assert_eq!(headers, 2);
+}
+
 // --- item 2 --------------------------------------------------------------------------------
 
 #[test]
