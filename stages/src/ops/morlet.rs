@@ -373,9 +373,7 @@ impl Bank {
             let rows = [(&mut *out_x, 0), (&mut *out_y, p)];
             for (out, at) in rows {
                 if let Some(row) = out.get_mut(w * count..(w + 1) * count) {
-                    for (dst, v) in row.iter_mut().zip(&s.folded[at..at + count]) {
-                        dst.set(Complex32::new(v.re as f32, v.im as f32));
-                    }
+                    T::set_all(row, &s.folded[at..at + count]);
                 }
             }
         }
@@ -403,9 +401,12 @@ fn prefetch(values: &[f32]) {
 /// An element of the output of [`Bank::transform`]: an initialised value, or memory not written
 /// yet (`MaybeUninit`), for callers that would otherwise clear the memory only for the transform
 /// to overwrite every value.
-pub trait Slot {
+pub trait Slot: Sized {
     /// Store `v`.
     fn set(&mut self, v: Complex32);
+
+    /// Store `from` rounded to f32, element for element (`to` and `from` of one length).
+    fn set_all(to: &mut [Self], from: &[Complex64]);
 }
 
 impl Slot for Complex32 {
@@ -413,12 +414,38 @@ impl Slot for Complex32 {
     fn set(&mut self, v: Complex32) {
         *self = v;
     }
+
+    #[inline(always)]
+    fn set_all(to: &mut [Self], from: &[Complex64]) {
+        // As plain f64 → f32 conversions of the interleaved (re, im) numbers: the same roundings
+        // as per complex value, in a loop that converts four at a time with no shuffles.
+        let to: &mut [f32] = bytemuck::cast_slice_mut(to);
+        let from: &[f64] = bytemuck::cast_slice(from);
+        for (t, &f) in to.iter_mut().zip(from) {
+            *t = f as f32;
+        }
+    }
 }
 
 impl Slot for MaybeUninit<Complex32> {
     #[inline(always)]
     fn set(&mut self, v: Complex32) {
         self.write(v);
+    }
+
+    #[inline(always)]
+    fn set_all(to: &mut [Self], from: &[Complex64]) {
+        let n = 2 * to.len();
+        // SAFETY: `Complex32` is `repr(C)` with two `f32` fields (re, im) and no padding, so
+        // `to`'s memory is `2 · len` slots of `MaybeUninit<f32>` in that order; the slice
+        // borrows `to` exclusively for its lifetime and only `MaybeUninit` values are written.
+        let to = unsafe {
+            std::slice::from_raw_parts_mut(to.as_mut_ptr().cast::<MaybeUninit<f32>>(), n)
+        };
+        let from: &[f64] = bytemuck::cast_slice(from);
+        for (t, &f) in to.iter_mut().zip(from) {
+            t.write(f as f32);
+        }
     }
 }
 
