@@ -345,8 +345,13 @@ impl<'o> Study<'o> {
             })
             .collect();
         let mut read = vec![false; self.sources.len()];
-        for (unit, known) in self.units.iter().zip(&recorded) {
-            for input in unit.inputs.iter().filter(|_| known.is_none()) {
+        let planned = self
+            .units
+            .iter()
+            .zip(&recorded)
+            .filter(|(_, r)| r.is_none());
+        for (unit, _) in planned {
+            for input in &unit.inputs {
                 if let UnitInput::Source(s) = *input {
                     read[s] = true;
                 }
@@ -354,7 +359,11 @@ impl<'o> Study<'o> {
         }
         let mut source_layouts: Vec<Option<Layout>> = Vec::new();
         let mut failures = Vec::new();
-        for (source, _) in self.sources.iter().zip(&read).filter(|(_, &r)| r) {
+        for (source, &needed) in self.sources.iter().zip(&read) {
+            if !needed {
+                source_layouts.push(None);
+                continue;
+            }
             match reader.layout(&source.path, self.pipeline.events) {
                 Ok(l) => source_layouts.push(Some(l)),
                 Err(e) => {
@@ -369,18 +378,6 @@ impl<'o> Study<'o> {
                 }
             }
         }
-        // Back to one entry per source (none for those not read).
-        let mut read_layouts = source_layouts.into_iter();
-        let source_layouts: Vec<Option<Layout>> = read
-            .iter()
-            .map(|&r| {
-                if r {
-                    read_layouts.next().flatten()
-                } else {
-                    None
-                }
-            })
-            .collect();
         let mut layouts: Vec<Option<Planned>> = Vec::new();
         let mut diagnostics: Vec<Diagnostic> = Vec::new();
         for (u, known) in recorded.into_iter().enumerate() {
