@@ -853,8 +853,9 @@ fn replace_via_temp<T>(
         name.unwrap_or_default()
     ));
     let mut file = File::create(&temp)?;
+    // Only a file about to be renamed is made durable; one that `fill` turned down is removed.
     let filled = fill(&mut Writeback::new(&mut file)).and_then(|r| {
-        if durable {
+        if durable && r.is_ok() {
             file.sync_all()?;
         }
         Ok(r)

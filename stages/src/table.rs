@@ -434,12 +434,8 @@ mod tests {
         assert_eq!(tidy_tsv(&array), plain_tsv(&array));
         // The first error of the sink ends the writing: nothing is handed on after it.
         let mut pieces = 0;
-        let mut after_error = 0;
         let done = write_tidy_tsv(&array, &mut |_| {
             pieces += 1;
-            if pieces > 3 {
-                after_error += 1;
-            }
             if pieces == 3 {
                 Err("disk full")
             } else {
@@ -447,7 +443,7 @@ mod tests {
             }
         });
         assert_eq!(done, Err("disk full"));
-        assert_eq!((pieces, after_error), (3, 0));
+        assert_eq!(pieces, 3, "pieces handed on after the error");
     }
 
     #[test]
