@@ -1008,7 +1008,7 @@ pub mod record_layout {
         Ok(match coord {
             CoordIn::Labels(v) => Coord::Labels(v),
             CoordIn::Numbers(v) => Coord::Numbers(v),
-            CoordIn::Pairs(v) => Coord::Pairs(v),
+            CoordIn::Pairs(v) => Coord::Pairs(v.into()),
             CoordIn::NumbersDelta2(text) => Coord::Numbers(from_delta2_bytes(&decode(&text)?)?),
             CoordIn::NumbersF64le(text) => {
                 let bytes = decode(&text)?;

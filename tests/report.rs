@@ -83,7 +83,7 @@ fn tf_coords() -> Vec<Coord> {
     vec![
         Coord::Labels(vec!["A".into(), "B".into()]),
         Coord::Labels(vec!["plv".into(), "wpli".into()]),
-        Coord::Pairs(pairs()),
+        Coord::Pairs(pairs().into()),
         Coord::Numbers(freqs()),
         Coord::Numbers(times()),
     ]

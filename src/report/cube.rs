@@ -171,7 +171,7 @@ fn labels_or(s: &Sidecar, dim: &str, default: &str) -> Result<Vec<String>, Strin
 
 fn pairs_of(s: &Sidecar) -> Result<Vec<[String; 2]>, String> {
     match coord_of(s, "pair") {
-        Some(Coord::Pairs(p)) => Ok(p.clone()),
+        Some(Coord::Pairs(p)) => Ok(p.to_vec()),
         Some(_) => Err("its `pair` axis holds labels, not channel pairs".to_string()),
         None => Err("it has no `pair` axis".to_string()),
     }

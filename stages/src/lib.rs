@@ -20,7 +20,9 @@ pub mod registry;
 pub mod simulate;
 pub mod table;
 
-pub use array::{Coord, Event, Joining, LabelledArray, Layout, Meta, TrialInfo, Values};
+pub use array::{
+    Coord, Event, Joining, LabelledArray, Layout, Meta, SharedList, TrialInfo, Values,
+};
 pub use error::StageError;
 pub use op::{DynOp, Input, InputLayout, Notes, Op, OwnedInput};
 

@@ -320,7 +320,7 @@ mod tests {
             coords: vec![
                 labels(&["mean", "sem", "n"]),
                 labels(&["sub-01", "group"]),
-                Coord::Pairs(vec![["F3".into(), "P4".into()]]),
+                Coord::Pairs(vec![["F3".into(), "P4".into()]].into()),
                 labels(&["theta", "alpha"]),
             ],
             units: "1".into(),
@@ -461,12 +461,15 @@ mod tests {
                 .to_vec();
             let mut coords = vec![
                 labels(&["A", "B", "C"]),
-                Coord::Pairs(vec![
-                    ["F3".into(), "P4".into()],
-                    ["Fz".into(), "Cz".into()],
-                    ["a".into(), "b".into()],
-                    ["c".into(), "d".into()],
-                ]),
+                Coord::Pairs(
+                    vec![
+                        ["F3".into(), "P4".into()],
+                        ["Fz".into(), "Cz".into()],
+                        ["a".into(), "b".into()],
+                        ["c".into(), "d".into()],
+                    ]
+                    .into(),
+                ),
                 labels(&["theta", "alpha", "beta"]),
                 Coord::Numbers(vec![-0.25, 1e-9]),
             ];

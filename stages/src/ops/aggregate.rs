@@ -711,7 +711,7 @@ mod tests {
             coords: vec![
                 Coord::Labels(strings(&meta["conditions"])),
                 Coord::Labels(strings(&meta["measures"])),
-                Coord::Pairs(pairs),
+                Coord::Pairs(pairs.into()),
                 Coord::Numbers(numbers("freqs")),
                 Coord::Numbers(numbers("times")),
             ],
@@ -947,7 +947,8 @@ mod tests {
         arrays[3].layout.coords[2] = Coord::Pairs(
             [["F3", "P4"], ["F3", "Pz"], ["Cz", "P4"]]
                 .map(|p| p.map(String::from))
-                .to_vec(),
+                .to_vec()
+                .into(),
         );
         let err = run_group_on(&p, &ids, &arrays).unwrap_err();
         assert_eq!(

@@ -534,7 +534,8 @@ mod tests {
                 Coord::Pairs(
                     [["F3", "P4"], ["F3", "Cz"], ["Cz", "P4"], ["Fz", "Pz"]]
                         .map(|p| p.map(String::from))
-                        .to_vec(),
+                        .to_vec()
+                        .into(),
                 ),
                 Coord::Numbers(vec![4.0, 6.0, 8.0, 10.0, 12.0]),
                 Coord::Numbers(numbers("times")),
