@@ -70,21 +70,26 @@ impl Outcome {
     }
 }
 
-/// Run the plan: `jobs` threads (all cores when `None`), `bar` ticked per unit.
-pub fn execute(
-    study: &Study<'_>,
-    plan: &Plan,
-    reader: &dyn Reader,
-    jobs: Option<usize>,
-    bar: &ProgressBar,
-) -> Result<Outcome, RunError> {
+/// The thread pool of a run: `jobs` threads (all cores when `None`). A run does all its work
+/// inside it ([`rayon::ThreadPool::install`]), its start (reading the cache's records) as well
+/// as [`execute`], so `--jobs` bounds the whole run.
+pub fn pool(jobs: Option<usize>) -> Result<rayon::ThreadPool, RunError> {
     let mut builder = rayon::ThreadPoolBuilder::new();
     if let Some(n) = jobs {
         builder = builder.num_threads(n.max(1));
     }
-    let pool = builder
+    builder
         .build()
-        .map_err(|e| RunError::Other(format!("cannot start {jobs:?} threads: {e}")))?;
+        .map_err(|e| RunError::Other(format!("cannot start {jobs:?} threads: {e}")))
+}
+
+/// Run the plan on the current thread pool (a run's [`pool`]), `bar` ticked per unit.
+pub fn execute(
+    study: &Study<'_>,
+    plan: &Plan,
+    reader: &dyn Reader,
+    bar: &ProgressBar,
+) -> Result<Outcome, RunError> {
     let ctx = Ctx {
         study,
         plan,
@@ -94,8 +99,7 @@ pub fn execute(
     let chains: Vec<Vec<usize>> = (0..study.sources.len())
         .map(|s| units_where(study, |u| study.units[u].subject == Some(s)))
         .collect();
-    let done: Vec<ChainResult> =
-        pool.install(|| chains.par_iter().map(|c| ctx.run_chain(c)).collect());
+    let done: Vec<ChainResult> = chains.par_iter().map(|c| ctx.run_chain(c)).collect();
     let mut merged = Merged::default();
     let mut prepared = HashMap::new();
     for mut chain in done {
@@ -104,7 +108,7 @@ pub fn execute(
     }
     if merged.failures.is_empty() {
         let group = units_where(study, |u| study.units[u].subject.is_none());
-        let chain = pool.install(|| ctx.run_chain_with(&group, prepared));
+        let chain = ctx.run_chain_with(&group, prepared);
         merged.absorb(chain);
     }
     merged.finish(study)

@@ -92,19 +92,21 @@ pub struct RunSummary {
 /// Run a pipeline and write its outputs and manifest.
 pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, RunError> {
     let started = now();
-    let study = open(file, options, env)?;
-    let plan = study.plan();
-    tracing::info!(
-        units = plan.units.len(),
-        stale = plan.stale_count(),
-        subjects = study.sources.len(),
-        "planned"
-    );
-    let bar = progress_bar(study.units.len(), options.progress);
-    let outcome = exec::execute(&study, &plan, env.reader, options.jobs, &bar)?;
-    bar.finish_and_clear();
-    study.remember_sources();
-    finish(&study, &outcome, &started)
+    exec::pool(options.jobs)?.install(|| {
+        let study = open(file, options, env)?;
+        let plan = study.plan();
+        tracing::info!(
+            units = plan.units.len(),
+            stale = plan.stale_count(),
+            subjects = study.sources.len(),
+            "planned"
+        );
+        let bar = progress_bar(study.units.len(), options.progress);
+        let outcome = exec::execute(&study, &plan, env.reader, &bar)?;
+        bar.finish_and_clear();
+        study.remember_sources();
+        finish(&study, &outcome, &started)
+    })
 }
 
 fn finish(study: &Study<'_>, outcome: &Outcome, started: &str) -> Result<RunSummary, RunError> {

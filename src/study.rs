@@ -13,6 +13,7 @@ use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use phasewise_stages::{InputLayout, Layout, StageError};
+use rayon::prelude::*;
 use serde_json::json;
 
 use crate::graph::{self, StageShape, Unit, UnitInput};
@@ -336,9 +337,11 @@ impl<'o> Study<'o> {
     /// planned, and only the recordings they read are opened (a rerun after a late change reads
     /// no recording header at all).
     pub fn check_layouts(&self, reader: &dyn Reader) -> Result<(), RunError> {
+        // Reading and parsing the records (their time axes can be long) is most of a no-op
+        // run: in parallel, on the run's pool.
         let recorded: Vec<Option<Arc<ObjectRecord>>> = self
             .keys
-            .iter()
+            .par_iter()
             .map(|key| match self.store.lookup(key) {
                 Lookup::Present(record) => Some(record),
                 Lookup::Absent | Lookup::Damaged(_) => None,
