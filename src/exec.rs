@@ -85,7 +85,7 @@ pub fn pool(jobs: Option<usize>) -> Result<rayon::ThreadPool, RunError> {
 
 /// Run the plan on the current thread pool (a run's [`pool`]), `bar` ticked per unit.
 pub fn execute(
-    study: &Study<'_>,
+    study: &Study,
     plan: &Plan,
     reader: &dyn Reader,
     bar: &ProgressBar,
@@ -115,7 +115,7 @@ pub fn execute(
 }
 
 /// The stage and subject an input comes from.
-fn origin<'s>(study: &'s Study<'_>, input: UnitInput) -> (&'s str, Option<&'s str>) {
+fn origin<'s>(study: &'s Study, input: UnitInput) -> (&'s str, Option<&'s str>) {
     match input {
         UnitInput::Source(s) => (SOURCE, Some(study.sources[s].subject.as_str())),
         UnitInput::Unit(i) => (study.stage_name(i), study.subject(i)),
@@ -124,7 +124,7 @@ fn origin<'s>(study: &'s Study<'_>, input: UnitInput) -> (&'s str, Option<&'s st
 
 /// The op inputs for `held` arrays; their carried warnings are appended to `warnings`.
 fn as_inputs<'h>(
-    study: &'h Study<'_>,
+    study: &'h Study,
     held: &'h [(UnitInput, Held)],
     warnings: &mut Vec<String>,
 ) -> Vec<Input<'h>> {
@@ -141,12 +141,12 @@ fn as_inputs<'h>(
         .collect()
 }
 
-fn units_where(study: &Study<'_>, keep: impl Fn(usize) -> bool) -> Vec<usize> {
+fn units_where(study: &Study, keep: impl Fn(usize) -> bool) -> Vec<usize> {
     (0..study.units.len()).filter(|&u| keep(u)).collect()
 }
 
-struct Ctx<'a, 'o> {
-    study: &'a Study<'o>,
+struct Ctx<'a> {
+    study: &'a Study,
     plan: &'a Plan,
     reader: &'a dyn Reader,
     bar: &'a ProgressBar,
@@ -187,7 +187,7 @@ impl Merged {
         self.failures.extend(chain.failure);
     }
 
-    fn finish(mut self, study: &Study<'_>) -> Result<Outcome, RunError> {
+    fn finish(mut self, study: &Study) -> Result<Outcome, RunError> {
         if !self.failures.is_empty() {
             return Err(RunError::Units(self.failures));
         }
@@ -216,8 +216,8 @@ impl Merged {
 /// An array in memory, with the notes of reading it (for sources).
 type Held = (Arc<LabelledArray>, Vec<String>);
 
-struct Worker<'c, 'a, 'o> {
-    ctx: &'c Ctx<'a, 'o>,
+struct Worker<'c, 'a> {
+    ctx: &'c Ctx<'a>,
     memory: HashMap<UnitInput, Held>,
     /// Inputs already prepared for a group unit (by the chains that produced them).
     prepared: HashMap<(usize, usize), Held>,
@@ -226,7 +226,7 @@ struct Worker<'c, 'a, 'o> {
     out: ChainResult,
 }
 
-impl Ctx<'_, '_> {
+impl Ctx<'_> {
     fn run_chain(&self, chain: &[usize]) -> ChainResult {
         self.run_chain_with(chain, HashMap::new())
     }
@@ -265,7 +265,7 @@ impl Ctx<'_, '_> {
     }
 }
 
-impl Ctx<'_, '_> {
+impl Ctx<'_> {
     /// True for a unit whose values this chain would compute only to forget them: stale,
     /// `cache: false`, not exported, and consumed only by stale units of other chains (a subject's
     /// baseline feeding the group aggregate), which compute it themselves when they need it —
@@ -298,13 +298,13 @@ impl Ctx<'_, '_> {
             subject_unit
                 && study.units[g].subject.is_none()
                 && self.plan.units[g].status != Status::Fresh
-                && stage.op.prepares(&stage.params)
+                && stage.op.prepares()
         })
     }
 }
 
-impl Worker<'_, '_, '_> {
-    fn study(&self) -> &Study<'_> {
+impl Worker<'_, '_> {
+    fn study(&self) -> &Study {
         self.ctx.study
     }
 
@@ -383,7 +383,7 @@ impl Worker<'_, '_, '_> {
         };
         for &g in groups {
             let stage = &study.pipeline.stages[study.units[g].stage];
-            if let Some(result) = stage.op.prepare(&stage.params, &input) {
+            if let Some(result) = stage.op.prepare(&input) {
                 let small = result.map_err(|e| self.op_failure(g, &e))?;
                 self.out
                     .prepared
@@ -551,7 +551,7 @@ impl Worker<'_, '_, '_> {
         // An op that prepares its inputs gets each one prepared as soon as it is loaded (or
         // finds it prepared by the chain that produced it); the whole input is dropped before
         // the next one is loaded.
-        let prepared = stage.op.prepares(&stage.params);
+        let prepared = stage.op.prepares();
         let mut held = Vec::new();
         for &input in &unit.inputs {
             if let UnitInput::Unit(i) = input {
@@ -571,7 +571,7 @@ impl Worker<'_, '_, '_> {
                 subject,
                 array: array.as_ref(),
             };
-            let Some(result) = stage.op.prepare(&stage.params, &whole) else {
+            let Some(result) = stage.op.prepare(&whole) else {
                 return Err(self.fail(u, "internal: an input could not be prepared"));
             };
             let small = result.map_err(|e| self.op_failure(u, &e))?;
@@ -586,9 +586,9 @@ impl Worker<'_, '_, '_> {
         let inputs = as_inputs(study, &held, &mut notes.warnings);
         tracing::info!(stage = %stage.name, subject = ?study.subject(u), "computing");
         let array = if prepared {
-            stage.op.join(&stage.params, &inputs, &mut notes)
+            stage.op.join(&inputs, &mut notes)
         } else {
-            stage.op.run(&stage.params, &inputs, &mut notes)
+            stage.op.run(&inputs, &mut notes)
         }
         .map_err(|e| self.op_failure(u, &e))?;
         drop(inputs);
@@ -607,7 +607,7 @@ impl Worker<'_, '_, '_> {
             return Ok(None);
         };
         let ready = matches!(input, UnitInput::Unit(i) if self.prepared.contains_key(&(u, i)));
-        if ready || stage.op.prepares(&stage.params) || self.uses_left.get(&input) != Some(&1) {
+        if ready || stage.op.prepares() || self.uses_left.get(&input) != Some(&1) {
             return Ok(None);
         }
         let (array, carried) = self.values(input)?;
@@ -633,7 +633,7 @@ impl Worker<'_, '_, '_> {
         tracing::info!(stage = %stage.name, subject = ?study.subject(u), "computing");
         let array = stage
             .op
-            .run_owned(&stage.params, owned, &mut notes)
+            .run_owned(owned, &mut notes)
             .map_err(|e| self.op_failure(u, &e))?;
         Ok(Some((array, notes)))
     }
@@ -707,10 +707,8 @@ impl Worker<'_, '_, '_> {
             .dims
             .iter()
             .take_while(|d| {
-                stage.op.slices_along(&stage.params, d)
-                    && group_stages
-                        .iter()
-                        .all(|g| g.op.prepare_slices_along(&g.params, d))
+                stage.op.slices_along(d)
+                    && group_stages.iter().all(|g| g.op.prepare_slices_along(d))
             })
             .count();
         let (stage_name, subject) = origin(study, from);
@@ -719,7 +717,7 @@ impl Worker<'_, '_, '_> {
             subject,
             layout: input,
         }];
-        let Ok(Some(out)) = stage.op.layout(&stage.params, &whole_input) else {
+        let Ok(Some(out)) = stage.op.layout(&whole_input) else {
             return None;
         };
         let keeps = out.dims.get(..k) == input.dims.get(..k) && out.shape() == input.shape();
@@ -775,7 +773,7 @@ impl Worker<'_, '_, '_> {
                                 };
                                 let out = stage
                                     .op
-                                    .run_owned(&stage.params, owned, &mut notes)
+                                    .run_owned(owned, &mut notes)
                                     .map_err(|e| e.to_string())?;
                                 if notes != Notes::default() {
                                     return Err("the op noted something about one box".into());
@@ -796,7 +794,7 @@ impl Worker<'_, '_, '_> {
                                     array: &out,
                                 };
                                 for (g, list) in group_stages.iter().zip(&mut prepared) {
-                                    match g.op.prepare(&g.params, &input) {
+                                    match g.op.prepare(&input) {
                                         Some(Ok(small)) => list.push(small),
                                         Some(Err(e)) => return Err(e.to_string()),
                                         None => return Err("a group unit did not prepare".into()),

@@ -159,7 +159,7 @@ pub fn this_tool() -> Tool {
 }
 
 /// Build the manifest of a finished run.
-pub fn build(study: &Study<'_>, outcome: &Outcome, started: &str, finished: &str) -> Manifest {
+pub fn build(study: &Study, outcome: &Outcome, started: &str, finished: &str) -> Manifest {
     let pipeline = &study.pipeline;
     let path = relative_to(&pipeline.file, &pipeline.output)
         .unwrap_or_else(|| pipeline.file.clone())
@@ -204,7 +204,7 @@ pub fn build(study: &Study<'_>, outcome: &Outcome, started: &str, finished: &str
     }
 }
 
-fn unit_record(study: &Study<'_>, outcome: &Outcome, u: usize) -> UnitRecord {
+fn unit_record(study: &Study, outcome: &Outcome, u: usize) -> UnitRecord {
     let fp = &study.fingerprints[u];
     let result = &outcome.results[u];
     UnitRecord {
@@ -231,7 +231,7 @@ fn unit_record(study: &Study<'_>, outcome: &Outcome, u: usize) -> UnitRecord {
     }
 }
 
-fn epochs(study: &Study<'_>, outcome: &Outcome) -> BTreeMap<String, BTreeMap<String, Value>> {
+fn epochs(study: &Study, outcome: &Outcome) -> BTreeMap<String, BTreeMap<String, Value>> {
     let mut out: BTreeMap<String, BTreeMap<String, Value>> = BTreeMap::new();
     for (u, result) in outcome.results.iter().enumerate() {
         if let Some(record) = result.record.notes.records.get("epochs") {
@@ -245,7 +245,7 @@ fn epochs(study: &Study<'_>, outcome: &Outcome) -> BTreeMap<String, BTreeMap<Str
 }
 
 /// Warnings of every unit's notes (cached ones included), then the executor's, in unit order.
-fn warnings(study: &Study<'_>, outcome: &Outcome) -> Vec<Warning> {
+fn warnings(study: &Study, outcome: &Outcome) -> Vec<Warning> {
     let mut out = Vec::new();
     for (u, result) in outcome.results.iter().enumerate() {
         for message in &result.record.notes.warnings {

@@ -41,7 +41,7 @@ pub fn bytes_from_env(var: &str, default: usize) -> usize {
 }
 
 /// The unit that streams into `u`, with the axis, when the conditions above hold.
-pub fn streamed_input(study: &Study<'_>, u: usize) -> Option<(usize, &'static str)> {
+pub fn streamed_input(study: &Study, u: usize) -> Option<(usize, &'static str)> {
     let [UnitInput::Unit(p)] = study.units[u].inputs[..] else {
         return None;
     };
@@ -50,15 +50,12 @@ pub fn streamed_input(study: &Study<'_>, u: usize) -> Option<(usize, &'static st
     if producer.cache || producer.export || study.consumers[p] != [u] {
         return None;
     }
-    let axis = producer.op.part_axis(&producer.params)?;
-    consumer
-        .op
-        .slices_along(&consumer.params, axis)
-        .then_some((p, axis))
+    let axis = producer.op.part_axis()?;
+    consumer.op.slices_along(axis).then_some((p, axis))
 }
 
 /// True when `p` streams into a consumer (so it is computed there, not on its own).
-pub fn streams(study: &Study<'_>, p: usize) -> bool {
+pub fn streams(study: &Study, p: usize) -> bool {
     study
         .consumers
         .get(p)
@@ -103,7 +100,7 @@ pub struct Streamed {
 /// The plan of producer `p` streaming into consumer `u` along `axis`, over the producer's
 /// `inputs`.
 pub fn plan(
-    study: &Study<'_>,
+    study: &Study,
     (p, u): (usize, usize),
     axis: &'static str,
     inputs: &[Input<'_>],
@@ -120,7 +117,7 @@ pub fn plan(
         .collect();
     let whole = producer
         .op
-        .layout(&producer.params, &layouts)
+        .layout(&layouts)
         .map_err(|e| (p, e))?
         .ok_or_else(|| {
             let why = "its output layout is not known in advance, so it cannot stream";
@@ -135,11 +132,7 @@ pub fn plan(
         subject: study.subject(p),
         layout: &whole,
     }];
-    let consumer_layout = consumer
-        .op
-        .layout(&consumer.params, &whole_input)
-        .ok()
-        .flatten();
+    let consumer_layout = consumer.op.layout(&whole_input).ok().flatten();
     Ok(PartPlan {
         producer_layout: whole,
         consumer_layout,
@@ -152,7 +145,7 @@ pub fn plan(
 /// Run producer `p` and consumer `u` part by part over the producer's `inputs`, handing each
 /// of the consumer's parts to `take` in order along the axis.
 pub fn run(
-    study: &Study<'_>,
+    study: &Study,
     (p, u): (usize, usize),
     plan: &PartPlan,
     inputs: &[Input<'_>],
@@ -168,12 +161,7 @@ pub fn run(
         let mut notes = Notes::default();
         let part = producer
             .op
-            .run_part(
-                &producer.params,
-                inputs,
-                start..(start + step).min(len),
-                &mut notes,
-            )
+            .run_part(inputs, start..(start + step).min(len), &mut notes)
             .map_err(|e| (p, e))?;
         producer_seconds += clock.elapsed().as_secs_f64();
         absorb(&mut producer_notes, notes);
@@ -183,10 +171,7 @@ pub fn run(
             subject: study.subject(p),
             array: &part,
         };
-        let out = consumer
-            .op
-            .run(&consumer.params, &[input], &mut notes)
-            .map_err(|e| (u, e))?;
+        let out = consumer.op.run(&[input], &mut notes).map_err(|e| (u, e))?;
         absorb(&mut consumer_notes, notes);
         take(out).map_err(|e| (u, e))?;
     }

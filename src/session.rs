@@ -48,12 +48,12 @@ pub struct Options {
 }
 
 /// The cache folder: `--cache`, else `.phasewise/` beside the pipeline file.
-pub fn cache_dir(pipeline: &ResolvedPipeline<'_>, explicit: Option<&Path>) -> PathBuf {
+pub fn cache_dir(pipeline: &ResolvedPipeline, explicit: Option<&Path>) -> PathBuf {
     explicit.map_or_else(|| pipeline.dir.join(".phasewise"), Path::to_path_buf)
 }
 
 /// Load the pipeline and prepare the study, checking layouts on the recordings' headers.
-pub fn open<'o>(file: &Path, options: &Options, env: Env<'o>) -> Result<Study<'o>, RunError> {
+pub fn open(file: &Path, options: &Options, env: Env<'_>) -> Result<Study, RunError> {
     let mut pipeline = pipeline::load(file, &options.overrides, env.ops)?;
     if let Some(output) = &options.output {
         pipeline.output = output.clone();
@@ -109,7 +109,7 @@ pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, R
     })
 }
 
-fn finish(study: &Study<'_>, outcome: &Outcome, started: &str) -> Result<RunSummary, RunError> {
+fn finish(study: &Study, outcome: &Outcome, started: &str) -> Result<RunSummary, RunError> {
     let manifest = manifest::build(study, outcome, started, &now());
     let manifest_path = clean(&manifest::path_for(
         &study.pipeline.output,
@@ -137,11 +137,7 @@ fn finish(study: &Study<'_>, outcome: &Outcome, started: &str) -> Result<RunSumm
 }
 
 /// The plan of a pipeline (nothing runs).
-pub fn plan<'o>(
-    file: &Path,
-    options: &Options,
-    env: Env<'o>,
-) -> Result<(Study<'o>, Plan), RunError> {
+pub fn plan(file: &Path, options: &Options, env: Env<'_>) -> Result<(Study, Plan), RunError> {
     let study = open(file, options, env)?;
     let plan = study.plan();
     Ok((study, plan))

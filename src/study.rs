@@ -95,9 +95,9 @@ pub fn subject_label(subject: Option<&str>) -> String {
 }
 
 /// A prepared study.
-pub struct Study<'o> {
+pub struct Study {
     /// The pipeline.
-    pub pipeline: ResolvedPipeline<'o>,
+    pub pipeline: ResolvedPipeline,
     /// All subjects' recordings, sorted by subject.
     pub sources: Vec<Source>,
     /// Keys of the sources.
@@ -118,15 +118,15 @@ pub struct Study<'o> {
     pub store: Store,
 }
 
-impl<'o> Study<'o> {
+impl Study {
     /// Find recordings, expand units and compute keys.
     pub fn prepare(
-        pipeline: ResolvedPipeline<'o>,
+        pipeline: ResolvedPipeline,
         reader: &dyn Reader,
         store: Store,
         selection: &[String],
         hasher: &Hasher,
-    ) -> Result<Study<'o>, RunError> {
+    ) -> Result<Study, RunError> {
         let all = match sources::discover(&pipeline.dir, &pipeline.recordings, reader) {
             Ok(all) => all,
             Err(e @ SourceError::Io { .. }) => return Err(RunError::Other(e.to_string())),
@@ -189,7 +189,7 @@ impl<'o> Study<'o> {
             let fingerprint = Fingerprint {
                 op: stage.op.name().to_string(),
                 op_version: stage.op.version(),
-                params: stage.params.clone(),
+                params: stage.params().clone(),
                 inputs,
                 subject: unit.subject.map(|s| self.sources[s].subject.clone()),
             };
@@ -437,7 +437,7 @@ impl<'o> Study<'o> {
             });
         }
         let stage = &self.pipeline.stages[unit.stage];
-        match stage.op.layout(&stage.params, &inputs) {
+        match stage.op.layout(&inputs) {
             Ok(layout) => layout,
             Err(e @ StageError::Param { .. }) => {
                 let mut d = self.pipeline.stage_diagnostic(unit.stage, &e);

@@ -24,7 +24,7 @@ pub use array::{
     Coord, Event, Joining, LabelledArray, Layout, Meta, SharedList, TrialInfo, Values,
 };
 pub use error::StageError;
-pub use op::{DynOp, Input, InputLayout, Notes, Op, OwnedInput};
+pub use op::{BoundOp, DynOp, Input, InputLayout, Notes, Op, OwnedInput};
 
 #[cfg(test)]
 pub(crate) mod testutil;
