@@ -27,6 +27,7 @@ use serde_json::Value;
 
 use crate::exec::{Outcome, Warning};
 use crate::paths::relative_to;
+use crate::recipe::Recipe;
 use crate::study::Study;
 
 /// `format` of a manifest.
@@ -132,6 +133,9 @@ pub struct UnitRecord {
     pub status: String,
     /// Seconds spent in this run.
     pub seconds: f64,
+    /// How it was computed ([`crate::recipe`]); only for units computed in this run.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub recipe: Option<Recipe>,
 }
 
 /// One output array.
@@ -228,6 +232,7 @@ fn unit_record(study: &Study, outcome: &Outcome, u: usize) -> UnitRecord {
         }
         .into(),
         seconds: result.seconds,
+        recipe: result.recipe.clone().filter(|_| result.computed),
     }
 }
 

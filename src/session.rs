@@ -11,12 +11,14 @@ use std::time::SystemTime;
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use phasewise_stages::DynOp;
 
-use crate::exec::{self, Outcome, Warning};
+use crate::exec::{self, Executor, Job, Outcome, Warning};
+use crate::fsio::remove_dead_temps;
 use crate::manifest::{self, Manifest};
-use crate::output::{remove_dead_temps, write_atomically};
+use crate::output::write_atomically;
 use crate::paths::clean;
 use crate::pipeline::{self, ResolvedPipeline};
 use crate::plan::Plan;
+use crate::recipe::{self, Recipe};
 use crate::sources::{Hasher, Reader};
 use crate::store::Store;
 use crate::study::{RunError, Study};
@@ -65,7 +67,7 @@ pub fn open(file: &Path, options: &Options, env: Env<'_>) -> Result<Study, RunEr
         .iter()
         .map(|s| s.strip_prefix("sub-").unwrap_or(s).to_string())
         .collect();
-    let study = Study::prepare(pipeline, env.reader, store, &subjects, &hasher)?;
+    let mut study = Study::prepare(pipeline, env.reader, store, &subjects, &hasher)?;
     study.check_layouts(env.reader)?;
     Ok(study)
 }
@@ -101,8 +103,18 @@ pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, R
             subjects = study.sources.len(),
             "planned"
         );
+        let recipes = recipe::decide_all(&study, &plan);
         let bar = progress_bar(study.units.len(), options.progress);
-        let outcome = exec::execute(&study, &plan, env.reader, &bar)?;
+        let job = Job {
+            study: &study,
+            plan: &plan,
+            recipes: &recipes,
+            reader: env.reader,
+            bar: &bar,
+        };
+        // The one place an executor is chosen.
+        let executor: &dyn Executor = &exec::Local;
+        let outcome = executor.execute(job)?;
         bar.finish_and_clear();
         study.remember_sources();
         finish(&study, &outcome, &started)
@@ -136,11 +148,16 @@ fn finish(study: &Study, outcome: &Outcome, started: &str) -> Result<RunSummary,
     })
 }
 
-/// The plan of a pipeline (nothing runs).
-pub fn plan(file: &Path, options: &Options, env: Env<'_>) -> Result<(Study, Plan), RunError> {
+/// The plan of a pipeline and every unit's recipe (nothing runs).
+pub fn plan(
+    file: &Path,
+    options: &Options,
+    env: Env<'_>,
+) -> Result<(Study, Plan, Vec<Recipe>), RunError> {
     let study = open(file, options, env)?;
     let plan = study.plan();
-    Ok((study, plan))
+    let recipes = recipe::decide_all(&study, &plan);
+    Ok((study, plan, recipes))
 }
 
 /// The current time as RFC 3339 (UTC, seconds).

@@ -116,6 +116,10 @@ pub struct Study {
     pub selection: Vec<String>,
     /// The cache.
     pub store: Store,
+    /// Each unit's output layout as far as it is known before anything runs (its record's, or
+    /// planned by its op from its inputs'; `None` when it depends on values), set by
+    /// [`Study::check_layouts`]. The recipes ([`crate::recipe`]) are decided on them.
+    pub layouts: Vec<Option<PlannedLayout>>,
 }
 
 impl Study {
@@ -170,6 +174,7 @@ impl Study {
             consumers: Vec::new(),
             selection: selection.to_vec(),
             store,
+            layouts: Vec::new(),
         };
         study.compute_keys();
         Ok(study)
@@ -225,6 +230,14 @@ impl Study {
         self.units[unit]
             .subject
             .map(|s| self.sources[s].subject.as_str())
+    }
+
+    /// The stage and subject an input comes from.
+    pub fn origin(&self, input: UnitInput) -> (&str, Option<&str>) {
+        match input {
+            UnitInput::Source(s) => (SOURCE, Some(self.sources[s].subject.as_str())),
+            UnitInput::Unit(i) => (self.stage_name(i), self.subject(i)),
+        }
     }
 
     /// A path for messages and the manifest: relative to the pipeline's folder when possible.
@@ -336,7 +349,7 @@ impl Study {
     /// layout is the record's and there is nothing left to check, so only the other units are
     /// planned, and only the recordings they read are opened (a rerun after a late change reads
     /// no recording header at all).
-    pub fn check_layouts(&self, reader: &dyn Reader) -> Result<(), RunError> {
+    pub fn check_layouts(&mut self, reader: &dyn Reader) -> Result<(), RunError> {
         // Reading and parsing the records (their time axes can be long) is most of a no-op
         // run: in parallel, on the run's pool.
         let recorded: Vec<Option<Arc<ObjectRecord>>> = self
@@ -381,11 +394,11 @@ impl Study {
                 }
             }
         }
-        let mut layouts: Vec<Option<Planned>> = Vec::new();
+        let mut layouts: Vec<Option<PlannedLayout>> = Vec::new();
         let mut diagnostics: Vec<Diagnostic> = Vec::new();
         for (u, known) in recorded.into_iter().enumerate() {
             let layout = match known {
-                Some(record) => Some(Planned::Recorded(record)),
+                Some(record) => Some(PlannedLayout::Recorded(record)),
                 None => self
                     .unit_layout(
                         u,
@@ -394,7 +407,7 @@ impl Study {
                         &mut diagnostics,
                         &mut failures,
                     )
-                    .map(Planned::Computed),
+                    .map(|l| PlannedLayout::Computed(Arc::new(l))),
             };
             layouts.push(layout);
         }
@@ -404,6 +417,7 @@ impl Study {
         if !failures.is_empty() {
             return Err(RunError::Units(failures));
         }
+        self.layouts = layouts;
         Ok(())
     }
 
@@ -411,7 +425,7 @@ impl Study {
         &self,
         u: usize,
         sources: &[Option<Layout>],
-        units: &[Option<Planned>],
+        units: &[Option<PlannedLayout>],
         diagnostics: &mut Vec<Diagnostic>,
         failures: &mut Vec<UnitFailure>,
     ) -> Option<Layout> {
@@ -427,7 +441,7 @@ impl Study {
                 UnitInput::Unit(i) => (
                     self.stage_name(i),
                     self.subject(i),
-                    units[i].as_ref().map(Planned::layout),
+                    units[i].as_ref().map(PlannedLayout::layout),
                 ),
             };
             inputs.push(InputLayout {
@@ -472,17 +486,21 @@ impl Study {
     }
 }
 
-/// A unit's output layout while layouts are checked: its record's, or planned by its op.
-enum Planned {
+/// A unit's output layout known before it runs: its record's, or planned by its op.
+#[derive(Clone, Debug)]
+pub enum PlannedLayout {
+    /// The layout of the unit's record in the cache (computed from the same inputs and params).
     Recorded(Arc<ObjectRecord>),
-    Computed(Layout),
+    /// The layout its op derives from its inputs' layouts.
+    Computed(Arc<Layout>),
 }
 
-impl Planned {
-    fn layout(&self) -> &Layout {
+impl PlannedLayout {
+    /// The layout.
+    pub fn layout(&self) -> &Layout {
         match self {
-            Planned::Recorded(record) => &record.layout,
-            Planned::Computed(layout) => layout,
+            PlannedLayout::Recorded(record) => &record.layout,
+            PlannedLayout::Computed(layout) => layout,
         }
     }
 }

@@ -16,6 +16,7 @@ pub mod error;
 pub mod io;
 pub mod op;
 pub mod ops;
+pub mod range;
 pub mod registry;
 pub mod simulate;
 pub mod table;
