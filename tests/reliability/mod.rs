@@ -6,6 +6,8 @@
 //! helper, hence the `dead_code` allowance below.
 #![allow(dead_code)]
 
+pub mod brainvision;
+
 use std::fs;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
@@ -64,6 +66,17 @@ pub fn write_study(study: &Path, spec: &StudySpec) {
         let stem = study.join(subject_stem(n));
         fs::write(with_suffix(&stem, "_events.tsv"), events_tsv(&events)).expect("events");
         fs::write(with_suffix(&stem, "_channels.tsv"), channels_tsv()).expect("channels");
+    }
+}
+
+/// Rewrite the tiny study in `study` as BrainVision (`brainvision::convert`): each subject's
+/// EDF becomes `<stem>_eeg.vhdr` with its `.vmrk` and `.eeg`; the EDF is removed, the sidecars
+/// stay.
+pub fn study_as_brainvision(study: &Path, spec: &StudySpec) {
+    for n in 1..=spec.rates.len() {
+        let edf = recording_path(study, n);
+        brainvision::convert(&edf, &edf.with_extension("vhdr"));
+        fs::remove_file(&edf).expect("remove the EDF");
     }
 }
 
