@@ -274,41 +274,23 @@ impl VhdrHeader {
             .get(COMMON, "MarkerFile")
             .filter(|e| !e.value.is_empty())
             .map(|e| resolve(vhdr, &e.value));
-        if let Some(e) = ini.get(COMMON, "DataFormat") {
-            if !e.value.eq_ignore_ascii_case("BINARY") {
-                return Err(LineError::at(
-                    e,
-                    format!(
-                        "data format {:?} is not supported; expected BINARY",
-                        e.value
-                    ),
-                ));
-            }
-        }
-        if let Some(e) = ini.get(COMMON, "DataType") {
-            if !e.value.eq_ignore_ascii_case("TIMEDOMAIN") {
-                return Err(LineError::at(
-                    e,
-                    format!(
-                        "data type {:?} is not supported; expected TIMEDOMAIN (continuous samples)",
-                        e.value
-                    ),
-                ));
-            }
-        }
+        only(&ini, COMMON, "DataFormat", "BINARY", "")?;
+        only(
+            &ini,
+            COMMON,
+            "DataType",
+            "TIMEDOMAIN",
+            " (continuous samples)",
+        )?;
         let orientation = orientation(ini.require(COMMON, "DataOrientation")?)?;
         let format = binary_format(ini.require(BINARY, "BinaryFormat")?)?;
-        if let Some(e) = ini.get(BINARY, "UseBigEndianOrder") {
-            if !e.value.eq_ignore_ascii_case("NO") {
-                return Err(LineError::at(
-                    e,
-                    format!(
-                        "{:?}: only little-endian data files (UseBigEndianOrder=NO) are supported",
-                        e.value
-                    ),
-                ));
-            }
-        }
+        only(
+            &ini,
+            BINARY,
+            "UseBigEndianOrder",
+            "NO",
+            " (little-endian data)",
+        )?;
         let count = ini.require(COMMON, "NumberOfChannels")?;
         let count = match count.value.parse::<usize>() {
             Ok(n) if n > 0 => n,
@@ -358,6 +340,17 @@ impl VhdrHeader {
             channels,
             data_points,
         })
+    }
+}
+
+/// An optional key that, when present, must have the one value phasewise supports.
+fn only(ini: &IniText, section: &str, key: &str, value: &str, what: &str) -> Result<(), LineError> {
+    match ini.get(section, key) {
+        Some(e) if !e.value.eq_ignore_ascii_case(value) => Err(LineError::at(
+            e,
+            format!("{:?} is not supported; expected {value}{what}", e.value),
+        )),
+        _ => Ok(()),
     }
 }
 
