@@ -13,20 +13,27 @@ use std::fmt::Write as _;
 use std::path::{Component, Path, PathBuf};
 
 use anyhow::{bail, Context, Result};
-use phasewise_stages::io::{read_recording_layout, EventSource};
+use phasewise_stages::io::{read_recording_layout, EventSource, Format};
 use phasewise_stages::ops::morlet;
 use phasewise_stages::Layout;
 
 /// Recording patterns tried in order, relative to the dataset folder (BIDS layouts first).
+/// BrainVision recordings are found by their header (`.vhdr`), which names the data and marker
+/// files.
 const PATTERNS: &[&str] = &[
     "sub-*/eeg/*_eeg.edf",
     "sub-*/eeg/*_eeg.bdf",
+    "sub-*/eeg/*_eeg.vhdr",
     "sub-*/ses-*/eeg/*_eeg.edf",
     "sub-*/ses-*/eeg/*_eeg.bdf",
+    "sub-*/ses-*/eeg/*_eeg.vhdr",
     "sub-*/ieeg/*_ieeg.edf",
+    "sub-*/ieeg/*_ieeg.vhdr",
     "sub-*/ses-*/ieeg/*_ieeg.edf",
+    "sub-*/ses-*/ieeg/*_ieeg.vhdr",
     "**/*.edf",
     "**/*.bdf",
+    "**/*.vhdr",
 ];
 
 /// What the dataset holds, as far as headers and sidecars tell.
@@ -36,6 +43,8 @@ pub struct DatasetSummary {
     pub pattern: String,
     /// The recordings found.
     pub recordings: Vec<PathBuf>,
+    /// Their format (from the pattern's extension).
+    pub format: Option<Format>,
     /// Where events come from (`sidecar` when every recording has an events file).
     pub events: Option<EventSource>,
     /// Sampling rates seen, with how many recordings have each (Hz, as text for exact keys).
@@ -99,13 +108,14 @@ pub fn survey(data_dir: &Path) -> Result<DatasetSummary> {
             .collect();
         if !found.is_empty() {
             summary.pattern = (*pattern).to_string();
+            summary.format = Some(Format::of(&found[0])?);
             summary.recordings = found;
             break;
         }
     }
     if summary.recordings.is_empty() {
         bail!(
-            "{}: no EDF or BDF recordings found (looked for {})",
+            "{}: no EDF, BDF or BrainVision (.vhdr) recordings found (looked for {})",
             data_dir.display(),
             PATTERNS.join(", ")
         );
@@ -166,9 +176,15 @@ fn add_recording(s: &mut DatasetSummary, path: &Path, layout: &Layout, intervals
 /// The dataset summary printed to the user.
 pub fn summary_text(s: &DatasetSummary) -> String {
     let mut t = String::new();
+    let format = match s.format {
+        Some(Format::BrainVision) => {
+            "BrainVision: .vhdr headers with their .vmrk markers and binary data files"
+        }
+        _ => "EDF/BDF",
+    };
     let _ = writeln!(
         t,
-        "recordings: {} (pattern {})",
+        "recordings: {} (pattern {}, {format})",
         s.recordings.len(),
         s.pattern
     );
@@ -192,8 +208,9 @@ pub fn summary_text(s: &DatasetSummary) -> String {
             path.display()
         );
     }
-    let source = match s.events {
-        Some(EventSource::Sidecar) => "events.tsv sidecars",
+    let source = match (s.events, s.format) {
+        (Some(EventSource::Sidecar), _) => "events.tsv sidecars",
+        (_, Some(Format::BrainVision)) => "BrainVision markers",
         _ => "EDF+ annotations",
     };
     let _ = writeln!(t, "events (from {source}):");
@@ -328,7 +345,7 @@ pub fn pipeline_text(s: &DatasetSummary, data_rel: &Path, data_dir: &Path) -> Re
         "  recordings: {}   # relative to this file",
         quoted(&recordings.to_string_lossy())
     );
-    let _ = writeln!(t, "  events: {events}   # sidecar = *_events.tsv beside each recording; annotations = EDF+ annotations");
+    let _ = writeln!(t, "  events: {events}   # sidecar = *_events.tsv beside each recording; annotations = the recording's own (EDF+ annotations, BrainVision markers)");
     let _ = writeln!(
         t,
         "output: results/{}   # relative to this file\n",

@@ -2,8 +2,9 @@
 //!
 //! Each case is a folder holding a `case.json` and, optionally, a `pipeline.yaml` and other
 //! files. The harness builds a project in a temporary folder — the tiny study in `data/`
-//! (unless the case says `"study": false`), the case's files, the base pipeline where the case
-//! has none — applies the case's `edits` (damage to a recording or a sidecar), runs
+//! (unless the case says `"study": false`; as BrainVision with `"format": "brainvision"`), the
+//! case's files, the base pipeline where the case has none (reading the `.vhdr` headers for a
+//! BrainVision study) — applies the case's `edits` (damage to a recording or a sidecar), runs
 //! `phasewise <args>` there and checks:
 //! - the exit status (DESIGN §7: 2 the pipeline or the command line is wrong, 1 a stage failed);
 //! - that stderr holds every `stderr` substring (the file, the field) and, for `line_of`, the
@@ -37,6 +38,10 @@ struct Case {
     /// The study to write into `data/` (`false` for none).
     #[serde(default)]
     study: StudyChoice,
+    /// The study's recording format; with `brainvision` the base pipeline reads the `.vhdr`
+    /// headers.
+    #[serde(default)]
+    format: StudyFormat,
     /// Damage applied after the files are in place.
     #[serde(default)]
     edits: Vec<Edit>,
@@ -62,6 +67,17 @@ enum StudyChoice {
     /// Same as `Flag(true)`.
     #[default]
     Default,
+}
+
+/// The format the study's recordings are written in.
+#[derive(Debug, Deserialize, Default, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+enum StudyFormat {
+    /// EDF+ (the stages crate's writer).
+    #[default]
+    Edf,
+    /// BrainVision, converted from the EDF+ study by the tests' own writer.
+    Brainvision,
 }
 
 /// One change to a file of the project, all paths relative to the project folder.
@@ -91,6 +107,8 @@ enum Change {
     Bytes { at: usize, hex: String },
     /// Remove the file (when true).
     Delete(bool),
+    /// Replace the first occurrence of `from` in a text file with `to` (`from` must occur).
+    Replace { from: String, to: String },
 }
 
 #[test]
@@ -195,23 +213,28 @@ fn expected_substrings(case: &Case, work: &Path) -> Result<Vec<String>, String> 
 
 /// Lay out the project of a case in `work`.
 fn prepare(dir: &Path, case: &Case, work: &Path) -> Result<(), String> {
-    match &case.study {
-        StudyChoice::Flag(false) => {}
-        StudyChoice::Flag(true) | StudyChoice::Default => {
-            write_study(&work.join("data"), &StudySpec::default())
+    let spec = match &case.study {
+        StudyChoice::Flag(false) => None,
+        StudyChoice::Flag(true) | StudyChoice::Default => Some(StudySpec::default()),
+        StudyChoice::Custom { rates, seconds } => Some(StudySpec {
+            rates: rates.clone(),
+            seconds: *seconds,
+        }),
+    };
+    let brainvision = case.format == StudyFormat::Brainvision;
+    if let Some(spec) = &spec {
+        write_study(&work.join("data"), spec);
+        if brainvision {
+            reliability::study_as_brainvision(&work.join("data"), spec);
         }
-        StudyChoice::Custom { rates, seconds } => write_study(
-            &work.join("data"),
-            &StudySpec {
-                rates: rates.clone(),
-                seconds: *seconds,
-            },
-        ),
     }
     copy_case_files(dir, work)?;
     if !work.join("pipeline.yaml").exists() {
-        fs::write(work.join("pipeline.yaml"), reliability::base_pipeline())
-            .map_err(|e| e.to_string())?;
+        let mut base = reliability::base_pipeline();
+        if brainvision {
+            base = base.replace("_eeg.edf\"", "_eeg.vhdr\"");
+        }
+        fs::write(work.join("pipeline.yaml"), base).map_err(|e| e.to_string())?;
     }
     case.edits.iter().try_for_each(|e| apply(work, e))
 }
@@ -238,6 +261,13 @@ fn apply(work: &Path, edit: &Edit) -> Result<(), String> {
         Change::Delete(true) => fs::remove_file(&path).map_err(fail),
         Change::Delete(false) => Ok(()),
         Change::Text(text) => fs::write(&path, text).map_err(fail),
+        Change::Replace { from, to } => {
+            let text = fs::read_to_string(&path).map_err(fail)?;
+            if !text.contains(from.as_str()) {
+                return Err(format!("{}: {from:?} does not occur", edit.file));
+            }
+            fs::write(&path, text.replacen(from.as_str(), to, 1)).map_err(fail)
+        }
         Change::Truncate(n) => {
             let bytes = fs::read(&path).map_err(fail)?;
             let keep = if *n < 0 {

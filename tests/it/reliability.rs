@@ -2,9 +2,11 @@
 //! a tiny, deterministic study written with the stages crate's EDF+ writer, the small pipeline
 //! that runs on it, and helpers to run the real `phasewise` binary and read what it left behind.
 //!
-//! Each test file includes this module with `mod reliability;`; not every file uses every
+//! A module of the one test binary (`tests/it/main.rs`); not every test module uses every
 //! helper, hence the `dead_code` allowance below.
 #![allow(dead_code)]
+
+pub mod brainvision;
 
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -64,6 +66,17 @@ pub fn write_study(study: &Path, spec: &StudySpec) {
         let stem = study.join(subject_stem(n));
         fs::write(with_suffix(&stem, "_events.tsv"), events_tsv(&events)).expect("events");
         fs::write(with_suffix(&stem, "_channels.tsv"), channels_tsv()).expect("channels");
+    }
+}
+
+/// Rewrite the tiny study in `study` as BrainVision (`brainvision::convert`): each subject's
+/// EDF becomes `<stem>_eeg.vhdr` with its `.vmrk` and `.eeg`; the EDF is removed, the sidecars
+/// stay.
+pub fn study_as_brainvision(study: &Path, spec: &StudySpec) {
+    for n in 1..=spec.rates.len() {
+        let edf = recording_path(study, n);
+        brainvision::convert(&edf, &edf.with_extension("vhdr"));
+        fs::remove_file(&edf).expect("remove the EDF");
     }
 }
 

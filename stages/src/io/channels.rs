@@ -92,27 +92,43 @@ fn describe(
     warnings: &mut Vec<String>,
 ) -> Channel {
     let signal = &header.signals[index];
-    let (name, prefix_type) = split_label(&signal.label);
-    let row = sidecar.and_then(|rows| {
-        rows.iter()
-            .find(|r| r.name == signal.label || r.name == name)
-    });
+    let bdf_status = header.kind == FileKind::Bdf && split_label(&signal.label).0 == "Status";
+    // BioSemi's trigger channel.
+    let default_type = if bdf_status { "TRIG" } else { "EEG" };
+    describe_label(
+        index,
+        &signal.label,
+        &signal.unit,
+        default_type,
+        sidecar,
+        warnings,
+    )
+}
+
+/// Name, type and unit factor of the channel labelled `label` whose header gives the unit
+/// `header_unit`: the type from the sidecar row that names it, else from an EDF+ type prefix of
+/// the label, else `default_type`; the unit from the header, else from the sidecar.
+pub fn describe_label(
+    index: usize,
+    label: &str,
+    header_unit: &str,
+    default_type: &str,
+    sidecar: Option<&[ChannelRow]>,
+    warnings: &mut Vec<String>,
+) -> Channel {
+    let (name, prefix_type) = split_label(label);
+    let row = sidecar.and_then(|rows| rows.iter().find(|r| r.name == label || r.name == name));
     if sidecar.is_some() && row.is_none() {
         warnings.push(format!(
             "channel {name} is not listed in the channels sidecar; its type is taken from its label"
         ));
     }
-    let default_type = match (header.kind, name.as_str()) {
-        // BioSemi's trigger channel.
-        (FileKind::Bdf, "Status") => "TRIG".to_string(),
-        _ => "EEG".to_string(),
-    };
     let kind = row
         .and_then(|r| r.kind.clone())
         .or(prefix_type)
-        .unwrap_or(default_type);
+        .unwrap_or_else(|| default_type.to_string());
     let unit_from_sidecar = row.and_then(|r| r.units.as_deref());
-    let to_volts = unit_factor(&name, &signal.unit, unit_from_sidecar, warnings);
+    let to_volts = unit_factor(&name, header_unit, unit_from_sidecar, warnings);
     Channel {
         signal: index,
         name,
@@ -213,7 +229,7 @@ fn majority_samples_per_record(
 }
 
 /// Channel names must be unique: every op addresses channels by name.
-fn check_unique(channels: &[Channel]) -> Result<(), String> {
+pub fn check_unique(channels: &[Channel]) -> Result<(), String> {
     for (i, c) in channels.iter().enumerate() {
         if channels[..i].iter().any(|d| d.name == c.name) {
             return Err(format!(

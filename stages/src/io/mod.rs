@@ -1,8 +1,10 @@
 //! Reading recordings and their BIDS sidecars into labelled arrays, and writing EDF+.
 //!
 //! The runner uses exactly these entry points: [`read_recording`], [`read_recording_layout`]
-//! and [`sidecar_paths`]. Formats: EDF, EDF+ (Kemp et al. 1992; Kemp & Olivan 2003) and BDF
-//! (24-bit); sidecars per BIDS (Gorgolewski et al. 2016; Pernet et al. 2019).
+//! and [`sidecar_paths`]. Formats, told by the extension ([`Format::of`]): EDF, EDF+ (Kemp et
+//! al. 1992; Kemp & Olivan 2003) and BDF (24-bit); the BrainVision Core Data Format (`.vhdr`
+//! header with its `.vmrk` markers and binary data file, see [`brainvision`]); sidecars per
+//! BIDS (Gorgolewski et al. 2016; Pernet et al. 2019).
 //!
 //! What a scientist can rely on:
 //! - Output dims `[channel, time]`, time `k / fs` in seconds, values in volts (physical
@@ -15,7 +17,11 @@
 //!   warning naming it.
 //! - Events: `events: sidecar` requires `<base>_events.tsv`; rows whose trial_type is `n/a` are
 //!   skipped with a warning; a bad onset is an error naming its line. `events: annotations` uses
-//!   the EDF+ annotations, each text of a TAL an event, onsets relative to the first sample.
+//!   the events stored with the recording: the EDF+ annotations, each text of a TAL an event,
+//!   onsets relative to the first sample; or the BrainVision markers (see
+//!   [`brainvision::parse_markers`] for how a marker becomes an event).
+//! - BrainVision channels: the header's names, types as for EDF (sidecar, else a type-word
+//!   label, else `EEG`), values = stored value × resolution × the unit's factor to volts.
 //! - A file whose size disagrees with its header's record count is an error (not read in
 //!   part), and so is any header field that is not a number where one is required.
 
@@ -27,6 +33,7 @@ use crate::array::{LabelledArray, Layout};
 use crate::error::StageError;
 use crate::op::Notes;
 
+pub mod brainvision;
 mod channels;
 pub mod edf;
 mod recording;
@@ -44,7 +51,80 @@ pub enum EventSource {
     Annotations,
 }
 
-/// Read a recording (EDF, EDF+ or BDF) with its events and channel types:
+/// A recording format, told by the file's extension.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Format {
+    /// EDF, EDF+, BDF, BDF+ (every extension but the BrainVision ones: the header says which).
+    Edf,
+    /// BrainVision Core Data Format, read through its `.vhdr` header.
+    BrainVision,
+}
+
+impl Format {
+    /// The format of `path`, from its extension (case-insensitive): `.vhdr` is BrainVision;
+    /// a BrainVision data or marker file (`.eeg`, `.vmrk`) is an error pointing at its header;
+    /// anything else is read as EDF/BDF, whose header tells the variant.
+    pub fn of(path: &Path) -> Result<Format, StageError> {
+        let ext = path
+            .extension()
+            .map(|e| e.to_string_lossy().to_ascii_lowercase())
+            .unwrap_or_default();
+        match ext.as_str() {
+            "vhdr" => Ok(Format::BrainVision),
+            "eeg" | "vmrk" => Err(StageError::input(format!(
+                "{}: this is the data or marker file of a BrainVision recording; point data.recordings at its header (.vhdr), which names both",
+                path.display()
+            ))),
+            _ => Ok(Format::Edf),
+        }
+    }
+
+    /// The format's name for messages.
+    pub fn name(self) -> &'static str {
+        match self {
+            Format::Edf => "EDF/BDF",
+            Format::BrainVision => "BrainVision",
+        }
+    }
+}
+
+/// A recording whose header and sidecars have been read, in either format.
+enum AnyOpened {
+    Edf(Opened),
+    BrainVision(brainvision::Opened),
+}
+
+impl AnyOpened {
+    fn open(path: &Path, events: EventSource) -> Result<AnyOpened, StageError> {
+        Ok(match Format::of(path)? {
+            Format::Edf => AnyOpened::Edf(Opened::open(path, events)?),
+            Format::BrainVision => AnyOpened::BrainVision(brainvision::Opened::open(path, events)?),
+        })
+    }
+
+    fn into_layout(self) -> Layout {
+        match self {
+            AnyOpened::Edf(o) => o.layout,
+            AnyOpened::BrainVision(o) => o.layout,
+        }
+    }
+
+    fn warnings(&self) -> &[String] {
+        match self {
+            AnyOpened::Edf(o) => &o.warnings,
+            AnyOpened::BrainVision(o) => &o.warnings,
+        }
+    }
+
+    fn read(self) -> Result<LabelledArray, StageError> {
+        match self {
+            AnyOpened::Edf(o) => o.read(),
+            AnyOpened::BrainVision(o) => o.read(),
+        }
+    }
+}
+
+/// Read a recording (EDF, EDF+, BDF or BrainVision) with its events and channel types:
 /// dims `[channel, time]`, values in volts, `meta.sampling_rate`, `meta.channel_types`,
 /// `meta.events`. Warnings (a channel dropped for its rate, ...) go to `notes`.
 pub fn read_recording(
@@ -52,25 +132,32 @@ pub fn read_recording(
     events: EventSource,
     notes: &mut Notes,
 ) -> Result<LabelledArray, StageError> {
-    let opened = Opened::open(path, events)?;
-    for warning in &opened.warnings {
+    let opened = AnyOpened::open(path, events)?;
+    for warning in opened.warnings() {
         notes.warn(format!("{}: {warning}", path.display()));
     }
     opened.read()
 }
 
-/// The layout [`read_recording`] would return, reading only the header and sidecars.
+/// The layout [`read_recording`] would return, reading only the headers and sidecars.
 pub fn read_recording_layout(path: &Path, events: EventSource) -> Result<Layout, StageError> {
-    Ok(Opened::open(path, events)?.layout)
+    Ok(AnyOpened::open(path, events)?.into_layout())
 }
 
-/// The sidecar files that belong to a recording and exist (events, channels), in a fixed order;
-/// their bytes are part of the recording's content key.
+/// The other files that belong to a recording and exist, in a fixed order: a BrainVision
+/// header's data and marker files, then the BIDS sidecars (events, channels). Their bytes are
+/// part of the recording's content key.
 pub fn sidecar_paths(path: &Path) -> Vec<PathBuf> {
-    tsv::candidate_sidecars(path)
-        .into_iter()
-        .filter(|p| p.is_file())
-        .collect()
+    let mut files = match Format::of(path) {
+        Ok(Format::BrainVision) => brainvision::companion_files(path),
+        _ => Vec::new(),
+    };
+    files.extend(
+        tsv::candidate_sidecars(path)
+            .into_iter()
+            .filter(|p| p.is_file()),
+    );
+    files
 }
 
 #[cfg(test)]

@@ -89,7 +89,7 @@ impl Opened {
 
 /// The events of `events: sidecar`, or the error for `events: annotations` on a file without
 /// annotations.
-fn sidecar_events(
+pub(super) fn sidecar_events(
     path: &Path,
     source: EventSource,
     events_path: &Path,
@@ -211,7 +211,7 @@ fn check_contiguous(stamps: &[f64], record_seconds: f64, rate: f64) -> Result<()
 }
 
 /// dims [channel, time], time k/fs in s, values in volts.
-fn layout(selection: &Selection, samples: usize, events: Vec<Event>) -> Layout {
+pub(super) fn layout(selection: &Selection, samples: usize, events: Vec<Event>) -> Layout {
     let names = selection.channels.iter().map(|c| c.name.clone()).collect();
     let kinds = selection.channels.iter().map(|c| c.kind.clone()).collect();
     let time = (0..samples).map(|k| k as f64 / selection.rate).collect();
