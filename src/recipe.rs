@@ -103,7 +103,7 @@ impl std::fmt::Display for Recipe {
         match &self.how {
             How::Cached => write!(f, "cached")?,
             How::Whole => write!(f, "whole")?,
-            How::Joined => write!(f, "joins prepared inputs")?,
+            How::Joined => write!(f, "joined from prepared inputs")?,
             How::Streamed { into, axis, .. } => write!(f, "streamed into {into} by {axis}")?,
             How::Parts {
                 from,

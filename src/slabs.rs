@@ -30,10 +30,8 @@ use phasewise_stages::{LabelledArray, Layout, Notes, StageError, Values};
 
 use crate::fsio::{self, Declined};
 use crate::key::Fingerprint;
-use crate::store::{
-    self, check_end, fortran_order, geometry, read_fresh, Geometry, HashingWriter, ObjectRecord,
-    Store, StoreError,
-};
+use crate::store::npy::{check_end, fortran_order, geometry, read_fresh, Geometry};
+use crate::store::{self, HashingWriter, ObjectRecord, Store, StoreError};
 
 /// Bytes of one box (at least one row each).
 pub const SLAB_BYTES: usize = 4 << 20;

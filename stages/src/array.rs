@@ -218,8 +218,7 @@ impl Coord {
 /// as soon as it is made and drops it, so the parts and the whole are never all in memory.
 /// (`ndarray::concatenate` is not used: it lays the joined axis outermost in memory, so a join
 /// along an inner axis gave an array that neither the NPY writer nor the ops' contiguous fast
-/// paths could take whole, and was walked element by element — 12 % of the benchmark chain's
-/// time in one profile.)
+/// paths could take whole, and was walked element by element; BENCHMARKS.md has the profile.)
 #[derive(Debug)]
 pub struct Joining {
     axis: usize,

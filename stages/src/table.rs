@@ -36,8 +36,7 @@ fn push_number(out: &mut String, x: f64) {
     let plain = (1e-4..1e7).contains(&x.abs());
     if plain {
         // The text of `std`'s `Display` (checked against it in the tests), written by `ryu`,
-        // which is quicker at it: the medium bench study's group table (532k rows) takes
-        // 0.056 s instead of 0.081 s on one thread (`stages/benches/table.rs`). In this range
+        // which is quicker at it (`stages/benches/table.rs`; figures in BENCHMARKS.md). In this range
         // `ryu` writes the plain decimal form as `Display` does, but a whole number with a
         // trailing `.0`.
         //
