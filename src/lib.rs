@@ -47,3 +47,4 @@ pub mod sources;
 pub mod store;
 pub mod study;
 pub mod verify;
+pub mod words;
