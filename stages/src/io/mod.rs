@@ -46,22 +46,29 @@ pub enum EventSource {
 
 /// Read a recording (EDF, EDF+ or BDF) with its events and channel types:
 /// dims `[channel, time]`, values in volts, `meta.sampling_rate`, `meta.channel_types`,
-/// `meta.events`. Warnings (a channel dropped for its rate, ...) go to `notes`.
+/// `meta.events`. Warnings (a channel dropped for its rate, ...) go to `notes` without the
+/// recording's name, which the caller adds as it shows paths (the runner: "reading <path>: …").
 pub fn read_recording(
     path: &Path,
     events: EventSource,
     notes: &mut Notes,
 ) -> Result<LabelledArray, StageError> {
-    let opened = Opened::open(path, events)?;
+    let opened = Opened::open(path, Some(events))?;
     for warning in &opened.warnings {
-        notes.warn(format!("{}: {warning}", path.display()));
+        notes.warn(warning.as_str());
     }
     opened.read()
 }
 
 /// The layout [`read_recording`] would return, reading only the header and sidecars.
 pub fn read_recording_layout(path: &Path, events: EventSource) -> Result<Layout, StageError> {
-    Ok(Opened::open(path, events)?.layout)
+    Ok(Opened::open(path, Some(events))?.layout)
+}
+
+/// The layout of a recording without its events (channels, rate, length): for looking at a
+/// dataset before knowing where, or whether, its events are.
+pub fn read_recording_layout_without_events(path: &Path) -> Result<Layout, StageError> {
+    Ok(Opened::open(path, None)?.layout)
 }
 
 /// The sidecar files that belong to a recording and exist (events, channels), in a fixed order;
