@@ -37,6 +37,11 @@ fn main() {
     for path in SOURCES {
         println!("cargo:rerun-if-changed={path}");
     }
+    // For the test that checks the flag against git itself.
+    println!(
+        "cargo:rustc-env=PHASEWISE_REVISION_SOURCES={}",
+        SOURCES.join(" ")
+    );
     let Some(head) = git(&["rev-parse", "HEAD"]).filter(|s| !s.is_empty()) else {
         println!("cargo:rustc-env=PHASEWISE_REVISION=unknown");
         return;

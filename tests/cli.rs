@@ -263,7 +263,11 @@ fn new_on_recordings_without_events_says_what_to_add() {
     let (code, err) = status_and_stderr(tmp.path(), &["plan", "p.yaml"]);
     assert_ne!(code, Some(0), "{err}");
     assert!(err.contains("sub-01_task-cue_events.tsv"), "{err}");
-    let name = "sub-01_task-cue_eeg.edf";
+    assert_named_once(&err, "sub-01_task-cue_eeg.edf");
+}
+
+/// No line of `err` holds `name` twice ("a.edf: a.edf: …").
+fn assert_named_once(err: &str, name: &str) {
     for line in err.lines() {
         assert!(line.matches(name).count() <= 1, "path twice: {line}");
     }
@@ -297,21 +301,8 @@ fn a_bad_recording_is_named_once_per_message() {
         let (code, err) = status_and_stderr(tmp.path(), args);
         assert_ne!(code, Some(0), "{err}");
         assert!(err.contains(name), "{err}");
-        for line in err.lines() {
-            assert!(line.matches(name).count() <= 1, "path twice: {line}");
-        }
+        assert_named_once(&err, name);
     }
-}
-
-/// `git ARGS` in the repository, or `None` without git.
-fn git(args: &[&str]) -> Option<String> {
-    let out = Command::new("git")
-        .args(args)
-        .current_dir(env!("CARGO_MANIFEST_DIR"))
-        .output()
-        .ok()
-        .filter(|o| o.status.success())?;
-    Some(String::from_utf8_lossy(&out.stdout).trim().to_string())
 }
 
 #[test]
@@ -319,37 +310,32 @@ fn version_shows_the_revision_the_manifest_records() {
     let tmp = tempfile::tempdir().unwrap();
     let out = run_cli(tmp.path(), &["--version"]);
     assert_success(&out, "--version");
-    let line = stdout_of(&out);
-    let line = line.trim_end();
     let revision = phasewise::manifest::REVISION;
     assert_eq!(
-        line,
+        stdout_of(&out).trim_end(),
         format!(
             "phasewise {} (revision {revision})",
             env!("CARGO_PKG_VERSION")
         )
     );
-    match git(&["rev-parse", "HEAD"]) {
-        Some(head) => {
-            // build.rs's list of the files that make a build dirty.
-            let status = git(&[
-                "status",
-                "--porcelain",
-                "--untracked-files=no",
-                "--",
-                "build.rs",
-                "Cargo.toml",
-                "Cargo.lock",
-                "src",
-                "stages/Cargo.toml",
-                "stages/src",
-            ])
-            .unwrap();
-            let dirty = if status.is_empty() { "" } else { "-dirty" };
-            assert_eq!(revision, format!("{head}{dirty}"), "git status: {status}");
-        }
-        None => assert_eq!(revision, "unknown"),
-    }
+    // What git says now about HEAD and the files build.rs watches.
+    let mut status = vec!["status", "--porcelain", "--untracked-files=no", "--"];
+    status.extend(env!("PHASEWISE_REVISION_SOURCES").split(' '));
+    let [head, changes] = [&["rev-parse", "HEAD"][..], &status].map(|args| {
+        Command::new("git")
+            .args(args)
+            .current_dir(env!("CARGO_MANIFEST_DIR"))
+            .output()
+            .ok()
+            .filter(|o| o.status.success())
+            .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
+    });
+    let expected = match (head, changes) {
+        (Some(head), Some(changes)) if changes.is_empty() => head,
+        (Some(head), Some(_)) => format!("{head}-dirty"),
+        _ => "unknown".to_string(),
+    };
+    assert_eq!(revision, expected);
     // The manifest of a run records the same revision.
     tiny_project(tmp.path(), &one_subject());
     assert_success(&run_cli(tmp.path(), &["run", "pipeline.yaml"]), "run");
