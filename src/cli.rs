@@ -57,6 +57,9 @@ pub enum Command {
         /// Pipeline selection and overrides.
         #[command(flatten)]
         target: Target,
+        /// Print the plan as one JSON object (units, fresh or stale, reasons, recipes).
+        #[arg(long)]
+        json: bool,
     },
     /// Recompute a study from its manifest in a fresh cache and compare the outputs.
     Verify {
@@ -208,7 +211,7 @@ fn dispatch(cli: &Cli) -> Result<i32> {
     };
     match &cli.command {
         Command::Run { target, jobs } => run(target, *jobs, cli.quiet, env),
-        Command::Plan { target } => plan(target, env),
+        Command::Plan { target, json } => plan(target, *json, env),
         Command::Verify { manifest } => verify(manifest, env),
         Command::Inspect { target, stage } => inspect(target, stage, env),
         Command::Simulate {
@@ -295,18 +298,21 @@ fn write_report(output: &Path, out: Option<&Path>, quiet: bool) -> Result<()> {
     Ok(())
 }
 
-fn plan(target: &Target, env: Env<'_>) -> Result<i32> {
-    let (study, plan) =
+fn plan(target: &Target, json: bool, env: Env<'_>) -> Result<i32> {
+    let (study, plan, recipes) =
         session::plan(&target.pipeline, &options(target, None, true), env).map_err(run_error)?;
-    for (u, line) in plan.units.iter().enumerate() {
-        let status = match line.status {
-            Status::Fresh => "fresh",
-            Status::Stale(_) => "stale",
-        };
+    if json {
+        let text = serde_json::to_string_pretty(&plan.to_json(&recipes))?;
+        println!("{text}");
+        return Ok(0);
+    }
+    for ((u, line), recipe) in plan.units.iter().enumerate().zip(&recipes) {
         let who = study.subject(u).unwrap_or("group");
         match &line.status {
-            Status::Fresh => println!("{status}  {} [{who}]", line.stage),
-            Status::Stale(reason) => println!("{status}  {} [{who}]: {reason}", line.stage),
+            Status::Fresh => println!("fresh  {} [{who}]", line.stage),
+            Status::Stale(reason) => {
+                println!("stale  {} [{who}]: {reason}; runs {recipe}", line.stage)
+            }
         }
     }
     println!(

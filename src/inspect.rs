@@ -76,11 +76,7 @@ impl InspectError {
 }
 
 /// Describe the cached result of `stage` for `subject`.
-pub fn inspect(
-    study: &Study<'_>,
-    stage: &str,
-    subject: Option<&str>,
-) -> Result<String, InspectError> {
+pub fn inspect(study: &Study, stage: &str, subject: Option<&str>) -> Result<String, InspectError> {
     let Some(stage_index) = study.pipeline.stage_index(stage) else {
         let known: Vec<&str> = study
             .pipeline

@@ -29,6 +29,7 @@
 pub mod alloc;
 pub mod cli;
 pub mod exec;
+pub mod fsio;
 pub mod graph;
 pub mod inspect;
 pub mod key;
@@ -39,6 +40,7 @@ pub mod paths;
 pub mod pipeline;
 pub mod plan;
 pub mod prune;
+pub mod recipe;
 pub mod report;
 pub mod scaffold;
 pub mod session;

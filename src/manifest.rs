@@ -27,6 +27,7 @@ use serde_json::Value;
 
 use crate::exec::{Outcome, Warning};
 use crate::paths::relative_to;
+use crate::recipe::Recipe;
 use crate::study::Study;
 
 /// `format` of a manifest.
@@ -133,6 +134,9 @@ pub struct UnitRecord {
     pub status: String,
     /// Seconds spent in this run.
     pub seconds: f64,
+    /// How it was computed ([`crate::recipe`]); only for units computed in this run.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub recipe: Option<Recipe>,
 }
 
 /// One output array.
@@ -162,7 +166,7 @@ pub fn this_tool() -> Tool {
 }
 
 /// Build the manifest of a finished run.
-pub fn build(study: &Study<'_>, outcome: &Outcome, started: &str, finished: &str) -> Manifest {
+pub fn build(study: &Study, outcome: &Outcome, started: &str, finished: &str) -> Manifest {
     let pipeline = &study.pipeline;
     let path = relative_to(&pipeline.file, &pipeline.output)
         .unwrap_or_else(|| pipeline.file.clone())
@@ -207,7 +211,7 @@ pub fn build(study: &Study<'_>, outcome: &Outcome, started: &str, finished: &str
     }
 }
 
-fn unit_record(study: &Study<'_>, outcome: &Outcome, u: usize) -> UnitRecord {
+fn unit_record(study: &Study, outcome: &Outcome, u: usize) -> UnitRecord {
     let fp = &study.fingerprints[u];
     let result = &outcome.results[u];
     UnitRecord {
@@ -231,10 +235,11 @@ fn unit_record(study: &Study<'_>, outcome: &Outcome, u: usize) -> UnitRecord {
         }
         .into(),
         seconds: result.seconds,
+        recipe: result.recipe.clone().filter(|_| result.computed),
     }
 }
 
-fn epochs(study: &Study<'_>, outcome: &Outcome) -> BTreeMap<String, BTreeMap<String, Value>> {
+fn epochs(study: &Study, outcome: &Outcome) -> BTreeMap<String, BTreeMap<String, Value>> {
     let mut out: BTreeMap<String, BTreeMap<String, Value>> = BTreeMap::new();
     for (u, result) in outcome.results.iter().enumerate() {
         if let Some(record) = result.record.notes.records.get("epochs") {
@@ -248,7 +253,7 @@ fn epochs(study: &Study<'_>, outcome: &Outcome) -> BTreeMap<String, BTreeMap<Str
 }
 
 /// Warnings of every unit's notes (cached ones included), then the executor's, in unit order.
-fn warnings(study: &Study<'_>, outcome: &Outcome) -> Vec<Warning> {
+fn warnings(study: &Study, outcome: &Outcome) -> Vec<Warning> {
     let mut out = Vec::new();
     for (u, result) in outcome.results.iter().enumerate() {
         for message in &result.record.notes.warnings {

@@ -26,10 +26,10 @@ use phasewise_stages::LabelledArray;
 use serde::{Deserialize, Serialize};
 use serde_json::json;
 
-use crate::store::{
-    atomic_write, bookkeeping_write, write_npy_to, write_then_rename, ObjectRecord, Store,
-    TEMP_PREFIX,
+use crate::fsio::{
+    atomic_write, bookkeeping_write, remove_dead_temps, write_then_rename, Declined,
 };
+use crate::store::{write_npy_to, ObjectRecord, Store};
 
 /// An export that could not be written.
 #[derive(Debug, thiserror::Error)]
@@ -233,13 +233,14 @@ pub fn export(
             let values = &array.values;
             let written = write_then_rename(&npy_path, false, |file| {
                 let mut out = std::io::BufWriter::with_capacity(1 << 20, file);
-                let done = write_npy_to(values, &mut out).map_err(|e| e.to_string());
+                let done =
+                    write_npy_to(values, &mut out).map_err(|e| Declined::Wrong(e.to_string()));
                 out.flush()?;
                 Ok(done)
             });
-            written.map_err(fail)?.map_err(|message| OutputError {
+            written.map_err(fail)?.map_err(|declined| OutputError {
                 path: npy_path.clone(),
-                message,
+                message: declined.to_string(),
             })?;
         }
     }
@@ -319,53 +320,22 @@ fn write_streamed_atomically(
             old.feed(piece.as_bytes());
             file.write_all(piece.as_bytes())
         })?;
-        // `Err` here only stops the rename (and removes the temporary file).
+        // Declining only stops the rename (and removes the temporary file).
         Ok(if old.finish() {
-            Err(UNCHANGED.to_string())
+            Err(Declined::Unchanged)
         } else {
             Ok(())
         })
     });
     let message = match written {
-        Ok(Ok(())) => return Ok(()),
-        Ok(Err(why)) if why == UNCHANGED => return Ok(()),
-        Ok(Err(why)) => why,
+        Ok(Ok(())) | Ok(Err(Declined::Unchanged)) => return Ok(()),
+        Ok(Err(Declined::Wrong(why))) => why,
         Err(e) => e.to_string(),
     };
     Err(OutputError {
         path: path.to_path_buf(),
         message,
     })
-}
-
-/// What [`write_streamed_atomically`]'s fill answers when the file already holds the table.
-const UNCHANGED: &str = "unchanged";
-
-/// Remove temporary files left in `dir` by killed runs: those named after a process that no
-/// longer exists on this machine. Where liveness cannot be told (no `/proc`), nothing is removed.
-/// Another machine's live temporary file could be taken for dead; its rename then fails and that
-/// run reports an error — never a wrong file — and in the planned cluster mode each subject's
-/// folder has a single writer anyway.
-pub fn remove_dead_temps(dir: &Path) {
-    let proc_dir = Path::new("/proc");
-    if !proc_dir.join("self").exists() {
-        return;
-    }
-    let Ok(entries) = std::fs::read_dir(dir) else {
-        return;
-    };
-    for entry in entries.flatten() {
-        let name = entry.file_name().to_string_lossy().into_owned();
-        let pid = name
-            .strip_prefix(TEMP_PREFIX)
-            .and_then(|rest| rest.split('-').next())
-            .and_then(|pid| pid.parse::<u32>().ok());
-        if let Some(pid) = pid {
-            if !proc_dir.join(pid.to_string()).exists() {
-                let _ = std::fs::remove_file(entry.path());
-            }
-        }
-    }
 }
 
 /// Write a file atomically unless it already holds exactly these bytes.
@@ -443,6 +413,7 @@ impl SameAs {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::fsio::TEMP_PREFIX;
 
     #[test]
     #[cfg(unix)]

@@ -3,7 +3,8 @@
 //!
 //! A unit P streams into its consumer C when P's stage is `cache: false` and not exported, C is
 //! P's only consumer and P is C's only input, P's op computes parts along an axis
-//! (`part_axis`) and C's op slices along that same axis (`slices_along`). The executor then never
+//! (`part_axis`) and C's op slices along that same axis (`slices_along`): the recipes `streamed`
+//! and `parts` ([`crate::recipe`]). The executor then never
 //! holds P's whole output: it computes P a part at a time (a range along the axis), runs C on
 //! each part and hands C's parts on: joined in memory ([`Joined`]), or, when C is stored and
 //! every consumer of C can read it in slabs, through a spool file into the cache
@@ -16,7 +17,6 @@
 
 use phasewise_stages::{Input, InputLayout, Joining, LabelledArray, Layout, Notes, StageError};
 
-use crate::graph::UnitInput;
 use crate::study::Study;
 
 /// Bytes of one part of the streamed unit's output (the axis is cut into parts of at most this
@@ -38,31 +38,6 @@ pub fn bytes_from_env(var: &str, default: usize) -> usize {
         .and_then(|v| v.parse().ok())
         .filter(|&b| b > 0)
         .unwrap_or(default)
-}
-
-/// The unit that streams into `u`, with the axis, when the conditions above hold.
-pub fn streamed_input(study: &Study<'_>, u: usize) -> Option<(usize, &'static str)> {
-    let [UnitInput::Unit(p)] = study.units[u].inputs[..] else {
-        return None;
-    };
-    let producer = &study.pipeline.stages[study.units[p].stage];
-    let consumer = &study.pipeline.stages[study.units[u].stage];
-    if producer.cache || producer.export || study.consumers[p] != [u] {
-        return None;
-    }
-    let axis = producer.op.part_axis(&producer.params)?;
-    consumer
-        .op
-        .slices_along(&consumer.params, axis)
-        .then_some((p, axis))
-}
-
-/// True when `p` streams into a consumer (so it is computed there, not on its own).
-pub fn streams(study: &Study<'_>, p: usize) -> bool {
-    study
-        .consumers
-        .get(p)
-        .is_some_and(|c| c.len() == 1 && streamed_input(study, c[0]).is_some_and(|(q, _)| q == p))
 }
 
 /// Indices per part along an axis of `len` entries, for an output of `bytes` bytes in all.
@@ -100,16 +75,19 @@ pub struct Streamed {
     pub consumer_notes: Notes,
 }
 
-/// The plan of producer `p` streaming into consumer `u` along `axis`, over the producer's
-/// `inputs`.
+/// The plan of producer `p` streaming into consumer `u` along the producer's part axis, over
+/// the producer's `inputs`.
 pub fn plan(
-    study: &Study<'_>,
+    study: &Study,
     (p, u): (usize, usize),
-    axis: &'static str,
     inputs: &[Input<'_>],
 ) -> Result<PartPlan, (usize, StageError)> {
     let producer = &study.pipeline.stages[study.units[p].stage];
     let consumer = &study.pipeline.stages[study.units[u].stage];
+    let axis = producer
+        .op
+        .part_axis()
+        .ok_or_else(|| (p, StageError::data("this op does not compute parts")))?;
     let layouts: Vec<InputLayout<'_>> = inputs
         .iter()
         .map(|i| InputLayout {
@@ -120,7 +98,7 @@ pub fn plan(
         .collect();
     let whole = producer
         .op
-        .layout(&producer.params, &layouts)
+        .layout(&layouts)
         .map_err(|e| (p, e))?
         .ok_or_else(|| {
             let why = "its output layout is not known in advance, so it cannot stream";
@@ -135,11 +113,7 @@ pub fn plan(
         subject: study.subject(p),
         layout: &whole,
     }];
-    let consumer_layout = consumer
-        .op
-        .layout(&consumer.params, &whole_input)
-        .ok()
-        .flatten();
+    let consumer_layout = consumer.op.layout(&whole_input).ok().flatten();
     Ok(PartPlan {
         producer_layout: whole,
         consumer_layout,
@@ -152,7 +126,7 @@ pub fn plan(
 /// Run producer `p` and consumer `u` part by part over the producer's `inputs`, handing each
 /// of the consumer's parts to `take` in order along the axis.
 pub fn run(
-    study: &Study<'_>,
+    study: &Study,
     (p, u): (usize, usize),
     plan: &PartPlan,
     inputs: &[Input<'_>],
@@ -168,12 +142,7 @@ pub fn run(
         let mut notes = Notes::default();
         let part = producer
             .op
-            .run_part(
-                &producer.params,
-                inputs,
-                start..(start + step).min(len),
-                &mut notes,
-            )
+            .run_part(inputs, start..(start + step).min(len), &mut notes)
             .map_err(|e| (p, e))?;
         producer_seconds += clock.elapsed().as_secs_f64();
         absorb(&mut producer_notes, notes);
@@ -183,10 +152,7 @@ pub fn run(
             subject: study.subject(p),
             array: &part,
         };
-        let out = consumer
-            .op
-            .run(&consumer.params, &[input], &mut notes)
-            .map_err(|e| (u, e))?;
+        let out = consumer.op.run(&[input], &mut notes).map_err(|e| (u, e))?;
         absorb(&mut consumer_notes, notes);
         take(out).map_err(|e| (u, e))?;
     }

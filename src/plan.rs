@@ -200,6 +200,64 @@ impl Plan {
     }
 }
 
+impl Reason {
+    /// The reason as `plan --json` prints it: `{"kind": ..., ...}` with the old and new values of
+    /// a changed param as JSON values (`null` where the param was absent).
+    pub fn to_json(&self) -> Value {
+        let value = |text: &str| serde_json::from_str(text).unwrap_or(Value::Null);
+        match self {
+            Reason::OpVersionChanged { old, new } => {
+                serde_json::json!({"kind": "op_version", "old": old, "new": new})
+            }
+            Reason::ParamChanged { name, old, new } => serde_json::json!({
+                "kind": "param", "param": name, "old": value(old), "new": value(new)
+            }),
+            Reason::InputFileChanged { path } => {
+                serde_json::json!({"kind": "input_file", "path": path})
+            }
+            Reason::Upstream { stage } => serde_json::json!({"kind": "upstream", "stage": stage}),
+            Reason::NotCached => serde_json::json!({"kind": "not_cached"}),
+            Reason::Damaged { why } => serde_json::json!({"kind": "damaged", "why": why}),
+            Reason::NotStored { consumer } => {
+                serde_json::json!({"kind": "not_stored", "consumer": consumer})
+            }
+        }
+    }
+}
+
+impl Plan {
+    /// The plan as data (`plan --json`, DESIGN §7): one entry per unit with its stage, subject,
+    /// key, status, reasons (empty when fresh) and `recipes[u]`, plus the count of stale units.
+    pub fn to_json(&self, recipes: &[crate::recipe::Recipe]) -> Value {
+        let units: Vec<Value> = self
+            .units
+            .iter()
+            .zip(recipes)
+            .map(|(u, recipe)| {
+                let (status, reasons) = match &u.status {
+                    Status::Fresh => ("fresh", Vec::new()),
+                    Status::Stale(reason) => ("stale", vec![reason.to_json()]),
+                };
+                serde_json::json!({
+                    "stage": u.stage,
+                    "subject": u.subject,
+                    "key": u.key,
+                    "status": status,
+                    "cascade": matches!(&u.status, Status::Stale(r) if r.is_cascade()),
+                    "reasons": reasons,
+                    "recipe": recipe,
+                })
+            })
+            .collect();
+        serde_json::json!({
+            "format": "phasewise-plan",
+            "format_version": 1,
+            "stale": self.stale_count(),
+            "units": units,
+        })
+    }
+}
+
 fn own_status(facts: &UnitFacts) -> Status {
     match &facts.stored {
         Stored::Present => Status::Fresh,

@@ -9,8 +9,9 @@ use std::collections::BTreeSet;
 use std::path::{Path, PathBuf};
 use std::time::{Duration, SystemTime};
 
+use crate::fsio::TEMP_PREFIX;
 use crate::manifest;
-use crate::store::{Store, TEMP_PREFIX};
+use crate::store::Store;
 
 /// Temporary files younger than this are left alone.
 const TEMP_GRACE: Duration = Duration::from_secs(3600);

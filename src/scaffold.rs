@@ -16,6 +16,7 @@ use anyhow::{bail, Context, Result};
 use phasewise_stages::io::{
     read_recording_layout, read_recording_layout_without_events, sidecar_paths, EventSource,
 };
+use phasewise_stages::ops::morlet;
 use phasewise_stages::Layout;
 
 use crate::words::count;
@@ -282,7 +283,7 @@ pub fn fit_windows(min_interval: f64, rate: f64) -> Windows {
     if low >= high {
         low = (high / 2.0).floor().max(1.0);
     }
-    let buffer = 3.0 * cycles[0] / (2.0 * std::f64::consts::PI * low);
+    let buffer = 3.0 * morlet::sigma(low, cycles[0]);
     let crop = [-tidy(pre - buffer), tidy(post - buffer)];
     let baseline = (crop[0] < -0.15).then(|| [crop[0], tidy(crop[0] + (-0.1 - crop[0]).min(0.4))]);
     Windows {
@@ -571,7 +572,7 @@ mod tests {
         assert_eq!(w.epoch, [-1.0, 1.5]);
         assert_eq!(w.freqs[1], 40.0);
         // The buffer left by the crop holds 3σ of the lowest-frequency wavelet.
-        let sigma = w.cycles[0] / (2.0 * std::f64::consts::PI * w.freqs[0]);
+        let sigma = morlet::sigma(w.freqs[0], w.cycles[0]);
         assert!(w.crop[0] - w.epoch[0] >= 3.0 * sigma - 1e-9, "{w:?}");
         assert!(w.epoch[1] - w.crop[1] >= 3.0 * sigma - 1e-9, "{w:?}");
         let b = w.baseline.expect("room for a baseline");

@@ -11,12 +11,14 @@ use std::time::SystemTime;
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use phasewise_stages::DynOp;
 
-use crate::exec::{self, Outcome, Warning};
+use crate::exec::{self, Executor, Job, Outcome, Warning};
+use crate::fsio::remove_dead_temps;
 use crate::manifest::{self, Manifest};
-use crate::output::{remove_dead_temps, write_atomically};
+use crate::output::write_atomically;
 use crate::paths::clean;
 use crate::pipeline::{self, ResolvedPipeline};
 use crate::plan::Plan;
+use crate::recipe::{self, Recipe};
 use crate::sources::{Hasher, Reader};
 use crate::store::Store;
 use crate::study::{RunError, Study};
@@ -48,12 +50,12 @@ pub struct Options {
 }
 
 /// The cache folder: `--cache`, else `.phasewise/` beside the pipeline file.
-pub fn cache_dir(pipeline: &ResolvedPipeline<'_>, explicit: Option<&Path>) -> PathBuf {
+pub fn cache_dir(pipeline: &ResolvedPipeline, explicit: Option<&Path>) -> PathBuf {
     explicit.map_or_else(|| pipeline.dir.join(".phasewise"), Path::to_path_buf)
 }
 
 /// Load the pipeline and prepare the study, checking layouts on the recordings' headers.
-pub fn open<'o>(file: &Path, options: &Options, env: Env<'o>) -> Result<Study<'o>, RunError> {
+pub fn open(file: &Path, options: &Options, env: Env<'_>) -> Result<Study, RunError> {
     let mut pipeline = pipeline::load(file, &options.overrides, env.ops)?;
     if let Some(output) = &options.output {
         pipeline.output = output.clone();
@@ -65,7 +67,7 @@ pub fn open<'o>(file: &Path, options: &Options, env: Env<'o>) -> Result<Study<'o
         .iter()
         .map(|s| s.strip_prefix("sub-").unwrap_or(s).to_string())
         .collect();
-    let study = Study::prepare(pipeline, env.reader, store, &subjects, &hasher)?;
+    let mut study = Study::prepare(pipeline, env.reader, store, &subjects, &hasher)?;
     study.check_layouts(env.reader)?;
     Ok(study)
 }
@@ -101,15 +103,25 @@ pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, R
             subjects = study.sources.len(),
             "planned"
         );
+        let recipes = recipe::decide_all(&study, &plan);
         let bar = progress_bar(study.units.len(), options.progress);
-        let outcome = exec::execute(&study, &plan, env.reader, &bar)?;
+        let job = Job {
+            study: &study,
+            plan: &plan,
+            recipes: &recipes,
+            reader: env.reader,
+            bar: &bar,
+        };
+        // The one place an executor is chosen.
+        let executor: &dyn Executor = &exec::Local;
+        let outcome = executor.execute(job)?;
         bar.finish_and_clear();
         study.remember_sources();
         finish(&study, &outcome, &started)
     })
 }
 
-fn finish(study: &Study<'_>, outcome: &Outcome, started: &str) -> Result<RunSummary, RunError> {
+fn finish(study: &Study, outcome: &Outcome, started: &str) -> Result<RunSummary, RunError> {
     let manifest = manifest::build(study, outcome, started, &now());
     let manifest_path = clean(&manifest::path_for(
         &study.pipeline.output,
@@ -136,15 +148,16 @@ fn finish(study: &Study<'_>, outcome: &Outcome, started: &str) -> Result<RunSumm
     })
 }
 
-/// The plan of a pipeline (nothing runs).
-pub fn plan<'o>(
+/// The plan of a pipeline and every unit's recipe (nothing runs).
+pub fn plan(
     file: &Path,
     options: &Options,
-    env: Env<'o>,
-) -> Result<(Study<'o>, Plan), RunError> {
+    env: Env<'_>,
+) -> Result<(Study, Plan, Vec<Recipe>), RunError> {
     let study = open(file, options, env)?;
     let plan = study.plan();
-    Ok((study, plan))
+    let recipes = recipe::decide_all(&study, &plan);
+    Ok((study, plan, recipes))
 }
 
 /// The current time as RFC 3339 (UTC, seconds).

@@ -28,6 +28,7 @@ use std::ops::Range;
 
 use phasewise_stages::{LabelledArray, Layout, Notes, StageError, Values};
 
+use crate::fsio::{self, Declined};
 use crate::key::Fingerprint;
 use crate::store::{
     self, check_end, fortran_order, geometry, read_fresh, Geometry, HashingWriter, ObjectRecord,
@@ -323,7 +324,10 @@ impl Store {
         };
         let written = if stored {
             let abort = std::env::var_os(store::ABORT_BEFORE_RENAME).is_some();
-            store::write_then_rename(&npy_path, abort, |file| write(file))
+            fsio::write_then_rename(&npy_path, abort, |file| {
+                write(file).map(|r| r.map_err(Declined::Wrong))
+            })
+            .map(|r| r.map_err(|declined| declined.to_string()))
         } else {
             write(&mut std::io::sink())
         };

@@ -18,8 +18,8 @@ use phasewise_stages::io::EventSource;
 use phasewise_stages::{LabelledArray, Layout, Notes, StageError};
 use serde::{Deserialize, Serialize};
 
+use crate::fsio::bookkeeping_write;
 use crate::key;
-use crate::store::bookkeeping_write;
 
 /// Reads recordings; the CLI uses [`RecordingReader`], tests may substitute their own.
 pub trait Reader: Sync {

@@ -21,7 +21,6 @@
 use std::fs::File;
 use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
 
 use ndarray::{ArrayD, IxDyn, ShapeBuilder};
@@ -30,6 +29,7 @@ use num_complex::Complex32;
 use phasewise_stages::{LabelledArray, Layout, Notes, Values};
 use serde::{Deserialize, Serialize};
 
+use crate::fsio::{atomic_write, bookkeeping_write, write_then_rename, Declined};
 use crate::key::Fingerprint;
 
 /// Version of the object record format; records of any other version are stale. Version 2 packs
@@ -573,7 +573,7 @@ impl Store {
             Ok(f) => f,
             Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
         };
-        write_then_rename(path, false, |to| {
+        let copied = write_then_rename(path, false, |to| {
             let mut hasher = blake3::Hasher::new();
             let mut buffer = vec![0u8; READ_CHUNK];
             let mut total = 0u64;
@@ -582,7 +582,9 @@ impl Store {
                     Ok(0) => break,
                     Ok(n) => n,
                     Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
-                    Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
+                    Err(e) => {
+                        return Ok(Err(Declined::Wrong(format!("cannot read its values: {e}"))))
+                    }
                 };
                 hash_update(&mut hasher, &buffer[..n]);
                 to.write_all(&buffer[..n])?;
@@ -590,13 +592,14 @@ impl Store {
             }
             let hash = hasher.finalize().to_hex().to_string();
             if hash != record.blake3 || total != record.npy_size {
-                return Ok(Err(format!(
+                return Ok(Err(Declined::Wrong(format!(
                     "its values' blake3 is {hash}, the record says {}",
                     record.blake3
-                )));
+                ))));
             }
             Ok(Ok(()))
-        })
+        });
+        copied.map(|r| r.map_err(|declined| declined.to_string()))
     }
 
     /// Write an object (values only when `stored`), NPY first, record last. The NPY is streamed
@@ -739,152 +742,16 @@ fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, Unreadable> {
 fn write_object_file(path: &Path, values: &Values) -> Result<(String, u64), StoreError> {
     let abort = std::env::var_os(ABORT_BEFORE_RENAME).is_some();
     let written = write_then_rename(path, abort, |file| {
-        Ok(stream_npy(values, file).map_err(|e| e.to_string()))
+        Ok(stream_npy(values, file).map_err(|e| Declined::Wrong(e.to_string())))
     });
     match written {
         Ok(Ok(digest)) => Ok(digest),
-        Ok(Err(message)) => Err(StoreError::Encode(message)),
+        Ok(Err(declined)) => Err(StoreError::Encode(declined.to_string())),
         Err(source) => Err(StoreError::Write {
             path: path.to_path_buf(),
             source,
         }),
     }
-}
-
-/// Bytes after which [`Writeback`] asks the kernel to start writing them to disk.
-const WRITEBACK_BYTES: u64 = 8 << 20;
-
-/// The temporary file that [`write_then_rename`] hands its `fill`: written in pieces of at most
-/// [`WRITEBACK_BYTES`], each handed to the disk as soon as it is written (Linux `sync_file_range(SYNC_FILE_RANGE_WRITE)`, which starts the write and
-/// does not wait for it), so that the fsync before the rename finds most of a large object
-/// already on its way and waits less. Only when the write goes to disk changes; what is written,
-/// and the fsync that makes it durable, do not.
-pub(crate) struct Writeback<'f> {
-    file: &'f mut File,
-    written: u64,
-    started: u64,
-}
-
-impl<'f> Writeback<'f> {
-    fn new(file: &'f mut File) -> Self {
-        Writeback {
-            file,
-            written: 0,
-            started: 0,
-        }
-    }
-}
-
-impl Write for Writeback<'_> {
-    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
-        let piece = buf.len().min(WRITEBACK_BYTES as usize);
-        let n = self.file.write(&buf[..piece])?;
-        self.written += n as u64;
-        if self.written - self.started >= WRITEBACK_BYTES {
-            #[cfg(target_os = "linux")]
-            {
-                use std::os::fd::AsRawFd;
-                let (from, len) = (self.started as i64, (self.written - self.started) as i64);
-                // SAFETY: a plain system call on an open descriptor; only a hint, so its
-                // answer is not needed.
-                unsafe {
-                    libc::sync_file_range(
-                        self.file.as_raw_fd(),
-                        from,
-                        len,
-                        libc::SYNC_FILE_RANGE_WRITE,
-                    );
-                }
-            }
-            self.started = self.written;
-        }
-        Ok(n)
-    }
-
-    fn flush(&mut self) -> std::io::Result<()> {
-        self.file.flush()
-    }
-}
-
-/// Write `bytes` to `path` atomically: a temporary file in the same folder, fsync, rename.
-pub fn atomic_write(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
-    write_then_rename(path, false, |file| file.write_all(bytes).map(Ok))
-        .map(|r: Result<(), String>| r.unwrap_or(()))
-}
-
-/// [`atomic_write`] without the fsyncs, for bookkeeping whose loss in a crash costs only work
-/// (the stat records of input files and exports, the last fingerprint of a unit): a reader sees
-/// the old file or the new one, never a part, and one lost after a power cut is simply redone.
-pub fn bookkeeping_write(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
-    replace_via_temp(path, false, false, |file| file.write_all(bytes).map(Ok))
-        .map(|r: Result<(), String>| r.unwrap_or(()))
-}
-
-static TEMP_COUNTER: AtomicU64 = AtomicU64::new(0);
-
-/// Prefix of temporary files; they are never read, and `prune` removes old ones.
-pub const TEMP_PREFIX: &str = ".tmp-";
-
-/// Fill a temporary file in `path`'s folder with `fill`, fsync it and rename it to `path`. When
-/// `fill` answers `Ok(Err(_))` (the content turned out wrong) the temporary file is removed,
-/// nothing is renamed and the answer is passed on.
-pub(crate) fn write_then_rename<T>(
-    path: &Path,
-    abort_before_rename: bool,
-    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, String>>,
-) -> std::io::Result<Result<T, String>> {
-    replace_via_temp(path, abort_before_rename, true, fill)
-}
-
-/// [`write_then_rename`], with the fsyncs of the file and its folder only when `durable`.
-fn replace_via_temp<T>(
-    path: &Path,
-    abort_before_rename: bool,
-    durable: bool,
-    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, String>>,
-) -> std::io::Result<Result<T, String>> {
-    let dir = path.parent().unwrap_or(Path::new("."));
-    std::fs::create_dir_all(dir)?;
-    let name = path.file_name().map(|n| n.to_string_lossy().into_owned());
-    let temp = dir.join(format!(
-        "{TEMP_PREFIX}{}-{}-{}",
-        std::process::id(),
-        TEMP_COUNTER.fetch_add(1, Ordering::Relaxed),
-        name.unwrap_or_default()
-    ));
-    let mut file = File::create(&temp)?;
-    // Only a file about to be renamed is made durable; one that `fill` turned down is removed.
-    let filled = fill(&mut Writeback::new(&mut file)).and_then(|r| {
-        if durable && r.is_ok() {
-            file.sync_all()?;
-        }
-        Ok(r)
-    });
-    drop(file);
-    let value = match filled {
-        Ok(Ok(value)) => value,
-        Ok(Err(why)) => {
-            let _ = std::fs::remove_file(&temp);
-            return Ok(Err(why));
-        }
-        Err(e) => {
-            let _ = std::fs::remove_file(&temp);
-            return Err(e);
-        }
-    };
-    if abort_before_rename {
-        std::process::abort();
-    }
-    std::fs::rename(&temp, path).inspect_err(|_| {
-        let _ = std::fs::remove_file(&temp);
-    })?;
-    // The rename itself must survive a crash too; failing to sync a folder is not fatal.
-    if durable {
-        if let Ok(d) = File::open(dir) {
-            let _ = d.sync_all();
-        }
-    }
-    Ok(Ok(value))
 }
 
 /// How an [`ObjectRecord`] writes its layout: as `Layout`'s own serialisation (the form exported
@@ -1130,6 +997,7 @@ mod tests {
 
     #[test]
     fn a_large_object_written_in_pieces_has_the_bytes_and_hash_of_its_npy_encoding() {
+        use crate::fsio::WRITEBACK_BYTES;
         // Reference: numpy's NPY encoding as `npy_bytes` builds it in memory (the format spec's
         // header, then the values) and blake3 of those bytes. The store writes objects of more
         // than WRITEBACK_BYTES in pieces, starting the disk write of each as it goes.

@@ -95,9 +95,9 @@ pub fn subject_label(subject: Option<&str>) -> String {
 }
 
 /// A prepared study.
-pub struct Study<'o> {
+pub struct Study {
     /// The pipeline.
-    pub pipeline: ResolvedPipeline<'o>,
+    pub pipeline: ResolvedPipeline,
     /// All subjects' recordings, sorted by subject.
     pub sources: Vec<Source>,
     /// Keys of the sources.
@@ -116,17 +116,21 @@ pub struct Study<'o> {
     pub selection: Vec<String>,
     /// The cache.
     pub store: Store,
+    /// Each unit's output layout as far as it is known before anything runs (its record's, or
+    /// planned by its op from its inputs'; `None` when it depends on values), set by
+    /// [`Study::check_layouts`]. The recipes ([`crate::recipe`]) are decided on them.
+    pub layouts: Vec<Option<PlannedLayout>>,
 }
 
-impl<'o> Study<'o> {
+impl Study {
     /// Find recordings, expand units and compute keys.
     pub fn prepare(
-        pipeline: ResolvedPipeline<'o>,
+        pipeline: ResolvedPipeline,
         reader: &dyn Reader,
         store: Store,
         selection: &[String],
         hasher: &Hasher,
-    ) -> Result<Study<'o>, RunError> {
+    ) -> Result<Study, RunError> {
         let all = match sources::discover(&pipeline.dir, &pipeline.recordings, reader) {
             Ok(all) => all,
             Err(e @ SourceError::Io { .. }) => return Err(RunError::Other(e.to_string())),
@@ -170,6 +174,7 @@ impl<'o> Study<'o> {
             consumers: Vec::new(),
             selection: selection.to_vec(),
             store,
+            layouts: Vec::new(),
         };
         study.compute_keys();
         Ok(study)
@@ -189,7 +194,7 @@ impl<'o> Study<'o> {
             let fingerprint = Fingerprint {
                 op: stage.op.name().to_string(),
                 op_version: stage.op.version(),
-                params: stage.params.clone(),
+                params: stage.params().clone(),
                 inputs,
                 subject: unit.subject.map(|s| self.sources[s].subject.clone()),
             };
@@ -225,6 +230,14 @@ impl<'o> Study<'o> {
         self.units[unit]
             .subject
             .map(|s| self.sources[s].subject.as_str())
+    }
+
+    /// The stage and subject an input comes from.
+    pub fn origin(&self, input: UnitInput) -> (&str, Option<&str>) {
+        match input {
+            UnitInput::Source(s) => (SOURCE, Some(self.sources[s].subject.as_str())),
+            UnitInput::Unit(i) => (self.stage_name(i), self.subject(i)),
+        }
     }
 
     /// A path for messages and the manifest: relative to the pipeline's folder when possible.
@@ -336,7 +349,7 @@ impl<'o> Study<'o> {
     /// layout is the record's and there is nothing left to check, so only the other units are
     /// planned, and only the recordings they read are opened (a rerun after a late change reads
     /// no recording header at all).
-    pub fn check_layouts(&self, reader: &dyn Reader) -> Result<(), RunError> {
+    pub fn check_layouts(&mut self, reader: &dyn Reader) -> Result<(), RunError> {
         // Reading and parsing the records (their time axes can be long) is most of a no-op
         // run: in parallel, on the run's pool.
         let recorded: Vec<Option<Arc<ObjectRecord>>> = self
@@ -381,11 +394,11 @@ impl<'o> Study<'o> {
                 }
             }
         }
-        let mut layouts: Vec<Option<Planned>> = Vec::new();
+        let mut layouts: Vec<Option<PlannedLayout>> = Vec::new();
         let mut diagnostics: Vec<Diagnostic> = Vec::new();
         for (u, known) in recorded.into_iter().enumerate() {
             let layout = match known {
-                Some(record) => Some(Planned::Recorded(record)),
+                Some(record) => Some(PlannedLayout::Recorded(record)),
                 None => self
                     .unit_layout(
                         u,
@@ -394,7 +407,7 @@ impl<'o> Study<'o> {
                         &mut diagnostics,
                         &mut failures,
                     )
-                    .map(Planned::Computed),
+                    .map(|l| PlannedLayout::Computed(Arc::new(l))),
             };
             layouts.push(layout);
         }
@@ -404,6 +417,7 @@ impl<'o> Study<'o> {
         if !failures.is_empty() {
             return Err(RunError::Units(failures));
         }
+        self.layouts = layouts;
         Ok(())
     }
 
@@ -411,7 +425,7 @@ impl<'o> Study<'o> {
         &self,
         u: usize,
         sources: &[Option<Layout>],
-        units: &[Option<Planned>],
+        units: &[Option<PlannedLayout>],
         diagnostics: &mut Vec<Diagnostic>,
         failures: &mut Vec<UnitFailure>,
     ) -> Option<Layout> {
@@ -427,7 +441,7 @@ impl<'o> Study<'o> {
                 UnitInput::Unit(i) => (
                     self.stage_name(i),
                     self.subject(i),
-                    units[i].as_ref().map(Planned::layout),
+                    units[i].as_ref().map(PlannedLayout::layout),
                 ),
             };
             inputs.push(InputLayout {
@@ -437,7 +451,7 @@ impl<'o> Study<'o> {
             });
         }
         let stage = &self.pipeline.stages[unit.stage];
-        match stage.op.layout(&stage.params, &inputs) {
+        match stage.op.layout(&inputs) {
             Ok(layout) => layout,
             Err(e @ StageError::Param { .. }) => {
                 let mut d = self.pipeline.stage_diagnostic(unit.stage, &e);
@@ -472,17 +486,21 @@ impl<'o> Study<'o> {
     }
 }
 
-/// A unit's output layout while layouts are checked: its record's, or planned by its op.
-enum Planned {
+/// A unit's output layout known before it runs: its record's, or planned by its op.
+#[derive(Clone, Debug)]
+pub enum PlannedLayout {
+    /// The layout of the unit's record in the cache (computed from the same inputs and params).
     Recorded(Arc<ObjectRecord>),
-    Computed(Layout),
+    /// The layout its op derives from its inputs' layouts.
+    Computed(Arc<Layout>),
 }
 
-impl Planned {
-    fn layout(&self) -> &Layout {
+impl PlannedLayout {
+    /// The layout.
+    pub fn layout(&self) -> &Layout {
         match self {
-            Planned::Recorded(record) => &record.layout,
-            Planned::Computed(layout) => layout,
+            PlannedLayout::Recorded(record) => &record.layout,
+            PlannedLayout::Computed(layout) => layout,
         }
     }
 }

@@ -24,8 +24,8 @@ const SMALL_BOXES: &str = "64000";
 /// The demo's re-reference.
 const AVERAGE: &str = "params: { method: average }";
 
-/// Run the demo pipeline in `dir` with the baseline `norm` and re-reference as given; returns the manifest and
-/// the runner's log (which says which units ran in slabs).
+/// Run the demo pipeline in `dir` with the baseline `norm` and re-reference as given; returns the
+/// manifest (whose recipes say which units ran in slabs) and the runner's log.
 fn run(dir: &Path, norm: &str, reference: &str) -> (Value, String) {
     run_with(dir, norm, reference, false)
 }
@@ -55,7 +55,6 @@ fn run_with(dir: &Path, norm: &str, reference: &str, whole: bool) -> (Value, Str
     let out = Command::new(env!("CARGO_BIN_EXE_phasewise"))
         .args(["run", pipeline.to_str().unwrap(), "-q"])
         .env("PHASEWISE_SLAB_BYTES", SMALL_BOXES)
-        .env("RUST_LOG", "phasewise::exec=debug")
         .current_dir(dir)
         .output()
         .unwrap();
@@ -112,8 +111,20 @@ fn exports(dir: &Path) -> Vec<(String, Vec<u8>)> {
     files
 }
 
-fn log_lines(log: &str, what: &str) -> usize {
-    log.lines().filter(|l| l.contains(what)).count()
+/// How many units of `stage` the manifest says ran with a recipe `run`, and how many of those
+/// fell back to a whole computation.
+fn ran(manifest: &Value, stage: &str, run: &str) -> usize {
+    units(manifest, stage)
+        .iter()
+        .filter(|u| u["recipe"]["run"] == run)
+        .count()
+}
+
+fn fell_back(manifest: &Value, stage: &str) -> usize {
+    units(manifest, stage)
+        .iter()
+        .filter(|u| u["recipe"]["fallback"].is_string())
+        .count()
 }
 
 /// Every baseline unit computed in both runs; the clustering, baseline and group outputs with
@@ -142,9 +153,12 @@ fn assert_same_results((whole, cold): (&Value, &Path), (other, warm): (&Value, &
 /// whole in memory.
 fn spooled_run(dir: &Path, norm: &str, reference: &str) -> (Value, String) {
     let (manifest, log) = run(dir, norm, reference);
-    let subjects = units(&manifest, "sync").len();
-    let spooled = log_lines(&log, "computing in parts, spooled");
-    assert_eq!(spooled, subjects, "{log}");
+    let sync = units(&manifest, "sync");
+    assert!(
+        sync.iter()
+            .all(|u| u["recipe"]["run"] == "parts" && u["recipe"]["spooled"] == true),
+        "{sync:#?}"
+    );
     (manifest, log)
 }
 
@@ -186,10 +200,10 @@ fn a_cold_run_spooled_and_in_slabs_gives_the_bits_of_a_whole_run() {
     let norm = "params: { window: [-0.45, -0.2], mode: percent }";
     let (cold, streamed) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
     let whole = run_with(cold.path(), norm, AVERAGE, true);
-    let (other, log) = spooled_run(streamed.path(), norm, AVERAGE);
+    let (other, _) = spooled_run(streamed.path(), norm, AVERAGE);
     let subjects = units(&other, "norm").len();
-    assert_eq!(log_lines(&log, "computing in slabs"), subjects, "{log}");
-    assert_eq!(log_lines(&log, "computed whole"), 0, "{log}");
+    assert_eq!(ran(&other, "norm", "slabs"), subjects);
+    assert_eq!(fell_back(&other, "norm"), 0);
     assert_same_results((&whole.0, cold.path()), (&other, streamed.path()));
     assert_eq!(whole.0["warnings"], other["warnings"]);
 }
@@ -198,18 +212,14 @@ fn a_cold_run_spooled_and_in_slabs_gives_the_bits_of_a_whole_run() {
 fn a_baseline_change_computed_in_slabs_gives_the_bits_of_a_whole_run() {
     let norm = "params: { window: [-0.45, -0.2], mode: zscore }";
     let before = "params: { window: [-0.5, -0.2], mode: zscore }";
-    let [(whole, whole_log), (changed, log)] = cold_and_changed(norm, before, AVERAGE, false);
+    let [(whole, _), (changed, _)] = cold_and_changed(norm, before, AVERAGE, false);
     let subjects = units(&changed, "norm").len();
     // The reference had the clustering output in memory; the rerun read it from the cache in
     // slabs, every subject.
-    assert_eq!(
-        log_lines(&whole_log, "computing in slabs"),
-        0,
-        "{whole_log}"
-    );
-    assert_eq!(log_lines(&whole_log, "spooled"), 0, "{whole_log}");
-    assert_eq!(log_lines(&log, "computing in slabs"), subjects, "{log}");
-    assert_eq!(log_lines(&log, "computed whole"), 0, "{log}");
+    assert_eq!(ran(&whole, "norm", "whole"), subjects);
+    assert_eq!(ran(&whole, "sync", "whole"), subjects);
+    assert_eq!(ran(&changed, "norm", "slabs"), subjects);
+    assert_eq!(fell_back(&changed, "norm"), 0);
     assert_eq!(whole["warnings"], changed["warnings"]);
 }
 
@@ -217,12 +227,13 @@ fn a_baseline_change_computed_in_slabs_gives_the_bits_of_a_whole_run() {
 fn a_damaged_input_met_in_slabs_is_recomputed_once_with_one_warning() {
     let norm = "params: { window: [-0.45, -0.2], mode: subtract }";
     let before = "params: { window: [-0.5, -0.2], mode: subtract }";
-    let [(_, _), (changed, log)] = cold_and_changed(norm, before, AVERAGE, true);
+    let [(_, _), (changed, _)] = cold_and_changed(norm, before, AVERAGE, true);
     // Subject 01 gave up in slabs (the hash failed at the end) and ran whole, which found the
     // damage, warned and recomputed the clustering output; the others ran in slabs.
     let subjects = units(&changed, "norm").len();
-    assert_eq!(log_lines(&log, "computing in slabs"), subjects, "{log}");
-    assert_eq!(log_lines(&log, "computed whole"), 1, "{log}");
+    assert_eq!(ran(&changed, "norm", "slabs"), subjects - 1);
+    assert_eq!(ran(&changed, "norm", "whole"), 1);
+    assert_eq!(fell_back(&changed, "norm"), 1);
     let warnings: Vec<&Value> = changed["warnings"].as_array().unwrap().iter().collect();
     let damaged: Vec<&&Value> = warnings
         .iter()
@@ -247,10 +258,10 @@ fn a_baseline_that_warns_is_computed_whole_with_the_same_warnings() {
     let reference = "params: { method: channels, channels: [Cz] }";
     let norm = "params: { window: [-0.45, -0.2], mode: subtract }";
     let before = "params: { window: [-0.5, -0.2], mode: subtract }";
-    let [(whole, _), (changed, log)] = cold_and_changed(norm, before, reference, false);
+    let [(whole, _), (changed, _)] = cold_and_changed(norm, before, reference, false);
     let subjects = units(&changed, "norm").len();
-    assert_eq!(log_lines(&log, "computing in slabs"), subjects, "{log}");
-    assert_eq!(log_lines(&log, "computed whole"), subjects, "{log}");
+    assert_eq!(ran(&changed, "norm", "whole"), subjects);
+    assert_eq!(fell_back(&changed, "norm"), subjects);
     assert_eq!(whole["warnings"], changed["warnings"]);
     let norm_warnings: Vec<&Value> = changed["warnings"]
         .as_array()

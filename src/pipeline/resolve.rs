@@ -11,7 +11,9 @@
 use std::path::{Component, Path, PathBuf};
 
 use phasewise_stages::io::EventSource;
-use phasewise_stages::{DynOp, StageError};
+use std::sync::Arc;
+
+use phasewise_stages::{BoundOp, DynOp, StageError};
 use serde_json::Value;
 
 use super::raw::{self, Collector, Override, RawPipeline, RawStage};
@@ -25,7 +27,7 @@ pub const SOURCE: &str = "recordings";
 
 /// A validated pipeline.
 #[derive(Clone)]
-pub struct ResolvedPipeline<'o> {
+pub struct ResolvedPipeline {
     /// The pipeline file as given.
     pub file: PathBuf,
     /// Its folder (paths in the file are relative to it).
@@ -47,18 +49,17 @@ pub struct ResolvedPipeline<'o> {
     /// The `--set` arguments as given.
     pub overrides: Vec<String>,
     /// The stages in topological order.
-    pub stages: Vec<ResolvedStage<'o>>,
+    pub stages: Vec<ResolvedStage>,
 }
 
 /// A validated stage.
 #[derive(Clone)]
-pub struct ResolvedStage<'o> {
+pub struct ResolvedStage {
     /// The stage's name.
     pub name: String,
-    /// The op.
-    pub op: &'o dyn DynOp,
-    /// Effective params (the op's defaults filled in): what is hashed into keys.
-    pub params: Value,
+    /// The op with its params, parsed and checked once ([`DynOp::bind`]). Its effective params
+    /// (the op's defaults filled in) are what is hashed into keys: [`ResolvedStage::params`].
+    pub op: Arc<dyn BoundOp>,
     /// Input stage indices into `ResolvedPipeline::stages`; `None` is the data source.
     pub inputs: Vec<Option<usize>>,
     /// Consumers (indices).
@@ -75,7 +76,14 @@ pub struct ResolvedStage<'o> {
     pub params_node: Node,
 }
 
-impl ResolvedPipeline<'_> {
+impl ResolvedStage {
+    /// The effective params (the op's defaults filled in), as JSON: for keys and the manifest.
+    pub fn params(&self) -> &Value {
+        self.op.params()
+    }
+}
+
+impl ResolvedPipeline {
     /// The stage called `name`.
     pub fn stage_index(&self, name: &str) -> Option<usize> {
         self.stages.iter().position(|s| s.name == name)
@@ -113,7 +121,7 @@ pub fn load<'o>(
     file: &Path,
     overrides: &[String],
     ops: &[&'o dyn DynOp],
-) -> Result<ResolvedPipeline<'o>, PipelineError> {
+) -> Result<ResolvedPipeline, PipelineError> {
     let bytes = std::fs::read(file).map_err(|source| PipelineError::Read {
         path: file.to_path_buf(),
         source,
@@ -146,7 +154,7 @@ fn resolve<'o>(
     overrides: &[String],
     ops: &[&'o dyn DynOp],
     c: &mut Collector<'_>,
-) -> Option<ResolvedPipeline<'o>> {
+) -> Option<ResolvedPipeline> {
     let dir = raw.file.parent().map(Path::to_path_buf).unwrap_or_default();
     let recordings = required(&raw.recordings, "data.recordings", raw.stages_origin, c);
     let events = events(raw, c);
@@ -258,9 +266,8 @@ pub fn check_output(written: &str) -> Result<PathBuf, String> {
 }
 
 /// A stage checked on its own, before the graph is known.
-struct Partial<'o> {
-    op: Option<&'o dyn DynOp>,
-    params: Option<Value>,
+struct Partial {
+    bound: Option<Box<dyn BoundOp>>,
     inputs: Vec<Option<usize>>,
 }
 
@@ -268,18 +275,17 @@ fn resolve_stages<'o>(
     raw: &RawPipeline,
     ops: &[&'o dyn DynOp],
     c: &mut Collector<'_>,
-) -> Option<Vec<ResolvedStage<'o>>> {
+) -> Option<Vec<ResolvedStage>> {
     let mut ok = true;
-    let mut partial: Vec<Partial<'o>> = Vec::new();
+    let mut partial: Vec<Partial> = Vec::new();
     for stage in &raw.stages {
         ok &= check_name(stage, c);
         let op = find_op(stage, ops, c);
-        let params = op.and_then(|op| resolve_params(stage, op, c));
+        let bound = op.and_then(|op| bind_params(stage, op, c));
         let inputs = resolve_inputs(stage, raw, c);
-        ok &= op.is_some() && params.is_some() && inputs.is_some();
+        ok &= op.is_some() && bound.is_some() && inputs.is_some();
         partial.push(Partial {
-            op,
-            params,
+            bound,
             inputs: inputs.unwrap_or_default(),
         });
     }
@@ -301,31 +307,26 @@ fn resolve_stages<'o>(
 }
 
 /// Put stages in topological order, renumber inputs, mark group and exported stages.
-fn finish_stages<'o>(
+fn finish_stages(
     raw: &RawPipeline,
-    partial: Vec<Partial<'o>>,
+    partial: Vec<Partial>,
     graph: &StageGraph,
     c: &mut Collector<'_>,
-) -> Option<Vec<ResolvedStage<'o>>> {
+) -> Option<Vec<ResolvedStage>> {
     let mut position = vec![0; partial.len()];
     for (new, &old) in graph.order.iter().enumerate() {
         position[old] = new;
     }
-    let mut stages: Vec<ResolvedStage<'o>> = Vec::new();
+    let (mut slots, inputs): (Vec<_>, Vec<_>) =
+        partial.into_iter().map(|p| (p.bound, p.inputs)).unzip();
+    let mut stages: Vec<ResolvedStage> = Vec::new();
     let mut ok = true;
     for &old in &graph.order {
-        let Partial { op, params, inputs } = &partial[old];
-        let (op, params) = (op.as_ref()?, params.clone()?);
+        let op: Arc<dyn BoundOp> = Arc::from(slots[old].take()?);
         let r = &raw.stages[old];
-        let joins = match op.joins_subjects(&params) {
-            Ok(j) => j,
-            Err(e) => {
-                report_stage_error(c, &r.name.value, &r.params, &e);
-                ok = false;
-                false
-            }
-        };
-        let inputs: Vec<Option<usize>> = inputs.iter().map(|i| i.map(|o| position[o])).collect();
+        let joins = op.joins_subjects();
+        let inputs: Vec<Option<usize>> =
+            inputs[old].iter().map(|i| i.map(|o| position[o])).collect();
         let group = joins || inputs.iter().flatten().any(|&i| stages[i].group);
         let consumers: Vec<usize> = graph.consumers[old].iter().map(|&c| position[c]).collect();
         let export = r.export || consumers.is_empty();
@@ -339,8 +340,7 @@ fn finish_stages<'o>(
         }
         stages.push(ResolvedStage {
             name: r.name.value.clone(),
-            op: *op,
-            params,
+            op,
             inputs,
             consumers,
             cache: r.cache,
@@ -411,9 +411,14 @@ fn find_op<'o>(
     found
 }
 
-fn resolve_params(stage: &RawStage, op: &dyn DynOp, c: &mut Collector<'_>) -> Option<Value> {
-    match op.resolve(&stage.params.to_json()) {
-        Ok(v) => Some(v),
+/// Bind the stage's params to its op: parsed and checked here, once.
+fn bind_params(
+    stage: &RawStage,
+    op: &dyn DynOp,
+    c: &mut Collector<'_>,
+) -> Option<Box<dyn BoundOp>> {
+    match op.bind(&stage.params.to_json()) {
+        Ok(bound) => Some(bound),
         Err(e) => {
             report_stage_error(c, &stage.name.value, &stage.params, &e);
             None

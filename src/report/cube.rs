@@ -9,6 +9,7 @@
 
 use ndarray::{Array5, ArrayD, ArrayViewD, Axis, Ix5};
 use phasewise_stages::array::Coord;
+use phasewise_stages::range;
 
 use super::axes::GridAxis;
 use super::input::Sidecar;
@@ -230,12 +231,12 @@ pub fn range_mean(
     let mut sum = 0.0;
     let mut n = 0usize;
     for (i, fv) in f.iter().enumerate() {
-        if *fv < band.lo || *fv > band.hi {
+        if !range::contains([band.lo, band.hi], *fv) {
             continue;
         }
         for (j, tv) in t.iter().enumerate() {
             let v = cube.values[[c, m, p, i, j]];
-            if *tv >= win.lo && *tv <= win.hi && v.is_finite() {
+            if range::contains([win.lo, win.hi], *tv) && v.is_finite() {
                 sum += v;
                 n += 1;
             }

@@ -16,6 +16,7 @@ pub mod error;
 pub mod io;
 pub mod op;
 pub mod ops;
+pub mod range;
 pub mod registry;
 pub mod simulate;
 pub mod table;
@@ -24,7 +25,7 @@ pub use array::{
     Coord, Event, Joining, LabelledArray, Layout, Meta, SharedList, TrialInfo, Values,
 };
 pub use error::StageError;
-pub use op::{DynOp, Input, InputLayout, Notes, Op, OwnedInput};
+pub use op::{BoundOp, DynOp, Input, InputLayout, Notes, Op, OwnedInput};
 
 #[cfg(test)]
 pub(crate) mod testutil;

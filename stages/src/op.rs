@@ -1,17 +1,19 @@
-//! The one trait through which the runner knows an op, and its object-safe wrapper.
+//! The one trait through which the runner knows an op, and its object-safe wrappers.
 //!
 //! An op is a pure function from labelled arrays to a labelled array, parameterised by a typed
-//! `Params` struct. The runner never sees the concrete type: it holds `&dyn DynOp` from the
-//! [registry](crate::registry) and passes params as JSON values, which the wrapper deserialises
-//! (unknown fields are errors, via `#[serde(deny_unknown_fields)]` on each `Params`).
+//! `Params` struct. The runner never sees the concrete type: the [registry](crate::registry)
+//! lists ops as `&dyn DynOp`, and a stage's params (JSON, from the YAML) are bound to its op
+//! once, when the pipeline is resolved.
 //!
-//! Life of a unit (one stage × one subject) as the runner drives it:
-//! 1. [`DynOp::resolve`] turns the user's params into the op's *effective* params (defaults filled
-//!    in, validated on their own) — these are what is hashed into the stage key.
-//! 2. [`DynOp::layout`] computes the output layout from the input layouts without touching values,
-//!    so that data-dependent mistakes (a window outside the data, a frequency at or above Nyquist)
-//!    are reported before anything runs.
-//! 3. [`DynOp::run`] computes the output.
+//! Life of a stage and its units (one stage × one subject) as the runner drives it:
+//! 1. [`DynOp::bind`] deserialises the user's params into the op's typed `Params` (unknown fields
+//!    are errors, via `#[serde(deny_unknown_fields)]`), checks them ([`Op::check`]) and returns a
+//!    [`BoundOp`]: the typed params and their *effective* JSON form (defaults filled in), which
+//!    is what is hashed into the stage key. Params are never parsed again.
+//! 2. [`BoundOp::layout`] computes the output layout from the input layouts without touching
+//!    values, so that data-dependent mistakes (a window outside the data, a frequency at or above
+//!    Nyquist) are reported before anything runs.
+//! 3. [`BoundOp::run`] computes the output.
 //!
 //! Parts (how a `cache: false` intermediate can stream into its consumer without ever existing
 //! in full): an op whose output's slices along one axis can be computed on their own names that
@@ -106,7 +108,7 @@ impl Notes {
 /// A signal-processing op with typed parameters.
 pub trait Op: Send + Sync + 'static {
     /// The op's parameters, deserialised with `deny_unknown_fields`.
-    type Params: DeserializeOwned + Serialize;
+    type Params: DeserializeOwned + Serialize + Send + Sync;
     /// The name used in pipeline files (`op: wavelet`).
     const NAME: &'static str;
     /// Bumped whenever the op's numbers change, so that cached results go stale.
@@ -211,65 +213,63 @@ pub trait Op: Send + Sync + 'static {
     }
 }
 
-/// Object-safe form of [`Op`], taking params as JSON.
+/// An op as the registry lists it, before it has params: its name, its version, and how to
+/// bind params to it. Object-safe, so the registry is a list of `&dyn DynOp`.
 pub trait DynOp: Send + Sync {
     /// The op's name.
     fn name(&self) -> &'static str;
     /// The op's version.
     fn version(&self) -> u32;
-    /// Deserialise and check the params; returns the effective params (defaults filled in).
-    fn resolve(&self, params: &Value) -> Result<Value, StageError>;
-    /// See [`Op::joins_subjects`]; `params` must be effective params from [`DynOp::resolve`].
-    fn joins_subjects(&self, params: &Value) -> Result<bool, StageError>;
+    /// Parse and check the params once ([`Op::check`]) and bind them to the op: everything the
+    /// runner does with this stage afterwards goes through the [`BoundOp`], which never parses
+    /// again.
+    fn bind(&self, params: &Value) -> Result<Box<dyn BoundOp>, StageError>;
+    /// The effective params (defaults filled in) of [`DynOp::bind`].
+    fn resolve(&self, params: &Value) -> Result<Value, StageError> {
+        Ok(self.bind(params)?.params().clone())
+    }
+}
+
+/// An op with its typed params parsed and checked once ([`DynOp::bind`]). Each method is the
+/// [`Op`] method of the same name with the bound params.
+pub trait BoundOp: Send + Sync {
+    /// The op's name.
+    fn name(&self) -> &'static str;
+    /// The op's version.
+    fn version(&self) -> u32;
+    /// The effective params (defaults filled in) as JSON: what keys hash and the manifest shows.
+    fn params(&self) -> &Value;
+    /// See [`Op::joins_subjects`].
+    fn joins_subjects(&self) -> bool;
     /// See [`Op::layout`].
-    fn layout(
-        &self,
-        params: &Value,
-        inputs: &[InputLayout<'_>],
-    ) -> Result<Option<Layout>, StageError>;
+    fn layout(&self, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError>;
     /// See [`Op::run`].
-    fn run(
-        &self,
-        params: &Value,
-        inputs: &[Input<'_>],
-        notes: &mut Notes,
-    ) -> Result<LabelledArray, StageError>;
+    fn run(&self, inputs: &[Input<'_>], notes: &mut Notes) -> Result<LabelledArray, StageError>;
     /// See [`Op::run_owned`].
     fn run_owned(
         &self,
-        params: &Value,
         input: OwnedInput<'_>,
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError>;
-    /// See [`Op::part_axis`]; `None` also when the params do not parse.
-    fn part_axis(&self, params: &Value) -> Option<&'static str>;
+    /// See [`Op::part_axis`].
+    fn part_axis(&self) -> Option<&'static str>;
     /// See [`Op::run_part`].
     fn run_part(
         &self,
-        params: &Value,
         inputs: &[Input<'_>],
         part: std::ops::Range<usize>,
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError>;
-    /// See [`Op::slices_along`]; false also when the params do not parse.
-    fn slices_along(&self, params: &Value, axis: &str) -> bool;
-    /// See [`Op::prepare_slices_along`]; false also when the params do not parse.
-    fn prepare_slices_along(&self, params: &Value, axis: &str) -> bool;
-    /// See [`Op::prepares`]; false also when the params do not parse.
-    fn prepares(&self, params: &Value) -> bool;
+    /// See [`Op::slices_along`].
+    fn slices_along(&self, axis: &str) -> bool;
+    /// See [`Op::prepare_slices_along`].
+    fn prepare_slices_along(&self, axis: &str) -> bool;
+    /// See [`Op::prepares`].
+    fn prepares(&self) -> bool;
     /// See [`Op::prepare`].
-    fn prepare(
-        &self,
-        params: &Value,
-        input: &Input<'_>,
-    ) -> Option<Result<LabelledArray, StageError>>;
+    fn prepare(&self, input: &Input<'_>) -> Option<Result<LabelledArray, StageError>>;
     /// See [`Op::join`].
-    fn join(
-        &self,
-        params: &Value,
-        prepared: &[Input<'_>],
-        notes: &mut Notes,
-    ) -> Result<LabelledArray, StageError>;
+    fn join(&self, prepared: &[Input<'_>], notes: &mut Notes) -> Result<LabelledArray, StageError>;
 }
 
 /// Wraps an [`Op`] type as a [`DynOp`] value.
@@ -304,75 +304,74 @@ impl<O: Op> DynOp for Registered<O> {
     fn version(&self) -> u32 {
         O::VERSION
     }
-    fn resolve(&self, params: &Value) -> Result<Value, StageError> {
+    fn bind(&self, params: &Value) -> Result<Box<dyn BoundOp>, StageError> {
         let typed: O::Params = parse_params(params)?;
         O::check(&typed)?;
-        serde_json::to_value(&typed)
-            .map_err(|e| StageError::data(format!("cannot serialise params: {e}")))
+        let effective = serde_json::to_value(&typed)
+            .map_err(|e| StageError::data(format!("cannot serialise params: {e}")))?;
+        Ok(Box::new(Bound::<O> {
+            params: typed,
+            effective,
+        }))
     }
-    fn joins_subjects(&self, params: &Value) -> Result<bool, StageError> {
-        Ok(O::joins_subjects(&parse_params(params)?))
+}
+
+/// An [`Op`] with its typed params (and their JSON form, for keys and the manifest).
+struct Bound<O: Op> {
+    params: O::Params,
+    effective: Value,
+}
+
+impl<O: Op> BoundOp for Bound<O> {
+    fn name(&self) -> &'static str {
+        O::NAME
     }
-    fn layout(
-        &self,
-        params: &Value,
-        inputs: &[InputLayout<'_>],
-    ) -> Result<Option<Layout>, StageError> {
-        O::layout(&parse_params(params)?, inputs)
+    fn version(&self) -> u32 {
+        O::VERSION
     }
-    fn run(
-        &self,
-        params: &Value,
-        inputs: &[Input<'_>],
-        notes: &mut Notes,
-    ) -> Result<LabelledArray, StageError> {
-        O::run(&parse_params(params)?, inputs, notes)
+    fn params(&self) -> &Value {
+        &self.effective
+    }
+    fn joins_subjects(&self) -> bool {
+        O::joins_subjects(&self.params)
+    }
+    fn layout(&self, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
+        O::layout(&self.params, inputs)
+    }
+    fn run(&self, inputs: &[Input<'_>], notes: &mut Notes) -> Result<LabelledArray, StageError> {
+        O::run(&self.params, inputs, notes)
     }
     fn run_owned(
         &self,
-        params: &Value,
         input: OwnedInput<'_>,
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError> {
-        O::run_owned(&parse_params(params)?, input, notes)
+        O::run_owned(&self.params, input, notes)
     }
-    fn part_axis(&self, params: &Value) -> Option<&'static str> {
-        O::part_axis(&parse_params(params).ok()?)
+    fn part_axis(&self) -> Option<&'static str> {
+        O::part_axis(&self.params)
     }
     fn run_part(
         &self,
-        params: &Value,
         inputs: &[Input<'_>],
         part: std::ops::Range<usize>,
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError> {
-        O::run_part(&parse_params(params)?, inputs, part, notes)
+        O::run_part(&self.params, inputs, part, notes)
     }
-    fn slices_along(&self, params: &Value, axis: &str) -> bool {
-        parse_params(params).is_ok_and(|p| O::slices_along(&p, axis))
+    fn slices_along(&self, axis: &str) -> bool {
+        O::slices_along(&self.params, axis)
     }
-    fn prepare_slices_along(&self, params: &Value, axis: &str) -> bool {
-        parse_params(params).is_ok_and(|p| O::prepare_slices_along(&p, axis))
+    fn prepare_slices_along(&self, axis: &str) -> bool {
+        O::prepare_slices_along(&self.params, axis)
     }
-    fn prepares(&self, params: &Value) -> bool {
-        parse_params(params).is_ok_and(|p| O::prepares(&p))
+    fn prepares(&self) -> bool {
+        O::prepares(&self.params)
     }
-    fn prepare(
-        &self,
-        params: &Value,
-        input: &Input<'_>,
-    ) -> Option<Result<LabelledArray, StageError>> {
-        match parse_params(params) {
-            Ok(p) => O::prepare(&p, input),
-            Err(e) => Some(Err(e)),
-        }
+    fn prepare(&self, input: &Input<'_>) -> Option<Result<LabelledArray, StageError>> {
+        O::prepare(&self.params, input)
     }
-    fn join(
-        &self,
-        params: &Value,
-        prepared: &[Input<'_>],
-        notes: &mut Notes,
-    ) -> Result<LabelledArray, StageError> {
-        O::join(&parse_params(params)?, prepared, notes)
+    fn join(&self, prepared: &[Input<'_>], notes: &mut Notes) -> Result<LabelledArray, StageError> {
+        O::join(&self.params, prepared, notes)
     }
 }

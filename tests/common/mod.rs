@@ -15,6 +15,7 @@ use std::path::{Path, PathBuf};
 use ndarray::ArrayD;
 use phasewise::manifest::Manifest;
 use phasewise::plan::Plan;
+use phasewise::recipe::Recipe;
 use phasewise::session::{self, Env, Options, RunSummary};
 use phasewise::sources::RecordingReader;
 use phasewise::study::RunError;
@@ -317,13 +318,18 @@ impl Project {
 
     /// The plan with the test ops.
     pub fn plan(&self, options: &Options) -> Plan {
+        self.plan_and_recipes(options).0
+    }
+
+    /// The plan and every unit's recipe with the test ops (nothing runs).
+    pub fn plan_and_recipes(&self, options: &Options) -> (Plan, Vec<Recipe>) {
         let ops = ops();
         let env = Env {
             ops: &ops,
             reader: &RecordingReader,
         };
         match session::plan(&self.pipeline_path(), options, env) {
-            Ok((_, plan)) => plan,
+            Ok((_, plan, recipes)) => (plan, recipes),
             Err(e) => panic!("plan failed:\n{e}"),
         }
     }

@@ -26,7 +26,7 @@ use serde_json::json;
 use crate::array::{Coord, LabelledArray, Layout, Meta};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
-use crate::ops::baseline::{points_within, range_text};
+use crate::range::{points_within, range_text};
 use crate::table::coord_text;
 
 /// The `aggregate` op.

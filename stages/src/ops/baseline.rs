@@ -17,6 +17,7 @@ use serde::{Deserialize, Serialize};
 use crate::array::{LabelledArray, Layout, Values};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op, OwnedInput};
+use crate::ops::measures::Measure;
 use crate::table::{number_text, position_text};
 
 /// The `baseline` op.
@@ -58,32 +59,9 @@ impl BaselineMode {
     }
 }
 
-/// Measures (clustering `measure` coordinates) that can be negative by their definition, so a
-/// ratio in dB is meaningless: imaginary coherency is signed; the bias-corrected ppc and dwpli go
-/// below zero when there is no coupling (their expectation is then 0).
-const SIGNED_MEASURES: &[&str] = &["icoh", "ppc", "dwpli"];
-
-/// Coordinates typed by a user (`-0.2`) and those computed by an op (`-50 / 250`) may differ in
-/// the last bits; this slack keeps such points inside an inclusive range.
-fn slack(x: f64) -> f64 {
-    1e-9 * x.abs().max(1.0)
-}
-
-/// Indices of the coordinates inside the inclusive range `[lo, hi]`. Shared with `aggregate`,
-/// whose bands and windows are inclusive too (DESIGN §4).
-pub fn points_within(coords: &[f64], [lo, hi]: [f64; 2]) -> Vec<usize> {
-    coords
-        .iter()
-        .enumerate()
-        .filter(|(_, &x)| x >= lo - slack(lo) && x <= hi + slack(hi))
-        .map(|(i, _)| i)
-        .collect()
-}
-
-/// `[a, b]` as text for messages.
-pub fn range_text([lo, hi]: [f64; 2]) -> String {
-    format!("[{}, {}]", number_text(lo), number_text(hi))
-}
+// The inclusive-range rule has one home (`crate::range`); re-exported here for ops written
+// against this module.
+pub use crate::range::{points_within, range_text};
 
 /// What `layout` works out once and `run` reuses.
 struct Plan {
@@ -119,8 +97,7 @@ fn window_points(p: &BaselineParams, times: &[f64]) -> Result<Vec<usize>, StageE
     let (Some(&first), Some(&last)) = (times.first(), times.last()) else {
         return Err(StageError::data("the input's time axis is empty"));
     };
-    let [lo, hi] = p.window;
-    if lo < first - slack(first) || hi > last + slack(last) {
+    if !crate::range::within_axis(p.window, first, last) {
         return Err(StageError::param(
             "window",
             format!(
@@ -154,7 +131,7 @@ fn refuse_signed_measures(input: &Layout) -> Result<(), StageError> {
     };
     match measures
         .iter()
-        .find(|m| SIGNED_MEASURES.contains(&m.as_str()))
+        .find(|m| Measure::named(m).is_some_and(Measure::signed))
     {
         Some(m) => Err(StageError::param(
             "mode",

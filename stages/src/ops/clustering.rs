@@ -1214,7 +1214,10 @@ mod tests {
             json!({"measure": ALL, "across": "time", "window_cycles": 1.5}),
         ] {
             let (whole, _) = run_op::<Clustering>(params.clone(), &data).unwrap();
-            assert!(Registered::<Clustering>::new().slices_along(&params, "freq"));
+            assert!(Registered::<Clustering>::new()
+                .bind(&params)
+                .expect("params")
+                .slices_along("freq"));
             for part in [0..1, 1..4, 4..5] {
                 let (cut, _) = run_op::<Clustering>(
                     params.clone(),

@@ -39,7 +39,30 @@ impl Measure {
             Measure::Icoh => "icoh",
         }
     }
+
+    /// The measure called `name` (as in [`Measure::name`]).
+    pub fn named(name: &str) -> Option<Measure> {
+        ALL.into_iter().find(|m| m.name() == name)
+    }
+
+    /// True for a measure that can be negative by its definition, so that a ratio of it (a
+    /// baseline in dB) is meaningless and a map of it needs a scale centred on zero: imaginary
+    /// coherency is signed; the bias-corrected ppc and dwpli go below zero when there is no
+    /// coupling (their expectation is then 0).
+    pub fn signed(self) -> bool {
+        matches!(self, Measure::Ppc | Measure::Dwpli | Measure::Icoh)
+    }
 }
+
+/// Every measure, in the order the docs list them.
+pub const ALL: [Measure; 6] = [
+    Measure::Plv,
+    Measure::Ppc,
+    Measure::Pli,
+    Measure::Wpli,
+    Measure::Dwpli,
+    Measure::Icoh,
+];
 
 /// Running sums over a set of cross-spectra (trials, or the samples of a window).
 #[derive(Clone, Copy, Debug, Default, PartialEq)]

@@ -92,21 +92,20 @@ pub fn run_op<O: Op>(
     params: Value,
     input: &LabelledArray,
 ) -> Result<(LabelledArray, Notes), StageError> {
-    let op = Registered::<O>::new();
-    let params = op.resolve(&params)?;
+    let op = Registered::<O>::new().bind(&params)?;
     let layouts = [InputLayout {
         stage: "in",
         subject: Some("01"),
         layout: &input.layout,
     }];
-    let predicted = op.layout(&params, &layouts)?;
+    let predicted = op.layout(&layouts)?;
     let inputs = [Input {
         stage: "in",
         subject: Some("01"),
         array: input,
     }];
     let mut notes = Notes::default();
-    let out = op.run(&params, &inputs, &mut notes)?;
+    let out = op.run(&inputs, &mut notes)?;
     assert_eq!(
         predicted.as_ref(),
         Some(&out.layout),
@@ -130,10 +129,9 @@ pub fn assert_parts_match<O: Op>(
     input: &LabelledArray,
     parts: &[std::ops::Range<usize>],
 ) -> LabelledArray {
-    let op = Registered::<O>::new();
-    let params = op.resolve(&params).expect("params");
-    let (whole, _) = run_op::<O>(params.clone(), input).expect("whole run");
-    let axis = op.part_axis(&params).expect("the op computes parts");
+    let op = Registered::<O>::new().bind(&params).expect("params");
+    let (whole, _) = run_op::<O>(params, input).expect("whole run");
+    let axis = op.part_axis().expect("the op computes parts");
     let inputs = [Input {
         stage: "in",
         subject: Some("01"),
@@ -141,7 +139,7 @@ pub fn assert_parts_match<O: Op>(
     }];
     for part in parts {
         let got = op
-            .run_part(&params, &inputs, part.clone(), &mut Notes::default())
+            .run_part(&inputs, part.clone(), &mut Notes::default())
             .expect("part");
         let want = whole.slice(axis, part.clone()).expect("slice");
         assert_eq!(got.layout, want.layout, "layout of part {part:?}");

@@ -28,6 +28,7 @@ use crate::array::Values;
 use crate::array::{Coord, LabelledArray, Layout};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
+use crate::range;
 
 use super::morlet::{self, Bank, Keep};
 use super::params_de::map_only;
@@ -268,22 +269,21 @@ fn tolerance(fs: f64) -> f64 {
 }
 
 /// The kept samples of an epoch with time coordinates `times`.
-fn keep_for(params: &WaveletParams, times: &[f64], fs: f64) -> Result<Keep, StageError> {
+fn keep_for(params: &WaveletParams, times: &[f64]) -> Result<Keep, StageError> {
     let (Some(&first), Some(&last)) = (times.first(), times.last()) else {
         return Err(StageError::data("the input epochs have no time points"));
     };
-    let tol = tolerance(fs);
     let (start, end) = match params.crop {
         None => (0, times.len() - 1),
         Some([t0, t1]) => {
-            if t0 < first - tol || t1 > last + tol {
+            if !range::within_axis([t0, t1], first, last) {
                 return Err(StageError::param(
                     "crop",
                     format!("[{t0}, {t1}] s is outside the epoch, which spans [{first}, {last}] s"),
                 ));
             }
-            let start = times.iter().position(|&t| t >= t0 - tol);
-            let end = times.iter().rposition(|&t| t <= t1 + tol);
+            let start = times.iter().position(|&t| range::contains([t0, t1], t));
+            let end = times.iter().rposition(|&t| range::contains([t0, t1], t));
             match (start, end) {
                 (Some(s), Some(e)) if s <= e => (s, e),
                 _ => {
@@ -327,7 +327,7 @@ fn plan(params: &WaveletParams, input: &Layout) -> Result<Plan, StageError> {
     let freqs = params.frequencies();
     check_nyquist(params, &freqs, fs)?;
     let cycles = params.cycle_counts(freqs.len());
-    let keep = keep_for(params, times, fs)?;
+    let keep = keep_for(params, times)?;
     let kept_times = times[keep.start..]
         .iter()
         .step_by(keep.stride)

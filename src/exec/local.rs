@@ -1,4 +1,4 @@
-//! The executor: runs a [`Plan`] over a [`Study`].
+//! The local executor: runs a [`Plan`] over a [`Study`] on this machine, as the recipes say.
 //!
 //! Each subject's chain of units runs on its own rayon task (`--jobs N` sizes the pool), the
 //! units of a chain in topological order; group units run afterwards, in order. Results are
@@ -25,74 +25,37 @@ use crate::output::{self, ExportError, ExportFrom, ExportTarget};
 use crate::parts;
 use crate::pipeline::SOURCE;
 use crate::plan::{Plan, Reason, Status};
+use crate::recipe::{Decider, How, Known, Recipe};
 use crate::slabs;
 use crate::sources::Reader;
 use crate::store::{LoadError, Lookup, ObjectRecord};
 use crate::study::{RunError, Study, UnitFailure};
 
-/// What happened to one unit.
-#[derive(Clone, Debug)]
-pub struct UnitResult {
-    /// The object record (layout, hash, notes), shared with the store's memo.
-    pub record: Arc<ObjectRecord>,
-    /// True when the unit ran in this run.
-    pub computed: bool,
-    /// Seconds spent computing it in this run (0 when cached).
-    pub seconds: f64,
-    /// The exported NPY, relative to the output folder.
-    pub export: Option<String>,
-}
+use super::{Executor, Job, Outcome, UnitResult, Warning};
 
-/// A warning of this run, attributed to a unit.
-#[derive(Clone, Debug, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
-pub struct Warning {
-    /// The stage.
-    pub stage: String,
-    /// The subject, `None` for group units.
-    pub subject: Option<String>,
-    /// The warning.
-    pub message: String,
-}
+/// The executor of one machine: each subject's chain on a task of the current rayon pool (a
+/// run's [`super::pool`]), then the group units.
+pub struct Local;
 
-/// The result of a run.
-#[derive(Clone, Debug)]
-pub struct Outcome {
-    /// One result per unit of the study, in unit order.
-    pub results: Vec<UnitResult>,
-    /// Warnings of the executor itself (damaged objects recomputed), in unit order.
-    pub warnings: Vec<Warning>,
-}
-
-impl Outcome {
-    /// Number of units computed in this run.
-    pub fn computed(&self) -> usize {
-        self.results.iter().filter(|r| r.computed).count()
+impl Executor for Local {
+    fn execute(&self, job: Job<'_>) -> Result<Outcome, RunError> {
+        execute(job)
     }
 }
 
-/// The thread pool of a run: `jobs` threads (all cores when `None`). A run does all its work
-/// inside it ([`rayon::ThreadPool::install`]), its start (reading the cache's records) as well
-/// as [`execute`], so `--jobs` bounds the whole run.
-pub fn pool(jobs: Option<usize>) -> Result<rayon::ThreadPool, RunError> {
-    let mut builder = rayon::ThreadPoolBuilder::new();
-    if let Some(n) = jobs {
-        builder = builder.num_threads(n.max(1));
-    }
-    builder
-        .build()
-        .map_err(|e| RunError::Other(format!("cannot start {jobs:?} threads: {e}")))
-}
-
-/// Run the plan on the current thread pool (a run's [`pool`]), `bar` ticked per unit.
-pub fn execute(
-    study: &Study<'_>,
-    plan: &Plan,
-    reader: &dyn Reader,
-    bar: &ProgressBar,
-) -> Result<Outcome, RunError> {
+fn execute(job: Job<'_>) -> Result<Outcome, RunError> {
+    let Job {
+        study,
+        plan,
+        recipes,
+        reader,
+        bar,
+    } = job;
     let ctx = Ctx {
         study,
         plan,
+        planned: recipes,
+        decider: Decider::new(study, plan),
         reader,
         bar,
     };
@@ -114,24 +77,16 @@ pub fn execute(
     merged.finish(study)
 }
 
-/// The stage and subject an input comes from.
-fn origin<'s>(study: &'s Study<'_>, input: UnitInput) -> (&'s str, Option<&'s str>) {
-    match input {
-        UnitInput::Source(s) => (SOURCE, Some(study.sources[s].subject.as_str())),
-        UnitInput::Unit(i) => (study.stage_name(i), study.subject(i)),
-    }
-}
-
 /// The op inputs for `held` arrays; their carried warnings are appended to `warnings`.
 fn as_inputs<'h>(
-    study: &'h Study<'_>,
+    study: &'h Study,
     held: &'h [(UnitInput, Held)],
     warnings: &mut Vec<String>,
 ) -> Vec<Input<'h>> {
     held.iter()
         .map(|(input, (array, carried))| {
             warnings.extend(carried.iter().cloned());
-            let (stage, subject) = origin(study, *input);
+            let (stage, subject) = study.origin(*input);
             Input {
                 stage,
                 subject,
@@ -141,13 +96,16 @@ fn as_inputs<'h>(
         .collect()
 }
 
-fn units_where(study: &Study<'_>, keep: impl Fn(usize) -> bool) -> Vec<usize> {
+fn units_where(study: &Study, keep: impl Fn(usize) -> bool) -> Vec<usize> {
     (0..study.units.len()).filter(|&u| keep(u)).collect()
 }
 
-struct Ctx<'a, 'o> {
-    study: &'a Study<'o>,
+struct Ctx<'a> {
+    study: &'a Study,
     plan: &'a Plan,
+    /// The recipes decided before the run ([`crate::recipe::decide_all`]).
+    planned: &'a [Recipe],
+    decider: Decider<'a>,
     reader: &'a dyn Reader,
     bar: &'a ProgressBar,
 }
@@ -182,12 +140,15 @@ impl Merged {
             if entry.export.is_none() {
                 entry.export = r.export;
             }
+            if entry.recipe.is_none() {
+                entry.recipe = r.recipe;
+            }
         }
         self.warnings.extend(chain.warnings);
         self.failures.extend(chain.failure);
     }
 
-    fn finish(mut self, study: &Study<'_>) -> Result<Outcome, RunError> {
+    fn finish(mut self, study: &Study) -> Result<Outcome, RunError> {
         if !self.failures.is_empty() {
             return Err(RunError::Units(self.failures));
         }
@@ -216,17 +177,45 @@ impl Merged {
 /// An array in memory, with the notes of reading it (for sources).
 type Held = (Arc<LabelledArray>, Vec<String>);
 
-struct Worker<'c, 'a, 'o> {
-    ctx: &'c Ctx<'a, 'o>,
+struct Worker<'c, 'a> {
+    ctx: &'c Ctx<'a>,
     memory: HashMap<UnitInput, Held>,
     /// Inputs already prepared for a group unit (by the chains that produced them).
     prepared: HashMap<(usize, usize), Held>,
     /// Consumers left in this chain, per array held.
     uses_left: HashMap<UnitInput, usize>,
+    /// The recipes of this chain's units, decided as the chain reaches them.
+    recipes: HashMap<usize, Recipe>,
+    /// Layouts derived during the run for units whose layout depended on values.
+    derived: HashMap<usize, Arc<Layout>>,
     out: ChainResult,
 }
 
-impl Ctx<'_, '_> {
+/// What a chain knows when it decides a recipe: the layouts of the units it computed (their
+/// records), the planned ones, those derived since, and the recipes decided so far.
+struct ChainKnown<'w> {
+    study: &'w Study,
+    results: &'w BTreeMap<usize, UnitResult>,
+    derived: &'w HashMap<usize, Arc<Layout>>,
+    recipes: &'w HashMap<usize, Recipe>,
+}
+
+impl Known for ChainKnown<'_> {
+    fn layout(&self, u: usize) -> Option<&Layout> {
+        if let Some(r) = self.results.get(&u) {
+            return Some(&r.record.layout);
+        }
+        if let Some(l) = self.study.layouts.get(u).and_then(Option::as_ref) {
+            return Some(l.layout());
+        }
+        self.derived.get(&u).map(Arc::as_ref)
+    }
+    fn recipe(&self, u: usize) -> Option<&Recipe> {
+        self.recipes.get(&u)
+    }
+}
+
+impl Ctx<'_> {
     fn run_chain(&self, chain: &[usize]) -> ChainResult {
         self.run_chain_with(chain, HashMap::new())
     }
@@ -241,6 +230,8 @@ impl Ctx<'_, '_> {
             memory: HashMap::new(),
             prepared,
             uses_left: HashMap::new(),
+            recipes: HashMap::new(),
+            derived: HashMap::new(),
             out: ChainResult::default(),
         };
         for &u in chain {
@@ -249,62 +240,37 @@ impl Ctx<'_, '_> {
             }
         }
         for &u in chain {
-            if self.deferred(u, chain) {
+            let recipe = worker.decide(u);
+            worker.recipes.insert(u, recipe.clone());
+            if recipe.how == How::Deferred {
                 // Its consumers compute it when they run (in their own chain).
                 self.bar.inc(1);
                 continue;
             }
-            if let Err(failure) = worker.process(u) {
-                worker.out.failure = Some(failure);
-                break;
-            }
+            match worker.process(u, &recipe) {
+                Ok(ran) => worker.recipes.insert(u, ran),
+                Err(failure) => {
+                    worker.out.failure = Some(failure);
+                    break;
+                }
+            };
             worker.release_inputs(u);
             self.bar.inc(1);
+        }
+        for (u, result) in worker.out.results.iter_mut() {
+            if result.computed && result.recipe.is_none() {
+                // Computed on demand for a consumer in this chain (a deferred unit of another
+                // chain, or a damaged object recomputed): its planned recipe says which.
+                let recipe = worker.recipes.get(u).unwrap_or(&self.planned[*u]);
+                result.recipe = Some(recipe.clone());
+            }
         }
         worker.out
     }
 }
 
-impl Ctx<'_, '_> {
-    /// True for a unit whose values this chain would compute only to forget them: stale,
-    /// `cache: false`, not exported, and consumed only by stale units of other chains (a subject's
-    /// baseline feeding the group aggregate), which compute it themselves when they need it —
-    /// computing it here as well would do the work twice.
-    fn deferred(&self, u: usize, chain: &[usize]) -> bool {
-        let study = self.study;
-        let stage = &study.pipeline.stages[study.units[u].stage];
-        if stage.cache || stage.export || self.plan.units[u].status == Status::Fresh {
-            return false;
-        }
-        if self.prepared_for(u).next().is_some() {
-            // Prepared here for its group consumer instead (see `Worker::prepare_for_groups`).
-            return false;
-        }
-        let mut consumers = (0..study.units.len())
-            .filter(|&c| study.units[c].inputs.contains(&UnitInput::Unit(u)))
-            .peekable();
-        consumers.peek().is_some()
-            && consumers.all(|c| !chain.contains(&c) && self.plan.units[c].status != Status::Fresh)
-    }
-
-    /// The stale group units that consume subject unit `u` and prepare their inputs: `u` is
-    /// prepared for them in its own chain (in parallel with the other subjects), and only the
-    /// prepared (small) array is kept.
-    fn prepared_for(&self, u: usize) -> impl Iterator<Item = usize> + '_ {
-        let study = self.study;
-        let subject_unit = study.units[u].subject.is_some();
-        study.consumers[u].iter().copied().filter(move |&g| {
-            let stage = &study.pipeline.stages[study.units[g].stage];
-            subject_unit
-                && study.units[g].subject.is_none()
-                && self.plan.units[g].status != Status::Fresh
-                && stage.op.prepares(&stage.params)
-        })
-    }
-}
-
-impl Worker<'_, '_, '_> {
-    fn study(&self) -> &Study<'_> {
+impl Worker<'_, '_> {
+    fn study(&self) -> &Study {
         self.ctx.study
     }
 
@@ -329,35 +295,105 @@ impl Worker<'_, '_, '_> {
         failure
     }
 
-    /// Bring one unit up to date and export it if asked.
-    fn process(&mut self, u: usize) -> Result<(), UnitFailure> {
-        let status = &self.ctx.plan.units[u].status;
-        let stale = *status != Status::Fresh;
-        if let Status::Stale(Reason::Damaged { why }) = status {
+    /// Unit `u`'s recipe, decided on what this chain knows now: the layouts of the units it
+    /// computed and of those derived from them, so a recipe that was provisional in the plan
+    /// is settled here by the same rules.
+    fn decide(&mut self, u: usize) -> Recipe {
+        let study = self.ctx.study;
+        self.derive_layout(u);
+        for input in &study.units[u].inputs {
+            if let UnitInput::Unit(i) = *input {
+                self.derive_layout(i);
+            }
+        }
+        self.ctx.decider.decide(u, &self.known())
+    }
+
+    fn known(&self) -> ChainKnown<'_> {
+        ChainKnown {
+            study: self.ctx.study,
+            results: &self.out.results,
+            derived: &self.derived,
+            recipes: &self.recipes,
+        }
+    }
+
+    /// Derive unit `u`'s layout from its inputs' when it is not known yet (its op's `layout`,
+    /// as the plan does); nothing when it cannot be.
+    fn derive_layout(&mut self, u: usize) {
+        let study = self.ctx.study;
+        if self.known().layout(u).is_some() {
+            return;
+        }
+        for input in &study.units[u].inputs {
+            match *input {
+                UnitInput::Unit(i) => self.derive_layout(i),
+                // A unit reading a recording has a planned layout unless its op cannot say.
+                UnitInput::Source(_) => return,
+            }
+        }
+        let known = self.known();
+        let mut inputs = Vec::new();
+        for input in &study.units[u].inputs {
+            let UnitInput::Unit(i) = *input else {
+                return;
+            };
+            let Some(layout) = known.layout(i) else {
+                return;
+            };
+            let (stage, subject) = study.origin(*input);
+            inputs.push(InputLayout {
+                stage,
+                subject,
+                layout,
+            });
+        }
+        let stage = &study.pipeline.stages[study.units[u].stage];
+        if let Ok(Some(layout)) = stage.op.layout(&inputs) {
+            self.derived.insert(u, Arc::new(layout));
+        }
+    }
+
+    /// Bring one unit up to date as its recipe says, and export it if asked. Returns the recipe
+    /// it ran with: the one given, or `whole` when a slab run gave up.
+    fn process(&mut self, u: usize, recipe: &Recipe) -> Result<Recipe, UnitFailure> {
+        if let Status::Stale(Reason::Damaged { why }) = &self.ctx.plan.units[u].status {
             self.warn_damaged(u, why);
         }
+        let mut ran = recipe.clone();
         let mut prepared_here = false;
-        let array = if stale && parts::streams(self.study(), u) {
-            // Computed part by part inside its consumer's unit (see `parts`).
-            None
-        } else if stale && self.compute_slabs(u)? {
-            // Computed, stored and prepared box by box (see `slabs`).
-            prepared_here = true;
-            None
-        } else if stale {
-            self.compute_spooling(u)?
-        } else {
-            self.record_cached(u)?
+        let array = match &recipe.how {
+            How::Cached => self.record_cached(u)?,
+            // Computed part by part inside its consumer's unit (see `parts`), or by its
+            // consumers in other chains.
+            How::Streamed { .. } | How::Deferred => None,
+            How::Slabs { axes } => {
+                match self.compute_slabs(u, *axes, &recipe.prepared_for_units)? {
+                    Ok(()) => {
+                        prepared_here = true;
+                        None
+                    }
+                    Err(why) => {
+                        ran.how = How::Whole;
+                        ran.fallback = Some(format!("computed whole, not in slabs: {why}"));
+                        Some(self.compute(u)?)
+                    }
+                }
+            }
+            How::Parts {
+                producer, spooled, ..
+            } => self.compute_streamed((*producer, u), *spooled)?,
+            How::Whole | How::Joined => Some(self.compute(u)?),
         };
         let study = self.ctx.study;
         let stage = &study.pipeline.stages[study.units[u].stage];
-        let groups: Vec<usize> = self.ctx.prepared_for(u).collect();
+        let groups = &recipe.prepared_for_units;
         if !groups.is_empty() && !prepared_here {
             let whole = match &array {
                 Some(a) => a.clone(),
                 None => self.values(UnitInput::Unit(u))?.0,
             };
-            self.prepare_for_groups(u, &whole, &groups)?;
+            self.prepare_for_groups(u, &whole, groups)?;
         }
         if stage.export {
             self.export(u, array)?;
@@ -365,10 +401,10 @@ impl Worker<'_, '_, '_> {
         if !self.uses_left.contains_key(&UnitInput::Unit(u)) {
             self.memory.remove(&UnitInput::Unit(u));
         }
-        Ok(())
+        Ok(ran)
     }
 
-    /// Prepare unit `u`'s array for each group unit in `groups` ([`Ctx::prepared_for`]).
+    /// Prepare unit `u`'s array for each group unit in `groups` (its recipe's `prepared_for`).
     fn prepare_for_groups(
         &mut self,
         u: usize,
@@ -383,7 +419,7 @@ impl Worker<'_, '_, '_> {
         };
         for &g in groups {
             let stage = &study.pipeline.stages[study.units[g].stage];
-            if let Some(result) = stage.op.prepare(&stage.params, &input) {
+            if let Some(result) = stage.op.prepare(&input) {
                 let small = result.map_err(|e| self.op_failure(g, &e))?;
                 self.out
                     .prepared
@@ -404,6 +440,7 @@ impl Worker<'_, '_, '_> {
                         computed: false,
                         seconds: 0.0,
                         export: None,
+                        recipe: None,
                     },
                 );
                 Ok(None)
@@ -536,9 +573,9 @@ impl Worker<'_, '_, '_> {
     /// Run one unit's op and store the result (kept in memory while this chain still needs it).
     fn compute(&mut self, u: usize) -> Result<Arc<LabelledArray>, UnitFailure> {
         let study = self.ctx.study;
-        if let Some((p, axis)) = parts::streamed_input(study, u) {
+        if let Some((p, _)) = self.ctx.decider.streamed_input(u) {
             if !self.memory.contains_key(&UnitInput::Unit(p)) {
-                let whole = self.compute_streamed((p, u), axis, false)?;
+                let whole = self.compute_streamed((p, u), false)?;
                 return whole.ok_or_else(|| self.fail(u, "internal: a streamed unit was spooled"));
             }
         }
@@ -551,7 +588,7 @@ impl Worker<'_, '_, '_> {
         // An op that prepares its inputs gets each one prepared as soon as it is loaded (or
         // finds it prepared by the chain that produced it); the whole input is dropped before
         // the next one is loaded.
-        let prepared = stage.op.prepares(&stage.params);
+        let prepared = stage.op.prepares();
         let mut held = Vec::new();
         for &input in &unit.inputs {
             if let UnitInput::Unit(i) = input {
@@ -565,13 +602,13 @@ impl Worker<'_, '_, '_> {
                 held.push((input, (array, warnings)));
                 continue;
             }
-            let (stage_name, subject) = origin(study, input);
+            let (stage_name, subject) = study.origin(input);
             let whole = Input {
                 stage: stage_name,
                 subject,
                 array: array.as_ref(),
             };
-            let Some(result) = stage.op.prepare(&stage.params, &whole) else {
+            let Some(result) = stage.op.prepare(&whole) else {
                 return Err(self.fail(u, "internal: an input could not be prepared"));
             };
             let small = result.map_err(|e| self.op_failure(u, &e))?;
@@ -586,9 +623,9 @@ impl Worker<'_, '_, '_> {
         let inputs = as_inputs(study, &held, &mut notes.warnings);
         tracing::info!(stage = %stage.name, subject = ?study.subject(u), "computing");
         let array = if prepared {
-            stage.op.join(&stage.params, &inputs, &mut notes)
+            stage.op.join(&inputs, &mut notes)
         } else {
-            stage.op.run(&stage.params, &inputs, &mut notes)
+            stage.op.run(&inputs, &mut notes)
         }
         .map_err(|e| self.op_failure(u, &e))?;
         drop(inputs);
@@ -607,7 +644,7 @@ impl Worker<'_, '_, '_> {
             return Ok(None);
         };
         let ready = matches!(input, UnitInput::Unit(i) if self.prepared.contains_key(&(u, i)));
-        if ready || stage.op.prepares(&stage.params) || self.uses_left.get(&input) != Some(&1) {
+        if ready || stage.op.prepares() || self.uses_left.get(&input) != Some(&1) {
             return Ok(None);
         }
         let (array, carried) = self.values(input)?;
@@ -624,7 +661,7 @@ impl Worker<'_, '_, '_> {
         };
         let mut notes = Notes::default();
         notes.warnings.extend(carried);
-        let (stage_name, subject) = origin(study, input);
+        let (stage_name, subject) = study.origin(input);
         let owned = OwnedInput {
             stage: stage_name,
             subject,
@@ -633,7 +670,7 @@ impl Worker<'_, '_, '_> {
         tracing::info!(stage = %stage.name, subject = ?study.subject(u), "computing");
         let array = stage
             .op
-            .run_owned(&stage.params, owned, &mut notes)
+            .run_owned(owned, &mut notes)
             .map_err(|e| self.op_failure(u, &e))?;
         Ok(Some((array, notes)))
     }
@@ -676,84 +713,51 @@ impl Worker<'_, '_, '_> {
                 computed: true,
                 seconds,
                 export,
+                recipe: None,
             },
         );
     }
 
-    /// How unit `u` would run in slabs on an input of layout `input` ([`slabs`]): the number
-    /// of leading axes to cut along, its output layout and the group units it prepares for.
-    /// `None` unless its op and the `prepare` of every group unit it feeds slice along those
-    /// axes (at least one), the output keeps them, the output is not needed whole later in this
-    /// chain, and every consumer either is prepared here or can read the stored result.
-    fn slab_cut(&self, u: usize, input: &Layout) -> Option<(usize, Layout, Vec<usize>)> {
-        let study = self.ctx.study;
-        let unit = &study.units[u];
-        let stage = &study.pipeline.stages[unit.stage];
-        let [from @ UnitInput::Unit(_)] = unit.inputs[..] else {
-            return None;
-        };
-        let groups: Vec<usize> = self.ctx.prepared_for(u).collect();
-        let elsewhere = study.consumers[u].iter().any(|c| !groups.contains(c));
-        if self.uses_left.contains_key(&UnitInput::Unit(u))
-            || (elsewhere || stage.export) && !stage.cache
-        {
-            return None;
-        }
-        let group_stages: Vec<_> = groups
-            .iter()
-            .map(|&g| &study.pipeline.stages[study.units[g].stage])
-            .collect();
-        let k = input
-            .dims
-            .iter()
-            .take_while(|d| {
-                stage.op.slices_along(&stage.params, d)
-                    && group_stages
-                        .iter()
-                        .all(|g| g.op.prepare_slices_along(&g.params, d))
-            })
-            .count();
-        let (stage_name, subject) = origin(study, from);
-        let whole_input = [InputLayout {
-            stage: stage_name,
-            subject,
-            layout: input,
-        }];
-        let Ok(Some(out)) = stage.op.layout(&stage.params, &whole_input) else {
-            return None;
-        };
-        let keeps = out.dims.get(..k) == input.dims.get(..k) && out.shape() == input.shape();
-        (k > 0 && keeps).then_some((k, out, groups))
-    }
-
-    /// Unit `u` box by box from its stored input ([`slabs`]) when [`Worker::slab_cut`] allows
-    /// and the input is not in memory. True when done (result recorded, stored, prepared for
-    /// the groups); false when the unit is to be computed whole, which then also finds and
-    /// reports a damaged input.
-    fn compute_slabs(&mut self, u: usize) -> Result<bool, UnitFailure> {
+    /// Unit `u` box by box from its stored input ([`slabs`]), cut after `axes` leading axes,
+    /// each box prepared for the group units `groups` (its recipe). `Ok(())` when done (result
+    /// recorded, stored, prepared for the groups); `Err(why)` when the unit is to be computed
+    /// whole after all (the input in memory, gone or damaged, or a box the op noted something
+    /// about), which then also finds and reports a damaged input.
+    fn compute_slabs(
+        &mut self,
+        u: usize,
+        axes: usize,
+        groups: &[usize],
+    ) -> Result<Result<(), String>, UnitFailure> {
         let study = self.ctx.study;
         let unit = &study.units[u];
         let stage = &study.pipeline.stages[unit.stage];
         let [input @ UnitInput::Unit(i)] = unit.inputs[..] else {
-            return Ok(false);
+            return Ok(Err("it has not one input".into()));
         };
         if self.memory.contains_key(&input) {
-            return Ok(false);
+            return Ok(Err("its input is in memory".into()));
         }
         let Lookup::Present(record) = study.store.lookup(&study.keys[i]) else {
-            return Ok(false);
+            return Ok(Err("its input is not in the cache".into()));
         };
-        let Some((k, out_layout, groups)) = self.slab_cut(u, &record.layout) else {
-            return Ok(false);
+        let (stage_name, subject) = study.origin(input);
+        let whole_input = [InputLayout {
+            stage: stage_name,
+            subject,
+            layout: &record.layout,
+        }];
+        let Ok(Some(out_layout)) = stage.op.layout(&whole_input) else {
+            return Ok(Err("its layout is not known in advance".into()));
         };
         if !record.stored {
-            return Ok(false);
+            return Ok(Err("its input's values are not stored".into()));
         }
+        let k = axes;
         let group_stages: Vec<_> = groups
             .iter()
             .map(|&g| &study.pipeline.stages[study.units[g].stage])
             .collect();
-        let (stage_name, subject) = origin(study, input);
         let started = Instant::now();
         let element = if record.layout.complex { 8 } else { 4 };
         let boxes = slabs::boxes(&record.shape, k, element);
@@ -775,7 +779,7 @@ impl Worker<'_, '_, '_> {
                                 };
                                 let out = stage
                                     .op
-                                    .run_owned(&stage.params, owned, &mut notes)
+                                    .run_owned(owned, &mut notes)
                                     .map_err(|e| e.to_string())?;
                                 if notes != Notes::default() {
                                     return Err("the op noted something about one box".into());
@@ -796,7 +800,7 @@ impl Worker<'_, '_, '_> {
                                     array: &out,
                                 };
                                 for (g, list) in group_stages.iter().zip(&mut prepared) {
-                                    match g.op.prepare(&g.params, &input) {
+                                    match g.op.prepare(&input) {
                                         Some(Ok(small)) => list.push(small),
                                         Some(Err(e)) => return Err(e.to_string()),
                                         None => return Err("a group unit did not prepare".into()),
@@ -812,7 +816,7 @@ impl Worker<'_, '_, '_> {
             Ok(Ok(record)) => record,
             Ok(Err(why)) => {
                 tracing::debug!(stage = %stage.name, subject = ?study.subject(u), "computed whole: {why}");
-                return Ok(false);
+                return Ok(Err(why));
             }
             Err(e) => return Err(self.fail(u, e.to_string())),
         };
@@ -823,32 +827,17 @@ impl Worker<'_, '_, '_> {
                 .insert((g, u), (Arc::new(joined), Vec::new()));
         }
         self.record_result(u, record, started.elapsed().as_secs_f64());
-        Ok(true)
-    }
-
-    /// A stale unit that is not streamed into its consumer: its array, or `None` when it was
-    /// streamed from its producer into the cache without ever being whole in memory (see
-    /// [`Worker::compute_streamed`]).
-    fn compute_spooling(&mut self, u: usize) -> Result<Option<Arc<LabelledArray>>, UnitFailure> {
-        let study = self.ctx.study;
-        let stage = &study.pipeline.stages[study.units[u].stage];
-        match parts::streamed_input(study, u) {
-            Some((p, axis)) if stage.cache && !self.memory.contains_key(&UnitInput::Unit(p)) => {
-                self.compute_streamed((p, u), axis, true)
-            }
-            _ => self.compute(u).map(Some),
-        }
+        Ok(Ok(()))
     }
 
     /// Producer `p` and its consumer `u` part by part ([`parts`]): the producer gets a record
     /// without values, the consumer is stored. Returns the consumer's array, joined in memory;
     /// or, when `spool` allows, `u` is stored and every consumer of `u` could read it in slabs
-    /// ([`Worker::slab_cut`]), `None`: the parts went through a [`slabs::Spool`] into the store
+    /// ([`crate::recipe::Decider::slabs_can_read`]), `None`: the parts went through a [`slabs::Spool`] into the store
     /// and `u` was never whole in memory.
     fn compute_streamed(
         &mut self,
         (p, u): (usize, usize),
-        axis: &'static str,
         spool: bool,
     ) -> Result<Option<Arc<LabelledArray>>, UnitFailure> {
         let started = Instant::now();
@@ -860,9 +849,10 @@ impl Worker<'_, '_, '_> {
         let mut carried = Vec::new();
         let inputs = as_inputs(study, &held, &mut carried);
         let plan =
-            parts::plan(study, (p, u), axis, &inputs).map_err(|(at, e)| self.op_failure(at, &e))?;
+            parts::plan(study, (p, u), &inputs).map_err(|(at, e)| self.op_failure(at, &e))?;
         let spooled = match &plan.consumer_layout {
-            Some(out) if spool && self.slabs_can_read(u, out) => {
+            Some(out) if spool => {
+                let axis = plan.axis;
                 let k = out.axis(axis).map_err(|e| self.op_failure(u, &e))?;
                 let dir = study.store.root().join("objects");
                 let spool = slabs::Spool::new(&dir, out, k)
@@ -912,6 +902,7 @@ impl Worker<'_, '_, '_> {
                 computed: true,
                 seconds: streamed.producer_seconds,
                 export: None,
+                recipe: None,
             },
         );
         let notes = &streamed.consumer_notes;
@@ -932,16 +923,6 @@ impl Worker<'_, '_, '_> {
                 Ok(None)
             }
         }
-    }
-
-    /// True when every consumer of `u` (whose output has layout `out`) is fresh or could run
-    /// in slabs on it in this chain, so `u` need not be held whole in memory.
-    fn slabs_can_read(&self, u: usize, out: &Layout) -> bool {
-        let study = self.ctx.study;
-        study.consumers[u].iter().all(|&c| {
-            self.ctx.plan.units[c].status == Status::Fresh
-                || study.units[c].subject.is_some() && self.slab_cut(c, out).is_some()
-        })
     }
 
     /// Drop arrays whose last consumer in this chain has run.
