@@ -1,5 +1,6 @@
-//! Integration tests of the runner (issue 2, "What it must show", items 1–8; item 9 is the
-//! benchmark in benches/noop_rerun.rs). Each test builds a small study of real EDF+ files in a
+//! Integration tests of the runner: freshness, plan reasons, damage, interruption, threads,
+//! verify, subjects and the command line's errors (the no-op rerun's speed is the benchmark in
+//! benches/noop_rerun.rs). Each test builds a small study of real EDF+ files in a
 //! temporary folder and asserts from the manifest's computed/cached flags, the plan's reasons,
 //! the files on disk, or the command line's exit status and messages.
 
@@ -19,10 +20,10 @@ fn replace_in(path: &std::path::Path, from: &str, to: &str) {
     std::fs::write(path, text.replace(from, to)).unwrap();
 }
 
-// --- item 1 --------------------------------------------------------------------------------
+// --- a param change --------------------------------------------------------------------------
 
 #[test]
-fn item1_a_mid_chain_param_change_recomputes_that_stage_and_its_descendants_only() {
+fn a_mid_chain_param_change_recomputes_that_stage_and_its_descendants_only() {
     let p = Project::new(&["01", "02", "03"]);
     let file = p.pipeline(CHAIN);
     let first = p.run();
@@ -126,10 +127,10 @@ fn layouts_of_cached_units_come_from_their_records() {
     assert_eq!(headers, 2);
 }
 
-// --- item 2 --------------------------------------------------------------------------------
+// --- touched and changed recordings ----------------------------------------------------------
 
 #[test]
-fn item2_touch_recomputes_nothing_and_a_changed_file_only_its_subject_and_the_group() {
+fn touch_recomputes_nothing_and_a_changed_file_only_its_subject_and_the_group() {
     let p = Project::new(&["01", "02", "03"]);
     p.pipeline(CHAIN);
     p.run();
@@ -151,10 +152,10 @@ fn item2_touch_recomputes_nothing_and_a_changed_file_only_its_subject_and_the_gr
     assert_eq!(computed(&changed), labels(&["a/02", "b/02", "c/02", "g"]));
 }
 
-// --- item 3 --------------------------------------------------------------------------------
+// --- plan reasons ----------------------------------------------------------------------------
 
 #[test]
-fn item3_plan_names_the_changed_param_for_the_root_and_upstream_for_descendants() {
+fn plan_names_the_changed_param_for_the_root_and_upstream_for_descendants() {
     let p = Project::new(&["01", "02"]);
     let file = p.pipeline(CHAIN);
     p.run();
@@ -187,7 +188,7 @@ fn item3_plan_names_the_changed_param_for_the_root_and_upstream_for_descendants(
 }
 
 #[test]
-fn item3_plan_names_a_changed_input_file() {
+fn plan_names_a_changed_input_file() {
     let p = Project::new(&["01", "02"]);
     p.pipeline(CHAIN);
     p.run();
@@ -201,10 +202,10 @@ fn item3_plan_names_a_changed_input_file() {
     assert_eq!(lines["b/01"], "upstream a changed");
 }
 
-// --- item 4 --------------------------------------------------------------------------------
+// --- damaged objects -------------------------------------------------------------------------
 
 #[test]
-fn item4_a_truncated_object_is_recomputed() {
+fn a_truncated_object_is_recomputed() {
     let p = Project::new(&["01", "02"]);
     p.pipeline(CHAIN);
     let first = p.run();
@@ -221,7 +222,7 @@ fn item4_a_truncated_object_is_recomputed() {
 }
 
 #[test]
-fn item4_a_flipped_byte_is_detected_on_read_and_recomputed_with_a_warning() {
+fn a_flipped_byte_is_detected_on_read_and_recomputed_with_a_warning() {
     let p = Project::new(&["01", "02"]);
     let file = p.pipeline(CHAIN);
     let first = p.run();
@@ -256,7 +257,7 @@ fn item4_a_flipped_byte_is_detected_on_read_and_recomputed_with_a_warning() {
 }
 
 #[test]
-fn item4_a_deleted_sidecar_is_detected_and_recomputed() {
+fn a_deleted_sidecar_is_detected_and_recomputed() {
     let p = Project::new(&["01", "02"]);
     p.pipeline(CHAIN);
     let first = p.run();
@@ -274,47 +275,24 @@ fn item4_a_deleted_sidecar_is_detected_and_recomputed() {
     assert!(json.is_file());
 }
 
-// --- item 5 --------------------------------------------------------------------------------
-
-/// Child half of item 5: runs the chain with the store told to abort the process right after
-/// writing a temporary object file, before renaming it. Does nothing unless the parent test set
-/// `PHASEWISE_TEST_CHILD_PROJECT`.
-#[test]
-fn item5_child_process() {
-    let Some(dir) = std::env::var_os("PHASEWISE_TEST_CHILD_PROJECT") else {
-        return;
-    };
-    let file = std::path::Path::new(&dir).join("pipelines/p.yaml");
-    let ops = ops();
-    let env = phasewise::session::Env {
-        ops: &ops,
-        reader: &RecordingReader,
-    };
-    let jobs = Options {
-        jobs: Some(1),
-        ..Options::default()
-    };
-    let _ = phasewise::session::run(&file, &jobs, env);
-    panic!("the store should have aborted the process before this point");
-}
+// --- a killed run ----------------------------------------------------------------------------
 
 #[test]
-fn item5_a_run_killed_between_temp_write_and_rename_leaves_nothing_trusted() {
+fn a_run_killed_between_temp_write_and_rename_leaves_nothing_trusted() {
+    // The phasewise binary itself, told by the store to abort right after writing its first
+    // temporary object file and before renaming it.
     let p = Project::new(&["01", "02"]);
-    p.pipeline(CHAIN);
-    let status = Command::new(std::env::current_exe().unwrap())
-        .args([
-            "--exact",
-            "item5_child_process",
-            "--nocapture",
-            "--test-threads",
-            "1",
-        ])
-        .env("PHASEWISE_TEST_CHILD_PROJECT", p.dir())
+    let notch = "  line:\n    op: notch\n    input: reref\n    params: { freqs: [10], q: 30 }\n";
+    p.pipeline(&real_pipeline(&format!("{REREF}{notch}")));
+    let killed = Command::cargo_bin("phasewise")
+        .unwrap()
+        .current_dir(p.dir())
+        .args(["run", "pipelines/p.yaml", "--jobs", "1", "-q"])
+        .env_remove("PHASEWISE_CACHE")
         .env(phasewise::store::ABORT_BEFORE_RENAME, "1")
         .output()
         .unwrap();
-    assert!(!status.status.success(), "the child must die");
+    assert!(!killed.status.success(), "the run must die");
     let left = files_under(&p.cache().join("objects"));
     let names: Vec<&String> = left.keys().collect();
     assert!(
@@ -322,17 +300,28 @@ fn item5_a_run_killed_between_temp_write_and_rename_leaves_nothing_trusted() {
         "only temporary files may be left, found {names:?}"
     );
     // The next run trusts none of it: everything is computed, and the result is complete.
-    let plan = plan_lines(&p.plan(&Options::default()));
-    assert!(plan.values().all(|l| l == "not cached"), "{plan:#?}");
-    let run = p.run();
-    assert_eq!(cached(&run), Vec::<String>::new());
-    assert_eq!(computed(&run).len(), 7);
+    let plan = Command::cargo_bin("phasewise")
+        .unwrap()
+        .current_dir(p.dir())
+        .args(["plan", "pipelines/p.yaml", "--json"])
+        .env_remove("PHASEWISE_CACHE")
+        .output()
+        .unwrap();
+    let plan: serde_json::Value = serde_json::from_slice(&plan.stdout).unwrap();
+    for unit in plan["units"].as_array().unwrap() {
+        assert_eq!(unit["reasons"][0]["kind"], "not_cached", "{unit}");
+    }
+    let (code, stderr) = cli(p.dir(), &["run", "pipelines/p.yaml"]);
+    assert_eq!(code, 0, "{stderr}");
+    let manifest = phasewise::manifest::read(&p.dir().join("results/real/manifest.json")).unwrap();
+    assert_eq!(cached(&manifest), Vec::<String>::new());
+    assert_eq!(computed(&manifest).len(), 4);
 }
 
-// --- item 6 --------------------------------------------------------------------------------
+// --- threads ---------------------------------------------------------------------------------
 
 #[test]
-fn item6_one_and_two_threads_give_identical_outputs_and_manifests() {
+fn one_and_two_threads_give_identical_outputs_and_manifests() {
     let p = Project::new(&["01", "02", "03", "04"]);
     p.pipeline(CHAIN);
     let run_with = |jobs: usize| {
@@ -361,10 +350,10 @@ fn item6_one_and_two_threads_give_identical_outputs_and_manifests() {
     );
 }
 
-// --- item 7 --------------------------------------------------------------------------------
+// --- verify ----------------------------------------------------------------------------------
 
 #[test]
-fn item7_verify_reports_bit_identical_and_names_a_changed_input() {
+fn verify_reports_bit_identical_and_names_a_changed_input() {
     let p = Project::new(&["01", "02"]);
     p.pipeline(CHAIN);
     p.run();
@@ -456,7 +445,7 @@ fn run_subject_touches_only_that_subject_and_parts_merge_into_the_one_machine_ma
     assert_eq!(strip(&merged), strip(&single));
 }
 
-// --- item 8 --------------------------------------------------------------------------------
+// --- pipeline errors -------------------------------------------------------------------------
 
 /// `phasewise ARGS` in `dir`: exit status and stderr.
 fn cli(dir: &std::path::Path, args: &[&str]) -> (i32, String) {
@@ -498,7 +487,7 @@ fn expect_error(p: &Project, text: &str, args: &[&str], needles: &[&str]) {
 }
 
 #[test]
-fn item8_pipeline_errors_exit_2_with_file_line_and_field() {
+fn pipeline_errors_exit_2_with_file_line_and_field() {
     let p = Project::new(&["01"]);
     let f = "pipelines/p.yaml";
     // Malformed YAML.
@@ -586,7 +575,7 @@ fn item8_pipeline_errors_exit_2_with_file_line_and_field() {
 }
 
 #[test]
-fn item8_bad_overrides_and_data_dependent_params_exit_2() {
+fn bad_overrides_and_data_dependent_params_exit_2() {
     let p = Project::new(&["01"]);
     let f = "pipelines/p.yaml";
     let text = real_pipeline(&format!(
@@ -646,7 +635,7 @@ fn item8_bad_overrides_and_data_dependent_params_exit_2() {
 }
 
 #[test]
-fn item8_a_data_dependent_param_of_a_test_op_points_at_its_line() {
+fn a_data_dependent_param_of_a_test_op_points_at_its_line() {
     let p = Project::new(&["01", "02"]);
     p.pipeline(&CHAIN.replace(
         "params: { factor: 3 }",
@@ -798,9 +787,13 @@ fn the_manifest_has_the_core_shape_of_design_section_6() {
             "inputs",
             "outputs",
             "status",
-            "seconds"
+            "seconds",
+            "recipe"
         ])
     );
+    // DESIGN §7: a computed unit records how it ran (the first unit reads a recording whole).
+    assert_eq!(unit["recipe"]["run"], "whole");
+    assert_eq!(unit["recipe"]["stored"], true);
     assert_eq!(
         keys_of(&unit["outputs"][0]),
         labels(&["file", "blake3", "shape", "dtype"])
