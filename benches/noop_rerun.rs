@@ -1,13 +1,13 @@
 //! Issue 2, item 9: a no-op rerun (everything fresh) of 20 subjects × 8 stages.
 //!
 //! The study: 20 subjects with small EDF+ recordings and events sidecars, seven per-subject
-//! `scale` stages and one group `mean` (the test ops of tests/common), so 141 units. One run
+//! `scale` stages and one group `mean` (the test ops of tests/it/common.rs), so 141 units. One run
 //! fills the cache; then each timed rerun goes through everything a real rerun does — load and
 //! resolve the pipeline, find the recordings, check their stat records, read every header for
 //! the layout checks, look up all 141 objects, verify and re-export the exported one, write the
 //! manifest — and must compute nothing. Run with `cargo bench --bench noop_rerun`.
 
-#[path = "../tests/common/mod.rs"]
+#[path = "../tests/it/common.rs"]
 mod common;
 
 use std::time::{Duration, Instant};

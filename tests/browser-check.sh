@@ -8,7 +8,7 @@
 # The screenshot defaults to REPORT's folder (report-screenshot.png); keep it out of git
 # (results/ and tmp/ are ignored). To check the demo: `phasewise run pipelines/demo.yaml`
 # with `report: true` (or `phasewise report pipelines/demo.yaml`), then pass the report path.
-# Without a demo run, the synthetic report of tests/report.rs can be kept and checked:
+# Without a demo run, the synthetic report of tests/it/report.rs can be kept and checked:
 #   PHASEWISE_REPORT_KEEP=tmp/report cargo test --test report report_has_every_section
 #   tests/browser-check.sh tmp/report/report.html
 set -euo pipefail

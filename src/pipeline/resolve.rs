@@ -117,10 +117,10 @@ impl ResolvedPipeline {
 }
 
 /// Load, check and resolve a pipeline file with `--set` overrides against the given ops.
-pub fn load<'o>(
+pub fn load(
     file: &Path,
     overrides: &[String],
-    ops: &[&'o dyn DynOp],
+    ops: &[&dyn DynOp],
 ) -> Result<ResolvedPipeline, PipelineError> {
     let bytes = std::fs::read(file).map_err(|source| PipelineError::Read {
         path: file.to_path_buf(),
@@ -148,11 +148,11 @@ pub fn load<'o>(
     }
 }
 
-fn resolve<'o>(
+fn resolve(
     raw: &RawPipeline,
     bytes: &[u8],
     overrides: &[String],
-    ops: &[&'o dyn DynOp],
+    ops: &[&dyn DynOp],
     c: &mut Collector<'_>,
 ) -> Option<ResolvedPipeline> {
     let dir = raw.file.parent().map(Path::to_path_buf).unwrap_or_default();
@@ -271,9 +271,9 @@ struct Partial {
     inputs: Vec<Option<usize>>,
 }
 
-fn resolve_stages<'o>(
+fn resolve_stages(
     raw: &RawPipeline,
-    ops: &[&'o dyn DynOp],
+    ops: &[&dyn DynOp],
     c: &mut Collector<'_>,
 ) -> Option<Vec<ResolvedStage>> {
     let mut ok = true;

@@ -4,7 +4,7 @@
 //! temporary folder and asserts from the manifest's computed/cached flags, the plan's reasons,
 //! the files on disk, or the command line's exit status and messages.
 
-mod common;
+use crate::common;
 
 use std::collections::BTreeMap;
 use std::process::Command;

@@ -10,7 +10,7 @@
 //! - every object of the store: the rerun must recompute the whole chain, finding each input
 //!   damaged in turn.
 
-mod reliability;
+use crate::reliability;
 
 use std::fs;
 use std::path::{Path, PathBuf};

@@ -5,9 +5,9 @@
 //! that stays provisional until a layout that depends on the data is known.
 //!
 //! That a recipe gives the same bits as the whole computation is tested where each strategy
-//! lives (tests/streaming.rs, tests/slabs.rs, the ops' own parts and prepare tests).
+//! lives (tests/it/streaming.rs, tests/it/slabs.rs, the ops' own parts and prepare tests).
 
-mod common;
+use crate::common;
 
 use std::path::{Path, PathBuf};
 use std::process::Command;

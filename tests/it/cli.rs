@@ -5,13 +5,11 @@
 //! mean" for misspelt keys, params, ops, stages and measures; `new` on recordings without events;
 //! `--version`; shell completions; the license and citation files.
 
-mod reliability;
-
 use std::fs;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output, Stdio};
 
-use reliability::{
+use crate::reliability::{
     assert_success, corpus_dir, manifest, recording_path, run_cli, stderr_of, tiny_project,
     with_suffix, write_study, StudySpec,
 };
@@ -72,7 +70,7 @@ fn a_verbose_log_redirected_to_a_file_holds_no_escape_codes() {
     tiny_project(tmp.path(), &one_subject());
     let log = tmp.path().join("log.txt");
     // `phasewise -v run pipeline.yaml 2>log.txt`, with no NO_COLOR to help.
-    let status = Command::new(reliability::bin())
+    let status = Command::new(crate::reliability::bin())
         .args(["-v", "run", "pipeline.yaml"])
         .current_dir(tmp.path())
         .env_remove("NO_COLOR")
@@ -101,7 +99,7 @@ fn project_with_a_warning(dir: &Path) {
             seconds: 24,
         },
     );
-    let stem = dir.join("data").join(reliability::subject_stem(1));
+    let stem = dir.join("data").join(crate::reliability::subject_stem(1));
     let channels = with_suffix(&stem, "_channels.tsv");
     let text = fs::read_to_string(&channels).unwrap();
     let kept: Vec<&str> = text.lines().filter(|l| !l.starts_with("Oz")).collect();

@@ -10,7 +10,7 @@
 //! alone: no damaged object, no half-written or temporary file left behind. Each scenario is
 //! repeated a few times, as the interleaving differs from one try to the next.
 
-mod reliability;
+use crate::reliability;
 
 use std::fs;
 use std::path::Path;

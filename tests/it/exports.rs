@@ -3,7 +3,7 @@
 //! streams from an array's memory are byte for byte the NPY encoding of that array (numpy's NPY
 //! format 1.0 as its specification describes it, and the encoder the store used before).
 
-mod common;
+use crate::common;
 
 use std::collections::BTreeMap;
 use std::os::unix::fs::MetadataExt;

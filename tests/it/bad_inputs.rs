@@ -13,7 +13,7 @@
 //! Every failing case is collected, so one run lists them all. With `PHASEWISE_SHOW_CORPUS=1`
 //! (and `--nocapture`) every case's stderr is printed, to review the messages themselves.
 
-mod reliability;
+use crate::reliability;
 
 use std::fs;
 use std::path::{Path, PathBuf};

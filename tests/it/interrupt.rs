@@ -9,7 +9,7 @@
 //! completion and compares outputs and store with the reference. One subject keeps the test
 //! near a minute on a 2-core machine.
 
-mod reliability;
+use crate::reliability;
 
 use std::fs;
 use std::path::Path;
