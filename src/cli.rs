@@ -4,6 +4,7 @@
 //! the command line is wrong. `--cache DIR` (or `PHASEWISE_CACHE`) is accepted by every command
 //! that reads or writes the cache. Logs go to stderr through `tracing`; `-v`/`-q` set the level.
 
+use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 
 use anyhow::{anyhow, Context, Result};
@@ -13,15 +14,25 @@ use crate::plan::Status;
 use crate::session::{self, Env, Options};
 use crate::sources::RecordingReader;
 use crate::study::{subject_label, RunError};
+use crate::words::count;
+
+/// `--version`: the package version and the source revision it was built from (`-dirty` when the
+/// sources differed from that commit), the same revision the manifest records.
+const VERSION: &str = concat!(
+    env!("CARGO_PKG_VERSION"),
+    " (revision ",
+    env!("PHASEWISE_REVISION"),
+    ")"
+);
 
 /// Declarative, cached, reproducible pipelines for phase-synchronization connectivity studies.
 #[derive(Parser, Debug)]
-#[command(name = "phasewise", version, about)]
+#[command(name = "phasewise", version = VERSION, about)]
 pub struct Cli {
     /// More log output (repeat for more).
     #[arg(short, long, global = true, action = clap::ArgAction::Count)]
     pub verbose: u8,
-    /// Only errors.
+    /// Only errors: nothing is printed on success (warnings stay in the manifest).
     #[arg(short, long, global = true)]
     pub quiet: bool,
     /// The command.
@@ -104,6 +115,11 @@ pub enum Command {
         #[arg(long)]
         out: Option<PathBuf>,
     },
+    /// Print a completion script for a shell (e.g. `phasewise completions bash > phasewise.bash`).
+    Completions {
+        /// The shell.
+        shell: clap_complete::Shell,
+    },
 }
 
 /// A pipeline with its overrides, subject selection and cache.
@@ -159,9 +175,13 @@ fn init_logging(verbose: u8, quiet: bool) {
     };
     let filter = tracing_subscriber::EnvFilter::try_from_default_env()
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(level));
+    // Colours only on a terminal, so a log redirected to a file holds no escape codes, and not
+    // when NO_COLOR is set (https://no-color.org: any non-empty value).
+    let no_color = std::env::var_os("NO_COLOR").is_some_and(|v| !v.is_empty());
     let _ = tracing_subscriber::fmt()
         .with_env_filter(filter)
         .with_writer(std::io::stderr)
+        .with_ansi(std::io::stderr().is_terminal() && !no_color)
         .try_init();
 }
 
@@ -209,6 +229,11 @@ fn dispatch(cli: &Cli) -> Result<i32> {
             Ok(0)
         }
         Command::Report { pipeline, out } => report(pipeline, out.as_deref(), env),
+        Command::Completions { shell } => {
+            let mut command = <Cli as clap::CommandFactory>::command();
+            clap_complete::generate(*shell, &mut command, "phasewise", &mut std::io::stdout());
+            Ok(0)
+        }
     }
 }
 
@@ -217,11 +242,11 @@ fn run(target: &Target, jobs: Option<usize>, quiet: bool, env: Env<'_>) -> Resul
         session::run(&target.pipeline, &options(target, jobs, quiet), env).map_err(run_error)?;
     if !quiet {
         println!(
-            "{} units: {} computed, {} cached; {} outputs; manifest {}",
-            summary.computed + summary.cached,
+            "{}: {} computed, {} cached; {}; manifest {}",
+            count(summary.computed + summary.cached, "unit", "units"),
             summary.computed,
             summary.cached,
-            summary.outputs,
+            count(summary.outputs, "output", "outputs"),
             summary.manifest_path.display()
         );
     }
@@ -229,8 +254,9 @@ fn run(target: &Target, jobs: Option<usize>, quiet: bool, env: Env<'_>) -> Resul
         let output = summary.manifest_path.parent().unwrap_or(Path::new("."));
         write_report(output, None, quiet)?;
     }
-    if !summary.warnings.is_empty() {
-        eprintln!("{} warnings:", summary.warnings.len());
+    // `-q`: warnings stay in the manifest only.
+    if !quiet && !summary.warnings.is_empty() {
+        eprintln!("{}:", count(summary.warnings.len(), "warning", "warnings"));
         for w in &summary.warnings {
             eprintln!(
                 "  {} ({}): {}",
@@ -263,9 +289,9 @@ fn write_report(output: &Path, out: Option<&Path>, quiet: bool) -> Result<()> {
     })?;
     if !quiet {
         println!(
-            "report {}: {} figures (SVG and PNG in {})",
+            "report {}: {} (SVG and PNG in {})",
             summary.html.display(),
-            summary.figures.len(),
+            count(summary.figures.len(), "figure", "figures"),
             summary.figures_dir.display()
         );
     }
@@ -289,7 +315,11 @@ fn plan(target: &Target, json: bool, env: Env<'_>) -> Result<i32> {
             }
         }
     }
-    println!("{} of {} units stale", plan.stale_count(), plan.units.len());
+    println!(
+        "{} of {} stale",
+        plan.stale_count(),
+        count(plan.units.len(), "unit", "units")
+    );
     Ok(0)
 }
 
@@ -307,8 +337,11 @@ fn verify(manifest: &Path, env: Env<'_>) -> Result<i32> {
         match report.not_hashed() {
             0 => println!("verified: every output is bit-identical"),
             n => println!(
-                "verified: every hashed output is bit-identical; {n} streamed output(s) had no \
-                 hash and are checked through the outputs they feed"
+                "verified: every hashed output is bit-identical; {} had no hash and {} \
+                 checked through the outputs {}",
+                count(n, "streamed output", "streamed outputs"),
+                if n == 1 { "is" } else { "are" },
+                if n == 1 { "it feeds" } else { "they feed" }
             ),
         }
         Ok(0)
@@ -327,7 +360,7 @@ fn inspect(target: &Target, stage: &str, env: Env<'_>) -> Result<i32> {
     let subject = subject.map(|s| s.strip_prefix("sub-").unwrap_or(&s).to_string());
     let text = crate::inspect::inspect(&study, stage, subject.as_deref()).map_err(|e| {
         anyhow!(Exit {
-            code: 1,
+            code: e.exit_code(),
             message: e.to_string(),
         })
     })?;
@@ -359,10 +392,10 @@ fn prune(pipelines: &[PathBuf], dry_run: bool, cache: Option<&Path>, env: Env<'_
     let report = crate::prune::prune(&store, &keep, dry_run);
     let verb = if dry_run { "would remove" } else { "removed" };
     println!(
-        "{verb} {} files ({} bytes); {} objects kept",
-        report.removed.len(),
-        report.bytes,
-        report.kept
+        "{verb} {} ({}); {} kept",
+        count(report.removed.len(), "file", "files"),
+        count(report.bytes as usize, "byte", "bytes"),
+        count(report.kept, "object", "objects")
     );
     Ok(0)
 }

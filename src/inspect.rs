@@ -6,18 +6,32 @@ use std::fmt::Write as _;
 use phasewise_stages::{Coord, LabelledArray, Values};
 
 use crate::plan::Status;
+use crate::store::LoadError;
 use crate::study::{subject_label, Study};
+use crate::words::did_you_mean;
 
 /// Why a unit cannot be inspected.
 #[derive(Debug, thiserror::Error)]
 pub enum InspectError {
     /// No such stage.
-    #[error("no stage `{stage}`; the stages are: {known}")]
+    #[error("no stage `{stage}`; the stages are: {known}{hint}")]
     UnknownStage {
         /// The name given.
         stage: String,
         /// The stages.
         known: String,
+        /// `; did you mean …?`, or nothing.
+        hint: String,
+    },
+    /// No such subject.
+    #[error("--subject {subject}: no such subject; the subjects are: {known}{hint}")]
+    UnknownSubject {
+        /// The subject given.
+        subject: String,
+        /// The subjects.
+        known: String,
+        /// `; did you mean …?`, or nothing.
+        hint: String,
     },
     /// Several subjects and none chosen.
     #[error("stage {stage} runs once per subject; choose one with --subject (the subjects are: {known})")]
@@ -27,8 +41,18 @@ pub enum InspectError {
         /// The subjects.
         known: String,
     },
+    /// The stage keeps no values (`cache: false`).
+    #[error(
+        "{stage} is not stored: it has `cache: false`, so its values are computed for the stages \
+         that read them and then dropped; to inspect it, set `cache: true` on {stage} and run the \
+         pipeline again"
+    )]
+    NotStored {
+        /// The stage.
+        stage: String,
+    },
     /// The result is not cached (yet).
-    #[error("{stage} ({who}) is not cached: {reason}; run the pipeline first")]
+    #[error("{stage} ({who}) has no current result ({reason}); run the pipeline first")]
     NotCached {
         /// The stage.
         stage: String,
@@ -37,6 +61,18 @@ pub enum InspectError {
         /// Why.
         reason: String,
     },
+}
+
+impl InspectError {
+    /// The exit status (DESIGN §7): 2 for a mistake on the command line (a stage or subject that
+    /// does not exist, a missing `--subject`, a stage that is never stored), 1 when the result
+    /// is not there yet.
+    pub fn exit_code(&self) -> i32 {
+        match self {
+            InspectError::NotCached { .. } => 1,
+            _ => 2,
+        }
+    }
 }
 
 /// Describe the cached result of `stage` for `subject`.
@@ -50,20 +86,40 @@ pub fn inspect(study: &Study, stage: &str, subject: Option<&str>) -> Result<Stri
             .collect();
         return Err(InspectError::UnknownStage {
             stage: stage.into(),
+            hint: did_you_mean(stage, known.iter().copied()),
             known: known.join(", "),
         });
     };
-    let candidates: Vec<usize> = (0..study.units.len())
+    let subjects: Vec<&str> = study.sources.iter().map(|s| s.subject.as_str()).collect();
+    if let Some(subject) = subject.filter(|s| !subjects.contains(s)) {
+        return Err(InspectError::UnknownSubject {
+            subject: subject.into(),
+            hint: did_you_mean(subject, subjects.iter().copied()),
+            known: subjects.join(", "),
+        });
+    }
+    if !study.pipeline.stages[stage_index].cache {
+        return Err(InspectError::NotStored {
+            stage: stage.into(),
+        });
+    }
+    let units: Vec<usize> = (0..study.units.len())
         .filter(|&u| study.units[u].stage == stage_index)
-        .filter(|&u| subject.is_none() || study.subject(u) == subject)
         .collect();
+    // A group stage has one unit whatever subject is asked for.
+    let candidates: Vec<usize> = match units.as_slice() {
+        [one] if study.subject(*one).is_none() => vec![*one],
+        _ => units
+            .into_iter()
+            .filter(|&u| subject.is_none() || study.subject(u) == subject)
+            .collect(),
+    };
     let unit = match candidates.as_slice() {
         [one] => *one,
         _ => {
-            let known: Vec<&str> = study.sources.iter().map(|s| s.subject.as_str()).collect();
             return Err(InspectError::NeedSubject {
                 stage: stage.into(),
-                known: known.join(", "),
+                known: subjects.join(", "),
             });
         }
     };
@@ -77,10 +133,12 @@ pub fn inspect(study: &Study, stage: &str, subject: Option<&str>) -> Result<Stri
     if let Status::Stale(reason) = &plan.units[unit].status {
         return Err(not_cached(reason.to_string()));
     }
-    let (array, _) = study
-        .store
-        .load(&study.keys[unit])
-        .map_err(|e| not_cached(format!("{e:?}")))?;
+    let (array, _) = study.store.load(&study.keys[unit]).map_err(|e| {
+        not_cached(match e {
+            LoadError::Unavailable => "nothing is cached under its key".into(),
+            LoadError::Damaged(why) => format!("its cached object is damaged: {why}"),
+        })
+    })?;
     Ok(describe(stage, &who, &study.keys[unit], &array))
 }
 

@@ -49,3 +49,4 @@ pub mod sources;
 pub mod store;
 pub mod study;
 pub mod verify;
+pub mod words;

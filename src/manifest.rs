@@ -69,7 +69,8 @@ pub struct Tool {
     pub name: String,
     /// The crate version.
     pub version: String,
-    /// The source revision (`git rev-parse HEAD` at build time, or `unknown`).
+    /// The source revision (`git rev-parse HEAD` at build time, `-dirty` appended when the
+    /// sources differed from it, or `unknown`).
     pub revision: String,
 }
 
@@ -151,14 +152,16 @@ pub struct OutputRecord {
     pub dtype: String,
 }
 
+/// The source revision of this build, as `build.rs` recorded it: the commit, with `-dirty` when
+/// the sources differed from it, or `unknown` outside a git checkout. `--version` shows the same.
+pub const REVISION: &str = env!("PHASEWISE_REVISION");
+
 /// The tool record of this build.
 pub fn this_tool() -> Tool {
     Tool {
         name: env!("CARGO_PKG_NAME").into(),
         version: env!("CARGO_PKG_VERSION").into(),
-        revision: option_env!("PHASEWISE_REVISION")
-            .unwrap_or("unknown")
-            .into(),
+        revision: REVISION.into(),
     }
 }
 

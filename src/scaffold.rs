@@ -13,9 +13,13 @@ use std::fmt::Write as _;
 use std::path::{Component, Path, PathBuf};
 
 use anyhow::{bail, Context, Result};
-use phasewise_stages::io::{read_recording_layout, EventSource, Format};
+use phasewise_stages::io::{
+    read_recording_layout, read_recording_layout_without_events, sidecar_paths, EventSource, Format,
+};
 use phasewise_stages::ops::morlet;
 use phasewise_stages::Layout;
+
+use crate::words::count;
 
 /// Recording patterns tried in order, relative to the dataset folder (BIDS layouts first).
 /// BrainVision recordings are found by their header (`.vhdr`), which names the data and marker
@@ -45,7 +49,9 @@ pub struct DatasetSummary {
     pub recordings: Vec<PathBuf>,
     /// Their format (from the pattern's extension).
     pub format: Option<Format>,
-    /// Where events come from (`sidecar` when every recording has an events file).
+    /// Where events come from: `sidecar` when every recording has an events file, else
+    /// `annotations` when every recording has its own events (EDF+ annotations, BrainVision
+    /// markers) and some hold events; `None` when the dataset has no events the runner can read.
     pub events: Option<EventSource>,
     /// Sampling rates seen, with how many recordings have each (Hz, as text for exact keys).
     pub rates: BTreeMap<String, usize>,
@@ -68,6 +74,9 @@ pub struct DatasetSummary {
 /// overwritten.
 pub fn run(data_dir: &Path, out: Option<&Path>) -> Result<()> {
     let summary = survey(data_dir)?;
+    if summary.events.is_none() {
+        eprintln!("warning: {NO_EVENTS}");
+    }
     let Some(out) = out else {
         let here = absolute(Path::new("."))?;
         let data_rel = relative_to(&absolute(data_dir)?, &here);
@@ -101,8 +110,8 @@ pub fn survey(data_dir: &Path) -> Result<DatasetSummary> {
     }
     let mut summary = DatasetSummary::default();
     for pattern in PATTERNS {
-        let full = data_dir.join(pattern);
-        let found: Vec<PathBuf> = glob::glob(&full.to_string_lossy())
+        let full = crate::sources::glob_under(data_dir, pattern);
+        let found: Vec<PathBuf> = glob::glob(&full)
             .with_context(|| format!("bad pattern {pattern}"))?
             .filter_map(|p| p.ok())
             .collect();
@@ -120,26 +129,49 @@ pub fn survey(data_dir: &Path) -> Result<DatasetSummary> {
             PATTERNS.join(", ")
         );
     }
-    let with_sidecar = summary
-        .recordings
-        .iter()
-        .all(|p| read_recording_layout(p, EventSource::Sidecar).is_ok());
-    let source = if with_sidecar {
-        EventSource::Sidecar
-    } else {
-        EventSource::Annotations
-    };
-    summary.events = Some(source);
+    summary.events = event_source(&summary.recordings);
     let mut intervals = Vec::new();
     for path in summary.recordings.clone() {
-        let layout = read_recording_layout(&path, source)
-            .map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))?;
+        let layout = match summary.events {
+            Some(source) => read_recording_layout(&path, source),
+            None => read_recording_layout_without_events(&path),
+        };
+        // The reader's messages name the file already.
+        let layout = layout.map_err(anyhow::Error::new)?;
         add_recording(&mut summary, &path, &layout, &mut intervals);
     }
     intervals.sort_by(f64::total_cmp);
     summary.min_interval = intervals.first().copied();
     summary.median_interval = intervals.get(intervals.len() / 2).copied();
     Ok(summary)
+}
+
+/// What `new` says, on stderr and in the written file, when the dataset has no events.
+pub const NO_EVENTS: &str = "no events found: no recording has an events sidecar \
+(`<recording stem>_events.tsv` with columns onset, duration, trial_type, in seconds) and the files \
+hold no EDF+ annotations. Add an events sidecar beside every recording (the pipeline reads them \
+with `events: sidecar`), or use EDF+/BDF+ files whose annotations mark the events and set \
+`events: annotations`; then list the conditions in the epoch stage";
+
+/// Where the events of every recording can be read from, if anywhere: a sidecar beside every
+/// recording, else annotations in every file with at least one event among them.
+fn event_source(recordings: &[PathBuf]) -> Option<EventSource> {
+    let has_sidecar = |p: &PathBuf| {
+        sidecar_paths(p)
+            .iter()
+            .any(|s| s.to_string_lossy().ends_with("_events.tsv"))
+    };
+    if recordings.iter().all(has_sidecar) {
+        return Some(EventSource::Sidecar);
+    }
+    let mut any_event = false;
+    for path in recordings {
+        match read_recording_layout(path, EventSource::Annotations) {
+            Ok(layout) => any_event |= layout.meta.events.iter().flatten().next().is_some(),
+            Err(_) => return None,
+        }
+    }
+    any_event.then_some(EventSource::Annotations)
 }
 
 fn add_recording(s: &mut DatasetSummary, path: &Path, layout: &Layout, intervals: &mut Vec<f64>) {
@@ -210,8 +242,12 @@ pub fn summary_text(s: &DatasetSummary) -> String {
     }
     let source = match (s.events, s.format) {
         (Some(EventSource::Sidecar), _) => "events.tsv sidecars",
-        (_, Some(Format::BrainVision)) => "BrainVision markers",
-        _ => "EDF+ annotations",
+        (Some(EventSource::Annotations), Some(Format::BrainVision)) => "BrainVision markers",
+        (Some(EventSource::Annotations), _) => "EDF+ annotations",
+        (None, _) => {
+            let _ = writeln!(t, "events: none found");
+            return t;
+        }
     };
     let _ = writeln!(t, "events (from {source}):");
     for (label, n) in &s.labels {
@@ -319,10 +355,11 @@ pub fn pipeline_text(s: &DatasetSummary, data_rel: &Path, data_dir: &Path) -> Re
         .iter()
         .any(|(_, t)| t.eq_ignore_ascii_case("EEG"));
     let events = match s.events {
-        Some(EventSource::Sidecar) => "sidecar",
-        _ => "annotations",
+        Some(EventSource::Annotations) => "annotations",
+        _ => "sidecar",
     };
-    let recordings = data_rel.join(&s.pattern);
+    // The folder is escaped, so that a dataset under `study [pilot]/` is matched literally.
+    let recordings = crate::sources::glob_under(data_rel, &s.pattern);
     let mut t = String::new();
     let _ = writeln!(
         t,
@@ -331,19 +368,27 @@ pub fn pipeline_text(s: &DatasetSummary, data_rel: &Path, data_dir: &Path) -> Re
     );
     let _ = writeln!(
         t,
-        "# {} recordings at {rate} Hz. Read every comment; confirm the lines marked CONFIRM.",
-        s.recordings.len()
+        "# {} at {rate} Hz. Read every comment; confirm the lines marked CONFIRM.",
+        count(s.recordings.len(), "recording", "recordings")
     );
     let _ = writeln!(
         t,
-        "# Research software: results are not a clinical measurement.\n"
+        "# Research software: results are not a clinical measurement."
     );
+    if s.events.is_none() {
+        let _ = writeln!(
+            t,
+            "#\n{}",
+            comment_lines(&format!("ADD EVENTS before running: {NO_EVENTS}"))
+        );
+    }
+    let _ = writeln!(t);
     let _ = writeln!(t, "name: {}", quoted(&name));
     let _ = writeln!(t, "data:");
     let _ = writeln!(
         t,
         "  recordings: {}   # relative to this file",
-        quoted(&recordings.to_string_lossy())
+        quoted(&recordings)
     );
     let _ = writeln!(t, "  events: {events}   # sidecar = *_events.tsv beside each recording; annotations = the recording's own (EDF+ annotations, BrainVision markers)");
     let _ = writeln!(
@@ -374,13 +419,22 @@ pub fn pipeline_text(s: &DatasetSummary, data_rel: &Path, data_dir: &Path) -> Re
     let _ = writeln!(t, "    input: line");
     let _ = writeln!(t, "    params:");
     let _ = writeln!(t, "      # one condition per event label found; merge labels into one condition by listing them together");
-    let _ = writeln!(t, "      conditions:");
+    if s.labels.is_empty() {
+        let _ = writeln!(
+            t,
+            "      # ADD one condition per event label once the events exist, e.g. `target: [target]`"
+        );
+        let _ = writeln!(t, "      conditions: {{}}");
+    } else {
+        let _ = writeln!(t, "      conditions:");
+    }
     for (label, n) in &s.labels {
         let _ = writeln!(
             t,
-            "        {}: [{}]   # {n} events",
+            "        {}: [{}]   # {}",
             quoted(&condition_name(label)),
-            quoted(label)
+            quoted(label),
+            count(*n, "event", "events")
         );
     }
     let _ = writeln!(t, "      # seconds around each event, buffer included; the shortest time between events is {min_interval:.2} s");
@@ -462,6 +516,22 @@ pub fn pipeline_text(s: &DatasetSummary, data_rel: &Path, data_dir: &Path) -> Re
     );
     let _ = writeln!(t, "    export: true");
     Ok(t)
+}
+
+/// `text` as YAML comment lines of at most about 90 characters.
+fn comment_lines(text: &str) -> String {
+    let mut out = String::from("#");
+    let mut width = 1;
+    for word in text.split_whitespace() {
+        if width + 1 + word.len() > 90 {
+            out.push_str("\n#  ");
+            width = 3;
+        }
+        out.push(' ');
+        out.push_str(word);
+        width += 1 + word.len();
+    }
+    out
 }
 
 fn absolute(p: &Path) -> Result<PathBuf> {

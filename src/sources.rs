@@ -154,12 +154,7 @@ pub fn discover(
     pattern: &str,
     reader: &dyn Reader,
 ) -> Result<Vec<Source>, SourceError> {
-    let full = if Path::new(pattern).is_absolute() {
-        PathBuf::from(pattern)
-    } else {
-        dir.join(pattern)
-    };
-    let full_text = full.to_string_lossy().into_owned();
+    let full_text = glob_under(dir, pattern);
     let paths = glob::glob(&full_text).map_err(|e| SourceError::BadPattern {
         pattern: pattern.to_string(),
         message: e.msg.to_string(),
@@ -183,6 +178,17 @@ pub fn discover(
     sources.sort_by(|a, b| a.subject.cmp(&b.subject).then(a.path.cmp(&b.path)));
     check_unique(&sources)?;
     Ok(sources)
+}
+
+/// `pattern` joined to `dir` as one glob. The folder is escaped, so that a study kept in a folder
+/// whose name holds glob characters (`study [pilot]/`) is matched literally; an absolute pattern
+/// is taken as it is.
+pub fn glob_under(dir: &Path, pattern: &str) -> String {
+    if Path::new(pattern).is_absolute() || dir.as_os_str().is_empty() {
+        return pattern.to_string();
+    }
+    let dir = glob::Pattern::escape(&dir.to_string_lossy());
+    Path::new(&dir).join(pattern).to_string_lossy().into_owned()
 }
 
 fn source_for(path: PathBuf, reader: &dyn Reader) -> Result<Source, SourceError> {

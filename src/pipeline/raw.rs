@@ -9,6 +9,7 @@ use std::path::{Path, PathBuf};
 
 use super::yaml::{self, file_position, Node, NodeKind, Origin};
 use super::Diagnostic;
+use crate::words::did_you_mean;
 
 /// Keys allowed at the top of a pipeline file.
 pub const TOP_KEYS: &[&str] = &["name", "data", "output", "stages", "report"];
@@ -355,8 +356,9 @@ fn unknown_key(key: &Node, name: &str, prefix: &str, allowed: &[&str], c: &mut C
         key.origin,
         format!("{prefix}{name}"),
         format!(
-            "unknown key `{name}`, expected one of: {}",
-            allowed.join(", ")
+            "unknown key `{name}`, expected one of: {}{}",
+            allowed.join(", "),
+            did_you_mean(name, allowed.iter().copied())
         ),
     );
 }
@@ -370,9 +372,10 @@ pub fn apply_overrides(raw: &mut RawPipeline, overrides: &[Override], c: &mut Co
                 Origin::Override(i),
                 o.stage.clone(),
                 format!(
-                    "no stage `{}`; the stages are: {}",
+                    "no stage `{}`; the stages are: {}{}",
                     o.stage,
-                    names.join(", ")
+                    names.join(", "),
+                    did_you_mean(&o.stage, names.iter().copied())
                 ),
             );
             continue;

@@ -20,6 +20,7 @@ use super::raw::{self, Collector, Override, RawPipeline, RawStage};
 use super::yaml::{self, split_path, Node, NodeKind, Origin, PathStep};
 use super::{Diagnostic, PipelineError};
 use crate::graph::StageGraph;
+use crate::words::did_you_mean;
 
 /// The name by which stages refer to the data source.
 pub const SOURCE: &str = "recordings";
@@ -400,9 +401,10 @@ fn find_op<'o>(
             op.origin,
             field,
             format!(
-                "unknown op `{}`; the ops are: {}",
+                "unknown op `{}`; the ops are: {}{}",
                 op.value,
-                names.join(", ")
+                names.join(", "),
+                did_you_mean(&op.value, names.iter().copied())
             ),
         );
     }
@@ -434,6 +436,7 @@ fn report_stage_error(c: &mut Collector<'_>, stage: &str, params: &Node, error: 
             }
             let node = deepest_key_or_value(params, &steps);
             let message = with_found_value(message, params.at(&split_path(field)));
+            let message = with_suggestion(message);
             let dotted = if field.is_empty() {
                 format!("stages.{stage}.params")
             } else {
@@ -482,6 +485,31 @@ fn unknown_field(message: &str) -> Option<String> {
     Some(rest[..rest.find('`')?].to_string())
 }
 
+/// serde's message for an unknown field or enum variant ("unknown field `x`, expected one of
+/// `a`, `b`"; "unknown variant `x`, expected `a` or `b`") with the closest expected name offered.
+fn with_suggestion(message: String) -> String {
+    let Some((_, rest)) = ["unknown field `", "unknown variant `"]
+        .iter()
+        .find_map(|prefix| message.split_once(prefix))
+    else {
+        return message;
+    };
+    let Some((found, expected)) = rest.split_once('`') else {
+        return message;
+    };
+    // serde quotes each expected name in backticks: every other piece is one (up to the value
+    // `with_found_value` may have appended).
+    let expected = expected.split_once(", expected").map_or("", |(_, e)| e);
+    let expected = expected.split(" (found `").next().unwrap_or_default();
+    let names = expected.split('`').skip(1).step_by(2);
+    let hint = did_you_mean(found, names);
+    if hint.is_empty() {
+        message
+    } else {
+        format!("{message}{hint}")
+    }
+}
+
 fn resolve_inputs(
     stage: &RawStage,
     raw: &RawPipeline,
@@ -511,9 +539,10 @@ fn resolve_inputs(
                 input.origin,
                 field.clone(),
                 format!(
-                    "unknown stage `{}`; expected one of: {}",
+                    "unknown stage `{}`; expected one of: {}{}",
                     input.value,
-                    names.join(", ")
+                    names.join(", "),
+                    did_you_mean(&input.value, names.iter().copied())
                 ),
             );
             ok = false;
@@ -564,5 +593,34 @@ mod tests {
             Some("cycels")
         );
         assert_eq!(unknown_field("invalid type"), None);
+    }
+
+    #[test]
+    fn serde_messages_get_the_closest_expected_name() {
+        // The message forms of serde's derive (`unknown_field`, `unknown_variant` in serde::de).
+        assert_eq!(
+            with_suggestion("unknown field `cycels`, expected one of `freqs`, `cycles`".into()),
+            "unknown field `cycels`, expected one of `freqs`, `cycles`; did you mean `cycles`?"
+        );
+        assert_eq!(
+            with_suggestion("unknown variant `wpl`, expected `plv` or `wpli`".into()),
+            "unknown variant `wpl`, expected `plv` or `wpli`; did you mean `wpli`?"
+        );
+        assert_eq!(
+            with_suggestion("unknown field `cylces`, expected `cycles` (found `6`)".into()),
+            "unknown field `cylces`, expected `cycles` (found `6`); did you mean `cycles`?"
+        );
+        assert_eq!(
+            with_suggestion("unknown field `x`, expected `freqs` (found `y`)".into()),
+            "unknown field `x`, expected `freqs` (found `y`)"
+        );
+        assert_eq!(
+            with_suggestion("unknown field `zzzzzz`, expected `freqs`".into()),
+            "unknown field `zzzzzz`, expected `freqs`"
+        );
+        assert_eq!(
+            with_suggestion("invalid type: string".into()),
+            "invalid type: string"
+        );
     }
 }

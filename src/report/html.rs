@@ -445,7 +445,12 @@ fn tables(list: &[Table], max_rows: usize) -> String {
             Some(o) => format!("{o}/{name}"),
             None => name,
         };
-        let _ = write!(out, "<h3>{} ({} rows)</h3>", esc(&shown), t.rows.len());
+        let _ = write!(
+            out,
+            "<h3>{} ({})</h3>",
+            esc(&shown),
+            crate::words::count(t.rows.len(), "row", "rows")
+        );
         let (header, rows) = match group_rows(t) {
             Some(p) => {
                 out.push_str(

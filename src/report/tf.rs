@@ -41,7 +41,10 @@ impl Loaded {
     pub fn who(&self) -> String {
         match self.owner.as_str() {
             "group" => "group".to_string(),
-            MEAN_OWNER => format!("mean of {} subjects", self.averaged.len()),
+            MEAN_OWNER => format!(
+                "mean of {}",
+                crate::words::count(self.averaged.len(), "subject", "subjects")
+            ),
             s => format!("subject {s}"),
         }
     }

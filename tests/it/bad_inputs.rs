@@ -177,6 +177,11 @@ fn check_case(dir: &Path) -> Result<(), String> {
     if has_panic_text(&err) {
         problems.push("stderr holds panic text".into());
     }
+    for line in err.lines() {
+        if let Some(file) = named_twice(line) {
+            problems.push(format!("a line names {file} twice"));
+        }
+    }
     for wanted in expected_substrings(&case, work.path())? {
         if !err.contains(&wanted) {
             problems.push(format!("stderr lacks {wanted:?}"));
@@ -192,6 +197,34 @@ fn check_case(dir: &Path) -> Result<(), String> {
         args.join(" "),
         err.trim_end().replace('\n', "\n          ")
     ))
+}
+
+/// A file name (`*.edf`, `*.bdf`, `*.tsv`, `*.yaml`) that `line` holds more than once, as in
+/// "a.edf: a.edf: …" when an error is wrapped with the path it already names.
+fn named_twice(line: &str) -> Option<String> {
+    let names: Vec<&str> = line
+        .split(|c: char| c.is_whitespace() || matches!(c, ':' | '/' | '`' | '(' | ')' | ',' | ';'))
+        .filter(|w| {
+            [".edf", ".bdf", ".tsv", ".yaml"]
+                .iter()
+                .any(|e| w.ends_with(e))
+        })
+        .collect();
+    names
+        .iter()
+        .enumerate()
+        .find(|(i, n)| names[..*i].contains(n))
+        .map(|(_, n)| n.to_string())
+}
+
+#[test]
+fn a_file_named_twice_on_one_line_is_found() {
+    let twice = "reading data/sub-01/eeg/a_eeg.edf: data/sub-01/eeg/a_eeg.edf: channel Oz";
+    assert_eq!(named_twice(twice).as_deref(), Some("a_eeg.edf"));
+    assert_eq!(
+        named_twice("reading data/a_eeg.edf: data/a_events.tsv: bad row"),
+        None
+    );
 }
 
 /// The case's substrings, plus `pipeline.yaml:LINE:` for `line_of`.

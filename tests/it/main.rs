@@ -3,6 +3,7 @@
 //! in temporary folders, damage, concurrent runs) are the shared harness.
 
 mod bad_inputs;
+mod cli;
 mod common;
 mod concurrent;
 mod damage;

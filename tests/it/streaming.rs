@@ -160,8 +160,8 @@ fn verify_does_not_call_a_streamed_unit_bit_identical() {
     assert_eq!(
         lines.last().copied(),
         Some(
-            "verified: every hashed output is bit-identical; 1 streamed output(s) had no hash \
-             and are checked through the outputs they feed"
+            "verified: every hashed output is bit-identical; 1 streamed output had no hash \
+             and is checked through the outputs it feeds"
         ),
         "{text}"
     );

@@ -51,7 +51,7 @@ fn fail(path: &Path, message: impl std::fmt::Display) -> StageError {
 impl Opened {
     /// Read and check the header `vhdr`, the size of its data file, the sidecars and (for
     /// `events: annotations`) the marker file.
-    pub fn open(vhdr: &Path, events: EventSource) -> Result<Opened, StageError> {
+    pub fn open(vhdr: &Path, events: Option<EventSource>) -> Result<Opened, StageError> {
         let bytes = std::fs::read(vhdr).map_err(|e| fail(vhdr, format!("cannot open: {e}")))?;
         let header = VhdrHeader::parse(vhdr, &decode_text(&bytes)).map_err(|e| fail(vhdr, e))?;
         let points = data_points(vhdr, &header)?;
@@ -86,10 +86,15 @@ impl Opened {
         };
         let length = points as f64 / header.rate;
         let events = match events {
-            EventSource::Annotations => markers(vhdr, &header, points, &mut warnings)?,
-            EventSource::Sidecar => {
-                sidecar_events(vhdr, events, &events_path, length, &mut warnings)?
-            }
+            None => Vec::new(),
+            Some(EventSource::Annotations) => markers(vhdr, &header, points, &mut warnings)?,
+            Some(EventSource::Sidecar) => sidecar_events(
+                vhdr,
+                EventSource::Sidecar,
+                &events_path,
+                length,
+                &mut warnings,
+            )?,
         };
         let layout = layout(&selection, points, events);
         Ok(Opened {

@@ -95,7 +95,8 @@ enum AnyOpened {
 }
 
 impl AnyOpened {
-    fn open(path: &Path, events: EventSource) -> Result<AnyOpened, StageError> {
+    /// Open `path` in its format; `events: None` reads no events at all.
+    fn open(path: &Path, events: Option<EventSource>) -> Result<AnyOpened, StageError> {
         Ok(match Format::of(path)? {
             Format::Edf => AnyOpened::Edf(Opened::open(path, events)?),
             Format::BrainVision => AnyOpened::BrainVision(brainvision::Opened::open(path, events)?),
@@ -126,22 +127,29 @@ impl AnyOpened {
 
 /// Read a recording (EDF, EDF+, BDF or BrainVision) with its events and channel types:
 /// dims `[channel, time]`, values in volts, `meta.sampling_rate`, `meta.channel_types`,
-/// `meta.events`. Warnings (a channel dropped for its rate, ...) go to `notes`.
+/// `meta.events`. Warnings (a channel dropped for its rate, ...) go to `notes` without the
+/// recording's name, which the caller adds as it shows paths (the runner: "reading <path>: …").
 pub fn read_recording(
     path: &Path,
     events: EventSource,
     notes: &mut Notes,
 ) -> Result<LabelledArray, StageError> {
-    let opened = AnyOpened::open(path, events)?;
+    let opened = AnyOpened::open(path, Some(events))?;
     for warning in opened.warnings() {
-        notes.warn(format!("{}: {warning}", path.display()));
+        notes.warn(warning.as_str());
     }
     opened.read()
 }
 
 /// The layout [`read_recording`] would return, reading only the headers and sidecars.
 pub fn read_recording_layout(path: &Path, events: EventSource) -> Result<Layout, StageError> {
-    Ok(AnyOpened::open(path, events)?.into_layout())
+    Ok(AnyOpened::open(path, Some(events))?.into_layout())
+}
+
+/// The layout of a recording without its events (channels, rate, length): for looking at a
+/// dataset before knowing where, or whether, its events are.
+pub fn read_recording_layout_without_events(path: &Path) -> Result<Layout, StageError> {
+    Ok(AnyOpened::open(path, None)?.into_layout())
 }
 
 /// The other files that belong to a recording and exist, in a fixed order: a BrainVision

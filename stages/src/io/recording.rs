@@ -32,8 +32,9 @@ pub struct Opened {
 }
 
 impl Opened {
-    /// Read and check the header and sidecars of `path`.
-    pub fn open(path: &Path, events: EventSource) -> Result<Opened, StageError> {
+    /// Read and check the header and sidecars of `path`; `events: None` reads no events (the
+    /// layout's event list is empty), for a look at a dataset that may have none.
+    pub fn open(path: &Path, events: Option<EventSource>) -> Result<Opened, StageError> {
         let fail = |m: String| StageError::input(format!("{}: {m}", path.display()));
         let mut file = File::open(path).map_err(|e| fail(format!("cannot open: {e}")))?;
         let header = read_header(&mut file).map_err(fail)?;
@@ -47,9 +48,10 @@ impl Opened {
         let samples = header.records * selection.samples_per_record;
         let length = samples as f64 / selection.rate;
         let annotations = annotations(&mut file, &header, selection.rate).map_err(fail)?;
-        let events = match annotations {
-            Some(found) if events == EventSource::Annotations => found,
-            _ => sidecar_events(path, events, &events_path, length, &mut warnings)?,
+        let events = match (annotations, events) {
+            (_, None) => Vec::new(),
+            (Some(found), Some(EventSource::Annotations)) => found,
+            (_, Some(events)) => sidecar_events(path, events, &events_path, length, &mut warnings)?,
         };
         let layout = layout(&selection, samples, events);
         Ok(Opened {

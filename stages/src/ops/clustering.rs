@@ -45,16 +45,33 @@ use super::trial_sums::{self, Needs, PairSums, Planes};
 pub struct Clustering;
 
 /// One measure or several.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-#[serde(
-    untagged,
-    expecting = "a measure (plv, ppc, pli, wpli, dwpli, icoh) or a list of measures"
-)]
+///
+/// Read by hand rather than as an untagged enum, so that a misspelt measure is reported as serde
+/// reports an unknown variant (naming it and the measures that exist) instead of "did not match".
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[serde(untagged)]
 pub enum MeasureSpec {
     /// A single measure.
     One(Measure),
     /// Several measures, in output order.
     Many(Vec<Measure>),
+}
+
+impl<'de> Deserialize<'de> for MeasureSpec {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        use serde::de::Error;
+        use serde_json::Value;
+        let value = Value::deserialize(d)?;
+        let read =
+            match value {
+                Value::String(_) => Measure::deserialize(value).map(MeasureSpec::One),
+                Value::Array(_) => Vec::<Measure>::deserialize(value).map(MeasureSpec::Many),
+                _ => return Err(D::Error::custom(
+                    "expected a measure (plv, ppc, pli, wpli, dwpli, icoh) or a list of measures",
+                )),
+            };
+        read.map_err(D::Error::custom)
+    }
 }
 
 /// The word `all`.
@@ -1251,7 +1268,17 @@ mod tests {
             (
                 json!({"measure": "coherence"}),
                 "measure",
-                "a measure (plv, ppc, pli, wpli, dwpli, icoh) or a list of measures",
+                "unknown variant `coherence`, expected one of `plv`, `ppc`, `pli`, `wpli`, `dwpli`, `icoh`",
+            ),
+            (
+                json!({"measure": ["plv", "wpil"]}),
+                "measure",
+                "unknown variant `wpil`, expected one of",
+            ),
+            (
+                json!({"measure": 3}),
+                "measure",
+                "expected a measure (plv, ppc, pli, wpli, dwpli, icoh) or a list of measures",
             ),
             (
                 json!({"measure": []}),

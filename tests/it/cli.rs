@@ -1,0 +1,390 @@
+//! The everyday command line: what a user sees around a run, through the real binary.
+//!
+//! A study under a folder whose name holds glob characters; logs without escape codes when
+//! stderr is a file; `-q`; counts in the singular; `inspect`'s exit status and wording; "did you
+//! mean" for misspelt keys, params, ops, stages and measures; `new` on recordings without events;
+//! `--version`; shell completions; the license and citation files.
+
+use std::fs;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output, Stdio};
+
+use crate::reliability::{
+    assert_success, corpus_dir, manifest, recording_path, run_cli, stderr_of, tiny_project,
+    with_suffix, write_study, StudySpec,
+};
+
+/// One subject of the tiny study: the quickest real run.
+fn one_subject() -> StudySpec {
+    StudySpec {
+        rates: vec![128.0],
+        seconds: 24,
+    }
+}
+
+fn stdout_of(out: &Output) -> String {
+    String::from_utf8_lossy(&out.stdout).into_owned()
+}
+
+/// Exit status and stderr of `phasewise ARGS` in `dir`.
+fn status_and_stderr(dir: &Path, args: &[&str]) -> (Option<i32>, String) {
+    let out = run_cli(dir, args);
+    (out.status.code(), stderr_of(&out))
+}
+
+#[test]
+fn a_study_in_a_folder_whose_name_holds_glob_characters_runs() {
+    let tmp = tempfile::tempdir().unwrap();
+    let study = tmp.path().join("study [pilot]");
+    tiny_project(&study, &one_subject());
+    // From the parent, so the pipeline's folder (joined to its glob) holds `[pilot]`.
+    let out = run_cli(tmp.path(), &["run", "study [pilot]/pipeline.yaml"]);
+    assert_success(&out, "run under `study [pilot]`");
+    assert!(study.join("results/manifest.json").is_file());
+
+    // `new` finds the recordings there too, and the pipeline it writes finds them again.
+    let out = run_cli(
+        tmp.path(),
+        &[
+            "new",
+            "--data",
+            "study [pilot]/data",
+            "--out",
+            "study [pilot]/new.yaml",
+        ],
+    );
+    assert_success(&out, "new under `study [pilot]`");
+    let out = run_cli(tmp.path(), &["plan", "study [pilot]/new.yaml"]);
+    assert_success(&out, "plan of the pipeline `new` wrote");
+    // The same from inside the study, where the glob's folder is `data` but `new` writes a path
+    // relative to a pipeline elsewhere.
+    let out = run_cli(&study, &["new", "--data", ".", "--out", "../outside.yaml"]);
+    assert_success(&out, "new --data . from inside `study [pilot]`");
+    let out = run_cli(tmp.path(), &["plan", "outside.yaml"]);
+    assert_success(&out, "plan of a pipeline whose data folder holds `[pilot]`");
+}
+
+#[test]
+fn a_verbose_log_redirected_to_a_file_holds_no_escape_codes() {
+    let tmp = tempfile::tempdir().unwrap();
+    tiny_project(tmp.path(), &one_subject());
+    let log = tmp.path().join("log.txt");
+    // `phasewise -v run pipeline.yaml 2>log.txt`, with no NO_COLOR to help.
+    let status = Command::new(crate::reliability::bin())
+        .args(["-v", "run", "pipeline.yaml"])
+        .current_dir(tmp.path())
+        .env_remove("NO_COLOR")
+        .env_remove("RUST_LOG")
+        .env_remove("PHASEWISE_CACHE")
+        .stdout(Stdio::null())
+        .stderr(fs::File::create(&log).unwrap())
+        .status()
+        .unwrap();
+    assert!(status.success());
+    let text = fs::read_to_string(&log).unwrap();
+    assert!(text.contains("computing"), "-v logs each unit:\n{text}");
+    assert!(
+        !text.contains('\u{1b}'),
+        "escape codes in the log:\n{text:?}"
+    );
+}
+
+/// A project whose channels sidecar leaves out `Oz`: a successful run with a warning.
+fn project_with_a_warning(dir: &Path) {
+    // Two subjects, so the group's standard error has what it needs.
+    tiny_project(
+        dir,
+        &StudySpec {
+            rates: vec![128.0, 128.0],
+            seconds: 24,
+        },
+    );
+    let stem = dir.join("data").join(crate::reliability::subject_stem(1));
+    let channels = with_suffix(&stem, "_channels.tsv");
+    let text = fs::read_to_string(&channels).unwrap();
+    let kept: Vec<&str> = text.lines().filter(|l| !l.starts_with("Oz")).collect();
+    fs::write(&channels, kept.join("\n") + "\n").unwrap();
+}
+
+#[test]
+fn quiet_prints_nothing_on_a_successful_run_with_warnings_which_stay_in_the_manifest() {
+    let tmp = tempfile::tempdir().unwrap();
+    project_with_a_warning(tmp.path());
+    let out = run_cli(tmp.path(), &["-q", "run", "pipeline.yaml"]);
+    assert_success(&out, "-q run");
+    assert_eq!(stdout_of(&out), "", "-q prints nothing on stdout");
+    assert_eq!(stderr_of(&out), "", "-q prints nothing on stderr");
+    let warnings = manifest(&tmp.path().join("results"))["warnings"].clone();
+    let text = warnings.to_string();
+    assert!(
+        text.contains("Oz"),
+        "the warning is in the manifest: {text}"
+    );
+
+    // Without -q the same run (now cached) tells the warning, counted in the singular.
+    let out = run_cli(tmp.path(), &["run", "pipeline.yaml"]);
+    assert_success(&out, "run");
+    let err = stderr_of(&out);
+    assert!(err.starts_with("1 warning:\n"), "{err}");
+    assert!(err.contains("Oz"), "{err}");
+    // The group stage is the one exported output.
+    let summary = stdout_of(&out);
+    assert!(summary.contains("; 1 output; manifest"), "{summary}");
+}
+
+#[test]
+fn inspect_refuses_an_unknown_stage_or_subject_as_a_command_line_mistake() {
+    let tmp = tempfile::tempdir().unwrap();
+    let pipeline = tiny_project(tmp.path(), &one_subject());
+    // The wavelet stage keeps no values.
+    let text = fs::read_to_string(&pipeline).unwrap().replace(
+        "    input: trials\n",
+        "    input: trials\n    cache: false\n",
+    );
+    fs::write(&pipeline, text).unwrap();
+    assert_success(&run_cli(tmp.path(), &["run", "pipeline.yaml"]), "run");
+
+    let (code, err) = status_and_stderr(tmp.path(), &["inspect", "pipeline.yaml", "snyc"]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("no stage `snyc`"), "{err}");
+    assert!(err.contains("did you mean `sync`?"), "{err}");
+
+    let (code, err) = status_and_stderr(
+        tmp.path(),
+        &["inspect", "pipeline.yaml", "sync", "--subject", "07"],
+    );
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("--subject 07: no such subject"), "{err}");
+
+    let (code, err) = status_and_stderr(tmp.path(), &["inspect", "pipeline.yaml", "tf"]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("`cache: false`"), "{err}");
+    assert!(err.contains("set `cache: true` on tf"), "{err}");
+    assert!(!err.contains("Unavailable"), "{err}");
+
+    // A stored stage is described; a group stage needs no subject.
+    let out = run_cli(tmp.path(), &["inspect", "pipeline.yaml", "group"]);
+    assert_success(&out, "inspect group");
+    assert!(stdout_of(&out).starts_with("group (the group), key "));
+}
+
+/// `plan` of the tiny pipeline with `from` replaced by `to`: exit 2 and stderr.
+fn plan_error(dir: &Path, from: &str, to: &str, extra: &[&str]) -> String {
+    let base = fs::read_to_string(corpus_dir().join("base.yaml")).unwrap();
+    assert!(base.contains(from), "{from} is not in base.yaml");
+    fs::write(dir.join("pipeline.yaml"), base.replacen(from, to, 1)).unwrap();
+    let mut args = vec!["plan", "pipeline.yaml"];
+    args.extend(extra);
+    let (code, err) = status_and_stderr(dir, &args);
+    assert_eq!(code, Some(2), "{err}");
+    err
+}
+
+#[test]
+fn misspelt_keys_params_ops_stages_and_measures_get_a_suggestion() {
+    let tmp = tempfile::tempdir().unwrap();
+    write_study(&tmp.path().join("data"), &one_subject());
+    let dir = tmp.path();
+    let cases: [(&str, &str, &[&str], &str); 7] = [
+        // A pipeline key.
+        ("output:", "outptu:", &[], "did you mean `output`?"),
+        // A param of an op (serde's unknown field).
+        (
+            "cycles: { from: 3",
+            "cycels: { from: 3",
+            &[],
+            "did you mean `cycles`?",
+        ),
+        // An op.
+        ("op: notch", "op: nocth", &[], "did you mean `notch`?"),
+        // A stage named as an input.
+        ("input: line", "input: lien", &[], "did you mean `line`?"),
+        // A stage named in --set.
+        (
+            "name: tiny",
+            "name: tiny",
+            &["--set", "lnie.q=20"],
+            "did you mean `line`?",
+        ),
+        // A measure (serde's unknown variant).
+        (
+            "measure: [plv, wpli]",
+            "measure: [plv, wpil]",
+            &[],
+            "did you mean `wpli`?",
+        ),
+        // Nothing close: no suggestion.
+        ("op: notch", "op: zzzzzz", &[], "the ops are:"),
+    ];
+    for (from, to, extra, wanted) in cases {
+        let err = plan_error(dir, from, to, extra);
+        assert!(err.contains(wanted), "{to}: `{wanted}` missing from\n{err}");
+        if to == "op: zzzzzz" {
+            assert!(!err.contains("did you mean"), "{err}");
+        }
+    }
+}
+
+#[test]
+fn new_on_recordings_without_events_says_what_to_add() {
+    let tmp = tempfile::tempdir().unwrap();
+    // Plain EDF (no annotations signal), no events sidecar.
+    let plain =
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/fixtures/edf/plain.edf");
+    for n in 1..=2 {
+        let edf = recording_path(&tmp.path().join("data"), n);
+        fs::create_dir_all(edf.parent().unwrap()).unwrap();
+        fs::copy(&plain, &edf).unwrap();
+    }
+    let out = run_cli(tmp.path(), &["new", "--data", "data", "--out", "p.yaml"]);
+    assert_success(&out, "new on recordings without events");
+    let err = stderr_of(&out);
+    assert!(err.contains("no events found"), "{err}");
+    assert!(err.contains("_events.tsv"), "{err}");
+    let text = fs::read_to_string(tmp.path().join("p.yaml")).unwrap();
+    assert!(
+        !text
+            .lines()
+            .any(|l| l.trim_start().starts_with("events: annotations")),
+        "{text}"
+    );
+    assert!(text.contains("# ADD EVENTS before running"), "{text}");
+    assert!(text.contains("events: sidecar"), "{text}");
+    assert!(text.ends_with("\n"), "the file ends with a newline");
+    // Its own pipeline then stops at what the file says to add: the conditions first, then,
+    // once they are listed, the events sidecar, naming the recording once.
+    let (code, err) = status_and_stderr(tmp.path(), &["plan", "p.yaml"]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("stages.trials.params.conditions"), "{err}");
+    let text = text.replace("conditions: {}", "conditions: { A: [cue-a] }");
+    fs::write(tmp.path().join("p.yaml"), text).unwrap();
+    let (code, err) = status_and_stderr(tmp.path(), &["plan", "p.yaml"]);
+    assert_ne!(code, Some(0), "{err}");
+    assert!(err.contains("sub-01_task-cue_events.tsv"), "{err}");
+    assert_named_once(&err, "sub-01_task-cue_eeg.edf");
+}
+
+/// No line of `err` holds `name` twice ("a.edf: a.edf: …").
+fn assert_named_once(err: &str, name: &str) {
+    for line in err.lines() {
+        assert!(line.matches(name).count() <= 1, "path twice: {line}");
+    }
+}
+
+#[test]
+fn new_writes_yaml_that_ends_with_a_newline_on_stdout_and_in_a_file() {
+    let tmp = tempfile::tempdir().unwrap();
+    write_study(&tmp.path().join("data"), &one_subject());
+    let out = run_cli(tmp.path(), &["new", "--data", "data"]);
+    assert_success(&out, "new to stdout");
+    assert!(stdout_of(&out).ends_with("\n"));
+    let out = run_cli(tmp.path(), &["new", "--data", "data", "--out", "p.yaml"]);
+    assert_success(&out, "new to a file");
+    let text = fs::read_to_string(tmp.path().join("p.yaml")).unwrap();
+    assert!(text.ends_with("export: true\n"), "{text}");
+}
+
+#[test]
+fn a_bad_recording_is_named_once_per_message() {
+    let tmp = tempfile::tempdir().unwrap();
+    write_study(&tmp.path().join("data"), &one_subject());
+    let edf = recording_path(&tmp.path().join("data"), 1);
+    let bytes = fs::read(&edf).unwrap();
+    fs::write(&edf, &bytes[..300]).unwrap();
+    let name = "sub-01_task-cue_eeg.edf";
+    for args in [
+        &["new", "--data", "data"][..],
+        &["new", "--data", "data", "--out", "p.yaml"],
+    ] {
+        let (code, err) = status_and_stderr(tmp.path(), args);
+        assert_ne!(code, Some(0), "{err}");
+        assert!(err.contains(name), "{err}");
+        assert_named_once(&err, name);
+    }
+}
+
+#[test]
+fn version_shows_the_revision_the_manifest_records() {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = run_cli(tmp.path(), &["--version"]);
+    assert_success(&out, "--version");
+    let revision = phasewise::manifest::REVISION;
+    assert_eq!(
+        stdout_of(&out).trim_end(),
+        format!(
+            "phasewise {} (revision {revision})",
+            env!("CARGO_PKG_VERSION")
+        )
+    );
+    // What git says now about HEAD and the files build.rs watches.
+    let mut status = vec!["status", "--porcelain", "--untracked-files=no", "--"];
+    status.extend(env!("PHASEWISE_REVISION_SOURCES").split(' '));
+    let [head, changes] = [&["rev-parse", "HEAD"][..], &status].map(|args| {
+        Command::new("git")
+            .args(args)
+            .current_dir(env!("CARGO_MANIFEST_DIR"))
+            .output()
+            .ok()
+            .filter(|o| o.status.success())
+            .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
+    });
+    let expected = match (head, changes) {
+        (Some(head), Some(changes)) if changes.is_empty() => head,
+        (Some(head), Some(_)) => format!("{head}-dirty"),
+        _ => "unknown".to_string(),
+    };
+    assert_eq!(revision, expected);
+    // The manifest of a run records the same revision.
+    tiny_project(tmp.path(), &one_subject());
+    assert_success(&run_cli(tmp.path(), &["run", "pipeline.yaml"]), "run");
+    let m = manifest(&tmp.path().join("results"));
+    assert_eq!(m["tool"]["revision"], revision);
+}
+
+#[test]
+fn completions_for_bash_load_in_bash() {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = run_cli(tmp.path(), &["completions", "bash"]);
+    assert_success(&out, "completions bash");
+    let script = tmp.path().join("phasewise.bash");
+    fs::write(&script, &out.stdout).unwrap();
+    let text = stdout_of(&out);
+    assert!(
+        text.contains("phasewise") && text.contains("inspect"),
+        "{text}"
+    );
+    let check = Command::new("bash")
+        .arg("-n")
+        .arg(&script)
+        .output()
+        .unwrap();
+    assert!(check.status.success(), "{}", stderr_of(&check));
+    for shell in ["zsh", "fish", "elvish", "powershell"] {
+        let out = run_cli(tmp.path(), &["completions", shell]);
+        assert_success(&out, shell);
+        assert!(!out.stdout.is_empty(), "{shell}");
+    }
+    let (code, _) = status_and_stderr(tmp.path(), &["completions", "tcsh"]);
+    assert_eq!(code, Some(2));
+}
+
+#[test]
+fn the_license_files_exist_and_the_citation_names_the_crate_version() {
+    let root = PathBuf::from(env!("CARGO_MANIFEST_DIR"));
+    let mit = fs::read_to_string(root.join("LICENSE-MIT")).unwrap();
+    assert!(mit.contains("Copyright (c) 2026 phasewise developers"));
+    let apache = fs::read_to_string(root.join("LICENSE-APACHE")).unwrap();
+    assert!(apache.contains("Apache License") && apache.contains("Version 2.0, January 2004"));
+    let cff = fs::read_to_string(root.join("CITATION.cff")).unwrap();
+    assert!(cff.starts_with("cff-version: 1.2.0\n"), "{cff}");
+    let version = cff
+        .lines()
+        .find_map(|l| l.strip_prefix("version: "))
+        .expect("CITATION.cff has a version")
+        .trim_matches('"');
+    assert_eq!(
+        version,
+        env!("CARGO_PKG_VERSION"),
+        "CITATION.cff's version must follow Cargo.toml's"
+    );
+}
