@@ -8,6 +8,7 @@ static NOTCH: Registered<ops::notch::Notch> = Registered::new();
 static FILTER: Registered<ops::filter::Filter> = Registered::new();
 static EPOCH: Registered<ops::epoch::Epoch> = Registered::new();
 static WAVELET: Registered<ops::wavelet::Wavelet> = Registered::new();
+static HILBERT: Registered<ops::hilbert::Hilbert> = Registered::new();
 static CLUSTERING: Registered<ops::clustering::Clustering> = Registered::new();
 static BASELINE: Registered<ops::baseline::Baseline> = Registered::new();
 static AGGREGATE: Registered<ops::aggregate::Aggregate> = Registered::new();
@@ -20,6 +21,7 @@ pub fn all() -> Vec<&'static dyn DynOp> {
         &FILTER,
         &EPOCH,
         &WAVELET,
+        &HILBERT,
         &CLUSTERING,
         &BASELINE,
         &AGGREGATE,

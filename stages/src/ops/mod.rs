@@ -6,6 +6,7 @@ pub mod baseline;
 pub mod clustering;
 pub mod epoch;
 pub mod filter;
+pub mod hilbert;
 pub mod measures;
 pub mod morlet;
 pub mod notch;
