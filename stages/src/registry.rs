@@ -6,6 +6,7 @@ use crate::ops;
 static REREFERENCE: Registered<ops::reref::ReReference> = Registered::new();
 static NOTCH: Registered<ops::notch::Notch> = Registered::new();
 static FILTER: Registered<ops::filter::Filter> = Registered::new();
+static RESAMPLE: Registered<ops::resample::Resample> = Registered::new();
 static EPOCH: Registered<ops::epoch::Epoch> = Registered::new();
 static WAVELET: Registered<ops::wavelet::Wavelet> = Registered::new();
 static HILBERT: Registered<ops::hilbert::Hilbert> = Registered::new();
@@ -19,6 +20,7 @@ pub fn all() -> Vec<&'static dyn DynOp> {
         &REREFERENCE,
         &NOTCH,
         &FILTER,
+        &RESAMPLE,
         &EPOCH,
         &WAVELET,
         &HILBERT,

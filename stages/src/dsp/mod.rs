@@ -7,4 +7,5 @@
 pub mod analytic;
 pub mod design;
 pub mod recording;
+pub mod resample;
 pub mod sos;

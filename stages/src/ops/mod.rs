@@ -12,6 +12,7 @@ pub mod morlet;
 pub mod notch;
 pub mod params_de;
 pub mod reref;
+pub mod resample;
 #[cfg(test)]
 mod tf_testing;
 pub mod trial_sums;
