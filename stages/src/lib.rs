@@ -18,10 +18,11 @@ pub mod op;
 pub mod ops;
 pub mod registry;
 pub mod simulate;
+pub mod spatial;
 pub mod table;
 
 pub use array::{
-    Coord, Event, Joining, LabelledArray, Layout, Meta, SharedList, TrialInfo, Values,
+    Coord, Event, Joining, LabelledArray, Layout, Meta, Positions, SharedList, TrialInfo, Values,
 };
 pub use error::StageError;
 pub use op::{DynOp, Input, InputLayout, Notes, Op, OwnedInput};
