@@ -7,6 +7,8 @@ static REREFERENCE: Registered<ops::reref::ReReference> = Registered::new();
 static NOTCH: Registered<ops::notch::Notch> = Registered::new();
 static FILTER: Registered<ops::filter::Filter> = Registered::new();
 static RESAMPLE: Registered<ops::resample::Resample> = Registered::new();
+static INTERPOLATE: Registered<ops::interpolate::Interpolate> = Registered::new();
+static LAPLACIAN: Registered<ops::laplacian::Laplacian> = Registered::new();
 static EPOCH: Registered<ops::epoch::Epoch> = Registered::new();
 static WAVELET: Registered<ops::wavelet::Wavelet> = Registered::new();
 static HILBERT: Registered<ops::hilbert::Hilbert> = Registered::new();
@@ -21,6 +23,8 @@ pub fn all() -> Vec<&'static dyn DynOp> {
         &NOTCH,
         &FILTER,
         &RESAMPLE,
+        &INTERPOLATE,
+        &LAPLACIAN,
         &EPOCH,
         &WAVELET,
         &HILBERT,

@@ -7,6 +7,8 @@ pub mod clustering;
 pub mod epoch;
 pub mod filter;
 pub mod hilbert;
+pub mod interpolate;
+pub mod laplacian;
 pub mod measures;
 pub mod morlet;
 pub mod notch;
