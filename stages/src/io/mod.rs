@@ -64,8 +64,13 @@ pub fn read_recording_layout(path: &Path, events: EventSource) -> Result<Layout,
     Ok(Opened::open(path, events)?.layout)
 }
 
-/// The sidecar files that belong to a recording and exist (events, channels), in a fixed order;
-/// their bytes are part of the recording's content key.
+/// Bumped whenever what the reader makes of the same files changes (version 2: electrode
+/// positions and bad channels in the metadata); part of every source's key, so results cached
+/// from an older reader go stale.
+pub const READER_VERSION: u32 = 2;
+
+/// The sidecar files that belong to a recording and exist (events, channels, electrodes,
+/// coordinate system), in a fixed order; their bytes are part of the recording's content key.
 pub fn sidecar_paths(path: &Path) -> Vec<PathBuf> {
     tsv::candidate_sidecars(path)
         .into_iter()
