@@ -56,7 +56,7 @@ impl Analytic {
         let scale = 1.0 / n as f64;
         let positive_end = n.div_ceil(2); // exclusive end of the doubled bins
         for (k, v) in out.iter_mut().enumerate() {
-            let h = if k == 0 || (n % 2 == 0 && k == n / 2) {
+            let h = if k == 0 || (n.is_multiple_of(2) && k == n / 2) {
                 1.0
             } else if k < positive_end {
                 2.0

@@ -48,7 +48,7 @@ fn as_fraction(rate: f64) -> Option<(u64, u64)> {
     (1..=10_000u64).find_map(|q| {
         let p = (rate * q as f64).round();
         let close = (p / q as f64 - rate).abs() <= 1e-12 * rate;
-        (p >= 1.0 && p < 1e15 && close).then(|| (p as u64, q))
+        ((1.0..1e15).contains(&p) && close).then_some((p as u64, q))
     })
 }
 

@@ -209,13 +209,13 @@ pub fn read_channels(path: &Path) -> Result<Vec<ChannelRow>, StageError> {
         .collect())
 }
 
+/// One electrode of an electrodes sidecar: its name and position (metres), if known.
+pub type Electrode = (String, Option<[f64; 3]>);
+
 /// Read an electrodes sidecar (BIDS: columns name, x, y, z; `n/a` for an unknown position):
 /// each named electrode with its position, `None` when any coordinate is `n/a`. Coordinates
 /// are multiplied by `to_metres`.
-pub fn read_electrodes(
-    path: &Path,
-    to_metres: f64,
-) -> Result<Vec<(String, Option<[f64; 3]>)>, StageError> {
+pub fn read_electrodes(path: &Path, to_metres: f64) -> Result<Vec<Electrode>, StageError> {
     let table = Table::read(path)?;
     let name_col = table.required(path, "name")?;
     let cols = [

@@ -136,7 +136,7 @@ pub fn position(label: &str) -> Option<[f64; 3]> {
             return Some(midline(q));
         }
         let k: u32 = rest.parse().ok().filter(|k| (1..=8).contains(k))?;
-        let side = if k % 2 == 0 { 1.0 } else { -1.0 };
+        let side = if k.is_multiple_of(2) { 1.0 } else { -1.0 };
         let steps = k.div_ceil(2); // 1..=4 from the midline
                                    // Ring-named electrodes (T7, FT8, ...) are only the ring's; the Fp and O rows have only
                                    // their ring electrodes (Fp1/Fp2, O1/O2), numbered 1 and 2.
