@@ -253,7 +253,8 @@ pub(crate) mod tests {
         // the interpolant smooth enough that its second derivative is usable at all.
         let labels = cap_labels();
         let r = 0.095;
-        let harmonics: [(u32, fn([f64; 3]) -> f64); 3] = [
+        type Harmonic = (u32, fn([f64; 3]) -> f64);
+        let harmonics: [Harmonic; 3] = [
             (1, |p| p[2]),
             (2, |p| p[0] * p[1]),
             (2, |p| 3.0 * p[2] * p[2] - 1.0),
