@@ -338,9 +338,10 @@ pub struct Meta {
     /// Per-trial information of epoched data, parallel to the `trial` axis.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub trials: Option<Vec<TrialInfo>>,
-    /// Electrode positions by channel name, and where they came from (DESIGN.md §4b).
+    /// Electrode positions by channel name, and where they came from (DESIGN.md §4b); boxed,
+    /// so that layouts without them stay small.
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub positions: Option<Positions>,
+    pub positions: Option<Box<Positions>>,
     /// Anything else an op wants to hand downstream.
     #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
     pub extra: BTreeMap<String, serde_json::Value>,

@@ -242,7 +242,7 @@ fn positions(
     selection: &Selection,
     electrodes: &Path,
     coordsystem: &Path,
-) -> Result<Option<Positions>, StageError> {
+) -> Result<Option<Box<Positions>>, StageError> {
     let file_name = |p: &Path| {
         p.file_name()
             .map(|n| n.to_string_lossy().into_owned())
@@ -266,11 +266,11 @@ fn positions(
                 row.1.map(|p| (c.name.clone(), p))
             })
             .collect();
-        return Ok(Some(Positions {
+        return Ok(Some(Box::new(Positions {
             source: file_name(electrodes),
             units: "m".into(),
             by_channel,
-        }));
+        })));
     }
     let eeg: Vec<&str> = selection
         .channels
@@ -285,7 +285,7 @@ fn positions(
     if by_channel.is_empty() {
         return Ok(None);
     }
-    Ok(Some(Positions {
+    Ok(Some(Box::new(Positions {
         source: format!(
             "standard 10-20/10-10 labels, derived on a unit sphere ({} of {} EEG channels)",
             by_channel.len(),
@@ -293,7 +293,7 @@ fn positions(
         ),
         units: "1".into(),
         by_channel,
-    }))
+    })))
 }
 
 /// dims [channel, time], time k/fs in s, values in volts.

@@ -208,11 +208,11 @@ pub(crate) mod tests {
             meta: Meta {
                 sampling_rate: Some(100.0),
                 channel_types: Some(types),
-                positions: Some(Positions {
+                positions: Some(Box::new(Positions {
                     source: "test".into(),
                     units: "1".into(),
                     by_channel,
-                }),
+                })),
                 ..Meta::default()
             },
         };
