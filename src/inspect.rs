@@ -160,6 +160,14 @@ pub fn describe(stage: &str, who: &str, key: &str, array: &LabelledArray) -> Str
     if let Some(rate) = layout.meta.sampling_rate {
         let _ = writeln!(out, "sampling rate {rate} Hz");
     }
+    if let Some(p) = &layout.meta.positions {
+        let _ = writeln!(
+            out,
+            "electrode positions: {} channels, from {}",
+            p.by_channel.len(),
+            p.source
+        );
+    }
     let _ = writeln!(out, "{}", value_summary(&array.values));
     out
 }

@@ -59,6 +59,9 @@ pub struct DatasetSummary {
     pub channels: Vec<(String, String)>,
     /// Recordings whose channel list differs from the first one's.
     pub channel_mismatch: Vec<PathBuf>,
+    /// Where the first recording's electrode positions come from, with how many channels have
+    /// one (`None`: no positions).
+    pub positions: Option<(String, usize)>,
     /// Event labels with their counts over all recordings.
     pub labels: BTreeMap<String, usize>,
     /// Shortest time between consecutive event onsets in any recording (s).
@@ -189,6 +192,11 @@ fn add_recording(s: &mut DatasetSummary, path: &Path, layout: &Layout, intervals
         .collect();
     if s.channels.is_empty() {
         s.channels = channels;
+        s.positions = layout
+            .meta
+            .positions
+            .as_ref()
+            .map(|p| (p.source.clone(), p.by_channel.len()));
     } else if s.channels != channels {
         s.channel_mismatch.push(path.to_path_buf());
     }
@@ -233,6 +241,14 @@ pub fn summary_text(s: &DatasetSummary) -> String {
     for (kind, names) in &by_type {
         let _ = writeln!(t, "channels ({kind}, {}): {}", names.len(), names.join(" "));
     }
+    let _ = match &s.positions {
+        Some((source, n)) => writeln!(t, "electrode positions: {n} channels, from {source}"),
+        None => writeln!(
+            t,
+            "electrode positions: none (no *_electrodes.tsv and no standard 10-20 labels); \
+             laplacian and interpolate need them"
+        ),
+    };
     for path in &s.channel_mismatch {
         let _ = writeln!(
             t,

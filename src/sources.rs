@@ -327,7 +327,9 @@ impl Hasher {
 
     /// The key of a source and the hashes of its files.
     pub fn source_key(&self, source: &Source) -> Result<(String, Vec<FileHash>), SourceError> {
-        let mut roles = Vec::new();
+        // What the reader makes of the files is part of the key too.
+        let reader = phasewise_stages::io::READER_VERSION.to_string();
+        let mut roles = vec![("reader".to_string(), reader)];
         let mut hashes = Vec::new();
         for (role, path) in source.files() {
             let h = self.hash(path)?;

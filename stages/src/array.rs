@@ -337,9 +337,26 @@ pub struct Meta {
     /// Per-trial information of epoched data, parallel to the `trial` axis.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub trials: Option<Vec<TrialInfo>>,
+    /// Electrode positions by channel name, and where they came from (DESIGN.md §4b); boxed,
+    /// so that layouts without them stay small.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub positions: Option<Box<Positions>>,
     /// Anything else an op wants to hand downstream.
     #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
     pub extra: BTreeMap<String, serde_json::Value>,
+}
+
+/// Electrode positions, keyed by channel name (not parallel to the channel axis, so ops that
+/// drop, rename or reorder channels leave the positions of the others true).
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct Positions {
+    /// Where they came from, for people: the electrodes sidecar's file name, or the derivation.
+    pub source: String,
+    /// Unit of the coordinates (`m` from a sidecar, `1` for the unit sphere of derived ones).
+    pub units: String,
+    /// Cartesian position of each channel that has one: x towards the right preauricular point,
+    /// y towards the nasion, z up (derived ones; a sidecar's are as its coordinate system says).
+    pub by_channel: BTreeMap<String, [f64; 3]>,
 }
 
 /// Axis names, coordinates, unit and metadata of an array, without its values.

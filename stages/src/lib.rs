@@ -19,10 +19,11 @@ pub mod ops;
 pub mod range;
 pub mod registry;
 pub mod simulate;
+pub mod spatial;
 pub mod table;
 
 pub use array::{
-    Coord, Event, Joining, LabelledArray, Layout, Meta, SharedList, TrialInfo, Values,
+    Coord, Event, Joining, LabelledArray, Layout, Meta, Positions, SharedList, TrialInfo, Values,
 };
 pub use error::StageError;
 pub use op::{BoundOp, DynOp, Input, InputLayout, Notes, Op, OwnedInput};

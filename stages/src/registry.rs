@@ -6,8 +6,12 @@ use crate::ops;
 static REREFERENCE: Registered<ops::reref::ReReference> = Registered::new();
 static NOTCH: Registered<ops::notch::Notch> = Registered::new();
 static FILTER: Registered<ops::filter::Filter> = Registered::new();
+static RESAMPLE: Registered<ops::resample::Resample> = Registered::new();
+static INTERPOLATE: Registered<ops::interpolate::Interpolate> = Registered::new();
+static LAPLACIAN: Registered<ops::laplacian::Laplacian> = Registered::new();
 static EPOCH: Registered<ops::epoch::Epoch> = Registered::new();
 static WAVELET: Registered<ops::wavelet::Wavelet> = Registered::new();
+static HILBERT: Registered<ops::hilbert::Hilbert> = Registered::new();
 static CLUSTERING: Registered<ops::clustering::Clustering> = Registered::new();
 static BASELINE: Registered<ops::baseline::Baseline> = Registered::new();
 static AGGREGATE: Registered<ops::aggregate::Aggregate> = Registered::new();
@@ -18,8 +22,12 @@ pub fn all() -> Vec<&'static dyn DynOp> {
         &REREFERENCE,
         &NOTCH,
         &FILTER,
+        &RESAMPLE,
+        &INTERPOLATE,
+        &LAPLACIAN,
         &EPOCH,
         &WAVELET,
+        &HILBERT,
         &CLUSTERING,
         &BASELINE,
         &AGGREGATE,

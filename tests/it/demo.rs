@@ -440,6 +440,11 @@ fn new_writes_a_pipeline_that_fits_the_demo_data_and_plans() {
         summary.contains("channels (EEG, 19)") && summary.contains("channels (EOG, 1): VEOG"),
         "{summary}"
     );
+    // demo-data has no electrodes sidecar: its 19 standard 10-20 labels get derived positions.
+    assert!(
+        summary.contains("electrode positions: 19 channels, from standard 10-20/10-10 labels"),
+        "{summary}"
+    );
     let text = std::fs::read_to_string(&file).unwrap();
     assert!(text.contains("CONFIRM the mains frequency"), "{text}");
     // The written pipeline is valid for this data: `plan` accepts it (every unit not cached yet).
@@ -597,4 +602,140 @@ fn demo_study_as_brainvision_gives_the_edf_results() {
             && summary.contains("channels (EOG, 1): VEOG"),
         "{summary}"
     );
+}
+
+/// The group mean ppc of every pair for `condition` in the theta band and the `late` window (the
+/// measure and summary the README quotes), and the pairs.
+fn group_theta_ppc(out: &Path, condition: &str) -> (Vec<[String; 2]>, Vec<f64>) {
+    // demo.yaml's condition `left` holds the cue truth.json plants the coupling after.
+    let truth = read_json(&repo().join("demo-data/truth.json"));
+    assert_eq!(truth["coupling"]["condition"], "cue-left");
+    let side = read_json(&out.join("group/group.json"));
+    let group = Saved::load(&out.join("group/group.npy"), &side);
+    let g = group.at("statistic", group.label_index("statistic", "mean"));
+    let g = g.at("subject", g.label_index("subject", "group"));
+    let g = g.at("condition", g.label_index("condition", condition));
+    let g = g.at("measure", g.label_index("measure", "ppc"));
+    let g = g.at("band", g.label_index("band", "theta"));
+    let g = g.at("window", g.label_index("window", "late"));
+    (group.pairs(), g.vector())
+}
+
+/// Per subject, the raw (before baseline) plv of `pair` in 4–8 Hz over −0.5…1.0 s of the first
+/// condition, from the cached `sync` units of a run.
+fn raw_theta_plv(root: &Path, manifest: &Value, pair: &[String; 2]) -> Vec<f64> {
+    let cache = root.join("pipelines/.phasewise/objects");
+    let mut out = Vec::new();
+    for unit in manifest["units"].as_array().unwrap() {
+        if unit["stage"] != "sync" {
+            continue;
+        }
+        let key = unit["key"].as_str().unwrap();
+        let npy = cache.join(&key[..2]).join(format!("{key}.npy"));
+        let record: phasewise::store::ObjectRecord =
+            serde_json::from_value(read_json(&npy.with_extension("json"))).unwrap();
+        let sync = Saved::load(&npy, &serde_json::to_value(&record.layout).unwrap());
+        let sync = sync
+            .at("condition", 0)
+            .mean_in("freq", 4.0, 8.0)
+            .mean_in("time", -0.5, 1.0);
+        let i = pair_index(&sync.pairs(), pair);
+        out.push(
+            sync.at("measure", sync.label_index("measure", "plv"))
+                .vector()[i],
+        );
+    }
+    out
+}
+
+fn run_ok(pipeline: &str, root: &Path) -> Value {
+    let run = phasewise(&["run", pipeline], root);
+    assert!(
+        run.status.success(),
+        "{}",
+        String::from_utf8_lossy(&run.stderr)
+    );
+    let name = std::fs::read_to_string(root.join(pipeline)).unwrap();
+    let output = name
+        .lines()
+        .find_map(|l| l.strip_prefix("output: ../"))
+        .map(|l| l.split_whitespace().next().unwrap().to_string())
+        .expect("an output line");
+    read_json(&root.join(output).join("manifest.json"))
+}
+
+#[test]
+fn after_the_laplacian_the_planted_pair_stays_and_the_zero_lag_decoy_weakens() {
+    // pipelines/laplacian.yaml: demo.yaml with a surface Laplacian (positions derived from the
+    // 10-20 labels) before the epochs. The planted values in truth.json are the reference.
+    let tmp = project();
+    let root = tmp.path();
+    std::fs::copy(
+        repo().join("pipelines/laplacian.yaml"),
+        root.join("pipelines/laplacian.yaml"),
+    )
+    .unwrap();
+    let truth = read_json(&repo().join("demo-data/truth.json"));
+    let planted = string_pair(&truth["coupling"]["pair"]);
+    let decoy = string_pair(&truth["volume_conduction"]["pair"]);
+    let plain = run_ok("pipelines/demo.yaml", root);
+    let surface = run_ok("pipelines/laplacian.yaml", root);
+
+    let (pairs, ppc) = group_theta_ppc(&root.join("results/laplacian"), "left");
+    let best = (0..ppc.len())
+        .max_by(|&a, &b| ppc[a].total_cmp(&ppc[b]))
+        .unwrap();
+    eprintln!(
+        "laplacian: largest group ppc {:?} = {:.3}",
+        pairs[best], ppc[best]
+    );
+    assert_eq!(pairs[best], planted, "largest ppc at {:?}", pairs[best]);
+
+    let (before, after) = (
+        raw_theta_plv(root, &plain, &decoy),
+        raw_theta_plv(root, &surface, &decoy),
+    );
+    eprintln!("decoy plv per subject: wavelet {before:.3?}, after the Laplacian {after:.3?}");
+    assert_eq!(before.len(), after.len());
+    for (b, a) in before.iter().zip(&after) {
+        assert!(a < b, "the decoy's plv rose from {b} to {a}");
+    }
+    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
+    assert!(
+        mean(&after) < 0.8 * mean(&before),
+        "the decoy's mean plv fell only from {} to {}",
+        mean(&before),
+        mean(&after)
+    );
+}
+
+#[test]
+fn with_hilbert_instead_of_wavelet_the_planted_pair_is_still_the_strongest() {
+    // demo.yaml with its `tf` stage's op replaced by `hilbert` on the aggregate's own bands:
+    // the README's measure (group ppc, theta, late window, planted condition) must still be
+    // largest at the planted pair of truth.json.
+    let tmp = project();
+    let root = tmp.path();
+    let demo = std::fs::read_to_string(root.join("pipelines/demo.yaml")).unwrap();
+    let swapped = demo
+        .replace("output: ../results/demo", "output: ../results/hilbert")
+        .replace("op: wavelet", "op: hilbert")
+        .replace(
+            "      freqs: { from: 4, to: 30, count: 16, spacing: log }\n      cycles: { from: 3, to: 8 }\n",
+            "      bands: [[4, 8], [8, 12], [13, 30]]\n",
+        );
+    assert!(swapped.contains("op: hilbert") && swapped.contains("bands: [[4, 8]"));
+    std::fs::write(root.join("pipelines/hilbert.yaml"), swapped).unwrap();
+    run_ok("pipelines/hilbert.yaml", root);
+    let truth = read_json(&repo().join("demo-data/truth.json"));
+    let planted = string_pair(&truth["coupling"]["pair"]);
+    let (pairs, ppc) = group_theta_ppc(&root.join("results/hilbert"), "left");
+    let best = (0..ppc.len())
+        .max_by(|&a, &b| ppc[a].total_cmp(&ppc[b]))
+        .unwrap();
+    eprintln!(
+        "hilbert: largest group ppc {:?} = {:.3}",
+        pairs[best], ppc[best]
+    );
+    assert_eq!(pairs[best], planted, "largest ppc at {:?}", pairs[best]);
 }

@@ -4,6 +4,8 @@
 //!
 //! Everything here computes in `f64`; only the ops convert to and from the `f32` storage type.
 
+pub mod analytic;
 pub mod design;
 pub mod recording;
+pub mod resample;
 pub mod sos;

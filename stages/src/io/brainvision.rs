@@ -27,7 +27,7 @@ pub use header::{
 pub use markers::{marker_events, parse_markers, Marker};
 
 use super::channels::{check_unique, describe_label, Selection};
-use super::recording::{layout, sidecar_events};
+use super::recording::{add_positions_and_bad_channels, layout, sidecar_events};
 use super::tsv::{candidate_sidecars, read_channels};
 use super::EventSource;
 use crate::array::{Event, LabelledArray, Layout};
@@ -55,7 +55,8 @@ impl Opened {
         let bytes = std::fs::read(vhdr).map_err(|e| fail(vhdr, format!("cannot open: {e}")))?;
         let header = VhdrHeader::parse(vhdr, &decode_text(&bytes)).map_err(|e| fail(vhdr, e))?;
         let points = data_points(vhdr, &header)?;
-        let [events_path, channels_path] = candidate_sidecars(vhdr);
+        let [events_path, channels_path, electrodes_path, coordsystem_path] =
+            candidate_sidecars(vhdr);
         let sidecar = match channels_path.is_file() {
             true => Some(read_channels(&channels_path)?),
             false => None,
@@ -96,7 +97,13 @@ impl Opened {
                 &mut warnings,
             )?,
         };
-        let layout = layout(&selection, points, events);
+        let mut layout = layout(&selection, points, events);
+        add_positions_and_bad_channels(
+            &mut layout,
+            &selection,
+            sidecar.as_deref(),
+            [&electrodes_path, &coordsystem_path],
+        )?;
         Ok(Opened {
             header,
             selection,

@@ -152,9 +152,14 @@ pub fn read_recording_layout_without_events(path: &Path) -> Result<Layout, Stage
     Ok(AnyOpened::open(path, None)?.into_layout())
 }
 
+/// Bumped whenever what the reader makes of the same files changes (version 2: electrode
+/// positions and bad channels in the metadata); part of every source's key, so results cached
+/// from an older reader go stale.
+pub const READER_VERSION: u32 = 2;
+
 /// The other files that belong to a recording and exist, in a fixed order: a BrainVision
-/// header's data and marker files, then the BIDS sidecars (events, channels). Their bytes are
-/// part of the recording's content key.
+/// header's data and marker files, then the BIDS sidecars (events, channels, electrodes,
+/// coordinate system). Their bytes are part of the recording's content key.
 pub fn sidecar_paths(path: &Path) -> Vec<PathBuf> {
     let mut files = match Format::of(path) {
         Ok(Format::BrainVision) => brainvision::companion_files(path),

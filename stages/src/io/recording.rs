@@ -15,9 +15,12 @@ use ndarray::Array2;
 
 use super::channels::{select, Selection};
 use super::edf::{parse_record_tals, read_annotation_bytes, read_samples, Header, Scaling, BLOCK};
-use super::tsv::{candidate_sidecars, read_channels, read_events};
+use super::tsv::{
+    candidate_sidecars, read_channels, read_coordinate_units, read_electrodes, read_events,
+    ChannelRow,
+};
 use super::EventSource;
-use crate::array::{Coord, Event, LabelledArray, Layout, Meta};
+use crate::array::{Coord, Event, LabelledArray, Layout, Meta, Positions};
 use crate::error::StageError;
 
 /// A recording whose header and sidecars have been read and checked.
@@ -38,7 +41,8 @@ impl Opened {
         let fail = |m: String| StageError::input(format!("{}: {m}", path.display()));
         let mut file = File::open(path).map_err(|e| fail(format!("cannot open: {e}")))?;
         let header = read_header(&mut file).map_err(fail)?;
-        let [events_path, channels_path] = candidate_sidecars(path);
+        let [events_path, channels_path, electrodes_path, coordsystem_path] =
+            candidate_sidecars(path);
         let sidecar = match channels_path.is_file() {
             true => Some(read_channels(&channels_path)?),
             false => None,
@@ -53,7 +57,13 @@ impl Opened {
             (Some(found), Some(EventSource::Annotations)) => found,
             (_, Some(events)) => sidecar_events(path, events, &events_path, length, &mut warnings)?,
         };
-        let layout = layout(&selection, samples, events);
+        let mut layout = layout(&selection, samples, events);
+        add_positions_and_bad_channels(
+            &mut layout,
+            &selection,
+            sidecar.as_deref(),
+            [&electrodes_path, &coordsystem_path],
+        )?;
         Ok(Opened {
             path: path.to_path_buf(),
             header,
@@ -212,6 +222,100 @@ fn check_contiguous(stamps: &[f64], record_seconds: f64, rate: f64) -> Result<()
     Ok(())
 }
 
+/// The kept channels that the channels sidecar marks `status: bad`, in channel order.
+/// The electrode positions (from `electrodes` and its coordinate system, or derived for
+/// standard labels) and the channels `channels.tsv` marks bad, into `layout`'s metadata: the
+/// same for every format.
+pub(crate) fn add_positions_and_bad_channels(
+    layout: &mut Layout,
+    selection: &Selection,
+    sidecar: Option<&[ChannelRow]>,
+    [electrodes, coordsystem]: [&Path; 2],
+) -> Result<(), StageError> {
+    layout.meta.positions = positions(selection, electrodes, coordsystem)?;
+    let bad = bad_channels(selection, sidecar);
+    if !bad.is_empty() {
+        layout
+            .meta
+            .extra
+            .insert("bad_channels".into(), serde_json::json!(bad));
+    }
+    Ok(())
+}
+
+fn bad_channels(selection: &Selection, sidecar: Option<&[ChannelRow]>) -> Vec<String> {
+    let Some(rows) = sidecar else {
+        return Vec::new();
+    };
+    selection
+        .channels
+        .iter()
+        .filter(|c| rows.iter().any(|r| r.bad && r.name == c.name))
+        .map(|c| c.name.clone())
+        .collect()
+}
+
+/// Electrode positions: from the electrodes sidecar (with its coordinate system's unit) when it
+/// exists, else derived for the EEG channels with standard 10-20/10-10 labels
+/// ([`crate::spatial::standard`]); `None` when neither gives any.
+fn positions(
+    selection: &Selection,
+    electrodes: &Path,
+    coordsystem: &Path,
+) -> Result<Option<Box<Positions>>, StageError> {
+    let file_name = |p: &Path| {
+        p.file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default()
+    };
+    if electrodes.is_file() {
+        if !coordsystem.is_file() {
+            return Err(StageError::input(format!(
+                "{}: electrode positions need their coordinate system's unit, from {}, which                  does not exist",
+                electrodes.display(),
+                coordsystem.display()
+            )));
+        }
+        let to_metres = read_coordinate_units(coordsystem)?;
+        let rows = read_electrodes(electrodes, to_metres)?;
+        let by_channel = selection
+            .channels
+            .iter()
+            .filter_map(|c| {
+                let row = rows.iter().find(|(name, _)| name == &c.name)?;
+                row.1.map(|p| (c.name.clone(), p))
+            })
+            .collect();
+        return Ok(Some(Box::new(Positions {
+            source: file_name(electrodes),
+            units: "m".into(),
+            by_channel,
+        })));
+    }
+    let eeg: Vec<&str> = selection
+        .channels
+        .iter()
+        .filter(|c| c.kind == "EEG")
+        .map(|c| c.name.as_str())
+        .collect();
+    let by_channel: std::collections::BTreeMap<String, [f64; 3]> = eeg
+        .iter()
+        .filter_map(|n| crate::spatial::standard::position(n).map(|p| (n.to_string(), p)))
+        .collect();
+    if by_channel.is_empty() {
+        return Ok(None);
+    }
+    Ok(Some(Box::new(Positions {
+        source: format!(
+            "standard 10-20/10-10 labels, derived on a unit sphere ({} of {} EEG channels)",
+            by_channel.len(),
+            eeg.len()
+        ),
+        units: "1".into(),
+        by_channel,
+    })))
+}
+
 /// dims [channel, time], time k/fs in s, values in volts.
 pub(super) fn layout(selection: &Selection, samples: usize, events: Vec<Event>) -> Layout {
     let names = selection.channels.iter().map(|c| c.name.clone()).collect();
@@ -338,6 +442,76 @@ mod tests {
         assert_eq!(
             read_recording_layout(&path, EventSource::Annotations).unwrap(),
             array.layout
+        );
+    }
+
+    // BIDS electrodes.tsv (name, x, y, z; n/a allowed) with coordsystem.json's
+    // EEGCoordinateUnits (Pernet et al. 2019); without them, standard labels get derived
+    // positions. channels.tsv status `bad` is handed on.
+    #[test]
+    fn positions_from_the_electrodes_sidecar_or_derived() {
+        let (dir, path) = recording();
+        let layout = read_recording_layout(&path, EventSource::Annotations).unwrap();
+        let derived = layout.meta.positions.unwrap();
+        assert!(
+            derived.source.starts_with("standard 10-20/10-10"),
+            "{}",
+            derived.source
+        );
+        assert!(derived.source.contains("(2 of 2 EEG channels)"));
+        let cz = derived.by_channel["Cz"];
+        assert!(cz[0].abs() < 1e-15 && cz[1].abs() < 1e-15 && (cz[2] - 1.0).abs() < 1e-15);
+        assert_eq!(derived.by_channel.get("left"), None);
+
+        let electrodes = dir.path().join("sub-01_task-x_electrodes.tsv");
+        let coords = dir.path().join("sub-01_task-x_coordsystem.json");
+        std::fs::write(
+            &electrodes,
+            "name\tx\ty\tz\nFz\t0\t7.1\t6.2\nCz\tn/a\tn/a\tn/a\n",
+        )
+        .unwrap();
+        let err = error(&path, EventSource::Annotations);
+        assert!(
+            err.contains("coordsystem.json") && err.contains("does not exist"),
+            "{err}"
+        );
+        std::fs::write(
+            &coords,
+            r#"{"EEGCoordinateSystem": "CapTrak", "EEGCoordinateUnits": "cm"}"#,
+        )
+        .unwrap();
+        let channels = dir.path().join("sub-01_task-x_channels.tsv");
+        std::fs::write(
+            &channels,
+            "name\ttype\tstatus\nFz\tEEG\tgood\nCz\tEEG\tbad\nleft\tEOG\tn/a\n",
+        )
+        .unwrap();
+        assert_eq!(
+            sidecar_paths(&path),
+            [channels, electrodes.clone(), coords.clone()]
+        );
+        let layout = read_recording_layout(&path, EventSource::Annotations).unwrap();
+        let from_file = layout.meta.positions.unwrap();
+        assert_eq!(from_file.source, "sub-01_task-x_electrodes.tsv");
+        assert_eq!(from_file.units, "m");
+        assert_eq!(
+            from_file.by_channel.len(),
+            1,
+            "Cz's n/a row gives no position"
+        );
+        let fz = from_file.by_channel["Fz"];
+        assert!((fz[1] - 0.071).abs() < 1e-15 && (fz[2] - 0.062).abs() < 1e-15);
+        assert_eq!(layout.meta.extra["bad_channels"], serde_json::json!(["Cz"]));
+
+        std::fs::write(&coords, r#"{"EEGCoordinateUnits": "n/a"}"#).unwrap();
+        let err = error(&path, EventSource::Annotations);
+        assert!(err.contains("EEGCoordinateUnits is \"n/a\""), "{err}");
+        std::fs::write(&coords, r#"{"EEGCoordinateUnits": "mm"}"#).unwrap();
+        std::fs::write(&electrodes, "name\tx\ty\tz\nFz\t0\tnear\t6.2\n").unwrap();
+        let err = error(&path, EventSource::Annotations);
+        assert!(
+            err.contains("electrodes.tsv: line 2: y is \"near\""),
+            "{err}"
         );
     }
 

@@ -16,9 +16,11 @@ use crate::error::StageError;
 /// BIDS data-type suffixes that the sidecar names replace.
 const DATA_SUFFIXES: [&str; 3] = ["eeg", "ieeg", "meg"];
 
-/// The events and channels sidecars a recording would have, existing or not, in that order:
-/// `sub-01_task-cue_eeg.edf` → `sub-01_task-cue_events.tsv`, `sub-01_task-cue_channels.tsv`.
-pub fn candidate_sidecars(recording: &Path) -> [PathBuf; 2] {
+/// The events, channels, electrodes and coordinate-system sidecars a recording would have,
+/// existing or not, in that order: `sub-01_task-cue_eeg.edf` → `sub-01_task-cue_events.tsv`,
+/// `sub-01_task-cue_channels.tsv`, `sub-01_task-cue_electrodes.tsv`,
+/// `sub-01_task-cue_coordsystem.json`.
+pub fn candidate_sidecars(recording: &Path) -> [PathBuf; 4] {
     let stem = recording
         .file_stem()
         .map(|s| s.to_string_lossy().into_owned())
@@ -27,7 +29,13 @@ pub fn candidate_sidecars(recording: &Path) -> [PathBuf; 2] {
         Some((base, suffix)) if DATA_SUFFIXES.contains(&suffix) => base.to_string(),
         _ => stem,
     };
-    ["events", "channels"].map(|kind| recording.with_file_name(format!("{base}_{kind}.tsv")))
+    [
+        "events.tsv",
+        "channels.tsv",
+        "electrodes.tsv",
+        "coordsystem.json",
+    ]
+    .map(|kind| recording.with_file_name(format!("{base}_{kind}")))
 }
 
 /// One row of a channels sidecar.
@@ -39,6 +47,8 @@ pub struct ChannelRow {
     pub kind: Option<String>,
     /// Units, `None` when absent or `n/a`.
     pub units: Option<String>,
+    /// True when the `status` column says `bad`.
+    pub bad: bool,
 }
 
 /// A parsed TSV file: the header's column names and the data rows with their line numbers.
@@ -185,6 +195,7 @@ pub fn read_channels(path: &Path) -> Result<Vec<ChannelRow>, StageError> {
     let name_col = table.required(path, "name")?;
     let type_col = table.required(path, "type")?;
     let units_col = table.column("units");
+    let status_col = table.column("status");
     let present = |cell: &str| (!missing(cell)).then(|| cell.to_string());
     Ok(table
         .rows
@@ -193,8 +204,75 @@ pub fn read_channels(path: &Path) -> Result<Vec<ChannelRow>, StageError> {
             name: cells[name_col].clone(),
             kind: present(&cells[type_col]).map(|t| t.to_ascii_uppercase()),
             units: units_col.and_then(|c| present(&cells[c])),
+            bad: status_col.is_some_and(|c| cells[c].eq_ignore_ascii_case("bad")),
         })
         .collect())
+}
+
+/// One electrode of an electrodes sidecar: its name and position (metres), if known.
+pub type Electrode = (String, Option<[f64; 3]>);
+
+/// Read an electrodes sidecar (BIDS: columns name, x, y, z; `n/a` for an unknown position):
+/// each named electrode with its position, `None` when any coordinate is `n/a`. Coordinates
+/// are multiplied by `to_metres`.
+pub fn read_electrodes(path: &Path, to_metres: f64) -> Result<Vec<Electrode>, StageError> {
+    let table = Table::read(path)?;
+    let name_col = table.required(path, "name")?;
+    let cols = [
+        table.required(path, "x")?,
+        table.required(path, "y")?,
+        table.required(path, "z")?,
+    ];
+    let mut out = Vec::with_capacity(table.rows.len());
+    for (line, cells) in &table.rows {
+        if cols.iter().any(|&c| missing(&cells[c])) {
+            out.push((cells[name_col].clone(), None));
+            continue;
+        }
+        let mut p = [0.0; 3];
+        for (k, &c) in cols.iter().enumerate() {
+            p[k] = match cells[c].parse::<f64>() {
+                Ok(v) if v.is_finite() => v * to_metres,
+                _ => {
+                    return Err(fail(
+                        path,
+                        format!(
+                            "line {line}: {} is {:?}, expected a number or n/a",
+                            ["x", "y", "z"][k],
+                            cells[c]
+                        ),
+                    ))
+                }
+            };
+        }
+        out.push((cells[name_col].clone(), Some(p)));
+    }
+    Ok(out)
+}
+
+/// The factor to metres of the electrode coordinates that a BIDS `*_coordsystem.json` declares
+/// (`EEGCoordinateUnits`, or `iEEGCoordinateUnits`: `m`, `cm` or `mm`).
+pub fn read_coordinate_units(path: &Path) -> Result<f64, StageError> {
+    let text = std::fs::read_to_string(path)
+        .map_err(|e| StageError::input(format!("{}: cannot read: {e}", path.display())))?;
+    let json: serde_json::Value =
+        serde_json::from_str(&text).map_err(|e| fail(path, format!("not valid JSON: {e}")))?;
+    let unit = ["EEGCoordinateUnits", "iEEGCoordinateUnits"]
+        .iter()
+        .find_map(|k| json.get(*k).and_then(|v| v.as_str()));
+    match unit {
+        Some("m") => Ok(1.0),
+        Some("cm") => Ok(0.01),
+        Some("mm") => Ok(0.001),
+        Some(other) => Err(fail(
+            path,
+            format!("EEGCoordinateUnits is {other:?}; expected \"m\", \"cm\" or \"mm\""),
+        )),
+        None => Err(fail(
+            path,
+            "no EEGCoordinateUnits (or iEEGCoordinateUnits) field: the electrode positions' unit is unknown",
+        )),
+    }
 }
 
 #[cfg(test)]
@@ -211,8 +289,16 @@ mod tests {
     // sub-<label>[_task-<label>]_eeg.edf with sub-<label>[_task-<label>]_events.tsv beside it.
     #[test]
     fn sidecar_names_replace_the_data_type_suffix() {
-        let [events, channels] =
+        let [events, channels, electrodes, coordsystem] =
             candidate_sidecars(Path::new("/d/sub-01/eeg/sub-01_task-cue_eeg.edf"));
+        assert_eq!(
+            electrodes,
+            Path::new("/d/sub-01/eeg/sub-01_task-cue_electrodes.tsv")
+        );
+        assert_eq!(
+            coordsystem,
+            Path::new("/d/sub-01/eeg/sub-01_task-cue_coordsystem.json")
+        );
         assert_eq!(
             events,
             Path::new("/d/sub-01/eeg/sub-01_task-cue_events.tsv")
@@ -221,9 +307,9 @@ mod tests {
             channels,
             Path::new("/d/sub-01/eeg/sub-01_task-cue_channels.tsv")
         );
-        let [events, _] = candidate_sidecars(Path::new("rec_ieeg.bdf"));
+        let [events, ..] = candidate_sidecars(Path::new("rec_ieeg.bdf"));
         assert_eq!(events, Path::new("rec_events.tsv"));
-        let [events, _] = candidate_sidecars(Path::new("night1.edf"));
+        let [events, ..] = candidate_sidecars(Path::new("night1.edf"));
         assert_eq!(events, Path::new("night1_events.tsv"));
     }
 
@@ -307,7 +393,8 @@ mod tests {
             ChannelRow {
                 name: "HEOG".into(),
                 kind: Some("EOG".into()),
-                units: None
+                units: None,
+                bad: false,
             }
         );
         assert_eq!(rows[2].kind, None);

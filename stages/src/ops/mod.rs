@@ -6,11 +6,15 @@ pub mod baseline;
 pub mod clustering;
 pub mod epoch;
 pub mod filter;
+pub mod hilbert;
+pub mod interpolate;
+pub mod laplacian;
 pub mod measures;
 pub mod morlet;
 pub mod notch;
 pub mod params_de;
 pub mod reref;
+pub mod resample;
 #[cfg(test)]
 mod tf_testing;
 pub mod trial_sums;

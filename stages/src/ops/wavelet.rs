@@ -153,7 +153,8 @@ fn spaced(from: f64, to: f64, count: usize, spacing: Spacing) -> Vec<f64> {
         .collect()
 }
 
-fn check_freqs(freqs: &FreqSpec) -> Result<(), StageError> {
+/// Checks of a frequency list or range on its own (shared with [`super::hilbert`]).
+pub(crate) fn check_freqs(freqs: &FreqSpec) -> Result<(), StageError> {
     match freqs {
         FreqSpec::Range(r) => {
             positive("freqs.from", r.from, "a frequency")?;
@@ -220,13 +221,20 @@ fn check_cycles(cycles: &CycleSpec) -> Result<(), StageError> {
     }
 }
 
-impl WaveletParams {
-    /// The frequencies in Hz, in output order.
-    pub fn frequencies(&self) -> Vec<f64> {
-        match &self.freqs {
+impl FreqSpec {
+    /// The frequencies in Hz, in the order given (a range from `from` to `to`).
+    pub fn values(&self) -> Vec<f64> {
+        match self {
             FreqSpec::Range(r) => spaced(r.from, r.to, r.count, r.spacing),
             FreqSpec::List(list) => list.clone(),
         }
+    }
+}
+
+impl WaveletParams {
+    /// The frequencies in Hz, in output order.
+    pub fn frequencies(&self) -> Vec<f64> {
+        self.freqs.values()
     }
 
     /// The number of cycles of each frequency's wavelet.
@@ -240,7 +248,7 @@ impl WaveletParams {
 
 /// The dotted path of the parameter that produced frequency `i` (for error messages).
 /// A range's highest frequency is `to`, so a range is always blamed on `freqs.to`.
-fn freq_field(freqs: &FreqSpec, i: usize) -> String {
+pub(crate) fn freq_field(freqs: &FreqSpec, i: usize) -> String {
     match freqs {
         FreqSpec::Range(_) => "freqs.to".into(),
         FreqSpec::List(_) => format!("freqs[{i}]"),
@@ -268,12 +276,17 @@ fn tolerance(fs: f64) -> f64 {
     1e-6 / fs
 }
 
-/// The kept samples of an epoch with time coordinates `times`.
-fn keep_for(params: &WaveletParams, times: &[f64]) -> Result<Keep, StageError> {
+/// The kept samples of an epoch with time coordinates `times`, for the `crop` and `stride`
+/// params of a time-frequency op (shared with [`super::hilbert`]).
+pub(crate) fn keep_for(
+    crop: Option<[f64; 2]>,
+    stride: usize,
+    times: &[f64],
+) -> Result<Keep, StageError> {
     let (Some(&first), Some(&last)) = (times.first(), times.last()) else {
         return Err(StageError::data("the input epochs have no time points"));
     };
-    let (start, end) = match params.crop {
+    let (start, end) = match crop {
         None => (0, times.len() - 1),
         Some([t0, t1]) => {
             if !range::within_axis([t0, t1], first, last) {
@@ -295,12 +308,28 @@ fn keep_for(params: &WaveletParams, times: &[f64]) -> Result<Keep, StageError> {
             }
         }
     };
-    let stride = params.stride;
     Ok(Keep {
         start,
         stride,
         count: (end - start) / stride + 1,
     })
+}
+
+/// `crop` must be `[t0, t1]` with t0 ≤ t1 and `stride` at least 1 (shared with
+/// [`super::hilbert`]).
+pub(crate) fn check_crop_stride(crop: Option<[f64; 2]>, stride: usize) -> Result<(), StageError> {
+    if let Some([t0, t1]) = crop {
+        if !(t0.is_finite() && t1.is_finite() && t0 <= t1) {
+            return Err(StageError::param(
+                "crop",
+                format!("expected [t0, t1] with t0 ≤ t1 (s), found [{t0}, {t1}]"),
+            ));
+        }
+    }
+    if stride == 0 {
+        return Err(StageError::param("stride", "expected at least 1, found 0"));
+    }
+    Ok(())
 }
 
 /// Checks that the input is real epoched data `[channel, trial, time]`.
@@ -327,7 +356,7 @@ fn plan(params: &WaveletParams, input: &Layout) -> Result<Plan, StageError> {
     let freqs = params.frequencies();
     check_nyquist(params, &freqs, fs)?;
     let cycles = params.cycle_counts(freqs.len());
-    let keep = keep_for(params, times)?;
+    let keep = keep_for(params.crop, params.stride, times)?;
     let kept_times = times[keep.start..]
         .iter()
         .step_by(keep.stride)
@@ -389,8 +418,12 @@ pub fn edge_warning(params: &WaveletParams, input: &Layout) -> Result<Option<Str
 }
 
 /// Fails on the first (channel, trial) holding a NaN or infinite sample: one would spread over
-/// every coefficient of that trial through the FFT.
-fn check_finite(values: &[f32], layout: &Layout, epoch_len: usize) -> Result<(), StageError> {
+/// every coefficient of that trial through the FFT. (Shared with [`super::hilbert`].)
+pub(crate) fn check_finite(
+    values: &[f32],
+    layout: &Layout,
+    epoch_len: usize,
+) -> Result<(), StageError> {
     // A pass without early exit first (it vectorises; the search below does not), so clean
     // data costs one quick read.
     let finite = |c: &[f32]| c.iter().fold(true, |ok, v| ok & v.is_finite());
@@ -409,7 +442,7 @@ fn check_finite(values: &[f32], layout: &Layout, epoch_len: usize) -> Result<(),
         .unwrap_or_else(|| format!("#{}", signal / trials));
     Err(StageError::data(format!(
         "channel {channel}, trial {} holds a non-finite sample ({}) at index {sample}; \
-         wavelet needs finite data",
+         a time-frequency transform needs finite data",
         signal % trials,
         values[bad]
     )))
@@ -423,18 +456,7 @@ impl Op for Wavelet {
     fn check(p: &Self::Params) -> Result<(), StageError> {
         check_freqs(&p.freqs)?;
         check_cycles(&p.cycles)?;
-        if let Some([t0, t1]) = p.crop {
-            if !(t0.is_finite() && t1.is_finite() && t0 <= t1) {
-                return Err(StageError::param(
-                    "crop",
-                    format!("expected [t0, t1] with t0 ≤ t1 (s), found [{t0}, {t1}]"),
-                ));
-            }
-        }
-        if p.stride == 0 {
-            return Err(StageError::param("stride", "expected at least 1, found 0"));
-        }
-        Ok(())
+        check_crop_stride(p.crop, p.stride)
     }
 
     fn layout(p: &Self::Params, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
