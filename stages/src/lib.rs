@@ -18,6 +18,7 @@ pub mod op;
 pub mod ops;
 pub mod registry;
 pub mod simulate;
+pub mod stats;
 pub mod table;
 
 pub use array::{

@@ -11,6 +11,7 @@ static WAVELET: Registered<ops::wavelet::Wavelet> = Registered::new();
 static CLUSTERING: Registered<ops::clustering::Clustering> = Registered::new();
 static BASELINE: Registered<ops::baseline::Baseline> = Registered::new();
 static AGGREGATE: Registered<ops::aggregate::Aggregate> = Registered::new();
+static CONTRAST: Registered<ops::contrast::Contrast> = Registered::new();
 
 /// All ops, in the order a pipeline usually uses them.
 pub fn all() -> Vec<&'static dyn DynOp> {
@@ -23,6 +24,7 @@ pub fn all() -> Vec<&'static dyn DynOp> {
         &CLUSTERING,
         &BASELINE,
         &AGGREGATE,
+        &CONTRAST,
     ]
 }
 
