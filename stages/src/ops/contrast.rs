@@ -601,20 +601,15 @@ struct MapResult {
 struct MapInput<'a> {
     maps: Vec<&'a [f32]>,
     q: &'a [f64],
-    threshold_s: &'a [f64],
+    threshold_s: &'a [f32],
     cols: usize,
 }
 
-fn signs(s: &[f32], thr: &[f64], sign: &mut [i8]) {
+/// +1 where S is above the point's threshold, −1 where below its negative, else 0 (NaN: 0).
+/// Branch-free, so that it vectorises.
+fn signs(s: &[f32], thr: &[f32], sign: &mut [i8]) {
     for ((o, &x), &c) in sign.iter_mut().zip(s).zip(thr) {
-        let x = f64::from(x);
-        *o = if x > c {
-            1
-        } else if x < -c {
-            -1
-        } else {
-            0
-        };
+        *o = i8::from(x > c) - i8::from(x < -c);
     }
 }
 
@@ -630,8 +625,18 @@ fn visit_masses(
     mut each: impl FnMut(f64),
 ) {
     let mut label = 0;
-    for start in 0..sign.len() {
-        if sign[start] == 0 || seen[start] == mark {
+    let mut start = 0;
+    while start < sign.len() {
+        // Runs of points outside every cluster (most of a null map) are skipped 8 at a time.
+        if let Some(word) = sign.get(start..start + 8) {
+            if word.iter().fold(0u8, |a, &x| a | x as u8) == 0 {
+                start += 8;
+                continue;
+            }
+        }
+        let first = start;
+        start += 1;
+        if sign[first] == 0 || seen[first] == mark {
             continue;
         }
         label += 1;
@@ -639,7 +644,7 @@ fn visit_masses(
         stats::fill(
             sign,
             cols,
-            start,
+            first,
             |i| {
                 if seen[i] == mark {
                     return false;
@@ -810,13 +815,14 @@ pub fn test(subjects: &[&[f32]], flips: &Flips, settings: Settings) -> Tested {
         });
     let c2 = settings.threshold_t * settings.threshold_t;
     // |t| > c ⇔ S² (n − 1 + c²) > c² n Q.
-    let threshold_s: Vec<f64> = q
+    // Compared with the f32 sums S in f32, for the observed map and every pattern alike.
+    let threshold_s: Vec<f32> = q
         .iter()
         .map(|&q| {
             if q.is_finite() && q > 0.0 {
-                (c2 * nf * q / (nf - 1.0 + c2)).sqrt()
+                (c2 * nf * q / (nf - 1.0 + c2)).sqrt() as f32
             } else {
-                f64::INFINITY
+                f32::INFINITY
             }
         })
         .collect();
@@ -835,7 +841,7 @@ impl Tested {
         mut self,
         subjects: &[&[f32]],
         q: &[f64],
-        threshold_s: &[f64],
+        threshold_s: &[f32],
         flips: &Flips,
         settings: Settings,
     ) -> Tested {
