@@ -1084,6 +1084,15 @@ impl Op for Contrast {
                 p.alpha
             ));
         }
+        let family = pairs * rows * cols;
+        if p.correction == Correction::Fdr && (count as f64) * p.alpha < family as f64 {
+            notes.warn(format!(
+                "contrast: fdr over {family} points per measure needs permutation p-values down \
+                 to alpha / {family}, but {count} patterns give none below 1/{count}: nothing \
+                 can be significant unless permutations ≥ {:.0} (or narrow pairs, freqs, times)",
+                (family as f64 / p.alpha).ceil()
+            ));
+        }
         let flips = Flips::new(n, count, exact, p.seed);
         let settings = Settings {
             correction: p.correction,
@@ -1623,6 +1632,104 @@ mod tests {
                 .sum();
             let written: f64 = cells[8].parse().unwrap();
             assert!((written - mass).abs() <= 1e-6 * mass.abs(), "{row}");
+        }
+    }
+
+    /// Null studies (and studies with a planted effect) for the calibration table in
+    /// bench/contrast-calibration.md: each study has 12 subjects, 4 pairs of 10 × 12 maps of
+    /// normal noise smoothed by a 3 × 3 box (so neighbouring points correlate, as in real maps),
+    /// 1000 random sign patterns (2^12 > 1000), α = 0.05, cluster threshold 0.05. A study counts
+    /// as a false positive when any point is significant. The 95 % interval of a share is Wilson's
+    /// score interval (Wilson 1927, J Am Stat Assoc 22:209–212).
+    #[test]
+    #[ignore = "calibration, minutes of CPU: cargo test --release -p phasewise-stages calibrate -- --ignored --nocapture"]
+    fn calibrate_family_wise_error_and_power() {
+        use rand::SeedableRng;
+        use rand_distr::{Distribution, StandardNormal};
+        let (n, maps, rows, cols) = (12usize, 4usize, 10usize, 12usize);
+        let len = maps * rows * cols;
+        let study = |seed: u64, effect: f64| -> Vec<Vec<f32>> {
+            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+            (0..n)
+                .map(|_| {
+                    let raw: Vec<f64> = (0..len).map(|_| StandardNormal.sample(&mut rng)).collect();
+                    (0..len)
+                        .map(|i| {
+                            let (m, r, c) = (i / (rows * cols), i / cols % rows, i % cols);
+                            let mut acc = 0.0;
+                            for dr in -1i64..=1 {
+                                for dc in -1i64..=1 {
+                                    let (rr, cc) = (r as i64 + dr, c as i64 + dc);
+                                    let (rr, cc) = (
+                                        rr.clamp(0, rows as i64 - 1),
+                                        cc.clamp(0, cols as i64 - 1),
+                                    );
+                                    acc += raw[m * rows * cols + rr as usize * cols + cc as usize];
+                                }
+                            }
+                            // Effect: a 3 × 4 patch of pair 0, in units of the smoothed SD (1/3).
+                            let inside = m == 0 && (3..6).contains(&r) && (4..8).contains(&c);
+                            (acc / 9.0 + if inside { effect / 3.0 } else { 0.0 }) as f32
+                        })
+                        .collect()
+                })
+                .collect()
+        };
+        let wilson = |k: usize, total: usize| {
+            let (p, m, z) = (k as f64 / total as f64, total as f64, 1.96f64);
+            let centre = (p + z * z / (2.0 * m)) / (1.0 + z * z / m);
+            let half = z * (p * (1.0 - p) / m + z * z / (4.0 * m * m)).sqrt() / (1.0 + z * z / m);
+            (p, centre - half, centre + half)
+        };
+        let corrections = [Correction::Cluster, Correction::Max, Correction::Fdr];
+        let run = |data: &[Vec<f32>], seed: u64, c: Correction| {
+            let views: Vec<&[f32]> = data.iter().map(|s| s.as_slice()).collect();
+            let flips = Flips::new(n, 1000, false, seed);
+            let settings = Settings {
+                correction: c,
+                threshold_t: stats::t_isf(0.025, (n - 1) as f64),
+                maps_per_family: maps,
+                rows,
+                cols,
+            };
+            test(&views, &flips, settings).p
+        };
+        let studies = 500;
+        println!("| correction | null studies | with any significant point | family-wise error | 95 % interval |");
+        println!("|---|---|---|---|---|");
+        let nulls: Vec<Vec<Vec<f32>>> = (0..studies).map(|s| study(1000 + s as u64, 0.0)).collect();
+        for c in corrections {
+            let hits = nulls
+                .iter()
+                .enumerate()
+                .filter(|(s, d)| run(d, *s as u64, c).iter().any(|&p| p <= 0.05))
+                .count();
+            let (p, lo, hi) = wilson(hits, studies);
+            println!("| {c:?} | {studies} | {hits} | {p:.3} | [{lo:.3}, {hi:.3}] |");
+        }
+        println!();
+        println!("| effect (SD) | cluster | max | fdr |");
+        println!("|---|---|---|---|");
+        let planted = 200;
+        for effect in [0.5, 1.0, 1.5, 2.0] {
+            let data: Vec<_> = (0..planted)
+                .map(|s| study(5000 + s as u64, effect))
+                .collect();
+            let power: Vec<String> = corrections
+                .iter()
+                .map(|&c| {
+                    let found = data
+                        .iter()
+                        .enumerate()
+                        .filter(|(s, d)| {
+                            let p = run(d, *s as u64, c);
+                            (3..6).any(|r| (4..8).any(|col| p[r * cols + col] <= 0.05))
+                        })
+                        .count();
+                    format!("{:.2}", found as f64 / planted as f64)
+                })
+                .collect();
+            println!("| {effect} | {} |", power.join(" | "));
         }
     }
 }
