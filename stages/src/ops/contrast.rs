@@ -53,7 +53,7 @@ use serde_json::json;
 use crate::array::{Coord, LabelledArray, Layout, Meta};
 use crate::error::StageError;
 use crate::op::{Input, InputLayout, Notes, Op};
-use crate::ops::aggregate::Over;
+use crate::ops::aggregate::{with_subject, Over};
 use crate::ops::baseline::{points_within, range_text};
 use crate::ops::clustering::PairSpec;
 use crate::stats;
@@ -160,16 +160,6 @@ struct Plan {
 }
 
 const DIMS: [&str; 5] = ["condition", "measure", "pair", "freq", "time"];
-
-fn subject_error(e: StageError, id: &str) -> StageError {
-    match e {
-        StageError::Param { field, message } => {
-            StageError::param(field, format!("subject {id}: {message}"))
-        }
-        StageError::Data(m) => StageError::data(format!("subject {id}: {m}")),
-        StageError::Input(m) => StageError::input(format!("subject {id}: {m}")),
-    }
-}
 
 fn find_condition(field: &str, conditions: &[String], name: &str) -> Result<usize, StageError> {
     conditions.iter().position(|c| c == name).ok_or_else(|| {
@@ -414,7 +404,7 @@ fn output_layout(p: &ContrastParams, prepared: &Layout, n: usize) -> Layout {
 fn plan_all(p: &ContrastParams, inputs: &[(&str, &Layout)]) -> Result<Layout, StageError> {
     let mut first: Option<(&str, Layout)> = None;
     for (id, layout) in inputs {
-        let plan = plan_one(p, layout).map_err(|e| subject_error(e, id))?;
+        let plan = plan_one(p, layout).map_err(|e| with_subject(e, id))?;
         match &first {
             None => first = Some((id, plan.prepared)),
             Some((first_id, want)) => {
@@ -1044,7 +1034,7 @@ impl Op for Contrast {
     /// every subject's input at once.
     fn prepare(p: &Self::Params, input: &Input<'_>) -> Option<Result<LabelledArray, StageError>> {
         let id = input.subject.unwrap_or("?");
-        Some(prepare_one(p, input.array).map_err(|e| subject_error(e, id)))
+        Some(prepare_one(p, input.array).map_err(|e| with_subject(e, id)))
     }
 
     fn join(
