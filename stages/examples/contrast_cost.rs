@@ -1,6 +1,10 @@
 //! How long `contrast`'s permutations take on a study of a given size (a hand measurement, not
 //! a test): `cargo run --release -p phasewise-stages --example contrast_cost -- SUBJECTS PAIRS
 //! FREQS TIMES PATTERNS [cluster|max|fdr]`. The data are independent normal draws (no effect).
+//!
+//! Measured by hand on 2026-12-03 (commit 96c62b8's loop, two shared cores under a load of ~10):
+//! 20 subjects × 2016 pairs × 30 freqs × 200 times, 4096 patterns, cluster: 160 s of CPU (user),
+//! 1.6 GB peak memory; 100 pairs: 8.1 s of CPU. About 80 s of wall time on two idle cores.
 
 use std::time::Instant;
 
