@@ -20,6 +20,7 @@ pub mod range;
 pub mod registry;
 pub mod simulate;
 pub mod spatial;
+pub mod stats;
 pub mod table;
 
 pub use array::{

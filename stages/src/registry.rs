@@ -15,6 +15,7 @@ static HILBERT: Registered<ops::hilbert::Hilbert> = Registered::new();
 static CLUSTERING: Registered<ops::clustering::Clustering> = Registered::new();
 static BASELINE: Registered<ops::baseline::Baseline> = Registered::new();
 static AGGREGATE: Registered<ops::aggregate::Aggregate> = Registered::new();
+static CONTRAST: Registered<ops::contrast::Contrast> = Registered::new();
 
 /// All ops, in the order a pipeline usually uses them.
 pub fn all() -> Vec<&'static dyn DynOp> {
@@ -31,6 +32,7 @@ pub fn all() -> Vec<&'static dyn DynOp> {
         &CLUSTERING,
         &BASELINE,
         &AGGREGATE,
+        &CONTRAST,
     ]
 }
 

@@ -143,6 +143,9 @@ pub fn write_tidy_tsv<E: Send>(
     array: &LabelledArray,
     sink: &mut (dyn FnMut(&str) -> Result<(), E> + Send),
 ) -> Result<(), E> {
+    if let Some(text) = crate::ops::contrast::findings_tsv(array) {
+        return sink(&text);
+    }
     let layout = &array.layout;
     let (pivot, row_axes, header) = columns(array);
     let row_shape: Vec<usize> = row_axes.iter().map(|&a| axis_len(array, a)).collect();

@@ -182,11 +182,16 @@ fn statuses(manifest: &Value) -> Vec<(String, String)> {
 /// Lay out a project in a temporary folder: `pipelines/demo.yaml` copied, `demo-data` linked, so
 /// outputs and cache stay out of the repository.
 fn project() -> tempfile::TempDir {
+    project_with("demo.yaml")
+}
+
+/// [`project`] with another pipeline of `pipelines/`.
+fn project_with(pipeline: &str) -> tempfile::TempDir {
     let tmp = tempfile::tempdir().unwrap();
     std::fs::create_dir(tmp.path().join("pipelines")).unwrap();
     std::fs::copy(
-        repo().join("pipelines/demo.yaml"),
-        tmp.path().join("pipelines/demo.yaml"),
+        repo().join("pipelines").join(pipeline),
+        tmp.path().join("pipelines").join(pipeline),
     )
     .unwrap();
     std::os::unix::fs::symlink(repo().join("demo-data"), tmp.path().join("demo-data")).unwrap();
@@ -358,6 +363,78 @@ fn demo_pipeline_finds_the_planted_coupling_and_reruns_only_what_a_change_touche
         };
         assert_eq!(status, expected, "stage {stage}");
     }
+}
+
+#[test]
+fn stats_pipeline_finds_the_planted_coupling_as_one_significant_cluster() {
+    // pipelines/stats.yaml: left − right across the 6 demo subjects, cluster correction over all
+    // pairs of each measure, all 2^6 = 64 sign patterns. A pattern and its mirror image give the
+    // same largest |mass|, so the smallest p is 2/64.
+    let tmp = project_with("stats.yaml");
+    let root = tmp.path();
+    let truth = read_json(&repo().join("demo-data/truth.json"));
+    let run = phasewise(&["run", "pipelines/stats.yaml"], root);
+    assert!(
+        run.status.success(),
+        "{}",
+        String::from_utf8_lossy(&run.stderr)
+    );
+    let table = std::fs::read_to_string(root.join("results/stats/contrast.tsv")).unwrap();
+    let mut lines = table.lines();
+    let header: Vec<&str> = lines.next().unwrap().split('\t').collect();
+    assert_eq!(
+        header,
+        [
+            "measure",
+            "channel_a",
+            "channel_b",
+            "cluster",
+            "freq_from",
+            "freq_to",
+            "time_from",
+            "time_to",
+            "mass",
+            "peak_t",
+            "p",
+            "significant"
+        ]
+    );
+    let rows: Vec<Vec<&str>> = lines.map(|l| l.split('\t').collect()).collect();
+    assert!(!rows.is_empty());
+    let planted = string_pair(&truth["coupling"]["pair"]);
+    let zero_lag = string_pair(&truth["volume_conduction"]["pair"]);
+    let freq = truth["coupling"]["frequency_hz"].as_f64().unwrap();
+    let window = truth["coupling"]["window_s"].as_array().unwrap();
+    let (w0, w1) = (window[0].as_f64().unwrap(), window[1].as_f64().unwrap());
+    let num = |s: &str| s.parse::<f64>().unwrap();
+    let significant: Vec<&Vec<&str>> = rows.iter().filter(|r| r[11] == "true").collect();
+    for measure in ["ppc", "wpli"] {
+        let found: Vec<_> = significant.iter().filter(|r| r[0] == measure).collect();
+        assert_eq!(found.len(), 1, "{measure}: {found:?}");
+        let r = found[0];
+        assert_eq!(
+            [r[1], r[2]],
+            [planted[0].as_str(), planted[1].as_str()],
+            "{r:?}"
+        );
+        assert!(num(r[4]) <= freq && freq <= num(r[5]), "band {r:?}");
+        assert!(num(r[6]) < w1 && num(r[7]) > w0, "window {r:?}");
+        assert!(num(r[8]) > 0.0, "left > right: {r:?}");
+        // Measured 0.03125 = 2/64, the smallest p 64 patterns allow.
+        assert!(num(r[10]) < 0.05, "{r:?}");
+    }
+    // Every significant cluster is on the planted pair; none on the zero-lag pair in any measure.
+    for r in &significant {
+        assert_eq!(
+            [r[1], r[2]],
+            [planted[0].as_str(), planted[1].as_str()],
+            "{r:?}"
+        );
+    }
+    assert!(rows
+        .iter()
+        .filter(|r| [r[1], r[2]] == [zero_lag[0].as_str(), zero_lag[1].as_str()])
+        .all(|r| r[11] == "false"));
 }
 
 /// Every file below `dir`, relative to it, sorted.

@@ -388,7 +388,8 @@ fn plan_subjects(
     Ok((plans, layout))
 }
 
-fn with_subject(e: StageError, id: &str) -> StageError {
+/// `e` with `subject {id}: ` before its message (shared with `contrast`).
+pub(crate) fn with_subject(e: StageError, id: &str) -> StageError {
     match e {
         StageError::Param { field, message } => {
             StageError::param(field, format!("subject {id}: {message}"))

@@ -472,12 +472,48 @@ impl Op for Clustering {
                 ));
             }
         }
+        if plan.halves.is_none() {
+            warn_unequal_counts(&plan, notes);
+        }
         let out = compute(&plan, &x);
         let shape = plan.layout.shape();
         let array = ArrayD::from_shape_vec(IxDyn(&shape), out)
             .map_err(|e| StageError::data(format!("internal shape error: {e}")))?;
         LabelledArray::real(plan.layout, array)
     }
+}
+
+/// Measures whose expected value grows as the trial count falls (a mean of unit vectors or
+/// signs over N trials is biased upwards by about 1/√N): comparing conditions of different
+/// counts on them compares the counts too.
+const COUNT_BIASED: [Measure; 4] = [Measure::Plv, Measure::Pli, Measure::Wpli, Measure::Icoh];
+
+/// Warns when the largest trial count of the conditions exceeds the smallest by more than 10 %
+/// (a rule of thumb, common practice) and a count-biased measure is asked for.
+fn warn_unequal_counts(plan: &Plan, notes: &mut Notes) {
+    let biased: Vec<&str> = plan
+        .measures
+        .iter()
+        .filter(|m| COUNT_BIASED.contains(m))
+        .map(|m| m.name())
+        .collect();
+    let counts = plan.conditions.iter().map(|(_, t)| t.len());
+    let (Some(lo), Some(hi)) = (counts.clone().min(), counts.max()) else {
+        return;
+    };
+    if biased.is_empty() || (hi as f64) <= 1.1 * lo as f64 {
+        return;
+    }
+    let listed: Vec<String> = plan
+        .conditions
+        .iter()
+        .map(|(c, t)| format!("{c} {}", t.len()))
+        .collect();
+    notes.warn(format!(
+        "clustering: the conditions' trial counts differ by more than 10 % ({}), and {} are          biased upwards by small counts: compare conditions on ppc, or set `equalize` on the          epoch stage",
+        listed.join(", "),
+        biased.join(", ")
+    ));
 }
 
 /// Read access to coefficients laid out [channel, trial, freq, time].
@@ -838,6 +874,24 @@ mod tests {
                 .filter(|w| w.contains("condition C has 1 trial"))
                 .count();
             assert_eq!(ppc, usize::from(across == "trials"));
+            // The fixture's conditions hold different trial counts and plv is asked for: one
+            // warning across trials (count bias), none across time.
+            let unequal: Vec<_> = notes
+                .warnings
+                .iter()
+                .filter(|w| w.contains("trial counts differ by more than 10 %"))
+                .collect();
+            assert_eq!(
+                unequal.len(),
+                usize::from(across == "trials"),
+                "{unequal:?}"
+            );
+            if let Some(w) = unequal.first() {
+                assert!(
+                    w.contains("plv, pli, wpli, icoh") && w.contains("C 1"),
+                    "{w}"
+                );
+            }
         }
     }
 

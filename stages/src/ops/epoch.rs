@@ -17,6 +17,8 @@
 //! `meta.trials` the source events; `meta.events` is dropped.
 
 use ndarray::{s, Array3, ArrayView2};
+use rand::SeedableRng;
+use rand_chacha::ChaCha20Rng;
 use serde::{Deserialize, Serialize};
 use serde_json::json;
 use std::collections::BTreeMap;
@@ -40,6 +42,17 @@ pub struct EpochParams {
     /// Optional rejection of trials.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub reject: Option<Reject>,
+    /// Optional seeded subsampling of every condition to the smallest count.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub equalize: Option<Equalize>,
+}
+
+/// `equalize: { seed: S }`.
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Equalize {
+    /// Seed of the subsampling: same seed, same trials kept.
+    pub seed: u64,
 }
 
 /// Rejection criteria.
@@ -65,6 +78,8 @@ struct Counts {
     kept: usize,
     dropped: usize,
     rejected: usize,
+    /// Left out by `equalize` (`None` without it, so the record is unchanged then).
+    equalized: Option<usize>,
 }
 
 /// The trials inside the recording and the counts so far (before rejection).
@@ -124,6 +139,10 @@ impl Op for Epoch {
         if p.reject.is_some() {
             return Ok(None);
         }
+        let mut sel = sel;
+        if let Some(e) = &p.equalize {
+            equalize(&mut sel, e.seed);
+        }
         Ok(Some(epoched_layout(input, &sel)?))
     }
 
@@ -139,6 +158,9 @@ impl Op for Epoch {
         check_finite(x, &sel, rec.channels)?;
         if let Some(r) = &p.reject {
             reject(x, &mut sel, &rec.is_data, r.peak_to_peak);
+        }
+        if let Some(e) = &p.equalize {
+            equalize(&mut sel, e.seed);
         }
         notes.record("epochs", counts_record(&sel.counts));
         check_nonempty(&sel.counts)?;
@@ -288,6 +310,34 @@ fn reject(x: ArrayView2<'_, f32>, sel: &mut Selection, is_data: &[bool], limit: 
     });
 }
 
+/// Keep, in every condition, a random subset of its trials as large as the smallest
+/// condition's count: condition k (in name order) draws its subset from a ChaCha20 stream seeded
+/// with `seed` on stream k, so the choice depends on the seed and the trial lists alone. Kept
+/// trials stay in onset order.
+fn equalize(sel: &mut Selection, seed: u64) {
+    let Some(least) = sel.counts.values().map(|c| c.kept).min() else {
+        return;
+    };
+    let mut keep = vec![true; sel.trials.len()];
+    for (k, (name, counts)) in sel.counts.iter_mut().enumerate() {
+        let members: Vec<usize> = (0..sel.trials.len())
+            .filter(|&i| sel.trials[i].condition == *name)
+            .collect();
+        let mut rng = ChaCha20Rng::seed_from_u64(seed);
+        rng.set_stream(k as u64);
+        let chosen = rand::seq::index::sample(&mut rng, members.len(), least.min(members.len()));
+        let mut kept = vec![false; members.len()];
+        chosen.into_iter().for_each(|i| kept[i] = true);
+        for (&i, &k) in members.iter().zip(&kept) {
+            keep[i] = k;
+        }
+        counts.equalized = Some(members.len() - least.min(members.len()));
+        counts.kept = least.min(members.len());
+    }
+    let mut flags = keep.into_iter();
+    sel.trials.retain(|_| flags.next().unwrap_or(true));
+}
+
 /// max − min of the samples, in f64.
 fn peak_to_peak<'a>(samples: impl Iterator<Item = &'a f32>) -> f64 {
     let (lo, hi) = samples.fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &v| {
@@ -312,7 +362,10 @@ fn counts_record(counts: &BTreeMap<String, Counts>) -> serde_json::Value {
     let per: serde_json::Map<String, serde_json::Value> = counts
         .iter()
         .map(|(name, c)| {
-            let v = json!({ "kept": c.kept, "dropped": c.dropped, "rejected": c.rejected });
+            let mut v = json!({ "kept": c.kept, "dropped": c.dropped, "rejected": c.rejected });
+            if let Some(n) = c.equalized {
+                v["equalized"] = json!(n);
+            }
             (name.clone(), v)
         })
         .collect();
@@ -600,5 +653,58 @@ mod tests {
             run(&p, &x).unwrap_err().to_string(),
             "the recording carries no events to cut epochs around"
         );
+    }
+
+    #[test]
+    fn equalize_keeps_the_smallest_count_per_condition_reproducibly() {
+        // A: 6 events, B: 3. With `equalize` each condition keeps 3, recorded in the counts;
+        // the same seed keeps the same trials, and the kept trials stay in onset order.
+        let events: Vec<(f64, &str)> = (0..9)
+            .map(|k| {
+                (
+                    1.0 + 0.5 * k as f64,
+                    if k % 3 == 2 { "cue-b" } else { "cue-a" },
+                )
+            })
+            .collect();
+        let x = recording(&events);
+        let with = |seed: u64| {
+            params(json!({ "conditions": { "A": ["cue-a"], "B": ["cue-b"] },
+                           "window": [-0.1, 0.1], "equalize": { "seed": seed } }))
+        };
+        let (out, notes) = run(&with(4), &x).unwrap();
+        let labels = out.layout.labels("trial").unwrap();
+        assert_eq!(labels.iter().filter(|l| *l == "A").count(), 3);
+        assert_eq!(labels.iter().filter(|l| *l == "B").count(), 3);
+        let want = json!({ "A": { "kept": 3, "dropped": 0, "rejected": 0, "equalized": 3 },
+                           "B": { "kept": 3, "dropped": 0, "rejected": 0, "equalized": 0 } });
+        assert_eq!(notes.records["epochs"], want);
+        let onsets = |o: &LabelledArray| -> Vec<f64> {
+            o.layout
+                .meta
+                .trials
+                .as_ref()
+                .unwrap()
+                .iter()
+                .map(|t| t.onset)
+                .collect()
+        };
+        let kept = onsets(&out);
+        assert!(kept.windows(2).all(|w| w[0] < w[1]), "{kept:?}");
+        assert_eq!(onsets(&run(&with(4), &x).unwrap().0), kept);
+        let others: Vec<Vec<f64>> = (5..12)
+            .map(|s| onsets(&run(&with(s), &x).unwrap().0))
+            .collect();
+        assert!(
+            others.iter().any(|o| *o != kept),
+            "the seed changes the choice"
+        );
+        assert_eq!(layout_of(&with(4), &x).unwrap().as_ref(), Some(&out.layout));
+        // Without `equalize` the effective params (and so the cache keys) are unchanged.
+        let plain = params(json!({ "conditions": { "A": ["cue-a"] }, "window": [-0.1, 0.1] }));
+        assert!(serde_json::to_value(&plain)
+            .unwrap()
+            .get("equalize")
+            .is_none());
     }
 }

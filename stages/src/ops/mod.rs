@@ -4,6 +4,7 @@
 pub mod aggregate;
 pub mod baseline;
 pub mod clustering;
+pub mod contrast;
 pub mod epoch;
 pub mod filter;
 pub mod hilbert;

@@ -1,0 +1,54 @@
+//! How long `contrast`'s permutations take on a study of a given size (a hand measurement, not
+//! a test): `cargo run --release -p phasewise-stages --example contrast_cost -- SUBJECTS PAIRS
+//! FREQS TIMES PATTERNS [cluster|max|fdr]`. The data are independent normal draws (no effect).
+//!
+//! Measured by hand on 2026-12-03 (commit 96c62b8's loop, two shared cores under a load of ~10):
+//! 20 subjects × 2016 pairs × 30 freqs × 200 times, 4096 patterns, cluster: 160 s of CPU (user),
+//! 1.6 GB peak memory; 100 pairs: 8.1 s of CPU. About 80 s of wall time on two idle cores.
+
+use std::time::Instant;
+
+use phasewise_stages::ops::contrast::{test, Correction, Flips, Settings};
+use phasewise_stages::stats::t_isf;
+use rand::{Rng, SeedableRng};
+
+fn main() {
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    let num =
+        |k: usize, default: usize| args.get(k).and_then(|a| a.parse().ok()).unwrap_or(default);
+    let (n, pairs, rows, cols, patterns) = (
+        num(0, 20),
+        num(1, 2016),
+        num(2, 30),
+        num(3, 200),
+        num(4, 4096),
+    );
+    let correction = match args.get(5).map(String::as_str) {
+        Some("max") => Correction::Max,
+        Some("fdr") => Correction::Fdr,
+        _ => Correction::Cluster,
+    };
+    let len = pairs * rows * cols;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(1);
+    let data: Vec<Vec<f32>> = (0..n)
+        .map(|_| (0..len).map(|_| rng.gen_range(-1.0f32..1.0)).collect())
+        .collect();
+    let views: Vec<&[f32]> = data.iter().map(|d| d.as_slice()).collect();
+    let start = Instant::now();
+    let flips = Flips::new(n, patterns, false, 1);
+    let settings = Settings {
+        correction,
+        threshold_t: t_isf(0.025, (n - 1) as f64),
+        maps_per_family: pairs,
+        rows,
+        cols,
+    };
+    let tested = test(&views, &flips, settings);
+    let secs = start.elapsed().as_secs_f64();
+    let significant = tested.p.iter().filter(|&&p| p <= 0.05).count();
+    println!(
+        "{n} subjects x {pairs} pairs x {rows} freqs x {cols} times, {patterns} patterns, \
+         {correction:?}, {} threads: {secs:.2} s ({significant} points at p <= 0.05)",
+        rayon::current_num_threads()
+    );
+}

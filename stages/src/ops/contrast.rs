@@ -1,0 +1,1725 @@
+//! The `contrast` op: is an effect real across subjects, corrected for all points tested
+//! (DESIGN §4c)?
+//!
+//! Input: one per-subject array per subject, dims `[condition, measure, pair, freq, time]` (a
+//! `clustering` or `baseline` output). Each subject gives one difference map per measure and
+//! pair: `compare: [a, b]` gives a − b, `condition: a` gives a itself (tested against 0). The
+//! point-wise statistic is the one-sample t of the n subjects' differences (mean over the SEM,
+//! the SD with ddof 1). Significance comes from sign flips of whole subjects (Nichols & Holmes
+//! 2002, Hum Brain Mapp 15:1–25): under the null each subject's difference map is as likely
+//! negated, so every flip pattern gives a draw of the whole t-map. All 2^n patterns are used when
+//! 2^n ≤ `permutations`; otherwise the unflipped data and `permutations` − 1 random patterns
+//! drawn from `seed`, in chunks of [`CHUNK`] whose patterns depend on (seed, chunk) only. A
+//! p-value is the share of patterns (the unflipped one included) whose statistic reaches the
+//! observed one, so it is never below 1 / patterns.
+//!
+//! Corrections, each over the family of all points and pairs of one measure:
+//! - `cluster` (Maris & Oostenveld 2007, J Neurosci Methods 164:177–190): points whose |t|
+//!   exceeds the two-sided Student t quantile of `threshold` (n − 1 df) form clusters, 4-connected
+//!   over freq × time within one pair, one sign per cluster; mass = Σ t. A cluster's p is the
+//!   share of patterns whose largest |mass| over all pairs reaches its |mass|. Points outside any
+//!   cluster get p NaN and cluster 0.
+//! - `max`: a point's p is the share of patterns whose largest |t| over all points and pairs
+//!   reaches its |t|.
+//! - `fdr`: each point's permutation p (share of patterns whose |t| at that point reaches the
+//!   observed), adjusted by Benjamini & Hochberg 1995 (J R Stat Soc B 57:289–300).
+//! - `none`: each point's permutation p, unadjusted.
+//!
+//! Significant means p ≤ `alpha`. Output: dims `[statistic, measure, pair, freq, time]`, statistic
+//! `t, p, cluster, mean, sem`; clusters are numbered 1, 2, … over measures, pairs and then the
+//! raster order (freq, then time) of each cluster's first point. The runner writes the findings
+//! table `<output>/<stage>.tsv` ([`findings_tsv`]).
+//!
+//! How the permutations stay cheap: with S = Σ εᵢ dᵢ for flips εᵢ = ±1 and Q = Σ dᵢ² (the same
+//! for every flip), t² = (n − 1) S² / (n Q − S²), so |t| grows with |S| at a point and a
+//! threshold on |t| is one on |S|. S is summed from tables: the subjects are cut into groups of
+//! [`GROUP`], and for each group every sign pattern's partial sum map is built once per pair;
+//! a pattern's S is then a sum of one row per group. Table rows are built left to right over the
+//! subjects, so a pattern and its mirror image give exactly opposite sums. The observed map goes
+//! through the same arithmetic (the unflipped pattern), so its clusters and statistics are
+//! exactly those of pattern 0. The t shown in the output is the plain two-pass t in f64; the
+//! clusters and masses come from the table sums (f32), which agree with it to about 1e-6.
+
+use std::collections::BTreeMap;
+use std::fmt::Write as _;
+
+use ndarray::{ArrayD, IxDyn};
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha20Rng;
+use rayon::prelude::*;
+use serde::{Deserialize, Serialize};
+use serde_json::json;
+
+use crate::array::{Coord, LabelledArray, Layout, Meta};
+use crate::error::StageError;
+use crate::op::{Input, InputLayout, Notes, Op};
+use crate::ops::aggregate::{with_subject, Over};
+use crate::ops::baseline::{points_within, range_text};
+use crate::ops::clustering::PairSpec;
+use crate::stats;
+use crate::table::{coord_text, number_text};
+
+/// The `contrast` op.
+pub struct Contrast;
+
+/// One measure name or several.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(untagged, expecting = "a measure name or a list of measure names")]
+pub enum Names {
+    /// One.
+    One(String),
+    /// Several, in output order.
+    Many(Vec<String>),
+}
+
+/// The multiple-comparison correction.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Correction {
+    /// Cluster mass over freq × time within a pair, family-wise over the pairs of a measure.
+    #[default]
+    Cluster,
+    /// The largest |t| over all points and pairs of a measure.
+    Max,
+    /// Benjamini–Hochberg over all points and pairs of a measure.
+    Fdr,
+    /// Point-wise permutation p, uncorrected.
+    None,
+}
+
+/// Parameters of `contrast`.
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ContrastParams {
+    /// `subjects`: one input per subject (required).
+    pub over: Over,
+    /// `[a, b]`: the paired difference a − b.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub compare: Option<[String; 2]>,
+    /// `a`: condition a tested against 0.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub condition: Option<String>,
+    /// The measure(s) to test (default: every measure of the input).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub measure: Option<Names>,
+    /// The pairs (default `all`: every pair of the input).
+    #[serde(default)]
+    pub pairs: PairSpec,
+    /// Inclusive frequency range tested, Hz (default: all).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub freqs: Option<[f64; 2]>,
+    /// Inclusive time range tested, s (default: all).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub times: Option<[f64; 2]>,
+    /// `cluster` (default), `max`, `fdr` or `none`.
+    #[serde(default)]
+    pub correction: Correction,
+    /// Cluster-forming two-sided p of the point-wise t (default 0.05; `cluster` only).
+    #[serde(default = "default_alpha")]
+    pub threshold: f64,
+    /// Number of sign-flip patterns (default 4096); all 2^n are used when that is no more.
+    #[serde(default = "default_permutations")]
+    pub permutations: u32,
+    /// Significance level (default 0.05).
+    #[serde(default = "default_alpha")]
+    pub alpha: f64,
+    /// Seed of the random flips (default 1).
+    #[serde(default = "default_seed")]
+    pub seed: u64,
+}
+
+fn default_alpha() -> f64 {
+    0.05
+}
+fn default_permutations() -> u32 {
+    4096
+}
+fn default_seed() -> u64 {
+    1
+}
+
+/// The statistics of the output, in the order of its `statistic` axis.
+pub const STATISTICS: [&str; 5] = ["t", "p", "cluster", "mean", "sem"];
+/// Subjects per flip table (2^5 = 32 rows per group).
+pub const GROUP: usize = 5;
+/// Flip patterns per chunk: the random patterns of chunk c depend on (seed, c) alone.
+pub const CHUNK: usize = 256;
+/// `meta.extra` key that marks the output's table as a findings table.
+const TABLE_FORM: &str = "findings";
+
+/// What the layout step works out once; `prepare` and `join` reuse it.
+struct Plan {
+    /// Index on the input's condition axis of a (and b for `compare`).
+    conditions: (usize, Option<usize>),
+    measures: Vec<usize>,
+    pairs: Vec<usize>,
+    freqs: Vec<usize>,
+    times: Vec<usize>,
+    /// The per-subject difference layout `[measure, pair, freq, time]`.
+    prepared: Layout,
+}
+
+const DIMS: [&str; 5] = ["condition", "measure", "pair", "freq", "time"];
+
+fn find_condition(field: &str, conditions: &[String], name: &str) -> Result<usize, StageError> {
+    conditions.iter().position(|c| c == name).ok_or_else(|| {
+        StageError::param(
+            field,
+            format!(
+                "condition `{name}` is not in the data, whose conditions are: {}",
+                conditions.join(", ")
+            ),
+        )
+    })
+}
+
+fn select_pairs(spec: &PairSpec, pairs: &[[String; 2]]) -> Result<Vec<usize>, StageError> {
+    match spec {
+        PairSpec::All(_) => Ok((0..pairs.len()).collect()),
+        PairSpec::Seed(s) => {
+            let out: Vec<usize> = (0..pairs.len())
+                .filter(|&i| s.seed.iter().any(|c| pairs[i].contains(c)))
+                .collect();
+            if out.is_empty() {
+                return Err(StageError::param(
+                    "pairs.seed",
+                    format!(
+                        "no pair of the input has a channel among {}",
+                        s.seed.join(", ")
+                    ),
+                ));
+            }
+            Ok(out)
+        }
+        PairSpec::List(list) => list
+            .iter()
+            .enumerate()
+            .map(|(k, [a, b])| {
+                pairs
+                    .iter()
+                    .position(|p| p[0] == *a && p[1] == *b)
+                    .ok_or_else(|| {
+                        let reversed = pairs.iter().any(|p| p[0] == *b && p[1] == *a);
+                        let hint = if reversed {
+                            format!(" (the input has {b}-{a}: pairs keep their order)")
+                        } else {
+                            String::new()
+                        };
+                        StageError::param(
+                            format!("pairs[{k}]"),
+                            format!(
+                                "pair {a}-{b} is not among the input's {} pairs{hint}",
+                                pairs.len()
+                            ),
+                        )
+                    })
+            })
+            .collect(),
+    }
+}
+
+fn select_range(
+    input: &Layout,
+    field: &str,
+    axis: &str,
+    unit: &str,
+    range: Option<[f64; 2]>,
+) -> Result<Vec<usize>, StageError> {
+    let coords = input.numbers(axis)?;
+    let Some(range) = range else {
+        return Ok((0..coords.len()).collect());
+    };
+    let points = points_within(coords, range);
+    if points.is_empty() {
+        let span = match (coords.first(), coords.last()) {
+            (Some(&a), Some(&b)) => range_text([a, b]),
+            _ => "[] (none)".into(),
+        };
+        return Err(StageError::param(
+            field,
+            format!(
+                "{} {unit} holds no {axis} point of the input, whose {axis} points run over \
+                 {span} {unit}",
+                range_text(range)
+            ),
+        ));
+    }
+    Ok(points)
+}
+
+fn pick<T: Clone>(v: &[T], idx: &[usize]) -> Vec<T> {
+    idx.iter().map(|&i| v[i].clone()).collect()
+}
+
+/// One subject's plan from its layout.
+fn plan_one(p: &ContrastParams, input: &Layout) -> Result<Plan, StageError> {
+    if input.complex {
+        return Err(StageError::data(
+            "contrast needs real values (a measure), but the input holds complex coefficients",
+        ));
+    }
+    if input.dims != DIMS {
+        return Err(StageError::data(format!(
+            "contrast needs an input with axes [{}], got [{}]",
+            DIMS.join(", "),
+            input.dims.join(", ")
+        )));
+    }
+    let conditions = input.labels("condition")?;
+    let conditions = match (&p.compare, &p.condition) {
+        (Some([a, b]), _) => (
+            find_condition("compare[0]", conditions, a)?,
+            Some(find_condition("compare[1]", conditions, b)?),
+        ),
+        (None, Some(a)) => (find_condition("condition", conditions, a)?, None),
+        (None, None) => {
+            return Err(StageError::param(
+                "compare",
+                "give `compare` or `condition`",
+            ))
+        }
+    };
+    let measures_in = input.labels("measure")?;
+    let measures = match &p.measure {
+        None => (0..measures_in.len()).collect(),
+        Some(names) => {
+            let names = match names {
+                Names::One(m) => std::slice::from_ref(m),
+                Names::Many(v) => v.as_slice(),
+            };
+            names
+                .iter()
+                .map(|m| {
+                    measures_in.iter().position(|x| x == m).ok_or_else(|| {
+                        StageError::param(
+                            "measure",
+                            format!(
+                                "measure `{m}` is not in the input, which holds: {}",
+                                measures_in.join(", ")
+                            ),
+                        )
+                    })
+                })
+                .collect::<Result<Vec<_>, _>>()?
+        }
+    };
+    let pairs_in = input
+        .coord("pair")?
+        .pairs()
+        .ok_or_else(|| StageError::data("the input's `pair` axis does not hold channel pairs"))?;
+    let pairs = select_pairs(&p.pairs, pairs_in)?;
+    let freqs = select_range(input, "freqs", "freq", "Hz", p.freqs)?;
+    let times = select_range(input, "times", "time", "s", p.times)?;
+    let prepared = Layout {
+        dims: DIMS[1..].iter().map(|s| s.to_string()).collect(),
+        coords: vec![
+            Coord::Labels(pick(measures_in, &measures)),
+            Coord::Pairs(pick(pairs_in, &pairs).into()),
+            Coord::Numbers(pick(input.numbers("freq")?, &freqs)),
+            Coord::Numbers(pick(input.numbers("time")?, &times)),
+        ],
+        units: input.units.clone(),
+        complex: false,
+        meta: Meta {
+            sampling_rate: input.meta.sampling_rate,
+            ..Meta::default()
+        },
+    };
+    Ok(Plan {
+        conditions,
+        measures,
+        pairs,
+        freqs,
+        times,
+        prepared,
+    })
+}
+
+fn subject_ids<'a>(ids: impl Iterator<Item = Option<&'a str>>) -> Result<Vec<&'a str>, StageError> {
+    let mut out: Vec<&str> = Vec::new();
+    for id in ids {
+        let id = id.ok_or_else(|| {
+            StageError::data("contrast needs one input per subject, but an input has no subject")
+        })?;
+        if out.contains(&id) {
+            return Err(StageError::data(format!("subject id `{id}` appears twice")));
+        }
+        out.push(id);
+    }
+    if out.len() < 3 {
+        return Err(StageError::param(
+            "over",
+            format!(
+                "contrast over subjects needs at least 3 subjects, got {}",
+                out.len()
+            ),
+        ));
+    }
+    Ok(out)
+}
+
+/// The flip patterns that will be used for `n` subjects.
+fn pattern_count(p: &ContrastParams, n: usize) -> usize {
+    match exact_count(p, n) {
+        Some(all) => all,
+        None => p.permutations as usize,
+    }
+}
+
+/// 2^n when that is no more than `permutations`.
+fn exact_count(p: &ContrastParams, n: usize) -> Option<usize> {
+    (n < 32 && (1u64 << n) <= u64::from(p.permutations)).then(|| 1usize << n)
+}
+
+fn output_layout(p: &ContrastParams, prepared: &Layout, n: usize) -> Layout {
+    let mut layout = prepared.clone();
+    layout.dims.insert(0, "statistic".into());
+    layout.coords.insert(
+        0,
+        Coord::Labels(STATISTICS.iter().map(|s| s.to_string()).collect()),
+    );
+    let extra = &mut layout.meta.extra;
+    extra.insert("table".into(), json!(true));
+    extra.insert("table_form".into(), json!(TABLE_FORM));
+    extra.insert("correction".into(), json!(p.correction));
+    extra.insert("alpha".into(), json!(p.alpha));
+    extra.insert("subjects".into(), json!(n));
+    extra.insert("patterns".into(), json!(pattern_count(p, n)));
+    extra.insert("exact".into(), json!(exact_count(p, n).is_some()));
+    if p.correction == Correction::Cluster {
+        extra.insert("threshold".into(), json!(p.threshold));
+        extra.insert(
+            "threshold_t".into(),
+            json!(stats::t_isf(p.threshold / 2.0, (n - 1) as f64)),
+        );
+    }
+    match (&p.compare, &p.condition) {
+        (Some(c), _) => extra.insert("compare".into(), json!(c)),
+        (None, c) => extra.insert("condition".into(), json!(c)),
+    };
+    layout
+}
+
+/// Every subject's plan (errors name the subject) and the common prepared layout.
+fn plan_all(p: &ContrastParams, inputs: &[(&str, &Layout)]) -> Result<Layout, StageError> {
+    let mut first: Option<(&str, Layout)> = None;
+    for (id, layout) in inputs {
+        let plan = plan_one(p, layout).map_err(|e| with_subject(e, id))?;
+        match &first {
+            None => first = Some((id, plan.prepared)),
+            Some((first_id, want)) => {
+                for (k, dim) in want.dims.iter().enumerate() {
+                    if want.coords[k] != plan.prepared.coords[k] {
+                        return Err(StageError::data(format!(
+                            "subjects {first_id} and {id} cannot be compared: their `{dim}` \
+                             axes differ"
+                        )));
+                    }
+                }
+            }
+        }
+    }
+    first
+        .map(|(_, l)| l)
+        .ok_or_else(|| StageError::data("contrast got no subjects"))
+}
+
+/// One subject's differences `[measure, pair, freq, time]` (a − b, or a), f32.
+fn prepare_one(p: &ContrastParams, input: &LabelledArray) -> Result<LabelledArray, StageError> {
+    let plan = plan_one(p, &input.layout)?;
+    let values = input.real_values()?;
+    let (a, b) = plan.conditions;
+    let (nf, nt) = (plan.freqs.len(), plan.times.len());
+    let mut out = Vec::with_capacity(plan.measures.len() * plan.pairs.len() * nf * nt);
+    for &m in &plan.measures {
+        for &q in &plan.pairs {
+            for &f in &plan.freqs {
+                for &t in &plan.times {
+                    let x = values[[a, m, q, f, t]];
+                    out.push(match b {
+                        Some(b) => x - values[[b, m, q, f, t]],
+                        None => x,
+                    });
+                }
+            }
+        }
+    }
+    let shape = plan.prepared.shape();
+    let values = ArrayD::from_shape_vec(IxDyn(&shape), out)
+        .map_err(|e| StageError::data(format!("internal: {e}")))?;
+    LabelledArray::real(plan.prepared, values)
+}
+
+/// The sign-flip patterns: per pattern one mask per subject group, bit k set when the group's
+/// k-th subject is negated. Pattern 0 is the data as observed.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Flips {
+    /// Subjects of each group (consecutive, at most [`GROUP`]).
+    pub groups: Vec<std::ops::Range<usize>>,
+    /// `patterns × groups` masks.
+    pub masks: Vec<u8>,
+}
+
+impl Flips {
+    /// All 2^n patterns (pattern k negates subject i when bit i of k is set), or pattern 0 and
+    /// `count − 1` random ones, chunk c of [`CHUNK`] patterns drawn from a ChaCha20 stream
+    /// seeded with `seed` on stream c.
+    pub fn new(n: usize, count: usize, exact: bool, seed: u64) -> Flips {
+        let groups: Vec<_> = (0..n)
+            .step_by(GROUP)
+            .map(|s| s..(s + GROUP).min(n))
+            .collect();
+        let g = groups.len();
+        let mut masks = vec![0u8; count * g];
+        if exact {
+            for (k, row) in masks.chunks_mut(g).enumerate() {
+                for (m, r) in row.iter_mut().zip(&groups) {
+                    *m = ((k >> r.start) & ((1 << r.len()) - 1)) as u8;
+                }
+            }
+        } else {
+            masks
+                .par_chunks_mut(CHUNK * g)
+                .enumerate()
+                .for_each(|(c, chunk)| {
+                    let mut rng = ChaCha20Rng::seed_from_u64(seed);
+                    rng.set_stream(c as u64);
+                    for row in chunk.chunks_mut(g) {
+                        for (m, r) in row.iter_mut().zip(&groups) {
+                            *m = rng.gen::<u8>() & ((1u16 << r.len()) - 1) as u8;
+                        }
+                    }
+                });
+            masks[..g].iter_mut().for_each(|m| *m = 0);
+        }
+        Flips { groups, masks }
+    }
+
+    /// Number of patterns.
+    pub fn count(&self) -> usize {
+        self.masks.len() / self.groups.len().max(1)
+    }
+}
+
+/// The tables of one map: for each group, the partial sum map of every sign pattern.
+struct Tables {
+    /// Row offsets of each group's first pattern (in units of maps).
+    offsets: Vec<usize>,
+    rows: Vec<f32>,
+    len: usize,
+}
+
+impl Tables {
+    fn build(maps: &[&[f32]], flips: &Flips) -> Tables {
+        let len = maps.first().map_or(0, |m| m.len());
+        let mut offsets = Vec::new();
+        let mut total = 0;
+        for g in &flips.groups {
+            offsets.push(total);
+            total += 1 << g.len();
+        }
+        let mut rows = vec![0f32; total * len];
+        for (g, range) in flips.groups.iter().enumerate() {
+            let block = &mut rows[offsets[g] * len..(offsets[g] + (1 << range.len())) * len];
+            // Level k holds the 2^(k+1) patterns of the group's first k + 1 subjects, each the
+            // left-to-right sum ±d₀ ± d₁ … (so mirror patterns give opposite sums exactly).
+            for (k, s) in range.clone().enumerate() {
+                let d = maps[s];
+                let half = 1 << k;
+                if k == 0 {
+                    block[..len].copy_from_slice(d);
+                    for (o, &x) in block[len..2 * len].iter_mut().zip(d) {
+                        *o = -x;
+                    }
+                    continue;
+                }
+                let (lower, upper) = block.split_at_mut(half * len);
+                for m in 0..half {
+                    let src = &mut lower[m * len..(m + 1) * len];
+                    let dst = &mut upper[m * len..(m + 1) * len];
+                    for ((o, x), &v) in dst.iter_mut().zip(src.iter_mut()).zip(d) {
+                        *o = *x - v;
+                        *x += v;
+                    }
+                }
+            }
+        }
+        Tables { offsets, rows, len }
+    }
+
+    /// S of pattern `masks` (one mask per group) into `s`.
+    fn sum(&self, masks: &[u8], s: &mut [f32]) {
+        let len = self.len;
+        for (g, (&off, &m)) in self.offsets.iter().zip(masks).enumerate() {
+            let row = &self.rows[(off + m as usize) * len..(off + m as usize + 1) * len];
+            if g == 0 {
+                s.copy_from_slice(row);
+            } else {
+                s.iter_mut().zip(row).for_each(|(a, &b)| *a += b);
+            }
+        }
+    }
+}
+
+/// t from S and Q for n subjects: S √((n − 1) / (n Q − S²)).
+fn t_of(s: f32, q: f64, n: f64) -> f64 {
+    let s = f64::from(s);
+    let den = n * q - s * s;
+    if q == 0.0 {
+        return f64::NAN;
+    }
+    if den <= 0.0 {
+        return s.signum() * f64::INFINITY;
+    }
+    s * ((n - 1.0) / den).sqrt()
+}
+
+/// The permutation side of one pair's map.
+struct MapResult {
+    /// Per pattern: the largest |mass| (cluster) or the largest S²/Q (max).
+    null: Vec<f64>,
+    /// Per point: patterns whose |S| reaches the observed (fdr, none).
+    counts: Vec<u32>,
+    /// Observed cluster labels (0 none, else 1-based within the map) and masses.
+    labels: Vec<u32>,
+    masses: Vec<f64>,
+    /// Observed S²/Q per point (max).
+    ratio: Vec<f64>,
+}
+
+/// The statistics engine's fixed inputs for one map.
+struct MapInput<'a> {
+    maps: Vec<&'a [f32]>,
+    q: &'a [f64],
+    threshold_s: &'a [f32],
+    cols: usize,
+}
+
+/// +1 where S is above the point's threshold, −1 where below its negative, else 0 (NaN: 0).
+/// Branch-free, so that it vectorises.
+fn signs(s: &[f32], thr: &[f32], sign: &mut [i8]) {
+    for ((o, &x), &c) in sign.iter_mut().zip(s).zip(thr) {
+        *o = i8::from(x > c) - i8::from(x < -c);
+    }
+}
+
+/// Calls `each(mass)` for every cluster of `sign` in raster order of its first point; writes
+/// 1-based labels when `labels` is given. `seen` must hold no `mark`.
+fn visit_masses(
+    sign: &[i8],
+    cols: usize,
+    t_at: impl Fn(usize) -> f64,
+    (seen, mark): (&mut [u32], u32),
+    stack: &mut Vec<usize>,
+    mut labels: Option<&mut [u32]>,
+    mut each: impl FnMut(f64),
+) {
+    let mut label = 0;
+    let mut start = 0;
+    while start < sign.len() {
+        // Runs of points outside every cluster (most of a null map) are skipped 8 at a time.
+        if let Some(word) = sign.get(start..start + 8) {
+            if word.iter().fold(0u8, |a, &x| a | x as u8) == 0 {
+                start += 8;
+                continue;
+            }
+        }
+        let first = start;
+        start += 1;
+        if sign[first] == 0 || seen[first] == mark {
+            continue;
+        }
+        label += 1;
+        let mut mass = 0.0;
+        stats::fill(
+            sign,
+            cols,
+            first,
+            |i| {
+                if seen[i] == mark {
+                    return false;
+                }
+                seen[i] = mark;
+                mass += t_at(i);
+                if let Some(l) = labels.as_deref_mut() {
+                    l[i] = label;
+                }
+                true
+            },
+            stack,
+        );
+        each(mass);
+    }
+}
+
+fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapResult {
+    let n = input.maps.len() as f64;
+    let len = input.q.len();
+    let tables = Tables::build(&input.maps, flips);
+    let g = flips.groups.len();
+    let mut s = vec![0f32; len];
+    let mut s_obs = vec![0f32; len];
+    tables.sum(&flips.masks[..g], &mut s_obs);
+    let mut sign = vec![0i8; len];
+    let mut seen = vec![0u32; len];
+    let mut stack = Vec::new();
+    let mut out = MapResult {
+        null: Vec::new(),
+        counts: Vec::new(),
+        labels: Vec::new(),
+        masses: Vec::new(),
+        ratio: Vec::new(),
+    };
+    let ratio = |x: f32, q: f64| {
+        let x = f64::from(x);
+        if q > 0.0 {
+            x * x / q
+        } else {
+            f64::NAN
+        }
+    };
+    match correction {
+        Correction::Cluster => {
+            out.labels = vec![0; len];
+            signs(&s_obs, input.threshold_s, &mut sign);
+            let mut masses = Vec::new();
+            visit_masses(
+                &sign,
+                input.cols,
+                |i| t_of(s_obs[i], input.q[i], n),
+                (&mut seen, 1),
+                &mut stack,
+                Some(&mut out.labels),
+                |m| masses.push(m),
+            );
+            out.masses = masses;
+            seen.iter_mut().for_each(|x| *x = 0);
+            out.null = Vec::with_capacity(flips.count());
+            for (j, masks) in flips.masks.chunks(g).enumerate() {
+                tables.sum(masks, &mut s);
+                signs(&s, input.threshold_s, &mut sign);
+                let mut largest = 0f64;
+                visit_masses(
+                    &sign,
+                    input.cols,
+                    |i| t_of(s[i], input.q[i], n),
+                    (&mut seen, j as u32 + 1),
+                    &mut stack,
+                    None,
+                    |m| largest = largest.max(m.abs()),
+                );
+                out.null.push(largest);
+            }
+        }
+        Correction::Max => {
+            out.ratio = s_obs
+                .iter()
+                .zip(input.q)
+                .map(|(&x, &q)| ratio(x, q))
+                .collect();
+            out.null = flips
+                .masks
+                .chunks(g)
+                .map(|masks| {
+                    tables.sum(masks, &mut s);
+                    s.iter()
+                        .zip(input.q)
+                        .map(|(&x, &q)| ratio(x, q))
+                        .filter(|r| !r.is_nan())
+                        .fold(0f64, f64::max)
+                })
+                .collect();
+        }
+        Correction::Fdr | Correction::None => {
+            out.counts = vec![0; len];
+            for masks in flips.masks.chunks(g) {
+                tables.sum(masks, &mut s);
+                for ((c, &x), &o) in out.counts.iter_mut().zip(&s).zip(&s_obs) {
+                    *c += u32::from(x.abs() >= o.abs());
+                }
+            }
+        }
+    }
+    out
+}
+
+/// The result of [`test`]: per point t, p, cluster id, mean and sem (each `maps × points`).
+#[derive(Clone, Debug, PartialEq)]
+pub struct Tested {
+    /// Point-wise t (two-pass, f64).
+    pub t: Vec<f64>,
+    /// Corrected p (NaN outside clusters for `cluster`, and where the t is not finite).
+    pub p: Vec<f64>,
+    /// Cluster ids (0: none), numbered over maps in order.
+    pub cluster: Vec<u32>,
+    /// Mean difference.
+    pub mean: Vec<f64>,
+    /// SEM of the difference (SD with ddof 1 / √n).
+    pub sem: Vec<f64>,
+}
+
+/// The settings of [`test`].
+#[derive(Clone, Copy, Debug)]
+pub struct Settings {
+    /// Correction.
+    pub correction: Correction,
+    /// |t| above which points join clusters.
+    pub threshold_t: f64,
+    /// Maps per family (the pairs of one measure); the maps are grouped in families in order.
+    pub maps_per_family: usize,
+    /// Rows (frequencies) of a map.
+    pub rows: usize,
+    /// Columns (time points) of a map.
+    pub cols: usize,
+}
+
+/// The point-wise t and the corrected p-values of `subjects` (each `maps × rows × cols` long),
+/// under the flip patterns `flips`.
+pub fn test(subjects: &[&[f32]], flips: &Flips, settings: Settings) -> Tested {
+    let n = subjects.len();
+    let nf = n as f64;
+    let total = subjects.first().map_or(0, |s| s.len());
+    let mut t = vec![0f64; total];
+    let mut mean = vec![0f64; total];
+    let mut sem = vec![0f64; total];
+    let mut q = vec![0f64; total];
+    t.par_iter_mut()
+        .zip(mean.par_iter_mut())
+        .zip(sem.par_iter_mut())
+        .zip(q.par_iter_mut())
+        .enumerate()
+        .for_each(|(i, (((t, m), e), q))| {
+            let mu = subjects.iter().map(|d| f64::from(d[i])).sum::<f64>() / nf;
+            let ss: f64 = subjects
+                .iter()
+                .map(|d| (f64::from(d[i]) - mu).powi(2))
+                .sum();
+            let se = (ss / (nf - 1.0)).sqrt() / nf.sqrt();
+            *m = mu;
+            *e = se;
+            *t = mu / se;
+            *q = subjects.iter().map(|d| f64::from(d[i]).powi(2)).sum();
+            if !q.is_finite() {
+                *q = f64::NAN;
+            }
+        });
+    let c2 = settings.threshold_t * settings.threshold_t;
+    // |t| > c ⇔ S² (n − 1 + c²) > c² n Q.
+    // Compared with the f32 sums S in f32, for the observed map and every pattern alike.
+    let threshold_s: Vec<f32> = q
+        .iter()
+        .map(|&q| {
+            if q.is_finite() && q > 0.0 {
+                (c2 * nf * q / (nf - 1.0 + c2)).sqrt() as f32
+            } else {
+                f32::INFINITY
+            }
+        })
+        .collect();
+    Tested {
+        p: Vec::new(),
+        cluster: Vec::new(),
+        t,
+        mean,
+        sem,
+    }
+    .with_p(subjects, &q, &threshold_s, flips, settings)
+}
+
+impl Tested {
+    fn with_p(
+        mut self,
+        subjects: &[&[f32]],
+        q: &[f64],
+        threshold_s: &[f32],
+        flips: &Flips,
+        settings: Settings,
+    ) -> Tested {
+        let total = self.t.len();
+        let fam = settings.maps_per_family.max(1);
+        let map_len = settings.rows * settings.cols;
+        let maps = total.checked_div(map_len).unwrap_or(0);
+        let results: Vec<MapResult> = (0..maps)
+            .into_par_iter()
+            .map(|k| {
+                let r = k * map_len..(k + 1) * map_len;
+                let input = MapInput {
+                    maps: subjects.iter().map(|d| &d[r.clone()]).collect(),
+                    q: &q[r.clone()],
+                    threshold_s: &threshold_s[r],
+                    cols: settings.cols,
+                };
+                run_map(&input, flips, settings.correction)
+            })
+            .collect();
+        let count = flips.count() as f64;
+        self.p = vec![f64::NAN; total];
+        self.cluster = vec![0; total];
+        let mut next_id = 0u32;
+        for (f, family) in results.chunks(fam).enumerate() {
+            let base = f * fam * map_len;
+            let null: Vec<f64> = match settings.correction {
+                Correction::Cluster | Correction::Max => (0..flips.count())
+                    .map(|j| family.iter().map(|r| r.null[j]).fold(0f64, f64::max))
+                    .collect(),
+                _ => Vec::new(),
+            };
+            let share = |x: f64| null.iter().filter(|&&v| v >= x).count() as f64 / count;
+            match settings.correction {
+                Correction::Cluster => {
+                    for (m, r) in family.iter().enumerate() {
+                        let ps: Vec<f64> = r.masses.iter().map(|x| share(x.abs())).collect();
+                        for (i, &l) in r.labels.iter().enumerate() {
+                            if l > 0 {
+                                let at = base + m * map_len + i;
+                                self.cluster[at] = next_id + l;
+                                self.p[at] = ps[l as usize - 1];
+                            }
+                        }
+                        next_id += r.masses.len() as u32;
+                    }
+                }
+                Correction::Max => {
+                    for (m, r) in family.iter().enumerate() {
+                        for (i, &x) in r.ratio.iter().enumerate() {
+                            if !x.is_nan() {
+                                self.p[base + m * map_len + i] = share(x);
+                            }
+                        }
+                    }
+                }
+                Correction::Fdr | Correction::None => {
+                    let mut raw = vec![f64::NAN; family.len() * map_len];
+                    for (m, r) in family.iter().enumerate() {
+                        for (i, &c) in r.counts.iter().enumerate() {
+                            let at = base + m * map_len + i;
+                            if q[at].is_finite() && q[at] > 0.0 {
+                                raw[m * map_len + i] = f64::from(c) / count;
+                            }
+                        }
+                    }
+                    if settings.correction == Correction::Fdr {
+                        raw = stats::bh_adjust(&raw);
+                    }
+                    self.p[base..base + raw.len()].copy_from_slice(&raw);
+                }
+            }
+        }
+        self
+    }
+}
+
+fn check_range(field: &str, range: Option<[f64; 2]>) -> Result<(), StageError> {
+    match range {
+        Some([lo, hi]) if !(lo.is_finite() && hi.is_finite() && lo <= hi) => {
+            Err(StageError::param(
+                field,
+                format!(
+                    "expected [start, end] with start ≤ end, got {}",
+                    range_text([lo, hi])
+                ),
+            ))
+        }
+        _ => Ok(()),
+    }
+}
+
+fn check_probability(field: &str, x: f64) -> Result<(), StageError> {
+    if x > 0.0 && x < 1.0 {
+        Ok(())
+    } else {
+        Err(StageError::param(
+            field,
+            format!("expected a probability between 0 and 1 (exclusive), got {x}"),
+        ))
+    }
+}
+
+impl Op for Contrast {
+    type Params = ContrastParams;
+    const NAME: &'static str = "contrast";
+    const VERSION: u32 = 1;
+
+    fn check(p: &Self::Params) -> Result<(), StageError> {
+        match (&p.compare, &p.condition) {
+            (Some(_), Some(_)) => {
+                return Err(StageError::param(
+                    "condition",
+                    "give either `compare: [a, b]` (a − b) or `condition: a` (a against 0), \
+                     not both",
+                ))
+            }
+            (None, None) => {
+                return Err(StageError::param(
+                    "compare",
+                    "give `compare: [a, b]` (the paired difference a − b) or `condition: a` \
+                     (a tested against 0)",
+                ))
+            }
+            (Some([a, b]), None) if a == b => {
+                return Err(StageError::param(
+                    "compare",
+                    format!("`compare` names condition `{a}` twice: give two different conditions"),
+                ))
+            }
+            _ => {}
+        }
+        if let Some(Names::Many(v)) = &p.measure {
+            if v.is_empty() {
+                return Err(StageError::param("measure", "give at least one measure"));
+            }
+            for (k, m) in v.iter().enumerate() {
+                if v[..k].contains(m) {
+                    return Err(StageError::param(
+                        format!("measure[{k}]"),
+                        format!("measure `{m}` is listed twice"),
+                    ));
+                }
+            }
+        }
+        check_range("freqs", p.freqs)?;
+        check_range("times", p.times)?;
+        check_probability("threshold", p.threshold)?;
+        check_probability("alpha", p.alpha)?;
+        let least = (1.0 / p.alpha).ceil();
+        if f64::from(p.permutations) < least {
+            return Err(StageError::param(
+                "permutations",
+                format!(
+                    "{} permutations cannot give a p-value at or below alpha {}: give at least {least}",
+                    p.permutations, p.alpha
+                ),
+            ));
+        }
+        Ok(())
+    }
+
+    fn joins_subjects(_p: &Self::Params) -> bool {
+        true
+    }
+
+    fn layout(p: &Self::Params, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
+        let ids = subject_ids(inputs.iter().map(|i| i.subject))?;
+        let layouts: Vec<(&str, &Layout)> = ids
+            .iter()
+            .zip(inputs)
+            .map(|(id, i)| (*id, i.layout))
+            .collect();
+        let prepared = plan_all(p, &layouts)?;
+        Ok(Some(output_layout(p, &prepared, ids.len())))
+    }
+
+    fn run(
+        p: &Self::Params,
+        inputs: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        let prepared: Vec<LabelledArray> = inputs
+            .iter()
+            .map(|i| Self::prepare(p, i).unwrap_or_else(|| prepare_one(p, i.array)))
+            .collect::<Result<_, _>>()?;
+        let prepared: Vec<Input<'_>> = inputs
+            .iter()
+            .zip(&prepared)
+            .map(|(i, array)| Input { array, ..*i })
+            .collect();
+        Self::join(p, &prepared, notes)
+    }
+
+    fn prepares(_p: &Self::Params) -> bool {
+        true
+    }
+
+    /// Each subject is reduced to its difference maps on its own, so the runner need not hold
+    /// every subject's input at once.
+    fn prepare(p: &Self::Params, input: &Input<'_>) -> Option<Result<LabelledArray, StageError>> {
+        let id = input.subject.unwrap_or("?");
+        Some(prepare_one(p, input.array).map_err(|e| with_subject(e, id)))
+    }
+
+    fn join(
+        p: &Self::Params,
+        prepared: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        let ids = subject_ids(prepared.iter().map(|i| i.subject))?;
+        let first = &prepared[0].array.layout;
+        for (id, i) in ids.iter().zip(prepared).skip(1) {
+            if i.array.layout.coords != first.coords || i.array.layout.dims != first.dims {
+                return Err(StageError::data(format!(
+                    "subjects {} and {id} cannot be compared: their difference maps differ in \
+                     their axes",
+                    ids[0]
+                )));
+            }
+        }
+        let n = ids.len();
+        let values: Vec<&[f32]> = prepared
+            .iter()
+            .map(|i| {
+                i.array
+                    .real_values()?
+                    .as_slice()
+                    .ok_or_else(|| StageError::data("internal: prepared values not contiguous"))
+            })
+            .collect::<Result<_, _>>()?;
+        let shape = first.shape();
+        let (measures, pairs, rows, cols) = (shape[0], shape[1], shape[2], shape[3]);
+        let count = pattern_count(p, n);
+        let exact = exact_count(p, n).is_some();
+        if (count as f64) * p.alpha < 1.0 {
+            notes.warn(format!(
+                "contrast: {n} subjects allow only {count} sign-flip patterns, so no p-value can \
+                 reach alpha {} (the smallest possible p is 1/{count})",
+                p.alpha
+            ));
+        }
+        let family = pairs * rows * cols;
+        if p.correction == Correction::Fdr && (count as f64) * p.alpha < family as f64 {
+            notes.warn(format!(
+                "contrast: fdr over {family} points per measure needs permutation p-values down \
+                 to alpha / {family}, but {count} patterns give none below 1/{count}: nothing \
+                 can be significant unless permutations ≥ {:.0} (or narrow pairs, freqs, times)",
+                (family as f64 / p.alpha).ceil()
+            ));
+        }
+        let flips = Flips::new(n, count, exact, p.seed);
+        let settings = Settings {
+            correction: p.correction,
+            threshold_t: stats::t_isf(p.threshold / 2.0, (n - 1) as f64),
+            maps_per_family: pairs,
+            rows,
+            cols,
+        };
+        let tested = test(&values, &flips, settings);
+        let layout = output_layout(p, first, n);
+        let per = measures * pairs * rows * cols;
+        let mut out = vec![0f32; STATISTICS.len() * per];
+        for (k, stat) in [
+            &tested.t,
+            &tested.p,
+            &tested.cluster.iter().map(|&c| f64::from(c)).collect(),
+            &tested.mean,
+            &tested.sem,
+        ]
+        .into_iter()
+        .enumerate()
+        {
+            for (o, &v) in out[k * per..(k + 1) * per].iter_mut().zip(stat.iter()) {
+                *o = v as f32;
+            }
+        }
+        let values = ArrayD::from_shape_vec(IxDyn(&layout.shape()), out)
+            .map_err(|e| StageError::data(format!("internal: {e}")))?;
+        LabelledArray::real(layout, values)
+    }
+}
+
+/// A cluster's rows, columns, mass, peak t and p, as the findings table gathers them.
+type Extent = ([usize; 2], [usize; 2], f64, f64, f64);
+
+/// The columns of the findings table.
+pub const FINDINGS_COLUMNS: [&str; 12] = [
+    "measure",
+    "channel_a",
+    "channel_b",
+    "cluster",
+    "freq_from",
+    "freq_to",
+    "time_from",
+    "time_to",
+    "mass",
+    "peak_t",
+    "p",
+    "significant",
+];
+
+/// The findings table of a `contrast` output, or `None` for any other array: one row per
+/// cluster (`cluster` correction; mass = Σ t of its points as stored, peak_t the t of largest
+/// magnitude), or per point with p ≤ alpha (`max`, `fdr`, `none`; cluster and mass `n/a`).
+/// Rows follow measure, pair, then cluster id or raster order.
+pub fn findings_tsv(array: &LabelledArray) -> Option<String> {
+    let layout = &array.layout;
+    if layout.meta.extra.get("table_form") != Some(&json!(TABLE_FORM)) {
+        return None;
+    }
+    let values = array.real_values().ok()?.as_slice()?;
+    let alpha = layout.meta.extra.get("alpha")?.as_f64()?;
+    let clusters = layout.meta.extra.get("correction") == Some(&json!(Correction::Cluster));
+    let shape = layout.shape();
+    let (measures, pairs, rows, cols) = (shape[1], shape[2], shape[3], shape[4]);
+    let per = measures * pairs * rows * cols;
+    let stat = |k: usize, i: usize| f64::from(values[k * per + i]);
+    let (freqs, times) = (layout.numbers("freq").ok()?, layout.numbers("time").ok()?);
+    let mut out = FINDINGS_COLUMNS.join("\t");
+    out.push('\n');
+    let yes_no = |p: f64| if p <= alpha { "true" } else { "false" };
+    for m in 0..measures {
+        for q in 0..pairs {
+            let base = (m * pairs + q) * rows * cols;
+            let measure = coord_text(&layout.coords[1], m);
+            let pair = layout.coords[2].pairs()?.get(q)?;
+            let head = format!("{measure}\t{}\t{}", pair[0], pair[1]);
+            if clusters {
+                // id → (rows, cols, mass, peak t, p)
+                let mut found: BTreeMap<u32, Extent> = BTreeMap::new();
+                for i in 0..rows * cols {
+                    let id = stat(2, base + i) as u32;
+                    if id == 0 {
+                        continue;
+                    }
+                    let (r, c, t) = (i / cols, i % cols, stat(0, base + i));
+                    let e = found
+                        .entry(id)
+                        .or_insert(([r, r], [c, c], 0.0, t, stat(1, base + i)));
+                    e.0 = [e.0[0].min(r), e.0[1].max(r)];
+                    e.1 = [e.1[0].min(c), e.1[1].max(c)];
+                    e.2 += t;
+                    if t.abs() > e.3.abs() {
+                        e.3 = t;
+                    }
+                }
+                for (id, (r, c, mass, peak, p)) in found {
+                    let _ = writeln!(
+                        out,
+                        "{head}\t{id}\t{}\t{}\t{}\t{}\t{}\t{}\t{}\t{}",
+                        number_text(freqs[r[0]]),
+                        number_text(freqs[r[1]]),
+                        number_text(times[c[0]]),
+                        number_text(times[c[1]]),
+                        number_text(mass),
+                        number_text(peak),
+                        number_text(p),
+                        yes_no(p)
+                    );
+                }
+            } else {
+                for i in 0..rows * cols {
+                    let p = stat(1, base + i);
+                    if p.is_nan() || p > alpha {
+                        continue;
+                    }
+                    let (f, t) = (number_text(freqs[i / cols]), number_text(times[i % cols]));
+                    let _ = writeln!(
+                        out,
+                        "{head}\tn/a\t{f}\t{f}\t{t}\t{t}\tn/a\t{}\t{}\ttrue",
+                        number_text(stat(0, base + i)),
+                        number_text(p)
+                    );
+                }
+            }
+        }
+    }
+    Some(out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::testutil::{assert_close, read_f64, read_json, read_vec};
+
+    fn f32s(v: &[f64]) -> Vec<f32> {
+        v.iter().map(|&x| x as f32).collect()
+    }
+
+    /// The numpy fixture's 7 subjects as per-subject arrays.
+    fn ttest_inputs() -> (Vec<String>, Vec<LabelledArray>) {
+        let x = read_f64("stats", "ttest_input");
+        let ids: Vec<String> = (1..=x.shape()[0]).map(|k| format!("sub-{k:02}")).collect();
+        let pairs: Vec<[String; 2]> = [["F3", "P4"], ["F3", "Cz"], ["Cz", "P4"]]
+            .map(|p| p.map(String::from))
+            .to_vec();
+        let layout = Layout {
+            dims: DIMS.map(String::from).to_vec(),
+            coords: vec![
+                Coord::Labels(vec!["high".into(), "low".into()]),
+                Coord::Labels(vec!["plv".into(), "wpli".into()]),
+                Coord::Pairs(pairs.into()),
+                Coord::Numbers(vec![4.0, 6.0, 8.0, 10.0]),
+                Coord::Numbers(vec![0.0, 0.1, 0.2, 0.3, 0.4]),
+            ],
+            units: "1".into(),
+            ..Layout::default()
+        };
+        let arrays = (0..ids.len())
+            .map(|k| {
+                let v = x.index_axis(ndarray::Axis(0), k).mapv(|v| v as f32);
+                LabelledArray::real(layout.clone(), v).unwrap()
+            })
+            .collect();
+        (ids, arrays)
+    }
+
+    fn params(v: serde_json::Value) -> ContrastParams {
+        crate::op::parse_params(&v).unwrap()
+    }
+
+    fn run(
+        p: &ContrastParams,
+        ids: &[String],
+        arrays: &[LabelledArray],
+    ) -> Result<LabelledArray, StageError> {
+        let inputs: Vec<Input> = ids
+            .iter()
+            .zip(arrays)
+            .map(|(id, a)| Input {
+                stage: "norm",
+                subject: Some(id),
+                array: a,
+            })
+            .collect();
+        Contrast::check(p)?;
+        let layouts: Vec<InputLayout> = inputs
+            .iter()
+            .map(|i| InputLayout {
+                stage: i.stage,
+                subject: i.subject,
+                layout: &i.array.layout,
+            })
+            .collect();
+        let planned = Contrast::layout(p, &layouts)?;
+        let out = Contrast::run(p, &inputs, &mut Notes::default())?;
+        assert_eq!(planned.as_ref(), Some(&out.layout));
+        Ok(out)
+    }
+
+    fn statistic(out: &LabelledArray, name: &str) -> Vec<f64> {
+        let k = STATISTICS.iter().position(|s| *s == name).unwrap();
+        out.real_values()
+            .unwrap()
+            .index_axis(ndarray::Axis(0), k)
+            .iter()
+            .map(|&v| f64::from(v))
+            .collect()
+    }
+
+    #[test]
+    fn point_t_matches_scipy_ttest_rel_and_ttest_1samp() {
+        // Reference: scipy.stats.ttest_rel / ttest_1samp and scipy.stats.sem (gen_stats.py).
+        // The differences are formed in f32 (as stored), scipy's in f64: a difference near 0
+        // then carries ~1e-8 absolute error, so t (mostly |t| < 5) is checked to 1e-4
+        // absolute; mean and SEM to 1e-6. The t formula itself is checked to 1e-12 on f32 data
+        // in `exact_family_wise_p_values_match_a_scipy_enumeration`.
+        let (ids, arrays) = ttest_inputs();
+        let p = params(json!({ "over": "subjects", "compare": ["high", "low"],
+                               "correction": "none", "permutations": 128 }));
+        let out = run(&p, &ids, &arrays).unwrap();
+        assert_eq!(
+            out.layout.dims,
+            ["statistic", "measure", "pair", "freq", "time"]
+        );
+        assert_close(
+            &statistic(&out, "t"),
+            &read_vec("stats", "ttest_rel"),
+            1.0,
+            1e-4,
+            "t",
+        );
+        assert_close(
+            &statistic(&out, "mean"),
+            &read_vec("stats", "ttest_mean"),
+            1e-2,
+            1e-6,
+            "mean",
+        );
+        assert_close(
+            &statistic(&out, "sem"),
+            &read_vec("stats", "ttest_sem"),
+            1e-2,
+            1e-6,
+            "sem",
+        );
+        let p = params(
+            json!({ "over": "subjects", "condition": "high", "correction": "none",
+                               "permutations": 128 }),
+        );
+        let out = run(&p, &ids, &arrays).unwrap();
+        assert_close(
+            &statistic(&out, "t"),
+            &read_vec("stats", "ttest_1samp"),
+            1e-6,
+            1e-6,
+            "t1",
+        );
+    }
+
+    fn family() -> (Vec<Vec<f32>>, Settings) {
+        let meta = read_json("stats", "family");
+        let get = |k: &str| meta[k].as_u64().unwrap() as usize;
+        let d = read_f64("stats", "family_input");
+        let n = get("subjects");
+        let subjects = (0..n)
+            .map(|k| {
+                f32s(
+                    &d.index_axis(ndarray::Axis(0), k)
+                        .iter()
+                        .copied()
+                        .collect::<Vec<_>>(),
+                )
+            })
+            .collect();
+        let settings = Settings {
+            correction: Correction::Cluster,
+            threshold_t: stats::t_isf(meta["threshold"].as_f64().unwrap() / 2.0, (n - 1) as f64),
+            maps_per_family: get("pairs"),
+            rows: get("rows"),
+            cols: get("cols"),
+        };
+        (subjects, settings)
+    }
+
+    fn test_family(correction: Correction) -> Tested {
+        let (subjects, settings) = family();
+        let views: Vec<&[f32]> = subjects.iter().map(|s| s.as_slice()).collect();
+        let n = views.len();
+        let flips = Flips::new(n, 1 << n, true, 0);
+        test(
+            &views,
+            &flips,
+            Settings {
+                correction,
+                ..settings
+            },
+        )
+    }
+
+    #[test]
+    fn exact_family_wise_p_values_match_a_scipy_enumeration() {
+        // Reference: gen_stats.py enumerates all 64 sign patterns of 6 subjects with
+        // scipy.stats.ttest_1samp, labels clusters with scipy.ndimage.label and adjusts with
+        // scipy.stats.false_discovery_control: the p-values are shares of 64, so equal exactly.
+        let meta = read_json("stats", "family");
+        let c = stats::t_isf(0.025, 5.0);
+        assert!((c - meta["threshold_t"].as_f64().unwrap()).abs() < 1e-12 * c);
+        let want_t = read_vec("stats", "family_t");
+        let cluster = test_family(Correction::Cluster);
+        assert_close(&cluster.t, &want_t, 1e-12, 1e-12, "t");
+        let labels: Vec<f64> = cluster.cluster.iter().map(|&c| f64::from(c)).collect();
+        assert_eq!(labels, read_vec("stats", "family_labels"));
+        let same = |got: &[f64], want: &[f64], what: &str| {
+            assert_eq!(got.len(), want.len());
+            for (i, (g, w)) in got.iter().zip(want).enumerate() {
+                assert!(
+                    g == w || (g.is_nan() && w.is_nan()),
+                    "{what} [{i}]: {g} vs {w}"
+                );
+            }
+        };
+        same(
+            &cluster.p,
+            &read_vec("stats", "family_p_cluster"),
+            "cluster p",
+        );
+        let max = test_family(Correction::Max);
+        same(&max.p, &read_vec("stats", "family_p_max"), "max p");
+        let none = test_family(Correction::None);
+        same(&none.p, &read_vec("stats", "family_p_none"), "none p");
+        let fdr = test_family(Correction::Fdr);
+        assert_close(
+            &fdr.p,
+            &read_vec("stats", "family_p_fdr"),
+            1e-300,
+            1e-14,
+            "fdr p",
+        );
+    }
+
+    #[test]
+    fn point_p_matches_scipy_permutation_test() {
+        // Reference: scipy.stats.permutation_test(permutation_type='samples') on one sample
+        // (sign flips), statistic |t|, all 2^8 patterns (gen_stats.py).
+        let d = read_f64("stats", "flip_input");
+        let (n, points) = (d.shape()[0], d.shape()[1]);
+        let subjects: Vec<Vec<f32>> = (0..n)
+            .map(|k| (0..points).map(|j| d[[k, j]] as f32).collect())
+            .collect();
+        let views: Vec<&[f32]> = subjects.iter().map(|s| s.as_slice()).collect();
+        let settings = Settings {
+            correction: Correction::None,
+            threshold_t: 2.0,
+            maps_per_family: 1,
+            rows: 1,
+            cols: points,
+        };
+        let got = test(&views, &Flips::new(n, 1 << n, true, 0), settings);
+        assert_eq!(got.p, read_vec("stats", "flip_p"));
+    }
+
+    #[test]
+    fn mirror_patterns_give_opposite_sums_exactly() {
+        // The exactness that makes pattern 0 reproduce the observed map: table rows are
+        // left-to-right sums, and negation commutes with rounding.
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(7);
+        for n in [3usize, 5, 7, 12] {
+            let data: Vec<Vec<f32>> = (0..n)
+                .map(|_| (0..33).map(|_| rng.gen_range(-3.0..3.0)).collect())
+                .collect();
+            let views: Vec<&[f32]> = data.iter().map(|s| s.as_slice()).collect();
+            let flips = Flips::new(n, 1 << n, true, 0);
+            let tables = Tables::build(&views, &flips);
+            let g = flips.groups.len();
+            let (mut a, mut b) = (vec![0f32; 33], vec![0f32; 33]);
+            for k in 0..1usize << n {
+                let mirror = (1 << n) - 1 - k;
+                tables.sum(&flips.masks[k * g..(k + 1) * g], &mut a);
+                tables.sum(&flips.masks[mirror * g..(mirror + 1) * g], &mut b);
+                assert!(
+                    a.iter().zip(&b).all(|(x, y)| *x == -*y),
+                    "n {n} pattern {k}"
+                );
+                // Against the plain signed sum in f64: f32 rounding only.
+                for (j, x) in a.iter().enumerate() {
+                    let plain: f64 = (0..n)
+                        .map(|i| if k >> i & 1 == 1 { -1.0 } else { 1.0 } * f64::from(data[i][j]))
+                        .sum();
+                    assert!((f64::from(*x) - plain).abs() < 1e-5, "n {n} k {k}");
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn random_flips_are_seeded_and_start_unflipped() {
+        let a = Flips::new(23, 1000, false, 5);
+        assert_eq!(a, Flips::new(23, 1000, false, 5));
+        assert_ne!(a, Flips::new(23, 1000, false, 6));
+        assert_eq!(a.groups.len(), 5);
+        assert!(a.masks[..5].iter().all(|&m| m == 0));
+        // The last group holds 3 subjects: its masks stay below 2^3.
+        assert!(a.masks.chunks(5).all(|m| m[4] < 8));
+        // Chunk c depends on (seed, c) alone: a longer run starts with the same patterns.
+        assert_eq!(Flips::new(23, 3000, false, 5).masks[..5000], a.masks[..]);
+    }
+
+    #[test]
+    fn results_are_bit_identical_for_any_thread_count() {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+        let (n, maps, rows, cols) = (13, 4, 5, 9);
+        let data: Vec<Vec<f32>> = (0..n)
+            .map(|_| {
+                (0..maps * rows * cols)
+                    .map(|_| rng.gen_range(-1.0..1.5))
+                    .collect()
+            })
+            .collect();
+        let views: Vec<&[f32]> = data.iter().map(|s| s.as_slice()).collect();
+        let flips = Flips::new(n, 700, false, 3);
+        for correction in [Correction::Cluster, Correction::Max, Correction::Fdr] {
+            let settings = Settings {
+                correction,
+                threshold_t: 1.5,
+                maps_per_family: 2,
+                rows,
+                cols,
+            };
+            let on = |threads: usize| {
+                let pool = rayon::ThreadPoolBuilder::new()
+                    .num_threads(threads)
+                    .build()
+                    .unwrap();
+                pool.install(|| test(&views, &flips, settings))
+            };
+            let one = on(1);
+            let bits = |t: &Tested| -> Vec<u64> {
+                t.t.iter()
+                    .chain(&t.p)
+                    .chain(&t.mean)
+                    .chain(&t.sem)
+                    .map(|x| x.to_bits())
+                    .collect()
+            };
+            for threads in [2, 3, 5] {
+                let many = on(threads);
+                assert_eq!(bits(&one), bits(&many), "{correction:?} {threads}");
+                assert_eq!(one.cluster, many.cluster);
+            }
+            assert!(one.p.iter().any(|p| p.is_finite()), "{correction:?}");
+        }
+    }
+
+    fn param_error(v: serde_json::Value) -> (String, String) {
+        let (ids, arrays) = ttest_inputs();
+        match run(&params(v), &ids, &arrays) {
+            Err(StageError::Param { field, message }) => (field, message),
+            other => panic!("expected a param error, got {other:?}"),
+        }
+    }
+
+    #[test]
+    fn bad_input_is_a_param_error_naming_the_field() {
+        let (f, m) = param_error(json!({ "over": "subjects", "compare": ["high", "mid"] }));
+        assert_eq!(f, "compare[1]");
+        assert!(
+            m.contains("`mid` is not in the data") && m.contains("high, low"),
+            "{m}"
+        );
+        let (f, m) = param_error(json!({ "over": "subjects", "compare": ["high", "high"] }));
+        assert_eq!(f, "compare");
+        assert!(m.contains("twice"), "{m}");
+        let (f, m) = param_error(json!({ "over": "subjects", "condition": "high",
+                                         "measure": ["plv", "icoh"] }));
+        assert_eq!(f, "measure");
+        assert!(
+            m.contains("`icoh` is not in the input") && m.contains("plv, wpli"),
+            "{m}"
+        );
+        let (f, m) = param_error(json!({ "over": "subjects", "condition": "high",
+                                         "permutations": 19 }));
+        assert_eq!(f, "permutations");
+        assert!(m.contains("at least 20"), "{m}");
+        let (f, _) = param_error(json!({ "over": "subjects", "condition": "high",
+                                         "freqs": [50, 60] }));
+        assert_eq!(f, "freqs");
+        let (f, _) = param_error(json!({ "over": "subjects" }));
+        assert_eq!(f, "compare");
+        // Fewer than 3 subjects.
+        let (ids, arrays) = ttest_inputs();
+        let p = params(json!({ "over": "subjects", "condition": "high" }));
+        let err = run(&p, &ids[..2], &arrays[..2]).unwrap_err();
+        assert!(
+            matches!(&err, StageError::Param { field, message } if field == "over"
+                && message.contains("at least 3 subjects, got 2")),
+            "{err:?}"
+        );
+        // A subject missing a condition is named.
+        let mut arrays = arrays;
+        arrays[4].layout.coords[0] = Coord::Labels(vec!["high".into(), "other".into()]);
+        let p = params(json!({ "over": "subjects", "compare": ["high", "low"] }));
+        let err = run(&p, &ids, &arrays).unwrap_err();
+        assert!(
+            matches!(&err, StageError::Param { field, message } if field == "compare[1]"
+                && message.starts_with("subject sub-05: condition `low` is not in the data")),
+            "{err:?}"
+        );
+    }
+
+    #[test]
+    fn findings_table_lists_clusters_with_their_extent() {
+        let (ids, arrays) = ttest_inputs();
+        let p = params(json!({ "over": "subjects", "compare": ["high", "low"],
+                               "threshold": 0.3, "permutations": 128 }));
+        let out = run(&p, &ids, &arrays).unwrap();
+        let table = crate::table::tidy_tsv(&out);
+        let mut lines = table.lines();
+        assert_eq!(lines.next().unwrap(), FINDINGS_COLUMNS.join("\t"));
+        let cluster = statistic(&out, "cluster");
+        let ids_found = cluster.iter().cloned().fold(0.0, f64::max) as usize;
+        assert!(ids_found > 0);
+        let rows: Vec<&str> = lines.collect();
+        assert_eq!(rows.len(), ids_found);
+        // Each row's mass is the sum of the stored t over its points (recomputed here).
+        let t = statistic(&out, "t");
+        for row in rows {
+            let cells: Vec<&str> = row.split('\t').collect();
+            let id: f64 = cells[3].parse().unwrap();
+            let mass: f64 = t
+                .iter()
+                .zip(&cluster)
+                .filter(|(_, &c)| c == id)
+                .map(|(t, _)| t)
+                .sum();
+            let written: f64 = cells[8].parse().unwrap();
+            assert!((written - mass).abs() <= 1e-6 * mass.abs(), "{row}");
+        }
+    }
+
+    /// Null studies (and studies with a planted effect) for the calibration table in
+    /// bench/contrast-calibration.md: each study has 12 subjects, 4 pairs of 10 × 12 maps of
+    /// normal noise smoothed by a 3 × 3 box (so neighbouring points correlate, as in real maps),
+    /// 1000 random sign patterns (2^12 > 1000), α = 0.05, cluster threshold 0.05. A study counts
+    /// as a false positive when any point is significant. The 95 % interval of a share is Wilson's
+    /// score interval (Wilson 1927, J Am Stat Assoc 22:209–212).
+    #[test]
+    #[ignore = "calibration, minutes of CPU: cargo test --release -p phasewise-stages calibrate -- --ignored --nocapture"]
+    fn calibrate_family_wise_error_and_power() {
+        use rand::SeedableRng;
+        use rand_distr::{Distribution, StandardNormal};
+        let (n, maps, rows, cols) = (12usize, 4usize, 10usize, 12usize);
+        let len = maps * rows * cols;
+        let study = |seed: u64, effect: f64| -> Vec<Vec<f32>> {
+            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+            (0..n)
+                .map(|_| {
+                    let raw: Vec<f64> = (0..len).map(|_| StandardNormal.sample(&mut rng)).collect();
+                    (0..len)
+                        .map(|i| {
+                            let (m, r, c) = (i / (rows * cols), i / cols % rows, i % cols);
+                            let mut acc = 0.0;
+                            for dr in -1i64..=1 {
+                                for dc in -1i64..=1 {
+                                    let (rr, cc) = (r as i64 + dr, c as i64 + dc);
+                                    let (rr, cc) = (
+                                        rr.clamp(0, rows as i64 - 1),
+                                        cc.clamp(0, cols as i64 - 1),
+                                    );
+                                    acc += raw[m * rows * cols + rr as usize * cols + cc as usize];
+                                }
+                            }
+                            // Effect: a 3 × 4 patch of pair 0, in units of the smoothed SD (1/3).
+                            let inside = m == 0 && (3..6).contains(&r) && (4..8).contains(&c);
+                            (acc / 9.0 + if inside { effect / 3.0 } else { 0.0 }) as f32
+                        })
+                        .collect()
+                })
+                .collect()
+        };
+        let wilson = |k: usize, total: usize| {
+            let (p, m, z) = (k as f64 / total as f64, total as f64, 1.96f64);
+            let centre = (p + z * z / (2.0 * m)) / (1.0 + z * z / m);
+            let half = z * (p * (1.0 - p) / m + z * z / (4.0 * m * m)).sqrt() / (1.0 + z * z / m);
+            (p, centre - half, centre + half)
+        };
+        let corrections = [Correction::Cluster, Correction::Max, Correction::Fdr];
+        let run = |data: &[Vec<f32>], seed: u64, c: Correction| {
+            let views: Vec<&[f32]> = data.iter().map(|s| s.as_slice()).collect();
+            let flips = Flips::new(n, 1000, false, seed);
+            let settings = Settings {
+                correction: c,
+                threshold_t: stats::t_isf(0.025, (n - 1) as f64),
+                maps_per_family: maps,
+                rows,
+                cols,
+            };
+            test(&views, &flips, settings).p
+        };
+        let studies = 500;
+        println!("| correction | null studies | with any significant point | family-wise error | 95 % interval |");
+        println!("|---|---|---|---|---|");
+        let nulls: Vec<Vec<Vec<f32>>> = (0..studies).map(|s| study(1000 + s as u64, 0.0)).collect();
+        for c in corrections {
+            let hits = nulls
+                .iter()
+                .enumerate()
+                .filter(|(s, d)| run(d, *s as u64, c).iter().any(|&p| p <= 0.05))
+                .count();
+            let (p, lo, hi) = wilson(hits, studies);
+            println!("| {c:?} | {studies} | {hits} | {p:.3} | [{lo:.3}, {hi:.3}] |");
+        }
+        println!();
+        println!("| effect (SD) | cluster | max | fdr |");
+        println!("|---|---|---|---|");
+        let planted = 200;
+        for effect in [0.5, 1.0, 1.5, 2.0] {
+            let data: Vec<_> = (0..planted)
+                .map(|s| study(5000 + s as u64, effect))
+                .collect();
+            let power: Vec<String> = corrections
+                .iter()
+                .map(|&c| {
+                    let found = data
+                        .iter()
+                        .enumerate()
+                        .filter(|(s, d)| {
+                            let p = run(d, *s as u64, c);
+                            (3..6).any(|r| (4..8).any(|col| p[r * cols + col] <= 0.05))
+                        })
+                        .count();
+                    format!("{:.2}", found as f64 / planted as f64)
+                })
+                .collect();
+            println!("| {effect} | {} |", power.join(" | "));
+        }
+    }
+}
