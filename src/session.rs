@@ -95,7 +95,7 @@ pub struct RunSummary {
 pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, RunError> {
     let started = now();
     exec::pool(options.jobs)?.install(|| {
-        let study = open(file, options, env)?;
+        let mut study = open(file, options, env)?;
         let plan = study.plan();
         tracing::info!(
             units = plan.units.len(),
@@ -104,6 +104,9 @@ pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, R
             "planned"
         );
         let recipes = recipe::decide_all(&study, &plan);
+        // The chains derive again what they need; the planned layouts (long time axes of the
+        // continuous stages among them) need not stay in memory while they run.
+        study.forget_planned_layouts();
         let bar = progress_bar(study.units.len(), options.progress);
         let job = Job {
             study: &study,

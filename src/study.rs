@@ -232,6 +232,16 @@ impl Study {
             .map(|s| self.sources[s].subject.as_str())
     }
 
+    /// Drop the layouts planned by ops (those of records stay: the store's memo holds them
+    /// anyway). The executor derives a layout again where a recipe needs one.
+    pub fn forget_planned_layouts(&mut self) {
+        for layout in &mut self.layouts {
+            if matches!(layout, Some(PlannedLayout::Computed(_))) {
+                *layout = None;
+            }
+        }
+    }
+
     /// The stage and subject an input comes from.
     pub fn origin(&self, input: UnitInput) -> (&str, Option<&str>) {
         match input {
