@@ -82,3 +82,10 @@ pub fn real_bits(a: &crate::LabelledArray) -> Vec<u32> {
         .map(|v| v.to_bits())
         .collect()
 }
+
+/// The message of a recording that must fail to read with an input error.
+pub fn read_error(path: &std::path::Path, events: crate::io::EventSource) -> String {
+    let err = crate::io::read_recording(path, events, &mut crate::Notes::default()).unwrap_err();
+    assert!(matches!(err, crate::StageError::Input(_)), "{err:?}");
+    err.to_string()
+}

@@ -304,6 +304,7 @@ mod tests {
     use super::*;
     use crate::io::{read_recording, read_recording_layout, sidecar_paths};
     use crate::op::Notes;
+    use crate::testutil::read_error;
     use crate::testutil::{fixture_path, read_f64, read_json};
     use ndarray::Axis;
 
@@ -422,12 +423,6 @@ mod tests {
         (dir, vhdr)
     }
 
-    fn error(path: &Path, events: EventSource) -> String {
-        let err = read_recording(path, events, &mut Notes::default()).unwrap_err();
-        assert!(matches!(err, StageError::Input(_)), "{err:?}");
-        err.to_string()
-    }
-
     // BIDS sidecars (Pernet et al. 2019) take precedence as for EDF: channels.tsv types, and
     // events.tsv with `events: sidecar`; the data and marker files join the source's key.
     #[test]
@@ -464,7 +459,7 @@ mod tests {
         assert_eq!(got.len(), 1);
         assert_eq!(got[0].label, "cue-a");
         std::fs::remove_file(&events).unwrap();
-        let err = error(&vhdr, EventSource::Sidecar);
+        let err = read_error(&vhdr, EventSource::Sidecar);
         assert!(
             err.contains("_events.tsv") && err.contains("does not exist"),
             "{err}"
@@ -481,7 +476,7 @@ mod tests {
         let bytes = std::fs::read(&data).unwrap();
         // 3 channels of INT_16: 6 bytes per data point.
         std::fs::write(&data, &bytes[..bytes.len() - 4]).unwrap();
-        let err = error(&vhdr, EventSource::Annotations);
+        let err = read_error(&vhdr, EventSource::Annotations);
         assert!(
             err.contains("int16_mux.eeg")
                 && err.contains("sub-01_task-x_eeg.vhdr")
@@ -489,7 +484,7 @@ mod tests {
             "{err}"
         );
         std::fs::remove_file(&data).unwrap();
-        let err = error(&vhdr, EventSource::Annotations);
+        let err = read_error(&vhdr, EventSource::Annotations);
         assert!(
             err.contains("line 6, DataFile") && err.contains("int16_mux.eeg"),
             "{err}"
@@ -497,13 +492,13 @@ mod tests {
         std::fs::write(&data, &bytes).unwrap();
         let header = std::fs::read_to_string(&vhdr).unwrap();
         std::fs::write(&vhdr, header.replace("INT_16", "INT_24")).unwrap();
-        let err = error(&vhdr, EventSource::Annotations);
+        let err = read_error(&vhdr, EventSource::Annotations);
         assert!(
             err.contains("BinaryFormat") && err.contains("INT_24"),
             "{err}"
         );
         std::fs::write(&vhdr, header.replace("=MULTIPLEXED", "=SIDEWAYS")).unwrap();
-        let err = error(&vhdr, EventSource::Annotations);
+        let err = read_error(&vhdr, EventSource::Annotations);
         assert!(
             err.contains("DataOrientation") && err.contains("SIDEWAYS"),
             "{err}"
@@ -517,7 +512,7 @@ mod tests {
             text.replace("Mk4=Comment,cue-left,401", "Mk4=Comment,cue-left,1025"),
         )
         .unwrap();
-        let err = error(&vhdr, EventSource::Annotations);
+        let err = read_error(&vhdr, EventSource::Annotations);
         assert!(
             err.contains("int16_mux.vmrk")
                 && err.contains("Mk4")
@@ -525,7 +520,7 @@ mod tests {
             "{err}"
         );
         // The data file is not a recording of its own.
-        let err = error(&dir.path().join("int16_mux.eeg"), EventSource::Sidecar);
+        let err = read_error(&dir.path().join("int16_mux.eeg"), EventSource::Sidecar);
         assert!(err.contains("point data.recordings at its header"), "{err}");
     }
 }

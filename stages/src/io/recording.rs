@@ -341,6 +341,7 @@ mod tests {
     use crate::io::edf::{write_edf_plus, EdfWriteSpec, SignalSpec};
     use crate::io::{read_recording, read_recording_layout, sidecar_paths};
     use crate::op::Notes;
+    use crate::testutil::read_error;
 
     const FS: f64 = 100.0;
 
@@ -405,12 +406,6 @@ mod tests {
         std::fs::write(path, bytes).unwrap();
     }
 
-    fn error(path: &Path, events: EventSource) -> String {
-        let err = read_recording(path, events, &mut Notes::default()).unwrap_err();
-        assert!(matches!(err, StageError::Input(_)), "{err:?}");
-        err.to_string()
-    }
-
     // Round trip: our writer, then our reader; values agree within half a quantisation step
     // (2·pmax / 65535, the 16-bit EDF resolution of Kemp et al. 1992), converted to volts.
     #[test]
@@ -470,7 +465,7 @@ mod tests {
             "name\tx\ty\tz\nFz\t0\t7.1\t6.2\nCz\tn/a\tn/a\tn/a\n",
         )
         .unwrap();
-        let err = error(&path, EventSource::Annotations);
+        let err = read_error(&path, EventSource::Annotations);
         assert!(
             err.contains("coordsystem.json") && err.contains("does not exist"),
             "{err}"
@@ -504,11 +499,11 @@ mod tests {
         assert_eq!(layout.meta.extra["bad_channels"], serde_json::json!(["Cz"]));
 
         std::fs::write(&coords, r#"{"EEGCoordinateUnits": "n/a"}"#).unwrap();
-        let err = error(&path, EventSource::Annotations);
+        let err = read_error(&path, EventSource::Annotations);
         assert!(err.contains("EEGCoordinateUnits is \"n/a\""), "{err}");
         std::fs::write(&coords, r#"{"EEGCoordinateUnits": "mm"}"#).unwrap();
         std::fs::write(&electrodes, "name\tx\ty\tz\nFz\t0\tnear\t6.2\n").unwrap();
-        let err = error(&path, EventSource::Annotations);
+        let err = read_error(&path, EventSource::Annotations);
         assert!(
             err.contains("electrodes.tsv: line 2: y is \"near\""),
             "{err}"
@@ -546,7 +541,7 @@ mod tests {
         assert_eq!(notes.warnings.len(), 1);
         assert!(notes.warnings[0].contains("left"), "{:?}", notes.warnings);
         std::fs::remove_file(&events).unwrap();
-        let err = error(&path, EventSource::Sidecar);
+        let err = read_error(&path, EventSource::Sidecar);
         assert!(
             err.contains("sub-01_task-x_events.tsv") && err.contains("does not exist"),
             "{err}"
@@ -558,13 +553,13 @@ mod tests {
         let (dir, path) = recording();
         let events = dir.path().join("sub-01_task-x_events.tsv");
         std::fs::write(&events, "onset\tduration\ttrial_type\n1\t0\ta\n3.5\t0\tb\n").unwrap();
-        let err = error(&path, EventSource::Sidecar);
+        let err = read_error(&path, EventSource::Sidecar);
         assert!(
             err.contains("line 3") && err.contains("past the end") && err.contains("3 s"),
             "{err}"
         );
         std::fs::write(&events, "onset\tduration\tvalue\n1\t0\ta\n").unwrap();
-        let err = error(&path, EventSource::Sidecar);
+        let err = read_error(&path, EventSource::Sidecar);
         assert!(
             err.contains("_events.tsv") && err.contains("trial_type"),
             "{err}"
@@ -601,7 +596,7 @@ mod tests {
         for (at, width, text, needle) in cases {
             let (_dir, path) = recording();
             patch(&path, at, width, text);
-            let err = error(&path, EventSource::Annotations);
+            let err = read_error(&path, EventSource::Annotations);
             assert!(
                 err.contains(needle) && err.contains("sub-01_task-x_eeg.edf"),
                 "{text}: {err}"
@@ -614,14 +609,13 @@ mod tests {
         let (_dir, path) = recording();
         let bytes = std::fs::read(&path).unwrap();
         std::fs::write(&path, &bytes[..100]).unwrap();
-        assert!(error(&path, EventSource::Annotations).contains("shorter than the 256-byte"));
+        assert!(read_error(&path, EventSource::Annotations).contains("shorter than the 256-byte"));
         std::fs::write(&path, &bytes[..600]).unwrap();
-        assert!(
-            error(&path, EventSource::Annotations).contains("shorter than the 1280-byte header")
-        );
+        assert!(read_error(&path, EventSource::Annotations)
+            .contains("shorter than the 1280-byte header"));
         // A truncated last record: the file holds 2 whole records and part of a third.
         std::fs::write(&path, &bytes[..bytes.len() - 10]).unwrap();
-        let err = error(&path, EventSource::Annotations);
+        let err = read_error(&path, EventSource::Annotations);
         assert!(
             err.contains("holds 2 whole records and part of another"),
             "{err}"
@@ -629,12 +623,12 @@ mod tests {
         let mut longer = bytes.clone();
         longer.extend_from_slice(&[0; 7]);
         std::fs::write(&path, &longer).unwrap();
-        assert!(error(&path, EventSource::Annotations).contains("record count is wrong"));
+        assert!(read_error(&path, EventSource::Annotations).contains("record count is wrong"));
         std::fs::write(&path, &bytes[..1280]).unwrap();
         patch(&path, 236, 8, "0");
-        assert!(error(&path, EventSource::Annotations).contains("0 data records"));
+        assert!(read_error(&path, EventSource::Annotations).contains("0 data records"));
         let missing = path.with_file_name("nothing.edf");
-        assert!(error(&missing, EventSource::Annotations).contains("cannot open"));
+        assert!(read_error(&missing, EventSource::Annotations).contains("cannot open"));
     }
 
     #[test]
@@ -645,7 +639,7 @@ mod tests {
         let at = 1280 + 3 * 100 * 2;
         assert_eq!(&bytes[at..at + 5], b"+0\x14\x14\x00");
         patch(&path, at, 2, "x0");
-        let err = error(&path, EventSource::Annotations);
+        let err = read_error(&path, EventSource::Annotations);
         assert!(
             err.contains("data record 1") && err.contains("\"x0\""),
             "{err}"
@@ -665,7 +659,7 @@ mod tests {
         let at = 1280 + 2 * header.record_bytes() + header.signal_offset(3);
         assert_eq!(&bytes[at..at + 5], b"+2\x14\x14\x00");
         patch(&path, at, 2, "+5");
-        let err = error(&path, EventSource::Annotations);
+        let err = read_error(&path, EventSource::Annotations);
         assert!(
             err.contains("gap") && err.contains("data record 3 starts at 5 s"),
             "{err}"

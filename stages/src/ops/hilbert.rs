@@ -30,7 +30,7 @@ use crate::op::{single, Input, InputLayout, Notes, Op};
 
 use super::morlet::Keep;
 use super::wavelet::{
-    check_crop_stride, check_finite, check_freqs, freq_field, keep_for, FreqSpec,
+    check_crop_stride, check_finite, check_freqs, check_part, freq_field, keep_for, FreqSpec,
 };
 
 /// The `hilbert` op.
@@ -197,12 +197,7 @@ impl Op for Hilbert {
     ) -> Result<LabelledArray, StageError> {
         let input = single(inputs)?.array;
         let plan = plan(p, &input.layout)?;
-        if part.start >= part.end || part.end > plan.filters.len() {
-            return Err(StageError::data(format!(
-                "internal: bands {part:?} of {}",
-                plan.filters.len()
-            )));
-        }
+        check_part(&part, plan.filters.len(), "bands")?;
         transform_part(plan, input, part)
     }
 }

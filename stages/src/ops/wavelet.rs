@@ -490,12 +490,7 @@ impl Op for Wavelet {
     ) -> Result<LabelledArray, StageError> {
         let input = single(inputs)?.array;
         let plan = plan(p, &input.layout)?;
-        if part.start >= part.end || part.end > plan.freqs.len() {
-            return Err(StageError::data(format!(
-                "internal: frequencies {part:?} of {}",
-                plan.freqs.len()
-            )));
-        }
+        check_part(&part, plan.freqs.len(), "frequencies")?;
         // The edge warning is about the lowest frequency: the part that holds it gives it.
         if part.start == 0 {
             if let Some(w) = edge_warning(p, &input.layout)? {
@@ -504,6 +499,21 @@ impl Op for Wavelet {
         }
         transform_part(plan, input, part)
     }
+}
+
+/// A part (a range of `len` `what`, e.g. frequencies) that the runner asks for must be a
+/// non-empty range inside the axis; anything else is the runner's mistake.
+pub(crate) fn check_part(
+    part: &std::ops::Range<usize>,
+    len: usize,
+    what: &str,
+) -> Result<(), StageError> {
+    if part.start >= part.end || part.end > len {
+        return Err(StageError::data(format!(
+            "internal: {what} {part:?} of {len}"
+        )));
+    }
+    Ok(())
 }
 
 /// The coefficients of the frequencies in `part` (all of them for a whole run).
