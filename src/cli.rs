@@ -120,6 +120,8 @@ pub enum Command {
         /// The shell.
         shell: clap_complete::Shell,
     },
+    /// Print the JSON Schema of the pipeline file, for editors that check YAML as it is typed.
+    Schema,
 }
 
 /// A pipeline with its overrides, subject selection and cache.
@@ -232,6 +234,11 @@ fn dispatch(cli: &Cli) -> Result<i32> {
         Command::Completions { shell } => {
             let mut command = <Cli as clap::CommandFactory>::command();
             clap_complete::generate(*shell, &mut command, "phasewise", &mut std::io::stdout());
+            Ok(0)
+        }
+        Command::Schema => {
+            let schema = crate::schema::pipeline(env.ops);
+            println!("{}", serde_json::to_string_pretty(&schema)?);
             Ok(0)
         }
     }

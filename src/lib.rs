@@ -43,6 +43,7 @@ pub mod prune;
 pub mod recipe;
 pub mod report;
 pub mod scaffold;
+pub mod schema;
 pub mod session;
 pub mod slabs;
 pub mod sources;

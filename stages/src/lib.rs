@@ -28,6 +28,8 @@ pub use array::{
 };
 pub use error::StageError;
 pub use op::{BoundOp, DynOp, Input, InputLayout, Notes, Op, OwnedInput};
+/// The JSON Schema library the ops derive their params' schemas with (for `phasewise schema`).
+pub use schemars;
 
 #[cfg(test)]
 pub(crate) mod testutil;

@@ -107,8 +107,10 @@ impl Notes {
 
 /// A signal-processing op with typed parameters.
 pub trait Op: Send + Sync + 'static {
-    /// The op's parameters, deserialised with `deny_unknown_fields`.
-    type Params: DeserializeOwned + Serialize + Send + Sync;
+    /// The op's parameters, deserialised with `deny_unknown_fields`. Their JSON Schema (derived
+    /// from the same type, so it cannot drift from what the parser accepts) is what
+    /// `phasewise schema` publishes for editors.
+    type Params: DeserializeOwned + Serialize + schemars::JsonSchema + Send + Sync;
     /// The name used in pipeline files (`op: wavelet`).
     const NAME: &'static str;
     /// Bumped whenever the op's numbers change, so that cached results go stale.
@@ -228,6 +230,9 @@ pub trait DynOp: Send + Sync {
     fn resolve(&self, params: &Value) -> Result<Value, StageError> {
         Ok(self.bind(params)?.params().clone())
     }
+    /// The JSON Schema (draft 2020-12) of the op's params, derived from [`Op::Params`]; the
+    /// types it refers to are added to `generator`'s definitions.
+    fn params_schema(&self, generator: &mut schemars::SchemaGenerator) -> schemars::Schema;
 }
 
 /// An op with its typed params parsed and checked once ([`DynOp::bind`]). Each method is the
@@ -303,6 +308,9 @@ impl<O: Op> DynOp for Registered<O> {
     }
     fn version(&self) -> u32 {
         O::VERSION
+    }
+    fn params_schema(&self, generator: &mut schemars::SchemaGenerator) -> schemars::Schema {
+        generator.subschema_for::<O::Params>()
     }
     fn bind(&self, params: &Value) -> Result<Box<dyn BoundOp>, StageError> {
         let typed: O::Params = parse_params(params)?;

@@ -388,3 +388,33 @@ fn the_license_files_exist_and_the_citation_names_the_crate_version() {
         "CITATION.cff's version must follow Cargo.toml's"
     );
 }
+
+/// The schema committed for editors is what `phasewise schema` prints today, and every pipeline
+/// shipped in the repository points its editor at it. (Whether the pipelines validate against it
+/// is checked by an outside validator: tests/reference/check_schema.py, run by .ci/run.)
+#[test]
+fn the_committed_schema_is_what_schema_prints_and_every_pipeline_points_at_it() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let tmp = tempfile::tempdir().unwrap();
+    let out = run_cli(tmp.path(), &["schema"]);
+    assert_success(&out, "schema");
+    let committed = fs::read_to_string(root.join(phasewise::schema::COMMITTED)).unwrap();
+    assert!(
+        stdout_of(&out) == committed,
+        "{} is out of date: regenerate it with `cargo run -- schema > {}`",
+        phasewise::schema::COMMITTED,
+        phasewise::schema::COMMITTED
+    );
+    let modeline = "# yaml-language-server: $schema=../schema/pipeline.schema.json";
+    let mut pipelines: Vec<PathBuf> = fs::read_dir(root.join("pipelines"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|e| e == "yaml"))
+        .collect();
+    pipelines.push(root.join("bench/chain.yaml"));
+    assert!(pipelines.len() >= 4, "{pipelines:?}");
+    for p in pipelines {
+        let text = fs::read_to_string(&p).unwrap();
+        assert_eq!(text.lines().next(), Some(modeline), "{}", p.display());
+    }
+}

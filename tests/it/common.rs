@@ -34,7 +34,8 @@ use serde::{Deserialize, Serialize};
 pub struct Scale;
 
 /// Params of [`Scale`].
-#[derive(Serialize, Deserialize)]
+#[derive(Serialize, Deserialize, phasewise_stages::schemars::JsonSchema)]
+#[schemars(crate = "phasewise_stages::schemars")]
 #[serde(deny_unknown_fields)]
 pub struct ScaleParams {
     /// The factor.
@@ -89,7 +90,8 @@ impl Op for Scale {
 pub struct Mean;
 
 /// Params of [`Mean`].
-#[derive(Serialize, Deserialize)]
+#[derive(Serialize, Deserialize, phasewise_stages::schemars::JsonSchema)]
+#[schemars(crate = "phasewise_stages::schemars")]
 #[serde(deny_unknown_fields)]
 pub struct MeanParams {
     /// Must be `subjects`.
@@ -141,7 +143,8 @@ impl Op for Mean {
 pub struct Fail;
 
 /// Params of [`Fail`].
-#[derive(Serialize, Deserialize)]
+#[derive(Serialize, Deserialize, phasewise_stages::schemars::JsonSchema)]
+#[schemars(crate = "phasewise_stages::schemars")]
 #[serde(deny_unknown_fields)]
 pub struct FailParams {
     /// The subject to fail for.

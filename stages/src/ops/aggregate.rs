@@ -33,7 +33,7 @@ use crate::table::coord_text;
 pub struct Aggregate;
 
 /// Parameters of `aggregate`.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct AggregateParams {
     /// Frequency bands `name: [lo, hi]` in Hz (inclusive); the `freq` axis becomes `band`.
@@ -51,7 +51,7 @@ pub struct AggregateParams {
 }
 
 /// What `over` can join.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum Over {
     /// One input per subject; the output summarises them.

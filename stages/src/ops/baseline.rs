@@ -24,7 +24,7 @@ use crate::table::{number_text, position_text};
 pub struct Baseline;
 
 /// Parameters of `baseline`.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct BaselineParams {
     /// Baseline window `[t0, t1]` in seconds on the `time` axis, both ends included.
@@ -34,7 +34,7 @@ pub struct BaselineParams {
 }
 
 /// How a value is expressed relative to its baseline (DESIGN §4).
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum BaselineMode {
     /// v − b̄, in the input's units.

@@ -48,7 +48,7 @@ pub struct Clustering;
 ///
 /// Read by hand rather than as an untagged enum, so that a misspelt measure is reported as serde
 /// reports an unknown variant (naming it and the measures that exist) instead of "did not match".
-#[derive(Clone, Debug, PartialEq, Serialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, schemars::JsonSchema)]
 #[serde(untagged)]
 pub enum MeasureSpec {
     /// A single measure.
@@ -75,7 +75,9 @@ impl<'de> Deserialize<'de> for MeasureSpec {
 }
 
 /// The word `all`.
-#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(
+    Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize, schemars::JsonSchema,
+)]
 #[serde(rename_all = "lowercase")]
 pub enum AllWord {
     /// Every pair of data channels.
@@ -84,7 +86,7 @@ pub enum AllWord {
 }
 
 /// `{seed: [..]}`.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct Seeds {
     /// Seed channel names.
@@ -92,7 +94,7 @@ pub struct Seeds {
 }
 
 /// Which channel pairs to measure.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(
     untagged,
     expecting = "`all`, `{seed: [channel, ..]}` or a list of `[a, b]` channel pairs"
@@ -114,7 +116,9 @@ impl Default for PairSpec {
 }
 
 /// What the sums run over.
-#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(
+    Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize, schemars::JsonSchema,
+)]
 #[serde(rename_all = "lowercase")]
 pub enum Across {
     /// Over the trials of a condition (the default).
@@ -125,7 +129,7 @@ pub enum Across {
 }
 
 /// Parameters of `clustering`.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ClusteringParams {
     /// The measure(s).

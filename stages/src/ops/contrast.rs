@@ -63,7 +63,7 @@ use crate::table::{coord_text, number_text};
 pub struct Contrast;
 
 /// One measure name or several.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(untagged, expecting = "a measure name or a list of measure names")]
 pub enum Names {
     /// One.
@@ -73,7 +73,9 @@ pub enum Names {
 }
 
 /// The multiple-comparison correction.
-#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(
+    Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize, schemars::JsonSchema,
+)]
 #[serde(rename_all = "lowercase")]
 pub enum Correction {
     /// Cluster mass over freq × time within a pair, family-wise over the pairs of a measure.
@@ -88,7 +90,7 @@ pub enum Correction {
 }
 
 /// Parameters of `contrast`.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ContrastParams {
     /// `subjects`: one input per subject (required).

@@ -32,7 +32,7 @@ use crate::op::{single, Input, InputLayout, Notes, Op};
 pub struct Epoch;
 
 /// Parameters of `epoch`.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct EpochParams {
     /// Condition name → the event labels that belong to it.
@@ -48,7 +48,7 @@ pub struct EpochParams {
 }
 
 /// `equalize: { seed: S }`.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct Equalize {
     /// Seed of the subsampling: same seed, same trials kept.
@@ -56,7 +56,7 @@ pub struct Equalize {
 }
 
 /// Rejection criteria.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct Reject {
     /// Largest allowed max − min, in volts, on any voltage data channel within a trial.

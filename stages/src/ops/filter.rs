@@ -21,7 +21,7 @@ use crate::op::{single, Input, InputLayout, Notes, Op};
 pub struct Filter;
 
 /// Parameters of `filter`.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct FilterParams {
     /// Lower band edge in Hz (high-pass when alone).

@@ -37,7 +37,7 @@ use super::wavelet::{
 pub struct Hilbert;
 
 /// Parameters of `hilbert`.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct HilbertParams {
     /// Band edges `[lo, hi]` in Hz, one output frequency each.

@@ -24,7 +24,7 @@ use super::laplacian::{check_spline, default_lambda, default_m, default_terms};
 pub struct Interpolate;
 
 /// Parameters of `interpolate`.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct InterpolateParams {
     /// The channels to replace (default: those the channels sidecar marks bad).

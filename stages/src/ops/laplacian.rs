@@ -25,7 +25,7 @@ use crate::spatial::{apply_to_channels, channel_input, spline_positions};
 pub struct Laplacian;
 
 /// Parameters shared by the spline ops.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct LaplacianParams {
     /// Spline order m.

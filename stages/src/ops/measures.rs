@@ -10,7 +10,7 @@ use num_complex::{Complex32, Complex64};
 use serde::{Deserialize, Serialize};
 
 /// A phase-clustering measure.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(rename_all = "lowercase")]
 pub enum Measure {
     /// Phase-locking value, |Σ e^{iΔφ}| / N (Lachaux et al. 1999).

@@ -20,7 +20,7 @@ use crate::op::{single, Input, InputLayout, Notes, Op};
 pub struct Notch;
 
 /// Parameters of `notch`.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct NotchParams {
     /// Centre frequencies in Hz (e.g. `[50]`).

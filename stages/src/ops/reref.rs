@@ -26,7 +26,7 @@ use crate::op::{single, Input, InputLayout, Notes, Op};
 pub struct ReReference;
 
 /// How the new reference is formed.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum Method {
     /// The mean of all voltage data channels.
@@ -38,7 +38,7 @@ pub enum Method {
 }
 
 /// Parameters of `re-reference`.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ReReferenceParams {
     /// How the new reference is formed.

@@ -24,7 +24,7 @@ use crate::op::{single, Input, InputLayout, Notes, Op};
 pub struct Resample;
 
 /// Parameters of `resample`.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ResampleParams {
     /// The new sampling rate in Hz.

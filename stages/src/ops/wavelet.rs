@@ -37,7 +37,9 @@ use super::params_de::map_only;
 pub struct Wavelet;
 
 /// Spacing of a frequency range.
-#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(
+    Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize, schemars::JsonSchema,
+)]
 #[serde(rename_all = "lowercase")]
 pub enum Spacing {
     /// Equal ratios between neighbours (the default).
@@ -48,7 +50,7 @@ pub enum Spacing {
 }
 
 /// `freqs: {from, to, count, spacing}`.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct FreqRange {
     /// Lowest frequency in Hz.
@@ -63,7 +65,7 @@ pub struct FreqRange {
 }
 
 /// The frequencies: a range or an explicit list (Hz).
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(
     untagged,
     expecting = "`{from, to, count, spacing: log|linear}` or a list of frequencies in Hz"
@@ -77,7 +79,7 @@ pub enum FreqSpec {
 }
 
 /// `cycles: {from, to}`: log-spaced over the frequencies' order.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct CycleRamp {
     /// Cycles at the first frequency.
@@ -87,7 +89,7 @@ pub struct CycleRamp {
 }
 
 /// Number of cycles: one for all frequencies, or a ramp.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(untagged, expecting = "a number of cycles or `{from, to}`")]
 pub enum CycleSpec {
     /// The same number of cycles at every frequency.
@@ -98,7 +100,7 @@ pub enum CycleSpec {
 }
 
 /// Parameters of `wavelet`.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct WaveletParams {
     /// The frequencies.
