@@ -291,9 +291,9 @@ fn copy_report(html: &Path, to: &Path) {
 
 /// Decodes a PNG (png crate) into (width, height, RGB bytes).
 fn decode_png(bytes: &[u8]) -> (u32, u32, Vec<u8>) {
-    let decoder = png::Decoder::new(bytes);
+    let decoder = png::Decoder::new(std::io::Cursor::new(bytes));
     let mut reader = decoder.read_info().expect("PNG header");
-    let mut buf = vec![0; reader.output_buffer_size()];
+    let mut buf = vec![0; reader.output_buffer_size().expect("PNG size fits memory")];
     let info = reader.next_frame(&mut buf).expect("PNG data");
     let channels = info.color_type.samples();
     assert!(
