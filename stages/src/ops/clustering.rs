@@ -186,7 +186,7 @@ fn check_input(layout: &Layout) -> Result<(), StageError> {
 }
 
 /// The trials of each condition, conditions sorted by name.
-fn conditions(layout: &Layout) -> Result<Vec<(String, Vec<usize>)>, StageError> {
+pub(crate) fn conditions(layout: &Layout) -> Result<Vec<(String, Vec<usize>)>, StageError> {
     let labels: Vec<String> = match (layout.coord("trial")?, &layout.meta.trials) {
         (Coord::Labels(l), _) => l.clone(),
         (c, Some(t)) if t.len() == c.len() => t.iter().map(|t| t.condition.clone()).collect(),
@@ -262,7 +262,10 @@ fn lookup(
     }
 }
 
-fn resolve_pairs(spec: &PairSpec, layout: &Layout) -> Result<Vec<(usize, usize)>, StageError> {
+pub(crate) fn resolve_pairs(
+    spec: &PairSpec,
+    layout: &Layout,
+) -> Result<Vec<(usize, usize)>, StageError> {
     let (names, data) = channels(layout)?;
     let idx: Vec<usize> = (0..names.len()).filter(|&i| data[i]).collect();
     let mut pairs = Vec::new();
@@ -463,7 +466,12 @@ impl Op for Clustering {
         let plan = plan(p, &input.layout)?;
         let values = input.complex_values()?.as_standard_layout();
         let x = Coefs::new(values.as_slice().unwrap_or(&[]), &input.layout.shape());
-        check_coefficients(&x, &plan, &input.layout, notes)?;
+        check_coefficients(
+            &x,
+            &used_channels(&plan.pairs),
+            (Self::NAME, &input.layout),
+            notes,
+        )?;
         if plan.halves.is_none() && plan.measures.contains(&Measure::Ppc) {
             for (c, trials) in plan.conditions.iter().filter(|c| c.1.len() < 2) {
                 notes.warn(format!(
@@ -517,7 +525,7 @@ fn warn_unequal_counts(plan: &Plan, notes: &mut Notes) {
 }
 
 /// Read access to coefficients laid out [channel, trial, freq, time].
-struct Coefs<'a> {
+pub(crate) struct Coefs<'a> {
     values: &'a [Complex32],
     trials: usize,
     freqs: usize,
@@ -525,7 +533,7 @@ struct Coefs<'a> {
 }
 
 impl<'a> Coefs<'a> {
-    fn new(values: &'a [Complex32], shape: &[usize]) -> Self {
+    pub(crate) fn new(values: &'a [Complex32], shape: &[usize]) -> Self {
         let dim = |i: usize| shape.get(i).copied().unwrap_or(0);
         Coefs {
             values,
@@ -536,7 +544,7 @@ impl<'a> Coefs<'a> {
     }
 
     /// The time series of (channel c, trial n, frequency f).
-    fn series(&self, c: usize, n: usize, f: usize) -> &'a [Complex32] {
+    pub(crate) fn series(&self, c: usize, n: usize, f: usize) -> &'a [Complex32] {
         let start = ((c * self.trials + n) * self.freqs + f) * self.times;
         &self.values[start..start + self.times]
     }
@@ -549,37 +557,37 @@ impl<'a> Coefs<'a> {
 }
 
 /// The channels that appear in a pair, in channel order.
-fn used_channels(plan: &Plan) -> Vec<usize> {
-    let mut used: Vec<usize> = plan.pairs.iter().flat_map(|&(a, b)| [a, b]).collect();
+pub(crate) fn used_channels(pairs: &[(usize, usize)]) -> Vec<usize> {
+    let mut used: Vec<usize> = pairs.iter().flat_map(|&(a, b)| [a, b]).collect();
     used.sort_unstable();
     used.dedup();
     used
 }
 
 /// Rejects non-finite coefficients (a NaN would spread through the window sums) and warns once
-/// per channel that holds exact zeros.
-fn check_coefficients(
+/// per channel that holds exact zeros; `op` names the op in the warning.
+pub(crate) fn check_coefficients(
     x: &Coefs,
-    plan: &Plan,
-    layout: &Layout,
+    used: &[usize],
+    (op, layout): (&str, &Layout),
     notes: &mut Notes,
 ) -> Result<(), StageError> {
     let names = layout.labels("channel")?;
-    for c in used_channels(plan) {
+    for &c in used {
         let values = x.channel(c);
         if values
             .iter()
             .any(|z| !(z.re.is_finite() && z.im.is_finite()))
         {
             return Err(StageError::data(format!(
-                "channel {} holds non-finite wavelet coefficients; clustering needs finite values",
+                "channel {} holds non-finite wavelet coefficients; {op} needs finite values",
                 names[c]
             )));
         }
         let zeros = values.iter().filter(|z| z.re == 0.0 && z.im == 0.0).count();
         if zeros > 0 {
             notes.warn(format!(
-                "clustering: channel {} has {zeros} zero wavelet coefficient(s) of {}; a zero has \
+                "{op}: channel {} has {zeros} zero wavelet coefficient(s) of {}; a zero has \
                  no phase, so every pair with {} is NaN where one enters",
                 names[c],
                 values.len(),
@@ -608,7 +616,7 @@ impl Polar {
 /// Output values, laid out [condition, measure, pair, freq, time].
 fn compute(plan: &Plan, x: &Coefs) -> Vec<f32> {
     let plane = x.freqs * x.times;
-    let used = used_channels(plan);
+    let used = used_channels(&plan.pairs);
     let Some(halves) = &plan.halves else {
         let mut out = vec![0.0f32; plan.layout.shape().iter().product()];
         let per_condition = out.len() / plan.conditions.len().max(1);
