@@ -347,16 +347,16 @@ fn half_windows(cycles: f64, layout: &Layout) -> Result<Vec<usize>, StageError> 
         .collect()
 }
 
-fn plan(params: &ClusteringParams, input: &Layout) -> Result<Plan, StageError> {
-    Clustering::check(params)?;
-    check_input(input)?;
-    let measures = params.measures();
-    let pairs = resolve_pairs(&params.pairs, input)?;
-    let conditions = conditions(input)?;
-    let halves = match (params.across, params.window_cycles) {
-        (Across::Time, Some(c)) => Some(half_windows(c, input)?),
-        _ => None,
-    };
+/// The layout `[condition, measure, pair, freq, time]` of measures computed from coefficients
+/// `input`, with the given freq and time coordinates; the trial count of each condition in
+/// `meta.extra.trials_per_condition`.
+pub(crate) fn measure_layout(
+    input: &Layout,
+    conditions: &[(String, Vec<usize>)],
+    measures: &[Measure],
+    pairs: &[(usize, usize)],
+    (freq, time): (Coord, Coord),
+) -> Result<Layout, StageError> {
     let names = input.labels("channel")?;
     let mut layout = input.clone();
     layout.dims = ["condition", "measure", "pair", "freq", "time"]
@@ -371,8 +371,8 @@ fn plan(params: &ClusteringParams, input: &Layout) -> Result<Plan, StageError> {
                 .map(|&(a, b)| [names[a].clone(), names[b].clone()])
                 .collect(),
         ),
-        input.coord("freq")?.clone(),
-        input.coord("time")?.clone(),
+        freq,
+        time,
     ];
     layout.units = "1".into();
     layout.complex = false;
@@ -388,6 +388,26 @@ fn plan(params: &ClusteringParams, input: &Layout) -> Result<Plan, StageError> {
         .meta
         .extra
         .insert("trials_per_condition".into(), counts.into());
+    Ok(layout)
+}
+
+fn plan(params: &ClusteringParams, input: &Layout) -> Result<Plan, StageError> {
+    Clustering::check(params)?;
+    check_input(input)?;
+    let measures = params.measures();
+    let pairs = resolve_pairs(&params.pairs, input)?;
+    let conditions = conditions(input)?;
+    let halves = match (params.across, params.window_cycles) {
+        (Across::Time, Some(c)) => Some(half_windows(c, input)?),
+        _ => None,
+    };
+    let layout = measure_layout(
+        input,
+        &conditions,
+        &measures,
+        &pairs,
+        (input.coord("freq")?.clone(), input.coord("time")?.clone()),
+    )?;
     Ok(Plan {
         measures,
         pairs,
@@ -397,39 +417,47 @@ fn plan(params: &ClusteringParams, input: &Layout) -> Result<Plan, StageError> {
     })
 }
 
+/// At least one measure, none twice; a seed list or pair list that is not empty.
+pub(crate) fn check_measures_and_pairs(
+    measures: &[Measure],
+    pairs: &PairSpec,
+) -> Result<(), StageError> {
+    if measures.is_empty() {
+        return Err(StageError::param(
+            "measure",
+            "expected at least one measure",
+        ));
+    }
+    for (i, m) in measures.iter().enumerate() {
+        if measures[..i].contains(m) {
+            return Err(StageError::param(
+                "measure",
+                format!("{} is listed twice", m.name()),
+            ));
+        }
+    }
+    match pairs {
+        PairSpec::Seed(s) if s.seed.is_empty() => {
+            return Err(StageError::param(
+                "pairs.seed",
+                "expected at least one seed channel",
+            ))
+        }
+        PairSpec::List(l) if l.is_empty() => {
+            return Err(StageError::param("pairs", "expected at least one pair"))
+        }
+        _ => {}
+    }
+    Ok(())
+}
+
 impl Op for Clustering {
     type Params = ClusteringParams;
     const NAME: &'static str = "clustering";
     const VERSION: u32 = 1;
 
     fn check(p: &Self::Params) -> Result<(), StageError> {
-        let measures = p.measures();
-        if measures.is_empty() {
-            return Err(StageError::param(
-                "measure",
-                "expected at least one measure",
-            ));
-        }
-        for (i, m) in measures.iter().enumerate() {
-            if measures[..i].contains(m) {
-                return Err(StageError::param(
-                    "measure",
-                    format!("{} is listed twice", m.name()),
-                ));
-            }
-        }
-        match &p.pairs {
-            PairSpec::Seed(s) if s.seed.is_empty() => {
-                return Err(StageError::param(
-                    "pairs.seed",
-                    "expected at least one seed channel",
-                ))
-            }
-            PairSpec::List(l) if l.is_empty() => {
-                return Err(StageError::param("pairs", "expected at least one pair"))
-            }
-            _ => {}
-        }
+        check_measures_and_pairs(&p.measures(), &p.pairs)?;
         match (p.across, p.window_cycles) {
             (Across::Time, None) => Err(StageError::param(
                 "window_cycles",

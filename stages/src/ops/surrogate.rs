@@ -42,8 +42,10 @@ use serde_json::json;
 use crate::array::{Coord, LabelledArray, Layout};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
+use crate::ops::aggregate::{check_ranges, span_text};
 use crate::ops::clustering::{
-    check_coefficients, conditions, resolve_pairs, used_channels, Coefs, MeasureSpec, PairSpec,
+    check_coefficients, check_measures_and_pairs, conditions, measure_layout, resolve_pairs,
+    used_channels, Coefs, MeasureSpec, PairSpec,
 };
 use crate::ops::measures::{polar, Measure, Sums};
 use crate::range::{points_within, range_text};
@@ -142,10 +144,7 @@ fn kept_points(
     for (name, &range) in ranges {
         let points = points_within(coords, range);
         if points.is_empty() {
-            let span = match (coords.first(), coords.last()) {
-                (Some(&a), Some(&b)) => range_text([a, b]),
-                _ => "[] (none)".into(),
-            };
+            let span = span_text(coords);
             return Err(StageError::param(
                 format!("{field}.{name}"),
                 format!(
@@ -183,39 +182,23 @@ fn plan(p: &SurrogateParams, input: &Layout) -> Result<Plan, StageError> {
     }
     let freqs = kept_points(input, ("bands", "freq", "Hz"), p.bands.as_ref())?;
     let times = kept_points(input, ("windows", "time", "s"), p.windows.as_ref())?;
-    let names = input.labels("channel")?;
     let pick = |axis: &str, idx: &[usize]| -> Result<Coord, StageError> {
         let all = input.numbers(axis)?;
         Ok(Coord::Numbers(idx.iter().map(|&i| all[i]).collect()))
     };
-    let mut layout = input.clone();
-    layout.dims = ["statistic", "condition", "measure", "pair", "freq", "time"]
-        .map(String::from)
-        .to_vec();
-    layout.coords = vec![
+    let mut layout = measure_layout(
+        input,
+        &conditions,
+        &measures,
+        &pairs,
+        (pick("freq", &freqs)?, pick("time", &times)?),
+    )?;
+    layout.dims.insert(0, "statistic".into());
+    layout.coords.insert(
+        0,
         Coord::Labels(STATISTICS.iter().map(|s| s.to_string()).collect()),
-        Coord::Labels(conditions.iter().map(|c| c.0.clone()).collect()),
-        Coord::Labels(measures.iter().map(|m| m.name().to_string()).collect()),
-        Coord::Pairs(
-            pairs
-                .iter()
-                .map(|&(a, b)| [names[a].clone(), names[b].clone()])
-                .collect(),
-        ),
-        pick("freq", &freqs)?,
-        pick("time", &times)?,
-    ];
-    layout.units = "1".into();
-    layout.complex = false;
-    layout.meta.channel_types = None;
-    layout.meta.trials = None;
-    layout.meta.events = None;
-    let counts: serde_json::Map<String, serde_json::Value> = conditions
-        .iter()
-        .map(|(c, t)| (c.clone(), t.len().into()))
-        .collect();
+    );
     let extra = &mut layout.meta.extra;
-    extra.insert("trials_per_condition".into(), counts.into());
     extra.insert("method".into(), json!(p.method));
     if let (Some(k), Some(seed)) = (p.permutations, p.seed) {
         extra.insert("permutations".into(), json!(k));
@@ -235,33 +218,6 @@ fn plan(p: &SurrogateParams, input: &Layout) -> Result<Plan, StageError> {
         times,
         layout,
     })
-}
-
-fn check_ranges(
-    field: &str,
-    ranges: Option<&BTreeMap<String, [f64; 2]>>,
-) -> Result<(), StageError> {
-    let Some(ranges) = ranges else {
-        return Ok(());
-    };
-    if ranges.is_empty() {
-        return Err(StageError::param(
-            field,
-            "give at least one named range, or leave the field out to test every point",
-        ));
-    }
-    for (name, &[lo, hi]) in ranges {
-        if !(lo.is_finite() && hi.is_finite() && lo <= hi) {
-            return Err(StageError::param(
-                format!("{field}.{name}"),
-                format!(
-                    "expected [start, end] with start ≤ end, got {}",
-                    range_text([lo, hi])
-                ),
-            ));
-        }
-    }
-    Ok(())
 }
 
 /// `permutations` derangements of 0..n (n ≥ 2) from ChaCha20 seeded with `seed` on `stream`:
@@ -403,20 +359,7 @@ impl Op for Surrogate {
 
     fn check(p: &Self::Params) -> Result<(), StageError> {
         let measures = p.measures();
-        if measures.is_empty() {
-            return Err(StageError::param(
-                "measure",
-                "expected at least one measure",
-            ));
-        }
-        for (i, m) in measures.iter().enumerate() {
-            if measures[..i].contains(m) {
-                return Err(StageError::param(
-                    "measure",
-                    format!("{} is listed twice", m.name()),
-                ));
-            }
-        }
+        check_measures_and_pairs(&measures, &p.pairs)?;
         match p.method {
             Method::Rayleigh => {
                 if let Some(m) = measures.iter().find(|&&m| m != Measure::Plv) {
@@ -472,18 +415,6 @@ impl Op for Surrogate {
                     ));
                 }
             }
-        }
-        match &p.pairs {
-            PairSpec::Seed(s) if s.seed.is_empty() => {
-                return Err(StageError::param(
-                    "pairs.seed",
-                    "expected at least one seed channel",
-                ))
-            }
-            PairSpec::List(l) if l.is_empty() => {
-                return Err(StageError::param("pairs", "expected at least one pair"))
-            }
-            _ => {}
         }
         check_ranges("bands", p.bands.as_ref())?;
         check_ranges("windows", p.windows.as_ref())
@@ -687,7 +618,7 @@ mod tests {
         let p = &v[2 * 400..];
         let share = p.iter().filter(|&&x| x <= 0.05).count() as f64 / 400.0;
         assert!((0.01..=0.10).contains(&share), "share {share}");
-        assert!(p.iter().all(|&x| x >= 1.0 / 200.0 - 1e-7 && x <= 1.0));
+        assert!(p.iter().all(|&x| (1.0 / 200.0 - 1e-7..=1.0).contains(&x)));
         // A constant lag of 0.8 rad with small jitter: every point beats all 199 surrogates.
         let mut rng = ChaCha8Rng::seed_from_u64(2);
         let mut base = vec![0f64; 30 * 10 * 40];
