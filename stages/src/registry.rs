@@ -16,6 +16,7 @@ static CLUSTERING: Registered<ops::clustering::Clustering> = Registered::new();
 static BASELINE: Registered<ops::baseline::Baseline> = Registered::new();
 static AGGREGATE: Registered<ops::aggregate::Aggregate> = Registered::new();
 static CONTRAST: Registered<ops::contrast::Contrast> = Registered::new();
+static SURROGATE: Registered<ops::surrogate::Surrogate> = Registered::new();
 
 /// All ops, in the order a pipeline usually uses them.
 pub fn all() -> Vec<&'static dyn DynOp> {
@@ -30,6 +31,7 @@ pub fn all() -> Vec<&'static dyn DynOp> {
         &WAVELET,
         &HILBERT,
         &CLUSTERING,
+        &SURROGATE,
         &BASELINE,
         &AGGREGATE,
         &CONTRAST,

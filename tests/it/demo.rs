@@ -437,6 +437,82 @@ fn stats_pipeline_finds_the_planted_coupling_as_one_significant_cluster() {
         .all(|r| r[11] == "false"));
 }
 
+/// The rows of a contrast findings table (header checked by the test above), split at tabs.
+fn findings(path: &Path) -> Vec<Vec<String>> {
+    let table = std::fs::read_to_string(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    table
+        .lines()
+        .skip(1)
+        .map(|l| l.split('\t').map(String::from).collect())
+        .collect()
+}
+
+#[test]
+fn a_ten_subject_study_finds_the_planted_coupling_with_a_thousand_sign_flips() {
+    // The demo's scenario with 10 participants (the simulator's subject k does not depend on how
+    // many there are, so sub-01..06 are the demo's): 2^10 = 1024 sign patterns, all enumerated,
+    // so the smallest p is 2/1024. Five pairs keep it small: the planted one, the zero-lag decoy
+    // and three others, all tested as one family per measure.
+    let tmp = tempfile::tempdir().unwrap();
+    let root = tmp.path();
+    let config = phasewise_stages::simulate::SimulateConfig::new(10, 1);
+    phasewise_stages::simulate::write_study(&root.join("data"), &config).unwrap();
+    let truth = read_json(&root.join("data/truth.json"));
+    let planted = string_pair(&truth["coupling"]["pair"]);
+    let zero_lag = string_pair(&truth["volume_conduction"]["pair"]);
+    assert_eq!(truth["coupling"]["condition"], "cue-left");
+    let stats = std::fs::read_to_string(repo().join("pipelines/stats.yaml")).unwrap();
+    let pairs = format!(
+        "[[{}, {}], [{}, {}], [F4, P3], [C3, C4], [Fz, Pz]]",
+        planted[0], planted[1], zero_lag[0], zero_lag[1]
+    );
+    let pipeline = stats.replace("../demo-data/", "../data/").replace(
+        "measure: [plv, ppc, pli, wpli, dwpli, icoh], pairs: all,",
+        &format!("measure: [ppc, wpli, icoh], pairs: {pairs},"),
+    );
+    assert!(pipeline.contains(&pairs) && pipeline.contains("../data/sub-*"));
+    std::fs::create_dir(root.join("pipelines")).unwrap();
+    std::fs::write(root.join("pipelines/stats.yaml"), pipeline).unwrap();
+    let run = phasewise(&["run", "pipelines/stats.yaml"], root);
+    assert!(
+        run.status.success(),
+        "{}",
+        String::from_utf8_lossy(&run.stderr)
+    );
+    let extra = &read_json(&root.join("results/stats/group/contrast.json"))["meta"]["extra"];
+    assert_eq!(extra["patterns"], 1024, "{extra}");
+    assert_eq!(extra["exact"], true, "{extra}");
+    let rows = findings(&root.join("results/stats/contrast.tsv"));
+    let freq = truth["coupling"]["frequency_hz"].as_f64().unwrap();
+    let window = truth["coupling"]["window_s"].as_array().unwrap();
+    let (w0, w1) = (window[0].as_f64().unwrap(), window[1].as_f64().unwrap());
+    let num = |s: &str| s.parse::<f64>().unwrap();
+    let is = |r: &Vec<String>, pair: &[String; 2]| r[1] == pair[0] && r[2] == pair[1];
+    let significant: Vec<&Vec<String>> = rows.iter().filter(|r| r[11] == "true").collect();
+    for measure in ["ppc", "wpli"] {
+        let found: Vec<_> = significant.iter().filter(|r| r[0] == measure).collect();
+        assert_eq!(found.len(), 1, "{measure}: {found:?}");
+        let r = found[0];
+        assert!(is(r, &planted), "{r:?}");
+        assert!(num(&r[4]) <= freq && freq <= num(&r[5]), "band {r:?}");
+        assert!(num(&r[6]) < w1 && num(&r[7]) > w0, "window {r:?}");
+        assert!(num(&r[8]) > 0.0, "left > right: {r:?}");
+        assert!(num(&r[10]) < 0.05, "{r:?}");
+        println!("{measure}: planted cluster p = {}", r[10]);
+    }
+    for r in &significant {
+        assert!(is(r, &planted), "only the planted pair: {r:?}");
+    }
+    for measure in ["wpli", "icoh"] {
+        assert!(
+            rows.iter()
+                .filter(|r| r[0] == measure && is(r, &zero_lag))
+                .all(|r| r[11] == "false"),
+            "zero-lag decoy in {measure}"
+        );
+    }
+}
+
 /// Every file below `dir`, relative to it, sorted.
 fn files(dir: &Path) -> Vec<PathBuf> {
     let mut out = Vec::new();

@@ -126,7 +126,8 @@ fn range_reduction(
     })
 }
 
-fn span_text(coords: &[f64]) -> String {
+/// The first and last coordinate as `[a, b]` (for messages).
+pub(crate) fn span_text(coords: &[f64]) -> String {
     match (coords.first(), coords.last()) {
         (Some(&a), Some(&b)) => range_text([a, b]),
         _ => "[] (none)".into(),
@@ -631,7 +632,8 @@ impl Op for Aggregate {
     }
 }
 
-fn check_ranges(
+/// Named inclusive ranges (`bands`, `windows`): at least one, each named, start ≤ end.
+pub(crate) fn check_ranges(
     field: &str,
     ranges: Option<&BTreeMap<String, [f64; 2]>>,
 ) -> Result<(), StageError> {

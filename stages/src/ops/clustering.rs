@@ -190,7 +190,7 @@ fn check_input(layout: &Layout) -> Result<(), StageError> {
 }
 
 /// The trials of each condition, conditions sorted by name.
-fn conditions(layout: &Layout) -> Result<Vec<(String, Vec<usize>)>, StageError> {
+pub(crate) fn conditions(layout: &Layout) -> Result<Vec<(String, Vec<usize>)>, StageError> {
     let labels: Vec<String> = match (layout.coord("trial")?, &layout.meta.trials) {
         (Coord::Labels(l), _) => l.clone(),
         (c, Some(t)) if t.len() == c.len() => t.iter().map(|t| t.condition.clone()).collect(),
@@ -266,7 +266,10 @@ fn lookup(
     }
 }
 
-fn resolve_pairs(spec: &PairSpec, layout: &Layout) -> Result<Vec<(usize, usize)>, StageError> {
+pub(crate) fn resolve_pairs(
+    spec: &PairSpec,
+    layout: &Layout,
+) -> Result<Vec<(usize, usize)>, StageError> {
     let (names, data) = channels(layout)?;
     let idx: Vec<usize> = (0..names.len()).filter(|&i| data[i]).collect();
     let mut pairs = Vec::new();
@@ -348,16 +351,16 @@ fn half_windows(cycles: f64, layout: &Layout) -> Result<Vec<usize>, StageError> 
         .collect()
 }
 
-fn plan(params: &ClusteringParams, input: &Layout) -> Result<Plan, StageError> {
-    Clustering::check(params)?;
-    check_input(input)?;
-    let measures = params.measures();
-    let pairs = resolve_pairs(&params.pairs, input)?;
-    let conditions = conditions(input)?;
-    let halves = match (params.across, params.window_cycles) {
-        (Across::Time, Some(c)) => Some(half_windows(c, input)?),
-        _ => None,
-    };
+/// The layout `[condition, measure, pair, freq, time]` of measures computed from coefficients
+/// `input`, with the given freq and time coordinates; the trial count of each condition in
+/// `meta.extra.trials_per_condition`.
+pub(crate) fn measure_layout(
+    input: &Layout,
+    conditions: &[(String, Vec<usize>)],
+    measures: &[Measure],
+    pairs: &[(usize, usize)],
+    (freq, time): (Coord, Coord),
+) -> Result<Layout, StageError> {
     let names = input.labels("channel")?;
     let mut layout = input.clone();
     layout.dims = ["condition", "measure", "pair", "freq", "time"]
@@ -372,8 +375,8 @@ fn plan(params: &ClusteringParams, input: &Layout) -> Result<Plan, StageError> {
                 .map(|&(a, b)| [names[a].clone(), names[b].clone()])
                 .collect(),
         ),
-        input.coord("freq")?.clone(),
-        input.coord("time")?.clone(),
+        freq,
+        time,
     ];
     layout.units = "1".into();
     layout.complex = false;
@@ -389,6 +392,26 @@ fn plan(params: &ClusteringParams, input: &Layout) -> Result<Plan, StageError> {
         .meta
         .extra
         .insert("trials_per_condition".into(), counts.into());
+    Ok(layout)
+}
+
+fn plan(params: &ClusteringParams, input: &Layout) -> Result<Plan, StageError> {
+    Clustering::check(params)?;
+    check_input(input)?;
+    let measures = params.measures();
+    let pairs = resolve_pairs(&params.pairs, input)?;
+    let conditions = conditions(input)?;
+    let halves = match (params.across, params.window_cycles) {
+        (Across::Time, Some(c)) => Some(half_windows(c, input)?),
+        _ => None,
+    };
+    let layout = measure_layout(
+        input,
+        &conditions,
+        &measures,
+        &pairs,
+        (input.coord("freq")?.clone(), input.coord("time")?.clone()),
+    )?;
     Ok(Plan {
         measures,
         pairs,
@@ -398,39 +421,47 @@ fn plan(params: &ClusteringParams, input: &Layout) -> Result<Plan, StageError> {
     })
 }
 
+/// At least one measure, none twice; a seed list or pair list that is not empty.
+pub(crate) fn check_measures_and_pairs(
+    measures: &[Measure],
+    pairs: &PairSpec,
+) -> Result<(), StageError> {
+    if measures.is_empty() {
+        return Err(StageError::param(
+            "measure",
+            "expected at least one measure",
+        ));
+    }
+    for (i, m) in measures.iter().enumerate() {
+        if measures[..i].contains(m) {
+            return Err(StageError::param(
+                "measure",
+                format!("{} is listed twice", m.name()),
+            ));
+        }
+    }
+    match pairs {
+        PairSpec::Seed(s) if s.seed.is_empty() => {
+            return Err(StageError::param(
+                "pairs.seed",
+                "expected at least one seed channel",
+            ))
+        }
+        PairSpec::List(l) if l.is_empty() => {
+            return Err(StageError::param("pairs", "expected at least one pair"))
+        }
+        _ => {}
+    }
+    Ok(())
+}
+
 impl Op for Clustering {
     type Params = ClusteringParams;
     const NAME: &'static str = "clustering";
     const VERSION: u32 = 1;
 
     fn check(p: &Self::Params) -> Result<(), StageError> {
-        let measures = p.measures();
-        if measures.is_empty() {
-            return Err(StageError::param(
-                "measure",
-                "expected at least one measure",
-            ));
-        }
-        for (i, m) in measures.iter().enumerate() {
-            if measures[..i].contains(m) {
-                return Err(StageError::param(
-                    "measure",
-                    format!("{} is listed twice", m.name()),
-                ));
-            }
-        }
-        match &p.pairs {
-            PairSpec::Seed(s) if s.seed.is_empty() => {
-                return Err(StageError::param(
-                    "pairs.seed",
-                    "expected at least one seed channel",
-                ))
-            }
-            PairSpec::List(l) if l.is_empty() => {
-                return Err(StageError::param("pairs", "expected at least one pair"))
-            }
-            _ => {}
-        }
+        check_measures_and_pairs(&p.measures(), &p.pairs)?;
         match (p.across, p.window_cycles) {
             (Across::Time, None) => Err(StageError::param(
                 "window_cycles",
@@ -467,7 +498,12 @@ impl Op for Clustering {
         let plan = plan(p, &input.layout)?;
         let values = input.complex_values()?.as_standard_layout();
         let x = Coefs::new(values.as_slice().unwrap_or(&[]), &input.layout.shape());
-        check_coefficients(&x, &plan, &input.layout, notes)?;
+        check_coefficients(
+            &x,
+            &used_channels(&plan.pairs),
+            (Self::NAME, &input.layout),
+            notes,
+        )?;
         if plan.halves.is_none() && plan.measures.contains(&Measure::Ppc) {
             for (c, trials) in plan.conditions.iter().filter(|c| c.1.len() < 2) {
                 notes.warn(format!(
@@ -521,7 +557,7 @@ fn warn_unequal_counts(plan: &Plan, notes: &mut Notes) {
 }
 
 /// Read access to coefficients laid out [channel, trial, freq, time].
-struct Coefs<'a> {
+pub(crate) struct Coefs<'a> {
     values: &'a [Complex32],
     trials: usize,
     freqs: usize,
@@ -529,7 +565,7 @@ struct Coefs<'a> {
 }
 
 impl<'a> Coefs<'a> {
-    fn new(values: &'a [Complex32], shape: &[usize]) -> Self {
+    pub(crate) fn new(values: &'a [Complex32], shape: &[usize]) -> Self {
         let dim = |i: usize| shape.get(i).copied().unwrap_or(0);
         Coefs {
             values,
@@ -540,7 +576,7 @@ impl<'a> Coefs<'a> {
     }
 
     /// The time series of (channel c, trial n, frequency f).
-    fn series(&self, c: usize, n: usize, f: usize) -> &'a [Complex32] {
+    pub(crate) fn series(&self, c: usize, n: usize, f: usize) -> &'a [Complex32] {
         let start = ((c * self.trials + n) * self.freqs + f) * self.times;
         &self.values[start..start + self.times]
     }
@@ -553,37 +589,37 @@ impl<'a> Coefs<'a> {
 }
 
 /// The channels that appear in a pair, in channel order.
-fn used_channels(plan: &Plan) -> Vec<usize> {
-    let mut used: Vec<usize> = plan.pairs.iter().flat_map(|&(a, b)| [a, b]).collect();
+pub(crate) fn used_channels(pairs: &[(usize, usize)]) -> Vec<usize> {
+    let mut used: Vec<usize> = pairs.iter().flat_map(|&(a, b)| [a, b]).collect();
     used.sort_unstable();
     used.dedup();
     used
 }
 
 /// Rejects non-finite coefficients (a NaN would spread through the window sums) and warns once
-/// per channel that holds exact zeros.
-fn check_coefficients(
+/// per channel that holds exact zeros; `op` names the op in the warning.
+pub(crate) fn check_coefficients(
     x: &Coefs,
-    plan: &Plan,
-    layout: &Layout,
+    used: &[usize],
+    (op, layout): (&str, &Layout),
     notes: &mut Notes,
 ) -> Result<(), StageError> {
     let names = layout.labels("channel")?;
-    for c in used_channels(plan) {
+    for &c in used {
         let values = x.channel(c);
         if values
             .iter()
             .any(|z| !(z.re.is_finite() && z.im.is_finite()))
         {
             return Err(StageError::data(format!(
-                "channel {} holds non-finite wavelet coefficients; clustering needs finite values",
+                "channel {} holds non-finite wavelet coefficients; {op} needs finite values",
                 names[c]
             )));
         }
         let zeros = values.iter().filter(|z| z.re == 0.0 && z.im == 0.0).count();
         if zeros > 0 {
             notes.warn(format!(
-                "clustering: channel {} has {zeros} zero wavelet coefficient(s) of {}; a zero has \
+                "{op}: channel {} has {zeros} zero wavelet coefficient(s) of {}; a zero has \
                  no phase, so every pair with {} is NaN where one enters",
                 names[c],
                 values.len(),
@@ -612,7 +648,7 @@ impl Polar {
 /// Output values, laid out [condition, measure, pair, freq, time].
 fn compute(plan: &Plan, x: &Coefs) -> Vec<f32> {
     let plane = x.freqs * x.times;
-    let used = used_channels(plan);
+    let used = used_channels(&plan.pairs);
     let Some(halves) = &plan.halves else {
         let mut out = vec![0.0f32; plan.layout.shape().iter().product()];
         let per_condition = out.len() / plan.conditions.len().max(1);

@@ -549,11 +549,13 @@ impl Tables {
         Tables { offsets, rows, len }
     }
 
-    /// S of pattern `masks` (one mask per group) into `s`.
-    fn sum(&self, masks: &[u8], s: &mut [f32]) {
+    /// S of pattern `masks` (one mask per group) at the points `range` into `s`: the group's
+    /// rows added left to right, the same additions at every point whatever the range.
+    fn sum(&self, masks: &[u8], range: std::ops::Range<usize>, s: &mut [f32]) {
         let len = self.len;
         for (g, (&off, &m)) in self.offsets.iter().zip(masks).enumerate() {
-            let row = &self.rows[(off + m as usize) * len..(off + m as usize + 1) * len];
+            let row = (off + m as usize) * len;
+            let row = &self.rows[row + range.start..row + range.end];
             if g == 0 {
                 s.copy_from_slice(row);
             } else {
@@ -597,18 +599,28 @@ struct MapInput<'a> {
     cols: usize,
 }
 
-/// +1 where S is above the point's threshold, −1 where below its negative, else 0 (NaN: 0).
-/// Branch-free, so that it vectorises.
-fn signs(s: &[f32], thr: &[f32], sign: &mut [i8]) {
-    for ((o, &x), &c) in sign.iter_mut().zip(s).zip(thr) {
-        *o = i8::from(x > c) - i8::from(x < -c);
+/// Points per tile of the `max`, `fdr` and `none` permutation loops: one tile's table rows (groups × 32 × TILE f32,
+/// 256 KiB for 20 subjects) stay in the core's cache while every pattern of a block passes over
+/// them, instead of every pattern streaming the whole map's tables from memory. A multiple of 64,
+/// so that a tile fills whole bitmap words.
+const TILE: usize = 512;
+
+/// Bit k of the first word is set where S is above the point's threshold, of the second where
+/// below its negative (NaN: neither), for up to 64 points.
+fn sign_bits(s: &[f32], thr: &[f32]) -> (u64, u64) {
+    let (mut pos, mut neg) = (0u64, 0u64);
+    for (k, (&x, &c)) in s.iter().zip(thr).enumerate() {
+        pos |= u64::from(x > c) << k;
+        neg |= u64::from(x < -c) << k;
     }
+    (pos, neg)
 }
 
-/// Calls `each(mass)` for every cluster of `sign` in raster order of its first point; writes
-/// 1-based labels when `labels` is given. `seen` must hold no `mark`.
+/// Calls `each(mass)` for every cluster of `sign` (+1, −1, 0 per point) whose first point, in
+/// raster order, is among `starts` (ascending, every nonzero point at least); writes 1-based
+/// labels when `labels` is given. `seen` must hold no `mark`.
 fn visit_masses(
-    sign: &[i8],
+    (sign, starts): (&[i8], impl Iterator<Item = usize>),
     cols: usize,
     t_at: impl Fn(usize) -> f64,
     (seen, mark): (&mut [u32], u32),
@@ -617,17 +629,7 @@ fn visit_masses(
     mut each: impl FnMut(f64),
 ) {
     let mut label = 0;
-    let mut start = 0;
-    while start < sign.len() {
-        // Runs of points outside every cluster (most of a null map) are skipped 8 at a time.
-        if let Some(word) = sign.get(start..start + 8) {
-            if word.iter().fold(0u8, |a, &x| a | x as u8) == 0 {
-                start += 8;
-                continue;
-            }
-        }
-        let first = start;
-        start += 1;
+    for first in starts {
         if sign[first] == 0 || seen[first] == mark {
             continue;
         }
@@ -654,17 +656,34 @@ fn visit_masses(
     }
 }
 
+/// The set bits of `words`, ascending.
+fn set_bits(words: &[u64]) -> impl Iterator<Item = usize> + '_ {
+    words.iter().enumerate().flat_map(|(w, &word)| {
+        let mut m = word;
+        std::iter::from_fn(move || {
+            (m != 0).then(|| {
+                let k = m.trailing_zeros() as usize;
+                m &= m - 1;
+                w * 64 + k
+            })
+        })
+    })
+}
+
+/// The tiles of a map of `len` points.
+fn tiles(len: usize) -> impl Iterator<Item = std::ops::Range<usize>> {
+    (0..len).step_by(TILE).map(move |a| a..(a + TILE).min(len))
+}
+
 fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapResult {
     let n = input.maps.len() as f64;
     let len = input.q.len();
     let tables = Tables::build(&input.maps, flips);
     let g = flips.groups.len();
-    let mut s = vec![0f32; len];
+    let count = flips.count();
+    let mut s = vec![0f32; TILE.min(len)];
     let mut s_obs = vec![0f32; len];
-    tables.sum(&flips.masks[..g], &mut s_obs);
-    let mut sign = vec![0i8; len];
-    let mut seen = vec![0u32; len];
-    let mut stack = Vec::new();
+    tables.sum(&flips.masks[..g], 0..len, &mut s_obs);
     let mut out = MapResult {
         null: Vec::new(),
         counts: Vec::new(),
@@ -682,11 +701,16 @@ fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapRe
     };
     match correction {
         Correction::Cluster => {
+            let mut sign = vec![0i8; len];
+            let mut seen = vec![0u32; len];
+            let mut stack = Vec::new();
             out.labels = vec![0; len];
-            signs(&s_obs, input.threshold_s, &mut sign);
+            for (o, (&x, &c)) in sign.iter_mut().zip(s_obs.iter().zip(input.threshold_s)) {
+                *o = i8::from(x > c) - i8::from(x < -c);
+            }
             let mut masses = Vec::new();
             visit_masses(
-                &sign,
+                (&sign, 0..len),
                 input.cols,
                 |i| t_of(s_obs[i], input.q[i], n),
                 (&mut seen, 1),
@@ -696,13 +720,34 @@ fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapRe
             );
             out.masses = masses;
             seen.iter_mut().for_each(|x| *x = 0);
-            out.null = Vec::with_capacity(flips.count());
+            sign.iter_mut().for_each(|x| *x = 0);
+            // Per pattern: S over the map and its signs as two bitmaps in one pass, then the
+            // clusters grown from the bitmaps' set points only.
+            let words = len.div_ceil(64);
+            let (mut pos, mut neg, mut either) =
+                (vec![0u64; words], vec![0u64; words], vec![0u64; words]);
+            let mut s = vec![0f32; len];
+            out.null = Vec::with_capacity(count);
             for (j, masks) in flips.masks.chunks(g).enumerate() {
-                tables.sum(masks, &mut s);
-                signs(&s, input.threshold_s, &mut sign);
+                for (w, r) in (0..len)
+                    .step_by(64)
+                    .map(|a| a..(a + 64).min(len))
+                    .enumerate()
+                {
+                    let x = &mut s[r.clone()];
+                    tables.sum(masks, r.clone(), x);
+                    (pos[w], neg[w]) = sign_bits(x, &input.threshold_s[r]);
+                    either[w] = pos[w] | neg[w];
+                }
+                for i in set_bits(&pos) {
+                    sign[i] = 1;
+                }
+                for i in set_bits(&neg) {
+                    sign[i] = -1;
+                }
                 let mut largest = 0f64;
                 visit_masses(
-                    &sign,
+                    (&sign, set_bits(&either)),
                     input.cols,
                     |i| t_of(s[i], input.q[i], n),
                     (&mut seen, j as u32 + 1),
@@ -711,6 +756,9 @@ fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapRe
                     |m| largest = largest.max(m.abs()),
                 );
                 out.null.push(largest);
+                for i in set_bits(&either) {
+                    sign[i] = 0;
+                }
             }
         }
         Correction::Max => {
@@ -719,25 +767,42 @@ fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapRe
                 .zip(input.q)
                 .map(|(&x, &q)| ratio(x, q))
                 .collect();
-            out.null = flips
-                .masks
-                .chunks(g)
-                .map(|masks| {
-                    tables.sum(masks, &mut s);
-                    s.iter()
-                        .zip(input.q)
-                        .map(|(&x, &q)| ratio(x, q))
-                        .filter(|r| !r.is_nan())
-                        .fold(0f64, f64::max)
-                })
-                .collect();
+            // The largest over a map is the largest of its tiles' largest (NaN skipped). S² is
+            // exact in f64 (an f32 squared), and fl(S²/Q) < M wherever S² < M·Q·(1 − 1e-9) (each
+            // rounding is below 1.2e-16), so the division runs only where a point may raise M.
+            out.null = vec![0f64; count];
+            for r in tiles(len) {
+                let s = &mut s[..r.len()];
+                for (masks, largest) in flips.masks.chunks(g).zip(out.null.iter_mut()) {
+                    tables.sum(masks, r.clone(), s);
+                    *largest = s
+                        .iter()
+                        .zip(&input.q[r.clone()])
+                        .fold(*largest, |m, (&x, &q)| {
+                            let x2 = f64::from(x) * f64::from(x);
+                            if x2 < m * q * (1.0 - 1e-9) {
+                                return m;
+                            }
+                            let r = ratio(x, q);
+                            if r.is_nan() {
+                                m
+                            } else {
+                                m.max(r)
+                            }
+                        });
+                }
+            }
         }
         Correction::Fdr | Correction::None => {
             out.counts = vec![0; len];
-            for masks in flips.masks.chunks(g) {
-                tables.sum(masks, &mut s);
-                for ((c, &x), &o) in out.counts.iter_mut().zip(&s).zip(&s_obs) {
-                    *c += u32::from(x.abs() >= o.abs());
+            for r in tiles(len) {
+                let s = &mut s[..r.len()];
+                let counts = &mut out.counts[r.clone()];
+                for masks in flips.masks.chunks(g) {
+                    tables.sum(masks, r.clone(), s);
+                    for ((c, &x), &o) in counts.iter_mut().zip(&*s).zip(&s_obs[r.clone()]) {
+                        *c += u32::from(x.abs() >= o.abs());
+                    }
                 }
             }
         }
@@ -1464,8 +1529,14 @@ mod tests {
             let (mut a, mut b) = (vec![0f32; 33], vec![0f32; 33]);
             for k in 0..1usize << n {
                 let mirror = (1 << n) - 1 - k;
-                tables.sum(&flips.masks[k * g..(k + 1) * g], &mut a);
-                tables.sum(&flips.masks[mirror * g..(mirror + 1) * g], &mut b);
+                tables.sum(&flips.masks[k * g..(k + 1) * g], 0..33, &mut a);
+                tables.sum(&flips.masks[mirror * g..(mirror + 1) * g], 0..33, &mut b);
+                let mut part = vec![0f32; 20];
+                tables.sum(&flips.masks[k * g..(k + 1) * g], 10..30, &mut part);
+                assert!(part
+                    .iter()
+                    .zip(&a[10..30])
+                    .all(|(x, y)| x.to_bits() == y.to_bits()));
                 assert!(
                     a.iter().zip(&b).all(|(x, y)| *x == -*y),
                     "n {n} pattern {k}"
@@ -1479,6 +1550,113 @@ mod tests {
                 }
             }
         }
+    }
+
+    /// The permutation loop without tiles or bitmaps: every pattern's whole map summed, signed
+    /// and scanned in turn (the oracle of the tiled [`run_map`]).
+    fn plain_run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> Vec<f64> {
+        let n = input.maps.len() as f64;
+        let len = input.q.len();
+        let tables = Tables::build(&input.maps, flips);
+        let g = flips.groups.len();
+        let mut s = vec![0f32; len];
+        let (mut s_obs, mut sign) = (vec![0f32; len], vec![0i8; len]);
+        tables.sum(&flips.masks[..g], 0..len, &mut s_obs);
+        let mut seen = vec![0u32; len];
+        let mut out = Vec::new();
+        for (j, masks) in flips.masks.chunks(g).enumerate() {
+            tables.sum(masks, 0..len, &mut s);
+            match correction {
+                Correction::Cluster => {
+                    for (o, (&x, &c)) in sign.iter_mut().zip(s.iter().zip(input.threshold_s)) {
+                        *o = i8::from(x > c) - i8::from(x < -c);
+                    }
+                    let mut largest = 0f64;
+                    visit_masses(
+                        (&sign, 0..len),
+                        input.cols,
+                        |i| t_of(s[i], input.q[i], n),
+                        (&mut seen, j as u32 + 1),
+                        &mut Vec::new(),
+                        None,
+                        |m| largest = largest.max(m.abs()),
+                    );
+                    out.push(largest);
+                }
+                Correction::Max => out.push(
+                    s.iter()
+                        .zip(input.q)
+                        .map(|(&x, &q)| f64::from(x) * f64::from(x) / q)
+                        .filter(|r| !r.is_nan())
+                        .fold(0f64, f64::max),
+                ),
+                _ => out.extend(
+                    s.iter()
+                        .zip(&s_obs)
+                        .map(|(x, o)| f64::from(u8::from(x.abs() >= o.abs()))),
+                ),
+            }
+        }
+        if matches!(correction, Correction::Fdr | Correction::None) {
+            // Per point: the count over patterns.
+            return (0..len)
+                .map(|i| out.iter().skip(i).step_by(len).sum())
+                .collect();
+        }
+        out
+    }
+
+    #[test]
+    fn tiled_permutations_equal_the_plain_loop_bit_for_bit() {
+        // Maps of 9 × 70 = 630 points (two tiles, the second partial), 600 patterns (three
+        // random chunks), smooth enough to form clusters, 13 subjects (groups of 5, 5, 3).
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(17);
+        let (rows, cols, n) = (9, 70, 13);
+        let maps: Vec<Vec<f32>> = (0..n)
+            .map(|_| {
+                let raw: Vec<f32> = (0..rows * cols).map(|_| rng.gen_range(-1.0..1.0)).collect();
+                (0..rows * cols)
+                    .map(|i| raw[i] + raw[(i + 1) % raw.len()] + raw[(i + cols) % raw.len()] + 0.2)
+                    .collect()
+            })
+            .collect();
+        let views: Vec<&[f32]> = maps.iter().map(|m| m.as_slice()).collect();
+        let q: Vec<f64> = (0..rows * cols)
+            .map(|i| maps.iter().map(|m| f64::from(m[i]).powi(2)).sum())
+            .collect();
+        let c2 = 2.2f64 * 2.2;
+        let threshold_s: Vec<f32> = q
+            .iter()
+            .map(|&q| (c2 * n as f64 * q / (n as f64 - 1.0 + c2)).sqrt() as f32)
+            .collect();
+        let input = MapInput {
+            maps: views.clone(),
+            q: &q,
+            threshold_s: &threshold_s,
+            cols,
+        };
+        let flips = Flips::new(n, 600, false, 3);
+        let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+        let cluster = run_map(&input, &flips, Correction::Cluster);
+        assert!(
+            cluster.null.iter().filter(|&&m| m > 0.0).count() > 300,
+            "clusters form"
+        );
+        assert_eq!(
+            bits(&cluster.null),
+            bits(&plain_run_map(&input, &flips, Correction::Cluster))
+        );
+        let max = run_map(&input, &flips, Correction::Max);
+        assert_eq!(
+            bits(&max.null),
+            bits(&plain_run_map(&input, &flips, Correction::Max))
+        );
+        let fdr = run_map(&input, &flips, Correction::Fdr);
+        let counts: Vec<f64> = fdr.counts.iter().map(|&c| f64::from(c)).collect();
+        assert_eq!(
+            bits(&counts),
+            bits(&plain_run_map(&input, &flips, Correction::Fdr))
+        );
     }
 
     #[test]
@@ -1638,9 +1816,9 @@ mod tests {
     fn calibrate_family_wise_error_and_power() {
         use rand::SeedableRng;
         use rand_distr::{Distribution, StandardNormal};
-        let (n, maps, rows, cols) = (12usize, 4usize, 10usize, 12usize);
+        let (maps, rows, cols) = (4usize, 10usize, 12usize);
         let len = maps * rows * cols;
-        let study = |seed: u64, effect: f64| -> Vec<Vec<f32>> {
+        let study = |(n, smooth): (usize, bool), seed: u64, effect: f64| -> Vec<Vec<f32>> {
             let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
             (0..n)
                 .map(|_| {
@@ -1656,7 +1834,9 @@ mod tests {
                                         rr.clamp(0, rows as i64 - 1),
                                         cc.clamp(0, cols as i64 - 1),
                                     );
-                                    acc += raw[m * rows * cols + rr as usize * cols + cc as usize];
+                                    let at = m * rows * cols + rr as usize * cols + cc as usize;
+                                    // Unsmoothed: the point alone (a null t does not depend on scale).
+                                    acc += if smooth { raw[at] } else { raw[i] };
                                 }
                             }
                             // Effect: a 3 × 4 patch of pair 0, in units of the smoothed SD (1/3).
@@ -1674,9 +1854,10 @@ mod tests {
             (p, centre - half, centre + half)
         };
         let corrections = [Correction::Cluster, Correction::Max, Correction::Fdr];
-        let run = |data: &[Vec<f32>], seed: u64, c: Correction| {
+        let run = |data: &[Vec<f32>], seed: u64, c: Correction, patterns: usize| {
+            let n = data.len();
             let views: Vec<&[f32]> = data.iter().map(|s| s.as_slice()).collect();
-            let flips = Flips::new(n, 1000, false, seed);
+            let flips = Flips::new(n, patterns, false, seed);
             let settings = Settings {
                 correction: c,
                 threshold_t: stats::t_isf(0.025, (n - 1) as f64),
@@ -1689,32 +1870,61 @@ mod tests {
         let studies = 500;
         println!("| correction | null studies | with any significant point | family-wise error | 95 % interval |");
         println!("|---|---|---|---|---|");
-        let nulls: Vec<Vec<Vec<f32>>> = (0..studies).map(|s| study(1000 + s as u64, 0.0)).collect();
-        for c in corrections {
-            let hits = nulls
+        // 12 subjects and 1000 patterns; then fdr again with 16 subjects and 20000 patterns,
+        // enough for a permutation p to reach alpha / 480 (1 / 20000 < 0.05 / 480).
+        let nulls: Vec<Vec<Vec<f32>>> = (0..studies)
+            .map(|s| study((12, true), 1000 + s as u64, 0.0))
+            .collect();
+        let wide: Vec<Vec<Vec<f32>>> = (0..studies)
+            .map(|s| study((16, true), 1000 + s as u64, 0.0))
+            .collect();
+        // Unsmoothed maps: 480 independent points, where Benjamini–Hochberg's error under the
+        // complete null is alpha (Simes 1986, Biometrika 73:751–754); smoothing (positive
+        // dependence) makes it conservative.
+        let rough: Vec<Vec<Vec<f32>>> = (0..studies)
+            .map(|s| study((16, false), 1000 + s as u64, 0.0))
+            .collect();
+        let settings = corrections
+            .iter()
+            .map(|&c| (c, &nulls, 1000, "smoothed"))
+            .chain([(Correction::Fdr, &wide, 20000, "smoothed")])
+            .chain([(Correction::Fdr, &rough, 20000, "unsmoothed")]);
+        for (c, data, patterns, kind) in settings {
+            let hits = data
                 .iter()
                 .enumerate()
-                .filter(|(s, d)| run(d, *s as u64, c).iter().any(|&p| p <= 0.05))
+                .filter(|(s, d)| run(d, *s as u64, c, patterns).iter().any(|&p| p <= 0.05))
                 .count();
             let (p, lo, hi) = wilson(hits, studies);
-            println!("| {c:?} | {studies} | {hits} | {p:.3} | [{lo:.3}, {hi:.3}] |");
+            let n = data[0].len();
+            println!(
+                "| {c:?} ({n} subjects, {patterns} patterns, {kind}) | {studies} | {hits} | {p:.3} | \
+                 [{lo:.3}, {hi:.3}] |"
+            );
         }
         println!();
-        println!("| effect (SD) | cluster | max | fdr |");
-        println!("|---|---|---|---|");
+        println!("| effect (SD) | cluster | max | fdr | fdr (16 subjects, 20000 patterns) |");
+        println!("|---|---|---|---|---|");
         let planted = 200;
         for effect in [0.5, 1.0, 1.5, 2.0] {
             let data: Vec<_> = (0..planted)
-                .map(|s| study(5000 + s as u64, effect))
+                .map(|s| study((12, true), 5000 + s as u64, effect))
                 .collect();
-            let power: Vec<String> = corrections
-                .iter()
-                .map(|&c| {
+            let wide: Vec<_> = (0..planted)
+                .map(|s| study((16, true), 5000 + s as u64, effect))
+                .collect();
+            let settings = corrections.iter().map(|&c| (c, &data, 1000)).chain([(
+                Correction::Fdr,
+                &wide,
+                20000,
+            )]);
+            let power: Vec<String> = settings
+                .map(|(c, data, patterns)| {
                     let found = data
                         .iter()
                         .enumerate()
                         .filter(|(s, d)| {
-                            let p = run(d, *s as u64, c);
+                            let p = run(d, *s as u64, c, patterns);
                             (3..6).any(|r| (4..8).any(|col| p[r * cols + col] <= 0.05))
                         })
                         .count();

@@ -16,6 +16,7 @@ pub mod notch;
 pub mod params_de;
 pub mod reref;
 pub mod resample;
+pub mod surrogate;
 #[cfg(test)]
 mod tf_testing;
 pub mod trial_sums;
