@@ -101,7 +101,6 @@ pub fn srgb_to_lab(c: Rgb) -> [f64; 3] {
     [116.0 * fy - 16.0, 500.0 * (fx - fy), 200.0 * (fy - fz)]
 }
 
-
 fn srgb_decode(v: f64) -> f64 {
     if v <= 0.040_45 {
         v / 12.92
@@ -109,7 +108,6 @@ fn srgb_decode(v: f64) -> f64 {
         ((v + 0.055) / 1.055).powf(2.4)
     }
 }
-
 
 const LAB_EPS: f64 = 6.0 / 29.0;
 
@@ -120,9 +118,6 @@ fn lab_f(t: f64) -> f64 {
         t / (3.0 * LAB_EPS * LAB_EPS) + 4.0 / 29.0
     }
 }
-
-
-
 
 /// Hex form `#rrggbb` for HTML and SVG.
 pub fn hex(c: Rgb) -> String {
@@ -169,7 +164,11 @@ mod tests {
             0x4393c3, 0x2166ac, 0x053061,
         ];
         for (k, hexv) in published.iter().rev().enumerate() {
-            let want = [(hexv >> 16) as u8, (hexv >> 8 & 0xff) as u8, (hexv & 0xff) as u8];
+            let want = [
+                (hexv >> 16) as u8,
+                (hexv >> 8 & 0xff) as u8,
+                (hexv & 0xff) as u8,
+            ];
             assert_eq!(MapKind::Diverging.at(k as f64 / 10.0), want, "class {k}");
         }
     }

@@ -82,8 +82,7 @@ pub(crate) fn head_figures(
         return Ok(());
     }
     let cube = &l.cube;
-    let (GridAxis::Categories(bands), GridAxis::Categories(wins)) = (&cube.rows, &cube.cols)
-    else {
+    let (GridAxis::Categories(bands), GridAxis::Categories(wins)) = (&cube.rows, &cube.cols) else {
         return Ok(());
     };
     let known = positions(run);
@@ -296,7 +295,12 @@ fn head_figure(
         }
     }
     let bx = LEFT + wins.len() as f64 * CELL + 12.0;
-    let bar_rect = [bx, TOP + 10.0, bx + 14.0, TOP + 10.0 + (bands.len() as f64 * CELL - 60.0).max(120.0)];
+    let bar_rect = [
+        bx,
+        TOP + 10.0,
+        bx + 14.0,
+        TOP + 10.0 + (bands.len() as f64 * CELL - 60.0).max(120.0),
+    ];
     let unit = units_text(&l.units);
     let bar_label = format!("{quantity} ({unit})");
     axes::colour_bar(&mut scene, bar_rect, &scale, &bar_label);
@@ -337,7 +341,10 @@ fn head_figure(
         }],
         pair: None,
         measure: Some(measure.clone()),
-        why: format!("lines: the top {} % by |value|", (TOP_SHARE * 100.0).round()),
+        why: format!(
+            "lines: the top {} % by |value|",
+            (TOP_SHARE * 100.0).round()
+        ),
         outlined: false,
     }
 }
@@ -422,7 +429,12 @@ fn head_outline(scene: &mut Scene, c: (f64, f64)) {
     for side in [-1.0, 1.0] {
         let x = c.0 + side * HEAD_R;
         scene.line((x, c.1 - 14.0), (x + side * 7.0, c.1 - 10.0), GREY, 1.2);
-        scene.line((x + side * 7.0, c.1 - 10.0), (x + side * 7.0, c.1 + 10.0), GREY, 1.2);
+        scene.line(
+            (x + side * 7.0, c.1 - 10.0),
+            (x + side * 7.0, c.1 + 10.0),
+            GREY,
+            1.2,
+        );
         scene.line((x + side * 7.0, c.1 + 10.0), (x, c.1 + 14.0), GREY, 1.2);
     }
 }

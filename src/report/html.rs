@@ -87,7 +87,11 @@ pub(crate) fn page(
     };
     let key = key_figures(ctx);
     let mut parts: Vec<(&str, &str, String)> = Vec::new();
-    parts.push(("findings", "Findings", findings(run, ctx, stats, &key, html_dir)));
+    parts.push((
+        "findings",
+        "Findings",
+        findings(run, ctx, stats, &key, html_dir),
+    ));
     let stat_html = format!(
         "{}{}",
         figures_except(ctx, FigureKind::TMap, html_dir, &key),
@@ -137,14 +141,15 @@ pub(crate) fn page(
     }
     toc.push_str("</ol></nav></section>\n");
     body.push_str(&toc);
-    let section = |body: &mut String, ids: &mut Vec<String>, (id, title, content): &(&str, &str, String)| {
-        let _ = write!(
-            body,
-            "<section id=\"{id}\"><h2>{}</h2>\n{content}</section>\n",
-            esc(title)
-        );
-        ids.push(id.to_string());
-    };
+    let section =
+        |body: &mut String, ids: &mut Vec<String>, (id, title, content): &(&str, &str, String)| {
+            let _ = write!(
+                body,
+                "<section id=\"{id}\"><h2>{}</h2>\n{content}</section>\n",
+                esc(title)
+            );
+            ids.push(id.to_string());
+        };
     for p in &parts {
         section(&mut body, &mut ids, p);
     }
@@ -180,9 +185,8 @@ pub(crate) fn page(
 fn key_figures(ctx: &Ctx<'_>) -> Vec<String> {
     let top = ctx.choice.pairs.first();
     let matches = |f: &&Rendered| {
-        top.is_none_or(|t| {
-            t.measure.is_none() || f.info.measure == t.measure
-        }) && (f.info.pair.is_none() || top.is_none_or(|t| f.info.pair.as_ref() == Some(&t.pair)))
+        top.is_none_or(|t| t.measure.is_none() || f.info.measure == t.measure)
+            && (f.info.pair.is_none() || top.is_none_or(|t| f.info.pair.as_ref() == Some(&t.pair)))
     };
     let first = |k: FigureKind| {
         let of_kind = || ctx.figures.iter().filter(move |f| f.info.kind == k);
@@ -380,7 +384,11 @@ fn cluster_tables(run: &RunOutput, stats: &[StatArray], max_rows: usize) -> Stri
         }
         out.push_str("</tr>\n");
         for (i, r) in rows.iter().take(max_rows).enumerate() {
-            out.push_str(if i < n_sig { "<tr class=\"sig\">" } else { "<tr>" });
+            out.push_str(if i < n_sig {
+                "<tr class=\"sig\">"
+            } else {
+                "<tr>"
+            });
             for cell in r.iter() {
                 let _ = write!(out, "<td>{}</td>", esc(cell));
             }

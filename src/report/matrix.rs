@@ -9,9 +9,9 @@ use serde_json::Value;
 
 use super::axes::{self, GridAxis, Scale};
 use super::colour::MapKind;
-use super::quantity::{self, measure_title};
 use super::cube::{self, NamedRange, Plane};
 use super::input::Manifest;
+use super::quantity::{self, measure_title};
 use super::scene::{HAlign, VAlign, GREY};
 use super::tf::{self, HeatFigure, Loaded, BAR_TOTAL, PLOT_TOP};
 use super::{units_text, AxisInfo, Ctx, Draft, FigureKind, PanelInfo, ReportError};
@@ -347,10 +347,11 @@ fn matrix_figure(
         l.who(),
         l.stage,
         map.name(),
-        l.baseline.as_ref().map(|b| b.sentence()).unwrap_or_default().replace(
-            ", marked by a black bar along the time axis",
-            ""
-        ),
+        l.baseline
+            .as_ref()
+            .map(|b| b.sentence())
+            .unwrap_or_default()
+            .replace(", marked by a black bar along the time axis", ""),
         tf::mean_note(l)
     );
     let id = format!("matrix-{}-{}-{measure}-{slice}", l.owner, l.stage);

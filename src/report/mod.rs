@@ -406,7 +406,9 @@ pub fn write_report(
     ctx.choice = story::choose(options, &arrays, &stats);
     // Group level first (what the study found), then each subject.
     let (group, subjects): (Vec<_>, Vec<_>) = arrays.iter().partition(|a| a.group_level());
-    let has_aggregate = group.iter().any(|a| a.cube.plane == cube::Plane::BandWindow);
+    let has_aggregate = group
+        .iter()
+        .any(|a| a.cube.plane == cube::Plane::BandWindow);
     for s in &stats {
         tmap::tmap_figures(&mut ctx, s)?;
     }

@@ -111,7 +111,11 @@ pub fn scale_for(map: MapKind, range: Option<(f64, f64)>) -> Scale {
         MapKind::Sequential => Scale {
             map,
             vmin: lo.min(0.0),
-            vmax: if hi > lo.min(0.0) { hi } else { lo.min(0.0) + 1.0 },
+            vmax: if hi > lo.min(0.0) {
+                hi
+            } else {
+                lo.min(0.0) + 1.0
+            },
         },
         MapKind::Diverging => Scale::for_range(map, lo, hi),
     }

@@ -44,7 +44,11 @@ pub fn read(node: &Node, c: &mut Collector<'_>) -> (bool, Option<ReportSpec>) {
         NodeKind::Map(_) => match serde_json::from_value::<ReportSpec>(node.to_json()) {
             Ok(spec) => {
                 if spec.figures == Some(0) {
-                    c.at(node.origin, "report.figures", "expected at least 1 figure per section");
+                    c.at(
+                        node.origin,
+                        "report.figures",
+                        "expected at least 1 figure per section",
+                    );
                 }
                 (true, Some(spec))
             }
@@ -73,7 +77,10 @@ pub fn read(node: &Node, c: &mut Collector<'_>) -> (bool, Option<ReportSpec>) {
                 c.at(
                     node.origin,
                     "report",
-                    format!("expected true, false or a block, found {}", node.kind_name()),
+                    format!(
+                        "expected true, false or a block, found {}",
+                        node.kind_name()
+                    ),
                 );
                 (false, None)
             }
@@ -142,7 +149,10 @@ mod tests {
         assert!(on && errs.is_empty(), "{errs:?}");
         let spec = spec.unwrap();
         assert_eq!(spec.pairs, vec![["F3".to_string(), "P4".to_string()]]);
-        assert_eq!(spec.contrast, Some(["right".to_string(), "left".to_string()]));
+        assert_eq!(
+            spec.contrast,
+            Some(["right".to_string(), "left".to_string()])
+        );
         assert_eq!(spec.stages, vec!["norm".to_string()]);
         assert_eq!(spec.figures, Some(4));
         assert_eq!(read_text("report: true\n").0, (true, None));
@@ -155,8 +165,14 @@ mod tests {
         assert!(!on);
         let e = errs.join("\n");
         assert!(e.contains("p.yaml:2:"), "{e}");
-        assert!(e.contains("unknown field `pair`") && e.contains("pairs"), "{e}");
+        assert!(
+            e.contains("unknown field `pair`") && e.contains("pairs"),
+            "{e}"
+        );
         let (_, errs) = read_text("report: 3\n");
-        assert!(errs.join("").contains("expected true, false or a block"), "{errs:?}");
+        assert!(
+            errs.join("").contains("expected true, false or a block"),
+            "{errs:?}"
+        );
     }
 }

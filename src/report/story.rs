@@ -112,7 +112,10 @@ pub(crate) fn choose(opts: &ReportOptions, loaded: &[Loaded], stats: &[StatArray
     let significant = significant_pairs(stats);
     choice.focus = stats.iter().find_map(|s| {
         let first = significant.first()?;
-        let m = s.t.measures.iter().position(|x| Some(x) == first.measure.as_ref())?;
+        let m =
+            s.t.measures
+                .iter()
+                .position(|x| Some(x) == first.measure.as_ref())?;
         let p = super::tmap::find_pair(&s.t.pairs, &first.pair)?;
         let (f0, f1, t0, t1) = s.extent(m, p)?;
         Some((
@@ -281,10 +284,11 @@ fn peak_difference(cube: &Cube, m: usize, p: usize, a: usize, b: usize) -> (f64,
         }
     }
     let at = match (&cube.rows, &cube.cols) {
-        (
-            super::axes::GridAxis::Categories(rs),
-            super::axes::GridAxis::Categories(cs),
-        ) if best.0.is_finite() => format!(" in {} × {}", rs[best.1], cs[best.2]),
+        (super::axes::GridAxis::Categories(rs), super::axes::GridAxis::Categories(cs))
+            if best.0.is_finite() =>
+        {
+            format!(" in {} × {}", rs[best.1], cs[best.2])
+        }
         (
             super::axes::GridAxis::Numeric { centres: f, .. },
             super::axes::GridAxis::Numeric { centres: t, .. },

@@ -276,7 +276,11 @@ fn shared_ranges(
 }
 
 /// Draws the time–frequency figures of one array: the chosen pairs, per measure.
-pub(crate) fn tf_figures(ctx: &mut Ctx<'_>, l: &Loaded, kind: FigureKind) -> Result<(), ReportError> {
+pub(crate) fn tf_figures(
+    ctx: &mut Ctx<'_>,
+    l: &Loaded,
+    kind: FigureKind,
+) -> Result<(), ReportError> {
     if l.cube.plane != Plane::FreqTime {
         return Ok(());
     }
@@ -287,12 +291,17 @@ pub(crate) fn tf_figures(ctx: &mut Ctx<'_>, l: &Loaded, kind: FigureKind) -> Res
         let mut pairs = picked_pairs(ctx, l, m);
         if kind == FigureKind::SubjectMap {
             let Some(top) = &first else { return Ok(()) };
-            if top.measure.as_ref().is_some_and(|tm| *tm != l.cube.measures[m])
+            if top
+                .measure
+                .as_ref()
+                .is_some_and(|tm| *tm != l.cube.measures[m])
                 || (top.measure.is_none() && m > 0)
             {
                 continue;
             }
-            pairs.retain(|(p, _)| super::tmap::find_pair(&[l.cube.pairs[*p].clone()], &top.pair).is_some());
+            pairs.retain(|(p, _)| {
+                super::tmap::find_pair(&[l.cube.pairs[*p].clone()], &top.pair).is_some()
+            });
         }
         let shared = shared_ranges(l, m, &pairs, diff);
         for (p, why) in pairs {
@@ -393,7 +402,8 @@ fn tf_figure(
     } else {
         ""
     };
-    let caption = format!(
+    let caption =
+        format!(
         "{name} between {} and {}, {}, by time (s, 0 = event onset, dashed) and frequency (Hz, \
          log scale). Pair shown because: {why}. Colour: {}; the scales are shared by every {name} \
          map of this array.{diff_note}{}{}",
@@ -571,7 +581,6 @@ impl HeatFigure {
         self.x += self.plot.0;
         rect
     }
-
 }
 
 /// A black bar along the bottom of a time–frequency panel over the baseline window.

@@ -110,9 +110,11 @@ pub(crate) fn is_stat(sidecar: &Sidecar) -> bool {
     let Some(i) = sidecar.dims.iter().position(|d| d == "statistic") else {
         return false;
     };
-    sidecar.coords.get(i).and_then(Coord::labels).is_some_and(|l| {
-        l.iter().any(|s| s == "t") && l.iter().any(|s| s == "p")
-    })
+    sidecar
+        .coords
+        .get(i)
+        .and_then(Coord::labels)
+        .is_some_and(|l| l.iter().any(|s| s == "t") && l.iter().any(|s| s == "p"))
 }
 
 /// Reads every contrast result; records the ones that cannot be drawn.
@@ -124,7 +126,9 @@ pub(crate) fn load_stats(ctx: &mut Ctx<'_>, run: &RunOutput) -> Vec<StatArray> {
         }
         match load_stat(a) {
             Ok(s) => out.push(s),
-            Err(why) => ctx.not_drawn.push(format!("{}/{}: {why}", a.owner, a.stage)),
+            Err(why) => ctx
+                .not_drawn
+                .push(format!("{}/{}: {why}", a.owner, a.stage)),
         }
     }
     out
@@ -266,7 +270,9 @@ pub(crate) fn tmap_figures(ctx: &mut Ctx<'_>, s: &StatArray) -> Result<(), Repor
             let sem_note = s
                 .sem
                 .as_ref()
-                .map(|_| " The SEM of the mean difference is in the exported array (statistic sem).")
+                .map(|_| {
+                    " The SEM of the mean difference is in the exported array (statistic sem)."
+                })
                 .unwrap_or("");
             let caption = format!(
                 "{} between {} and {}: left, the mean over subjects of the per-subject difference \
@@ -311,9 +317,9 @@ pub(crate) fn tmap_figures(ctx: &mut Ctx<'_>, s: &StatArray) -> Result<(), Repor
 
 /// Index of a pair in either order.
 pub(crate) fn find_pair(pairs: &[[String; 2]], want: &[String; 2]) -> Option<usize> {
-    pairs.iter().position(|p| {
-        (p[0] == want[0] && p[1] == want[1]) || (p[0] == want[1] && p[1] == want[0])
-    })
+    pairs
+        .iter()
+        .position(|p| (p[0] == want[0] && p[1] == want[1]) || (p[0] == want[1] && p[1] == want[0]))
 }
 
 /// Outline colour of significant regions.
