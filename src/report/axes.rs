@@ -203,7 +203,8 @@ pub fn hatch(scene: &mut Scene, rect: [f64; 4]) {
     }
 }
 
-fn axis_map(edges: &[f64], p0: f64, p1: f64, log: bool) -> PixelMap {
+/// The pixel map of an axis whose cell edges are `edges`, from pixel `p0` to `p1`.
+pub(crate) fn axis_map(edges: &[f64], p0: f64, p1: f64, log: bool) -> PixelMap {
     let lo = edges.first().copied().unwrap_or(0.0);
     let hi = edges.last().copied().unwrap_or(1.0);
     PixelMap {

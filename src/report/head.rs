@@ -220,6 +220,8 @@ fn head_figure(
             .map(|b| format!(" ({})", b.adjective()))
             .unwrap_or_default()
     );
+    // Wide enough for the title when there are few heads.
+    let width = width.max(axes::estimate_width(&title, 15.0) + 40.0);
     let mut scene = Scene::new(width, height);
     scene.text((16.0, 10.0), &title, 15.0, (HAlign::Left, VAlign::Top));
     let mut panels = Vec::new();

@@ -98,26 +98,18 @@ pub(crate) fn page(
         cluster_tables(run, stats, ctx.opts.max_table_rows)
     );
     parts.push(("statistics", "Statistics: t-maps and clusters", stat_html));
-    parts.push((
-        "tf-maps",
-        "Time–frequency maps (group)",
-        figures_except(ctx, FigureKind::TimeFrequency, html_dir, &key),
-    ));
-    parts.push((
-        "heads",
-        "Connectivity on the head",
-        figures_except(ctx, FigureKind::Head, html_dir, &key),
-    ));
-    parts.push((
-        "matrices",
-        "Channel × channel matrices",
-        figures_except(ctx, FigureKind::Matrix, html_dir, &key),
-    ));
-    parts.push((
-        "subjects",
-        "Each subject",
-        figures_except(ctx, FigureKind::SubjectMap, html_dir, &key),
-    ));
+    for (id, title, kind) in [
+        (
+            "tf-maps",
+            "Time–frequency maps (group)",
+            FigureKind::TimeFrequency,
+        ),
+        ("heads", "Connectivity on the head", FigureKind::Head),
+        ("matrices", "Channel × channel matrices", FigureKind::Matrix),
+        ("subjects", "Each subject", FigureKind::SubjectMap),
+    ] {
+        parts.push((id, title, figures_except(ctx, kind, html_dir, &key)));
+    }
     parts.push((
         "tables",
         "Tables",

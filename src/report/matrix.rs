@@ -285,7 +285,7 @@ fn matrix_figure(
     slice: &str,
     panels: &[MatrixPanel],
     has_diff: bool,
-    shared: (Option<(f64, f64)>, Option<(f64, f64)>),
+    shared: tf::SharedRanges,
 ) -> Draft {
     let chans = channels(&l.cube.pairs);
     let n = chans.len().max(1);

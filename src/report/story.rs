@@ -278,7 +278,7 @@ fn peak_difference(cube: &Cube, m: usize, p: usize, a: usize, b: usize) -> (f64,
             } else {
                 d(r, col).abs()
             };
-            if v.is_finite() && !(v <= best.0) {
+            if v.is_finite() && (best.0.is_nan() || v > best.0) {
                 best = (v, r, col);
             }
         }

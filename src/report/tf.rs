@@ -243,6 +243,9 @@ pub(crate) fn picked_pairs(ctx: &mut Ctx<'_>, l: &Loaded, m: usize) -> Vec<(usiz
     out
 }
 
+/// The value ranges that a figure group's condition panels and difference panels share.
+pub(crate) type SharedRanges = (Option<(f64, f64)>, Option<(f64, f64)>);
+
 /// Range over the chosen pairs' condition panels and difference panels of one measure: the
 /// scales that the figures of this measure share.
 fn shared_ranges(
@@ -250,7 +253,7 @@ fn shared_ranges(
     m: usize,
     pairs: &[(usize, String)],
     diff: Option<(usize, usize)>,
-) -> (Option<(f64, f64)>, Option<(f64, f64)>) {
+) -> SharedRanges {
     let v = &l.cube.values;
     let conds = cube::finite_range(
         pairs
@@ -344,7 +347,7 @@ fn tf_figure(
     m: usize,
     p: usize,
     diff: Option<(usize, usize)>,
-    shared: (Option<(f64, f64)>, Option<(f64, f64)>),
+    shared: SharedRanges,
     why: &str,
 ) -> Draft {
     let cube = &l.cube;

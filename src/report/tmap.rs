@@ -9,7 +9,7 @@ use ndarray::{ArrayD, Axis};
 use phasewise_stages::array::Coord;
 use serde_json::Value;
 
-use super::axes::{self, GridAxis, PixelMap};
+use super::axes::{self, GridAxis};
 use super::colour::MapKind;
 use super::cube::{self, Cube, Plane};
 use super::input::{self, Exported, RunOutput, Sidecar};
@@ -336,20 +336,9 @@ pub(crate) fn outline(
 ) {
     let xe = x.edges();
     let ye = y.edges();
-    let xm = PixelMap {
-        lo: xe[0],
-        hi: xe[xe.len() - 1],
-        p0: rect[0],
-        p1: rect[2],
-        log: x.is_log(),
-    };
-    let ym = PixelMap {
-        lo: ye[0],
-        hi: ye[ye.len() - 1],
-        p0: rect[3],
-        p1: rect[1],
-        log: y.is_log(),
-    };
+    let xm = axes::axis_map(&xe, rect[0], rect[2], x.is_log());
+    // Numeric rows grow upwards, as draw_cells draws them.
+    let ym = axes::axis_map(&ye, rect[3], rect[1], y.is_log());
     let xp: Vec<f64> = xe.iter().map(|&v| xm.to_px(v)).collect();
     let yp: Vec<f64> = ye.iter().map(|&v| ym.to_px(v)).collect();
     let (nr, nc) = (y.len(), x.len());
