@@ -259,7 +259,10 @@ fn run(target: &Target, jobs: Option<usize>, quiet: bool, env: Env<'_>) -> Resul
     }
     if summary.report && summary.manifest_path.file_name() == Some("manifest.json".as_ref()) {
         let output = summary.manifest_path.parent().unwrap_or(Path::new("."));
-        write_report(output, None, quiet)?;
+        let options = crate::pipeline::load(&target.pipeline, &target.set, env.ops)
+            .map(|p| crate::report::spec::options_for(&p))
+            .unwrap_or_default();
+        write_report(output, None, &options, quiet)?;
     }
     // `-q`: warnings stay in the manifest only.
     if !quiet && !summary.warnings.is_empty() {
@@ -280,15 +283,20 @@ fn run(target: &Target, jobs: Option<usize>, quiet: bool, env: Env<'_>) -> Resul
 fn report(pipeline: &Path, out: Option<&Path>, env: Env<'_>) -> Result<i32> {
     let resolved = crate::pipeline::load(pipeline, &[], env.ops)
         .map_err(|e| run_error(RunError::Pipeline(e)))?;
-    write_report(&crate::paths::clean(&resolved.output), out, false)?;
+    let options = crate::report::spec::options_for(&resolved);
+    write_report(&crate::paths::clean(&resolved.output), out, &options, false)?;
     Ok(0)
 }
 
 /// Render the report of the run whose outputs are in `output` (default `<output>/report.html`).
-fn write_report(output: &Path, out: Option<&Path>, quiet: bool) -> Result<()> {
+fn write_report(
+    output: &Path,
+    out: Option<&Path>,
+    options: &crate::report::ReportOptions,
+    quiet: bool,
+) -> Result<()> {
     let file = out.map_or_else(|| output.join("report.html"), Path::to_path_buf);
-    let options = crate::report::ReportOptions::default();
-    let summary = crate::report::write_report(output, &file, &options).map_err(|e| {
+    let summary = crate::report::write_report(output, &file, options).map_err(|e| {
         anyhow!(Exit {
             code: 2,
             message: e.to_string(),

@@ -42,6 +42,8 @@ pub struct RawPipeline {
     pub output: Option<Spanned<String>>,
     /// Whether `run` also writes the HTML report (`<output>/report.html`).
     pub report: bool,
+    /// The `report:` block, when one is written (src/report/spec.rs).
+    pub report_spec: Option<crate::report::spec::ReportSpec>,
     /// The stages, in file order.
     pub stages: Vec<RawStage>,
     /// Where the `stages` mapping is (for "no stages" errors).
@@ -185,6 +187,7 @@ pub fn read(root: &Node, file: &Path, c: &mut Collector<'_>) -> RawPipeline {
         events: None,
         output: None,
         report: false,
+        report_spec: None,
         stages: Vec::new(),
         stages_origin: root.origin,
     };
@@ -197,7 +200,7 @@ pub fn read(root: &Node, file: &Path, c: &mut Collector<'_>) -> RawPipeline {
             "name" => raw.name = text(value, "name", c).map(|s| s.value),
             "data" => read_data(value, &mut raw, c),
             "output" => raw.output = text(value, "output", c),
-            "report" => raw.report = boolean(value, "report", c).unwrap_or(false),
+            "report" => (raw.report, raw.report_spec) = crate::report::spec::read(value, c),
             "stages" => {
                 raw.stages_origin = value.origin;
                 raw.stages = read_stages(value, c);

@@ -44,8 +44,10 @@ pub struct ResolvedPipeline {
     pub events: EventSource,
     /// The output folder.
     pub output: PathBuf,
-    /// Reserved for the report issue.
+    /// Whether `run` also writes the HTML report.
     pub report: bool,
+    /// The `report:` block, when one is written.
+    pub report_spec: Option<crate::report::spec::ReportSpec>,
     /// The `--set` arguments as given.
     pub overrides: Vec<String>,
     /// The stages in topological order.
@@ -182,6 +184,7 @@ fn resolve(
         events: events?,
         output: output?,
         report: raw.report,
+        report_spec: raw.report_spec.clone(),
         overrides: overrides.to_vec(),
         stages: stages?,
     })

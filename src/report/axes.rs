@@ -4,11 +4,8 @@
 //! (time in s on a linear scale, frequency in Hz on a log scale; cells span the midpoints between
 //! neighbouring coordinates) or categorical (channels, bands, windows; one cell per entry).
 
-use super::colour::{MapKind, Rgb};
+use super::colour::{MapKind, Rgb, NO_VALUE_BG, NO_VALUE_INK};
 use super::scene::{HAlign, Scene, VAlign, GREY, INK};
-
-/// Colour of cells without a value (NaN or missing pair).
-pub const NO_VALUE: Rgb = [214, 214, 218];
 /// Font size of tick labels.
 pub const TICK_PX: f64 = 11.0;
 /// Font size of axis labels.
@@ -50,7 +47,7 @@ impl Scale {
     /// The colour of value `v`.
     pub fn colour(&self, v: f64) -> Rgb {
         if !v.is_finite() {
-            return NO_VALUE;
+            return NO_VALUE_BG;
         }
         let span = self.vmax - self.vmin;
         let t = if span > 0.0 {
@@ -176,13 +173,38 @@ pub fn draw_cells(
     for r in 0..y.len() {
         for c in 0..x.len() {
             let (y0, y1) = (yp[r].min(yp[r + 1]), yp[r].max(yp[r + 1]));
-            scene.fill([xp[c], y0, xp[c + 1], y1], scale.colour(value(r, c)));
+            let v = value(r, c);
+            scene.fill([xp[c], y0, xp[c + 1], y1], scale.colour(v));
+            if !v.is_finite() {
+                hatch(scene, [xp[c], y0, xp[c + 1], y1]);
+            }
         }
     }
     (xm, ym)
 }
 
-fn axis_map(edges: &[f64], p0: f64, p1: f64, log: bool) -> PixelMap {
+/// Spacing of the "no value" hatch, in layout pixels.
+const HATCH_STEP: f64 = 4.0;
+
+/// Diagonal stripes (lower left to upper right) over `rect`: the mark of a cell without a value.
+pub fn hatch(scene: &mut Scene, rect: [f64; 4]) {
+    let [x0, y0, x1, y1] = rect;
+    let (w, h) = (x1 - x0, y1 - y0);
+    if w <= 0.0 || h <= 0.0 {
+        return;
+    }
+    // Lines x + y = k, clipped to the rectangle, every HATCH_STEP along x + y.
+    let mut k = x0 + y0 + HATCH_STEP / 2.0;
+    while k < x1 + y1 {
+        let a = (x0.max(k - y1), (k - x0.max(k - y1)));
+        let b = (x1.min(k - y0), (k - x1.min(k - y0)));
+        scene.line(a, b, NO_VALUE_INK, 0.8);
+        k += HATCH_STEP;
+    }
+}
+
+/// The pixel map of an axis whose cell edges are `edges`, from pixel `p0` to `p1`.
+pub(crate) fn axis_map(edges: &[f64], p0: f64, p1: f64, log: bool) -> PixelMap {
     let lo = edges.first().copied().unwrap_or(0.0);
     let hi = edges.last().copied().unwrap_or(1.0);
     PixelMap {
@@ -390,6 +412,17 @@ pub fn colour_bar(scene: &mut Scene, rect: [f64; 4], scale: &Scale, label: &str)
     }
     let x = rect[2] + 6.0 + 52.0;
     scene.vertical_text((x, (rect[1] + rect[3]) / 2.0), label, LABEL_PX);
+    // The legend of "no value", under the bar.
+    let sw = [rect[0], rect[3] + 22.0, rect[2], rect[3] + 34.0];
+    scene.fill(sw, NO_VALUE_BG);
+    hatch(scene, sw);
+    scene.frame(sw, GREY);
+    scene.text(
+        (rect[2] + 4.0, (sw[1] + sw[3]) / 2.0),
+        "no value",
+        TICK_PX - 1.0,
+        (HAlign::Left, VAlign::Middle),
+    );
 }
 
 /// End values of a colour bar get one more digit than inner ticks: they state the data range.

@@ -1,30 +1,37 @@
-//! Colour maps of the report's figures and the colour-science helpers they need.
+//! Colour maps of the report's figures and the colour-science helpers their tests need.
 //!
-//! Two maps, both written here from their published definitions rather than taken from a
-//! plotting program:
-//! - a sequential map for non-negative quantities (PLV, PPC, wPLI, …): the viridis map
-//!   (van der Walt & Smith, 2015, released CC0), evaluated through a degree-6 polynomial fit of
-//!   its published 256-entry table;
-//! - a diverging map centred on zero for baseline-subtracted values and condition differences:
-//!   Moreland's "cool to warm" map (K. Moreland, 2009, "Diverging Color Maps for Scientific
-//!   Visualization", ISVC), built by interpolating in his Msh colour space between the two
-//!   published end colours through a neutral midpoint.
+//! Both maps are published tables, taken from the `colorous` crate (d3-scale-chromatic's
+//! schemes), not recalled or refitted here:
+//! - sequential, for non-negative measures drawn from 0 (PLV, PLI, wPLI): viridis
+//!   (van der Walt, Smith & Firing, 2015, matplotlib; CC0), colorous's 256-entry table;
+//! - diverging, centred on zero, for signed quantities (baseline-corrected values, condition
+//!   differences, t, PPC, dwPLI, imaginary coherency): ColorBrewer "RdBu" (C. Brewer,
+//!   colorbrewer2.org), its 11-class table, reversed so that negative is blue and positive red,
+//!   with straight-line interpolation between neighbouring classes (exact at every class).
+//!
+//! "No value" (NaN, the matrix diagonal, a pair not computed) is no colour of either map: cells
+//! are hatched ([`NO_VALUE_BG`] with [`NO_VALUE_INK`] stripes), and every colour bar shows the
+//! hatch in its legend.
 //!
 //! The sRGB and CIELAB conversions follow IEC 61966-2-1 (sRGB) and CIE 1976 L*a*b* with the
 //! D65 white point.
 
-use std::sync::OnceLock;
-
 /// An 8-bit sRGB colour.
 pub type Rgb = [u8; 3];
+
+/// Background of a cell without a value (under its hatch).
+pub const NO_VALUE_BG: Rgb = [255, 255, 255];
+/// Stripes of the "no value" hatch: a mid grey that neither map contains.
+pub const NO_VALUE_INK: Rgb = [140, 140, 140];
 
 /// Which colour map a colour bar uses.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, serde::Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum MapKind {
-    /// Sequential, low = dark blue-violet, high = yellow.
+    /// Sequential (viridis), low = dark violet, high = yellow.
     Sequential,
-    /// Diverging around zero: negative blue, zero light grey, positive red.
+    /// Diverging around zero (ColorBrewer RdBu reversed): negative blue, zero near white,
+    /// positive red.
     Diverging,
 }
 
@@ -34,130 +41,45 @@ impl MapKind {
         let t = if t.is_nan() { 0.5 } else { t.clamp(0.0, 1.0) };
         match self {
             MapKind::Sequential => viridis(t),
-            MapKind::Diverging => {
-                let table = diverging_table();
-                // 256-entry table: index by rounding, like any lookup table.
-                table[(t * 255.0).round() as usize]
-            }
+            MapKind::Diverging => diverging(t),
         }
     }
 
     /// Short name shown in captions.
     pub fn name(self) -> &'static str {
         match self {
-            MapKind::Sequential => "sequential (viridis)",
-            MapKind::Diverging => "diverging, centred on zero (Moreland cool–warm)",
+            MapKind::Sequential => "viridis (sequential)",
+            MapKind::Diverging => "ColorBrewer RdBu (diverging, white at zero)",
         }
     }
 }
 
-/// Viridis at `t` in [0, 1].
-///
-/// Coefficients of the degree-6 polynomial fit of the published viridis table, as circulated
-/// by M. Zucker (2019); recalled from memory, and checked in the tests below against entries of
-/// the published table (largest error over its 64 8-bit samples: 0.014).
+/// Viridis at `t` in [0, 1], through colorous's 256-entry table.
 pub fn viridis(t: f64) -> Rgb {
-    const C: [[f64; 3]; 7] = [
-        [
-            0.277_727_327_223_417_7,
-            0.005_407_344_544_966_578,
-            0.334_099_805_335_306_1,
-        ],
-        [
-            0.105_093_043_108_577_4,
-            1.404_613_529_898_575,
-            1.384_590_162_594_685,
-        ],
-        [
-            -0.330_861_828_725_556_3,
-            0.214_847_559_468_213,
-            0.095_095_163_028_236_59,
-        ],
-        [
-            -4.634_230_498_983_486,
-            -5.799_100_973_351_585,
-            -19.332_440_956_279_87,
-        ],
-        [
-            6.228_269_936_347_081,
-            14.179_933_366_805_09,
-            56.690_552_600_681_05,
-        ],
-        [
-            4.776_384_997_670_288,
-            -13.745_145_377_746_01,
-            -65.353_032_633_372_34,
-        ],
-        [
-            -5.435_455_855_934_631,
-            4.645_852_612_178_535,
-            26.312_435_249_583_2,
-        ],
-    ];
+    colorous::VIRIDIS.eval_continuous(t).into_array()
+}
+
+/// Number of classes of the published RdBu table used.
+const RDBU_CLASSES: usize = 11;
+
+/// Class `i` of the published 11-class RdBu table, reversed (0 = deepest blue).
+fn rdbu_class(i: usize) -> Rgb {
+    colorous::RED_BLUE
+        .eval_rational(RDBU_CLASSES - 1 - i, RDBU_CLASSES)
+        .into_array()
+}
+
+/// The diverging map at `t`: straight lines in sRGB between neighbouring published classes.
+fn diverging(t: f64) -> Rgb {
+    let x = t * (RDBU_CLASSES - 1) as f64;
+    let i = (x.floor() as usize).min(RDBU_CLASSES - 2);
+    let u = x - i as f64;
+    let (a, b) = (rdbu_class(i), rdbu_class(i + 1));
     let mut out = [0u8; 3];
-    for (ch, o) in out.iter_mut().enumerate() {
-        // Horner's scheme, highest power first.
-        let v = C.iter().rev().fold(0.0, |acc, c| acc * t + c[ch]);
-        *o = to_byte(v);
+    for k in 0..3 {
+        out[k] = (f64::from(a[k]) + u * (f64::from(b[k]) - f64::from(a[k]))).round() as u8;
     }
     out
-}
-
-fn to_byte(v: f64) -> u8 {
-    (v.clamp(0.0, 1.0) * 255.0).round() as u8
-}
-
-/// The 256-entry diverging table, computed once.
-fn diverging_table() -> &'static [Rgb; 256] {
-    static TABLE: OnceLock<[Rgb; 256]> = OnceLock::new();
-    TABLE.get_or_init(|| {
-        let mut table = [[0u8; 3]; 256];
-        for (i, c) in table.iter_mut().enumerate() {
-            *c = moreland(i as f64 / 255.0);
-        }
-        table
-    })
-}
-
-/// Moreland's cool-to-warm diverging map at `t` in [0, 1] (published end colours
-/// sRGB (59, 76, 192) and (180, 4, 38)).
-fn moreland(t: f64) -> Rgb {
-    let cool = lab_to_msh(srgb_to_lab([59, 76, 192]));
-    let warm = lab_to_msh(srgb_to_lab([180, 4, 38]));
-    let msh = interpolate_msh(cool, warm, t);
-    lab_to_srgb(msh_to_lab(msh))
-}
-
-/// Interpolation in Msh through a neutral midpoint, with Moreland's hue spin near it so that
-/// the path stays perceptually even (his paper, section 4).
-fn interpolate_msh(a: [f64; 3], b: [f64; 3], t: f64) -> [f64; 3] {
-    let mid_m = a[0].max(b[0]).max(88.0);
-    let (from, to, u) = if t < 0.5 {
-        let mid = [mid_m, 0.0, adjust_hue(a, mid_m)];
-        (a, mid, 2.0 * t)
-    } else {
-        let mid = [mid_m, 0.0, adjust_hue(b, mid_m)];
-        (mid, b, 2.0 * t - 1.0)
-    };
-    [
-        from[0] + u * (to[0] - from[0]),
-        from[1] + u * (to[1] - from[1]),
-        from[2] + u * (to[2] - from[2]),
-    ]
-}
-
-/// Hue to give the unsaturated end of a segment so that the hue turns smoothly (Moreland 2009).
-fn adjust_hue(saturated: [f64; 3], m_unsat: f64) -> f64 {
-    let [m, s, h] = saturated;
-    if m >= m_unsat {
-        return h;
-    }
-    let spin = s * (m_unsat * m_unsat - m * m).sqrt() / (m * s.sin());
-    if h > -std::f64::consts::FRAC_PI_3 {
-        h + spin
-    } else {
-        h - spin
-    }
 }
 
 const WHITE_D65: [f64; 3] = [0.950_47, 1.0, 1.088_83];
@@ -179,38 +101,11 @@ pub fn srgb_to_lab(c: Rgb) -> [f64; 3] {
     [116.0 * fy - 16.0, 500.0 * (fx - fy), 200.0 * (fy - fz)]
 }
 
-fn lab_to_srgb(lab: [f64; 3]) -> Rgb {
-    let fy = (lab[0] + 16.0) / 116.0;
-    let fx = fy + lab[1] / 500.0;
-    let fz = fy - lab[2] / 200.0;
-    let x = WHITE_D65[0] * lab_f_inv(fx);
-    let y = WHITE_D65[1] * lab_f_inv(fy);
-    let z = WHITE_D65[2] * lab_f_inv(fz);
-    // Inverse of the matrix above (IEC 61966-2-1).
-    let r = 3.2406 * x - 1.5372 * y - 0.4986 * z;
-    let g = -0.9689 * x + 1.8758 * y + 0.0415 * z;
-    let b = 0.0557 * x - 0.2040 * y + 1.0570 * z;
-    [
-        to_byte(srgb_encode(r)),
-        to_byte(srgb_encode(g)),
-        to_byte(srgb_encode(b)),
-    ]
-}
-
 fn srgb_decode(v: f64) -> f64 {
     if v <= 0.040_45 {
         v / 12.92
     } else {
         ((v + 0.055) / 1.055).powf(2.4)
-    }
-}
-
-fn srgb_encode(v: f64) -> f64 {
-    let v = v.max(0.0);
-    if v <= 0.003_130_8 {
-        12.92 * v
-    } else {
-        1.055 * v.powf(1.0 / 2.4) - 0.055
     }
 }
 
@@ -224,25 +119,6 @@ fn lab_f(t: f64) -> f64 {
     }
 }
 
-fn lab_f_inv(f: f64) -> f64 {
-    if f > LAB_EPS {
-        f.powi(3)
-    } else {
-        3.0 * LAB_EPS * LAB_EPS * (f - 4.0 / 29.0)
-    }
-}
-
-fn lab_to_msh(lab: [f64; 3]) -> [f64; 3] {
-    let m = (lab[0] * lab[0] + lab[1] * lab[1] + lab[2] * lab[2]).sqrt();
-    let s = if m > 0.0 { (lab[0] / m).acos() } else { 0.0 };
-    [m, s, lab[2].atan2(lab[1])]
-}
-
-fn msh_to_lab(msh: [f64; 3]) -> [f64; 3] {
-    let [m, s, h] = msh;
-    [m * s.cos(), m * s.sin() * h.cos(), m * s.sin() * h.sin()]
-}
-
 /// Hex form `#rrggbb` for HTML and SVG.
 pub fn hex(c: Rgb) -> String {
     format!("#{:02x}{:02x}{:02x}", c[0], c[1], c[2])
@@ -252,17 +128,19 @@ pub fn hex(c: Rgb) -> String {
 mod tests {
     use super::*;
 
-    fn close(c: Rgb, want: [f64; 3], tol: f64) -> bool {
+    fn within(c: Rgb, want: [f64; 3], tol: f64) -> bool {
         c.iter()
             .zip(want)
-            .all(|(&a, w)| (f64::from(a) / 255.0 - w).abs() <= tol)
+            .all(|(&a, w)| (f64::from(a) - w * 255.0).abs() <= tol)
     }
 
     #[test]
     fn viridis_matches_published_table() {
         // Entries 0, 32, 64, 128, 192 and 255 of the published 256-entry viridis table
-        // (mpl-colormaps, van der Walt & Smith 2015, CC0). Tolerance 0.02: the polynomial fit's
-        // largest error is 0.014, plus 8-bit rounding.
+        // (mpl-colormaps, van der Walt & Smith 2015, CC0), as floats. colorous samples its copy
+        // of the table through a uniform B-spline, which at a table entry averages it with its
+        // neighbours (1/6, 4/6, 1/6) and truncates to 8 bits: within 1.5 of 255 on this smooth
+        // table.
         let published = [
             (0, [0.267004, 0.004874, 0.329415]),
             (32, [0.278826, 0.175490, 0.483397]),
@@ -273,7 +151,25 @@ mod tests {
         ];
         for (i, want) in published {
             let got = viridis(i as f64 / 255.0);
-            assert!(close(got, want, 0.02), "entry {i}: {got:?} vs {want:?}");
+            assert!(within(got, want, 1.5), "entry {i}: {got:?} vs {want:?}");
+        }
+    }
+
+    #[test]
+    fn diverging_hits_the_published_rdbu_classes() {
+        // ColorBrewer RdBu, 11 classes (colorbrewer2.org), from its red end: 67001f b2182b
+        // d6604d f4a582 fddbc7 f7f7f7 d1e5f0 92c5de 4393c3 2166ac 053061. Reversed here.
+        let published: [u32; 11] = [
+            0x67001f, 0xb2182b, 0xd6604d, 0xf4a582, 0xfddbc7, 0xf7f7f7, 0xd1e5f0, 0x92c5de,
+            0x4393c3, 0x2166ac, 0x053061,
+        ];
+        for (k, hexv) in published.iter().rev().enumerate() {
+            let want = [
+                (hexv >> 16) as u8,
+                (hexv >> 8 & 0xff) as u8,
+                (hexv & 0xff) as u8,
+            ];
+            assert_eq!(MapKind::Diverging.at(k as f64 / 10.0), want, "class {k}");
         }
     }
 
@@ -299,25 +195,6 @@ mod tests {
     }
 
     #[test]
-    fn diverging_ends_and_middle_match_moreland() {
-        // Moreland (2009): end colours (59, 76, 192) and (180, 4, 38); the midpoint of the
-        // cool–warm map is (221, 221, 221) in his table (recalled from memory).
-        let d = MapKind::Diverging;
-        assert!(close(
-            d.at(0.0),
-            [59.0 / 255.0, 76.0 / 255.0, 192.0 / 255.0],
-            1.5 / 255.0
-        ));
-        assert!(close(
-            d.at(1.0),
-            [180.0 / 255.0, 4.0 / 255.0, 38.0 / 255.0],
-            1.5 / 255.0
-        ));
-        let mid = d.at(0.5);
-        assert!(close(mid, [221.0 / 255.0; 3], 2.5 / 255.0), "{mid:?}");
-    }
-
-    #[test]
     fn diverging_lightness_peaks_at_zero() {
         // The defining property of a diverging map: L* rises to the centre and falls after it.
         let l = |t: f64| srgb_to_lab(MapKind::Diverging.at(t))[0];
@@ -325,6 +202,24 @@ mod tests {
             let (a, b) = (i as f64 / 64.0, (i + 1) as f64 / 64.0);
             assert!(l(b) >= l(a) - 0.3, "rising half at {a}");
             assert!(l(1.0 - b) >= l(1.0 - a) - 0.3, "falling half at {a}");
+        }
+    }
+
+    #[test]
+    fn no_value_is_in_neither_map() {
+        // The hatch colour must not be mistaken for any value: far (> 20 in 8-bit RGB distance)
+        // from every colour of both maps.
+        for i in 0..=1000 {
+            for map in [MapKind::Sequential, MapKind::Diverging] {
+                let c = map.at(i as f64 / 1000.0);
+                let d: f64 = c
+                    .iter()
+                    .zip(NO_VALUE_INK)
+                    .map(|(&a, b)| (f64::from(a) - f64::from(b)).powi(2))
+                    .sum::<f64>()
+                    .sqrt();
+                assert!(d > 20.0, "{map:?} at {i}: {c:?}");
+            }
         }
     }
 }

@@ -65,8 +65,8 @@ fn build(manifest: &Manifest) -> Graph {
     }
 }
 
-/// Ops of `stage` and of every stage upstream of it.
-pub fn upstream_ops(manifest: &Manifest, stage: &str) -> Vec<String> {
+/// Units of `stage` and of every stage upstream of it, nearest first (breadth-first).
+pub fn upstream_units<'m>(manifest: &'m Manifest, stage: &str) -> Vec<&'m super::input::Unit> {
     let g = build(manifest);
     let Some(start) = g.stages.iter().position(|s| s == stage) else {
         return Vec::new();
@@ -82,15 +82,11 @@ pub fn upstream_ops(manifest: &Manifest, stage: &str) -> Vec<String> {
         }
         i += 1;
     }
-    let mut ops: Vec<String> = Vec::new();
+    let mut out = Vec::new();
     for s in seen {
-        for u in manifest.units.iter().filter(|u| u.stage == g.stages[s]) {
-            if !ops.contains(&u.op) {
-                ops.push(u.op.clone());
-            }
-        }
+        out.extend(manifest.units.iter().filter(|u| u.stage == g.stages[s]));
     }
-    ops
+    out
 }
 
 /// Longest-path layer of each node (sources at 0); cycles, which a valid run cannot have, are
@@ -179,6 +175,10 @@ pub(crate) fn stage_graph(ctx: &mut Ctx<'_>, manifest: &Manifest) -> Result<(), 
         scene,
         panels: Vec::new(),
         colour_bars: Vec::new(),
+        pair: None,
+        measure: None,
+        why: String::new(),
+        outlined: false,
     })
 }
 

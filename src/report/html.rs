@@ -1,8 +1,12 @@
 //! The report page: one self-contained HTML file (inline CSS, PNGs as data URIs, no scripts, no
 //! external resources), with one `<section id=…>` per part of the report.
 //!
-//! Sections, in order: `caution`, `summary` (manifest), `stages` (graph and unit list),
-//! `epochs`, `warnings`, `tf-maps`, `matrices`, `tables`, `not-drawn`. Every figure links its
+//! Sections, in order: `caution`, `contents` (links to the rest), `findings` (what was tested,
+//! what is significant, how the pairs were chosen, the key figures), `statistics` (t-maps and
+//! the cluster table), `tf-maps`, `heads`, `matrices`, `subjects`, `tables`, then, folded in
+//! one `<details id="provenance">`: `summary` (manifest), `stages` (graph and unit list),
+//! `epochs`, `warnings`, `not-drawn`. Images are marked `loading="lazy"` and
+//! `decoding="async"`. Every figure links its
 //! SVG and PNG files, and every colour bar is stated in text with its limits as data attributes
 //! (`data-vmin`, `data-vmax`), so the numbers behind the colours can be read and checked.
 
@@ -13,6 +17,8 @@ use std::path::Path;
 use serde_json::Value;
 
 use super::input::{str_of, Manifest, RunOutput, Table};
+use super::quantity::measure_title;
+use super::tmap::StatArray;
 use super::{Ctx, FigureKind, Rendered};
 
 /// The research-use caution (DESIGN §9).
@@ -54,10 +60,20 @@ figcaption{font-size:13px;color:#45454d;margin-top:.5em}
 dl.kv{display:grid;grid-template-columns:max-content auto;gap:2px 14px;font-size:14px}dl.kv dt{color:#66666e}dl.kv dd{margin:0;word-break:break-all}
 .scroll{max-height:420px;overflow:auto;border:1px solid #e2e0da}
 footer{margin-top:3em;color:#808088;font-size:12px}
+nav.toc ol{margin:.2em 0;padding-left:1.4em;columns:2}
+.finding{background:#eef5ee;border-left:6px solid #4a8a4a;padding:.5em 1em;margin:.6em 0}
+.nofinding{background:#f3f3f0;border-left:6px solid #a0a09a;padding:.5em 1em;margin:.6em 0}
+details.prov{margin-top:2em;border-top:2px solid #d9d3c3}details.prov>summary{font-size:1.2em;font-weight:bold;cursor:pointer;padding:.6em 0}
+tr.sig td{background:#e3f0e3;font-weight:bold}
 ";
 
 /// The page and the ids of its sections.
-pub(crate) fn page(run: &RunOutput, ctx: &Ctx<'_>, html_dir: &Path) -> (String, Vec<String>) {
+pub(crate) fn page(
+    run: &RunOutput,
+    ctx: &Ctx<'_>,
+    html_dir: &Path,
+    stats: &[StatArray],
+) -> (String, Vec<String>) {
     let m = &run.manifest;
     let name = m
         .raw
@@ -69,41 +85,75 @@ pub(crate) fn page(run: &RunOutput, ctx: &Ctx<'_>, html_dir: &Path) -> (String, 
     } else {
         name
     };
-    let mut body = String::new();
-    let mut ids = Vec::new();
-    let mut section = |id: &str, title: &str, content: String| {
-        let _ = write!(
-            body,
-            "<section id=\"{id}\"><h2>{}</h2>\n{content}</section>\n",
-            esc(title)
-        );
-        ids.push(id.to_string());
-    };
-    section(
-        "caution",
-        "Research use only",
-        format!("<p class=\"caution\">{}</p>", esc(CAUTION)),
+    let key = key_figures(ctx);
+    let mut parts: Vec<(&str, &str, String)> = Vec::new();
+    parts.push((
+        "findings",
+        "Findings",
+        findings(run, ctx, stats, &key, html_dir),
+    ));
+    let stat_html = format!(
+        "{}{}",
+        figures_except(ctx, FigureKind::TMap, html_dir, &key),
+        cluster_tables(run, stats, ctx.opts.max_table_rows)
     );
-    section("summary", "Run summary (manifest)", summary(m, &run.dir));
-    section("stages", "Stages and units", stages(m, ctx, html_dir));
-    section("epochs", "Epoch counts", epochs(m));
-    section("warnings", "Warnings", warnings(m));
-    section(
-        "tf-maps",
-        "Time–frequency maps",
-        figures_of(ctx, FigureKind::TimeFrequency, html_dir),
-    );
-    section(
-        "matrices",
-        "Channel × channel matrices",
-        figures_of(ctx, FigureKind::Matrix, html_dir),
-    );
-    section(
+    parts.push(("statistics", "Statistics: t-maps and clusters", stat_html));
+    for (id, title, kind) in [
+        (
+            "tf-maps",
+            "Time–frequency maps (group)",
+            FigureKind::TimeFrequency,
+        ),
+        ("heads", "Connectivity on the head", FigureKind::Head),
+        ("matrices", "Channel × channel matrices", FigureKind::Matrix),
+        ("subjects", "Each subject", FigureKind::SubjectMap),
+    ] {
+        parts.push((id, title, figures_except(ctx, kind, html_dir, &key)));
+    }
+    parts.push((
         "tables",
         "Tables",
         tables(&run.tables, ctx.opts.max_table_rows),
+    ));
+    let prov: Vec<(&str, &str, String)> = vec![
+        ("summary", "Run summary (manifest)", summary(m, &run.dir)),
+        ("stages", "Stages and units", stages(m, ctx, html_dir)),
+        ("epochs", "Epoch counts", epochs(m)),
+        ("warnings", "Warnings", warnings(m)),
+        ("not-drawn", "Not drawn", not_drawn(&ctx.not_drawn)),
+    ];
+    let mut ids = vec!["caution".to_string(), "contents".to_string()];
+    let mut body = format!(
+        "<section id=\"caution\"><p class=\"caution\">{}</p></section>\n",
+        esc(CAUTION)
     );
-    section("not-drawn", "Not drawn", not_drawn(&ctx.not_drawn));
+    let mut toc = String::from("<section id=\"contents\"><nav class=\"toc\"><ol>");
+    for (id, title, _) in parts.iter().chain(&prov) {
+        let _ = write!(toc, "<li><a href=\"#{id}\">{}</a></li>", esc(title));
+    }
+    toc.push_str("</ol></nav></section>\n");
+    body.push_str(&toc);
+    let section =
+        |body: &mut String, ids: &mut Vec<String>, (id, title, content): &(&str, &str, String)| {
+            let _ = write!(
+                body,
+                "<section id=\"{id}\"><h2>{}</h2>\n{content}</section>\n",
+                esc(title)
+            );
+            ids.push(id.to_string());
+        };
+    for p in &parts {
+        section(&mut body, &mut ids, p);
+    }
+    body.push_str(
+        "<details class=\"prov\" id=\"provenance\"><summary>Provenance: manifest, stages, epoch \
+         counts, warnings, what was not drawn</summary>\n",
+    );
+    ids.push("provenance".to_string());
+    for p in &prov {
+        section(&mut body, &mut ids, p);
+    }
+    body.push_str("</details>\n");
     let title = if name.is_empty() {
         "phasewise run report".to_string()
     } else {
@@ -120,6 +170,225 @@ pub(crate) fn page(run: &RunOutput, ctx: &Ctx<'_>, html_dir: &Path) -> (String, 
         v = env!("CARGO_PKG_VERSION"),
     );
     (html, ids)
+}
+
+/// The figures shown in the findings: the first t-map (else the first group time–frequency
+/// figure) and the first head figure.
+fn key_figures(ctx: &Ctx<'_>) -> Vec<String> {
+    let top = ctx.choice.pairs.first();
+    let matches = |f: &&Rendered| {
+        top.is_none_or(|t| t.measure.is_none() || f.info.measure == t.measure)
+            && (f.info.pair.is_none() || top.is_none_or(|t| f.info.pair.as_ref() == Some(&t.pair)))
+    };
+    let first = |k: FigureKind| {
+        let of_kind = || ctx.figures.iter().filter(move |f| f.info.kind == k);
+        of_kind()
+            .find(matches)
+            .or_else(|| of_kind().next())
+            .map(|f| f.info.id.clone())
+    };
+    let mut out = Vec::new();
+    out.extend(first(FigureKind::TMap).or_else(|| first(FigureKind::TimeFrequency)));
+    out.extend(first(FigureKind::Head));
+    out
+}
+
+/// What was tested, what is significant, how the pairs were chosen, and the key figures.
+fn findings(
+    run: &RunOutput,
+    ctx: &Ctx<'_>,
+    stats: &[StatArray],
+    key: &[String],
+    html_dir: &Path,
+) -> String {
+    let mut out = String::new();
+    let c = &ctx.choice;
+    if stats.is_empty() {
+        out.push_str(
+            "<p class=\"nofinding\">No statistics: the pipeline has no exported <code>contrast</code> \
+             stage, so nothing here is tested; the figures describe the data.</p>",
+        );
+    }
+    for s in stats {
+        let measures: Vec<String> = s.t.measures.iter().map(|m| measure_title(m)).collect();
+        let _ = write!(
+            out,
+            "<p>Tested in stage <code>{}</code>: {} across {}, for {} over {} pairs, {}-corrected \
+             at α = {}.</p>",
+            esc(&s.stage),
+            esc(&s.what()),
+            s.subjects
+                .map(|n| format!("{n} subjects"))
+                .unwrap_or_else(|| "subjects".to_string()),
+            esc(&measures.join(", ")),
+            s.t.pairs.len(),
+            esc(&s.correction),
+            super::axes::fmt_num(s.alpha)
+        );
+        let sig = significant_rows(run, &s.stage);
+        match sig {
+            Some((header, rows)) if !rows.is_empty() => {
+                let _ = write!(
+                    out,
+                    "<p class=\"finding\">Significant: {}.</p>",
+                    esc(&rows
+                        .iter()
+                        .map(|r| describe_row(&header, r))
+                        .collect::<Vec<_>>()
+                        .join("; "))
+                );
+            }
+            _ => out.push_str(
+                "<p class=\"nofinding\">No cluster or point is significant at this α.</p>",
+            ),
+        }
+    }
+    if let Some([a, b]) = &c.contrast {
+        let _ = write!(
+            out,
+            "<p>Differences are drawn as {} − {} ({}).</p>",
+            esc(a),
+            esc(b),
+            esc(&c.contrast_why)
+        );
+    }
+    if !c.pairs_how.is_empty() {
+        let _ = write!(out, "<p>{}</p>", esc(&c.pairs_how));
+    }
+    if !c.pairs.is_empty() {
+        // One line per pair, with the measures it was chosen for.
+        let mut order: Vec<&[String; 2]> = Vec::new();
+        for p in &c.pairs {
+            if !order.contains(&&p.pair) {
+                order.push(&p.pair);
+            }
+        }
+        out.push_str("<ul>");
+        for pair in order {
+            let why: Vec<String> = c
+                .pairs
+                .iter()
+                .filter(|p| &p.pair == pair)
+                .map(|p| match &p.measure {
+                    Some(m) => format!("{} ({})", measure_title(m), p.short),
+                    None => p.short.clone(),
+                })
+                .collect();
+            let _ = write!(
+                out,
+                "<li><b>{}–{}</b>: {}</li>",
+                esc(&pair[0]),
+                esc(&pair[1]),
+                esc(&why.join("; "))
+            );
+        }
+        out.push_str("</ul>");
+    }
+    for id in key {
+        if let Some(f) = ctx.figures.iter().find(|f| &f.info.id == id) {
+            out.push_str(&figure(f, html_dir));
+        }
+    }
+    out
+}
+
+/// One sentence for a row of a findings table.
+fn describe_row(header: &[String], row: &[String]) -> String {
+    let get = |k: &str| {
+        header
+            .iter()
+            .position(|h| h == k)
+            .and_then(|i| row.get(i))
+            .map(String::as_str)
+            .unwrap_or("?")
+    };
+    let num = |k: &str| {
+        get(k)
+            .parse::<f64>()
+            .map(super::axes::fmt_num)
+            .unwrap_or_else(|_| get(k).to_string())
+    };
+    format!(
+        "{} {}–{}, {}–{} Hz, {}–{} s (mass {}, peak t {}, p = {})",
+        measure_title(get("measure")),
+        get("channel_a"),
+        get("channel_b"),
+        num("freq_from"),
+        num("freq_to"),
+        num("time_from"),
+        num("time_to"),
+        num("mass"),
+        num("peak_t"),
+        num("p")
+    )
+}
+
+/// The rows of a contrast stage's table marked significant.
+fn significant_rows(run: &RunOutput, stage: &str) -> Option<(Vec<String>, Vec<Vec<String>>)> {
+    let t = run
+        .tables
+        .iter()
+        .find(|t| t.owner.is_none() && t.stage == stage)?;
+    let col = t.header.iter().position(|h| h == "significant")?;
+    let rows = t
+        .rows
+        .iter()
+        .filter(|r| r.get(col).is_some_and(|v| v == "true"))
+        .cloned()
+        .collect();
+    Some((t.header.clone(), rows))
+}
+
+/// The cluster table of each contrast stage, significant rows first and marked.
+fn cluster_tables(run: &RunOutput, stats: &[StatArray], max_rows: usize) -> String {
+    let mut out = String::new();
+    for s in stats {
+        let Some(t) = run
+            .tables
+            .iter()
+            .find(|t| t.owner.is_none() && t.stage == s.stage)
+        else {
+            continue;
+        };
+        let col = t.header.iter().position(|h| h == "significant");
+        let is_sig = |r: &Vec<String>| col.is_some_and(|c| r.get(c).is_some_and(|v| v == "true"));
+        let mut rows: Vec<&Vec<String>> = t.rows.iter().filter(|r| is_sig(r)).collect();
+        let n_sig = rows.len();
+        rows.extend(t.rows.iter().filter(|r| !is_sig(r)));
+        let _ = write!(
+            out,
+            "<h3>Clusters of stage {} ({} significant of {})</h3>",
+            esc(&s.stage),
+            n_sig,
+            t.rows.len()
+        );
+        if rows.len() > max_rows {
+            let _ = write!(
+                out,
+                "<p>First {max_rows} of {} rows shown, significant ones first; {} holds all.</p>",
+                rows.len(),
+                esc(&t.path.display().to_string())
+            );
+        }
+        out.push_str("<div class=\"scroll\"><table><tr>");
+        for h in &t.header {
+            let _ = write!(out, "<th>{}</th>", esc(h));
+        }
+        out.push_str("</tr>\n");
+        for (i, r) in rows.iter().take(max_rows).enumerate() {
+            out.push_str(if i < n_sig {
+                "<tr class=\"sig\">"
+            } else {
+                "<tr>"
+            });
+            for cell in r.iter() {
+                let _ = write!(out, "<td>{}</td>", esc(cell));
+            }
+            out.push_str("</tr>\n");
+        }
+        out.push_str("</table></div>\n");
+    }
+    out
 }
 
 fn summary(m: &Manifest, dir: &Path) -> String {
@@ -359,9 +628,24 @@ fn not_drawn(list: &[String]) -> String {
 }
 
 fn figures_of(ctx: &Ctx<'_>, kind: FigureKind, html_dir: &Path) -> String {
+    figures_except(ctx, kind, html_dir, &[])
+}
+
+/// The figures of one kind, without those already shown (the findings' key figures, which
+/// are linked instead).
+fn figures_except(ctx: &Ctx<'_>, kind: FigureKind, html_dir: &Path, shown: &[String]) -> String {
     let mut out = String::new();
     let mut last_source = None;
     for f in ctx.figures.iter().filter(|f| f.info.kind == kind) {
+        if shown.contains(&f.info.id) {
+            let _ = writeln!(
+                out,
+                "<p>“{}”: shown under <a href=\"#fig-{}\">Findings</a>.</p>",
+                esc(&f.info.title),
+                esc(&f.info.id)
+            );
+            continue;
+        }
         if kind != FigureKind::StageGraph && last_source != Some(&f.info.source) {
             let _ = writeln!(out, "<h3>{}</h3>", esc(&heading(&f.info.source)));
             last_source = Some(&f.info.source);
@@ -369,7 +653,7 @@ fn figures_of(ctx: &Ctx<'_>, kind: FigureKind, html_dir: &Path) -> String {
         out.push_str(&figure(f, html_dir));
     }
     if out.is_empty() {
-        out.push_str("<p>No exported array of this kind (see “Not drawn”).</p>\n");
+        out.push_str("<p>None in this report (see “Not drawn” under Provenance).</p>\n");
     }
     out
 }
@@ -378,9 +662,9 @@ fn figures_of(ctx: &Ctx<'_>, kind: FigureKind, html_dir: &Path) -> String {
 fn heading(source: &str) -> String {
     let (owner, stage) = source.split_once('/').unwrap_or((source, ""));
     match owner {
-        super::tf::MEAN_OWNER => format!("Mean over subjects · stage {stage}"),
-        "group" => format!("Group · stage {stage}"),
-        s => format!("Subject {s} · stage {stage}"),
+        super::tf::MEAN_OWNER => format!("Mean over subjects, stage {stage}"),
+        "group" => format!("Group, stage {stage}"),
+        s => format!("Subject {s}, stage {stage}"),
     }
 }
 
@@ -415,7 +699,7 @@ fn figure(f: &Rendered, html_dir: &Path) -> String {
         );
     }
     format!(
-        "<figure id=\"fig-{id}\" data-figure=\"{id}\"><img src=\"data:image/png;base64,{png}\" \
+        "<figure id=\"fig-{id}\" data-figure=\"{id}\"><img loading=\"lazy\" decoding=\"async\" src=\"data:image/png;base64,{png}\" \
          width=\"{w}\" height=\"{h}\" alt=\"{alt}\">\n<figcaption>{cap}<br>{scales}\
          <span class=\"files\">Files: <a href=\"{svg}\">SVG</a><a href=\"{pngf}\">PNG</a></span>\
          </figcaption></figure>\n",

@@ -11,6 +11,7 @@ use super::axes::{self, GridAxis, Scale};
 use super::colour::MapKind;
 use super::cube::{self, NamedRange, Plane};
 use super::input::Manifest;
+use super::quantity::{self, measure_title};
 use super::scene::{HAlign, VAlign, GREY};
 use super::tf::{self, HeatFigure, Loaded, BAR_TOTAL, PLOT_TOP};
 use super::{units_text, AxisInfo, Ctx, Draft, FigureKind, PanelInfo, ReportError};
@@ -30,13 +31,60 @@ pub(crate) fn matrix_figures(
     let slices = slices(ctx, l, manifest);
     let diff = tf::contrast(ctx, &l.cube.conditions, &l.source());
     for m in 0..l.cube.measures.len() {
-        for (label, values) in &slices {
+        let all: Vec<Vec<MatrixPanel>> = slices
+            .iter()
+            .map(|(_, values)| panels_for(l, m, values, diff))
+            .collect();
+        // One scale per measure over every band × window: the figure group.
+        let n_cond = l.cube.conditions.len();
+        let shared = (
+            cube::finite_range(
+                all.iter()
+                    .flat_map(|ps| ps[..n_cond].iter().flat_map(|p| p.by_pair.iter().copied())),
+            ),
+            cube::finite_range(
+                all.iter()
+                    .flat_map(|ps| ps[n_cond..].iter().flat_map(|p| p.by_pair.iter().copied())),
+            ),
+        );
+        // With a difference and several band × window slices, the one where it is largest.
+        let best = diff.filter(|_| slices.len() > 1).map(|_| {
+            let score = |ps: &Vec<MatrixPanel>| {
+                ps[n_cond..]
+                    .iter()
+                    .flat_map(|p| p.by_pair.iter())
+                    .filter(|v| v.is_finite())
+                    .fold(0.0f64, |a, v| a.max(v.abs()))
+            };
+            (0..all.len())
+                .max_by(|&a, &b| score(&all[a]).total_cmp(&score(&all[b])).then(b.cmp(&a)))
+                .unwrap_or(0)
+        });
+        if best.is_some() {
+            ctx.not_drawn.push(format!(
+                "{}: {} matrices of {} other band × window slices (only the one with the \
+                 largest difference is drawn; the tables hold every value)",
+                l.source(),
+                l.cube.measures[m],
+                slices.len() - 1
+            ));
+        }
+        for (i, ((label, _), panels)) in slices.iter().zip(&all).enumerate() {
+            if best.is_some_and(|b| b != i) {
+                continue;
+            }
             let what = format!("{}: matrices, {} {label}", l.source(), l.cube.measures[m]);
-            if !ctx.room_for(&what) {
+            if !ctx.room_for(FigureKind::Matrix, &what) {
                 return Ok(());
             }
-            let panels = panels_for(l, m, values, diff);
-            ctx.emit(matrix_figure(l, m, label, &panels, diff.is_some()))?;
+            let mut d = matrix_figure(l, m, label, panels, diff.is_some(), shared);
+            if best.is_some() {
+                d.caption.push_str(&format!(
+                    " Of the {} band × window slices, this one holds the largest |difference|.",
+                    slices.len()
+                ));
+            }
+            ctx.emit(d)?;
         }
     }
     Ok(())
@@ -87,6 +135,43 @@ fn slices<'a>(ctx: &Ctx<'_>, l: &'a Loaded, manifest: &Manifest) -> Vec<(String,
     out
 }
 
+/// A time–frequency array averaged over the bands and windows matrices use (see [`ranges`]):
+/// the same array on band × window axes, for the head figures.
+pub(crate) fn to_band_window(ctx: &Ctx<'_>, l: &Loaded, manifest: &Manifest) -> Option<Loaded> {
+    let cube = &l.cube;
+    let (GridAxis::Numeric { centres: f, .. }, GridAxis::Numeric { centres: t, .. }) =
+        (&cube.rows, &cube.cols)
+    else {
+        return None;
+    };
+    let (bands, wins) = ranges(ctx, manifest, f, t);
+    let label = |r: &NamedRange, unit: &str| {
+        format!(
+            "{} ({}–{} {unit})",
+            r.name,
+            axes::fmt_num(r.lo),
+            axes::fmt_num(r.hi)
+        )
+    };
+    let (nc, nm, np) = (cube.conditions.len(), cube.measures.len(), cube.pairs.len());
+    let values = ndarray::Array5::from_shape_fn((nc, nm, np, bands.len(), wins.len()), |i| {
+        cube::range_mean(cube, i.0, i.1, i.2, &bands[i.3], &wins[i.4])
+    });
+    let mut c2 = cube.clone();
+    c2.rows = GridAxis::Categories(bands.iter().map(|b| label(b, "Hz")).collect());
+    c2.cols = GridAxis::Categories(wins.iter().map(|w| label(w, "s")).collect());
+    c2.values = values;
+    c2.plane = Plane::BandWindow;
+    Some(Loaded {
+        owner: l.owner.clone(),
+        stage: l.stage.clone(),
+        units: l.units.clone(),
+        cube: c2,
+        baseline: l.baseline.clone(),
+        averaged: l.averaged.clone(),
+    })
+}
+
 /// Bands and windows for a time–frequency array.
 fn ranges(
     ctx: &Ctx<'_>,
@@ -110,9 +195,13 @@ fn ranges(
             from_manifest
         }
     };
+    let (fb, fw) = match &ctx.choice.focus {
+        Some((b, w)) => (b.clone(), w.clone()),
+        None => (whole("all frequencies", f), whole("whole epoch", t)),
+    };
     (
-        pick(&ctx.opts.bands, "bands", whole("all frequencies", f)),
-        pick(&ctx.opts.windows, "windows", whole("whole epoch", t)),
+        pick(&ctx.opts.bands, "bands", fb),
+        pick(&ctx.opts.windows, "windows", fw),
     )
 }
 
@@ -196,6 +285,7 @@ fn matrix_figure(
     slice: &str,
     panels: &[MatrixPanel],
     has_diff: bool,
+    shared: tf::SharedRanges,
 ) -> Draft {
     let chans = channels(&l.cube.pairs);
     let n = chans.len().max(1);
@@ -212,9 +302,16 @@ fn matrix_figure(
     } else {
         label_w + 8.0
     };
-    let height = PLOT_TOP + side + below + 8.0;
+    // Room under the colour bar for its "no value" legend.
+    let height = PLOT_TOP + side + below.max(40.0) + 8.0;
     let measure = &l.cube.measures[m];
-    let title = format!("{} · {} · {} · {}", l.who(), l.stage, measure, slice);
+    let name = measure_title(measure);
+    let changed = l
+        .baseline
+        .as_ref()
+        .map(|b| format!(", {}", b.adjective()))
+        .unwrap_or_default();
+    let title = format!("{name}, every pair: {}{changed}, {slice}", l.who());
     let mut fig = HeatFigure::with_size(
         &title,
         &l.cube.fixed,
@@ -223,19 +320,15 @@ fn matrix_figure(
         label_w,
     );
     let unit = units_text(&l.units);
-    let map = if l.signed {
-        MapKind::Diverging
-    } else {
-        MapKind::Sequential
-    };
+    let map = l.map(m);
     let (cond, diff) = panels.split_at(n_cond);
     group(
         &mut fig,
         &chans,
         l,
         cond,
-        map,
-        &format!("{measure} ({unit})"),
+        quantity::scale_for(map, shared.0),
+        &format!("{name} ({unit})"),
     );
     if let Some(d) = diff.first() {
         group(
@@ -243,20 +336,28 @@ fn matrix_figure(
             &chans,
             l,
             diff,
-            MapKind::Diverging,
+            quantity::scale_for(MapKind::Diverging, shared.1),
             &format!("{} ({unit})", d.label),
         );
     }
     let caption = format!(
-        "{measure} between every pair of channels, {} (stage {}), {slice}. Rows and columns are \
-         channels; grey: no value (the diagonal, or a pair not computed). Colour: {}.{}",
+        "{name} between every pair of channels, {} (stage {}), {slice}. Rows and columns are \
+         channels; hatched: no value (the diagonal, or a pair not computed). Colour: {}; the \
+         scales are shared by every {name} matrix of this array.{}{}",
         l.who(),
         l.stage,
         map.name(),
+        l.baseline
+            .as_ref()
+            .map(|b| b.sentence())
+            .unwrap_or_default()
+            .replace(", marked by a black bar along the time axis", ""),
         tf::mean_note(l)
     );
     let id = format!("matrix-{}-{}-{measure}-{slice}", l.owner, l.stage);
-    fig.finish(FigureKind::Matrix, &id, l.source(), caption)
+    let mut d = fig.finish(FigureKind::Matrix, &id, l.source(), caption);
+    d.measure = Some(measure.clone());
+    d
 }
 
 /// Room for the channel labels beside and under a matrix.
@@ -274,12 +375,10 @@ fn group(
     chans: &[String],
     l: &Loaded,
     panels: &[MatrixPanel],
-    map: MapKind,
+    scale: Scale,
     label: &str,
 ) {
     let range = cube::finite_range(panels.iter().flat_map(|p| p.by_pair.iter().copied()));
-    let (lo, hi) = range.unwrap_or((0.0, 0.0));
-    let scale = Scale::for_range(map, lo, hi);
     let bar = fig.bars.len();
     for p in panels {
         let rect = fig.next_rect(label_width(chans) + 10.0);
@@ -339,5 +438,6 @@ fn matrix_panel(
         colour_bar: bar,
         data_range: cube::finite_range(p.by_pair.iter().copied()),
         peak,
+        lines: Vec::new(),
     }
 }

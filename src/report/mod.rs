@@ -2,9 +2,12 @@
 //! run leaves in its output folder (manifest, exported arrays with their sidecars, tables), so it
 //! depends on no runner internals and can be rebuilt from an archived output folder.
 //!
-//! [`write_report`] reads the folder ([`input`]), draws the figures ([`tf`], [`matrix`],
-//! [`graph`], through [`scene`] and [`axes`]), saves each as SVG and PNG under `figures/` beside
-//! the HTML file, and writes the HTML ([`html`]) with every PNG inlined as a data URI.
+//! [`write_report`] reads the folder ([`input`]), decides what the report is about ([`story`]:
+//! the condition difference and the pairs, each with its reason), draws the figures ([`tmap`],
+//! [`tf`], [`head`], [`matrix`], [`graph`], through [`scene`] and [`axes`], coloured per measure
+//! and quantity by [`quantity`]), saves each as SVG and PNG in a folder named after the HTML
+//! file (`report.html` → `report-figures/`), and writes the HTML ([`html`]): findings first,
+//! provenance folded at the end, every PNG inlined as a data URI so the file stands alone.
 //! The returned [`ReportSummary`] lists each figure with its panels' pixel rectangles, axis
 //! ranges and colour-bar limits, so tests (and users) can check what was drawn.
 
@@ -12,11 +15,16 @@ pub mod axes;
 pub mod colour;
 pub mod cube;
 pub mod graph;
+pub mod head;
 pub mod html;
 pub mod input;
 pub mod matrix;
+pub mod quantity;
 pub mod scene;
+pub mod spec;
+pub mod story;
 pub mod tf;
+pub mod tmap;
 
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -30,16 +38,24 @@ pub use cube::NamedRange;
 /// What to show; [`Default`] gives the report the `report` command writes.
 #[derive(Clone, Debug)]
 pub struct ReportOptions {
-    /// Pairs to draw time–frequency maps for; empty: the strongest few (see `strongest`).
+    /// Pairs to draw time–frequency maps for; empty: the pairs with significant clusters of a
+    /// contrast stage, else the `strongest` pairs by condition difference (see [`story`]).
     pub pairs: Vec<[String; 2]>,
-    /// How many of the strongest pairs (by mean absolute value) to draw per measure.
+    /// How many pairs per measure to draw when they are chosen by the largest difference.
     pub strongest: usize,
+    /// Exported stages to draw; empty: all.
+    pub stages: Vec<String>,
+    /// Condition names in the pipeline's order (the epoch stage's `conditions`).
+    pub condition_order: Vec<String>,
+    /// At most this many figures per section.
+    pub per_section: usize,
     /// Bands for channel × channel matrices of time–frequency arrays; empty: the `bands` of an
     /// `aggregate` stage in the manifest, else the whole frequency range.
     pub bands: Vec<NamedRange>,
     /// Windows for those matrices; empty: the aggregate's `windows`, else the whole time range.
     pub windows: Vec<NamedRange>,
-    /// The condition difference to draw (`[a, b]` gives a − b); `None`: first minus second.
+    /// The condition difference to draw (`[a, b]` gives a − b); `None`: a contrast stage's
+    /// `compare`, else the first two conditions in the pipeline's order.
     pub contrast: Option<[String; 2]>,
     /// At most this many figures (time–frequency and matrix together); the rest are listed.
     pub max_figures: usize,
@@ -53,13 +69,16 @@ impl Default for ReportOptions {
     fn default() -> Self {
         ReportOptions {
             pairs: Vec::new(),
-            strongest: 3,
+            strongest: 1,
+            stages: Vec::new(),
+            condition_order: Vec::new(),
+            per_section: 12,
             bands: Vec::new(),
             windows: Vec::new(),
             contrast: None,
-            max_figures: 80,
+            max_figures: 60,
             max_table_rows: 300,
-            png_scale: 2.0,
+            png_scale: 1.5,
         }
     }
 }
@@ -74,6 +93,12 @@ pub enum FigureKind {
     TimeFrequency,
     /// Channel × channel matrices of one measure, band and window.
     Matrix,
+    /// Mean difference and paired t of a contrast stage, significant points outlined.
+    TMap,
+    /// Connectivity on a head outline, one head per band × window.
+    Head,
+    /// Time–frequency maps of one subject.
+    SubjectMap,
 }
 
 /// One axis of a panel: the data values at the plot rectangle's edges.
@@ -106,6 +131,8 @@ pub struct PanelInfo {
     pub data_range: Option<(f64, f64)>,
     /// Coordinates (x, y) of the largest value drawn (cell centre; indices for categories).
     pub peak: Option<(f64, f64)>,
+    /// Head figures: the pairs drawn as lines, with their values.
+    pub lines: Vec<([String; 2], f64)>,
 }
 
 /// One colour bar.
@@ -148,6 +175,14 @@ pub struct FigureInfo {
     pub panels: Vec<PanelInfo>,
     /// Colour bars.
     pub colour_bars: Vec<ColourBarInfo>,
+    /// The channel pair shown, for figures of one pair.
+    pub pair: Option<[String; 2]>,
+    /// The measure shown, for figures of one measure.
+    pub measure: Option<String>,
+    /// Why this pair was chosen (the caption says the same).
+    pub why: String,
+    /// True when significant points are outlined.
+    pub outlined: bool,
 }
 
 /// What [`write_report`] wrote.
@@ -213,6 +248,7 @@ pub(crate) struct Rendered {
 /// State shared by the figure builders.
 pub(crate) struct Ctx<'a> {
     pub opts: &'a ReportOptions,
+    pub choice: story::Choice,
     pub fig_dir: PathBuf,
     pub figures: Vec<Rendered>,
     pub not_drawn: Vec<String>,
@@ -228,6 +264,10 @@ pub(crate) struct Draft {
     pub scene: scene::Scene,
     pub panels: Vec<PanelInfo>,
     pub colour_bars: Vec<ColourBarInfo>,
+    pub pair: Option<[String; 2]>,
+    pub measure: Option<String>,
+    pub why: String,
+    pub outlined: bool,
 }
 
 impl Ctx<'_> {
@@ -239,14 +279,17 @@ impl Ctx<'_> {
             .count()
     }
 
-    /// True while the figure budget allows another data figure; records the skip otherwise.
-    pub fn room_for(&mut self, what: &str) -> bool {
-        if self.data_figures() < self.opts.max_figures {
+    /// True while the budgets (per section, and in all) allow another figure of `kind`;
+    /// records the skip otherwise.
+    pub fn room_for(&mut self, kind: FigureKind, what: &str) -> bool {
+        let in_section = self.figures.iter().filter(|f| f.info.kind == kind).count();
+        if in_section < self.opts.per_section && self.data_figures() < self.opts.max_figures {
             return true;
         }
         self.not_drawn.push(format!(
-            "{what}: not drawn from here on, the report already holds {} figures (max_figures)",
-            self.opts.max_figures
+            "{what}: not drawn, the section already holds {in_section} figures (at most {} per \
+             section, `figures` in the pipeline's report block; {} in all)",
+            self.opts.per_section, self.opts.max_figures
         ));
         false
     }
@@ -277,6 +320,10 @@ impl Ctx<'_> {
                 png_scale: scale,
                 panels: d.panels,
                 colour_bars: d.colour_bars,
+                pair: d.pair,
+                measure: d.measure,
+                why: d.why,
+                outlined: d.outlined,
             },
             png_base64: base64::engine::general_purpose::STANDARD.encode(bytes),
             caption: d.caption,
@@ -318,8 +365,22 @@ pub(crate) fn units_text(units: &str) -> String {
     }
 }
 
+/// The figure folder of a report file: `report.html` → `report-figures`, so that reports
+/// written to one folder do not share (and overwrite) each other's figures.
+pub fn figures_dir_for(out_file: &Path) -> PathBuf {
+    let parent = out_file
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    let stem = out_file
+        .file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "report".to_string());
+    parent.join(format!("{}-figures", file_safe(&stem)))
+}
+
 /// Writes the report for the run whose output folder is `output_dir` to `out_file`, and its
-/// figures (SVG and PNG) to `figures/` beside `out_file`.
+/// figures (SVG and PNG) to the folder [`figures_dir_for`] names.
 pub fn write_report(
     output_dir: &Path,
     out_file: &Path,
@@ -330,42 +391,50 @@ pub fn write_report(
         .parent()
         .filter(|p| !p.as_os_str().is_empty())
         .unwrap_or(Path::new("."));
-    let fig_dir = parent.join("figures");
+    let fig_dir = figures_dir_for(out_file);
     fs::create_dir_all(&fig_dir).map_err(|e| ReportError::io(&fig_dir, e))?;
     let mut ctx = Ctx {
         opts: options,
+        choice: story::Choice::default(),
         fig_dir: fig_dir.clone(),
         figures: Vec::new(),
         not_drawn: run.skipped.clone(),
     };
     graph::stage_graph(&mut ctx, &run.manifest)?;
-    // Order of drawing, so that the figure budget (max_figures) drops the most numerous
-    // figures: the group aggregate's matrices, the subject means' maps (and their matrices
-    // only when no aggregate gives them), then per-subject matrices, then per-subject maps.
+    let stats = tmap::load_stats(&mut ctx, &run);
     let arrays = tf::load_cubes(&mut ctx, &run);
+    ctx.choice = story::choose(options, &arrays, &stats);
+    // Group level first (what the study found), then each subject.
     let (group, subjects): (Vec<_>, Vec<_>) = arrays.iter().partition(|a| a.group_level());
-    let (means, aggregates): (Vec<_>, Vec<_>) =
-        group.into_iter().partition(|a| !a.averaged.is_empty());
-    let has_aggregate = aggregates
+    let has_aggregate = group
         .iter()
         .any(|a| a.cube.plane == cube::Plane::BandWindow);
-    for a in &aggregates {
-        tf::tf_figures(&mut ctx, a)?;
-        matrix::matrix_figures(&mut ctx, a, &run.manifest)?;
+    for s in &stats {
+        tmap::tmap_figures(&mut ctx, s)?;
     }
-    for a in &means {
-        tf::tf_figures(&mut ctx, a)?;
-        if !has_aggregate {
+    for a in &group {
+        tf::tf_figures(&mut ctx, a, FigureKind::TimeFrequency)?;
+    }
+    for a in &group {
+        if a.cube.plane == cube::Plane::BandWindow {
+            head::head_figures(&mut ctx, a, &run)?;
+        } else if !has_aggregate {
+            if let Some(bw) = matrix::to_band_window(&ctx, a, &run.manifest) {
+                head::head_figures(&mut ctx, &bw, &run)?;
+            }
+        }
+    }
+    for a in &group {
+        if a.cube.plane == cube::Plane::BandWindow || !has_aggregate {
             matrix::matrix_figures(&mut ctx, a, &run.manifest)?;
         }
     }
+    // Per subject: the chosen pairs' maps, subject by subject in turn, so that the section's
+    // budget is shared by every subject rather than spent on the first.
     for a in &subjects {
-        matrix::matrix_figures(&mut ctx, a, &run.manifest)?;
+        tf::tf_figures(&mut ctx, a, FigureKind::SubjectMap)?;
     }
-    for a in &subjects {
-        tf::tf_figures(&mut ctx, a)?;
-    }
-    let (text, sections) = html::page(&run, &ctx, parent);
+    let (text, sections) = html::page(&run, &ctx, parent, &stats);
     fs::write(out_file, text).map_err(|e| ReportError::io(out_file, e))?;
     Ok(ReportSummary {
         html: out_file.to_path_buf(),

@@ -10,10 +10,9 @@ use super::axes::{self, GridAxis, PixelMap, Scale};
 use super::colour::MapKind;
 use super::cube::{self, Cube, Plane};
 use super::input::{self, Exported, RunOutput};
+use super::quantity::{self, measure_title, Baseline};
 use super::scene::{HAlign, Scene, VAlign};
-use super::{
-    graph, units_text, AxisInfo, ColourBarInfo, Ctx, Draft, FigureKind, PanelInfo, ReportError,
-};
+use super::{units_text, AxisInfo, ColourBarInfo, Ctx, Draft, FigureKind, PanelInfo, ReportError};
 
 /// A drawable array: where it came from, its cube, and how to colour it.
 pub(crate) struct Loaded {
@@ -22,8 +21,8 @@ pub(crate) struct Loaded {
     pub stage: String,
     pub units: String,
     pub cube: Cube,
-    /// Signed values: draw with the diverging map, symmetric around zero.
-    pub signed: bool,
+    /// The baseline correction upstream, if any (its values are changes: diverging map).
+    pub baseline: Option<Baseline>,
     /// The subjects averaged, for a mean over subjects made by the report.
     pub averaged: Vec<String>,
 }
@@ -32,6 +31,18 @@ pub(crate) struct Loaded {
 pub(crate) const MEAN_OWNER: &str = "subject-mean";
 
 impl Loaded {
+    /// The colour map of measure `m` (see [`quantity`]).
+    pub fn map(&self, m: usize) -> MapKind {
+        let range = cube::finite_range(
+            self.cube
+                .values
+                .slice(ndarray::s![.., m, .., .., ..])
+                .iter()
+                .copied(),
+        );
+        quantity::map_for(&self.cube.measures[m], self.baseline.is_some(), range)
+    }
+
     /// `sub-01/norm`: the array's place in the output folder.
     pub fn source(&self) -> String {
         format!("{}/{}", self.owner, self.stage)
@@ -60,6 +71,16 @@ impl Loaded {
 pub(crate) fn load_cubes(ctx: &mut Ctx<'_>, run: &RunOutput) -> Vec<Loaded> {
     let mut out = Vec::new();
     for a in &run.arrays {
+        if super::tmap::is_stat(&a.sidecar) {
+            continue;
+        }
+        if !ctx.opts.stages.is_empty() && !ctx.opts.stages.contains(&a.stage) {
+            ctx.not_drawn.push(format!(
+                "{}/{}: not among the report block's stages",
+                a.owner, a.stage
+            ));
+            continue;
+        }
         let Some(plane) = Plane::of(&a.sidecar.dims) else {
             ctx.not_drawn.push(format!(
                 "{}/{} (axes [{}]): not a connectivity array with pair and freq × time or band × window axes",
@@ -70,7 +91,10 @@ pub(crate) fn load_cubes(ctx: &mut Ctx<'_>, run: &RunOutput) -> Vec<Loaded> {
             continue;
         };
         match load_one(a, plane, run) {
-            Ok(l) => out.push(l),
+            Ok(mut l) => {
+                super::story::order_conditions(&mut l.cube, &ctx.opts.condition_order);
+                out.push(l)
+            }
             Err(why) => ctx
                 .not_drawn
                 .push(format!("{}/{}: {why}", a.owner, a.stage)),
@@ -148,7 +172,7 @@ fn mean_of(members: &[&Loaded]) -> Loaded {
         stage: first.stage.clone(),
         units: first.units.clone(),
         cube,
-        signed: members.iter().any(|m| m.signed),
+        baseline: first.baseline.clone(),
         averaged: members.iter().map(|m| m.owner.clone()).collect(),
     }
 }
@@ -157,105 +181,133 @@ fn load_one(a: &Exported, plane: Plane, run: &RunOutput) -> Result<Loaded, Strin
     let values = input::read_values(a)?;
     let cube = cube::build(&a.sidecar, &values, plane)?;
     let units = a.sidecar.units.clone();
-    let both_signs = cube::finite_range(cube.values.iter().copied())
-        .is_some_and(|(lo, hi)| lo < 0.0 && hi > 0.0);
-    let normalised = matches!(units.as_str(), "%" | "dB" | "z");
-    let after_baseline = graph::upstream_ops(&run.manifest, &a.stage)
-        .iter()
-        .any(|op| op == "baseline");
+    let mut baseline = quantity::baseline_of(&run.manifest, &a.stage);
+    if baseline.is_none() && matches!(units.as_str(), "%" | "dB" | "z") {
+        // Normalised units without a recorded baseline stage: still changes, still signed.
+        baseline = Some(Baseline {
+            mode: units.clone(),
+            window: None,
+        });
+    }
     Ok(Loaded {
         owner: a.owner.clone(),
         stage: a.stage.clone(),
         units,
         cube,
-        signed: both_signs || normalised || after_baseline,
+        baseline,
         averaged: Vec::new(),
     })
 }
 
-/// The pairs to draw for measure `m`: the requested ones present in the array, else the
-/// `strongest` pairs by mean absolute value over conditions, frequencies and times.
-pub(crate) fn chosen_pairs(ctx: &mut Ctx<'_>, l: &Loaded, m: usize) -> Vec<usize> {
-    let cube = &l.cube;
-    if !ctx.opts.pairs.is_empty() {
-        let mut found = Vec::new();
-        for want in &ctx.opts.pairs {
-            let hit = cube.pairs.iter().position(|p| {
-                (p[0] == want[0] && p[1] == want[1]) || (p[0] == want[1] && p[1] == want[0])
-            });
-            match hit {
-                Some(i) => found.push(i),
-                None => ctx.not_drawn.push(format!(
-                    "{}: pair {}–{} is not in this array",
-                    l.source(),
-                    want[0],
-                    want[1]
-                )),
-            }
-        }
-        return found;
-    }
-    let mut strength: Vec<(usize, f64)> = (0..cube.pairs.len())
-        .map(|p| (p, mean_abs(cube, m, p)))
-        .filter(|(_, s)| s.is_finite())
-        .collect();
-    // Strongest first; ties keep pair order so the choice is deterministic.
-    strength.sort_by(|a, b| b.1.total_cmp(&a.1).then(a.0.cmp(&b.0)));
-    strength
-        .into_iter()
-        .take(ctx.opts.strongest)
-        .map(|(p, _)| p)
-        .collect()
-}
-
-fn mean_abs(cube: &Cube, m: usize, p: usize) -> f64 {
-    let (mut sum, mut n) = (0.0, 0usize);
-    for c in 0..cube.conditions.len() {
-        for v in cube.values.slice(ndarray::s![c, m, p, .., ..]).iter() {
-            if v.is_finite() {
-                sum += v.abs();
-                n += 1;
-            }
-        }
-    }
-    if n == 0 {
-        f64::NAN
-    } else {
-        sum / n as f64
-    }
-}
-
-/// The (a, b) condition indices of the difference to draw, if there are two conditions to use.
+/// The (a, b) condition indices of the report's difference, if this array has both.
 pub(crate) fn contrast(
     ctx: &mut Ctx<'_>,
     conditions: &[String],
     source: &str,
 ) -> Option<(usize, usize)> {
-    if let Some([a, b]) = &ctx.opts.contrast {
-        let ia = conditions.iter().position(|c| c == a);
-        let ib = conditions.iter().position(|c| c == b);
-        return match (ia, ib) {
-            (Some(ia), Some(ib)) => Some((ia, ib)),
-            _ => {
-                ctx.not_drawn.push(format!(
-                    "{source}: contrast {a} − {b} not drawn, its conditions are [{}]",
-                    conditions.join(", ")
-                ));
-                None
-            }
-        };
+    let [a, b] = ctx.choice.contrast.clone()?;
+    let ia = conditions.iter().position(|c| *c == a);
+    let ib = conditions.iter().position(|c| *c == b);
+    match (ia, ib) {
+        (Some(ia), Some(ib)) => Some((ia, ib)),
+        _ => {
+            ctx.not_drawn.push(format!(
+                "{source}: the difference {a} − {b} is not drawn, its conditions are [{}]",
+                conditions.join(", ")
+            ));
+            None
+        }
     }
-    (conditions.len() >= 2).then_some((0, 1))
 }
 
-/// Draws the time–frequency figures of one array.
-pub(crate) fn tf_figures(ctx: &mut Ctx<'_>, l: &Loaded) -> Result<(), ReportError> {
+/// The chosen pairs present in this array for measure `m`, with why each was chosen.
+pub(crate) fn picked_pairs(ctx: &mut Ctx<'_>, l: &Loaded, m: usize) -> Vec<(usize, String)> {
+    let mut out: Vec<(usize, String)> = Vec::new();
+    let picks: Vec<_> = ctx
+        .choice
+        .for_measure(&l.cube.measures[m])
+        .cloned()
+        .collect();
+    for pk in picks {
+        match super::tmap::find_pair(&l.cube.pairs, &pk.pair) {
+            Some(i) if !out.iter().any(|o| o.0 == i) => out.push((i, pk.why)),
+            Some(_) => {}
+            None => ctx.not_drawn.push(format!(
+                "{}: pair {}–{} is not in this array",
+                l.source(),
+                pk.pair[0],
+                pk.pair[1]
+            )),
+        }
+    }
+    out
+}
+
+/// The value ranges that a figure group's condition panels and difference panels share.
+pub(crate) type SharedRanges = (Option<(f64, f64)>, Option<(f64, f64)>);
+
+/// Range over the chosen pairs' condition panels and difference panels of one measure: the
+/// scales that the figures of this measure share.
+fn shared_ranges(
+    l: &Loaded,
+    m: usize,
+    pairs: &[(usize, String)],
+    diff: Option<(usize, usize)>,
+) -> SharedRanges {
+    let v = &l.cube.values;
+    let conds = cube::finite_range(
+        pairs
+            .iter()
+            .flat_map(|(p, _)| v.slice(ndarray::s![.., m, *p, .., ..]).to_owned())
+            .collect::<Vec<_>>()
+            .into_iter(),
+    );
+    let diffs = diff.and_then(|(a, b)| {
+        cube::finite_range(
+            pairs
+                .iter()
+                .flat_map(|(p, _)| {
+                    let d = &v.slice(ndarray::s![a, m, *p, .., ..])
+                        - &v.slice(ndarray::s![b, m, *p, .., ..]);
+                    d.into_iter()
+                })
+                .collect::<Vec<_>>()
+                .into_iter(),
+        )
+    });
+    (conds, diffs)
+}
+
+/// Draws the time–frequency figures of one array: the chosen pairs, per measure.
+pub(crate) fn tf_figures(
+    ctx: &mut Ctx<'_>,
+    l: &Loaded,
+    kind: FigureKind,
+) -> Result<(), ReportError> {
     if l.cube.plane != Plane::FreqTime {
         return Ok(());
     }
     let diff = contrast(ctx, &l.cube.conditions, &l.source());
+    // A subject's own maps: the first chosen pair, in its measure, one figure per subject.
+    let first = ctx.choice.pairs.first().cloned();
     for m in 0..l.cube.measures.len() {
-        for p in chosen_pairs(ctx, l, m) {
+        let mut pairs = picked_pairs(ctx, l, m);
+        if kind == FigureKind::SubjectMap {
+            let Some(top) = &first else { return Ok(()) };
+            if top
+                .measure
+                .as_ref()
+                .is_some_and(|tm| *tm != l.cube.measures[m])
+                || (top.measure.is_none() && m > 0)
+            {
+                continue;
+            }
+            pairs.retain(|(p, _)| {
+                super::tmap::find_pair(&[l.cube.pairs[*p].clone()], &top.pair).is_some()
+            });
+        }
+        let shared = shared_ranges(l, m, &pairs, diff);
+        for (p, why) in pairs {
             let what = format!(
                 "{}: time–frequency maps, {} {}–{}",
                 l.source(),
@@ -263,10 +315,11 @@ pub(crate) fn tf_figures(ctx: &mut Ctx<'_>, l: &Loaded) -> Result<(), ReportErro
                 l.cube.pairs[p][0],
                 l.cube.pairs[p][1]
             );
-            if !ctx.room_for(&what) {
+            if !ctx.room_for(kind, &what) {
                 return Ok(());
             }
-            let draft = tf_figure(l, m, p, diff);
+            let mut draft = tf_figure(l, m, p, diff, shared, &why);
+            draft.kind = kind;
             ctx.emit(draft)?;
         }
     }
@@ -289,9 +342,17 @@ pub(crate) struct PanelData<'a> {
     pub value: Box<dyn Fn(usize, usize) -> f64 + 'a>,
 }
 
-fn tf_figure(l: &Loaded, m: usize, p: usize, diff: Option<(usize, usize)>) -> Draft {
+fn tf_figure(
+    l: &Loaded,
+    m: usize,
+    p: usize,
+    diff: Option<(usize, usize)>,
+    shared: SharedRanges,
+    why: &str,
+) -> Draft {
     let cube = &l.cube;
     let measure = &cube.measures[m];
+    let name = measure_title(measure);
     let pair = &cube.pairs[p];
     let conds: Vec<PanelData<'_>> = (0..cube.conditions.len())
         .map(|c| PanelData {
@@ -306,26 +367,28 @@ fn tf_figure(l: &Loaded, m: usize, p: usize, diff: Option<(usize, usize)>) -> Dr
         }),
     });
     let unit = units_text(&l.units);
-    let title = format!(
-        "{} · {} · {} · {}–{}",
-        l.who(),
-        l.stage,
-        measure,
-        pair[0],
-        pair[1]
-    );
+    let changed = l
+        .baseline
+        .as_ref()
+        .map(|b| format!(", {}", b.adjective()))
+        .unwrap_or_default();
+    let title = format!("{name}, {}–{}: {}{changed}", pair[0], pair[1], l.who());
     let mut fig = HeatFigure::new(
         &title,
         &cube.fixed,
         conds.len() + usize::from(diff_panel.is_some()),
         2,
     );
-    let map = if l.signed {
-        MapKind::Diverging
-    } else {
-        MapKind::Sequential
-    };
-    fig.group(cube, &conds, map, &format!("{measure} ({unit})"), &l.units);
+    fig.baseline = l.baseline.as_ref().and_then(|b| b.window);
+    let map = l.map(m);
+    fig.group(
+        cube,
+        &conds,
+        map,
+        &format!("{name} ({unit})"),
+        &l.units,
+        Some(quantity::scale_for(map, shared.0)),
+    );
     if let Some(d) = &diff_panel {
         let label = format!("{} ({unit})", d.label);
         fig.group(
@@ -334,6 +397,7 @@ fn tf_figure(l: &Loaded, m: usize, p: usize, diff: Option<(usize, usize)>) -> Dr
             MapKind::Diverging,
             &label,
             &l.units,
+            Some(quantity::scale_for(MapKind::Diverging, shared.1)),
         );
     }
     let diff_note = if diff_panel.is_some() {
@@ -341,17 +405,19 @@ fn tf_figure(l: &Loaded, m: usize, p: usize, diff: Option<(usize, usize)>) -> Dr
     } else {
         ""
     };
-    let caption = format!(
-        "{measure} between {} and {}, {} (stage {}), by time (s, 0 = event onset, dashed) and \
-         frequency (Hz, log scale). Colour: {}.{diff_note}{}",
+    let caption =
+        format!(
+        "{name} between {} and {}, {}, by time (s, 0 = event onset, dashed) and frequency (Hz, \
+         log scale). Pair shown because: {why}. Colour: {}; the scales are shared by every {name} \
+         map of this array.{diff_note}{}{}",
         pair[0],
         pair[1],
         l.who(),
-        l.stage,
         map.name(),
+        l.baseline.as_ref().map(|b| b.sentence()).unwrap_or_default(),
         mean_note(l)
     );
-    fig.finish(
+    let mut d = fig.finish(
         FigureKind::TimeFrequency,
         &format!(
             "tf-{}-{}-{measure}-{}-{}",
@@ -359,7 +425,11 @@ fn tf_figure(l: &Loaded, m: usize, p: usize, diff: Option<(usize, usize)>) -> Dr
         ),
         l.source(),
         caption,
-    )
+    );
+    d.pair = Some(pair.clone());
+    d.measure = Some(measure.clone());
+    d.why = why.to_string();
+    d
 }
 
 /// Says how a subject mean was made (empty for arrays read as they are).
@@ -368,8 +438,11 @@ pub(crate) fn mean_note(l: &Loaded) -> String {
         return String::new();
     }
     format!(
-        " Mean over subjects {} computed by the report, cell by cell (NaN cells left out).",
-        l.averaged.join(", ")
+        " Mean over the {} subjects {} (n = {}), computed by the report cell by cell (NaN cells \
+         left out).",
+        l.averaged.len(),
+        l.averaged.join(", "),
+        l.averaged.len()
     )
 }
 
@@ -382,6 +455,8 @@ pub(crate) struct HeatFigure {
     x: f64,
     /// Plot size of each panel (matrices set their own).
     pub plot: (f64, f64),
+    /// A baseline window (s) to mark along the time axis of time–frequency panels.
+    pub baseline: Option<(f64, f64)>,
 }
 
 impl HeatFigure {
@@ -428,6 +503,7 @@ impl HeatFigure {
             bars: Vec::new(),
             x: left,
             plot,
+            baseline: None,
         }
     }
 
@@ -439,6 +515,7 @@ impl HeatFigure {
         map: MapKind,
         bar_label: &str,
         units: &str,
+        shared: Option<Scale>,
     ) {
         let (nr, nc) = (cube.rows.len(), cube.cols.len());
         let range = cube::finite_range(
@@ -446,13 +523,15 @@ impl HeatFigure {
                 .iter()
                 .flat_map(|pd| (0..nr).flat_map(move |r| (0..nc).map(move |c| (pd.value)(r, c)))),
         );
-        let (lo, hi) = range.unwrap_or((0.0, 0.0));
-        let scale = Scale::for_range(map, lo, hi);
+        let scale = shared.unwrap_or_else(|| quantity::scale_for(map, range));
         let bar = self.bars.len();
         for pd in panels {
             let first = self.panels.is_empty();
             let rect = self.next_rect(GAP);
             let info = tf_panel(&mut self.scene, rect, cube, pd, &scale, bar, first);
+            if let Some((b0, b1)) = self.baseline {
+                mark_baseline(&mut self.scene, rect, cube, (b0, b1));
+            }
             self.panels.push(info);
         }
         self.bar(scale, bar_label, units, range);
@@ -478,16 +557,6 @@ impl HeatFigure {
         self.x += BAR_GAP + BAR_W + BAR_ROOM;
     }
 
-    /// Reserves room for the next panel after a gap of `gap` and returns its plot rectangle.
-    pub fn next_rect(&mut self, gap: f64) -> [f64; 4] {
-        if !self.panels.is_empty() {
-            self.x += gap;
-        }
-        let rect = [self.x, TOP, self.x + self.plot.0, TOP + self.plot.1];
-        self.x += self.plot.0;
-        rect
-    }
-
     /// The figure as a draft.
     pub fn finish(self, kind: FigureKind, id: &str, source: String, caption: String) -> Draft {
         Draft {
@@ -499,8 +568,36 @@ impl HeatFigure {
             scene: self.scene,
             panels: self.panels,
             colour_bars: self.bars,
+            pair: None,
+            measure: None,
+            why: String::new(),
+            outlined: false,
         }
     }
+
+    /// Reserves room for the next panel after a gap of `gap` and returns its plot rectangle.
+    pub fn next_rect(&mut self, gap: f64) -> [f64; 4] {
+        if !self.panels.is_empty() {
+            self.x += gap;
+        }
+        let rect = [self.x, TOP, self.x + self.plot.0, TOP + self.plot.1];
+        self.x += self.plot.0;
+        rect
+    }
+}
+
+/// A black bar along the bottom of a time–frequency panel over the baseline window.
+fn mark_baseline(scene: &mut Scene, rect: [f64; 4], cube: &Cube, (b0, b1): (f64, f64)) {
+    let GridAxis::Numeric { centres, .. } = &cube.cols else {
+        return;
+    };
+    let edges = cube.cols.edges();
+    let (lo, hi) = (edges[0], edges[edges.len() - 1]);
+    if centres.is_empty() || hi <= lo {
+        return;
+    }
+    let px = |t: f64| rect[0] + (t.clamp(lo, hi) - lo) / (hi - lo) * (rect[2] - rect[0]);
+    scene.fill([px(b0), rect[3] - 4.0, px(b1), rect[3]], [0, 0, 0]);
 }
 
 /// Top of the plot rectangles.
@@ -600,5 +697,6 @@ pub(crate) fn panel_info(
                 .map(|(r, c)| value(r, c)),
         ),
         peak: best.map(|(_, r, c)| (centre(&cube.cols, c), centre(&cube.rows, r))),
+        lines: Vec::new(),
     }
 }

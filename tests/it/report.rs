@@ -5,8 +5,8 @@
 //! crate (PNG specification, ISO/IEC 15948), the SVG files parse as XML with `roxmltree`, the
 //! colour-bar limits equal the range of the arrays as written here, and the planted blob is
 //! found in the decoded pixels by its colour: the top entry of the published viridis table
-//! (mpl-colormaps, CC0) for sequential maps, and the published warm end colour of Moreland's
-//! cool–warm map (Moreland 2009) for diverging ones.
+//! (mpl-colormaps, CC0) for sequential maps, and the published red end of ColorBrewer's 11-class
+//! RdBu table (colorbrewer2.org) for diverging ones.
 //!
 //! Set `PHASEWISE_REPORT_KEEP=DIR` to keep the rendered report in DIR (the browser check script,
 //! tests/browser-check.sh, uses that).
@@ -281,11 +281,13 @@ fn render(f: &Fixture) -> ReportSummary {
 }
 
 fn copy_report(html: &Path, to: &Path) {
-    fs::create_dir_all(to.join("figures")).unwrap();
-    fs::copy(html, to.join("report.html")).unwrap();
-    for e in fs::read_dir(html.parent().unwrap().join("figures")).unwrap() {
+    let figs = phasewise::report::figures_dir_for(html);
+    let to_figs = to.join(figs.file_name().unwrap());
+    fs::create_dir_all(&to_figs).unwrap();
+    fs::copy(html, to.join(html.file_name().unwrap())).unwrap();
+    for e in fs::read_dir(&figs).unwrap() {
         let p = e.unwrap().path();
-        fs::copy(&p, to.join("figures").join(p.file_name().unwrap())).unwrap();
+        fs::copy(&p, to_figs.join(p.file_name().unwrap())).unwrap();
     }
 }
 
@@ -308,14 +310,20 @@ fn decode_png(bytes: &[u8]) -> (u32, u32, Vec<u8>) {
     (info.width, info.height, rgb)
 }
 
+/// The time–frequency figure (group or subject) of one array, measure and pair (`a–b`), found
+/// by what the summary says it shows.
 fn tf_figure<'a>(s: &'a ReportSummary, source: &str, measure: &str, pair: &str) -> &'a FigureInfo {
     s.figures
         .iter()
         .find(|f| {
-            f.kind == FigureKind::TimeFrequency
+            matches!(f.kind, FigureKind::TimeFrequency | FigureKind::SubjectMap)
                 && f.source == source
-                && f.title.contains(&format!("· {measure} ·"))
-                && f.title.ends_with(pair)
+                && f.measure.as_deref() == Some(measure)
+                && f.pair
+                    .as_ref()
+                    .map(|p| format!("{}–{}", p[0], p[1]))
+                    .as_deref()
+                    == Some(pair)
         })
         .unwrap_or_else(|| panic!("no {measure} {pair} figure of {source}"))
 }
@@ -382,23 +390,34 @@ fn pixel_to_tf(fig: &FigureInfo, panel: usize, (px, py): (f64, f64)) -> (f64, f6
     (t, f)
 }
 
-/// The report's sections, in order.
-const SECTIONS: [&str; 9] = [
+/// The report's sections, in order: findings first, provenance last.
+const SECTIONS: [&str; 14] = [
     "caution",
+    "contents",
+    "findings",
+    "statistics",
+    "tf-maps",
+    "heads",
+    "matrices",
+    "subjects",
+    "tables",
     "summary",
     "stages",
     "epochs",
     "warnings",
-    "tf-maps",
-    "matrices",
-    "tables",
     "not-drawn",
 ];
 
 /// Top entry of the published viridis table (0.993248, 0.906157, 0.143936) in 8 bits.
 const VIRIDIS_TOP: [u8; 3] = [253, 231, 37];
-/// Warm end of Moreland's cool–warm map, as published.
-const MORELAND_WARM: [u8; 3] = [180, 4, 38];
+/// Bottom entry of the published viridis table (0.267004, 0.004874, 0.329415) in 8 bits.
+const VIRIDIS_BOTTOM: [u8; 3] = [68, 1, 84];
+/// Red end of ColorBrewer's 11-class RdBu table (#67001f), the diverging map's top.
+const RDBU_RED: [u8; 3] = [0x67, 0x00, 0x1f];
+/// The "no value" hatch's stripe colour (src/report/colour.rs NO_VALUE_INK).
+const HATCH: [u8; 3] = [140, 140, 140];
+/// Centre of ColorBrewer's 11-class RdBu table (#f7f7f7): the diverging map's zero.
+const RDBU_ZERO: [u8; 3] = [0xf7, 0xf7, 0xf7];
 
 /// Every inline image decodes as a PNG; every linked file exists, PNGs decode and SVGs parse as
 /// XML with an `<svg>` root; one inline image and two links per figure of the summary.
@@ -416,11 +435,13 @@ fn check_images(html: &str, html_path: &Path, s: &ReportSummary) {
         let (w, h, _) = decode_png(&bytes);
         assert!(w > 100 && h > 100);
     }
-    // Linked files: each exists; PNGs decode, SVGs parse as XML with an <svg> root.
+    // Linked files: each exists; PNGs decode, SVGs parse as XML with an <svg> root. (Links
+    // within the page, `#…`, are the table of contents.)
     let hrefs: Vec<&str> = html
         .split("href=\"")
         .skip(1)
         .map(|r| &r[..r.find('"').unwrap()])
+        .filter(|h| !h.starts_with('#'))
         .collect();
     assert_eq!(hrefs.len(), 2 * s.figures.len());
     for h in hrefs {
@@ -442,17 +463,7 @@ fn report_has_every_section_and_every_image_decodes() {
     let f = fixture();
     let s = render(&f);
     let html = fs::read_to_string(&f.html).unwrap();
-    for id in [
-        "caution",
-        "summary",
-        "stages",
-        "epochs",
-        "warnings",
-        "tf-maps",
-        "matrices",
-        "tables",
-        "not-drawn",
-    ] {
+    for id in SECTIONS {
         assert!(
             html.contains(&format!("<section id=\"{id}\">")),
             "section {id} missing"
@@ -492,7 +503,11 @@ fn colour_bars_span_the_arrays_range() {
     let ((lo, hi), (dlo, dhi)) = ranges(&f.sync, 0, p);
     let bar = &fig.colour_bars[0];
     assert_eq!(bar.map, MapKind::Sequential);
-    assert_eq!((bar.vmin, bar.vmax), (lo, hi));
+    // PLV is never negative (Lachaux et al. 1999): its scale starts at 0, not at the data's
+    // smallest value, and ends at the largest.
+    assert!(lo > 0.1, "the fixture's raw plv stays above 0.1 ({lo})");
+    assert_eq!((bar.vmin, bar.vmax), (0.0, hi));
+    assert_eq!(bar.data_range, Some((lo, hi)));
     // The difference is signed: diverging, symmetric around zero.
     let diff = &fig.colour_bars[1];
     assert_eq!(diff.map, MapKind::Diverging);
@@ -533,8 +548,8 @@ fn planted_blob_is_drawn_where_it_was_planted() {
     // The blob pair is among the strongest pairs picked by default, for both arrays.
     for (source, colour) in [
         ("sub-02/sync", VIRIDIS_TOP),
-        ("sub-01/norm", MORELAND_WARM),
-        ("subject-mean/norm", MORELAND_WARM),
+        ("sub-01/norm", RDBU_RED),
+        ("subject-mean/norm", RDBU_RED),
     ] {
         let fig = tf_figure(&s, source, "plv", "Fz–Pz");
         assert_eq!(fig.panels[0].label, "A");
@@ -556,7 +571,9 @@ fn planted_blob_is_drawn_where_it_was_planted() {
         .figures
         .iter()
         .find(|f| {
-            f.kind == FigureKind::Matrix && f.source == "group/group" && f.title.contains("· plv ·")
+            f.kind == FigureKind::Matrix
+                && f.source == "group/group"
+                && f.measure.as_deref() == Some("plv")
         })
         .expect("group plv matrix");
     let labels: Vec<&str> = m.panels.iter().map(|p| p.label.as_str()).collect();
@@ -564,13 +581,105 @@ fn planted_blob_is_drawn_where_it_was_planted() {
     // Every pixel in the strongest colour lies in the Fz–Pz cell or its mirror Pz–Fz.
     let r = m.panels[0].rect;
     let n = CHANNELS.len() as f64;
-    for (px, py) in best_pixels(m, 0, MORELAND_WARM) {
+    for (px, py) in best_pixels(m, 0, RDBU_RED) {
         let col = ((px / m.png_scale - r[0]) / (r[2] - r[0]) * n) as usize;
         let row = ((py / m.png_scale - r[1]) / (r[3] - r[1]) * n) as usize;
         let mut hit = [CHANNELS[row], CHANNELS[col]];
         hit.sort();
         assert_eq!(hit, ["Fz", "Pz"]);
     }
+}
+
+/// Euclidean distance of two 8-bit colours.
+fn dist(a: [u8; 3], b: [u8; 3]) -> f64 {
+    (0..3)
+        .map(|k| (f64::from(a[k]) - f64::from(b[k])).powi(2))
+        .sum::<f64>()
+        .sqrt()
+}
+
+/// The pixels of a PNG inside `rect` (layout pixels), `inset` PNG pixels in from each edge.
+fn pixels_in(fig: &FigureInfo, rect: [f64; 4], inset: usize) -> Vec<[u8; 3]> {
+    let (w, _, rgb) = decode_png(&fs::read(&fig.png).unwrap());
+    let s = fig.png_scale;
+    let mut out = Vec::new();
+    for y in (rect[1] * s) as usize + inset..(rect[3] * s) as usize - inset {
+        for x in (rect[0] * s) as usize + inset..(rect[2] * s) as usize - inset {
+            let i = 3 * (y * w as usize + x);
+            out.push([rgb[i], rgb[i + 1], rgb[i + 2]]);
+        }
+    }
+    out
+}
+
+#[test]
+fn raw_plv_is_drawn_sequential_from_zero() {
+    let f = fixture();
+    let s = render(&f);
+    let fig = tf_figure(&s, "sub-02/sync", "plv", "Fz–Pz");
+    let ((lo, hi), _) = ranges(&f.sync, 0, blob_pair());
+    // From the pixels: on a scale from 0, the smallest value (lo / hi of the way up) is far from
+    // the map's bottom colour; a scale from the data's minimum would paint it exactly there.
+    let px = pixels_in(fig, fig.panels[0].rect, 2);
+    let nearest = px
+        .iter()
+        .map(|&c| dist(c, VIRIDIS_BOTTOM))
+        .fold(f64::MAX, f64::min);
+    assert!(
+        lo / hi > 0.15 && nearest > 30.0,
+        "a cell is painted near viridis' bottom ({nearest:.1} away) though the data start at {lo}"
+    );
+    // And the largest value is painted in viridis' top colour.
+    let top = px
+        .iter()
+        .map(|&c| dist(c, VIRIDIS_TOP))
+        .fold(f64::MAX, f64::min);
+    assert!(top < 3.0, "no cell in viridis' top colour ({top:.1} away)");
+}
+
+#[test]
+fn no_value_cells_are_hatched_unlike_zero() {
+    let f = fixture();
+    let s = render(&f);
+    let m = s
+        .figures
+        .iter()
+        .find(|f| f.kind == FigureKind::Matrix && f.source == "group/group")
+        .expect("group matrix");
+    let n = CHANNELS.len();
+    let r = m.panels[0].rect;
+    let (cw, ch) = ((r[2] - r[0]) / n as f64, (r[3] - r[1]) / n as f64);
+    let cell = |i: usize, j: usize| {
+        [
+            r[0] + j as f64 * cw,
+            r[1] + i as f64 * ch,
+            r[0] + (j + 1) as f64 * cw,
+            r[1] + (i + 1) as f64 * ch,
+        ]
+    };
+    let hatched = |px: &[[u8; 3]]| {
+        px.iter().filter(|&&c| dist(c, HATCH) < 30.0).count() as f64 / px.len() as f64
+    };
+    for i in 0..n {
+        for j in 0..n {
+            let px = pixels_in(m, cell(i, j), 3);
+            let share = hatched(&px);
+            if i == j {
+                // The diagonal has no value: stripes of the hatch colour, which is neither the
+                // map's zero (#f7f7f7) nor any other colour of it (colour.rs tests).
+                assert!(share > 0.08, "diagonal cell {i}: {share:.2} hatched");
+                assert!(dist(HATCH, RDBU_ZERO) > 100.0);
+            } else {
+                assert!(
+                    share == 0.0,
+                    "cell ({i}, {j}) with a value is hatched ({share:.2})"
+                );
+            }
+        }
+    }
+    // The legend says so: the page explains the hatch.
+    let html = fs::read_to_string(&f.html).unwrap();
+    assert!(html.contains("hatched: no value"));
 }
 
 #[test]
@@ -624,11 +733,28 @@ stages:
     input: norm
     params: { over: subjects, bands: { theta: [4, 8] }, windows: { late: [0.3, 0.8] } }
     export: true
+  stats:
+    op: contrast
+    input: norm
+    params:
+      over: subjects
+      compare: [left, right]
+      measure: [wpli]
+      pairs: all
+      times: [0.0, 1.1]
+      correction: cluster
+      permutations: 4096
+      alpha: 0.05
+      seed: 1
+    export: true
 "#;
 
 /// End to end: simulate the demo study, run the pipeline with the `phasewise` binary, render
 /// the report, and find the planted coupling (read from the simulator's truth.json, not from
-/// the report) where it was planted.
+/// the report) where it was planted: in the maps, outlined as a significant cluster of the
+/// contrast stage (six subjects: 2^6 = 64 sign-flip patterns, so the smallest possible p is
+/// 1/64 < 0.05; with four it would be 1/16 and nothing could be significant), and as the
+/// strongest line on the head.
 #[test]
 fn demo_report_shows_the_planted_coupling() {
     use assert_cmd::Command;
@@ -636,7 +762,7 @@ fn demo_report_shows_the_planted_coupling() {
     let dir = tmp.path();
     Command::cargo_bin("phasewise")
         .unwrap()
-        .args(["simulate", "--subjects", "4", "--out"])
+        .args(["simulate", "--subjects", "6", "--out"])
         .arg(dir.join("demo-data"))
         .assert()
         .success();
@@ -684,7 +810,8 @@ fn demo_report_shows_the_planted_coupling() {
     // wPLI: the coupling is lagged, and the imaginary part ignores the zero-lag mixing.
     let fig = tf_figure(&s, "subject-mean/norm", "wpli", &pair);
     assert_eq!(fig.panels[0].label, "left");
-    let (t, f) = pixel_to_tf(fig, 0, nearest_pixel(fig, 0, MORELAND_WARM));
+    assert!(fig.why.contains("significant cluster"), "{}", fig.why);
+    let (t, f) = pixel_to_tf(fig, 0, nearest_pixel(fig, 0, RDBU_RED));
     assert!(
         t >= w0 && t <= w1,
         "strongest wpli at t = {t}, planted in [{w0}, {w1}] s"
@@ -699,6 +826,61 @@ fn demo_report_shows_the_planted_coupling() {
         "strongest wpli at f = {f}, planted at {freq} Hz (σ_f = {sigma_f:.2} Hz)"
     );
     println!("planted coupling {pair}: strongest colour of the mean wpli map at t = {t:.3} s, f = {f:.2} Hz");
+
+    // The t-map of the planted pair, outlined: its black outline pixels (the colour nothing
+    // else in a t-map uses) lie around the planted window and frequency.
+    let tm = s
+        .figures
+        .iter()
+        .find(|f| {
+            f.kind == FigureKind::TMap
+                && f.pair.as_ref().map(|p| format!("{}–{}", p[0], p[1])) == Some(pair.clone())
+        })
+        .expect("t-map of the planted pair");
+    assert!(tm.outlined, "the planted pair has no significant cluster");
+    let black = best_pixels(tm, 1, [0, 0, 0]);
+    let (n, (st, sf)) = (
+        black.len() as f64,
+        black.iter().fold((0.0, 0.0), |a, &p| {
+            let (t, f) = pixel_to_tf(tm, 1, p);
+            (a.0 + t, a.1 + f.ln())
+        }),
+    );
+    let (tc, fc) = (st / n, (sf / n).exp());
+    assert!(
+        tc >= w0 && tc <= w1,
+        "outline centred at t = {tc}, planted in [{w0}, {w1}] s"
+    );
+    assert!(
+        (fc - freq).abs() <= 2.0 * sigma_f,
+        "outline centred at f = {fc}, planted at {freq} Hz"
+    );
+    // The findings name it.
+    let findings = &html[html.find("<section id=\"findings\">").unwrap()..];
+    let findings = &findings[..findings.find("</section>").unwrap()];
+    assert!(
+        findings.contains("Significant: wPLI") && findings.contains(&pair),
+        "findings: {findings}"
+    );
+
+    // On the head (theta × late, where the coupling was planted), its line is the strongest.
+    let head = s
+        .figures
+        .iter()
+        .find(|f| f.kind == FigureKind::Head && f.measure.as_deref() == Some("wpli"))
+        .expect("wpli head figure");
+    let lines = &head.panels[0].lines;
+    let strongest = lines
+        .iter()
+        .max_by(|a, b| a.1.abs().total_cmp(&b.1.abs()))
+        .expect("lines on the head");
+    assert_eq!(format!("{}–{}", strongest.0[0], strongest.0[1]), pair);
+
+    // A page that opens fast: under 5 MB with every figure inlined.
+    let size = fs::metadata(&html_path).unwrap().len();
+    assert!(size < 5_000_000, "the page is {size} bytes");
+    // The figures lie in a folder named after the report file.
+    assert!(s.figures_dir.ends_with("report-figures"));
     browser_check(&html_path);
 }
 
