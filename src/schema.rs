@@ -51,6 +51,17 @@ pub fn pipeline(ops: &[&dyn DynOp]) -> Value {
     });
     let mut top = properties("", TOP_KEYS, &names);
     top.insert("data".into(), data);
+    let block = generator
+        .subschema_for::<crate::report::spec::ReportSpec>()
+        .to_value();
+    top.insert(
+        "report".into(),
+        json!({
+            "description": "Write the HTML report after the run: `true`, or a block choosing \
+                what it shows.",
+            "oneOf": [{ "type": "boolean" }, block],
+        }),
+    );
     top.insert(
         "stages".into(),
         json!({
@@ -93,10 +104,9 @@ fn key_schema(section: &str, key: &str, ops: &[Value]) -> Option<Value> {
     Some(match (section, key) {
         ("", "name") => text("Free text; appears in the manifest."),
         ("", "output") => text("The results folder, relative to this file."),
-        ("", "report") => flag("Write the HTML report after the run."),
-        // `data` and `stages` are filled in by `pipeline` from their own sections; a
+        // `data`, `stages` and `report` are filled in by `pipeline` from their own types; a
         // placeholder keeps the key listed here.
-        ("", "data" | "stages") => json!({}),
+        ("", "data" | "stages" | "report") => json!({}),
         ("data", "recordings") => text("A glob of the recordings, relative to this file."),
         ("data", "events") => json!({
             "enum": ["sidecar", "annotations"],

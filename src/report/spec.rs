@@ -21,7 +21,8 @@ use crate::pipeline::resolve::ResolvedPipeline;
 use crate::pipeline::yaml::{Node, NodeKind};
 
 /// The `report:` block as written.
-#[derive(Clone, Debug, Default, PartialEq, Deserialize)]
+#[derive(Clone, Debug, Default, PartialEq, Deserialize, phasewise_stages::schemars::JsonSchema)]
+#[schemars(crate = "phasewise_stages::schemars")]
 #[serde(deny_unknown_fields)]
 pub struct ReportSpec {
     /// Channel pairs to draw.
