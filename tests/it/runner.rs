@@ -906,11 +906,10 @@ fn data_channels_and_rate_are_read_keyed_and_recorded() {
             CHAIN.replace("  events: sidecar\n", &format!("  events: sidecar\n{text}")),
         )
         .unwrap();
-        let err = p
-            .try_run(&Options::default())
-            .err()
-            .expect(text)
-            .to_string();
+        let err = match p.try_run(&Options::default()) {
+            Ok(_) => panic!("{text}: the run succeeded"),
+            Err(e) => e.to_string(),
+        };
         assert!(err.contains(needle), "{text}: {err}");
         assert!(
             err.contains("p.yaml") || err.contains("sub-01_task-cue_eeg.edf"),

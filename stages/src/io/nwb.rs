@@ -30,9 +30,7 @@ use hdf5_metno as hdf5;
 use ndarray::Array2;
 
 use super::channels::{check_unique, describe_label, keep_chosen, Selection};
-use super::recording::{
-    add_positions_and_bad_channels, finish_single_rate, layout, resampled_length, sidecar_events,
-};
+use super::recording::{finish_single_rate, full_layout, resampled_length, sidecar_events};
 use super::tsv::{candidate_sidecars, read_channels};
 use super::{Choice, EventSource};
 use crate::array::{Event, LabelledArray, Layout, Positions};
@@ -372,10 +370,10 @@ impl Opened {
                 &mut warnings,
             )?,
         };
-        let mut layout = layout(&selection, samples, events);
-        add_positions_and_bad_channels(
-            &mut layout,
+        let mut layout = full_layout(
             &selection,
+            samples,
+            events,
             sidecar.as_deref(),
             [&electrodes_path, &coordsystem_path],
         )?;

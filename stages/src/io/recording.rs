@@ -77,10 +77,10 @@ impl Opened {
             (Some(found), Some(EventSource::Annotations)) => found,
             (_, Some(events)) => sidecar_events(path, events, &events_path, length, &mut warnings)?,
         };
-        let mut layout = layout(&selection, samples, events);
-        add_positions_and_bad_channels(
-            &mut layout,
+        let layout = full_layout(
             &selection,
+            samples,
+            events,
             sidecar.as_deref(),
             [&electrodes_path, &coordsystem_path],
         )?;
@@ -415,6 +415,20 @@ fn positions(
         units: "1".into(),
         by_channel,
     })))
+}
+
+/// [`layout`] with the electrode positions and bad channels added
+/// ([`add_positions_and_bad_channels`]): the layout every format's reader ends with.
+pub(super) fn full_layout(
+    selection: &Selection,
+    samples: usize,
+    events: Vec<Event>,
+    sidecar: Option<&[ChannelRow]>,
+    positions: [&Path; 2],
+) -> Result<Layout, StageError> {
+    let mut layout = layout(selection, samples, events);
+    add_positions_and_bad_channels(&mut layout, selection, sidecar, positions)?;
+    Ok(layout)
 }
 
 /// dims [channel, time], time k/fs in s, values in volts.
