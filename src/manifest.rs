@@ -5,7 +5,8 @@
 //! ```text
 //! { "format": "phasewise-manifest", "format_version": 1,
 //!   "tool": { "name", "version", "revision" }, "platform": { "os", "arch" },
-//!   "pipeline": { "path", "blake3", "name", "overrides", "subjects", "stages" },
+//!   "pipeline": { "path", "blake3", "name", "overrides", "subjects", "stages",
+//!                 "data" (only with data.channels / data.rate) },
 //!   "inputs": [ { "path", "size", "blake3" } ],
 //!   "units": [ { "stage", "subject", "op", "op_version", "params", "key", "inputs",
 //!                "outputs": [ { "file", "blake3", "shape", "dtype" } ],
@@ -98,6 +99,10 @@ pub struct PipelineInfo {
     pub subjects: Option<Vec<String>>,
     /// Stage names in topological order (used to order merged parts).
     pub stages: Vec<String>,
+    /// What was read of each recording when not all of it at its own rate: `data.channels`
+    /// and `data.rate` as the pipeline gave them (absent otherwise).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub data: Option<Value>,
 }
 
 /// One input file.
@@ -201,6 +206,8 @@ pub fn build(study: &Study, outcome: &Outcome, started: &str, finished: &str) ->
             overrides: pipeline.overrides.clone(),
             subjects: (!study.selection.is_empty()).then(|| study.selection.clone()),
             stages: pipeline.stages.iter().map(|s| s.name.clone()).collect(),
+            data: (!pipeline.choice.is_default())
+                .then(|| serde_json::to_value(&pipeline.choice).unwrap_or_default()),
         },
         inputs,
         units,

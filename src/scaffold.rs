@@ -14,7 +14,8 @@ use std::path::{Component, Path, PathBuf};
 
 use anyhow::{bail, Context, Result};
 use phasewise_stages::io::{
-    read_recording_layout, read_recording_layout_without_events, sidecar_paths, EventSource, Format,
+    nwb_series, read_chosen_layout, read_recording_layout_without_events, sidecar_paths, Choice,
+    EventSource, Format,
 };
 use phasewise_stages::ops::morlet;
 use phasewise_stages::Layout;
@@ -35,9 +36,13 @@ const PATTERNS: &[&str] = &[
     "sub-*/ieeg/*_ieeg.vhdr",
     "sub-*/ses-*/ieeg/*_ieeg.edf",
     "sub-*/ses-*/ieeg/*_ieeg.vhdr",
+    "sub-*/ieeg/*_ieeg.nwb",
+    "sub-*/ses-*/ieeg/*_ieeg.nwb",
+    "sub-*/eeg/*_eeg.nwb",
     "**/*.edf",
     "**/*.bdf",
     "**/*.vhdr",
+    "**/*.nwb",
 ];
 
 /// What the dataset holds, as far as headers and sidecars tell.
@@ -70,6 +75,11 @@ pub struct DatasetSummary {
     pub median_interval: Option<f64>,
     /// Shortest recording (s).
     pub shortest_recording: Option<f64>,
+    /// NWB: the `ElectricalSeries` of the first recording (paths in the file).
+    pub series: Vec<String>,
+    /// What is read of each recording: for NWB files with several series, the first of them
+    /// (`data.series`, which the written pipeline asks the user to confirm).
+    pub choice: Choice,
 }
 
 /// Look at `data_dir` and write a commented pipeline to `out`, or print it on stdout when no
@@ -121,23 +131,29 @@ pub fn survey(data_dir: &Path) -> Result<DatasetSummary> {
         if !found.is_empty() {
             summary.pattern = (*pattern).to_string();
             summary.format = Some(Format::of(&found[0])?);
+            if summary.format == Some(Format::Nwb) {
+                summary.series = nwb_series(&found[0]).map_err(anyhow::Error::new)?;
+                if summary.series.len() > 1 {
+                    summary.choice.series = summary.series.first().cloned();
+                }
+            }
             summary.recordings = found;
             break;
         }
     }
     if summary.recordings.is_empty() {
         bail!(
-            "{}: no EDF, BDF or BrainVision (.vhdr) recordings found (looked for {})",
+            "{}: no EDF, BDF, BrainVision (.vhdr) or NWB recordings found (looked for {})",
             data_dir.display(),
             PATTERNS.join(", ")
         );
     }
-    summary.events = event_source(&summary.recordings);
+    summary.events = event_source(&summary.recordings, &summary.choice);
     let mut intervals = Vec::new();
     for path in summary.recordings.clone() {
         let layout = match summary.events {
-            Some(source) => read_recording_layout(&path, source),
-            None => read_recording_layout_without_events(&path),
+            Some(source) => read_chosen_layout(&path, source, &summary.choice),
+            None => read_recording_layout_without_events(&path, &summary.choice),
         };
         // The reader's messages name the file already.
         let layout = layout.map_err(anyhow::Error::new)?;
@@ -158,7 +174,7 @@ with `events: sidecar`), or use EDF+/BDF+ files whose annotations mark the event
 
 /// Where the events of every recording can be read from, if anywhere: a sidecar beside every
 /// recording, else annotations in every file with at least one event among them.
-fn event_source(recordings: &[PathBuf]) -> Option<EventSource> {
+fn event_source(recordings: &[PathBuf], choice: &Choice) -> Option<EventSource> {
     let has_sidecar = |p: &PathBuf| {
         sidecar_paths(p)
             .iter()
@@ -169,7 +185,7 @@ fn event_source(recordings: &[PathBuf]) -> Option<EventSource> {
     }
     let mut any_event = false;
     for path in recordings {
-        match read_recording_layout(path, EventSource::Annotations) {
+        match read_chosen_layout(path, EventSource::Annotations, choice) {
             Ok(layout) => any_event |= layout.meta.events.iter().flatten().next().is_some(),
             Err(_) => return None,
         }
@@ -218,9 +234,17 @@ pub fn summary_text(s: &DatasetSummary) -> String {
     let mut t = String::new();
     let format = match s.format {
         Some(Format::BrainVision) => {
-            "BrainVision: .vhdr headers with their .vmrk markers and binary data files"
+            "BrainVision: .vhdr headers with their .vmrk markers and binary data files".into()
         }
-        _ => "EDF/BDF",
+        Some(Format::Nwb) => format!(
+            "NWB: the ElectricalSeries {} with its electrodes table",
+            s.choice
+                .series
+                .as_deref()
+                .or(s.series.first().map(String::as_str))
+                .unwrap_or("?")
+        ),
+        _ => "EDF/BDF".to_string(),
     };
     let _ = writeln!(
         t,
@@ -249,6 +273,14 @@ pub fn summary_text(s: &DatasetSummary) -> String {
              laplacian and interpolate need them"
         ),
     };
+    if s.series.len() > 1 {
+        let _ = writeln!(
+            t,
+            "note: the first recording holds {} ElectricalSeries ({}); the pipeline reads the first (data.series: CONFIRM)",
+            s.series.len(),
+            s.series.join(", ")
+        );
+    }
     for path in &s.channel_mismatch {
         let _ = writeln!(
             t,
@@ -259,6 +291,7 @@ pub fn summary_text(s: &DatasetSummary) -> String {
     let source = match (s.events, s.format) {
         (Some(EventSource::Sidecar), _) => "events.tsv sidecars",
         (Some(EventSource::Annotations), Some(Format::BrainVision)) => "BrainVision markers",
+        (Some(EventSource::Annotations), Some(Format::Nwb)) => "the NWB trials table",
         (Some(EventSource::Annotations), _) => "EDF+ annotations",
         (None, _) => {
             let _ = writeln!(t, "events: none found");
@@ -406,7 +439,15 @@ pub fn pipeline_text(s: &DatasetSummary, data_rel: &Path, data_dir: &Path) -> Re
         "  recordings: {}   # relative to this file",
         quoted(&recordings)
     );
-    let _ = writeln!(t, "  events: {events}   # sidecar = *_events.tsv beside each recording; annotations = the recording's own (EDF+ annotations, BrainVision markers)");
+    let _ = writeln!(t, "  events: {events}   # sidecar = *_events.tsv beside each recording; annotations = the recording's own (EDF+ annotations, BrainVision markers, NWB trials)");
+    if let Some(series) = &s.choice.series {
+        let _ = writeln!(
+            t,
+            "  series: {}   # CONFIRM: the NWB ElectricalSeries to read; the files hold {}",
+            quoted(series),
+            s.series.join(", ")
+        );
+    }
     let _ = writeln!(
         t,
         "output: results/{}   # relative to this file\n",

@@ -14,7 +14,7 @@ use std::io::Read;
 use std::path::{Path, PathBuf};
 use std::time::UNIX_EPOCH;
 
-use phasewise_stages::io::EventSource;
+use phasewise_stages::io::{Choice, EventSource};
 use phasewise_stages::{LabelledArray, Layout, Notes, StageError};
 use serde::{Deserialize, Serialize};
 
@@ -26,12 +26,18 @@ pub trait Reader: Sync {
     /// The sidecar files of a recording that exist, in a fixed order.
     fn sidecars(&self, path: &Path) -> Vec<PathBuf>;
     /// The layout of a recording, from its header and sidecars only.
-    fn layout(&self, path: &Path, events: EventSource) -> Result<Layout, StageError>;
-    /// The recording.
+    fn layout(
+        &self,
+        path: &Path,
+        events: EventSource,
+        choice: &Choice,
+    ) -> Result<Layout, StageError>;
+    /// The recording (the channels `choice` names, at its rate when it gives one).
     fn read(
         &self,
         path: &Path,
         events: EventSource,
+        choice: &Choice,
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError>;
 }
@@ -43,16 +49,22 @@ impl Reader for RecordingReader {
     fn sidecars(&self, path: &Path) -> Vec<PathBuf> {
         phasewise_stages::io::sidecar_paths(path)
     }
-    fn layout(&self, path: &Path, events: EventSource) -> Result<Layout, StageError> {
-        phasewise_stages::io::read_recording_layout(path, events)
+    fn layout(
+        &self,
+        path: &Path,
+        events: EventSource,
+        choice: &Choice,
+    ) -> Result<Layout, StageError> {
+        phasewise_stages::io::read_chosen_layout(path, events, choice)
     }
     fn read(
         &self,
         path: &Path,
         events: EventSource,
+        choice: &Choice,
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError> {
-        phasewise_stages::io::read_recording(path, events, notes)
+        phasewise_stages::io::read_chosen(path, events, choice, notes)
     }
 }
 
@@ -325,11 +337,21 @@ impl Hasher {
         })
     }
 
-    /// The key of a source and the hashes of its files.
-    pub fn source_key(&self, source: &Source) -> Result<(String, Vec<FileHash>), SourceError> {
+    /// The key of a source and the hashes of its files; `choice` (`data.channels`,
+    /// `data.rate`) joins the key when it is not the default, so a pipeline without it keeps
+    /// its keys.
+    pub fn source_key(
+        &self,
+        source: &Source,
+        choice: &Choice,
+    ) -> Result<(String, Vec<FileHash>), SourceError> {
         // What the reader makes of the files is part of the key too.
         let reader = phasewise_stages::io::READER_VERSION.to_string();
         let mut roles = vec![("reader".to_string(), reader)];
+        if !choice.is_default() {
+            let value = serde_json::to_value(choice).unwrap_or_default();
+            roles.push(("choice".to_string(), key::canonical_json(&value)));
+        }
         let mut hashes = Vec::new();
         for (role, path) in source.files() {
             let h = self.hash(path)?;

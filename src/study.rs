@@ -144,7 +144,7 @@ impl Study {
         let mut source_files = Vec::new();
         for source in &sources {
             let (key, files) = hasher
-                .source_key(source)
+                .source_key(source, &pipeline.choice)
                 .map_err(|e| RunError::Other(e.to_string()))?;
             source_keys.push(key);
             source_files.push(files);
@@ -390,7 +390,7 @@ impl Study {
                 source_layouts.push(None);
                 continue;
             }
-            match reader.layout(&source.path, self.pipeline.events) {
+            match reader.layout(&source.path, self.pipeline.events, &self.pipeline.choice) {
                 Ok(l) => source_layouts.push(Some(l)),
                 Err(e) => {
                     failures.push(UnitFailure {

@@ -555,7 +555,12 @@ impl Worker<'_, '_> {
         let array = self
             .ctx
             .reader
-            .read(&source.path, study.pipeline.events, &mut notes)
+            .read(
+                &source.path,
+                study.pipeline.events,
+                &study.pipeline.choice,
+                &mut notes,
+            )
             .map_err(|e| UnitFailure {
                 stage: SOURCE.into(),
                 subject: Some(source.subject.clone()),

@@ -14,7 +14,14 @@ use crate::words::did_you_mean;
 /// Keys allowed at the top of a pipeline file.
 pub const TOP_KEYS: &[&str] = &["name", "data", "output", "stages", "report"];
 /// Keys allowed under `data`.
-pub const DATA_KEYS: &[&str] = &["recordings", "events"];
+pub const DATA_KEYS: &[&str] = &[
+    "recordings",
+    "events",
+    "channels",
+    "rate",
+    "series",
+    "format",
+];
 /// Keys allowed in a stage.
 pub const STAGE_KEYS: &[&str] = &["op", "input", "params", "cache", "export"];
 
@@ -38,6 +45,9 @@ pub struct RawPipeline {
     pub recordings: Option<Spanned<String>>,
     /// `sidecar` or `annotations`.
     pub events: Option<Spanned<String>>,
+    /// What to read of each recording (`data.channels`, `data.rate`, `data.series`,
+    /// `data.format`), as written: the field name and its value.
+    pub choice: Vec<(String, Node)>,
     /// The output folder, relative to the file.
     pub output: Option<Spanned<String>>,
     /// Whether `run` also writes the HTML report (`<output>/report.html`).
@@ -185,6 +195,7 @@ pub fn read(root: &Node, file: &Path, c: &mut Collector<'_>) -> RawPipeline {
         name: None,
         recordings: None,
         events: None,
+        choice: Vec::new(),
         output: None,
         report: false,
         report_spec: None,
@@ -220,6 +231,9 @@ fn read_data(node: &Node, raw: &mut RawPipeline, c: &mut Collector<'_>) {
         match k {
             "recordings" => raw.recordings = text(value, "data.recordings", c),
             "events" => raw.events = text(value, "data.events", c),
+            "channels" | "rate" | "series" | "format" => {
+                raw.choice.push((k.to_string(), value.clone()))
+            }
             _ => unknown_key(key, k, "data.", DATA_KEYS, c),
         }
     }

@@ -10,7 +10,7 @@
 
 use std::path::{Component, Path, PathBuf};
 
-use phasewise_stages::io::EventSource;
+use phasewise_stages::io::{Choice, EventSource};
 use std::sync::Arc;
 
 use phasewise_stages::{BoundOp, DynOp, StageError};
@@ -42,6 +42,9 @@ pub struct ResolvedPipeline {
     pub recordings_at: (usize, usize),
     /// Where events come from.
     pub events: EventSource,
+    /// Which channels are read, and the rate they are resampled to (`data.channels`,
+    /// `data.rate`); part of every source's key when not the default.
+    pub choice: Choice,
     /// The output folder.
     pub output: PathBuf,
     /// Whether `run` also writes the HTML report.
@@ -160,6 +163,7 @@ fn resolve(
     let dir = raw.file.parent().map(Path::to_path_buf).unwrap_or_default();
     let recordings = required(&raw.recordings, "data.recordings", raw.stages_origin, c);
     let events = events(raw, c);
+    let choice = choice(raw, c);
     let output = output_path(raw, &dir, c);
     let stages = resolve_stages(raw, ops, c);
     if raw.stages.is_empty() {
@@ -182,6 +186,7 @@ fn resolve(
             .as_ref()
             .map_or((0, 0), |r| yaml::file_position(r.origin)),
         events: events?,
+        choice: choice?,
         output: output?,
         report: raw.report,
         report_spec: raw.report_spec.clone(),
@@ -222,6 +227,50 @@ fn events(raw: &RawPipeline, c: &mut Collector<'_>) -> Option<EventSource> {
             None
         }
     }
+}
+
+/// `data.channels` (a list of names), `data.rate` (Hz), `data.series` (NWB) and `data.format`,
+/// each checked at its line.
+fn choice(raw: &RawPipeline, c: &mut Collector<'_>) -> Option<Choice> {
+    let mut choice = Choice::default();
+    let mut ok = true;
+    for (key, node) in &raw.choice {
+        let field = format!("data.{key}");
+        let value = node.to_json();
+        let parsed = match key.as_str() {
+            "channels" => serde_json::from_value(value)
+                .map(|v| choice.channels = Some(v))
+                .map_err(|_| "expected a list of channel names, e.g. [Fz, Cz, Pz]".to_string()),
+            "series" => serde_json::from_value(value)
+                .map(|v| choice.series = Some(v))
+                .map_err(|_| "expected the name or path of an NWB ElectricalSeries".to_string()),
+            "format" => serde_json::from_value(value)
+                .map(|v| choice.format = Some(v))
+                .map_err(|_| "expected `edf`, `brainvision` or `nwb`".to_string()),
+            _ => serde_json::from_value(value)
+                .map(|v| choice.rate = Some(v))
+                .map_err(|_| "expected a sampling rate in Hz, e.g. 500".to_string()),
+        };
+        if let Err(message) = parsed {
+            c.at(node.origin, field, message);
+            ok = false;
+        }
+    }
+    if let Err(e) = choice.check() {
+        let (field, message) = match &e {
+            StageError::Param { field, message } => (field.clone(), message.clone()),
+            other => ("data".to_string(), other.to_string()),
+        };
+        let key = field.trim_start_matches("data.");
+        let origin = raw
+            .choice
+            .iter()
+            .find(|(k, _)| k == key)
+            .map(|(_, n)| n.origin);
+        c.at(origin.unwrap_or(raw.stages_origin), field, message);
+        ok = false;
+    }
+    ok.then_some(choice)
 }
 
 fn output_path(raw: &RawPipeline, dir: &Path, c: &mut Collector<'_>) -> Option<PathBuf> {

@@ -550,7 +550,8 @@ pub fn subject_id(index: usize) -> String {
 }
 
 /// Writes the study into `dir`: per subject `sub-XX/eeg/sub-XX_task-cue_eeg.edf` (EDF+ with the
-/// cues as annotations too), `_events.tsv`, `_channels.tsv` and `_eeg.json`; at the top
+/// cues as annotations too), `_events.tsv`, `_channels.tsv`, `_electrodes.tsv` with
+/// `_coordsystem.json`, and `_eeg.json`; at the top
 /// `dataset_description.json` and `truth.json`.
 pub fn write_study(dir: &Path, config: &SimulateConfig) -> Result<(), StageError> {
     config.check()?;
@@ -584,7 +585,45 @@ fn write_subject(
     write_edf_plus(&with("eeg.edf"), &edf_spec(id, rec))?;
     write_text(&with("events.tsv"), &events_tsv(&rec.events))?;
     write_text(&with("channels.tsv"), &channels_tsv(rec))?;
+    write_text(&with("electrodes.tsv"), &electrodes_tsv(rec)?)?;
+    write_text(&with("coordsystem.json"), &json_text(&coordsystem()))?;
     write_text(&with("eeg.json"), &json_text(&eeg_sidecar(rec, config)))
+}
+
+/// Radius in metres of the simulated participants' spherical head (a round adult value).
+pub const HEAD_RADIUS_M: f64 = 0.09;
+
+/// BIDS `electrodes.tsv` (name, x, y, z in metres): every scalp site on a sphere of
+/// [`HEAD_RADIUS_M`], placed by the 10-20 percent rules ([`crate::spatial::standard`], whose
+/// frame is x towards the right preauricular point, y towards the nasion, z up). The numbers are
+/// written in full (shortest round-trip form) so that they read back as the same directions the
+/// derived positions have. The EOG electrode has no place on this model and is not listed.
+fn electrodes_tsv(rec: &Recording) -> Result<String, StageError> {
+    let mut t = String::from("name\tx\ty\tz\n");
+    for (name, kind) in rec.names.iter().zip(&rec.types) {
+        if kind != "EEG" {
+            continue;
+        }
+        let p = crate::spatial::standard::position(name).ok_or_else(|| {
+            StageError::input(format!("internal: no 10-20 position for the site {name}"))
+        })?;
+        let [x, y, z] = p.map(|v| v * HEAD_RADIUS_M);
+        let _ = writeln!(t, "{name}\t{x}\t{y}\t{z}");
+    }
+    Ok(t)
+}
+
+/// BIDS `coordsystem.json` for [`electrodes_tsv`].
+fn coordsystem() -> serde_json::Value {
+    json!({
+        "EEGCoordinateSystem": "Other",
+        "EEGCoordinateUnits": "m",
+        "EEGCoordinateSystemDescription": format!(
+            "Simulated spherical head of radius {HEAD_RADIUS_M} m centred at the origin: x towards \
+             the right preauricular point, y towards the nasion, z towards the vertex. Sites \
+             placed by the 10-20 percent rules (phasewise simulate)."
+        ),
+    })
 }
 
 fn edf_spec(id: &str, rec: &Recording) -> EdfWriteSpec {

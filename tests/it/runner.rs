@@ -60,17 +60,19 @@ impl phasewise::sources::Reader for CountingReader {
         &self,
         path: &std::path::Path,
         events: phasewise_stages::io::EventSource,
+        choice: &phasewise_stages::io::Choice,
     ) -> Result<phasewise_stages::Layout, phasewise_stages::StageError> {
         self.0.fetch_add(1, std::sync::atomic::Ordering::SeqCst);
-        phasewise::sources::Reader::layout(&RecordingReader, path, events)
+        phasewise::sources::Reader::layout(&RecordingReader, path, events, choice)
     }
     fn read(
         &self,
         path: &std::path::Path,
         events: phasewise_stages::io::EventSource,
+        choice: &phasewise_stages::io::Choice,
         notes: &mut phasewise_stages::Notes,
     ) -> Result<phasewise_stages::LabelledArray, phasewise_stages::StageError> {
-        phasewise::sources::Reader::read(&RecordingReader, path, events, notes)
+        phasewise::sources::Reader::read(&RecordingReader, path, events, choice, notes)
     }
 }
 
@@ -835,5 +837,83 @@ fn the_manifest_has_the_core_shape_of_design_section_6() {
             .unwrap()
             .join(input["path"].as_str().unwrap());
         assert_eq!(input["size"], std::fs::metadata(&path).unwrap().len());
+    }
+}
+
+// --- data.channels and data.rate ---------------------------------------------------------------
+
+/// `data.channels` and `data.rate` shape what is read (the test recordings hold Fz and Cz at
+/// 64 Hz for 2 s), join the source's key (changing the rate recomputes everything; a pipeline
+/// without them keeps the keys it had) and are recorded in the manifest; a bad value is an error
+/// naming the field.
+#[test]
+fn data_channels_and_rate_are_read_keyed_and_recorded() {
+    let p = Project::new(&["01"]);
+    let file = p.pipeline(CHAIN);
+    let plain = p.run();
+    assert_eq!(plain.pipeline.data, None);
+    let key_a = |m: &phasewise::manifest::Manifest| unit(m, "a", Some("01")).inputs.clone();
+    replace_in(
+        &file,
+        "  events: sidecar\n",
+        "  events: sidecar\n  channels: [Cz]\n  rate: 32\n",
+    );
+    let chosen = p.run();
+    assert_eq!(
+        computed(&chosen).len(),
+        4,
+        "a new source key reruns every unit"
+    );
+    assert_ne!(key_a(&chosen), key_a(&plain));
+    assert_eq!(
+        chosen.pipeline.data,
+        Some(serde_json::json!({ "channels": ["Cz"], "rate": 32.0 }))
+    );
+    // One channel, 2 s at 32 Hz.
+    let (npy, _) = p.object(&chosen, "a", Some("01"));
+    assert_eq!(read_npy(&npy).shape(), [1, 64]);
+    replace_in(&file, "  rate: 32\n", "  rate: 16\n");
+    assert_eq!(computed(&p.run()).len(), 4);
+    replace_in(&file, "  channels: [Cz]\n  rate: 16\n", "");
+    let again = p.run();
+    assert_eq!(key_a(&again), key_a(&plain), "no choice, the old keys");
+    assert_eq!(computed(&again), Vec::<String>::new());
+
+    for (text, needle) in [
+        (
+            "  rate: -5\n",
+            "data.rate: expected a positive number of Hz, found -5",
+        ),
+        (
+            "  rate: fast\n",
+            "data.rate: expected a sampling rate in Hz",
+        ),
+        (
+            "  channels: Cz\n",
+            "data.channels: expected a list of channel names",
+        ),
+        (
+            "  channels: [Cz, Oz]\n",
+            "data.channels: the recording has no channel named \"Oz\"",
+        ),
+        (
+            "  rate: 63.97\n",
+            "data.rate: channel Fz: going from 64 Hz to 63.97 Hz",
+        ),
+    ] {
+        std::fs::write(
+            &file,
+            CHAIN.replace("  events: sidecar\n", &format!("  events: sidecar\n{text}")),
+        )
+        .unwrap();
+        let err = match p.try_run(&Options::default()) {
+            Ok(_) => panic!("{text}: the run succeeded"),
+            Err(e) => e.to_string(),
+        };
+        assert!(err.contains(needle), "{text}: {err}");
+        assert!(
+            err.contains("p.yaml") || err.contains("sub-01_task-cue_eeg.edf"),
+            "{err}"
+        );
     }
 }

@@ -14,6 +14,36 @@ import sys
 import numpy as np
 
 
+def hdf5_difference(a, b):
+    """How two HDF5 (NWB) files differ in content, or None: the same groups and datasets, equal
+    dataset values and equal attributes, except `object_id`, the random UUID that hdmf gives
+    every object it writes (so pynwb's files never match byte for byte)."""
+    import h5py  # installed with pynwb (tests/reference/requirements.txt)
+
+    def contents(path):
+        items = {}
+        with h5py.File(path, "r") as f:
+            def visit(name, obj):
+                attrs = {k: repr(v.tolist() if hasattr(v, "tolist") else v)
+                         for k, v in obj.attrs.items()
+                         if k != "object_id" and not isinstance(v, h5py.Reference)}
+                value = None
+                if isinstance(obj, h5py.Dataset):
+                    data = obj[()]
+                    value = repr(data.tolist() if hasattr(data, "tolist") else data)
+                items[name] = (attrs, value)
+            f.visititems(visit)
+        return items
+
+    ca, cb = contents(a), contents(b)
+    if ca.keys() != cb.keys():
+        return f"objects differ: {sorted(ca.keys() ^ cb.keys())[:5]}"
+    for name in sorted(ca):
+        if ca[name] != cb[name]:
+            return f"{name} differs"
+    return None
+
+
 def main() -> int:
     ap = argparse.ArgumentParser()
     ap.add_argument("committed")
@@ -46,6 +76,10 @@ def main() -> int:
         elif rel.suffix == ".json":
             if json.loads(pa.read_text()) != json.loads(pb.read_text()):
                 bad.append(f"{rel}: JSON differs")
+        elif rel.suffix == ".nwb":
+            difference = hdf5_difference(pa, pb)
+            if difference:
+                bad.append(f"{rel}: {difference}")
         else:
             bad.append(f"{rel}: bytes differ")
     for line in bad:

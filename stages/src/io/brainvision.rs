@@ -26,10 +26,10 @@ pub use header::{
 };
 pub use markers::{marker_events, parse_markers, Marker};
 
-use super::channels::{check_unique, describe_label, Selection};
-use super::recording::{add_positions_and_bad_channels, layout, sidecar_events};
+use super::channels::{check_unique, describe_label, keep_chosen, Selection};
+use super::recording::{finish_single_rate, full_layout, resampled_length, sidecar_events};
 use super::tsv::{candidate_sidecars, read_channels};
-use super::EventSource;
+use super::{Choice, EventSource};
 use crate::array::{Event, LabelledArray, Layout};
 use crate::error::StageError;
 
@@ -51,7 +51,11 @@ fn fail(path: &Path, message: impl std::fmt::Display) -> StageError {
 impl Opened {
     /// Read and check the header `vhdr`, the size of its data file, the sidecars and (for
     /// `events: annotations`) the marker file.
-    pub fn open(vhdr: &Path, events: Option<EventSource>) -> Result<Opened, StageError> {
+    pub fn open(
+        vhdr: &Path,
+        events: Option<EventSource>,
+        choice: &Choice,
+    ) -> Result<Opened, StageError> {
         let bytes = std::fs::read(vhdr).map_err(|e| fail(vhdr, format!("cannot open: {e}")))?;
         let header = VhdrHeader::parse(vhdr, &decode_text(&bytes)).map_err(|e| fail(vhdr, e))?;
         let points = data_points(vhdr, &header)?;
@@ -80,12 +84,29 @@ impl Opened {
             })
             .collect();
         check_unique(&channels).map_err(|m| fail(vhdr, m))?;
+        let channels = keep_chosen(channels, choice.channels.as_deref(), |c| {
+            (c.name.clone(), header.channels[c.signal].label.clone())
+        })
+        .map_err(|m| fail(vhdr, m))?;
+        let (rate, samples) = match choice.rate {
+            None => (header.rate, points),
+            Some(rate) => {
+                let native: Vec<(&str, f64, usize)> = channels
+                    .iter()
+                    .map(|c| (c.name.as_str(), header.rate, points))
+                    .collect();
+                let samples = resampled_length(&native, rate).map_err(|m| fail(vhdr, m))?;
+                (rate, samples)
+            }
+        };
+        let resampled_from = choice.rate.map(|_| vec![points; channels.len()]);
         let selection = Selection {
             channels,
-            rate: header.rate,
+            rate,
             samples_per_record: points,
+            resampled_from,
         };
-        let length = points as f64 / header.rate;
+        let length = samples as f64 / rate;
         let events = match events {
             None => Vec::new(),
             Some(EventSource::Annotations) => markers(vhdr, &header, points, &mut warnings)?,
@@ -97,10 +118,10 @@ impl Opened {
                 &mut warnings,
             )?,
         };
-        let mut layout = layout(&selection, points, events);
-        add_positions_and_bad_channels(
-            &mut layout,
+        let layout = full_layout(
             &selection,
+            samples,
+            events,
             sidecar.as_deref(),
             [&electrodes_path, &coordsystem_path],
         )?;
@@ -113,10 +134,14 @@ impl Opened {
         })
     }
 
-    /// Read the samples, in volts.
+    /// Read the samples, in volts: every channel of the file is decoded (the multiplexed
+    /// layout interleaves them), then the chosen ones kept and, with `data.rate`, resampled.
     pub fn read(self) -> Result<LabelledArray, StageError> {
         let data = &self.header.data_file;
-        let factors: Vec<f64> = self.selection.channels.iter().map(|c| c.to_volts).collect();
+        let mut factors = vec![1.0; self.header.channels.len()];
+        for c in &self.selection.channels {
+            factors[c.signal] = c.to_volts;
+        }
         let mut values = Array2::<f32>::zeros((factors.len(), self.points));
         let out = values
             .as_slice_mut()
@@ -124,6 +149,8 @@ impl Opened {
         let mut file = File::open(data).map_err(|e| fail(data, format!("cannot open: {e}")))?;
         read_samples(&mut file, &self.header, self.points, &factors, out)
             .map_err(|e| fail(data, format!("reading the samples failed: {e}")))?;
+        let values = finish_single_rate(values, &self.selection, self.header.rate, &self.layout)
+            .map_err(|m| fail(data, m))?;
         LabelledArray::real(self.layout, values.into_dyn())
     }
 }

@@ -8,6 +8,7 @@
 
 use super::edf::{FileKind, Header};
 use super::tsv::ChannelRow;
+use super::Choice;
 
 /// EDF+ signal-type prefixes (Kemp & Olivan 2003, "standard texts"; list recalled from memory,
 /// so only prefixes that are unambiguous signal types are split off).
@@ -34,18 +35,25 @@ pub struct Channel {
 pub struct Selection {
     /// Kept channels in file order.
     pub channels: Vec<Channel>,
-    /// Sampling rate in Hz.
+    /// Sampling rate in Hz (of the output: `data.rate` when every channel is resampled).
     pub rate: f64,
-    /// Samples per data record of every kept channel.
+    /// Samples per data record of every kept channel (when not resampled).
     pub samples_per_record: usize,
+    /// `Some` when every channel is resampled to `rate` as it is read (`data.rate`): each kept
+    /// channel's own samples per data record, in channel order.
+    pub resampled_from: Option<Vec<usize>>,
 }
 
 /// Name, type and unit factor of every data signal, then keep those at the recording's rate.
 /// Warnings (dropped channels, units that are not voltages, channels the sidecar misses) are
 /// appended to `warnings`.
+///
+/// `choice` narrows this: only the channels `data.channels` names are kept (an unknown name is an
+/// error), and with `data.rate` every kept channel is kept whatever its rate, to be resampled.
 pub fn select(
     header: &Header,
     sidecar: Option<&[ChannelRow]>,
+    choice: &Choice,
     warnings: &mut Vec<String>,
 ) -> Result<Selection, String> {
     // Each channel's own warnings are kept apart so that a dropped channel reports only its drop.
@@ -60,6 +68,26 @@ pub fn select(
             (channel, s.samples_per_record, own)
         })
         .collect();
+    let all = keep_chosen(all, choice.channels.as_deref(), |c| {
+        (c.0.name.clone(), header.signals[c.0.signal].label.clone())
+    })?;
+    if let Some(rate) = choice.rate {
+        let per_record = all.iter().map(|c| c.1).collect();
+        let channels: Vec<Channel> = all
+            .into_iter()
+            .map(|(channel, _, own)| {
+                warnings.extend(own);
+                channel
+            })
+            .collect();
+        check_unique(&channels)?;
+        return Ok(Selection {
+            channels,
+            rate,
+            samples_per_record: 0,
+            resampled_from: Some(per_record),
+        });
+    }
     let spr = majority_samples_per_record(&all, header.record_seconds)?;
     let mut channels = Vec::with_capacity(all.len());
     for (channel, n, own) in all {
@@ -68,7 +96,7 @@ pub fn select(
             channels.push(channel);
         } else {
             warnings.push(format!(
-                "channel {} ({}) is sampled at {} Hz, not at the recording's {} Hz; it was dropped",
+                "channel {} ({}) is sampled at {} Hz, not at the recording's {} Hz; it was dropped (`data.rate` would resample it)",
                 channel.name,
                 channel.kind,
                 n as f64 / header.record_seconds,
@@ -81,7 +109,43 @@ pub fn select(
         channels,
         rate: spr as f64 / header.record_seconds,
         samples_per_record: spr,
+        resampled_from: None,
     })
+}
+
+/// The items whose channel `data.channels` names (matched by name or by the full label that
+/// `name_label` gives), in file order; all of them when `wanted` is `None`. A name that no
+/// channel has, or one given twice, is an error naming the field and the channels there are.
+pub fn keep_chosen<T>(
+    items: Vec<T>,
+    wanted: Option<&[String]>,
+    name_label: impl Fn(&T) -> (String, String),
+) -> Result<Vec<T>, String> {
+    let Some(wanted) = wanted else {
+        return Ok(items);
+    };
+    for (i, w) in wanted.iter().enumerate() {
+        if wanted[..i].contains(w) {
+            return Err(format!("data.channels: {w:?} is listed twice"));
+        }
+        if !items.iter().any(|t| {
+            let (name, label) = name_label(t);
+            &name == w || label.trim() == w
+        }) {
+            let names: Vec<String> = items.iter().map(|t| name_label(t).0).collect();
+            return Err(format!(
+                "data.channels: the recording has no channel named {w:?}; its channels are {}",
+                names.join(", ")
+            ));
+        }
+    }
+    Ok(items
+        .into_iter()
+        .filter(|t| {
+            let (name, label) = name_label(t);
+            wanted.iter().any(|w| *w == name || w == label.trim())
+        })
+        .collect())
 }
 
 /// Name, type and unit factor of signal `index`.
@@ -220,8 +284,9 @@ fn majority_samples_per_record(
                 .collect();
             Err(format!(
                 "the EEG channels share no sampling rate that most of them have ({}); \
-                 phasewise analyses the EEG channels at one rate: resample the recording or \
-                 leave channels out",
+                 phasewise analyses the EEG channels at one rate: set `data.rate` to resample \
+                 every channel as it is read, or choose channels of one rate with \
+                 `data.channels`",
                 rates.join(", ")
             ))
         }

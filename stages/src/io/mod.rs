@@ -36,6 +36,8 @@ use crate::op::Notes;
 pub mod brainvision;
 mod channels;
 pub mod edf;
+#[cfg(feature = "nwb")]
+pub mod nwb;
 mod recording;
 mod tsv;
 
@@ -51,13 +53,67 @@ pub enum EventSource {
     Annotations,
 }
 
-/// A recording format, told by the file's extension.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+/// What to read of each recording besides its events: `data.channels` and `data.rate` in the
+/// pipeline. The default reads every channel at the recording's own rate.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Choice {
+    /// Read only these channels (names, or full labels as in the file), in file order.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub channels: Option<Vec<String>>,
+    /// Resample every channel read to this rate (Hz) as it is read, by the polyphase
+    /// resampler of `op: resample` ([`crate::dsp::resample`]); each channel from its own rate,
+    /// so that a file whose channels run at several rates can be read whole.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub rate: Option<f64>,
+    /// NWB: the `ElectricalSeries` to read (its path in the file, or its name), needed when
+    /// the file holds several.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub series: Option<String>,
+    /// The format, for files whose extension does not say it (e.g. NWB saved as `.h5`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub format: Option<Format>,
+}
+
+impl Choice {
+    /// True when it reads everything as the file has it (nothing to record in a key).
+    pub fn is_default(&self) -> bool {
+        *self == Choice::default()
+    }
+
+    /// The checks that need no file: a positive, finite rate; a non-empty list of channels.
+    /// Errors name the field (`data.rate`, `data.channels`).
+    pub fn check(&self) -> Result<(), StageError> {
+        if let Some(rate) = self.rate {
+            if !(rate.is_finite() && rate > 0.0) {
+                return Err(StageError::param(
+                    "data.rate",
+                    format!("expected a positive number of Hz, found {rate}"),
+                ));
+            }
+        }
+        if self.channels.as_ref().is_some_and(Vec::is_empty) {
+            return Err(StageError::param(
+                "data.channels",
+                "expected at least one channel name",
+            ));
+        }
+        Ok(())
+    }
+}
+
+/// A recording format, told by the file's extension (or `data.format`: `edf`, `brainvision`,
+/// `nwb`).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
 pub enum Format {
     /// EDF, EDF+, BDF, BDF+ (every extension but the BrainVision ones: the header says which).
     Edf,
     /// BrainVision Core Data Format, read through its `.vhdr` header.
     BrainVision,
+    /// Neurodata Without Borders (`.nwb`, HDF5): an `ElectricalSeries` ([`nwb`], cargo
+    /// feature `nwb`).
+    Nwb,
 }
 
 impl Format {
@@ -71,6 +127,7 @@ impl Format {
             .unwrap_or_default();
         match ext.as_str() {
             "vhdr" => Ok(Format::BrainVision),
+            "nwb" => Ok(Format::Nwb),
             "eeg" | "vmrk" => Err(StageError::input(format!(
                 "{}: this is the data or marker file of a BrainVision recording; point data.recordings at its header (.vhdr), which names both",
                 path.display()
@@ -84,22 +141,62 @@ impl Format {
         match self {
             Format::Edf => "EDF/BDF",
             Format::BrainVision => "BrainVision",
+            Format::Nwb => "NWB",
+        }
+    }
+
+    /// The format of `path` as `data.format` gives it, where the extension does not say it:
+    /// `.edf`, `.bdf`, `.vhdr` and `.nwb` say it themselves, and a `data.format` that
+    /// disagrees with them is an error naming the field.
+    pub fn chosen(path: &Path, choice: &Choice) -> Result<Format, StageError> {
+        let told = Format::of(path)?;
+        let ext = path
+            .extension()
+            .map(|e| e.to_string_lossy().to_ascii_lowercase())
+            .unwrap_or_default();
+        let says = matches!(ext.as_str(), "edf" | "bdf" | "vhdr" | "nwb");
+        match choice.format {
+            Some(f) if says && f != told => Err(StageError::input(format!(
+                "{}: data.format: the pipeline says {}, but the extension .{ext} says {}",
+                path.display(),
+                f.name(),
+                told.name()
+            ))),
+            Some(f) => Ok(f),
+            None => Ok(told),
         }
     }
 }
 
-/// A recording whose header and sidecars have been read, in either format.
+/// A recording whose header and sidecars have been read, in any format.
 enum AnyOpened {
     Edf(Opened),
     BrainVision(brainvision::Opened),
+    #[cfg(feature = "nwb")]
+    Nwb(nwb::Opened),
 }
 
 impl AnyOpened {
     /// Open `path` in its format; `events: None` reads no events at all.
-    fn open(path: &Path, events: Option<EventSource>) -> Result<AnyOpened, StageError> {
-        Ok(match Format::of(path)? {
-            Format::Edf => AnyOpened::Edf(Opened::open(path, events)?),
-            Format::BrainVision => AnyOpened::BrainVision(brainvision::Opened::open(path, events)?),
+    fn open(
+        path: &Path,
+        events: Option<EventSource>,
+        choice: &Choice,
+    ) -> Result<AnyOpened, StageError> {
+        choice.check()?;
+        Ok(match Format::chosen(path, choice)? {
+            Format::Edf => AnyOpened::Edf(Opened::open(path, events, choice)?),
+            Format::BrainVision => {
+                AnyOpened::BrainVision(brainvision::Opened::open(path, events, choice)?)
+            }
+            #[cfg(feature = "nwb")]
+            Format::Nwb => AnyOpened::Nwb(nwb::Opened::open(path, events, choice)?),
+            #[cfg(not(feature = "nwb"))]
+            Format::Nwb => {
+                return Err(nwb_series(path).err().unwrap_or_else(|| {
+                    StageError::input(format!("{}: no NWB support", path.display()))
+                }))
+            }
         })
     }
 
@@ -107,6 +204,8 @@ impl AnyOpened {
         match self {
             AnyOpened::Edf(o) => o.layout,
             AnyOpened::BrainVision(o) => o.layout,
+            #[cfg(feature = "nwb")]
+            AnyOpened::Nwb(o) => o.layout,
         }
     }
 
@@ -114,6 +213,8 @@ impl AnyOpened {
         match self {
             AnyOpened::Edf(o) => &o.warnings,
             AnyOpened::BrainVision(o) => &o.warnings,
+            #[cfg(feature = "nwb")]
+            AnyOpened::Nwb(o) => &o.warnings,
         }
     }
 
@@ -121,6 +222,8 @@ impl AnyOpened {
         match self {
             AnyOpened::Edf(o) => o.read(),
             AnyOpened::BrainVision(o) => o.read(),
+            #[cfg(feature = "nwb")]
+            AnyOpened::Nwb(o) => o.read(),
         }
     }
 }
@@ -134,7 +237,20 @@ pub fn read_recording(
     events: EventSource,
     notes: &mut Notes,
 ) -> Result<LabelledArray, StageError> {
-    let opened = AnyOpened::open(path, Some(events))?;
+    read_chosen(path, events, &Choice::default(), notes)
+}
+
+/// [`read_recording`] of the channels `choice` names, resampled to its rate when it gives one.
+/// A problem with the choice (a channel the file lacks, a rate no rational factor within
+/// [`MAX_FACTOR`](crate::dsp::resample::MAX_FACTOR) reaches) is an error naming the file and
+/// the field.
+pub fn read_chosen(
+    path: &Path,
+    events: EventSource,
+    choice: &Choice,
+    notes: &mut Notes,
+) -> Result<LabelledArray, StageError> {
+    let opened = AnyOpened::open(path, Some(events), choice)?;
     for warning in opened.warnings() {
         notes.warn(warning.as_str());
     }
@@ -143,13 +259,39 @@ pub fn read_recording(
 
 /// The layout [`read_recording`] would return, reading only the headers and sidecars.
 pub fn read_recording_layout(path: &Path, events: EventSource) -> Result<Layout, StageError> {
-    Ok(AnyOpened::open(path, Some(events))?.into_layout())
+    read_chosen_layout(path, events, &Choice::default())
+}
+
+/// The layout [`read_chosen`] would return, reading only the headers and sidecars.
+pub fn read_chosen_layout(
+    path: &Path,
+    events: EventSource,
+    choice: &Choice,
+) -> Result<Layout, StageError> {
+    Ok(AnyOpened::open(path, Some(events), choice)?.into_layout())
 }
 
 /// The layout of a recording without its events (channels, rate, length): for looking at a
 /// dataset before knowing where, or whether, its events are.
-pub fn read_recording_layout_without_events(path: &Path) -> Result<Layout, StageError> {
-    Ok(AnyOpened::open(path, None)?.into_layout())
+pub fn read_recording_layout_without_events(
+    path: &Path,
+    choice: &Choice,
+) -> Result<Layout, StageError> {
+    Ok(AnyOpened::open(path, None, choice)?.into_layout())
+}
+
+/// The paths of the NWB `ElectricalSeries` in `path` (for `phasewise new`); an error naming
+/// the file when it cannot be read, or when phasewise was built without the `nwb` feature.
+pub fn nwb_series(path: &Path) -> Result<Vec<String>, StageError> {
+    #[cfg(feature = "nwb")]
+    return nwb::electrical_series(path);
+    #[cfg(not(feature = "nwb"))]
+    Err(StageError::input(format!(
+        "{}: this is an NWB file, and this phasewise was built without NWB support; build it \
+         with `cargo build --release --features nwb` (needs the system's HDF5 library, e.g. \
+         Debian's libhdf5-dev)",
+        path.display()
+    )))
 }
 
 /// Bumped whenever what the reader makes of the same files changes (version 2: electrode
@@ -327,6 +469,121 @@ mod tests {
         check_values("bioplus.bdf", &array);
         check_annotations("bioplus.bdf", &array);
         assert_eq!(types(&array), ["EEG", "EOG"]);
+    }
+
+    // `data.rate` against scipy: tests/reference/gen_multirate.py writes a BDF whose channels run
+    // at 1000, 1000, 800, 500, 975 and 999 Hz with pyEDFlib 0.1.38, and resamples each channel
+    // that pyEDFlib reads back to 500 Hz with scipy.signal.resample_poly (scipy 1.13.1, its
+    // defaults). Our reader stores the values as f32 before resampling in f64 and stores f32
+    // again: 1e-6 of the channel's peak, checked away from the edges (the first and last 0.1 s;
+    // the same zero padding makes the edges agree too, which is checked to 1e-5).
+    #[test]
+    fn channels_at_several_rates_resampled_as_read_equal_scipy() {
+        let path = fixture_path("multirate", "rates.bdf");
+        let meta = read_json("multirate", "rates");
+        let labels = strings(&meta["labels"]);
+        // Without `data.rate`, the two 1000 Hz channels are the majority and the rest are
+        // dropped, each with a warning that points at `data.rate`.
+        let mut notes = Notes::default();
+        let plain = read_recording(&path, EventSource::Annotations, &mut notes).unwrap();
+        assert_eq!(plain.layout.labels("channel").unwrap(), ["A1", "A2"]);
+        assert_eq!(notes.warnings.len(), 4, "{:?}", notes.warnings);
+        assert!(notes.warnings.iter().all(|w| w.contains("`data.rate`")));
+        let choice = Choice {
+            rate: Some(500.0),
+            ..Choice::default()
+        };
+        let layout = read_chosen_layout(&path, EventSource::Annotations, &choice).unwrap();
+        let mut notes = Notes::default();
+        let array = read_chosen(&path, EventSource::Annotations, &choice, &mut notes).unwrap();
+        assert_eq!(array.layout, layout);
+        assert_eq!(layout.labels("channel").unwrap(), labels);
+        assert_eq!(layout.meta.sampling_rate, Some(500.0));
+        let time = layout.numbers("time").unwrap();
+        assert_eq!(time.len(), 2000);
+        assert_eq!(time[7], 7.0 / 500.0);
+        let values = array.real_values().unwrap();
+        for (row, label) in labels.iter().enumerate() {
+            let want: Vec<f64> = read_f64("multirate", &format!("{label}_500"))
+                .iter()
+                .map(|v| v * 1e-6)
+                .collect();
+            assert_eq!(want.len(), 2000, "{label}");
+            let peak = want.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+            let got: Vec<f64> = values
+                .index_axis(Axis(0), row)
+                .iter()
+                .map(|&v| f64::from(v))
+                .collect();
+            // |b| ≤ peak, so a floor of `peak` makes these differences relative to the peak.
+            let inner = max_rel_diff(&got[50..1950], &want[50..1950], peak);
+            let all = max_rel_diff(&got, &want, peak);
+            eprintln!("data.rate {label}: {inner:.1e} of the peak inside, {all:.1e} overall");
+            assert!(inner < 1e-6, "{label}: {inner:e}");
+            assert!(all < 1e-5, "{label}: {all:e}");
+        }
+    }
+
+    // `data.channels` picks channels by name; of one rate, they need no `data.rate`.
+    #[test]
+    fn chosen_channels_and_bad_choices_name_the_field() {
+        let path = fixture_path("multirate", "rates.bdf");
+        let pick = |channels: &[&str], rate: Option<f64>| Choice {
+            channels: Some(channels.iter().map(|c| c.to_string()).collect()),
+            rate,
+            ..Choice::default()
+        };
+        let layout =
+            read_chosen_layout(&path, EventSource::Annotations, &pick(&["A2", "A1"], None))
+                .unwrap();
+        assert_eq!(layout.labels("channel").unwrap(), ["A1", "A2"]);
+        assert_eq!(layout.meta.sampling_rate, Some(1000.0));
+        let array = read_chosen(
+            &path,
+            EventSource::Annotations,
+            &pick(&["A2"], None),
+            &mut Notes::default(),
+        )
+        .unwrap();
+        // Not resampled: pyEDFlib's values (uV) to f32 rounding.
+        let want: Vec<f64> = read_f64("multirate", "A2_in")
+            .iter()
+            .map(|v| v * 1e-6)
+            .collect();
+        let got: Vec<f64> = array
+            .real_values()
+            .unwrap()
+            .iter()
+            .map(|&v| f64::from(v))
+            .collect();
+        assert!(max_rel_diff(&got, &want, 1e-12) <= F32_ROUNDING);
+        let cases: Vec<(Choice, &str)> = vec![
+            (
+                pick(&["A1", "Q"], None),
+                "data.channels: the recording has no channel named \"Q\"",
+            ),
+            (
+                pick(&["A1", "A1"], None),
+                "data.channels: \"A1\" is listed twice",
+            ),
+            (pick(&["A1", "B"], None), "`data.rate`"),
+            (
+                pick(&["B"], Some(997.3)),
+                "data.rate: channel B: going from 800 Hz to 997.3 Hz",
+            ),
+            (
+                pick(&["B"], Some(0.0)),
+                "data.rate: expected a positive number of Hz",
+            ),
+        ];
+        for (choice, needle) in cases {
+            let err = read_chosen_layout(&path, EventSource::Annotations, &choice).unwrap_err();
+            let err = err.to_string();
+            assert!(err.contains(needle), "{choice:?}: {err}");
+            if !needle.contains("positive") {
+                assert!(err.contains("rates.bdf"), "{err}");
+            }
+        }
     }
 
     #[test]

@@ -19,9 +19,11 @@ use super::tsv::{
     candidate_sidecars, read_channels, read_coordinate_units, read_electrodes, read_events,
     ChannelRow,
 };
-use super::EventSource;
+use super::{Choice, EventSource};
 use crate::array::{Coord, Event, LabelledArray, Layout, Meta, Positions};
+use crate::dsp::resample::{factors, output_len, Resampler};
 use crate::error::StageError;
+use crate::ops::resample::resample_rows;
 
 /// A recording whose header and sidecars have been read and checked.
 pub struct Opened {
@@ -37,7 +39,11 @@ pub struct Opened {
 impl Opened {
     /// Read and check the header and sidecars of `path`; `events: None` reads no events (the
     /// layout's event list is empty), for a look at a dataset that may have none.
-    pub fn open(path: &Path, events: Option<EventSource>) -> Result<Opened, StageError> {
+    pub fn open(
+        path: &Path,
+        events: Option<EventSource>,
+        choice: &Choice,
+    ) -> Result<Opened, StageError> {
         let fail = |m: String| StageError::input(format!("{}: {m}", path.display()));
         let mut file = File::open(path).map_err(|e| fail(format!("cannot open: {e}")))?;
         let header = read_header(&mut file).map_err(fail)?;
@@ -48,8 +54,22 @@ impl Opened {
             false => None,
         };
         let mut warnings = Vec::new();
-        let selection = select(&header, sidecar.as_deref(), &mut warnings).map_err(fail)?;
-        let samples = header.records * selection.samples_per_record;
+        let selection = select(&header, sidecar.as_deref(), choice, &mut warnings).map_err(fail)?;
+        let samples = match &selection.resampled_from {
+            None => header.records * selection.samples_per_record,
+            Some(per_record) => {
+                let native: Vec<(&str, f64, usize)> = (selection.channels.iter().zip(per_record))
+                    .map(|(c, &n)| {
+                        (
+                            c.name.as_str(),
+                            n as f64 / header.record_seconds,
+                            n * header.records,
+                        )
+                    })
+                    .collect();
+                resampled_length(&native, selection.rate).map_err(fail)?
+            }
+        };
         let length = samples as f64 / selection.rate;
         let annotations = annotations(&mut file, &header, selection.rate).map_err(fail)?;
         let events = match (annotations, events) {
@@ -57,10 +77,10 @@ impl Opened {
             (Some(found), Some(EventSource::Annotations)) => found,
             (_, Some(events)) => sidecar_events(path, events, &events_path, length, &mut warnings)?,
         };
-        let mut layout = layout(&selection, samples, events);
-        add_positions_and_bad_channels(
-            &mut layout,
+        let layout = full_layout(
             &selection,
+            samples,
+            events,
             sidecar.as_deref(),
             [&electrodes_path, &coordsystem_path],
         )?;
@@ -73,7 +93,7 @@ impl Opened {
         })
     }
 
-    /// Read the samples of the kept channels, in volts.
+    /// Read the samples of the kept channels, in volts (resampled to `data.rate` when given).
     pub fn read(self) -> Result<LabelledArray, StageError> {
         let fail = |m: String| StageError::input(format!("{}: {m}", self.path.display()));
         let chosen: Vec<(usize, Scaling)> = self
@@ -87,16 +107,97 @@ impl Opened {
                 )
             })
             .collect();
-        let samples = self.header.records * self.selection.samples_per_record;
-        let mut values = Array2::<f32>::zeros((chosen.len(), samples));
-        let out = values
-            .as_slice_mut()
-            .ok_or_else(|| fail("internal: the output array is not contiguous".into()))?;
         let mut file = File::open(&self.path).map_err(|e| fail(format!("cannot open: {e}")))?;
-        read_samples(&mut file, &self.header, &chosen, out)
-            .map_err(|e| fail(format!("reading the data records failed: {e}")))?;
+        let mut read_rows = |rows: &[(usize, Scaling)], spr: usize| {
+            let mut values = Array2::<f32>::zeros((rows.len(), self.header.records * spr));
+            let out = values
+                .as_slice_mut()
+                .ok_or_else(|| fail("internal: the output array is not contiguous".into()))?;
+            read_samples(&mut file, &self.header, rows, out)
+                .map_err(|e| fail(format!("reading the data records failed: {e}")))?;
+            Ok::<_, StageError>(values)
+        };
+        let Some(per_record) = &self.selection.resampled_from else {
+            let values = read_rows(&chosen, self.selection.samples_per_record)?;
+            return LabelledArray::real(self.layout, values.into_dyn());
+        };
+        // `data.rate`: the channels of each native rate are read together, then resampled.
+        let samples = self.layout.coords[1].len();
+        let mut values = Array2::<f32>::zeros((chosen.len(), samples));
+        let mut rates: Vec<usize> = per_record.clone();
+        rates.sort_unstable();
+        rates.dedup();
+        for spr in rates {
+            let rows: Vec<usize> = (0..chosen.len())
+                .filter(|&r| per_record[r] == spr)
+                .collect();
+            let group: Vec<(usize, Scaling)> = rows.iter().map(|&r| chosen[r]).collect();
+            let native = read_rows(&group, spr)?;
+            let from = spr as f64 / self.header.record_seconds;
+            let resampled =
+                resample_to(native.view(), from, self.selection.rate, samples).map_err(fail)?;
+            for (k, &r) in rows.iter().enumerate() {
+                values.row_mut(r).assign(&resampled.row(k));
+            }
+        }
         LabelledArray::real(self.layout, values.into_dyn())
     }
+}
+
+/// The number of samples every channel has once resampled to `rate`: each channel's
+/// ⌈n·up/down⌉ (they agree when the channels span the same time; the shortest wins otherwise).
+/// `channels` holds each channel's name, rate and sample count. A rate that no factor within
+/// [`MAX_FACTOR`](crate::dsp::resample::MAX_FACTOR) reaches is an error naming `data.rate`.
+pub(super) fn resampled_length(
+    channels: &[(&str, f64, usize)],
+    rate: f64,
+) -> Result<usize, String> {
+    let mut shortest = usize::MAX;
+    for &(name, from, n) in channels {
+        let (up, down) =
+            factors(from, rate).map_err(|m| format!("data.rate: channel {name}: {m}"))?;
+        shortest = shortest.min(output_len(n, up, down));
+    }
+    Ok(if channels.is_empty() { 0 } else { shortest })
+}
+
+/// For a format whose channels share one rate (`from` Hz): the rows of `all` (every channel of
+/// the file, in file order) that `selection` keeps, resampled to its rate when `data.rate` asks,
+/// to the length of `layout`'s time axis.
+pub(super) fn finish_single_rate(
+    all: Array2<f32>,
+    selection: &Selection,
+    from: f64,
+    layout: &Layout,
+) -> Result<Array2<f32>, String> {
+    let rows: Vec<usize> = selection.channels.iter().map(|c| c.signal).collect();
+    let kept = match rows.iter().copied().eq(0..all.nrows()) {
+        true => all,
+        false => all.select(ndarray::Axis(0), &rows),
+    };
+    match selection.resampled_from {
+        None => Ok(kept),
+        Some(_) => {
+            let samples = layout.coords[layout.dims.len() - 1].len();
+            resample_to(kept.view(), from, selection.rate, samples)
+        }
+    }
+}
+
+/// Every row of `x` (sampled at `from` Hz) resampled to `to` Hz by the resampler of
+/// `op: resample`, cut to `samples` columns.
+pub(super) fn resample_to(
+    x: ndarray::ArrayView2<'_, f32>,
+    from: f64,
+    to: f64,
+    samples: usize,
+) -> Result<Array2<f32>, String> {
+    let (up, down) = factors(from, to).map_err(|m| format!("data.rate: {m}"))?;
+    let out = resample_rows(x, &Resampler::new(up, down));
+    if out.ncols() == samples {
+        return Ok(out);
+    }
+    Ok(out.slice(ndarray::s![.., ..samples]).to_owned())
 }
 
 /// The events of `events: sidecar`, or the error for `events: annotations` on a file without
@@ -314,6 +415,20 @@ fn positions(
         units: "1".into(),
         by_channel,
     })))
+}
+
+/// [`layout`] with the electrode positions and bad channels added
+/// ([`add_positions_and_bad_channels`]): the layout every format's reader ends with.
+pub(super) fn full_layout(
+    selection: &Selection,
+    samples: usize,
+    events: Vec<Event>,
+    sidecar: Option<&[ChannelRow]>,
+    positions: [&Path; 2],
+) -> Result<Layout, StageError> {
+    let mut layout = layout(selection, samples, events);
+    add_positions_and_bad_channels(&mut layout, selection, sidecar, positions)?;
+    Ok(layout)
 }
 
 /// dims [channel, time], time k/fs in s, values in volts.
