@@ -113,6 +113,22 @@ fn key_schema(section: &str, key: &str, ops: &[Value]) -> Option<Value> {
             "description": "sidecar: BIDS *_events.tsv beside each recording; \
                 annotations: the events inside the file (EDF+ annotations, BrainVision markers).",
         }),
+        ("data", "channels") => json!({
+            "type": "array",
+            "items": { "type": "string" },
+            "minItems": 1,
+            "description": "Read only these channels (names as in the file).",
+        }),
+        ("data", "rate") => json!({
+            "type": "number",
+            "exclusiveMinimum": 0,
+            "description": "Resample every channel to this rate (Hz) as it is read.",
+        }),
+        ("data", "series") => text("NWB: the ElectricalSeries to read (path or name)."),
+        ("data", "format") => json!({
+            "enum": ["edf", "brainvision", "nwb"],
+            "description": "Only where the file extension does not say the format.",
+        }),
         ("stage", "op") => json!({ "enum": ops, "description": "The op this stage runs." }),
         ("stage", "input") => json!({
             "description": "`recordings` or the name of another stage (a list for several).",
