@@ -25,11 +25,30 @@ use phasewise_stages::op::{DynOp, Input, Notes, Registered};
 use phasewise_stages::ops::clustering::Clustering;
 
 fn size(name: &str, default: usize) -> usize {
-    std::env::var(name).ok().and_then(|v| v.parse().ok()).unwrap_or(default)
+    std::env::var(name)
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(default)
 }
 
 /// f64 operations per pair, trial, frequency and time point (see the module's doc).
 const FLOPS_PER_TERM: f64 = 19.0;
+
+/// This process's CPU seconds (user + system) from /proc/self/stat (ticks of 1/100 s, the
+/// Linux default `USER_HZ`); 0 where there is no /proc.
+fn cpu_seconds() -> f64 {
+    let stat = std::fs::read_to_string("/proc/self/stat").unwrap_or_default();
+    let rest = stat.rsplit(')').next().unwrap_or("");
+    let fields: Vec<&str> = rest.split_whitespace().collect();
+    let tick = |i: usize| {
+        fields
+            .get(i)
+            .and_then(|v| v.parse::<f64>().ok())
+            .unwrap_or(0.0)
+    };
+    // After the command's closing parenthesis: state is field 0, utime 11, stime 12.
+    (tick(11) + tick(12)) / 100.0
+}
 
 fn clock_hz() -> f64 {
     std::fs::read_to_string("/proc/cpuinfo")
@@ -67,7 +86,9 @@ fn main() {
         .collect();
     let fs = 512.0;
     let layout = Layout {
-        dims: ["channel", "trial", "freq", "time"].map(String::from).to_vec(),
+        dims: ["channel", "trial", "freq", "time"]
+            .map(String::from)
+            .to_vec(),
         coords: vec![
             Coord::Labels((0..channels).map(|c| format!("C{c}")).collect()),
             Coord::Labels(conditions.clone()),
@@ -99,7 +120,9 @@ fn main() {
     let mut state = 0x2545_f491_4f6c_dd1du64;
     let values: Vec<Complex32> = (0..n)
         .map(|_| {
-            state = state.wrapping_mul(6_364_136_223_846_793_005).wrapping_add(1);
+            state = state
+                .wrapping_mul(6_364_136_223_846_793_005)
+                .wrapping_add(1);
             let a = ((state >> 11) as f64 / (1u64 << 53) as f64) * std::f64::consts::TAU;
             let r = 0.5 + ((state >> 40) & 0xff) as f64 / 255.0;
             Complex32::new((r * a.cos()) as f32, (r * a.sin()) as f32)
@@ -122,13 +145,15 @@ fn main() {
         array: &input,
     }];
     let threads = rayon::current_num_threads();
-    let mut tries = Vec::new();
+    let (mut tries, mut cpus) = (Vec::new(), Vec::new());
     for _ in 0..5 {
-        let t = Instant::now();
+        let (t, c) = (Instant::now(), cpu_seconds());
         let out = op.run(&inputs, &mut Notes::default()).unwrap();
         tries.push(t.elapsed().as_secs_f64());
+        cpus.push(cpu_seconds() - c);
         std::hint::black_box(out);
     }
+    let cpu = cpus.iter().copied().fold(f64::INFINITY, f64::min);
     let best = tries.iter().copied().fold(f64::INFINITY, f64::min);
     let pairs = channels * (channels - 1) / 2;
     let terms = (pairs * trials * freqs * times) as f64;
@@ -143,7 +168,16 @@ fn main() {
     );
     println!(
         "  op {best:.3} s (best of 5: {})",
-        tries.iter().map(|t| format!("{t:.3}")).collect::<Vec<_>>().join(", ")
+        tries
+            .iter()
+            .map(|t| format!("{t:.3}"))
+            .collect::<Vec<_>>()
+            .join(", ")
+    );
+    println!(
+        "  CPU {cpu:.2} s (user + system, least of 5; on a machine shared with other work the \
+         wall time counts their turns too): CPU / threads / floor {:.2}x",
+        cpu / threads as f64 / ((flops / peak).max(bytes / bw))
     );
     println!(
         "  floor {floor:.3} s = max(arithmetic {:.2} GFLOP / {:.0} GFLOP/s nominal = {:.3} s, \
