@@ -445,8 +445,10 @@ class Clock:
         self.seconds[name] = self.seconds.get(name, 0.0) + seconds
 
 
-def run_subject(path, order, stages, clock):
-    """One subject's chain; returns {stage: output} for the stages the caller wants kept."""
+def run_subject(path, order, stages, clock, exports=(), out=None):
+    """One subject's chain; returns {stage: output} for the stages the caller wants kept. The
+    stages named in `exports` are written to `out` as they are computed (timed as `write`), as
+    a study that exports per-subject results does."""
     t = time.perf_counter()
     rec = read_recording(path)
     clock.add("read", time.perf_counter() - t)
@@ -463,6 +465,10 @@ def run_subject(path, order, stages, clock):
         else:
             raise SystemExit(f"peer: op {stage['op']!r} is not implemented")
         clock.add(name, time.perf_counter() - t)
+        if name in exports:
+            t = time.perf_counter()
+            save(out, subject_of(path), name, rec)
+            clock.add("write", time.perf_counter() - t)
     return rec, kept
 
 
@@ -497,6 +503,8 @@ def main():
     ap.add_argument("--save", action="append", default=[],
                     help="per-subject stage whose output to write (the last per-subject "
                          "stage before aggregate, for the agreement check)")
+    ap.add_argument("--export", action="append", default=[],
+                    help="per-subject stage whose output to write as it is computed (timed)")
     ap.add_argument("--timings", required=True, help="JSON file for the per-stage seconds")
     args = ap.parse_args()
 
@@ -509,7 +517,7 @@ def main():
     per_subject = {}
     for path in recordings:
         subject = subject_of(path)
-        last, kept = run_subject(path, order, stages, clock)
+        last, kept = run_subject(path, order, stages, clock, args.export, args.out)
         pair_meta = {k: last[k] for k in ("conditions", "measures", "pairs") if k in last}
         for name in args.save:
             save(args.out, subject, name, last)

@@ -110,6 +110,41 @@ pub fn write_then_rename<T>(
     replace_via_temp(path, abort_before_rename, true, fill)
 }
 
+/// [`write_then_rename`] without the fsyncs, for a cache object's values and record: every read
+/// checks an object against the content hash in its record, so one that a power loss left
+/// incomplete is recomputed, never used; an exported object is made durable when it is linked
+/// ([`link_then_rename`]). See DEVELOPERS.md "Durability".
+pub fn write_then_rename_unsynced<T>(
+    path: &Path,
+    abort_before_rename: bool,
+    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, Declined>>,
+) -> std::io::Result<Result<T, Declined>> {
+    replace_via_temp(path, abort_before_rename, false, fill)
+}
+
+/// Make `source` durable (fsync), then give it the name `path` too: a hard link under a
+/// temporary name in `path`'s folder, renamed over `path`, and the folder fsynced. No byte is
+/// copied. Fails (and leaves nothing behind) where the two are on different filesystems or the
+/// filesystem has no hard links; the caller then copies.
+pub fn link_then_rename(source: &File, source_path: &Path, path: &Path) -> std::io::Result<()> {
+    source.sync_all()?;
+    let dir = path.parent().unwrap_or(Path::new("."));
+    std::fs::create_dir_all(dir)?;
+    let temp = dir.join(format!(
+        "{TEMP_PREFIX}{}-{}-link",
+        std::process::id(),
+        TEMP_COUNTER.fetch_add(1, Ordering::Relaxed),
+    ));
+    std::fs::hard_link(source_path, &temp)?;
+    std::fs::rename(&temp, path).inspect_err(|_| {
+        let _ = std::fs::remove_file(&temp);
+    })?;
+    if let Ok(d) = File::open(dir) {
+        let _ = d.sync_all();
+    }
+    Ok(())
+}
+
 /// [`write_then_rename`], with the fsyncs of the file and its folder only when `durable`.
 fn replace_via_temp<T>(
     path: &Path,

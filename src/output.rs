@@ -222,7 +222,21 @@ pub fn export(
         path: npy_path.clone(),
         message: e.to_string(),
     };
+    // A stored object is exported as a second name of its file (no copy; hash-checked on the
+    // way); where no link can be made (another filesystem), it is copied, or written from
+    // memory. An array in memory whose stored object turns out damaged is written from memory.
+    let linked = match record.stored {
+        true => match store.link_object(&record.key, record, &npy_path) {
+            Ok(Ok(())) => true,
+            Ok(Err(why)) if matches!(from, ExportFrom::Object) => {
+                return Err(ExportError::Damaged(why))
+            }
+            Ok(Err(_)) | Err(_) => false,
+        },
+        false => false,
+    };
     match from {
+        _ if linked => {}
         ExportFrom::Object => {
             store
                 .copy_object(&record.key, record, &npy_path)

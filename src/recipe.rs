@@ -17,6 +17,16 @@
 //! Besides the variant, a recipe says whether the output is stored and for which group units
 //! the unit's output is *prepared* in its own chain (in parallel with the other subjects).
 //!
+//! **Storage policy** ([`storage_policy`], applied when the pipeline is resolved, so that the
+//! plan's freshness rules and every recipe below follow from it): a stage whose `cache` the
+//! file does not set, that is not exported, whose op computes its output in parts and whose
+//! only consumer takes it as its only input and slices along that axis (the wavelet or hilbert
+//! coefficients feeding `clustering`) is not stored. Its output — complex coefficients, the
+//! largest array of a chain — is then `streamed` into its consumer a part at a time, and
+//! recomputed from the cached epochs when it is needed again: its transforms cost less than
+//! writing it, reading it back and checking its hash. `cache: true` stores it anyway. `plan`
+//! and the manifest's recipe say `not stored (storage policy)`.
+//!
 //! A layout that depends on values (an `epoch` with rejection does not know its trial count in
 //! advance) cannot be planned; a recipe that needed one is marked `provisional`, and the
 //! executor decides that unit again, with the same functions, once its chain has computed what
@@ -88,6 +98,10 @@ pub struct Recipe {
     /// The same, as unit indices.
     #[serde(skip)]
     pub prepared_for_units: Vec<usize>,
+    /// True when the storage policy, not the pipeline file, decided that its output is not
+    /// stored ([`storage_policy`]).
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub unstored_by_policy: bool,
     /// True when a layout it depends on is known only once values are: the run decides again.
     #[serde(default, skip_serializing_if = "std::ops::Not::not")]
     pub provisional: bool,
@@ -122,11 +136,38 @@ impl std::fmt::Display for Recipe {
         }
         if !self.stored && self.how != How::Cached {
             write!(f, ", not stored")?;
+            if self.unstored_by_policy {
+                write!(f, " (storage policy; `cache: true` stores it)")?;
+            }
         }
         if self.provisional {
             write!(f, " (provisional: settled when its layout is known)")?;
         }
         Ok(())
+    }
+}
+
+/// The runner's storage policy (see the module's doc): marks as not stored every stage whose
+/// `cache` the file leaves unset, that is not exported, whose op computes parts along an axis
+/// and whose only consumer has it as its only input and slices along that axis — the stages
+/// that [`Decider::streamed_input`] then streams. A pure function of the resolved stages.
+pub fn storage_policy(stages: &mut [crate::pipeline::ResolvedStage]) {
+    for s in 0..stages.len() {
+        let stage = &stages[s];
+        if stage.cache_given || stage.export || !stage.cache {
+            continue;
+        }
+        let Some(axis) = stage.op.part_axis() else {
+            continue;
+        };
+        let &[c] = &stage.consumers[..] else {
+            continue;
+        };
+        let consumer = &stages[c];
+        if consumer.inputs[..] == [Some(s)] && consumer.op.slices_along(axis) {
+            stages[s].cache = false;
+            stages[s].unstored_by_policy = true;
+        }
     }
 }
 
@@ -203,6 +244,7 @@ impl<'s> Decider<'s> {
                 .map(|&g| self.study.stage_name(g).to_string())
                 .collect(),
             prepared_for_units,
+            unstored_by_policy: stage.unstored_by_policy,
             provisional: false,
             fallback: None,
         };

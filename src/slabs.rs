@@ -322,7 +322,7 @@ impl Store {
         };
         let written = if stored {
             let abort = std::env::var_os(store::ABORT_BEFORE_RENAME).is_some();
-            fsio::write_then_rename(&npy_path, abort, |file| {
+            fsio::write_then_rename_unsynced(&npy_path, abort, |file| {
                 write(file).map(|r| r.map_err(Declined::Wrong))
             })
             .map(|r| r.map_err(|declined| declined.to_string()))

@@ -73,6 +73,9 @@ pub struct RawStage {
     pub params: Node,
     /// Whether the output is stored in the cache.
     pub cache: bool,
+    /// True when the file says `cache:` for this stage (else the runner's storage policy may
+    /// decide, [`crate::recipe::storage_policy`]).
+    pub cache_given: bool,
     /// Whether the output is exported.
     pub export: bool,
 }
@@ -271,6 +274,7 @@ fn read_stage(key: &Node, node: &Node, c: &mut Collector<'_>) -> Option<RawStage
             kind: NodeKind::Map(Vec::new()),
         },
         cache: true,
+        cache_given: false,
         export: false,
     };
     for (key, value) in entries {
@@ -284,7 +288,10 @@ fn read_stage(key: &Node, node: &Node, c: &mut Collector<'_>) -> Option<RawStage
                     stage.params = value.clone();
                 }
             }
-            "cache" => stage.cache = boolean(value, &sub, c).unwrap_or(true),
+            "cache" => {
+                stage.cache = boolean(value, &sub, c).unwrap_or(true);
+                stage.cache_given = true;
+            }
             "export" => stage.export = boolean(value, &sub, c).unwrap_or(false),
             _ => unknown_key(key, k, &format!("{field}."), STAGE_KEYS, c),
         }

@@ -71,6 +71,11 @@ pub struct ResolvedStage {
     pub consumers: Vec<usize>,
     /// Whether outputs are stored in the cache.
     pub cache: bool,
+    /// True when the file says `cache:` for this stage.
+    pub cache_given: bool,
+    /// True when the runner's storage policy decided not to store it
+    /// ([`crate::recipe::storage_policy`]).
+    pub unstored_by_policy: bool,
     /// Whether outputs are exported (asked for, or consumed by nothing).
     pub export: bool,
     /// True when the op joins subjects.
@@ -396,12 +401,15 @@ fn finish_stages(
             inputs,
             consumers,
             cache: r.cache,
+            cache_given: r.cache_given,
+            unstored_by_policy: false,
             export,
             joins,
             group,
             params_node: r.params.clone(),
         });
     }
+    crate::recipe::storage_policy(&mut stages);
     ok.then_some(stages)
 }
 

@@ -30,7 +30,9 @@ use std::sync::Arc;
 use phasewise_stages::{LabelledArray, Layout, Notes, Values};
 use serde::{Deserialize, Serialize};
 
-use crate::fsio::{atomic_write, bookkeeping_write, write_then_rename, Declined};
+use crate::fsio::{
+    bookkeeping_write, link_then_rename, write_then_rename, write_then_rename_unsynced, Declined,
+};
 use crate::key::Fingerprint;
 
 pub(crate) mod npy;
@@ -326,6 +328,45 @@ impl Store {
         copied.map(|r| r.map_err(|declined| declined.to_string()))
     }
 
+    /// Give a stored object's values the name `path` without copying them (an export): its
+    /// values are read once and checked against the record's content hash, made durable, then
+    /// hard-linked ([`link_then_rename`]). `Ok(Err(why))` when the object is damaged (nothing
+    /// is written); an I/O error when the link cannot be made (another filesystem): the caller
+    /// copies instead.
+    pub fn link_object(
+        &self,
+        key: &str,
+        record: &ObjectRecord,
+        path: &Path,
+    ) -> std::io::Result<Result<(), String>> {
+        let (npy, _) = self.object_paths(key);
+        let mut from = match File::open(&npy) {
+            Ok(f) => f,
+            Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
+        };
+        let mut hasher = blake3::Hasher::new();
+        let mut buffer = vec![0u8; READ_CHUNK];
+        let mut total = 0u64;
+        loop {
+            let n = match from.read(&mut buffer) {
+                Ok(0) => break,
+                Ok(n) => n,
+                Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
+                Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
+            };
+            hash_update(&mut hasher, &buffer[..n]);
+            total += n as u64;
+        }
+        let hash = hasher.finalize().to_hex().to_string();
+        if hash != record.blake3 || total != record.npy_size {
+            return Ok(Err(format!(
+                "its values' blake3 is {hash}, the record says {}",
+                record.blake3
+            )));
+        }
+        link_then_rename(&from, &npy, path).map(Ok)
+    }
+
     /// Write an object (values only when `stored`), NPY first, record last. The NPY is streamed
     /// from the array's memory to the file and hashed on the way; for `cache: false` it is only
     /// hashed. Its bytes (and so its blake3) are those of [`npy_bytes`].
@@ -418,7 +459,9 @@ struct LastRecord {
 /// Write an object's record (atomically).
 pub(crate) fn write_record(json_path: &Path, record: &ObjectRecord) -> Result<(), StoreError> {
     let json = serde_json::to_vec_pretty(record).map_err(|e| StoreError::Encode(e.to_string()))?;
-    atomic_write(json_path, &json).map_err(|source| StoreError::Write {
+    // Not fsynced: a record lost or left incomplete by a power loss makes its object absent
+    // or damaged (recomputed), never wrong; see DEVELOPERS.md "Durability".
+    bookkeeping_write(json_path, &json).map_err(|source| StoreError::Write {
         path: json_path.to_path_buf(),
         source,
     })
@@ -465,7 +508,7 @@ fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, Unreadable> {
 
 fn write_object_file(path: &Path, values: &Values) -> Result<(String, u64), StoreError> {
     let abort = std::env::var_os(ABORT_BEFORE_RENAME).is_some();
-    let written = write_then_rename(path, abort, |file| {
+    let written = write_then_rename_unsynced(path, abort, |file| {
         Ok(stream_npy(values, file).map_err(|e| Declined::Wrong(e.to_string())))
     });
     match written {

@@ -152,6 +152,47 @@ fn a_stored_wavelet_is_computed_whole_and_nothing_streams() {
 }
 
 #[test]
+fn the_storage_policy_streams_a_wavelet_whose_cache_is_not_written() {
+    // Issue 21: without a `cache:` line the runner decides; coefficients that stream into
+    // their only consumer are not stored, and plan and manifest say that the policy chose it.
+    let dir = tempfile::tempdir().unwrap();
+    let unset =
+        "    cache: false                        # coefficients are handed on, not stored\n";
+    let pipeline = demo(dir.path(), &[(REJECT, ""), (unset, "")]);
+    let plan = plan_json(dir.path(), &pipeline, &[]);
+    let tf = recipe(&plan, "tf");
+    assert_eq!(tf["run"], "streamed", "{tf}");
+    assert_eq!(tf["stored"], false);
+    assert_eq!(tf["unstored_by_policy"], true);
+    assert_eq!(recipe(&plan, "sync")["run"], "parts");
+    assert!(recipe(&plan, "sync").get("unstored_by_policy").is_none());
+    let text = phasewise(dir.path(), &["plan", pipeline.to_str().unwrap()]);
+    assert!(text.contains("not stored (storage policy"), "{text}");
+    // The manifest records the recipe each computed unit ran with.
+    phasewise(dir.path(), &["run", pipeline.to_str().unwrap(), "-q"]);
+    let manifest: Value = serde_json::from_str(
+        &std::fs::read_to_string(dir.path().join("results/manifest.json")).unwrap(),
+    )
+    .unwrap();
+    let tf_units: Vec<&Value> = manifest["units"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|u| u["stage"] == "tf")
+        .collect();
+    assert_eq!(tf_units.len(), SUBJECTS);
+    for unit in tf_units {
+        assert_eq!(unit["recipe"]["unstored_by_policy"], true, "{unit}");
+    }
+    // `cache: true` written: stored, nothing streams.
+    let other = tempfile::tempdir().unwrap();
+    let asked = demo(other.path(), &[(REJECT, ""), (unset, "    cache: true\n")]);
+    let plan = plan_json(other.path(), &asked, &[]);
+    assert_eq!(recipe(&plan, "tf")["run"], "whole");
+    assert_eq!(recipe(&plan, "tf")["stored"], true);
+}
+
+#[test]
 fn a_changed_baseline_names_its_param_cascades_to_the_group_and_runs_in_slabs() {
     let dir = tempfile::tempdir().unwrap();
     let pipeline = demo(dir.path(), &[]);

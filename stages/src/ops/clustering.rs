@@ -698,7 +698,9 @@ const PAIR_CHUNK: usize = 64;
 
 /// The measures of every pair over the trials of one condition into `out`, laid out
 /// [measure, pair, freq, time]: one frequency at a time (one slab of all used channels in
-/// memory), the pairs in parallel chunks.
+/// memory), the pairs in parallel chunks, each chunk a tile of time blocks at a time
+/// ([`trial_sums::TILE_BLOCKS`]: the tile's planes stay in cache while every pair of the chunk
+/// reads them). Every sum runs over the trials in trial order whatever the tiling.
 fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: &mut [f32]) {
     let needs = Needs::of(&plan.measures);
     let (nm, np, nf, nt) = (plan.measures.len(), plan.pairs.len(), x.freqs, x.times);
@@ -708,6 +710,7 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
         slot[c] = i;
     }
     let mut slab = vec![Planes::new(needs, n, nt); used.len()];
+    let nblocks = trial_sums::blocks(nt);
     for f in 0..nf {
         slab.par_iter_mut()
             .zip(used)
@@ -716,15 +719,19 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
             .pairs
             .par_chunks(PAIR_CHUNK)
             .map(|chunk| {
-                let mut sums = PairSums::new(needs, trial_sums::blocks(nt));
+                let mut sums = PairSums::new(needs, trial_sums::TILE_BLOCKS.min(nblocks));
                 let mut vals = vec![0.0f32; chunk.len() * nm * nt];
-                for (i, &(a, b)) in chunk.iter().enumerate() {
-                    let (pa, pb) = (&slab[slot[a]], &slab[slot[b]]);
-                    sums.compute(needs, pa, pb, n);
-                    let pair_vals = &mut vals[i * nm * nt..(i + 1) * nm * nt];
-                    for (&measure, v) in plan.measures.iter().zip(pair_vals.chunks_exact_mut(nt)) {
-                        for (t, v) in v.iter_mut().enumerate() {
-                            *v = sums.at(t, n, pa, pb).value(measure) as f32;
+                for first in (0..nblocks).step_by(trial_sums::TILE_BLOCKS) {
+                    let blocks = first..(first + trial_sums::TILE_BLOCKS).min(nblocks);
+                    let times = first * trial_sums::LANES..(blocks.end * trial_sums::LANES).min(nt);
+                    for (i, &(a, b)) in chunk.iter().enumerate() {
+                        let (pa, pb) = (&slab[slot[a]], &slab[slot[b]]);
+                        sums.compute_blocks(needs, pa, pb, n, blocks.clone());
+                        let pair_vals = &mut vals[i * nm * nt..(i + 1) * nm * nt];
+                        for (&measure, v) in
+                            plan.measures.iter().zip(pair_vals.chunks_exact_mut(nt))
+                        {
+                            sums.values(measure, times.clone(), n, (pa, pb), &mut v[times.clone()]);
                         }
                     }
                 }

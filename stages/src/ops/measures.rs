@@ -90,6 +90,7 @@ pub struct Sums {
 /// A coefficient as (unit phasor, amplitude), computed in f64 and stored as f32; a zero
 /// coefficient gives a zero phasor. Channels are converted once, so the per-pair loops need no
 /// square root or division.
+#[inline(always)]
 pub fn polar(z: Complex32) -> (Complex32, f32) {
     let z = Complex64::new(f64::from(z.re), f64::from(z.im));
     // |z| as sqrt(re² + im²): the squares of f32 values neither overflow nor underflow in f64,

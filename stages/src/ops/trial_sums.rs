@@ -109,7 +109,28 @@ impl Planes {
     /// Fills the planes with one channel's trials, `series(k)` being the coefficients of trial
     /// k at every time point; the trial count and time points are those of [`Planes::new`].
     /// The padding lanes are never written, so they stay zero.
+    ///
+    /// Compiled a second time for AVX2 and chosen at run time (as [`PairSums::compute_blocks`]):
+    /// the unit phasors' square roots and divisions are exactly rounded IEEE operations, so
+    /// the wider build gives the same bits.
     pub fn fill<'a>(&mut self, needs: Needs, series: impl Fn(usize) -> &'a [Complex32]) {
+        #[cfg(target_arch = "x86_64")]
+        if std::arch::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU supports AVX2, checked on the line above.
+            unsafe { self.fill_avx2(needs, series) };
+            return;
+        }
+        self.fill_any(needs, series);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn fill_avx2<'a>(&mut self, needs: Needs, series: impl Fn(usize) -> &'a [Complex32]) {
+        self.fill_any(needs, series);
+    }
+
+    #[inline(always)]
+    fn fill_any<'a>(&mut self, needs: Needs, series: impl Fn(usize) -> &'a [Complex32]) {
         let times = self.zero.len();
         let n = self.trials;
         self.zero.fill(false);
@@ -151,10 +172,27 @@ fn scatter(values: &[Complex32], k: usize, n: usize, re: &mut [f32], im: &mut [f
     }
 }
 
-/// The sums of one pair at every time point of a slab.
+/// Time blocks per tile: the pairs of a task are summed one tile of blocks at a time, so that
+/// the tile's planes of every channel (24 channels × 8 blocks × 50 trials × 4 lanes × 4 planes ×
+/// 4 bytes = 614 KB) stay in a core's L2 cache while every pair reads them, instead of each
+/// pair streaming its two channels' whole planes from memory. Only the loop order changes:
+/// every sum still runs over the trials in trial order.
+pub const TILE_BLOCKS: usize = 8;
+
+/// `out[i] = f(p[i], q[i]) as f32`, inlined so that `f` vectorises.
+#[inline(always)]
+fn zip2(p: &[f64], q: &[f64], f: impl Fn(f64, f64) -> f64, out: &mut [f32]) {
+    for ((o, &p), &q) in out.iter_mut().zip(p).zip(q) {
+        *o = f(p, q) as f32;
+    }
+}
+
+/// The sums of one pair at the time points of a range of blocks of a slab (a tile, or all).
 #[derive(Clone, Debug, Default)]
 pub struct PairSums {
     blocks: usize,
+    /// The first block of the range last computed.
+    first: usize,
     phasor_re: Vec<f64>,
     phasor_im: Vec<f64>,
     im: Vec<f64>,
@@ -170,6 +208,7 @@ impl PairSums {
         let take = |b: bool| if b { vec![0.0; len] } else { Vec::new() };
         PairSums {
             blocks,
+            first: 0,
             phasor_re: take(needs.phasor),
             phasor_im: take(needs.phasor),
             im: take(needs.im),
@@ -179,84 +218,172 @@ impl PairSums {
         }
     }
 
-    /// Fill with the sums of channels `a`, `b` over `trials` trials.
+    /// Fill with the sums of channels `a`, `b` over `trials` trials, every block.
+    pub fn compute(&mut self, needs: Needs, a: &Planes, b: &Planes, trials: usize) {
+        self.compute_blocks(needs, a, b, trials, 0..self.blocks);
+    }
+
+    /// Fill with the sums of channels `a`, `b` over `trials` trials for the blocks `range`
+    /// (at most the capacity of [`PairSums::new`]).
     ///
     /// On x86-64 CPUs with AVX2 the same code is compiled a second time for AVX2 and chosen at
     /// run time: four f64 lanes per instruction instead of two. The arithmetic is the same IEEE
     /// operations in the same order (no fused multiply-add: that is a separate feature, not
     /// enabled), so both versions give the same bits.
-    pub fn compute(&mut self, needs: Needs, a: &Planes, b: &Planes, trials: usize) {
+    pub fn compute_blocks(
+        &mut self,
+        needs: Needs,
+        a: &Planes,
+        b: &Planes,
+        trials: usize,
+        range: std::ops::Range<usize>,
+    ) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU supports AVX2, checked on the line above.
-            unsafe { self.compute_avx2(needs, a, b, trials) };
+            unsafe { self.compute_avx2(needs, a, b, trials, range) };
             return;
         }
-        self.compute_any(needs, a, b, trials);
+        self.compute_any(needs, a, b, trials, range);
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn compute_avx2(&mut self, needs: Needs, a: &Planes, b: &Planes, trials: usize) {
-        self.compute_any(needs, a, b, trials);
+    unsafe fn compute_avx2(
+        &mut self,
+        needs: Needs,
+        a: &Planes,
+        b: &Planes,
+        trials: usize,
+        range: std::ops::Range<usize>,
+    ) {
+        self.compute_any(needs, a, b, trials, range);
     }
 
     #[inline(always)]
-    fn compute_any(&mut self, needs: Needs, a: &Planes, b: &Planes, trials: usize) {
-        if needs.phasor {
-            phasor(a, b, trials, &mut self.phasor_re, &mut self.phasor_im);
-        }
-        if needs.raw() {
-            match (needs.abs_im, needs.im2, needs.sign) {
-                (true, false, false) => self.imag::<true, false, false>(a, b, trials),
-                (true, true, false) => self.imag::<true, true, false>(a, b, trials),
-                (false, false, true) => self.imag::<false, false, true>(a, b, trials),
-                (false, false, false) => self.imag::<false, false, false>(a, b, trials),
-                _ => self.imag::<true, true, true>(a, b, trials),
+    fn compute_any(
+        &mut self,
+        needs: Needs,
+        a: &Planes,
+        b: &Planes,
+        trials: usize,
+        range: std::ops::Range<usize>,
+    ) {
+        assert!(range.len() <= self.blocks, "more blocks than room");
+        self.first = range.start;
+        match (
+            needs.phasor,
+            needs.raw(),
+            needs.abs_im,
+            needs.im2,
+            needs.sign,
+        ) {
+            (true, false, ..) => {
+                self.fused::<true, false, false, false, false>(a, b, trials, range)
             }
+            (true, true, false, false, false) => {
+                self.fused::<true, true, false, false, false>(a, b, trials, range)
+            }
+            (true, true, true, false, false) => {
+                self.fused::<true, true, true, false, false>(a, b, trials, range)
+            }
+            (false, true, true, false, false) => {
+                self.fused::<false, true, true, false, false>(a, b, trials, range)
+            }
+            (false, true, true, true, false) => {
+                self.fused::<false, true, true, true, false>(a, b, trials, range)
+            }
+            (false, true, false, false, true) => {
+                self.fused::<false, true, false, false, true>(a, b, trials, range)
+            }
+            (false, true, false, false, false) => {
+                self.fused::<false, true, false, false, false>(a, b, trials, range)
+            }
+            (false, false, ..) => {}
+            (true, true, ..) => self.fused::<true, true, true, true, true>(a, b, trials, range),
+            (false, true, ..) => self.fused::<false, true, true, true, true>(a, b, trials, range),
         }
     }
 
+    /// One pass over the trials of each block of `range`, summing every asked-for quantity
+    /// side by side: Σ u_x conj u_y from the unit-phasor planes, and Σ Im S, Σ |Im S|,
+    /// Σ (Im S)², Σ sign Im S from the raw planes. Each lane's sums run over the trials in
+    /// trial order, in f64.
     #[inline(always)]
-    fn imag<const ABS: bool, const SQ: bool, const SIGN: bool>(
+    fn fused<const PH: bool, const IM: bool, const ABS: bool, const SQ: bool, const SIGN: bool>(
         &mut self,
         a: &Planes,
         b: &Planes,
         trials: usize,
+        range: std::ops::Range<usize>,
     ) {
         let span = trials * LANES;
-        for blk in 0..self.blocks {
+        for (i, blk) in range.enumerate() {
             let r = blk * span..(blk + 1) * span;
-            let (xr, xi) = (&a.raw_re[r.clone()], &a.raw_im[r.clone()]);
-            let (yr, yi) = (&b.raw_re[r.clone()], &b.raw_im[r]);
+            let (mut sr, mut si) = ([0.0f64; LANES], [0.0f64; LANES]);
             let (mut s, mut abs, mut sq, mut sg) =
                 ([0.0f64; LANES], [0.0; LANES], [0.0; LANES], [0.0; LANES]);
-            let rows = xr.chunks_exact(LANES).zip(xi.chunks_exact(LANES));
-            let rows = rows.zip(yr.chunks_exact(LANES).zip(yi.chunks_exact(LANES)));
-            for ((xr, xi), (yr, yi)) in rows {
-                for j in 0..LANES {
-                    // Im(X conj Y) = Im X Re Y − Re X Im Y.
-                    let v =
-                        f64::from(xi[j]) * f64::from(yr[j]) - f64::from(xr[j]) * f64::from(yi[j]);
-                    s[j] += v;
-                    if ABS {
-                        abs[j] += v.abs();
+            let (ar, ai, br, bi) = if PH {
+                (
+                    &a.unit_re[r.clone()],
+                    &a.unit_im[r.clone()],
+                    &b.unit_re[r.clone()],
+                    &b.unit_im[r.clone()],
+                )
+            } else {
+                (&[][..], &[][..], &[][..], &[][..])
+            };
+            let (xr, xi, yr, yi) = if IM {
+                (
+                    &a.raw_re[r.clone()],
+                    &a.raw_im[r.clone()],
+                    &b.raw_re[r.clone()],
+                    &b.raw_im[r],
+                )
+            } else {
+                (&[][..], &[][..], &[][..], &[][..])
+            };
+            for k in 0..trials {
+                let at = k * LANES;
+                if PH {
+                    let (ar, ai) = (&ar[at..at + LANES], &ai[at..at + LANES]);
+                    let (br, bi) = (&br[at..at + LANES], &bi[at..at + LANES]);
+                    for j in 0..LANES {
+                        let (xr, xi) = (f64::from(ar[j]), f64::from(ai[j]));
+                        let (yr, yi) = (f64::from(br[j]), f64::from(bi[j]));
+                        sr[j] += xr * yr + xi * yi;
+                        si[j] += xi * yr - xr * yi;
                     }
-                    if SQ {
-                        sq[j] += v * v;
-                    }
-                    if SIGN {
-                        // sign(0) = 0: a zero Im S is neither a lead nor a lag.
-                        sg[j] += f64::from(u8::from(v > 0.0)) - f64::from(u8::from(v < 0.0));
+                }
+                if IM {
+                    let (xr, xi) = (&xr[at..at + LANES], &xi[at..at + LANES]);
+                    let (yr, yi) = (&yr[at..at + LANES], &yi[at..at + LANES]);
+                    for j in 0..LANES {
+                        // Im(X conj Y) = Im X Re Y − Re X Im Y.
+                        let v = f64::from(xi[j]) * f64::from(yr[j])
+                            - f64::from(xr[j]) * f64::from(yi[j]);
+                        s[j] += v;
+                        if ABS {
+                            abs[j] += v.abs();
+                        }
+                        if SQ {
+                            sq[j] += v * v;
+                        }
+                        if SIGN {
+                            // sign(0) = 0: a zero Im S is neither a lead nor a lag.
+                            sg[j] += f64::from(u8::from(v > 0.0)) - f64::from(u8::from(v < 0.0));
+                        }
                     }
                 }
             }
-            let at = blk * LANES..(blk + 1) * LANES;
+            let at = i * LANES..(i + 1) * LANES;
             let put = |dst: &mut Vec<f64>, src: &[f64; LANES]| {
                 if !dst.is_empty() {
                     dst[at.clone()].copy_from_slice(src);
                 }
             };
+            put(&mut self.phasor_re, &sr);
+            put(&mut self.phasor_im, &si);
             put(&mut self.im, &s);
             put(&mut self.abs_im, &abs);
             put(&mut self.im2, &sq);
@@ -264,10 +391,12 @@ impl PairSums {
         }
     }
 
-    /// The running sums at time point `t` (n = trials; the power sums from the channels).
+    /// The running sums at time point `t` of the range last computed (n = trials; the power
+    /// sums from the channels).
     #[inline]
     pub fn at(&self, t: usize, trials: usize, a: &Planes, b: &Planes) -> Sums {
-        let get = |v: &Vec<f64>| v.get(t).copied().unwrap_or(0.0);
+        let i = t - self.first * LANES;
+        let get = |v: &Vec<f64>| v.get(i).copied().unwrap_or(0.0);
         let zero = a.zero[t] || b.zero[t];
         Sums {
             n: trials as f64,
@@ -281,33 +410,72 @@ impl PairSums {
             py: b.power.get(t).copied().unwrap_or(0.0),
         }
     }
-}
 
-/// Σ over trials of u_a · conj(u_b), per time point.
-#[inline(always)]
-fn phasor(a: &Planes, b: &Planes, trials: usize, re: &mut [f64], im: &mut [f64]) {
-    let span = trials * LANES;
-    for (blk, (re, im)) in re
-        .chunks_exact_mut(LANES)
-        .zip(im.chunks_exact_mut(LANES))
-        .enumerate()
-    {
-        let r = blk * span..(blk + 1) * span;
-        let (ar, ai) = (&a.unit_re[r.clone()], &a.unit_im[r.clone()]);
-        let (br, bi) = (&b.unit_re[r.clone()], &b.unit_im[r]);
-        let (mut sr, mut si) = ([0.0f64; LANES], [0.0f64; LANES]);
-        let rows = ar.chunks_exact(LANES).zip(ai.chunks_exact(LANES));
-        let rows = rows.zip(br.chunks_exact(LANES).zip(bi.chunks_exact(LANES)));
-        for ((ar, ai), (br, bi)) in rows {
-            for j in 0..LANES {
-                let (xr, xi) = (f64::from(ar[j]), f64::from(ai[j]));
-                let (yr, yi) = (f64::from(br[j]), f64::from(bi[j]));
-                sr[j] += xr * yr + xi * yi;
-                si[j] += xi * yr - xr * yi;
+    /// The values of `measure` at the time points `times` (inside the range last computed) as
+    /// f32 into `out`: the same operations as [`Sums::value`] on [`PairSums::at`], bit for bit,
+    /// written as one straight loop per measure so that it vectorises.
+    pub fn values(
+        &self,
+        measure: Measure,
+        times: std::ops::Range<usize>,
+        trials: usize,
+        (a, b): (&Planes, &Planes),
+        out: &mut [f32],
+    ) {
+        let n = trials as f64;
+        let off = self.first * LANES;
+        let local = times.start - off..times.end - off;
+        let out = &mut out[..times.len()];
+        match measure {
+            Measure::Plv => zip2(
+                &self.phasor_re[local.clone()],
+                &self.phasor_im[local.clone()],
+                |re, im| (re * re + im * im).sqrt() / n,
+                out,
+            ),
+            Measure::Ppc if n < 2.0 => out.fill(f32::NAN),
+            Measure::Ppc => zip2(
+                &self.phasor_re[local.clone()],
+                &self.phasor_im[local.clone()],
+                |re, im| ((re * re + im * im) - n) / (n * (n - 1.0)),
+                out,
+            ),
+            Measure::Pli => {
+                for (o, &s) in out.iter_mut().zip(&self.sign[local.clone()]) {
+                    *o = (s.abs() / n) as f32;
+                }
+            }
+            Measure::Wpli => zip2(
+                &self.im[local.clone()],
+                &self.abs_im[local.clone()],
+                |im, abs| im.abs() / abs,
+                out,
+            ),
+            Measure::Dwpli => {
+                let (im, abs, im2) = (
+                    &self.im[local.clone()],
+                    &self.abs_im[local.clone()],
+                    &self.im2[local.clone()],
+                );
+                for (i, o) in out.iter_mut().enumerate() {
+                    *o = ((im[i] * im[i] - im2[i]) / (abs[i] * abs[i] - im2[i])) as f32;
+                }
+            }
+            Measure::Icoh => {
+                let (px, py) = (&a.power[times.clone()], &b.power[times.clone()]);
+                for (i, (o, &im)) in out.iter_mut().zip(&self.im[local.clone()]).enumerate() {
+                    *o = (im / (px[i] * py[i]).sqrt()) as f32;
+                }
             }
         }
-        re.copy_from_slice(&sr);
-        im.copy_from_slice(&si);
+        // A zero coefficient has no phase: NaN there, whatever the measure (the f32 of
+        // `f64::NAN`, as `Sums::value` gives).
+        let (za, zb) = (&a.zero[times.clone()], &b.zero[times]);
+        for ((o, &x), &y) in out.iter_mut().zip(za).zip(zb) {
+            if x || y {
+                *o = f32::NAN;
+            }
+        }
     }
 }
 
@@ -435,11 +603,53 @@ mod tests {
         let mut fast = PairSums::new(needs, blocks(times));
         fast.compute(needs, &a, &b, trials);
         let mut portable = PairSums::new(needs, blocks(times));
-        portable.compute_any(needs, &a, &b, trials);
+        portable.compute_any(needs, &a, &b, trials, 0..blocks(times));
         for t in 0..times {
             let (f, p) = (fast.at(t, trials, &a, &b), portable.at(t, trials, &a, &b));
             for m in ALL {
                 assert_eq!(f.value(m).to_bits(), p.value(m).to_bits(), "{m:?} at {t}");
+            }
+        }
+    }
+
+    #[test]
+    fn trial_sums_tiles_and_vector_values_give_the_same_bits() {
+        // The tiled sums and the vectorised `values` against the whole-slab sums finished one
+        // time point at a time by `Sums::value` (the formulas of DESIGN.md §4): equal bit for
+        // bit, NaNs included (zero coefficients, one trial for ppc, 0/0 when every Im S is 0).
+        let mut rng = ChaCha8Rng::seed_from_u64(9);
+        for (trials, times, tile) in [(1, 9, 1), (2, 30, 3), (23, 37, 2), (40, 64, 8)] {
+            let (x, mut y) = (
+                coefs(&mut rng, trials, times),
+                coefs(&mut rng, trials, times),
+            );
+            // A time point where every Im S is 0: y a real multiple of x.
+            for k in 0..trials {
+                y[k][times / 2] = x[k][times / 2] * 2.0;
+            }
+            for measures in [&ALL[..], &[Measure::Icoh], &[Measure::Pli, Measure::Plv]] {
+                let needs = Needs::of(measures);
+                let (a, b) = (planes(needs, &x, times), planes(needs, &y, times));
+                let mut whole = PairSums::new(needs, blocks(times));
+                whole.compute(needs, &a, &b, trials);
+                let mut tiled = PairSums::new(needs, tile);
+                for first in (0..blocks(times)).step_by(tile) {
+                    let range = first..(first + tile).min(blocks(times));
+                    let span = first * LANES..(range.end * LANES).min(times);
+                    tiled.compute_blocks(needs, &a, &b, trials, range);
+                    for &m in measures {
+                        let mut got = vec![0.0f32; span.len()];
+                        tiled.values(m, span.clone(), trials, (&a, &b), &mut got);
+                        for (t, g) in span.clone().zip(&got) {
+                            let want = whole.at(t, trials, &a, &b).value(m) as f32;
+                            assert_eq!(
+                                g.to_bits(),
+                                want.to_bits(),
+                                "{m:?} at {t}, {trials} trials"
+                            );
+                        }
+                    }
+                }
             }
         }
     }
