@@ -218,6 +218,8 @@ fn a_damaged_subject_fails_alone_and_a_resubmission_sends_only_it() {
         "the log says why: {}",
         fs::read_to_string(&log).unwrap()
     );
+    // Slurm's output files are not terminals: no colour codes in them.
+    assert!(!fs::read_to_string(&log).unwrap().contains('\u{1b}'));
     let group = first["group"].as_str().unwrap();
     assert!(
         !jobs.join(format!("logs/group-{group}.out")).exists(),
