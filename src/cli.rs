@@ -51,6 +51,11 @@ pub enum Command {
         /// Number of threads, at least 1 (default: all cores).
         #[arg(long, short = 'j', value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
         jobs: Option<usize>,
+        /// After the run, merge the manifest parts of earlier `run --subject` runs (of the same
+        /// pipeline and overrides) into manifest.json: each unit as the part that computed it
+        /// recorded it, host included. The group job of `submit` runs this.
+        #[arg(long, conflicts_with = "subjects")]
+        merge_parts: bool,
     },
     /// Show, for every stage × subject, whether it is fresh or stale and why.
     Plan {
@@ -115,6 +120,19 @@ pub enum Command {
         #[arg(long)]
         out: Option<PathBuf>,
     },
+    /// Send a study to a Slurm cluster: one array task per stale subject, then the group job.
+    Submit(Submit),
+    /// Show each subject's state of a submitted study (pending, running, done, failed, ...).
+    Status {
+        /// The pipeline file.
+        pipeline: PathBuf,
+        /// Override a param: STAGE.PARAM=VALUE (as given to `submit`).
+        #[arg(long = "set", value_name = "STAGE.PARAM=VALUE")]
+        set: Vec<String>,
+        /// The cache folder (default: `.phasewise/` beside the pipeline file).
+        #[arg(long, env = "PHASEWISE_CACHE")]
+        cache: Option<PathBuf>,
+    },
     /// Print a completion script for a shell (e.g. `phasewise completions bash > phasewise.bash`).
     Completions {
         /// The shell.
@@ -138,6 +156,47 @@ pub struct Target {
     /// The cache folder (default: `.phasewise/` beside the pipeline file).
     #[arg(long, env = "PHASEWISE_CACHE")]
     pub cache: Option<PathBuf>,
+}
+
+/// `phasewise submit`'s arguments (DESIGN §7, §8).
+#[derive(Args, Debug)]
+pub struct Submit {
+    /// The pipeline file.
+    pub pipeline: PathBuf,
+    /// Override a param: STAGE.PARAM=VALUE, passed on to every job.
+    #[arg(long = "set", value_name = "STAGE.PARAM=VALUE")]
+    pub set: Vec<String>,
+    /// The cache folder, on a filesystem every node shares (default: `.phasewise/` beside the
+    /// pipeline file).
+    #[arg(long, env = "PHASEWISE_CACHE")]
+    pub cache: Option<PathBuf>,
+    /// Slurm partition (sbatch --partition).
+    #[arg(long)]
+    pub partition: Option<String>,
+    /// Slurm account (sbatch --account).
+    #[arg(long)]
+    pub account: Option<String>,
+    /// Time limit of each job, as sbatch takes it (e.g. 2:00:00).
+    #[arg(long)]
+    pub time: Option<String>,
+    /// Memory of each job, as sbatch takes it (e.g. 8G).
+    #[arg(long)]
+    pub mem: Option<String>,
+    /// CPUs of each job (sbatch --cpus-per-task); each task runs with as many threads.
+    #[arg(long, value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
+    pub cpus: Option<usize>,
+    /// At most K subjects at once.
+    #[arg(long, value_name = "K", value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
+    pub max_parallel: Option<usize>,
+    /// One more sbatch option for every job, verbatim (repeatable), e.g. `--sbatch-arg=--qos=short`.
+    #[arg(long = "sbatch-arg", value_name = "ARG", allow_hyphen_values = true)]
+    pub sbatch_args: Vec<String>,
+    /// Write the job scripts and print the sbatch commands; submit nothing.
+    #[arg(long)]
+    pub dry_run: bool,
+    /// Wait until the group job ends; exit 1 naming each subject that failed.
+    #[arg(long, conflicts_with = "dry_run")]
+    pub wait: bool,
 }
 
 /// An error with the exit status it calls for.
@@ -212,7 +271,17 @@ fn dispatch(cli: &Cli) -> Result<i32> {
         reader: &RecordingReader,
     };
     match &cli.command {
-        Command::Run { target, jobs } => run(target, *jobs, cli.quiet, env),
+        Command::Run {
+            target,
+            jobs,
+            merge_parts,
+        } => run(target, *jobs, *merge_parts, cli.quiet, env),
+        Command::Submit(args) => submit(args, cli.quiet, env),
+        Command::Status {
+            pipeline,
+            set,
+            cache,
+        } => status(pipeline, set, cache.as_deref(), env),
         Command::Plan { target, json } => plan(target, *json, env),
         Command::Verify { manifest } => verify(manifest, env),
         Command::Inspect { target, stage } => inspect(target, stage, env),
@@ -244,9 +313,19 @@ fn dispatch(cli: &Cli) -> Result<i32> {
     }
 }
 
-fn run(target: &Target, jobs: Option<usize>, quiet: bool, env: Env<'_>) -> Result<i32> {
+fn run(
+    target: &Target,
+    jobs: Option<usize>,
+    merge_parts: bool,
+    quiet: bool,
+    env: Env<'_>,
+) -> Result<i32> {
     let summary =
         session::run(&target.pipeline, &options(target, jobs, quiet), env).map_err(run_error)?;
+    if merge_parts {
+        crate::cluster::merge_parts(&summary.manifest_path, summary.manifest.clone())
+            .map_err(|e| anyhow!("merging the manifest parts: {e}"))?;
+    }
     if !quiet {
         println!(
             "{}: {} computed, {} cached; {}; manifest {}",
@@ -412,5 +491,127 @@ fn prune(pipelines: &[PathBuf], dry_run: bool, cache: Option<&Path>, env: Env<'_
         count(report.bytes as usize, "byte", "bytes"),
         count(report.kept, "object", "objects")
     );
+    Ok(0)
+}
+
+fn cluster_error(e: crate::cluster::ClusterError) -> anyhow::Error {
+    anyhow!(Exit {
+        code: e.exit_code(),
+        message: e.to_string(),
+    })
+}
+
+/// `phasewise submit PIPELINE`.
+fn submit(args: &Submit, quiet: bool, env: Env<'_>) -> Result<i32> {
+    use crate::cluster::{self, Resources, SubmitOptions, SubmitReport};
+    let options = SubmitOptions {
+        overrides: args.set.clone(),
+        cache: args.cache.clone(),
+        resources: Resources {
+            partition: args.partition.clone(),
+            account: args.account.clone(),
+            time: args.time.clone(),
+            mem: args.mem.clone(),
+            cpus: args.cpus,
+            max_parallel: args.max_parallel,
+            extra: args.sbatch_args.clone(),
+        },
+        dry_run: args.dry_run,
+    };
+    let mut warn = |w: &str| eprintln!("warning: {w}");
+    let report =
+        cluster::submit(&args.pipeline, &options, env, &mut warn).map_err(cluster_error)?;
+    let (submitted, jobs) = match report {
+        SubmitReport::NothingStale { units } => {
+            println!(
+                "nothing to submit: all {} are fresh",
+                count(units, "unit", "units")
+            );
+            return Ok(0);
+        }
+        SubmitReport::DryRun {
+            commands,
+            subjects,
+            jobs,
+        } => {
+            println!(
+                "dry run: job scripts written to {}; {} would run ({})",
+                jobs.display(),
+                count(subjects.len(), "subject", "subjects"),
+                subjects.join(", ")
+            );
+            for c in commands {
+                println!("{c}");
+            }
+            return Ok(0);
+        }
+        SubmitReport::Submitted { submitted, jobs } => (submitted, jobs),
+    };
+    if !quiet {
+        match &submitted.array {
+            Some(array) => println!(
+                "submitted array job {array} ({}: {}) and group job {} (after it); scripts and logs in {}",
+                count(submitted.subjects.len(), "subject", "subjects"),
+                submitted.subjects.join(", "),
+                submitted.group,
+                jobs.display()
+            ),
+            None => println!(
+                "every subject is fresh; submitted group job {}; scripts and logs in {}",
+                submitted.group,
+                jobs.display()
+            ),
+        }
+    }
+    if !args.wait {
+        return Ok(0);
+    }
+    let done = cluster::wait(&submitted, &jobs, std::time::Duration::from_secs(2))
+        .map_err(cluster_error)?;
+    for (subject, state, log) in &done.failed {
+        eprintln!("subject {subject} {} (log {})", state.word(), log.display());
+    }
+    if done.success() {
+        if !quiet {
+            println!(
+                "every job succeeded; group job log {}",
+                done.group_log.display()
+            );
+        }
+        Ok(0)
+    } else {
+        if done.failed.is_empty() {
+            eprintln!(
+                "the group job {} {} (log {})",
+                submitted.group,
+                done.group.word(),
+                done.group_log.display()
+            );
+        } else {
+            eprintln!(
+                "{} failed; the group job {} did not run ({})",
+                count(done.failed.len(), "subject", "subjects"),
+                submitted.group,
+                done.group.word()
+            );
+        }
+        Ok(1)
+    }
+}
+
+/// `phasewise status PIPELINE`.
+fn status(pipeline: &Path, set: &[String], cache: Option<&Path>, env: Env<'_>) -> Result<i32> {
+    let lines = crate::cluster::status(pipeline, set, cache, env).map_err(cluster_error)?;
+    for line in lines {
+        let who = line.subject.as_deref().unwrap_or("group");
+        let mut text = format!("{who:<12} {:<10}", line.state.word());
+        if let Some(job) = &line.job {
+            text.push_str(&format!(" job {job}"));
+        }
+        if let Some(log) = &line.log {
+            text.push_str(&format!(" log {}", log.display()));
+        }
+        println!("{}", text.trim_end());
+    }
     Ok(0)
 }

@@ -155,13 +155,13 @@ fn replace_via_temp<T>(
     let dir = path.parent().unwrap_or(Path::new("."));
     std::fs::create_dir_all(dir)?;
     let name = path.file_name().map(|n| n.to_string_lossy().into_owned());
-    let temp = dir.join(format!(
-        "{TEMP_PREFIX}{}-{}-{}",
-        std::process::id(),
-        TEMP_COUNTER.fetch_add(1, Ordering::Relaxed),
-        name.unwrap_or_default()
-    ));
-    let mut file = File::create(&temp)?;
+    let temp = dir.join(temp_name(&name.unwrap_or_default()));
+    // Exclusive create: an existing file of that name (which the host, pid and random number
+    // make all but impossible) is an error, never a file shared with another writer.
+    let mut file = std::fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(&temp)?;
     // Only a file about to be renamed is made durable; one that `fill` turned down is removed.
     let filled = fill(&mut Writeback::new(&mut file)).and_then(|r| {
         if durable && r.is_ok() {
@@ -196,29 +196,75 @@ fn replace_via_temp<T>(
     Ok(Ok(value))
 }
 
-/// Remove temporary files left in `dir` by killed runs: those named after a process that no
-/// longer exists on this machine. Where liveness cannot be told (no `/proc`), nothing is removed.
-/// Another machine's live temporary file could be taken for dead; its rename then fails and that
-/// run reports an error — never a wrong file — and in the planned cluster mode each subject's
-/// folder has a single writer anyway.
-pub fn remove_dead_temps(dir: &Path) {
-    let proc_dir = Path::new("/proc");
-    if !proc_dir.join("self").exists() {
-        return;
-    }
+/// How old a temporary file must be before [`remove_stale_temps`] (and `prune`) take it for the
+/// leftover of a killed writer. No write of one file takes this long; a live writer on another
+/// host cannot be told from a dead one by anything but age (its pid means nothing here).
+pub const TEMP_GRACE: std::time::Duration = std::time::Duration::from_secs(3600);
+
+/// Remove temporary files in `dir` that have not been modified for [`TEMP_GRACE`]: leftovers of
+/// killed runs. Age is the only test: a temporary file of a live writer on another host (whose
+/// pid may well be a live or dead pid here) is never taken for dead while it is being written.
+pub fn remove_stale_temps(dir: &Path) {
     let Ok(entries) = std::fs::read_dir(dir) else {
         return;
     };
     for entry in entries.flatten() {
-        let name = entry.file_name().to_string_lossy().into_owned();
-        let pid = name
-            .strip_prefix(TEMP_PREFIX)
-            .and_then(|rest| rest.split('-').next())
-            .and_then(|pid| pid.parse::<u32>().ok());
-        if let Some(pid) = pid {
-            if !proc_dir.join(pid.to_string()).exists() {
-                let _ = std::fs::remove_file(entry.path());
-            }
+        if entry.file_name().to_string_lossy().starts_with(TEMP_PREFIX) && is_stale(&entry.path()) {
+            let _ = std::fs::remove_file(entry.path());
         }
     }
+}
+
+/// True when the file at `path` was last modified more than [`TEMP_GRACE`] ago.
+pub fn is_stale(path: &Path) -> bool {
+    std::fs::metadata(path)
+        .and_then(|m| m.modified())
+        .ok()
+        .and_then(|t| std::time::SystemTime::now().duration_since(t).ok())
+        .is_some_and(|age| age > TEMP_GRACE)
+}
+
+/// This machine's host name (`gethostname`), or `unknown-host`.
+pub fn host_name() -> String {
+    let mut buf = [0u8; 256];
+    // SAFETY: the buffer is valid for its length; gethostname writes at most that many bytes.
+    let rc = unsafe { libc::gethostname(buf.as_mut_ptr().cast(), buf.len()) };
+    let end = buf.iter().position(|&b| b == 0).unwrap_or(buf.len());
+    match std::str::from_utf8(&buf[..end]) {
+        Ok(name) if rc == 0 && !name.is_empty() => name.to_string(),
+        _ => "unknown-host".into(),
+    }
+}
+
+/// The name of a new temporary file for `target`: [`TEMP_PREFIX`], the host, the pid, a random
+/// number and a counter, then the target's name. Host and pid tell apart writers that share a
+/// folder over a network filesystem; the random number those that share both (two containers or
+/// PID namespaces with the same host name); the counter the writes of one process.
+fn temp_name(target: &str) -> String {
+    use std::hash::{BuildHasher, Hasher};
+    use std::sync::OnceLock;
+    static HOST: OnceLock<String> = OnceLock::new();
+    let host = HOST.get_or_init(|| {
+        host_name()
+            .chars()
+            .map(|c| {
+                if c.is_ascii_alphanumeric() || c == '.' {
+                    c
+                } else {
+                    '_'
+                }
+            })
+            .collect()
+    });
+    // A hasher with the process's random keys (std seeds them from the OS), fed the counter:
+    // a fresh random number per temporary file.
+    let n = TEMP_COUNTER.fetch_add(1, Ordering::Relaxed);
+    let mut hasher = std::collections::hash_map::RandomState::new().build_hasher();
+    hasher.write_u64(n);
+    hasher.write_u32(std::process::id());
+    format!(
+        "{TEMP_PREFIX}{host}-{}-{:016x}-{n}-{target}",
+        std::process::id(),
+        hasher.finish()
+    )
 }

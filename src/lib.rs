@@ -28,6 +28,7 @@
 
 pub mod alloc;
 pub mod cli;
+pub mod cluster;
 pub mod exec;
 pub mod fsio;
 pub mod graph;

@@ -142,6 +142,10 @@ pub struct UnitRecord {
     /// How it was computed ([`crate::recipe`]); only for units computed in this run.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub recipe: Option<Recipe>,
+    /// The machine that computed it (or found it cached): its host name. A merged manifest
+    /// keeps each unit's host from the part that computed it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub host: Option<String>,
 }
 
 /// One output array.
@@ -243,6 +247,7 @@ fn unit_record(study: &Study, outcome: &Outcome, u: usize) -> UnitRecord {
         .into(),
         seconds: result.seconds,
         recipe: result.recipe.clone().filter(|_| result.computed),
+        host: Some(crate::fsio::host_name()),
     }
 }
 
@@ -295,6 +300,52 @@ pub fn path_for(output: &Path, selection: &[String]) -> std::path::PathBuf {
     }
 }
 
+/// Merge `current` (the manifest of a whole run, usually one whose subjects were computed by
+/// `run --subject` parts and found cached) with the parts in `<output>/manifest.parts/` that
+/// come from the same pipeline file and overrides; parts of other pipelines or overrides, and
+/// unreadable ones, are left out. The units, inputs and order are `current`'s; a unit that a part
+/// computed (with the same key) is recorded as that part recorded it, host included.
+pub fn merge_with_parts(current: Manifest, output: &Path) -> Result<Manifest, String> {
+    let mut parts = vec![current];
+    let dir = output.join("manifest.parts");
+    let mut files: Vec<_> = std::fs::read_dir(&dir)
+        .map(|entries| entries.flatten().map(|e| e.path()).collect())
+        .unwrap_or_default();
+    files.sort();
+    for file in files {
+        if file.extension().and_then(|e| e.to_str()) != Some("json") {
+            continue;
+        }
+        let Ok(part) = read(&file) else { continue };
+        if part.pipeline.blake3 == parts[0].pipeline.blake3
+            && part.pipeline.overrides == parts[0].pipeline.overrides
+        {
+            parts.push(part);
+        }
+    }
+    let mut merged = merge(&parts)?;
+    // Only units of the current run: a part may hold a subject no longer in the study.
+    let current = &parts[0];
+    merged.units.retain(|u| {
+        current
+            .units
+            .iter()
+            .any(|c| c.stage == u.stage && c.subject == u.subject)
+    });
+    merged.warnings.retain(|w| {
+        merged
+            .units
+            .iter()
+            .any(|u| u.stage == w.stage && u.subject == w.subject)
+    });
+    merged
+        .epochs
+        .retain(|who, _| current.epochs.contains_key(who));
+    merged.inputs.clone_from(&current.inputs);
+    merged.finished.clone_from(&current.finished);
+    Ok(merged)
+}
+
 /// Read a manifest, checking its format and version.
 pub fn read(path: &Path) -> Result<Manifest, String> {
     let bytes = std::fs::read(path).map_err(|e| format!("cannot read {}: {e}", path.display()))?;
@@ -320,7 +371,10 @@ pub fn to_bytes(manifest: &Manifest) -> Vec<u8> {
 
 /// Merge per-subject parts (and a part holding the group units) into one manifest, as a run on
 /// one machine would have written it: units in the pipeline's stage order then subject, each
-/// unit taken from the part that computed it, inputs by path, times spanning all parts.
+/// unit taken from the part that computed it, inputs by path, times spanning all parts. A unit
+/// of a later part replaces one already taken only when it was computed, the one taken was not,
+/// and both have the same key (a part left by an earlier run with other params never replaces
+/// the current record).
 pub fn merge(parts: &[Manifest]) -> Result<Manifest, String> {
     let first = parts.first().ok_or("no manifest parts to merge")?;
     for part in parts {
@@ -337,9 +391,9 @@ pub fn merge(parts: &[Manifest]) -> Result<Manifest, String> {
     for part in parts {
         for unit in &part.units {
             let slot = (stage_rank(&unit.stage), unit.subject.clone());
-            let replace = units
-                .get(&slot)
-                .is_none_or(|u| u.status != "computed" && unit.status == "computed");
+            let replace = units.get(&slot).is_none_or(|u| {
+                u.status != "computed" && unit.status == "computed" && u.key == unit.key
+            });
             if replace {
                 units.insert(slot, unit.clone());
             }

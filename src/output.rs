@@ -27,7 +27,7 @@ use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use crate::fsio::{
-    atomic_write, bookkeeping_write, remove_dead_temps, write_then_rename, Declined,
+    atomic_write, bookkeeping_write, remove_stale_temps, write_then_rename, Declined,
 };
 use crate::store::{write_npy_to, ObjectRecord, Store};
 
@@ -213,7 +213,7 @@ pub fn export(
     let relative = target.relative_npy();
     let npy_path = target.npy_path();
     if let Some(dir) = npy_path.parent() {
-        remove_dead_temps(dir);
+        remove_stale_temps(dir);
     }
     let record_path = target.record_path(store);
     // A stale export record must never vouch for files about to change.

@@ -7,14 +7,10 @@
 
 use std::collections::BTreeSet;
 use std::path::{Path, PathBuf};
-use std::time::{Duration, SystemTime};
 
-use crate::fsio::TEMP_PREFIX;
+use crate::fsio::{is_stale, TEMP_PREFIX};
 use crate::manifest;
 use crate::store::Store;
-
-/// Temporary files younger than this are left alone.
-const TEMP_GRACE: Duration = Duration::from_secs(3600);
 
 /// What `prune` removed (or would remove).
 #[derive(Clone, Debug, Default, PartialEq, Eq)]
@@ -63,7 +59,7 @@ pub fn prune(store: &Store, keep: &BTreeSet<String>, dry_run: bool) -> PruneRepo
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default();
         let remove = if name.starts_with(TEMP_PREFIX) {
-            is_old(&file)
+            is_stale(&file)
         } else {
             let key = name.split('.').next().unwrap_or_default();
             let keep_it = keep.contains(key);
@@ -81,12 +77,4 @@ pub fn prune(store: &Store, keep: &BTreeSet<String>, dry_run: bool) -> PruneRepo
     }
     report.kept = kept.len();
     report
-}
-
-fn is_old(file: &Path) -> bool {
-    std::fs::metadata(file)
-        .and_then(|m| m.modified())
-        .ok()
-        .and_then(|t| SystemTime::now().duration_since(t).ok())
-        .is_some_and(|age| age > TEMP_GRACE)
 }

@@ -12,7 +12,7 @@ use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use phasewise_stages::DynOp;
 
 use crate::exec::{self, Executor, Job, Outcome, Warning};
-use crate::fsio::remove_dead_temps;
+use crate::fsio::remove_stale_temps;
 use crate::manifest::{self, Manifest};
 use crate::output::write_atomically;
 use crate::paths::clean;
@@ -131,7 +131,7 @@ fn finish(study: &Study, outcome: &Outcome, started: &str) -> Result<RunSummary,
         &study.selection,
     ));
     if let Some(dir) = manifest_path.parent() {
-        remove_dead_temps(dir);
+        remove_stale_temps(dir);
     }
     write_atomically(&manifest_path, &manifest::to_bytes(&manifest))
         .map_err(|e| RunError::Other(e.to_string()))?;

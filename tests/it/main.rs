@@ -4,6 +4,7 @@
 
 mod bad_inputs;
 mod cli;
+mod cluster;
 mod common;
 mod concurrent;
 mod damage;

@@ -240,10 +240,18 @@ pub fn files_under(root: &Path) -> Vec<PathBuf> {
 }
 
 /// The exported arrays and tables of a run (`<output>/**.npy|.tsv`), with their bytes. The
-/// JSON sidecars and the manifest are left out: they hold timings and absolute paths.
+/// JSON sidecars and the manifest are left out: they hold timings and absolute paths; so are
+/// temporary files (`.tmp-…`) a killed run left, which nothing reads and which are removed by
+/// age only (`fsio::remove_stale_temps`).
 pub fn output_arrays(output: &Path) -> Vec<(PathBuf, Vec<u8>)> {
     files_under(output)
         .into_iter()
+        .filter(|p| {
+            !p.file_name().is_some_and(|n| {
+                n.to_string_lossy()
+                    .starts_with(phasewise::fsio::TEMP_PREFIX)
+            })
+        })
         .filter(|p| matches!(p.extension().and_then(|e| e.to_str()), Some("npy" | "tsv")))
         .map(|p| {
             let bytes = fs::read(output.join(&p)).expect("read output");

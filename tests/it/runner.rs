@@ -790,7 +790,8 @@ fn the_manifest_has_the_core_shape_of_design_section_6() {
             "outputs",
             "status",
             "seconds",
-            "recipe"
+            "recipe",
+            "host"
         ])
     );
     // DESIGN §7: a computed unit records how it ran (the first unit reads a recording whole).
