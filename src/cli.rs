@@ -65,6 +65,10 @@ pub enum Command {
     Verify {
         /// The manifest.json of a run.
         manifest: PathBuf,
+        /// Where the recordings are now: each recorded input is looked for at its path below
+        /// the recordings glob's folder, under DIR.
+        #[arg(long, value_name = "DIR")]
+        data: Option<PathBuf>,
     },
     /// Describe a cached result: dims, shape, coords, value summary.
     Inspect {
@@ -200,6 +204,7 @@ fn options(target: &Target, jobs: Option<usize>, quiet: bool) -> Options {
         jobs,
         output: None,
         progress: !quiet,
+        data: None,
     }
 }
 
@@ -212,7 +217,7 @@ fn dispatch(cli: &Cli) -> Result<i32> {
     match &cli.command {
         Command::Run { target, jobs } => run(target, *jobs, cli.quiet, env),
         Command::Plan { target, json } => plan(target, *json, env),
-        Command::Verify { manifest } => verify(manifest, env),
+        Command::Verify { manifest, data } => verify(manifest, data.as_deref(), env),
         Command::Inspect { target, stage } => inspect(target, stage, env),
         Command::Simulate {
             out,
@@ -323,8 +328,8 @@ fn plan(target: &Target, json: bool, env: Env<'_>) -> Result<i32> {
     Ok(0)
 }
 
-fn verify(manifest: &Path, env: Env<'_>) -> Result<i32> {
-    let report = crate::verify::verify(manifest, env).map_err(|e| {
+fn verify(manifest: &Path, data: Option<&Path>, env: Env<'_>) -> Result<i32> {
+    let report = crate::verify::verify_with(manifest, data, env).map_err(|e| {
         anyhow!(Exit {
             code: 2,
             message: e.to_string(),
