@@ -70,6 +70,18 @@ pub enum Command {
         #[arg(long, value_name = "DIR")]
         data: Option<PathBuf>,
     },
+    /// Write a bundle for a journal or a data repository: BIDS derivative layout, the pipeline,
+    /// the manifest and RO-Crate 1.1 metadata (DESIGN §6).
+    Archive {
+        /// The manifest.json of a whole run.
+        manifest: PathBuf,
+        /// The bundle's folder (new or empty).
+        #[arg(long, value_name = "DIR")]
+        out: PathBuf,
+        /// The results' license: an SPDX identifier (CC-BY-4.0) or a URL.
+        #[arg(long)]
+        license: Option<String>,
+    },
     /// Describe a cached result: dims, shape, coords, value summary.
     Inspect {
         /// Pipeline selection and overrides.
@@ -219,6 +231,20 @@ fn dispatch(cli: &Cli) -> Result<i32> {
         Command::Plan { target, json } => plan(target, *json, env),
         Command::Verify { manifest, data } => verify(manifest, data.as_deref(), env),
         Command::Inspect { target, stage } => inspect(target, stage, env),
+        Command::Archive {
+            manifest,
+            out,
+            license,
+        } => {
+            let n = crate::archive::archive(manifest, out, license.as_deref()).map_err(|e| {
+                anyhow!(Exit {
+                    code: 2,
+                    message: e.to_string(),
+                })
+            })?;
+            println!("{}: bundle of {n} files", out.display());
+            Ok(0)
+        }
         Command::Simulate {
             out,
             subjects,
