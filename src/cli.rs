@@ -70,6 +70,22 @@ pub enum Command {
     Verify {
         /// The manifest.json of a run.
         manifest: PathBuf,
+        /// Where the recordings are now: each recorded input is looked for at its path below
+        /// the recordings glob's folder, under DIR.
+        #[arg(long, value_name = "DIR")]
+        data: Option<PathBuf>,
+    },
+    /// Write a bundle for a journal or a data repository: BIDS derivative layout, the pipeline,
+    /// the manifest and RO-Crate 1.1 metadata (DESIGN §6).
+    Archive {
+        /// The manifest.json of a whole run.
+        manifest: PathBuf,
+        /// The bundle's folder (new or empty).
+        #[arg(long, value_name = "DIR")]
+        out: PathBuf,
+        /// The results' license: an SPDX identifier (CC-BY-4.0) or a URL.
+        #[arg(long)]
+        license: Option<String>,
     },
     /// Describe a cached result: dims, shape, coords, value summary.
     Inspect {
@@ -261,6 +277,7 @@ fn options(target: &Target, jobs: Option<usize>, quiet: bool) -> Options {
         jobs,
         output: None,
         progress: !quiet,
+        data: None,
     }
 }
 
@@ -283,8 +300,22 @@ fn dispatch(cli: &Cli) -> Result<i32> {
             cache,
         } => status(pipeline, set, cache.as_deref(), env),
         Command::Plan { target, json } => plan(target, *json, env),
-        Command::Verify { manifest } => verify(manifest, env),
+        Command::Verify { manifest, data } => verify(manifest, data.as_deref(), env),
         Command::Inspect { target, stage } => inspect(target, stage, env),
+        Command::Archive {
+            manifest,
+            out,
+            license,
+        } => {
+            let n = crate::archive::archive(manifest, out, license.as_deref()).map_err(|e| {
+                anyhow!(Exit {
+                    code: 2,
+                    message: e.to_string(),
+                })
+            })?;
+            println!("{}: bundle of {n} files", out.display());
+            Ok(0)
+        }
         Command::Simulate {
             out,
             subjects,
@@ -417,8 +448,8 @@ fn plan(target: &Target, json: bool, env: Env<'_>) -> Result<i32> {
     Ok(0)
 }
 
-fn verify(manifest: &Path, env: Env<'_>) -> Result<i32> {
-    let report = crate::verify::verify(manifest, env).map_err(|e| {
+fn verify(manifest: &Path, data: Option<&Path>, env: Env<'_>) -> Result<i32> {
+    let report = crate::verify::verify_with(manifest, data, env).map_err(|e| {
         anyhow!(Exit {
             code: 2,
             message: e.to_string(),

@@ -27,6 +27,7 @@
 #![deny(missing_docs)]
 
 pub mod alloc;
+pub mod archive;
 pub mod cli;
 pub mod cluster;
 pub mod exec;

@@ -110,7 +110,7 @@ pub struct ExportRecord {
 }
 
 /// Version of [`ExportRecord`]; records of another version are ignored (the export is written).
-pub const EXPORT_FORMAT_VERSION: u32 = 1;
+pub const EXPORT_FORMAT_VERSION: u32 = 2;
 
 impl ExportTarget<'_> {
     fn npy_path(&self) -> PathBuf {
@@ -124,6 +124,14 @@ impl ExportTarget<'_> {
         }
     }
 
+    /// The column dictionary of the stage's tables, `<output>/<stage>.json`: beside a group
+    /// table, and above the subjects' tables of a per-subject stage, to which it applies as a
+    /// BIDS sidecar does to the files below it (the BIDS inheritance principle); the subjects'
+    /// folders already hold the arrays' `<stage>.json`.
+    fn dictionary_path(&self) -> PathBuf {
+        self.output.join(format!("{}.json", self.stage))
+    }
+
     /// The files whose stat the export record keeps: the NPY, JSON and (for tables) TSV an
     /// export of `record` writes, and the stored object it copies, so that an object changed
     /// since (damaged, rewritten) is exported again — and hash-checked on the way.
@@ -132,6 +140,7 @@ impl ExportTarget<'_> {
         let mut files = vec![npy.clone(), npy.with_extension("json")];
         if is_table(record) {
             files.push(self.tsv_path());
+            files.push(self.dictionary_path());
         }
         if record.stored {
             files.push(store.object_paths(&record.key).0);
@@ -258,24 +267,14 @@ pub fn export(
             })?;
         }
     }
-    let sidecar = json!({
-        "stage": target.stage,
-        "subject": target.subject,
-        "key": record.key,
-        "blake3": record.blake3,
-        "shape": record.shape,
-        "dtype": record.dtype,
-        "dims": record.layout.dims,
-        "coords": record.layout.coords,
-        "units": record.layout.units,
-        "meta": record.layout.meta,
-    });
+    let sidecar = sidecar(target, record);
     let text = serde_json::to_vec_pretty(&sidecar).map_err(|e| OutputError {
         path: npy_path.with_extension("json"),
         message: e.to_string(),
     })?;
     write_atomically(&npy_path.with_extension("json"), &text)?;
     if is_table(record) {
+        write_column_dictionary(target, record)?;
         match from {
             ExportFrom::Array(array) => write_table(target, array)?,
             ExportFrom::Object => {
@@ -307,6 +306,186 @@ pub fn export(
         }
     }
     Ok(relative)
+}
+
+/// Version of the exported sidecar's form ([`sidecar`]).
+pub const SIDECAR_FORMAT_VERSION: u32 = 2;
+
+/// The units of a coordinate axis, by the axis names of DESIGN §2.
+pub fn axis_units(dim: &str) -> Option<&'static str> {
+    match dim {
+        "freq" => Some("Hz"),
+        "time" => Some("s"),
+        _ => None,
+    }
+}
+
+/// Attribute names of the sidecar that the op's metadata may not take.
+const OWN_ATTRS: [&str; 7] = [
+    "units",
+    "stage",
+    "subject",
+    "key",
+    "blake3",
+    "format",
+    "format_version",
+];
+
+/// The exported sidecar, format 2 (DESIGN §6): the shape of xarray's
+/// `DataArray.to_dict(data=False)`, so that
+/// `xarray.DataArray.from_dict({**json.load(f), "data": numpy.load(npy)})` loads the array.
+/// `coords` maps a name to `{"dims", "data", "attrs"}` (units on `freq`, `time`); a pair axis
+/// has no coordinate of its own but two along it, `channel_a` and `channel_b`; subjects carry
+/// their BIDS names (`sub-01`, `group`). `attrs` holds the values' units, the stage, subject,
+/// key, blake3, the format and its version, and the op's metadata: its fields (`sampling_rate`,
+/// `events`, `trials`, `positions`, ...) and the entries of its `extra` at the top level (one
+/// whose name the sidecar's own attributes take is kept under `meta_<name>`).
+pub fn sidecar(target: &ExportTarget<'_>, record: &ObjectRecord) -> serde_json::Value {
+    use phasewise_stages::table::bids_subject;
+    use phasewise_stages::Coord;
+    use serde_json::{Map, Value};
+    let layout = &record.layout;
+    let mut coords = Map::new();
+    for (dim, coord) in layout.dims.iter().zip(&layout.coords) {
+        let mut attrs = Map::new();
+        if let Some(units) = axis_units(dim) {
+            attrs.insert("units".into(), json!(units));
+        }
+        let along = |data: Value, attrs: Map<String, Value>| json!({ "dims": [dim], "data": data, "attrs": attrs });
+        match coord {
+            Coord::Pairs(pairs) => {
+                for (side, name) in ["channel_a", "channel_b"].into_iter().enumerate() {
+                    let channels: Vec<&str> = pairs.iter().map(|p| p[side].as_str()).collect();
+                    coords.insert(name.into(), along(json!(channels), Map::new()));
+                }
+            }
+            Coord::Labels(labels) if dim == "subject" => {
+                let names: Vec<String> = labels.iter().map(|s| bids_subject(s)).collect();
+                coords.insert(dim.clone(), along(json!(names), attrs));
+            }
+            Coord::Labels(labels) => {
+                coords.insert(dim.clone(), along(json!(labels), attrs));
+            }
+            Coord::Numbers(numbers) => {
+                coords.insert(dim.clone(), along(json!(numbers), attrs));
+            }
+        }
+    }
+    let mut attrs = Map::new();
+    attrs.insert("units".into(), json!(layout.units));
+    attrs.insert("stage".into(), json!(target.stage));
+    attrs.insert(
+        "subject".into(),
+        json!(target.subject.map_or_else(|| "group".into(), bids_subject)),
+    );
+    attrs.insert("key".into(), json!(record.key));
+    attrs.insert("blake3".into(), json!(record.blake3));
+    attrs.insert("format".into(), json!("phasewise-array"));
+    attrs.insert("format_version".into(), json!(SIDECAR_FORMAT_VERSION));
+    let mut meta = match serde_json::to_value(&layout.meta) {
+        Ok(Value::Object(m)) => m,
+        _ => Map::new(),
+    };
+    let extra = match meta.remove("extra") {
+        Some(Value::Object(extra)) => extra,
+        _ => Map::new(),
+    };
+    for (name, value) in meta.into_iter().chain(extra) {
+        let name = match OWN_ATTRS.contains(&name.as_str()) || attrs.contains_key(&name) {
+            true => format!("meta_{name}"),
+            false => name,
+        };
+        attrs.insert(name, value);
+    }
+    json!({
+        "name": target.stage,
+        "dims": layout.dims,
+        "coords": coords,
+        "attrs": attrs,
+        "dtype": match record.dtype.as_str() {
+            "<c8" => "complex64",
+            "<f4" => "float32",
+            other => other,
+        },
+        "shape": record.shape,
+    })
+}
+
+/// The axis names and coordinates of a format-2 sidecar ([`sidecar`]), read back: one list
+/// per axis, a pair axis from its `channel_a`, `channel_b` coordinates. Subjects keep the
+/// names the sidecar gives them (`sub-01`).
+pub fn sidecar_axes(
+    sidecar: &serde_json::Value,
+) -> Result<(Vec<String>, Vec<phasewise_stages::Coord>), String> {
+    use phasewise_stages::Coord;
+    use serde_json::Value;
+    let dims: Vec<String> = serde_json::from_value(sidecar["dims"].clone())
+        .map_err(|e| format!("`dims` should be a list of axis names ({e})"))?;
+    let coords = sidecar["coords"]
+        .as_object()
+        .ok_or("`coords` should map coordinate names to {dims, data, attrs}")?;
+    let along = |name: &str, dim: &str| -> Result<Option<&Vec<Value>>, String> {
+        let Some(c) = coords.get(name) else {
+            return Ok(None);
+        };
+        if c["dims"] != json!([dim]) {
+            return Err(format!(
+                "coordinate `{name}` should lie along `{dim}` alone"
+            ));
+        }
+        c["data"]
+            .as_array()
+            .map(Some)
+            .ok_or_else(|| format!("coordinate `{name}` has no `data` list"))
+    };
+    let texts = |name: &str, data: &[Value]| -> Result<Vec<String>, String> {
+        data.iter()
+            .map(|v| v.as_str().map(str::to_string))
+            .collect::<Option<_>>()
+            .ok_or_else(|| format!("coordinate `{name}` mixes text with other values"))
+    };
+    let mut out = Vec::with_capacity(dims.len());
+    for dim in &dims {
+        let coord = match along(dim, dim)? {
+            Some(data) if data.iter().all(Value::is_number) => Coord::Numbers(
+                data.iter()
+                    .map(|v| v.as_f64().unwrap_or(f64::NAN))
+                    .collect(),
+            ),
+            Some(data) => Coord::Labels(texts(dim, data)?),
+            None => match (along("channel_a", dim)?, along("channel_b", dim)?) {
+                (Some(a), Some(b)) if a.len() == b.len() => {
+                    let (a, b) = (texts("channel_a", a)?, texts("channel_b", b)?);
+                    Coord::Pairs(a.into_iter().zip(b).map(|(a, b)| [a, b]).collect())
+                }
+                _ => return Err(format!("axis `{dim}` has no coordinate")),
+            },
+        };
+        out.push(coord);
+    }
+    Ok((dims, out))
+}
+
+/// Write the column dictionary of the unit's table ([`ExportTarget::dictionary_path`]).
+fn write_column_dictionary(
+    target: &ExportTarget<'_>,
+    record: &ObjectRecord,
+) -> Result<(), OutputError> {
+    let path = target.dictionary_path();
+    let dictionary = phasewise_stages::table::column_dictionary(&record.layout);
+    let fail = |message: String| OutputError {
+        path: path.clone(),
+        message,
+    };
+    if path == target.output.join("manifest.json") {
+        return Err(fail(format!(
+            "the table of stage `{}` would have its column dictionary where the manifest goes; \
+             rename the stage",
+            target.stage
+        )));
+    }
+    let text = serde_json::to_vec_pretty(&dictionary).map_err(|e| fail(e.to_string()))?;
+    write_atomically(&path, &text)
 }
 
 /// True for outputs that are also written as a tidy table.

@@ -47,6 +47,9 @@ pub struct Options {
     pub output: Option<PathBuf>,
     /// Show a progress bar on stderr (hidden anyway when stderr is not a terminal).
     pub progress: bool,
+    /// Read the recordings under this folder instead of the glob's own root folder (the glob's
+    /// pattern below its root kept; used by `verify --data`).
+    pub data: Option<PathBuf>,
 }
 
 /// The cache folder: `--cache`, else `.phasewise/` beside the pipeline file.
@@ -59,6 +62,9 @@ pub fn open(file: &Path, options: &Options, env: Env<'_>) -> Result<Study, RunEr
     let mut pipeline = pipeline::load(file, &options.overrides, env.ops)?;
     if let Some(output) = &options.output {
         pipeline.output = output.clone();
+    }
+    if let Some(root) = &options.data {
+        pipeline.recordings = crate::sources::relocate_glob(&pipeline.recordings, root);
     }
     let store = Store::new(cache_dir(&pipeline, options.cache.as_deref()));
     let hasher = Hasher::with_records(store.root());

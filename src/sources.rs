@@ -203,6 +203,34 @@ pub fn glob_under(dir: &Path, pattern: &str) -> String {
     Path::new(&dir).join(pattern).to_string_lossy().into_owned()
 }
 
+/// A recordings glob split at its first component with a wildcard: the folder the recordings
+/// live under (`../demo-data`) and the pattern below it (`sub-*/eeg/*_eeg.edf`).
+pub fn glob_root(pattern: &str) -> (PathBuf, String) {
+    let wild = |c: &str| c.contains(['*', '?', '[', '{']);
+    let parts: Vec<&str> = pattern.split('/').collect();
+    // The file name stays in the pattern even when it has no wildcard.
+    let at = parts
+        .iter()
+        .position(|c| wild(c))
+        .unwrap_or(parts.len().saturating_sub(1));
+    let root = parts[..at].join("/");
+    let root = match (root.is_empty(), pattern.starts_with('/')) {
+        (true, true) => PathBuf::from("/"),
+        (true, false) => PathBuf::from("."),
+        _ => PathBuf::from(root),
+    };
+    (root, parts[at..].join("/"))
+}
+
+/// The recordings glob moved under a new folder (`verify --data DIR`): the pattern below the
+/// glob's root folder ([`glob_root`]), under `root` (made absolute and matched literally).
+pub fn relocate_glob(pattern: &str, root: &Path) -> String {
+    let (_, below) = glob_root(pattern);
+    let root = std::path::absolute(root).unwrap_or_else(|_| root.to_path_buf());
+    let root = glob::Pattern::escape(&root.to_string_lossy());
+    Path::new(&root).join(below).to_string_lossy().into_owned()
+}
+
 fn source_for(path: PathBuf, reader: &dyn Reader) -> Result<Source, SourceError> {
     let subject = subject_of(&path);
     if subject == "group" {
@@ -395,6 +423,21 @@ pub fn hash_file(path: &Path) -> std::io::Result<(u64, String)> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_glob_splits_at_its_first_wildcard_and_moves_under_a_new_root() {
+        let (root, below) = glob_root("../demo-data/sub-*/eeg/*_eeg.edf");
+        assert_eq!(
+            (root, below.as_str()),
+            (PathBuf::from("../demo-data"), "sub-*/eeg/*_eeg.edf")
+        );
+        assert_eq!(glob_root("*.edf"), (PathBuf::from("."), "*.edf".into()));
+        assert_eq!(glob_root("/d/x.edf"), (PathBuf::from("/d"), "x.edf".into()));
+        assert_eq!(
+            relocate_glob("../demo-data/sub-*/eeg/*.edf", Path::new("/new [copy]")),
+            "/new [[]copy[]]/sub-*/eeg/*.edf"
+        );
+    }
 
     #[test]
     fn subjects_come_from_the_bids_entity_or_the_stem() {

@@ -105,13 +105,44 @@ impl VerifyReport {
 #[error("{0}")]
 pub struct VerifyError(pub String);
 
-/// Verify a manifest.
+/// Verify a manifest, with the recordings where the run read them.
 pub fn verify(manifest_path: &Path, env: Env<'_>) -> Result<VerifyReport, VerifyError> {
+    verify_with(manifest_path, None, env)
+}
+
+/// Verify a manifest; with `data`, the recordings are looked for under that folder (another
+/// machine, a moved folder): each recorded input by its path below the recordings glob's root
+/// folder (`../demo-data/sub-01/eeg/x.edf` as `DATA/sub-01/eeg/x.edf`), checked by hash, and
+/// the rerun reads them there.
+pub fn verify_with(
+    manifest_path: &Path,
+    data: Option<&Path>,
+    env: Env<'_>,
+) -> Result<VerifyReport, VerifyError> {
     let old = manifest::read(manifest_path).map_err(VerifyError)?;
     let output = output_dir(manifest_path);
     let pipeline_file = output.join(&old.pipeline.path);
+    let place = match data {
+        None => Place::AsRecorded,
+        Some(root) => {
+            if !root.is_dir() {
+                return Err(VerifyError(format!(
+                    "--data {}: no such folder",
+                    root.display()
+                )));
+            }
+            // The glob's root folder, as the pipeline file names it.
+            match crate::pipeline::resolve::load(&pipeline_file, &old.pipeline.overrides, env.ops) {
+                Ok(p) => Place::Under {
+                    glob_root: crate::sources::glob_root(&p.recordings).0,
+                    root: root.to_path_buf(),
+                },
+                Err(_) => Place::AsRecorded,
+            }
+        }
+    };
     let mut report = VerifyReport {
-        input_problems: check_inputs(&old, &pipeline_file),
+        input_problems: check_inputs(&old, &pipeline_file, &place),
         ..VerifyReport::default()
     };
     if !pipeline_file.is_file() {
@@ -123,6 +154,7 @@ pub fn verify(manifest_path: &Path, env: Env<'_>) -> Result<VerifyReport, Verify
         subjects: old.pipeline.subjects.clone().unwrap_or_default(),
         cache: Some(scratch.path().join("cache")),
         output: Some(scratch.path().join("output")),
+        data: data.map(Path::to_path_buf),
         ..Options::default()
     };
     let rerun = match session::run(&pipeline_file, &options, env) {
@@ -160,7 +192,15 @@ fn output_dir(manifest_path: &Path) -> PathBuf {
     }
 }
 
-fn check_inputs(old: &Manifest, pipeline_file: &Path) -> Vec<String> {
+/// Where `verify` looks for the recorded inputs.
+enum Place {
+    /// At their recorded paths, relative to the pipeline file.
+    AsRecorded,
+    /// Below `root`, at their recorded paths' part below `glob_root` (`--data`).
+    Under { glob_root: PathBuf, root: PathBuf },
+}
+
+fn check_inputs(old: &Manifest, pipeline_file: &Path, place: &Place) -> Vec<String> {
     let mut problems = Vec::new();
     match hash_file(pipeline_file) {
         Err(_) => problems.push(format!(
@@ -175,10 +215,27 @@ fn check_inputs(old: &Manifest, pipeline_file: &Path) -> Vec<String> {
     }
     let dir = pipeline_file.parent().unwrap_or(Path::new("."));
     for input in &old.inputs {
-        match hash_file(&dir.join(&input.path)) {
-            Err(_) => problems.push(format!("input file {} is missing", input.path)),
+        let (path, shown) = match place {
+            Place::AsRecorded => (dir.join(&input.path), input.path.clone()),
+            Place::Under { glob_root, root } => {
+                match Path::new(&input.path).strip_prefix(glob_root) {
+                    Ok(below) => (root.join(below), root.join(below).display().to_string()),
+                    Err(_) => {
+                        problems.push(format!(
+                            "input file {} is not below the recordings' folder {}, so --data \
+                             cannot say where it is now",
+                            input.path,
+                            glob_root.display()
+                        ));
+                        continue;
+                    }
+                }
+            }
+        };
+        match hash_file(&path) {
+            Err(_) => problems.push(format!("input file {shown} is missing")),
             Ok((size, hash)) if size != input.size || hash != input.blake3 => {
-                problems.push(format!("input file {} changed", input.path))
+                problems.push(format!("input file {shown} changed"))
             }
             Ok(_) => {}
         }

@@ -277,12 +277,26 @@ fn file_stem(p: &Path) -> String {
         .unwrap_or_default()
 }
 
-/// Reads a sidecar: the layout fields at the top level, or under `layout`.
+/// Reads a sidecar: the exported form of format 2 (`attrs.format_version`, see
+/// `crate::output::sidecar`), else the layout fields at the top level, or under `layout`.
 pub fn read_sidecar(path: &Path) -> Result<Sidecar, String> {
     let text = fs::read_to_string(path)
         .map_err(|e| format!("no readable sidecar {} ({e})", path.display()))?;
     let v: Value =
         serde_json::from_str(&text).map_err(|e| format!("sidecar is not valid JSON ({e})"))?;
+    if v["attrs"]["format_version"]
+        .as_u64()
+        .is_some_and(|n| n >= 2)
+    {
+        let (dims, coords) =
+            crate::output::sidecar_axes(&v).map_err(|e| format!("sidecar: {e}"))?;
+        return Ok(Sidecar {
+            dims,
+            coords,
+            units: str_of(&v["attrs"], "units"),
+            meta: v["attrs"].clone(),
+        });
+    }
     let body = if v.get("dims").is_some() {
         &v
     } else {

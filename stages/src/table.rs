@@ -5,6 +5,11 @@
 //! `statistic` axis (as `aggregate` with `over: subjects` writes: `mean`, `sem`, `n`) is pivoted
 //! into one column per statistic, so a group table reads like a results table of a paper.
 //! The same text forms ([`coord_text`], [`number_text`]) name array positions in error messages.
+//!
+//! Tables name things as BIDS tables do: a `pair` axis is two columns, `channel_a` and
+//! `channel_b` (never a joined label, which a bipolar channel name such as `F3-C3` would make
+//! ambiguous), and a `subject` axis holds BIDS subject names (`sub-01`; the group rows
+//! `group`), which no reader takes for numbers.
 
 use std::fmt::Write as _;
 
@@ -107,6 +112,149 @@ pub fn position_text(layout: &Layout, index: &[usize]) -> String {
         .join(", ")
 }
 
+/// The BIDS name of a subject label: `sub-<label>` (a label that already is one, and the
+/// group rows' `group`, unchanged).
+pub fn bids_subject(label: &str) -> String {
+    if label == "group" || label.starts_with("sub-") {
+        label.to_string()
+    } else {
+        format!("sub-{label}")
+    }
+}
+
+/// The table columns of axis `dim`: `channel_a` and `channel_b` for channel pairs, else the
+/// axis name.
+fn axis_columns(dim: &str, coord: &Coord) -> Vec<String> {
+    match coord {
+        Coord::Pairs(_) => vec!["channel_a".into(), "channel_b".into()],
+        _ => vec![dim.to_string()],
+    }
+}
+
+/// The cell(s) of entry `i` of axis `dim` in a table row (tab-separated when the axis has two
+/// columns): pairs as their two channels, subjects by their BIDS name, the rest as
+/// [`coord_text`].
+fn cell_text(dim: &str, coord: &Coord, i: usize) -> String {
+    let clean = |s: &str| s.replace(['\t', '\n', '\r'], " ");
+    match coord {
+        Coord::Pairs(v) => v
+            .get(i)
+            .map(|[a, b]| format!("{}\t{}", clean(a), clean(b)))
+            .unwrap_or_else(|| "?\t?".into()),
+        Coord::Labels(v) if dim == "subject" => v
+            .get(i)
+            .map_or_else(|| "?".into(), |s| clean(&bids_subject(s))),
+        _ => coord_text(coord, i),
+    }
+}
+
+/// The column dictionary of the table [`write_tidy_tsv`] writes for an array of `layout`, in
+/// the form of a BIDS tabular-file sidecar: one entry per column, `{"Description": ...}` with
+/// `Units` where a column has them and `Levels` where its entries are named ranges (bands,
+/// windows).
+pub fn column_dictionary(layout: &Layout) -> serde_json::Map<String, serde_json::Value> {
+    use crate::ops::contrast::{FINDINGS_COLUMNS, TABLE_FORM};
+    use serde_json::{json, Value};
+    let findings = layout.meta.extra.get("table_form") == Some(&json!(TABLE_FORM));
+    let names: Vec<String> = match findings {
+        true => FINDINGS_COLUMNS.iter().map(|c| c.to_string()).collect(),
+        false => {
+            let pivot = layout.dims.iter().position(|d| d == PIVOT_AXIS);
+            let mut names: Vec<String> = (0..layout.dims.len())
+                .filter(|&a| Some(a) != pivot)
+                .flat_map(|a| axis_columns(&layout.dims[a], &layout.coords[a]))
+                .collect();
+            let per_value: &[&str] = if layout.complex {
+                &["real", "imag"]
+            } else {
+                &["value"]
+            };
+            match pivot {
+                None => names.extend(per_value.iter().map(|v| v.to_string())),
+                Some(p) => {
+                    let coord = &layout.coords[p];
+                    for k in 0..coord.len() {
+                        let stat = coord_text(coord, k);
+                        match layout.complex {
+                            false => names.push(stat),
+                            true => names.extend(per_value.iter().map(|v| format!("{stat}_{v}"))),
+                        }
+                    }
+                }
+            }
+            names
+        }
+    };
+    // Named ranges of the metadata (`bands` in Hz, `windows` in s) as the levels of a column.
+    let levels = |key: &str, unit: &str| -> Option<Value> {
+        let ranges = layout.meta.extra.get(key)?.as_object()?;
+        let text = ranges.iter().map(|(name, range)| {
+            let r: Vec<String> = range
+                .as_array()
+                .map(|r| {
+                    r.iter()
+                        .filter_map(Value::as_f64)
+                        .map(number_text)
+                        .collect()
+                })
+                .unwrap_or_default();
+            (name.clone(), json!(format!("{} {unit}", r.join(" to "))))
+        });
+        Some(Value::Object(text.collect()))
+    };
+    let values = json!(layout.units);
+    names
+        .into_iter()
+        .map(|name| {
+            let mut entry = serde_json::Map::new();
+            // A complex value's statistic columns (`mean_real`) are described as the statistic.
+            let base = name
+                .strip_suffix("_real")
+                .or_else(|| name.strip_suffix("_imag"))
+                .unwrap_or(&name);
+            let (description, units, named) = match base {
+                "subject" => ("Subject, by its BIDS name (sub-<label>); `group` on the rows that summarise all subjects", None, None),
+                "channel_a" => ("First channel of the pair", None, None),
+                "channel_b" => ("Second channel of the pair", None, None),
+                "condition" => ("Condition: a named set of event labels of the epoch stage", None, None),
+                "measure" => ("Phase-synchronization measure", None, None),
+                "band" => ("Frequency band, as named in the pipeline (the mean over its frequencies, inclusive)", None, levels("bands", "Hz")),
+                "window" => ("Time window, as named in the pipeline (the mean over its times, inclusive)", None, levels("windows", "s")),
+                "freq" | "freq_from" | "freq_to" => ("Frequency (cluster extent for freq_from, freq_to)", Some(json!("Hz")), None),
+                "time" | "time_from" | "time_to" => ("Time relative to the event (cluster extent for time_from, time_to)", Some(json!("s")), None),
+                "trial" => ("Trial number", None, None),
+                "value" => ("Value", Some(values.clone()), None),
+                "real" | "imag" => ("Real or imaginary part of the value", Some(values.clone()), None),
+                "mean" => ("Mean over subjects on `group` rows; the subject's own value on a subject's rows", Some(values.clone()), None),
+                "sem" => ("Standard error of the mean over subjects (sd with ddof 1 over sqrt(n)); n/a on a subject's rows", Some(values.clone()), None),
+                "n" => ("Number of finite values the row summarises", None, None),
+                "cluster" => ("Cluster id within the measure and pair (n/a without cluster correction)", None, None),
+                "mass" => ("Cluster mass: the sum of t over its points", None, None),
+                "peak_t" => ("The t of largest magnitude in the cluster", None, None),
+                "p" => ("Corrected p value", None, None),
+                "significant" => ("Whether p is at or below the contrast's alpha", None, None),
+                _ => ("", None, None),
+            };
+            let mut description = if description.is_empty() {
+                format!("Coordinate or statistic `{name}`")
+            } else {
+                description.to_string()
+            };
+            if base != name {
+                description.push_str(&format!(" ({} part)", &name[base.len() + 1..]));
+            }
+            entry.insert("Description".into(), json!(description));
+            if let Some(units) = units {
+                entry.insert("Units".into(), units);
+            }
+            if let Some(levels) = named {
+                entry.insert("Levels".into(), levels);
+            }
+            (name, Value::Object(entry))
+        })
+        .collect()
+}
+
 /// The pivoted axis (if any), the axes that become row columns, and the header.
 fn columns(array: &LabelledArray) -> (Option<usize>, Vec<usize>, Vec<String>) {
     let layout = &array.layout;
@@ -114,7 +262,10 @@ fn columns(array: &LabelledArray) -> (Option<usize>, Vec<usize>, Vec<String>) {
     let row_axes: Vec<usize> = (0..layout.dims.len())
         .filter(|&a| Some(a) != pivot)
         .collect();
-    let mut header: Vec<String> = row_axes.iter().map(|&a| layout.dims[a].clone()).collect();
+    let mut header: Vec<String> = row_axes
+        .iter()
+        .flat_map(|&a| axis_columns(&layout.dims[a], &layout.coords[a]))
+        .collect();
     header.extend(value_columns(array, pivot));
     (pivot, row_axes, header)
 }
@@ -154,7 +305,11 @@ pub fn write_tidy_tsv<E: Send>(
     let coord_texts: Vec<Vec<String>> = row_axes
         .iter()
         .zip(&row_shape)
-        .map(|(&a, &n)| (0..n).map(|i| coord_text(&layout.coords[a], i)).collect())
+        .map(|(&a, &n)| {
+            (0..n)
+                .map(|i| cell_text(&layout.dims[a], &layout.coords[a], i))
+                .collect()
+        })
         .collect();
     // Row-major element strides of the values (read in standard layout).
     let shape = array.values.shape();
@@ -420,8 +575,8 @@ mod tests {
                 .to_vec(),
             coords: vec![
                 labels(&["mean", "sem", "n"]),
-                labels(&["sub-01", "group"]),
-                Coord::Pairs(vec![["F3".into(), "P4".into()]].into()),
+                labels(&["01", "group"]),
+                Coord::Pairs(vec![["F3-C3".into(), "P4".into()]].into()),
                 labels(&["theta", "alpha"]),
             ],
             units: "1".into(),
@@ -433,12 +588,53 @@ mod tests {
         let mut values = values;
         values[[1, 0, 0, 1]] = f32::NAN;
         let array = LabelledArray::real(layout, values).unwrap();
-        let expected = "subject\tpair\tband\tmean\tsem\tn\n\
-                        sub-01\tF3-P4\ttheta\t0\t100\t200\n\
-                        sub-01\tF3-P4\talpha\t1\tn/a\t201\n\
-                        group\tF3-P4\ttheta\t10\t110\t210\n\
-                        group\tF3-P4\talpha\t11\t111\t211\n";
+        // Subjects by their BIDS names, the pair as two columns (a bipolar name stays whole).
+        let expected = "subject\tchannel_a\tchannel_b\tband\tmean\tsem\tn\n\
+                        sub-01\tF3-C3\tP4\ttheta\t0\t100\t200\n\
+                        sub-01\tF3-C3\tP4\talpha\t1\tn/a\t201\n\
+                        group\tF3-C3\tP4\ttheta\t10\t110\t210\n\
+                        group\tF3-C3\tP4\talpha\t11\t111\t211\n";
         assert_eq!(tidy_tsv(&array), expected);
+    }
+
+    /// The column dictionary names exactly the table's columns, each with a description, and
+    /// gives the units of the values and of the numeric axes.
+    #[test]
+    fn the_column_dictionary_names_every_column() {
+        for complex in [false, true] {
+            let layout = Layout {
+                dims: ["statistic", "subject", "pair", "freq"]
+                    .map(String::from)
+                    .to_vec(),
+                coords: vec![
+                    labels(&["mean", "sem", "n"]),
+                    labels(&["01", "group"]),
+                    Coord::Pairs(vec![["F3".into(), "P4".into()]].into()),
+                    Coord::Numbers(vec![4.0, 8.0]),
+                ],
+                units: "V".into(),
+                complex,
+                ..Layout::default()
+            };
+            let values = ArrayD::from_shape_fn(layout.shape(), |i| i[3] as f32);
+            let values = match complex {
+                false => Values::Real(values),
+                true => Values::Complex(values.mapv(|x| Complex32::new(x, 0.0))),
+            };
+            let array = LabelledArray::checked(layout.clone(), values).unwrap();
+            let table = tidy_tsv(&array);
+            let header: Vec<&str> = table.lines().next().unwrap().split('\t').collect();
+            let dictionary = column_dictionary(&layout);
+            let mut names: Vec<&str> = dictionary.keys().map(String::as_str).collect();
+            let mut sorted = header.clone();
+            sorted.sort();
+            names.sort();
+            assert_eq!(names, sorted);
+            assert!(dictionary.values().all(|e| e["Description"].is_string()));
+            assert_eq!(dictionary["freq"]["Units"], "Hz");
+            let mean = if complex { "mean_real" } else { "mean" };
+            assert_eq!(dictionary[mean]["Units"], "V");
+        }
     }
 
     #[test]
@@ -474,7 +670,7 @@ mod tests {
             let mut cells: Vec<String> = row_axes
                 .iter()
                 .zip(row)
-                .map(|(&a, &i)| coord_text(&layout.coords[a], i))
+                .map(|(&a, &i)| cell_text(&layout.dims[a], &layout.coords[a], i))
                 .collect();
             for k in 0..pivot_len {
                 let mut full = row.to_vec();

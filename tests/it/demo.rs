@@ -55,7 +55,17 @@ impl Saved {
             .iter()
             .map(|d| d.as_str().expect("dim name").to_string())
             .collect();
-        let coords = layout["coords"].as_array().expect("coords").clone();
+        // An exported sidecar (format 2: coordinates by name, pairs as channel_a/channel_b)
+        // read back into one `{kind, values}` list per axis, as a cache record lists them.
+        let coords = if layout["attrs"]["format_version"] == 2 {
+            let (_, coords) = phasewise::output::sidecar_axes(layout).expect("sidecar");
+            coords
+                .iter()
+                .map(|c| serde_json::to_value(c).unwrap())
+                .collect()
+        } else {
+            layout["coords"].as_array().expect("coords").clone()
+        };
         Saved {
             values,
             dims,
@@ -230,7 +240,7 @@ fn demo_pipeline_finds_the_planted_coupling_and_reruns_only_what_a_change_touche
     let freq = truth["coupling"]["frequency_hz"].as_f64().unwrap();
     let window = truth["coupling"]["window_s"].as_array().unwrap();
     let (w0, w1) = (window[0].as_f64().unwrap(), window[1].as_f64().unwrap());
-    let bands = read_json(&out.join("group/group.json"))["meta"]["extra"]["bands"].clone();
+    let bands = read_json(&out.join("group/group.json"))["attrs"]["bands"].clone();
     let band = bands
         .as_object()
         .unwrap()
@@ -238,7 +248,7 @@ fn demo_pipeline_finds_the_planted_coupling_and_reruns_only_what_a_change_touche
         .find(|(_, r)| (r[0].as_f64().unwrap()..=r[1].as_f64().unwrap()).contains(&freq))
         .map(|(name, _)| name.clone())
         .expect("a band holding the planted frequency");
-    let windows = read_json(&out.join("group/group.json"))["meta"]["extra"]["windows"].clone();
+    let windows = read_json(&out.join("group/group.json"))["attrs"]["windows"].clone();
     let late = windows
         .as_object()
         .unwrap()

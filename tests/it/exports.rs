@@ -121,8 +121,8 @@ fn an_edited_or_deleted_export_is_written_again() {
 }
 
 /// The cache record packs long numeric axes (its own format), but the exported sidecar, which
-/// users read from Python, lists every coordinate as `{kind: numbers, values: [...]}` with the
-/// very f64s of the cached layout.
+/// users read from Python, lists every coordinate as `{dims: [time], data: [...]}` (format 2,
+/// xarray's `DataArray.to_dict` form) with the very f64s of the cached layout.
 #[test]
 fn exported_sidecars_list_every_coordinate_that_the_cache_record_packs() {
     let p = Project::new(&["01"]);
@@ -137,9 +137,11 @@ fn exported_sidecars_list_every_coordinate_that_the_cache_record_packs() {
     let dims = sidecar["dims"].as_array().unwrap();
     let t = dims.iter().position(|d| d == "time").expect("a time axis");
     assert_eq!(raw["layout"]["coords"][t]["kind"], "numbers_delta2");
-    let coord = &sidecar["coords"][t];
-    assert_eq!(coord["kind"], "numbers");
-    let listed: Vec<u64> = coord["values"]
+    let coord = &sidecar["coords"]["time"];
+    assert_eq!(coord["dims"], serde_json::json!(["time"]));
+    assert_eq!(coord["attrs"]["units"], "s");
+    assert_eq!(sidecar["attrs"]["format_version"], 2);
+    let listed: Vec<u64> = coord["data"]
         .as_array()
         .unwrap()
         .iter()

@@ -147,7 +147,7 @@ pub const GROUP: usize = 5;
 /// Flip patterns per chunk: the random patterns of chunk c depend on (seed, c) alone.
 pub const CHUNK: usize = 256;
 /// `meta.extra` key that marks the output's table as a findings table.
-const TABLE_FORM: &str = "findings";
+pub const TABLE_FORM: &str = "findings";
 
 /// What the layout step works out once; `prepare` and `join` reuse it.
 struct Plan {
