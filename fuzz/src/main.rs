@@ -4,11 +4,14 @@
 //! ```text
 //! phasewise-fuzz <edf|tsv|pipeline|all> [--seconds N] [--seed S] [--max-execs N]
 //! phasewise-fuzz <target> --replay FILE
+//! phasewise-fuzz seeds <target> DIR     # the seed corpus as files, for afl-fuzz -i
+//! phasewise-fuzz afl <target>           # the program afl-fuzz runs (built with --features afl)
 //! ```
 //! Prints, per target, the executions, the distinct panics found (each saved under
 //! `artifacts/<target>/`), the executions slower than the slow limit and the slowest one.
 //! Exits 1 when anything was found, so a CI step fails on a finding.
 
+mod afl_mode;
 mod harness;
 mod mutate;
 mod rng;
@@ -54,7 +57,34 @@ fn parse_args() -> Result<Args, String> {
     Ok(parsed)
 }
 
+/// The target named `name`, or exit 2 naming the targets.
+fn target_named(name: &str) -> &'static targets::Target {
+    TARGETS.iter().find(|t| t.name == name).unwrap_or_else(|| {
+        eprintln!("unknown target {name:?}; targets: edf, tsv, pipeline");
+        std::process::exit(2);
+    })
+}
+
 fn main() {
+    let raw: Vec<String> = std::env::args().skip(1).collect();
+    match raw.iter().map(String::as_str).collect::<Vec<_>>().as_slice() {
+        ["seeds", name, dir] => {
+            let target = target_named(name);
+            match afl_mode::write_seeds(target, std::path::Path::new(dir)) {
+                Ok(n) => println!("{name}: {n} seeds written to {dir}"),
+                Err(e) => {
+                    eprintln!("{dir}: cannot write the seeds: {e}");
+                    std::process::exit(2);
+                }
+            }
+            return;
+        }
+        ["afl", name] => {
+            afl_mode::run(target_named(name));
+            return;
+        }
+        _ => {}
+    }
     let args = match parse_args() {
         Ok(a) => a,
         Err(message) => {

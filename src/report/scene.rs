@@ -237,8 +237,8 @@ pub fn to_png(scene: &Scene, scale: f64, path: &Path) -> Result<(), String> {
     let mut enc = png::Encoder::new(std::io::BufWriter::new(file), w, h);
     enc.set_color(png::ColorType::Rgb);
     enc.set_depth(png::BitDepth::Eight);
-    enc.set_compression(png::Compression::Best);
-    enc.set_adaptive_filter(png::AdaptiveFilterType::Adaptive);
+    enc.set_compression(png::Compression::High);
+    enc.set_filter(png::Filter::Adaptive);
     let mut writer = enc.write_header().map_err(|e| e.to_string())?;
     writer.write_image_data(&buf).map_err(|e| e.to_string())?;
     writer.finish().map_err(|e| e.to_string())
