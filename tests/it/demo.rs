@@ -489,7 +489,7 @@ fn a_ten_subject_study_finds_the_planted_coupling_with_a_thousand_sign_flips() {
         "{}",
         String::from_utf8_lossy(&run.stderr)
     );
-    let extra = &read_json(&root.join("results/stats/group/contrast.json"))["meta"]["extra"];
+    let extra = &read_json(&root.join("results/stats/group/contrast.json"))["attrs"];
     assert_eq!(extra["patterns"], 1024, "{extra}");
     assert_eq!(extra["exact"], true, "{extra}");
     let rows = findings(&root.join("results/stats/contrast.tsv"));
