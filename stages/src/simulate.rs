@@ -1012,7 +1012,7 @@ mod tests {
         let (ta, tb) = (tree(a.path()), tree(b.path()));
         assert_eq!(
             ta.len(),
-            2 + 6 * 4,
+            2 + 6 * 6,
             "{:?}",
             ta.iter().map(|f| &f.0).collect::<Vec<_>>()
         );
