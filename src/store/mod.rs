@@ -300,30 +300,10 @@ impl Store {
             Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
         };
         let copied = write_then_rename(path, false, |to| {
-            let mut hasher = blake3::Hasher::new();
-            let mut buffer = vec![0u8; READ_CHUNK];
-            let mut total = 0u64;
-            loop {
-                let n = match from.read(&mut buffer) {
-                    Ok(0) => break,
-                    Ok(n) => n,
-                    Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
-                    Err(e) => {
-                        return Ok(Err(Declined::Wrong(format!("cannot read its values: {e}"))))
-                    }
-                };
-                hash_update(&mut hasher, &buffer[..n]);
-                to.write_all(&buffer[..n])?;
-                total += n as u64;
-            }
-            let hash = hasher.finalize().to_hex().to_string();
-            if hash != record.blake3 || total != record.npy_size {
-                return Ok(Err(Declined::Wrong(format!(
-                    "its values' blake3 is {hash}, the record says {}",
-                    record.blake3
-                ))));
-            }
-            Ok(Ok(()))
+            Ok(
+                read_checked(&mut from, record, |chunk| to.write_all(chunk))?
+                    .map_err(Declined::Wrong),
+            )
         });
         copied.map(|r| r.map_err(|declined| declined.to_string()))
     }
@@ -344,25 +324,8 @@ impl Store {
             Ok(f) => f,
             Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
         };
-        let mut hasher = blake3::Hasher::new();
-        let mut buffer = vec![0u8; READ_CHUNK];
-        let mut total = 0u64;
-        loop {
-            let n = match from.read(&mut buffer) {
-                Ok(0) => break,
-                Ok(n) => n,
-                Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
-                Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
-            };
-            hash_update(&mut hasher, &buffer[..n]);
-            total += n as u64;
-        }
-        let hash = hasher.finalize().to_hex().to_string();
-        if hash != record.blake3 || total != record.npy_size {
-            return Ok(Err(format!(
-                "its values' blake3 is {hash}, the record says {}",
-                record.blake3
-            )));
+        if let Err(why) = read_checked(&mut from, record, |_| Ok(()))? {
+            return Ok(Err(why));
         }
         link_then_rename(&from, &npy, path).map(Ok)
     }
@@ -536,6 +499,39 @@ fn write_object_file(path: &Path, values: &Values) -> Result<(String, u64), Stor
 /// Everything is integer arithmetic on the bit patterns, so no rounding enters either way.
 /// Short coordinates stay plain lists, so records remain readable.
 pub mod record_layout;
+
+/// Read a stored object's values to the end, handing each chunk to `sink` and hashing it on the
+/// way: `Ok(Err(why))` when they do not match the record (content hash or size) or cannot be
+/// read; an I/O error only from `sink`. Shared by [`Store::copy_object`] and
+/// [`Store::link_object`].
+fn read_checked(
+    from: &mut File,
+    record: &ObjectRecord,
+    mut sink: impl FnMut(&[u8]) -> std::io::Result<()>,
+) -> std::io::Result<Result<(), String>> {
+    let mut hasher = blake3::Hasher::new();
+    let mut buffer = vec![0u8; READ_CHUNK];
+    let mut total = 0u64;
+    loop {
+        let n = match from.read(&mut buffer) {
+            Ok(0) => break,
+            Ok(n) => n,
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
+            Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
+        };
+        hash_update(&mut hasher, &buffer[..n]);
+        sink(&buffer[..n])?;
+        total += n as u64;
+    }
+    let hash = hasher.finalize().to_hex().to_string();
+    if hash != record.blake3 || total != record.npy_size {
+        return Ok(Err(format!(
+            "its values' blake3 is {hash}, the record says {}",
+            record.blake3
+        )));
+    }
+    Ok(Ok(()))
+}
 
 #[cfg(test)]
 mod tests {
