@@ -103,11 +103,11 @@ impl SimulateConfig {
                 format!("expected [shortest, longest] with {EPOCH_SPAN_S} ≤ shortest ≤ longest ≤ 60 s (the demo's epochs need {EPOCH_SPAN_S} s), got [{lo}, {hi}]"),
             ));
         }
-        if self.subjects == 0 || self.subjects > 99 || self.trials_per_cue == 0 {
+        if self.subjects == 0 || self.subjects > MAX_SUBJECTS || self.trials_per_cue == 0 {
             return Err(StageError::param(
                 "subjects",
                 format!(
-                    "expected 1 to 99 subjects and at least one trial per cue, got {} and {}",
+                    "expected 1 to {MAX_SUBJECTS} subjects and at least one trial per cue, got {} and {}",
                     self.subjects, self.trials_per_cue
                 ),
             ));
@@ -544,9 +544,14 @@ pub fn simulate_subject(config: &SimulateConfig, index: usize) -> Result<Recordi
     })
 }
 
-/// `sub-01`, `sub-02`, ...
-pub fn subject_id(index: usize) -> String {
-    format!("sub-{:02}", index + 1)
+/// The largest study `simulate` writes (three-digit labels).
+pub const MAX_SUBJECTS: usize = 999;
+
+/// `sub-01`, `sub-02`, ... in a study of up to 99 subjects; `sub-001`, ... `sub-100`, ... in a
+/// larger one, so that the labels sort in subject order.
+pub fn subject_id(index: usize, subjects: usize) -> String {
+    let width = if subjects > 99 { 3 } else { 2 };
+    format!("sub-{:0width$}", index + 1)
 }
 
 /// Writes the study into `dir`: per subject `sub-XX/eeg/sub-XX_task-cue_eeg.edf` (EDF+ with the
@@ -557,7 +562,7 @@ pub fn write_study(dir: &Path, config: &SimulateConfig) -> Result<(), StageError
     config.check()?;
     let mut per_subject = serde_json::Map::new();
     for index in 0..config.subjects {
-        let id = subject_id(index);
+        let id = subject_id(index, config.subjects);
         let rec = simulate_subject(config, index)?;
         write_subject(dir, &id, &rec, config)?;
         per_subject.insert(id, rec.draws);
@@ -759,6 +764,19 @@ mod tests {
     use crate::op::Notes;
     use num_complex::Complex64;
 
+    #[test]
+    fn labels_are_two_digits_up_to_99_subjects_and_three_beyond_so_they_sort_in_order() {
+        assert_eq!(subject_id(0, 6), "sub-01");
+        assert_eq!(subject_id(98, 99), "sub-99");
+        let labels: Vec<String> = (0..100).map(|i| subject_id(i, 100)).collect();
+        assert_eq!(
+            (labels[0].as_str(), labels[99].as_str()),
+            ("sub-001", "sub-100")
+        );
+        assert!(labels.windows(2).all(|w| w[0] < w[1]));
+        assert!(SimulateConfig::new(MAX_SUBJECTS + 1, 1).check().is_err());
+    }
+
     fn site(name: &str) -> usize {
         SITES.iter().position(|s| s.0 == name).expect("a site")
     }
@@ -864,7 +882,7 @@ mod tests {
             let (off, _) = ppc(&cross(&rec, CUES[1], pair, 6.0, 0.55));
             let (control, _) = ppc(&cross(&rec, CUES[0], ("Fp2", "O1"), 6.0, 0.55));
             let (before, _) = ppc(&cross(&rec, CUES[0], pair, 6.0, -0.4));
-            eprintln!("{}: ppc cue-left {on:.3} (angle {angle:.3} rad, planted {lag:.3}), cue-right {off:.3}, control {control:.3}, pre-cue {before:.3}", subject_id(index));
+            eprintln!("{}: ppc cue-left {on:.3} (angle {angle:.3} rad, planted {lag:.3}), cue-right {off:.3}, control {control:.3}, pre-cue {before:.3}", subject_id(index, config.subjects));
             assert!(on > 0.3, "cue-left ppc {on}");
             assert!(
                 off.abs() < 0.1 && control.abs() < 0.1 && before.abs() < 0.1,
