@@ -344,3 +344,69 @@ pub fn finite_range(values: impl Iterator<Item = f64>) -> Option<(f64, f64)> {
             Some((lo, hi)) => Some((lo.min(v), hi.max(v))),
         })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::Array5;
+
+    /// One condition, measure and pair; freqs 4, 6, 10 Hz; times 0, 0.1, 0.2 s.
+    fn cube(values: [[f64; 3]; 3]) -> Cube {
+        Cube {
+            conditions: vec!["a".into()],
+            measures: vec!["plv".into()],
+            pairs: vec![["C3".into(), "C4".into()]],
+            rows: GridAxis::Numeric {
+                centres: vec![4.0, 6.0, 10.0],
+                log: true,
+            },
+            cols: GridAxis::Numeric {
+                centres: vec![0.0, 0.1, 0.2],
+                log: false,
+            },
+            values: Array5::from_shape_fn((1, 1, 1, 3, 3), |(_, _, _, r, c)| values[r][c]),
+            plane: Plane::FreqTime,
+            fixed: Vec::new(),
+        }
+    }
+
+    fn range(lo: f64, hi: f64) -> NamedRange {
+        NamedRange {
+            name: "r".into(),
+            lo,
+            hi,
+        }
+    }
+
+    // The rule is the aggregate op's: within one array a NaN inside a band × window makes the
+    // mean NaN (np.mean propagates, as tests/reference/gen_norm.py computes the op's fixture);
+    // a NaN outside it changes nothing.
+    #[test]
+    fn a_nan_inside_the_range_makes_the_mean_empty() {
+        let c = cube([[1.0, 2.0, f64::NAN], [3.0, 4.0, 5.0], [9.0, 9.0, 9.0]]);
+        // 4–8 Hz × 0–0.1 s: cells 1, 2, 3, 4 → 2.5 (the NaN at 0.2 s lies outside).
+        assert_eq!(
+            range_mean(&c, 0, 0, 0, &range(4.0, 8.0), &range(0.0, 0.1)),
+            2.5
+        );
+        assert!(range_mean(&c, 0, 0, 0, &range(4.0, 8.0), &range(0.0, 0.2)).is_nan());
+        // No cell inside: NaN too.
+        assert!(range_mean(&c, 0, 0, 0, &range(12.0, 20.0), &range(0.0, 0.2)).is_nan());
+        // By time: NaN only where the band holds the NaN.
+        let course = band_course(&c, 0, 0, 0, &range(4.0, 8.0));
+        assert_eq!(&course[..2], &[2.0, 3.0]);
+        assert!(course[2].is_nan());
+    }
+
+    // Across subjects a subject without a value drops out of n: mean of 1 and 3 is 2, SEM
+    // sd(ddof 1) / √n = √2 / √2 = 1 (the textbook standard error of the mean).
+    #[test]
+    fn across_subjects_leaves_out_the_missing() {
+        let [m, s, n] = across_subjects([1.0, f64::NAN, 3.0].into_iter());
+        assert_eq!((m, n), (2.0, 2.0));
+        assert!((s - 1.0).abs() < 1e-15);
+        assert!(no_value_note([1.0, 2.0].into_iter(), "cells").is_empty());
+        let note = no_value_note([1.0, f64::NAN, 2.0].into_iter(), "cells");
+        assert!(note.contains("1 of 3 cells had no value"), "{note}");
+    }
+}

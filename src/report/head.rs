@@ -230,12 +230,21 @@ fn head_figure(
                     );
                 }
             }
-            scene.text(
-                (cx, cy - HEAD_R - 18.0),
-                format!("{band} × {win}"),
-                axes::TITLE_PX,
-                (HAlign::Centre, VAlign::Bottom),
-            );
+            // On two lines when one would run past the head's cell (long cluster ranges).
+            let one = format!("{band} × {win}");
+            let lines = if axes::estimate_width(&one, axes::TITLE_PX) > CELL - 8.0 {
+                vec![format!("{band} ×"), win.clone()]
+            } else {
+                vec![one]
+            };
+            for (k, line) in lines.iter().rev().enumerate() {
+                scene.text(
+                    (cx, cy - HEAD_R - 18.0 - k as f64 * (axes::TITLE_PX + 3.0)),
+                    line.clone(),
+                    axes::TITLE_PX,
+                    (HAlign::Centre, VAlign::Bottom),
+                );
+            }
             let shown_max = shown.last().map(|s| s.0);
             panels.push(PanelInfo {
                 label: format!("{band} × {win}"),

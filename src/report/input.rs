@@ -491,3 +491,64 @@ fn parse_tsv(path: &Path, owner: Option<String>, text: &str) -> Table {
         rows,
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // Each failure names its file and what was expected there.
+    #[test]
+    fn sidecar_and_array_errors_name_the_file_and_the_expectation() {
+        let tmp = tempfile::tempdir().unwrap();
+        let bad = tmp.path().join("norm.json");
+        fs::write(&bad, "{ not json").unwrap();
+        let e = read_sidecar(&bad).unwrap_err();
+        assert!(matches!(e, LoadError::NotJson { .. }), "{e:?}");
+        assert!(e.to_string().contains("norm.json") && e.to_string().contains("expected a JSON"));
+
+        fs::write(&bad, r#"{"dims": ["pair", "time"], "coords": []}"#).unwrap();
+        let e = read_sidecar(&bad).unwrap_err();
+        assert!(
+            matches!(
+                e,
+                LoadError::AxisCount {
+                    dims: 2,
+                    coords: 0,
+                    ..
+                }
+            ),
+            "{e:?}"
+        );
+
+        fs::write(&bad, r#"{"dims": "pair", "coords": []}"#).unwrap();
+        let e = read_sidecar(&bad).unwrap_err();
+        assert!(matches!(e, LoadError::Field { field: "dims", .. }), "{e:?}");
+
+        let e = read_sidecar(&tmp.path().join("missing.json")).unwrap_err();
+        assert!(matches!(e, LoadError::Unreadable { .. }), "{e:?}");
+
+        // An array whose shape is not the sidecar's.
+        let npy = tmp.path().join("norm.npy");
+        ndarray_npy::write_npy(&npy, &ndarray::Array2::<f32>::zeros((2, 3))).unwrap();
+        let a = Exported {
+            owner: "sub-01".into(),
+            stage: "norm".into(),
+            npy: npy.clone(),
+            sidecar: Sidecar {
+                dims: vec!["time".into()],
+                coords: vec![Coord::Numbers(vec![0.0, 0.1])],
+                ..Sidecar::default()
+            },
+        };
+        match read_values(&a).unwrap_err() {
+            LoadError::Shape {
+                path,
+                found,
+                expected,
+            } => {
+                assert_eq!((path, found, expected), (npy, vec![2, 3], vec![2]));
+            }
+            other => panic!("{other:?}"),
+        }
+    }
+}

@@ -606,7 +606,7 @@ fn add_courses(
             format!("n = {}–{}", axes::fmt_num(nlo), axes::fmt_num(nhi))
         };
         d.scene.text(
-            (rect[0] + 4.0, rect[1] + 3.0),
+            (rect[0], rect[1] - 3.0),
             format!(
                 "{}: {}–{} Hz, mean ± SEM, {n_text}",
                 course.label,
@@ -614,7 +614,7 @@ fn add_courses(
                 axes::fmt_num(course.band.hi)
             ),
             axes::TICK_PX,
-            (HAlign::Left, VAlign::Top),
+            (HAlign::Left, VAlign::Bottom),
         );
         d.courses.push(CourseInfo {
             label: course.label.clone(),
@@ -836,9 +836,16 @@ pub(crate) fn mean_note(l: &Loaded) -> String {
     if l.averaged.is_empty() {
         return String::new();
     }
+    let how = match l.cube.plane {
+        Plane::FreqTime => "cell by cell (a subject without a value drops out of that cell)",
+        Plane::BandWindow => {
+            "from each subject's own band × window means (empty when a cell inside is), then \
+             across the subjects with a value"
+        }
+    };
     format!(
-        " Mean over the {} subjects {} (n = {}), computed by the report cell by cell (a subject \
-         without a value drops out of that cell, as in `op: aggregate`).",
+        " Mean over the {} subjects {} (n = {}), computed by the report {how}, as `op: aggregate` \
+         does.",
         l.averaged.len(),
         l.averaged.join(", "),
         l.averaged.len()
