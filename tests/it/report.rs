@@ -811,6 +811,9 @@ fn demo_report_shows_the_planted_coupling() {
     let fig = tf_figure(&s, "subject-mean/norm", "wpli", &pair);
     assert_eq!(fig.panels[0].label, "left");
     assert!(fig.why.contains("significant cluster"), "{}", fig.why);
+    // SEM and n on the group figure: a time course under each panel, all six subjects counted.
+    assert_eq!(fig.courses.len(), fig.panels.len());
+    assert!(fig.courses.iter().all(|c| c.n.iter().all(|&n| n == 6.0)));
     let (t, f) = pixel_to_tf(fig, 0, nearest_pixel(fig, 0, RDBU_RED));
     assert!(
         t >= w0 && t <= w1,
@@ -1074,4 +1077,45 @@ fn group_courses_show_the_sem_numpy_computes() {
     // The caption says what the shading is and how many subjects.
     let page = fs::read_to_string(&html).unwrap();
     assert!(page.contains("± 1 SEM across subjects"));
+}
+
+/// The per-subject section draws every chosen pair for every subject, the first pair for all
+/// subjects before the next pair (so the section's cap never hides a subject's first pair).
+#[test]
+fn each_subject_gets_every_chosen_pair() {
+    let f = fixture();
+    let chosen: Vec<[String; 2]> = vec![["Fz".into(), "Pz".into()], ["Cz".into(), "Oz".into()]];
+    let opts = ReportOptions {
+        pairs: chosen.clone(),
+        ..ReportOptions::default()
+    };
+    let s = write_report(&f.out, &f.html, &opts).unwrap();
+    let subject_maps: Vec<&FigureInfo> = s
+        .figures
+        .iter()
+        .filter(|x| x.kind == FigureKind::SubjectMap)
+        .collect();
+    for source in ["sub-01/norm", "sub-02/norm", "sub-02/sync"] {
+        for pair in &chosen {
+            assert!(
+                subject_maps
+                    .iter()
+                    .any(|x| x.source == source && x.pair.as_ref() == Some(pair)),
+                "no {}–{} map of {source}",
+                pair[0],
+                pair[1]
+            );
+        }
+    }
+    let first_of_second = subject_maps
+        .iter()
+        .position(|x| x.pair.as_ref() == Some(&chosen[1]))
+        .unwrap();
+    assert!(subject_maps[..first_of_second]
+        .iter()
+        .all(|x| x.pair.as_ref() == Some(&chosen[0])));
+    assert_eq!(
+        first_of_second, 3,
+        "the first pair for all three subject arrays first"
+    );
 }
