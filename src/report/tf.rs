@@ -451,7 +451,10 @@ fn course_band(
     };
     let (bands, _) = super::matrix::ranges(ctx, manifest, f, t);
     if bands.len() == 1 {
-        return Some((bands[0].clone(), "the only band of this report".to_string()));
+        return Some((
+            bands[0].clone(),
+            "the one band this report uses".to_string(),
+        ));
     }
     let v = &l.cube.values;
     let value = |r: usize, c: usize| match diff {
@@ -459,12 +462,11 @@ fn course_band(
         None => v[[0, m, p, r, c]],
     };
     let mut best: Option<(f64, usize)> = None;
-    for (r, fv) in f.iter().enumerate() {
+    for r in 0..f.len() {
         for c in 0..t.len() {
             let x = value(r, c).abs();
             if x.is_finite() && best.is_none_or(|b| x > b.0) {
                 best = Some((x, r));
-                let _ = fv;
             }
         }
     }
