@@ -179,6 +179,7 @@ pub(crate) fn stage_graph(ctx: &mut Ctx<'_>, manifest: &Manifest) -> Result<(), 
         measure: None,
         why: String::new(),
         outlined: false,
+        courses: Vec::new(),
     })
 }
 

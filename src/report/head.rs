@@ -17,11 +17,10 @@ use serde_json::Value;
 use super::axes::{self, GridAxis};
 use super::colour::MapKind;
 use super::cube::{Cube, Plane};
-use super::input::{self, RunOutput};
+use super::input::RunOutput;
 use super::quantity::{map_for, measure_title, scale_for};
 use super::scene::{HAlign, Scene, VAlign, GREY, INK};
-use super::tf::Loaded;
-use super::tmap::cut_statistic;
+use super::tf::{Loaded, Spread};
 use super::{units_text, ColourBarInfo, Ctx, Draft, FigureKind, PanelInfo, ReportError};
 
 /// Every channel position the output folder knows: from any array's metadata.
@@ -116,7 +115,6 @@ pub(crate) fn head_figures(
             cube.conditions.iter().position(|x| *x == c[1])?,
         ))
     });
-    let (sem, n) = sem_and_n(l, run);
     for m in 0..cube.measures.len() {
         let what = format!("{}: head figure {}", l.source(), cube.measures[m]);
         if !ctx.room_for(FigureKind::Head, &what) {
@@ -126,42 +124,10 @@ pub(crate) fn head_figures(
             Some((a, bb)) => cube.values[[a, m, p, b, w]] - cube.values[[bb, m, p, b, w]],
             None => cube.values[[0, m, p, b, w]],
         };
-        let draft = head_figure(
-            l,
-            m,
-            (bands, wins),
-            &value,
-            diff,
-            &at,
-            (sem.as_ref(), n.as_ref()),
-        );
+        let draft = head_figure(l, m, (bands, wins), &value, diff, &at, l.spread.as_ref());
         ctx.emit(draft)?;
     }
     Ok(())
-}
-
-/// The SEM and n cubes of a group aggregate (statistic `sem` and `n`), when it has them.
-fn sem_and_n(l: &Loaded, run: &RunOutput) -> (Option<Cube>, Option<Cube>) {
-    let Some(a) = run
-        .arrays
-        .iter()
-        .find(|a| a.owner == l.owner && a.stage == l.stage)
-    else {
-        return (None, None);
-    };
-    let Ok(values) = input::read_values(a) else {
-        return (None, None);
-    };
-    let cut = |name: &str| {
-        let mut c = cut_statistic(&a.sidecar, &values, name, Plane::BandWindow)
-            .ok()
-            .flatten()?;
-        if !l.cube.conditions.is_empty() {
-            super::story::order_conditions(&mut c, &l.cube.conditions);
-        }
-        Some(c)
-    };
-    (cut("sem"), cut("n"))
 }
 
 type Value3<'a> = &'a dyn Fn(usize, usize, usize) -> f64;
@@ -173,7 +139,7 @@ fn head_figure(
     value: Value3<'_>,
     diff: Option<(usize, usize)>,
     at: &[Option<(f64, f64)>],
-    (sem, n): (Option<&Cube>, Option<&Cube>),
+    spread: Option<&Spread>,
 ) -> Draft {
     let cube = &l.cube;
     let measure = &cube.measures[m];
@@ -264,12 +230,21 @@ fn head_figure(
                     );
                 }
             }
-            scene.text(
-                (cx, cy - HEAD_R - 18.0),
-                format!("{band} × {win}"),
-                axes::TITLE_PX,
-                (HAlign::Centre, VAlign::Bottom),
-            );
+            // On two lines when one would run past the head's cell (long cluster ranges).
+            let one = format!("{band} × {win}");
+            let lines = if axes::estimate_width(&one, axes::TITLE_PX) > CELL - 8.0 {
+                vec![format!("{band} ×"), win.clone()]
+            } else {
+                vec![one]
+            };
+            for (k, line) in lines.iter().rev().enumerate() {
+                scene.text(
+                    (cx, cy - HEAD_R - 18.0 - k as f64 * (axes::TITLE_PX + 3.0)),
+                    line.clone(),
+                    axes::TITLE_PX,
+                    (HAlign::Centre, VAlign::Bottom),
+                );
+            }
             let shown_max = shown.last().map(|s| s.0);
             panels.push(PanelInfo {
                 label: format!("{band} × {win}"),
@@ -307,7 +282,14 @@ fn head_figure(
     let bar_label = format!("{quantity} ({unit})");
     axes::colour_bar(&mut scene, bar_rect, &scale, &bar_label);
     strongest.sort_by(|x, y| y.0.total_cmp(&x.0));
-    let stat_note = top_lines(cube, m, &strongest, diff, sem, n);
+    let stat_note = top_lines(cube, m, &strongest, diff, spread)
+        + &super::cube::no_value_note(
+            (0..bands.len())
+                .flat_map(|b| (0..wins.len()).flat_map(move |w| (0..np).map(move |p| (b, w, p))))
+                .filter(|&(_, _, p)| drawable(p))
+                .map(|(b, w, p)| value(b, w, p)),
+            "pair × band × window values",
+        );
     let caption = format!(
         "{} between sensors seen from above (nose up), one head per band × window, {} of {}. \
          A line joins each pair whose |{}| is at least {} — the top {} % of all pairs, bands and \
@@ -348,6 +330,7 @@ fn head_figure(
             (TOP_SHARE * 100.0).round()
         ),
         outlined: false,
+        courses: Vec::new(),
     }
 }
 
@@ -358,8 +341,7 @@ fn top_lines(
     m: usize,
     strongest: &[(f64, usize, usize, usize)],
     diff: Option<(usize, usize)>,
-    sem: Option<&Cube>,
-    n: Option<&Cube>,
+    spread: Option<&Spread>,
 ) -> String {
     let mut parts = Vec::new();
     for &(_, p, b, w) in strongest.iter().take(3) {
@@ -372,7 +354,7 @@ fn top_lines(
             .iter()
             .map(|&c| {
                 let v = cube.values[[c, m, p, b, w]];
-                let s = sem.map(|s| s.values[[c, m, p, b, w]]);
+                let s = spread.map(|s| s.sem[[c, m, p, b, w]]);
                 match s {
                     Some(s) if s.is_finite() => format!(
                         "{} {} ± {}",
@@ -384,8 +366,8 @@ fn top_lines(
                 }
             })
             .collect();
-        let nn = n
-            .map(|n| n.values[[conds[0], m, p, b, w]])
+        let nn = spread
+            .map(|s| s.n[[conds[0], m, p, b, w]])
             .filter(|v| v.is_finite())
             .map(|v| format!(", n = {}", axes::fmt_num(v)))
             .unwrap_or_default();
@@ -399,7 +381,7 @@ fn top_lines(
             bs[b],
             ws[w],
             cells.join(", "),
-            if sem.is_some() { " ± SEM" } else { "" }
+            if spread.is_some() { " ± SEM" } else { "" }
         ));
     }
     if parts.is_empty() {

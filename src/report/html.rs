@@ -635,7 +635,7 @@ fn figures_of(ctx: &Ctx<'_>, kind: FigureKind, html_dir: &Path) -> String {
 /// are linked instead).
 fn figures_except(ctx: &Ctx<'_>, kind: FigureKind, html_dir: &Path, shown: &[String]) -> String {
     let mut out = String::new();
-    let mut last_source = None;
+    let mut last_source: Option<String> = None;
     for f in ctx.figures.iter().filter(|f| f.info.kind == kind) {
         if shown.contains(&f.info.id) {
             let _ = writeln!(
@@ -646,9 +646,23 @@ fn figures_except(ctx: &Ctx<'_>, kind: FigureKind, html_dir: &Path, shown: &[Str
             );
             continue;
         }
-        if kind != FigureKind::StageGraph && last_source != Some(&f.info.source) {
-            let _ = writeln!(out, "<h3>{}</h3>", esc(&heading(&f.info.source)));
-            last_source = Some(&f.info.source);
+        // Subjects' maps come pair by pair (every subject's first pair, then the next): one
+        // heading per pair and measure; other figures: one per array.
+        let group = match (kind, &f.info.pair, &f.info.measure) {
+            (FigureKind::SubjectMap, Some(p), Some(m)) => {
+                let stage = f.info.source.split_once('/').map_or("", |s| s.1);
+                format!(
+                    "{}, {}–{}, stage {stage}: subject by subject",
+                    super::quantity::measure_title(m),
+                    p[0],
+                    p[1]
+                )
+            }
+            _ => heading(&f.info.source),
+        };
+        if kind != FigureKind::StageGraph && last_source.as_ref() != Some(&group) {
+            let _ = writeln!(out, "<h3>{}</h3>", esc(&group));
+            last_source = Some(group);
         }
         out.push_str(&figure(f, html_dir));
     }

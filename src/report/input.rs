@@ -4,7 +4,8 @@
 //!
 //! Everything is parsed leniently: unknown fields are ignored and fields of unexpected shape are
 //! kept as raw JSON, so the report keeps working while the manifest format grows. Only a missing
-//! or unreadable manifest is an error; an array that cannot be read is listed as skipped.
+//! or unreadable manifest is an error; an array that cannot be read is listed as skipped, with
+//! its [`LoadError`] (the file, and what was expected there).
 
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -14,6 +15,76 @@ use phasewise_stages::array::Coord;
 use serde_json::Value;
 
 use super::ReportError;
+
+/// Why one exported array (or its sidecar) cannot be read; each names the file and what was
+/// expected there.
+#[derive(Debug, thiserror::Error)]
+pub enum LoadError {
+    /// The sidecar cannot be read.
+    #[error("{}: cannot read it ({source}); expected the JSON sidecar the run writes beside each exported array", path.display())]
+    Unreadable {
+        /// The sidecar.
+        path: PathBuf,
+        /// The cause.
+        source: std::io::Error,
+    },
+    /// The sidecar is not JSON.
+    #[error("{}: expected a JSON document, found invalid JSON ({source})", path.display())]
+    NotJson {
+        /// The sidecar.
+        path: PathBuf,
+        /// The parser's message.
+        source: serde_json::Error,
+    },
+    /// A field of the sidecar has the wrong shape.
+    #[error("{}: field `{field}`: expected {expected} ({detail})", path.display())]
+    Field {
+        /// The sidecar.
+        path: PathBuf,
+        /// The field (`dims`, `coords`, …).
+        field: &'static str,
+        /// What it should hold.
+        expected: &'static str,
+        /// What the reader found.
+        detail: String,
+    },
+    /// The sidecar lists a different number of axes and coordinate lists.
+    #[error("{}: {dims} axis names but {coords} coordinate lists; expected one list per axis", path.display())]
+    AxisCount {
+        /// The sidecar.
+        path: PathBuf,
+        /// Number of axis names.
+        dims: usize,
+        /// Number of coordinate lists.
+        coords: usize,
+    },
+    /// The array file holds no real float array.
+    #[error("{}: expected a real f32 or f64 NPY array, cannot read it as one ({detail})", path.display())]
+    NotReal {
+        /// The array file.
+        path: PathBuf,
+        /// The NPY reader's message.
+        detail: String,
+    },
+    /// The array's shape is not the one its sidecar describes.
+    #[error("{}: shape {found:?}, expected {expected:?} from the sidecar's coordinates", path.display())]
+    Shape {
+        /// The array file.
+        path: PathBuf,
+        /// Shape in the file.
+        found: Vec<usize>,
+        /// Shape the sidecar gives.
+        expected: Vec<usize>,
+    },
+    /// The array's axes cannot be drawn as a connectivity map.
+    #[error("{}: {source}", path.display())]
+    Layout {
+        /// The array file.
+        path: PathBuf,
+        /// What the axes lack.
+        source: super::cube::LayoutError,
+    },
+}
 
 /// One unit (stage × subject) of the manifest.
 #[derive(Clone, Debug, Default)]
@@ -257,7 +328,7 @@ fn find_arrays(dir: &Path, skipped: &mut Vec<String>) -> Result<Vec<Exported>, R
                         npy: f,
                         sidecar,
                     }),
-                    Err(msg) => skipped.push(format!("{}: {msg}", f.display())),
+                    Err(e) => skipped.push(e.to_string()),
                 }
             }
         }
@@ -279,17 +350,32 @@ fn file_stem(p: &Path) -> String {
 
 /// Reads a sidecar: the exported form of format 2 (`attrs.format_version`, see
 /// `crate::output::sidecar`), else the layout fields at the top level, or under `layout`.
-pub fn read_sidecar(path: &Path) -> Result<Sidecar, String> {
-    let text = fs::read_to_string(path)
-        .map_err(|e| format!("no readable sidecar {} ({e})", path.display()))?;
-    let v: Value =
-        serde_json::from_str(&text).map_err(|e| format!("sidecar is not valid JSON ({e})"))?;
+pub fn read_sidecar(path: &Path) -> Result<Sidecar, LoadError> {
+    let text = fs::read_to_string(path).map_err(|source| LoadError::Unreadable {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    let v: Value = serde_json::from_str(&text).map_err(|source| LoadError::NotJson {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    let field = |field, expected, detail: String| LoadError::Field {
+        path: path.to_path_buf(),
+        field,
+        expected,
+        detail,
+    };
     if v["attrs"]["format_version"]
         .as_u64()
         .is_some_and(|n| n >= 2)
     {
-        let (dims, coords) =
-            crate::output::sidecar_axes(&v).map_err(|e| format!("sidecar: {e}"))?;
+        let (dims, coords) = crate::output::sidecar_axes(&v).map_err(|e| {
+            field(
+                "coords",
+                "axis names and a coordinate per axis, as the run exports them (format 2)",
+                e,
+            )
+        })?;
         return Ok(Sidecar {
             dims,
             coords,
@@ -304,17 +390,16 @@ pub fn read_sidecar(path: &Path) -> Result<Sidecar, String> {
     };
     let dims: Vec<String> =
         serde_json::from_value(body.get("dims").cloned().unwrap_or(Value::Null))
-            .map_err(|e| format!("sidecar `dims` should be a list of axis names ({e})"))?;
-    let coords: Vec<Coord> = serde_json::from_value(
-        body.get("coords").cloned().unwrap_or(Value::Null),
-    )
-    .map_err(|e| format!("sidecar `coords` should be one {{kind, values}} list per axis ({e})"))?;
+            .map_err(|e| field("dims", "a list of axis names", e.to_string()))?;
+    let coords: Vec<Coord> =
+        serde_json::from_value(body.get("coords").cloned().unwrap_or(Value::Null))
+            .map_err(|e| field("coords", "one {kind, values} list per axis", e.to_string()))?;
     if dims.len() != coords.len() {
-        return Err(format!(
-            "sidecar has {} axis names but {} coordinate lists",
-            dims.len(),
-            coords.len()
-        ));
+        return Err(LoadError::AxisCount {
+            path: path.to_path_buf(),
+            dims: dims.len(),
+            coords: coords.len(),
+        });
     }
     Ok(Sidecar {
         dims,
@@ -325,24 +410,39 @@ pub fn read_sidecar(path: &Path) -> Result<Sidecar, String> {
 }
 
 /// Reads an exported array's values as f32 (f64 files are narrowed; complex ones refused).
-pub fn read_values(a: &Exported) -> Result<ArrayD<f32>, String> {
+pub fn read_values(a: &Exported) -> Result<ArrayD<f32>, LoadError> {
     use ndarray_npy::read_npy;
     let shape: Vec<usize> = a.sidecar.coords.iter().map(Coord::len).collect();
     let values: ArrayD<f32> = match read_npy::<_, ArrayD<f32>>(&a.npy) {
         Ok(v) => v,
         Err(first) => match read_npy::<_, ArrayD<f64>>(&a.npy) {
             Ok(v) => v.mapv(|x| x as f32),
-            Err(_) => return Err(format!("cannot read it as a real float array ({first})")),
+            Err(_) => {
+                return Err(LoadError::NotReal {
+                    path: a.npy.clone(),
+                    detail: first.to_string(),
+                })
+            }
         },
     };
     if values.shape() != shape.as_slice() {
-        return Err(format!(
-            "its shape {:?} does not match the sidecar's coordinates {:?}",
-            values.shape(),
-            shape
-        ));
+        return Err(LoadError::Shape {
+            path: a.npy.clone(),
+            found: values.shape().to_vec(),
+            expected: shape,
+        });
     }
     Ok(values)
+}
+
+impl Exported {
+    /// Its layout error, with its file.
+    pub fn layout_error(&self, source: super::cube::LayoutError) -> LoadError {
+        LoadError::Layout {
+            path: self.npy.clone(),
+            source,
+        }
+    }
 }
 
 /// Tables in the output folder (group stages) first, then in each subject folder.
@@ -389,5 +489,66 @@ fn parse_tsv(path: &Path, owner: Option<String>, text: &str) -> Table {
         path: path.to_path_buf(),
         header,
         rows,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // Each failure names its file and what was expected there.
+    #[test]
+    fn sidecar_and_array_errors_name_the_file_and_the_expectation() {
+        let tmp = tempfile::tempdir().unwrap();
+        let bad = tmp.path().join("norm.json");
+        fs::write(&bad, "{ not json").unwrap();
+        let e = read_sidecar(&bad).unwrap_err();
+        assert!(matches!(e, LoadError::NotJson { .. }), "{e:?}");
+        assert!(e.to_string().contains("norm.json") && e.to_string().contains("expected a JSON"));
+
+        fs::write(&bad, r#"{"dims": ["pair", "time"], "coords": []}"#).unwrap();
+        let e = read_sidecar(&bad).unwrap_err();
+        assert!(
+            matches!(
+                e,
+                LoadError::AxisCount {
+                    dims: 2,
+                    coords: 0,
+                    ..
+                }
+            ),
+            "{e:?}"
+        );
+
+        fs::write(&bad, r#"{"dims": "pair", "coords": []}"#).unwrap();
+        let e = read_sidecar(&bad).unwrap_err();
+        assert!(matches!(e, LoadError::Field { field: "dims", .. }), "{e:?}");
+
+        let e = read_sidecar(&tmp.path().join("missing.json")).unwrap_err();
+        assert!(matches!(e, LoadError::Unreadable { .. }), "{e:?}");
+
+        // An array whose shape is not the sidecar's.
+        let npy = tmp.path().join("norm.npy");
+        ndarray_npy::write_npy(&npy, &ndarray::Array2::<f32>::zeros((2, 3))).unwrap();
+        let a = Exported {
+            owner: "sub-01".into(),
+            stage: "norm".into(),
+            npy: npy.clone(),
+            sidecar: Sidecar {
+                dims: vec!["time".into()],
+                coords: vec![Coord::Numbers(vec![0.0, 0.1])],
+                ..Sidecar::default()
+            },
+        };
+        match read_values(&a).unwrap_err() {
+            LoadError::Shape {
+                path,
+                found,
+                expected,
+            } => {
+                assert_eq!((path, found, expected), (npy, vec![2, 3], vec![2]));
+            }
+            other => panic!("{other:?}"),
+        }
     }
 }

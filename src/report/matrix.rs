@@ -27,8 +27,16 @@ pub(crate) fn matrix_figures(
     ctx: &mut Ctx<'_>,
     l: &Loaded,
     manifest: &Manifest,
+    all: &[Loaded],
 ) -> Result<(), ReportError> {
-    let slices = slices(ctx, l, manifest);
+    if l.cube.plane == Plane::FreqTime {
+        // Averaged over bands and windows first, by the one rule of `to_band_window`.
+        return match to_band_window(ctx, l, manifest, all) {
+            Some(bw) => matrix_figures(ctx, &bw, manifest, all),
+            None => Ok(()),
+        };
+    }
+    let slices = slices(l);
     let diff = tf::contrast(ctx, &l.cube.conditions, &l.source());
     for m in 0..l.cube.measures.len() {
         let all: Vec<Vec<MatrixPanel>> = slices
@@ -94,50 +102,34 @@ pub(crate) fn matrix_figures(
 type Slice<'a> = Box<dyn Fn(usize, usize, usize) -> f64 + 'a>;
 
 /// The band × window slices to draw, each with its label.
-fn slices<'a>(ctx: &Ctx<'_>, l: &'a Loaded, manifest: &Manifest) -> Vec<(String, Slice<'a>)> {
+fn slices(l: &Loaded) -> Vec<(String, Slice<'_>)> {
     let cube = &l.cube;
-    let mut out: Vec<(String, Slice<'a>)> = Vec::new();
-    match (&cube.rows, &cube.cols, cube.plane) {
-        (GridAxis::Categories(bands), GridAxis::Categories(wins), Plane::BandWindow) => {
-            for (b, band) in bands.iter().enumerate() {
-                for (w, win) in wins.iter().enumerate() {
-                    let v = &cube.values;
-                    out.push((
-                        format!("{band} × {win}"),
-                        Box::new(move |c, m, p| v[[c, m, p, b, w]]),
-                    ));
-                }
+    let mut out: Vec<(String, Slice<'_>)> = Vec::new();
+    if let (GridAxis::Categories(bands), GridAxis::Categories(wins)) = (&cube.rows, &cube.cols) {
+        for (b, band) in bands.iter().enumerate() {
+            for (w, win) in wins.iter().enumerate() {
+                let v = &cube.values;
+                out.push((
+                    format!("{band} × {win}"),
+                    Box::new(move |c, m, p| v[[c, m, p, b, w]]),
+                ));
             }
         }
-        (GridAxis::Numeric { centres: f, .. }, GridAxis::Numeric { centres: t, .. }, _) => {
-            let (bands, wins) = ranges(ctx, manifest, f, t);
-            for band in &bands {
-                for win in &wins {
-                    let label = format!(
-                        "{} ({}–{} Hz) × {} ({}–{} s)",
-                        band.name,
-                        axes::fmt_num(band.lo),
-                        axes::fmt_num(band.hi),
-                        win.name,
-                        axes::fmt_num(win.lo),
-                        axes::fmt_num(win.hi)
-                    );
-                    let (b, w) = (band.clone(), win.clone());
-                    out.push((
-                        label,
-                        Box::new(move |c, m, p| cube::range_mean(cube, c, m, p, &b, &w)),
-                    ));
-                }
-            }
-        }
-        _ => {}
     }
     out
 }
 
-/// A time–frequency array averaged over the bands and windows matrices use (see [`ranges`]):
-/// the same array on band × window axes, for the head figures.
-pub(crate) fn to_band_window(ctx: &Ctx<'_>, l: &Loaded, manifest: &Manifest) -> Option<Loaded> {
+/// A time–frequency array averaged over the bands and windows of [`ranges`]: the same array on
+/// band × window axes, for matrices and heads. The report's one place for such means, by the
+/// rule of [`cube`] (as `op: aggregate` computes them): for a mean over subjects, each
+/// subject's band × window mean first (NaN when a cell inside is NaN), then mean, SEM and n
+/// across the subjects with a value.
+pub(crate) fn to_band_window(
+    ctx: &Ctx<'_>,
+    l: &Loaded,
+    manifest: &Manifest,
+    all: &[Loaded],
+) -> Option<Loaded> {
     let cube = &l.cube;
     let (GridAxis::Numeric { centres: f, .. }, GridAxis::Numeric { centres: t, .. }) =
         (&cube.rows, &cube.cols)
@@ -154,9 +146,21 @@ pub(crate) fn to_band_window(ctx: &Ctx<'_>, l: &Loaded, manifest: &Manifest) -> 
         )
     };
     let (nc, nm, np) = (cube.conditions.len(), cube.measures.len(), cube.pairs.len());
-    let values = ndarray::Array5::from_shape_fn((nc, nm, np, bands.len(), wins.len()), |i| {
-        cube::range_mean(cube, i.0, i.1, i.2, &bands[i.3], &wins[i.4])
-    });
+    let dim = ndarray::Ix5(nc, nm, np, bands.len(), wins.len());
+    let members = l.members(all);
+    let (values, spread) = if members.len() == l.averaged.len() && members.len() >= 2 {
+        let (mean, spread) = tf::across(
+            dim,
+            |k, i| cube::range_mean(&members[k].cube, i.0, i.1, i.2, &bands[i.3], &wins[i.4]),
+            members.len(),
+        );
+        (mean, Some(spread))
+    } else {
+        let values = ndarray::Array5::from_shape_fn(dim, |i| {
+            cube::range_mean(cube, i.0, i.1, i.2, &bands[i.3], &wins[i.4])
+        });
+        (values, None)
+    };
     let mut c2 = cube.clone();
     c2.rows = GridAxis::Categories(bands.iter().map(|b| label(b, "Hz")).collect());
     c2.cols = GridAxis::Categories(wins.iter().map(|w| label(w, "s")).collect());
@@ -169,11 +173,12 @@ pub(crate) fn to_band_window(ctx: &Ctx<'_>, l: &Loaded, manifest: &Manifest) -> 
         cube: c2,
         baseline: l.baseline.clone(),
         averaged: l.averaged.clone(),
+        spread,
     })
 }
 
 /// Bands and windows for a time–frequency array.
-fn ranges(
+pub(crate) fn ranges(
     ctx: &Ctx<'_>,
     manifest: &Manifest,
     f: &[f64],
@@ -343,7 +348,7 @@ fn matrix_figure(
     let caption = format!(
         "{name} between every pair of channels, {} (stage {}), {slice}. Rows and columns are \
          channels; hatched: no value (the diagonal, or a pair not computed). Colour: {}; the \
-         scales are shared by every {name} matrix of this array.{}{}",
+         scales are shared by every {name} matrix of this array.{}{}{}",
         l.who(),
         l.stage,
         map.name(),
@@ -352,7 +357,11 @@ fn matrix_figure(
             .map(|b| b.sentence())
             .unwrap_or_default()
             .replace(", marked by a black bar along the time axis", ""),
-        tf::mean_note(l)
+        tf::mean_note(l),
+        cube::no_value_note(
+            panels.iter().flat_map(|p| p.by_pair.iter().copied()),
+            "pair values drawn"
+        )
     );
     let id = format!("matrix-{}-{}-{measure}-{slice}", l.owner, l.stage);
     let mut d = fig.finish(FigureKind::Matrix, &id, l.source(), caption);

@@ -135,6 +135,30 @@ pub struct PanelInfo {
     pub lines: Vec<([String; 2], f64)>,
 }
 
+/// One time-course panel under a group time–frequency map: the mean over a frequency band by
+/// time, with a shaded band of ± 1 SEM across subjects.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct CourseInfo {
+    /// The condition (or `a − b`) of the map above.
+    pub label: String,
+    /// The frequency band averaged (Hz, inclusive).
+    pub band: NamedRange,
+    /// Plot rectangle in layout pixels (x0, y0, x1, y1).
+    pub rect: [f64; 4],
+    /// Horizontal axis (time, s).
+    pub x: AxisInfo,
+    /// Vertical axis (the measure's unit), linear: `lo` at the bottom edge, `hi` at the top.
+    pub y: AxisInfo,
+    /// Time of each column (s); each column's shading spans its cell, as in the map above.
+    pub times: Vec<f64>,
+    /// Mean across subjects of the subjects' band means, per time.
+    pub mean: Vec<f64>,
+    /// SEM across subjects (sd with ddof 1 over √n), per time; the shading's half-height.
+    pub sem: Vec<f64>,
+    /// Subjects with a value, per time.
+    pub n: Vec<f64>,
+}
+
 /// One colour bar.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct ColourBarInfo {
@@ -183,6 +207,8 @@ pub struct FigureInfo {
     pub why: String,
     /// True when significant points are outlined.
     pub outlined: bool,
+    /// Time courses with their SEM, under group time–frequency maps.
+    pub courses: Vec<CourseInfo>,
 }
 
 /// What [`write_report`] wrote.
@@ -268,6 +294,7 @@ pub(crate) struct Draft {
     pub measure: Option<String>,
     pub why: String,
     pub outlined: bool,
+    pub courses: Vec<CourseInfo>,
 }
 
 impl Ctx<'_> {
@@ -324,6 +351,7 @@ impl Ctx<'_> {
                 measure: d.measure,
                 why: d.why,
                 outlined: d.outlined,
+                courses: d.courses,
             },
             png_base64: base64::engine::general_purpose::STANDARD.encode(bytes),
             caption: d.caption,
@@ -413,26 +441,29 @@ pub fn write_report(
         tmap::tmap_figures(&mut ctx, s)?;
     }
     for a in &group {
-        tf::tf_figures(&mut ctx, a, FigureKind::TimeFrequency)?;
+        tf::tf_figures(&mut ctx, a, &run.manifest, &arrays)?;
     }
     for a in &group {
         if a.cube.plane == cube::Plane::BandWindow {
             head::head_figures(&mut ctx, a, &run)?;
         } else if !has_aggregate {
-            if let Some(bw) = matrix::to_band_window(&ctx, a, &run.manifest) {
+            if let Some(bw) = matrix::to_band_window(&ctx, a, &run.manifest, &arrays) {
                 head::head_figures(&mut ctx, &bw, &run)?;
             }
         }
     }
     for a in &group {
         if a.cube.plane == cube::Plane::BandWindow || !has_aggregate {
-            matrix::matrix_figures(&mut ctx, a, &run.manifest)?;
+            matrix::matrix_figures(&mut ctx, a, &run.manifest, &arrays)?;
         }
     }
-    // Per subject: the chosen pairs' maps, subject by subject in turn, so that the section's
-    // budget is shared by every subject rather than spent on the first.
-    for a in &subjects {
-        tf::tf_figures(&mut ctx, a, FigureKind::SubjectMap)?;
+    // Per subject: every chosen pair's maps, the first pair for every subject, then the next
+    // pair for every subject, so that the section's budget is shared by every subject and
+    // reaches the later pairs (what does not fit is listed).
+    for pick in ctx.choice.pairs.clone() {
+        for a in &subjects {
+            tf::subject_figures(&mut ctx, a, &pick)?;
+        }
     }
     let (text, sections) = html::page(&run, &ctx, parent, &stats);
     fs::write(out_file, text).map_err(|e| ReportError::io(out_file, e))?;

@@ -133,6 +133,15 @@ impl Scene {
         });
     }
 
+    /// Add a polyline through `points`.
+    pub fn polyline(&mut self, points: Vec<(f64, f64)>, colour: Rgb, width: f64) {
+        self.shapes.push(Shape::Line {
+            points,
+            colour,
+            width,
+        });
+    }
+
     /// Add a dashed straight line (dashes of `dash` logical pixels).
     pub fn dashed(&mut self, a: (f64, f64), b: (f64, f64), colour: Rgb, dash: f64) {
         let len = ((b.0 - a.0).powi(2) + (b.1 - a.1).powi(2)).sqrt();

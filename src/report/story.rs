@@ -55,18 +55,24 @@ impl Choice {
 /// Puts the conditions of a cube in the pipeline's order (names it does not list keep their
 /// place after the listed ones).
 pub(crate) fn order_conditions(cube: &mut Cube, order: &[String]) {
-    if order.is_empty() || cube.conditions.len() < 2 {
-        return;
+    if let Some(idx) = condition_order(&cube.conditions, order) {
+        cube.values = cube.values.select(ndarray::Axis(0), &idx);
+        cube.conditions = idx.iter().map(|&i| cube.conditions[i].clone()).collect();
+    }
+}
+
+/// The indices that put `conditions` in the pipeline's `order`; `None` when they already are.
+pub(crate) fn condition_order(conditions: &[String], order: &[String]) -> Option<Vec<usize>> {
+    if order.is_empty() || conditions.len() < 2 {
+        return None;
     }
     let rank = |c: &String| order.iter().position(|o| o == c).unwrap_or(usize::MAX);
-    let mut idx: Vec<usize> = (0..cube.conditions.len()).collect();
-    idx.sort_by_key(|&i| (rank(&cube.conditions[i]), i));
+    let mut idx: Vec<usize> = (0..conditions.len()).collect();
+    idx.sort_by_key(|&i| (rank(&conditions[i]), i));
     if idx.iter().enumerate().all(|(k, &i)| k == i) {
-        return;
+        return None;
     }
-    let values = cube.values.select(ndarray::Axis(0), &idx);
-    cube.conditions = idx.iter().map(|&i| cube.conditions[i].clone()).collect();
-    cube.values = values;
+    Some(idx)
 }
 
 /// Decides the difference and the pairs.

@@ -8,11 +8,13 @@
 
 use super::axes::{self, GridAxis, PixelMap, Scale};
 use super::colour::MapKind;
-use super::cube::{self, Cube, Plane};
-use super::input::{self, Exported, RunOutput};
+use super::cube::{self, Cube, NamedRange, Plane};
+use super::input::{self, Exported, Manifest, RunOutput};
 use super::quantity::{self, measure_title, Baseline};
 use super::scene::{HAlign, Scene, VAlign};
-use super::{units_text, AxisInfo, ColourBarInfo, Ctx, Draft, FigureKind, PanelInfo, ReportError};
+use super::{
+    units_text, AxisInfo, ColourBarInfo, CourseInfo, Ctx, Draft, FigureKind, PanelInfo, ReportError,
+};
 
 /// A drawable array: where it came from, its cube, and how to colour it.
 pub(crate) struct Loaded {
@@ -25,6 +27,18 @@ pub(crate) struct Loaded {
     pub baseline: Option<Baseline>,
     /// The subjects averaged, for a mean over subjects made by the report.
     pub averaged: Vec<String>,
+    /// SEM and n across subjects, cell by cell, for group-level arrays: the report's subject
+    /// means, or the `sem` and `n` statistics of a group aggregate.
+    pub spread: Option<Spread>,
+}
+
+/// The spread across subjects of a group-level array, in the cube's drawing order.
+#[derive(Clone, Debug)]
+pub(crate) struct Spread {
+    /// Standard error of the mean (NaN where fewer than two subjects have a value).
+    pub sem: ndarray::Array5<f64>,
+    /// Number of subjects with a value.
+    pub n: ndarray::Array5<f64>,
 }
 
 /// Owner name of the subject means the report computes.
@@ -64,6 +78,28 @@ impl Loaded {
     pub fn group_level(&self) -> bool {
         self.owner == "group" || self.owner == MEAN_OWNER
     }
+
+    /// Puts the conditions (of the values and of the spread) in the pipeline's order.
+    pub fn order_conditions(&mut self, order: &[String]) {
+        let Some(idx) = super::story::condition_order(&self.cube.conditions, order) else {
+            return;
+        };
+        super::story::order_conditions(&mut self.cube, order);
+        if let Some(s) = &mut self.spread {
+            s.sem = s.sem.select(ndarray::Axis(0), &idx);
+            s.n = s.n.select(ndarray::Axis(0), &idx);
+        }
+    }
+
+    /// The per-subject arrays a subject mean was made from, in folder order (empty for other
+    /// arrays).
+    pub fn members<'a>(&self, all: &'a [Loaded]) -> Vec<&'a Loaded> {
+        all.iter()
+            .filter(|x| {
+                !x.group_level() && x.stage == self.stage && self.averaged.contains(&x.owner)
+            })
+            .collect()
+    }
 }
 
 /// Reads every exported array that has a pair axis and a plane to draw on, and adds, for each
@@ -92,12 +128,10 @@ pub(crate) fn load_cubes(ctx: &mut Ctx<'_>, run: &RunOutput) -> Vec<Loaded> {
         };
         match load_one(a, plane, run) {
             Ok(mut l) => {
-                super::story::order_conditions(&mut l.cube, &ctx.opts.condition_order);
+                l.order_conditions(&ctx.opts.condition_order);
                 out.push(l)
             }
-            Err(why) => ctx
-                .not_drawn
-                .push(format!("{}/{}: {why}", a.owner, a.stage)),
+            Err(why) => ctx.not_drawn.push(why.to_string()),
         }
     }
     let means = subject_means(ctx, &out);
@@ -115,8 +149,9 @@ fn same_axes(a: &Cube, b: &Cube) -> bool {
         && a.fixed == b.fixed
 }
 
-/// The mean over subjects of each per-subject stage with two or more subjects, cell by cell:
-/// f64, subjects in folder order, NaN cells left out of that cell's mean.
+/// The mean over subjects of each per-subject stage with two or more subjects, cell by cell,
+/// with its SEM and n (subjects in folder order, f64; a subject without a value drops out of
+/// that cell, the rule of [`cube`]).
 fn subject_means(ctx: &mut Ctx<'_>, loaded: &[Loaded]) -> Vec<Loaded> {
     let mut stages: Vec<&str> = Vec::new();
     for l in loaded.iter().filter(|l| !l.group_level()) {
@@ -147,26 +182,34 @@ fn subject_means(ctx: &mut Ctx<'_>, loaded: &[Loaded]) -> Vec<Loaded> {
     out
 }
 
+/// Mean, SEM and n over `members` of every cell of a 5-axis array, each cell by
+/// [`cube::across_subjects`].
+pub(crate) fn across<'a>(
+    dim: ndarray::Ix5,
+    value: impl Fn(usize, (usize, usize, usize, usize, usize)) -> f64 + 'a,
+    n_members: usize,
+) -> (ndarray::Array5<f64>, Spread) {
+    let stats = ndarray::Array5::from_shape_fn(dim, |i| {
+        cube::across_subjects((0..n_members).map(|k| value(k, i)))
+    });
+    (
+        stats.mapv(|s| s[0]),
+        Spread {
+            sem: stats.mapv(|s| s[1]),
+            n: stats.mapv(|s| s[2]),
+        },
+    )
+}
+
 fn mean_of(members: &[&Loaded]) -> Loaded {
     let first = members[0];
-    let mut sum = ndarray::Array5::<f64>::zeros(first.cube.values.raw_dim());
-    let mut n = ndarray::Array5::<f64>::zeros(first.cube.values.raw_dim());
-    for m in members {
-        ndarray::Zip::from(&mut sum)
-            .and(&mut n)
-            .and(&m.cube.values)
-            .for_each(|s, k, &v| {
-                if v.is_finite() {
-                    *s += v;
-                    *k += 1.0;
-                }
-            });
-    }
+    let (mean, spread) = across(
+        first.cube.values.raw_dim(),
+        |k, (c, m, p, r, t)| members[k].cube.values[[c, m, p, r, t]],
+        members.len(),
+    );
     let mut cube = first.cube.clone();
-    cube.values =
-        ndarray::Zip::from(&sum)
-            .and(&n)
-            .map_collect(|&s, &k| if k > 0.0 { s / k } else { f64::NAN });
+    cube.values = mean;
     Loaded {
         owner: MEAN_OWNER.to_string(),
         stage: first.stage.clone(),
@@ -174,12 +217,13 @@ fn mean_of(members: &[&Loaded]) -> Loaded {
         cube,
         baseline: first.baseline.clone(),
         averaged: members.iter().map(|m| m.owner.clone()).collect(),
+        spread: Some(spread),
     }
 }
 
-fn load_one(a: &Exported, plane: Plane, run: &RunOutput) -> Result<Loaded, String> {
+fn load_one(a: &Exported, plane: Plane, run: &RunOutput) -> Result<Loaded, input::LoadError> {
     let values = input::read_values(a)?;
-    let cube = cube::build(&a.sidecar, &values, plane)?;
+    let cube = cube::build(&a.sidecar, &values, plane).map_err(|e| a.layout_error(e))?;
     let units = a.sidecar.units.clone();
     let mut baseline = quantity::baseline_of(&run.manifest, &a.stage);
     if baseline.is_none() && matches!(units.as_str(), "%" | "dB" | "z") {
@@ -189,6 +233,21 @@ fn load_one(a: &Exported, plane: Plane, run: &RunOutput) -> Result<Loaded, Strin
             window: None,
         });
     }
+    // A group aggregate carries its own SEM and n beside the mean.
+    let spread = if a.sidecar.dims.iter().any(|d| d == "statistic") {
+        let cut = |name: &str| {
+            super::tmap::cut_statistic(&a.sidecar, &values, name, plane)
+                .ok()
+                .flatten()
+                .map(|c| c.values)
+        };
+        cut("sem")
+            .zip(cut("n"))
+            .filter(|(s, _)| s.raw_dim() == cube.values.raw_dim())
+            .map(|(sem, n)| Spread { sem, n })
+    } else {
+        None
+    };
     Ok(Loaded {
         owner: a.owner.clone(),
         stage: a.stage.clone(),
@@ -196,6 +255,7 @@ fn load_one(a: &Exported, plane: Plane, run: &RunOutput) -> Result<Loaded, Strin
         cube,
         baseline,
         averaged: Vec::new(),
+        spread,
     })
 }
 
@@ -278,36 +338,28 @@ fn shared_ranges(
     (conds, diffs)
 }
 
-/// Draws the time–frequency figures of one array: the chosen pairs, per measure.
+/// Draws the time–frequency figures of one group-level array: the chosen pairs, per measure,
+/// each map with its band's time course and SEM under it when the subjects' arrays are at hand.
 pub(crate) fn tf_figures(
     ctx: &mut Ctx<'_>,
     l: &Loaded,
-    kind: FigureKind,
+    manifest: &Manifest,
+    all: &[Loaded],
 ) -> Result<(), ReportError> {
     if l.cube.plane != Plane::FreqTime {
         return Ok(());
     }
     let diff = contrast(ctx, &l.cube.conditions, &l.source());
-    // A subject's own maps: the first chosen pair, in its measure, one figure per subject.
-    let first = ctx.choice.pairs.first().cloned();
+    let members = l.members(all);
     for m in 0..l.cube.measures.len() {
-        let mut pairs = picked_pairs(ctx, l, m);
-        if kind == FigureKind::SubjectMap {
-            let Some(top) = &first else { return Ok(()) };
-            if top
-                .measure
-                .as_ref()
-                .is_some_and(|tm| *tm != l.cube.measures[m])
-                || (top.measure.is_none() && m > 0)
-            {
-                continue;
-            }
-            pairs.retain(|(p, _)| {
-                super::tmap::find_pair(&[l.cube.pairs[*p].clone()], &top.pair).is_some()
-            });
-        }
+        let pairs = picked_pairs(ctx, l, m);
         let shared = shared_ranges(l, m, &pairs, diff);
-        for (p, why) in pairs {
+        let courses: Vec<Vec<Course>> = pairs
+            .iter()
+            .map(|(p, _)| courses_for(ctx, l, manifest, &members, m, *p, diff))
+            .collect();
+        let course_ranges = course_ranges(&courses, l.cube.conditions.len());
+        for ((p, why), courses) in pairs.into_iter().zip(courses) {
             let what = format!(
                 "{}: time–frequency maps, {} {}–{}",
                 l.source(),
@@ -315,15 +367,364 @@ pub(crate) fn tf_figures(
                 l.cube.pairs[p][0],
                 l.cube.pairs[p][1]
             );
-            if !ctx.room_for(kind, &what) {
+            if !ctx.room_for(FigureKind::TimeFrequency, &what) {
                 return Ok(());
             }
             let mut draft = tf_figure(l, m, p, diff, shared, &why);
-            draft.kind = kind;
+            if !courses.is_empty() {
+                add_courses(&mut draft, l, m, &courses, course_ranges);
+            }
             ctx.emit(draft)?;
         }
     }
     Ok(())
+}
+
+/// Draws one subject's maps of one chosen pair: in the pick's measure, or the array's first
+/// measure for a pair named for every measure.
+pub(crate) fn subject_figures(
+    ctx: &mut Ctx<'_>,
+    l: &Loaded,
+    pick: &super::story::Picked,
+) -> Result<(), ReportError> {
+    if l.cube.plane != Plane::FreqTime {
+        return Ok(());
+    }
+    let m = match &pick.measure {
+        Some(name) => match l.cube.measures.iter().position(|x| x == name) {
+            Some(m) => m,
+            None => return Ok(()),
+        },
+        None => 0,
+    };
+    let Some(p) = super::tmap::find_pair(&l.cube.pairs, &pick.pair) else {
+        ctx.not_drawn.push(format!(
+            "{}: pair {}–{} is not in this array",
+            l.source(),
+            pick.pair[0],
+            pick.pair[1]
+        ));
+        return Ok(());
+    };
+    let what = format!(
+        "{}: time–frequency maps, {} {}–{}",
+        l.source(),
+        l.cube.measures[m],
+        pick.pair[0],
+        pick.pair[1]
+    );
+    if !ctx.room_for(FigureKind::SubjectMap, &what) {
+        return Ok(());
+    }
+    let diff = contrast(ctx, &l.cube.conditions, &l.source());
+    let pairs = [(p, pick.why.clone())];
+    let shared = shared_ranges(l, m, &pairs, diff);
+    let mut draft = tf_figure(l, m, p, diff, shared, &pick.why);
+    draft.kind = FigureKind::SubjectMap;
+    ctx.emit(draft)
+}
+
+/// One time course: a label, the band, and mean, SEM and n per time column.
+pub(crate) struct Course {
+    label: String,
+    band: NamedRange,
+    why_band: String,
+    stats: Vec<[f64; 3]>,
+}
+
+/// The band of the time courses of pair `p`: of the bands matrices use (an aggregate's, the
+/// significant clusters' range, or all frequencies), the one holding the largest |value| of the
+/// difference map (of the first condition without a difference), with why.
+fn course_band(
+    ctx: &Ctx<'_>,
+    l: &Loaded,
+    manifest: &Manifest,
+    m: usize,
+    p: usize,
+    diff: Option<(usize, usize)>,
+) -> Option<(NamedRange, String)> {
+    let GridAxis::Numeric { centres: f, .. } = &l.cube.rows else {
+        return None;
+    };
+    let GridAxis::Numeric { centres: t, .. } = &l.cube.cols else {
+        return None;
+    };
+    let (bands, _) = super::matrix::ranges(ctx, manifest, f, t);
+    if bands.len() == 1 {
+        return Some((
+            bands[0].clone(),
+            "the one band this report uses".to_string(),
+        ));
+    }
+    let v = &l.cube.values;
+    let value = |r: usize, c: usize| match diff {
+        Some((a, b)) => v[[a, m, p, r, c]] - v[[b, m, p, r, c]],
+        None => v[[0, m, p, r, c]],
+    };
+    let mut best: Option<(f64, usize)> = None;
+    for r in 0..f.len() {
+        for c in 0..t.len() {
+            let x = value(r, c).abs();
+            if x.is_finite() && best.is_none_or(|b| x > b.0) {
+                best = Some((x, r));
+            }
+        }
+    }
+    let (_, r) = best?;
+    let band = bands
+        .iter()
+        .find(|b| phasewise_stages::range::contains([b.lo, b.hi], f[r]))?;
+    Some((
+        band.clone(),
+        format!(
+            "the band holding the largest |{}| of this map ({} Hz)",
+            if diff.is_some() {
+                "difference"
+            } else {
+                "value"
+            },
+            axes::fmt_num(f[r])
+        ),
+    ))
+}
+
+/// The time courses of pair `p` under a group map: each condition's and the difference's, from
+/// the subjects' own band means (the rule of [`cube`]), mean ± SEM across subjects. Empty when
+/// the subjects' arrays are not at hand (a group aggregate read as it is).
+fn courses_for(
+    ctx: &Ctx<'_>,
+    l: &Loaded,
+    manifest: &Manifest,
+    members: &[&Loaded],
+    m: usize,
+    p: usize,
+    diff: Option<(usize, usize)>,
+) -> Vec<Course> {
+    if members.len() < 2 || members.len() != l.averaged.len() {
+        return Vec::new();
+    }
+    let Some((band, why_band)) = course_band(ctx, l, manifest, m, p, diff) else {
+        return Vec::new();
+    };
+    let per_subject: Vec<Vec<Vec<f64>>> = members
+        .iter()
+        .map(|s| {
+            (0..s.cube.conditions.len())
+                .map(|c| cube::band_course(&s.cube, c, m, p, &band))
+                .collect()
+        })
+        .collect();
+    let nt = l.cube.cols.len();
+    let stats = |value: &dyn Fn(&Vec<Vec<f64>>, usize) -> f64| -> Vec<[f64; 3]> {
+        (0..nt)
+            .map(|j| cube::across_subjects(per_subject.iter().map(|s| value(s, j))))
+            .collect()
+    };
+    let mut out: Vec<Course> = (0..l.cube.conditions.len())
+        .map(|c| Course {
+            label: l.cube.conditions[c].clone(),
+            band: band.clone(),
+            why_band: why_band.clone(),
+            stats: stats(&|s, j| s[c][j]),
+        })
+        .collect();
+    if let Some((a, b)) = diff {
+        // Paired: the SEM of the subjects' own differences.
+        out.push(Course {
+            label: format!("{} \u{2212} {}", l.cube.conditions[a], l.cube.conditions[b]),
+            band: band.clone(),
+            why_band,
+            stats: stats(&|s, j| s[a][j] - s[b][j]),
+        });
+    }
+    out
+}
+
+/// The vertical ranges (mean ± SEM) that the condition courses share, and the difference's.
+fn course_ranges(courses: &[Vec<Course>], n_cond: usize) -> SharedRanges {
+    let span = |cs: &mut dyn Iterator<Item = &Course>| {
+        cube::finite_range(cs.flat_map(|c| {
+            c.stats.iter().flat_map(|[mu, se, _]| {
+                let se = if se.is_finite() { *se } else { 0.0 };
+                [mu - se, mu + se]
+            })
+        }))
+    };
+    (
+        span(&mut courses.iter().flat_map(|cs| cs.iter().take(n_cond))),
+        span(&mut courses.iter().flat_map(|cs| cs.iter().skip(n_cond))),
+    )
+}
+
+/// Height of a time-course panel and the room above it (for the map's time axis).
+const COURSE_H: f64 = 110.0;
+const COURSE_GAP: f64 = 56.0;
+/// Shading of ± 1 SEM: a light blue-grey that none of the lines or texts use.
+pub(crate) const SEM_SHADE: [u8; 3] = [188, 208, 232];
+
+/// Adds, under each heat panel of a group map, its time course with a shaded band of ± 1 SEM.
+fn add_courses(
+    d: &mut Draft,
+    l: &Loaded,
+    m: usize,
+    courses: &[Course],
+    (cond_range, diff_range): SharedRanges,
+) {
+    let n_cond = l.cube.conditions.len();
+    let unit = units_text(&l.units);
+    let name = measure_title(&l.cube.measures[m]);
+    d.scene.height += COURSE_GAP + COURSE_H;
+    let edges = l.cube.cols.edges();
+    for (i, (course, panel)) in courses.iter().zip(d.panels.clone()).enumerate() {
+        let rect = [
+            panel.rect[0],
+            panel.rect[3] + COURSE_GAP,
+            panel.rect[2],
+            panel.rect[3] + COURSE_GAP + COURSE_H,
+        ];
+        let range = if i < n_cond { cond_range } else { diff_range };
+        let (lo, hi) = padded(range);
+        let xm = axes::axis_map(&edges, rect[0], rect[2], false);
+        let ym = PixelMap {
+            lo,
+            hi,
+            p0: rect[3],
+            p1: rect[1],
+            log: false,
+        };
+        draw_course(&mut d.scene, rect, (&xm, &ym), &edges, course);
+        axes::x_numeric_axis(&mut d.scene, rect, &xm, "time (s)");
+        axes::y_numeric_axis(
+            &mut d.scene,
+            rect,
+            &ym,
+            (i == 0).then_some(format!("{name} ({unit})").as_str()),
+        );
+        let ns: Vec<f64> = course.stats.iter().map(|s| s[2]).collect();
+        let (nlo, nhi) = cube::finite_range(ns.iter().copied()).unwrap_or((0.0, 0.0));
+        let n_text = if nlo == nhi {
+            format!("n = {}", axes::fmt_num(nhi))
+        } else {
+            format!("n = {}–{}", axes::fmt_num(nlo), axes::fmt_num(nhi))
+        };
+        d.scene.text(
+            (rect[0], rect[1] - 3.0),
+            format!(
+                "{}: {}–{} Hz, mean ± SEM, {n_text}",
+                course.label,
+                axes::fmt_num(course.band.lo),
+                axes::fmt_num(course.band.hi)
+            ),
+            axes::TICK_PX,
+            (HAlign::Left, VAlign::Bottom),
+        );
+        d.courses.push(CourseInfo {
+            label: course.label.clone(),
+            band: course.band.clone(),
+            rect,
+            x: AxisInfo {
+                name: "time".to_string(),
+                lo: xm.lo,
+                hi: xm.hi,
+                log: false,
+            },
+            y: AxisInfo {
+                name: l.cube.measures[m].clone(),
+                lo,
+                hi,
+                log: false,
+            },
+            times: match &l.cube.cols {
+                GridAxis::Numeric { centres, .. } => centres.clone(),
+                GridAxis::Categories(_) => Vec::new(),
+            },
+            mean: course.stats.iter().map(|s| s[0]).collect(),
+            sem: course.stats.iter().map(|s| s[1]).collect(),
+            n: ns,
+        });
+    }
+    if let Some(c) = courses.first() {
+        let ns: Vec<f64> = c.stats.iter().map(|s| s[2]).collect();
+        let full = l.averaged.len() as f64;
+        let fewer = ns.iter().filter(|&&n| n < full).count();
+        let fewer = if fewer > 0 {
+            format!(
+                " At {fewer} of {} times fewer subjects had a value (a NaN inside the band drops \
+                 that subject's time point, as in `op: aggregate`); n is printed in each panel.",
+                ns.len()
+            )
+        } else {
+            String::new()
+        };
+        d.caption.push_str(&format!(
+            " Under each map: its mean over {} ({}–{} Hz; {}) by time, the line the mean of the \
+             {} subjects' own band means and the shaded band ± 1 SEM across subjects (sd with \
+             ddof 1 over √n; the difference's SEM is that of the subjects' own differences).{fewer}",
+            c.band.name,
+            axes::fmt_num(c.band.lo),
+            axes::fmt_num(c.band.hi),
+            c.why_band,
+            l.averaged.len()
+        ));
+    }
+}
+
+/// A value range with 6 % room above and below (and a unit range around a single value).
+fn padded(range: Option<(f64, f64)>) -> (f64, f64) {
+    match range {
+        Some((lo, hi)) if hi > lo => {
+            let pad = 0.06 * (hi - lo);
+            (lo - pad, hi + pad)
+        }
+        Some((v, _)) => (v - 1.0, v + 1.0),
+        None => (0.0, 1.0),
+    }
+}
+
+/// The shading (one rectangle per time cell, spanning the cell as the map above does), the
+/// zero line, the onset line and the mean line of one course.
+fn draw_course(
+    scene: &mut Scene,
+    rect: [f64; 4],
+    (xm, ym): (&PixelMap, &PixelMap),
+    edges: &[f64],
+    course: &Course,
+) {
+    for (j, [mu, se, _]) in course.stats.iter().enumerate() {
+        if mu.is_finite() && se.is_finite() {
+            scene.fill(
+                [
+                    xm.to_px(edges[j]),
+                    ym.to_px(mu + se),
+                    xm.to_px(edges[j + 1]),
+                    ym.to_px(mu - se),
+                ],
+                SEM_SHADE,
+            );
+        }
+    }
+    scene.frame(rect, super::scene::GREY);
+    if ym.lo < 0.0 && ym.hi > 0.0 {
+        let y0 = ym.to_px(0.0);
+        scene.line((rect[0], y0), (rect[2], y0), super::scene::GREY, 0.8);
+    }
+    if xm.lo < 0.0 && xm.hi > 0.0 {
+        let x0 = xm.to_px(0.0);
+        scene.dashed((x0, rect[1]), (x0, rect[3]), [40, 40, 48], 4.0);
+    }
+    // The mean as a polyline through the cell centres, broken where there is no value.
+    let centres: Vec<f64> = edges.windows(2).map(|e| (e[0] + e[1]) / 2.0).collect();
+    let mut run: Vec<(f64, f64)> = Vec::new();
+    for (j, [mu, _, _]) in course.stats.iter().enumerate() {
+        if mu.is_finite() {
+            run.push((xm.to_px(centres[j]), ym.to_px(*mu)));
+        } else if !run.is_empty() {
+            scene.polyline(std::mem::take(&mut run), super::scene::INK, 1.4);
+        }
+    }
+    if !run.is_empty() {
+        scene.polyline(run, super::scene::INK, 1.4);
+    }
 }
 
 /// Layout constants of a time–frequency figure, in layout pixels.
@@ -437,9 +838,16 @@ pub(crate) fn mean_note(l: &Loaded) -> String {
     if l.averaged.is_empty() {
         return String::new();
     }
+    let how = match l.cube.plane {
+        Plane::FreqTime => "cell by cell (a subject without a value drops out of that cell)",
+        Plane::BandWindow => {
+            "from each subject's own band × window means (empty when a cell inside is), then \
+             across the subjects with a value"
+        }
+    };
     format!(
-        " Mean over the {} subjects {} (n = {}), computed by the report cell by cell (NaN cells \
-         left out).",
+        " Mean over the {} subjects {} (n = {}), computed by the report {how}, as `op: aggregate` \
+         does.",
         l.averaged.len(),
         l.averaged.join(", "),
         l.averaged.len()
@@ -572,6 +980,7 @@ impl HeatFigure {
             measure: None,
             why: String::new(),
             outlined: false,
+            courses: Vec::new(),
         }
     }
 

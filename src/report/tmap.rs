@@ -11,7 +11,7 @@ use serde_json::Value;
 
 use super::axes::{self, GridAxis};
 use super::colour::MapKind;
-use super::cube::{self, Cube, Plane};
+use super::cube::{self, Cube, LayoutError, Plane};
 use super::input::{self, Exported, RunOutput, Sidecar};
 use super::quantity::{measure_title, scale_for};
 use super::scene::Scene;
@@ -126,19 +126,23 @@ pub(crate) fn load_stats(ctx: &mut Ctx<'_>, run: &RunOutput) -> Vec<StatArray> {
         }
         match load_stat(a) {
             Ok(s) => out.push(s),
-            Err(why) => ctx
-                .not_drawn
-                .push(format!("{}/{}: {why}", a.owner, a.stage)),
+            Err(why) => ctx.not_drawn.push(why.to_string()),
         }
     }
     out
 }
 
-fn load_stat(a: &Exported) -> Result<StatArray, String> {
+fn load_stat(a: &Exported) -> Result<StatArray, input::LoadError> {
     let values = input::read_values(a)?;
-    let cut = |name: &str| cut_statistic(&a.sidecar, &values, name, Plane::FreqTime);
-    let t = cut("t")?.ok_or("no t")?;
-    let p = cut("p")?.ok_or("no p")?;
+    let cut = |name: &str| {
+        cut_statistic(&a.sidecar, &values, name, Plane::FreqTime).map_err(|e| a.layout_error(e))
+    };
+    let needed = |name: &str| {
+        cut(name)?
+            .ok_or_else(|| a.layout_error(LayoutError::MissingAxis(format!("statistic = {name}"))))
+    };
+    let t = needed("t")?;
+    let p = needed("p")?;
     let mean = cut("mean")?.unwrap_or_else(|| t.clone());
     let sem = cut("sem")?;
     let extra = a.sidecar.meta.get("extra").cloned().unwrap_or(Value::Null);
@@ -180,13 +184,17 @@ pub(crate) fn cut_statistic(
     values: &ArrayD<f32>,
     name: &str,
     plane: Plane,
-) -> Result<Option<Cube>, String> {
+) -> Result<Option<Cube>, LayoutError> {
     let si = sidecar
         .dims
         .iter()
         .position(|d| d == "statistic")
-        .ok_or("no statistic axis")?;
-    let labels = sidecar.coords[si].labels().ok_or("statistic labels")?;
+        .ok_or(LayoutError::NoStatistic)?;
+    let labels = sidecar
+        .coords
+        .get(si)
+        .and_then(|c| c.labels())
+        .ok_or(LayoutError::NoStatistic)?;
     let Some(k) = labels.iter().position(|l| l == name) else {
         return Ok(None);
     };
@@ -195,7 +203,7 @@ pub(crate) fn cut_statistic(
     sc.coords.remove(si);
     let v: ArrayD<f32> = values.index_axis(Axis(si), k).to_owned();
     if Plane::of(&sc.dims) != Some(plane) {
-        return Err("its statistics are not over the expected axes".to_string());
+        return Err(LayoutError::StatisticAxes);
     }
     cube::build(&sc, &v, plane).map(Some)
 }

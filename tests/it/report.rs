@@ -811,6 +811,9 @@ fn demo_report_shows_the_planted_coupling() {
     let fig = tf_figure(&s, "subject-mean/norm", "wpli", &pair);
     assert_eq!(fig.panels[0].label, "left");
     assert!(fig.why.contains("significant cluster"), "{}", fig.why);
+    // SEM and n on the group figure: a time course under each panel, all six subjects counted.
+    assert_eq!(fig.courses.len(), fig.panels.len());
+    assert!(fig.courses.iter().all(|c| c.n.iter().all(|&n| n == 6.0)));
     let (t, f) = pixel_to_tf(fig, 0, nearest_pixel(fig, 0, RDBU_RED));
     assert!(
         t >= w0 && t <= w1,
@@ -911,4 +914,208 @@ fn browser_check(report: &Path) {
         String::from_utf8_lossy(&out.stderr)
     );
     println!("{}", String::from_utf8_lossy(&out.stdout).trim());
+}
+
+/// The ± 1 SEM shading of the group time courses (src/report/tf.rs SEM_SHADE), a colour no
+/// line or text of a course panel uses.
+const SEM_SHADE: [u8; 3] = [188, 208, 232];
+
+/// Under each group time–frequency map the report draws its band's time course, mean ± SEM
+/// across subjects. Checked against numpy (tests/reference/gen_report.py, numpy pinned in
+/// tests/reference/requirements.txt): the report is drawn from the per-subject arrays that the
+/// fixture holds, and (1) the course values it reports equal numpy's mean, SEM (nanstd ddof 1
+/// over √n) and n, for each condition and the paired difference, including a time where one
+/// subject has no value inside the band (n drops to 4, the `aggregate` op's rule) and one where
+/// the missing cell lies outside the band (n stays 5); (2) in the figure's PNG, the shaded
+/// band's half-height at the time of the largest SEM equals numpy's SEM, and its middle the
+/// mean, to within a pixel and a half.
+#[test]
+fn group_courses_show_the_sem_numpy_computes() {
+    use ndarray::{Array1, Array2};
+    use phasewise::report::NamedRange;
+    let fx = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/fixtures/report");
+    let read = |name: &str| -> ArrayD<f64> {
+        ndarray_npy::read_npy(fx.join(format!("{name}.npy"))).unwrap()
+    };
+    let input = read("course_input");
+    let freqs: Array1<f64> = ndarray_npy::read_npy(fx.join("course_freqs.npy")).unwrap();
+    let times: Array1<f64> = ndarray_npy::read_npy(fx.join("course_times.npy")).unwrap();
+    let want: Vec<Array2<f64>> = ["course_mean", "course_sem", "course_n"]
+        .iter()
+        .map(|n| ndarray_npy::read_npy(fx.join(format!("{n}.npy"))).unwrap())
+        .collect();
+    let meta: Value = serde_json::from_slice(&fs::read(fx.join("course.json")).unwrap()).unwrap();
+    let band = [
+        meta["band"][0].as_f64().unwrap(),
+        meta["band"][1].as_f64().unwrap(),
+    ];
+    let chans = ["Fz", "Cz", "Pz"];
+    let pairs: Vec<[String; 2]> = vec![
+        [chans[0].into(), chans[1].into()],
+        [chans[0].into(), chans[2].into()],
+        [chans[1].into(), chans[2].into()],
+    ];
+    let pair = pairs[meta["pair_index"].as_u64().unwrap() as usize].clone();
+
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("results");
+    fs::create_dir_all(&out).unwrap();
+    let manifest = json!({"format": "phasewise-manifest", "units": [], "warnings": []});
+    fs::write(out.join("manifest.json"), manifest.to_string()).unwrap();
+    let coords = || {
+        vec![
+            Coord::Labels(vec!["A".into(), "B".into()]),
+            Coord::Labels(vec!["wpli".into()]),
+            Coord::Pairs(pairs.clone().into()),
+            Coord::Numbers(freqs.to_vec()),
+            Coord::Numbers(times.to_vec()),
+        ]
+    };
+    let dims = ["condition", "measure", "pair", "freq", "time"];
+    for s in 0..input.shape()[0] {
+        let v = input.index_axis(ndarray::Axis(0), s).mapv(|x| x as f32);
+        let owner = format!("sub-{:02}", s + 1);
+        write_array(&out, &owner, "norm", &dims, coords(), "1", &v);
+    }
+    let opts = ReportOptions {
+        pairs: vec![pair.clone()],
+        contrast: Some(["A".into(), "B".into()]),
+        bands: vec![NamedRange {
+            name: "theta".into(),
+            lo: band[0],
+            hi: band[1],
+        }],
+        ..ReportOptions::default()
+    };
+    let html = out.join("report.html");
+    let s = write_report(&out, &html, &opts).unwrap();
+    let fig = tf_figure(
+        &s,
+        "subject-mean/norm",
+        "wpli",
+        &format!("{}–{}", pair[0], pair[1]),
+    );
+    assert_eq!(
+        fig.courses.len(),
+        3,
+        "a course under each of A, B and A − B"
+    );
+
+    // (1) The values: numpy's, to f64 rounding (the inputs are f32-exact).
+    let close =
+        |a: f64, b: f64| (a.is_nan() && b.is_nan()) || (a - b).abs() <= 1e-12 * b.abs().max(1e-3);
+    for (i, c) in fig.courses.iter().enumerate() {
+        assert_eq!((c.band.lo, c.band.hi), (band[0], band[1]));
+        assert_eq!(c.times, times.to_vec());
+        for j in 0..times.len() {
+            for (k, got) in [&c.mean, &c.sem, &c.n].into_iter().enumerate() {
+                assert!(
+                    close(got[j], want[k][[i, j]]),
+                    "course {} ({}), time {}: statistic {k} is {}, numpy gives {}",
+                    i,
+                    c.label,
+                    times[j],
+                    got[j],
+                    want[k][[i, j]]
+                );
+            }
+        }
+    }
+    assert_eq!(
+        fig.courses[2].n[9], 4.0,
+        "the subject without a value inside the band drops out"
+    );
+    assert_eq!(
+        fig.courses[2].n[14], 5.0,
+        "a missing cell outside the band changes nothing"
+    );
+    assert!(fig.courses[2].label.contains('\u{2212}'));
+
+    // (2) The pixels: the shading's extent at the time of the largest SEM of the difference.
+    let (w, h, rgb) = decode_png(&fs::read(&fig.png).unwrap());
+    let sc = fig.png_scale;
+    for (i, c) in fig.courses.iter().enumerate() {
+        let j = (0..times.len())
+            .filter(|&j| want[1][[i, j]].is_finite())
+            .max_by(|&a, &b| want[1][[i, a]].total_cmp(&want[1][[i, b]]))
+            .unwrap();
+        let [x0, y0, x1, y1] = c.rect.map(|v| v * sc);
+        let px = (x0 + (times[j] - c.x.lo) / (c.x.hi - c.x.lo) * (x1 - x0)) as usize;
+        let shaded: Vec<usize> = (y0 as usize..(y1 as usize).min(h as usize))
+            .filter(|&y| {
+                let k = 3 * (y * w as usize + px);
+                rgb[k..k + 3] == SEM_SHADE
+            })
+            .collect();
+        let (top, bottom) = (
+            *shaded.first().expect("shaded pixels") as f64,
+            *shaded.last().unwrap() as f64 + 1.0,
+        );
+        let value = |y: f64| c.y.hi - (y - y0) / (y1 - y0) * (c.y.hi - c.y.lo);
+        let per_px = (c.y.hi - c.y.lo) / (y1 - y0);
+        let (half, mid) = (
+            (value(top) - value(bottom)) / 2.0,
+            (value(top) + value(bottom)) / 2.0,
+        );
+        let (mu, se) = (want[0][[i, j]], want[1][[i, j]]);
+        assert!(
+            (half - se).abs() <= 1.5 * per_px,
+            "course {}: shading half-height {half:.5} at t = {}, numpy SEM {se:.5} (1 px = {per_px:.5})",
+            c.label,
+            times[j]
+        );
+        assert!(
+            (mid - mu).abs() <= 1.5 * per_px,
+            "course {}: shading centred at {mid:.5}, numpy mean {mu:.5}",
+            c.label
+        );
+        println!(
+            "course {}: at t = {} s shading ±{half:.4} around {mid:.4}; numpy SEM {se:.4}, mean {mu:.4}",
+            c.label, times[j]
+        );
+    }
+    // The caption says what the shading is and how many subjects.
+    let page = fs::read_to_string(&html).unwrap();
+    assert!(page.contains("± 1 SEM across subjects"));
+}
+
+/// The per-subject section draws every chosen pair for every subject, the first pair for all
+/// subjects before the next pair (so the section's cap never hides a subject's first pair).
+#[test]
+fn each_subject_gets_every_chosen_pair() {
+    let f = fixture();
+    let chosen: Vec<[String; 2]> = vec![["Fz".into(), "Pz".into()], ["Cz".into(), "Oz".into()]];
+    let opts = ReportOptions {
+        pairs: chosen.clone(),
+        ..ReportOptions::default()
+    };
+    let s = write_report(&f.out, &f.html, &opts).unwrap();
+    let subject_maps: Vec<&FigureInfo> = s
+        .figures
+        .iter()
+        .filter(|x| x.kind == FigureKind::SubjectMap)
+        .collect();
+    for source in ["sub-01/norm", "sub-02/norm", "sub-02/sync"] {
+        for pair in &chosen {
+            assert!(
+                subject_maps
+                    .iter()
+                    .any(|x| x.source == source && x.pair.as_ref() == Some(pair)),
+                "no {}–{} map of {source}",
+                pair[0],
+                pair[1]
+            );
+        }
+    }
+    let first_of_second = subject_maps
+        .iter()
+        .position(|x| x.pair.as_ref() == Some(&chosen[1]))
+        .unwrap();
+    assert!(subject_maps[..first_of_second]
+        .iter()
+        .all(|x| x.pair.as_ref() == Some(&chosen[0])));
+    assert_eq!(
+        first_of_second, 3,
+        "the first pair for all three subject arrays first"
+    );
 }
