@@ -357,16 +357,27 @@ fn write_bundle(
         "hasPart": parts,
         "mentions": {"@id": "#run"},
     });
+    // `sha256` is no term of the RO-Crate 1.1 context (later versions map it to schema.org's
+    // `sha256`): the same mapping is added here, as RO-Crate 1.1 allows ("Extending the
+    // context"), so the document stays compacted JSON-LD.
     let crate_doc = json!({
-        "@context": "https://w3id.org/ro/crate/1.1/context",
+        "@context": [
+            "https://w3id.org/ro/crate/1.1/context",
+            {"sha256": "http://schema.org/sha256"},
+        ],
         "@graph": graph,
     });
     write_file(root, "ro-crate-metadata.json", &json_bytes(&crate_doc))?;
     Ok(files.len() + 1)
 }
 
-/// What BIDS has no name for yet (README.md, "Archiving and verifying").
-const BIDSIGNORE: &str = "manifest.json\nro-crate-metadata.json\ngroup/\n*_conn.npy\n*_conn.json\n*_conntable.tsv\n*_conntable.json\n";
+/// What BIDS has no name for yet (README.md, "Archiving and verifying"): the manifest and the
+/// crate's metadata at the root, the group folder (BIDS has no group level in a derivative's
+/// layout), and connectivity arrays and tables (no suffix for them in BIDS 1.10; NPY is no
+/// BIDS file format). The folder is written `/group`, anchored at the root and without the
+/// trailing slash: bids-validator-deno 3.0.2 still reports `/group/` as NOT_INCLUDED when the
+/// pattern is `group/`.
+const BIDSIGNORE: &str = "manifest.json\nro-crate-metadata.json\n/group\n*_conn.npy\n*_conn.json\n*_conntable.tsv\n*_conntable.json\n";
 
 fn readme(m: &Manifest) -> String {
     format!(
