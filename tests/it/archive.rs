@@ -68,7 +68,10 @@ fn the_bundle_holds_every_file_its_crate_lists_with_matching_hashes() {
         .map(|e| e["@id"].as_str().unwrap().to_string())
         .collect();
     listed.sort();
-    assert_eq!(listed, on_disk, "the crate lists exactly the bundle's files");
+    assert_eq!(
+        listed, on_disk,
+        "the crate lists exactly the bundle's files"
+    );
     for entity in &files {
         let rel = entity["@id"].as_str().unwrap();
         let bytes = fs::read(bundle.join(rel)).unwrap();
@@ -89,9 +92,18 @@ fn the_bundle_holds_every_file_its_crate_lists_with_matching_hashes() {
     assert_eq!(root["hasPart"].as_array().unwrap().len(), listed.len());
     // The exports under their BIDS names, byte for byte; the pipeline under code/.
     for (from, to) in [
-        ("results/01/norm.npy", "sub-01/eeg/sub-01_task-cue_desc-norm_conn.npy"),
-        ("results/02/norm.npy", "sub-02/eeg/sub-02_task-cue_desc-norm_conn.npy"),
-        ("results/group/group.npy", "group/task-cue_desc-group_conn.npy"),
+        (
+            "results/01/norm.npy",
+            "sub-01/eeg/sub-01_task-cue_desc-norm_conn.npy",
+        ),
+        (
+            "results/02/norm.npy",
+            "sub-02/eeg/sub-02_task-cue_desc-norm_conn.npy",
+        ),
+        (
+            "results/group/group.npy",
+            "group/task-cue_desc-group_conn.npy",
+        ),
         ("pipeline.yaml", "code/pipeline.yaml"),
     ] {
         assert_eq!(
@@ -127,7 +139,10 @@ fn a_second_archive_into_a_non_empty_folder_is_refused_and_changes_nothing() {
     let again = archive(p.path(), "results/manifest.json", "bundle");
     assert_eq!(again.status.code(), Some(2), "{}", stderr_of(&again));
     let err = stderr_of(&again);
-    assert!(err.contains("bundle") && err.contains("not an empty folder"), "{err}");
+    assert!(
+        err.contains("bundle") && err.contains("not an empty folder"),
+        "{err}"
+    );
     assert_eq!(tree(&bundle), before, "the existing bundle was touched");
     // A folder holding one unrelated file is not empty either.
     fs::create_dir(p.path().join("other")).unwrap();

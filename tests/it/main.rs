@@ -18,3 +18,4 @@ mod report;
 mod runner;
 mod slabs;
 mod streaming;
+mod sweep;
