@@ -35,6 +35,11 @@ fn archive(cwd: &Path, manifest: &str, out: &str) -> std::process::Output {
     run_cli(cwd, &["archive", manifest, "--out", out])
 }
 
+/// `archive results/manifest.json --out bundle` in `dir`, which must succeed.
+fn archive_to_bundle(dir: &Path) {
+    assert_success(&archive(dir, "results/manifest.json", "bundle"), "archive");
+}
+
 /// Every file below `root` with its bytes.
 fn tree(root: &Path) -> Vec<(std::path::PathBuf, Vec<u8>)> {
     files_under(root)
@@ -49,10 +54,7 @@ fn tree(root: &Path) -> Vec<(std::path::PathBuf, Vec<u8>)> {
 #[test]
 fn the_bundle_holds_every_file_its_crate_lists_with_matching_hashes() {
     let p = archived_project();
-    assert_success(
-        &archive(p.path(), "results/manifest.json", "bundle"),
-        "archive",
-    );
+    archive_to_bundle(p.path());
     let bundle = p.path().join("bundle");
     let crate_doc: serde_json::Value =
         serde_json::from_slice(&fs::read(bundle.join("ro-crate-metadata.json")).unwrap()).unwrap();
@@ -129,10 +131,7 @@ fn the_bundle_holds_every_file_its_crate_lists_with_matching_hashes() {
 #[test]
 fn a_second_archive_into_a_non_empty_folder_is_refused_and_changes_nothing() {
     let p = archived_project();
-    assert_success(
-        &archive(p.path(), "results/manifest.json", "bundle"),
-        "archive",
-    );
+    archive_to_bundle(p.path());
     let bundle = p.path().join("bundle");
     let before = tree(&bundle);
     // The same manifest again, into the bundle just written.
@@ -173,10 +172,7 @@ fn the_manifest_of_a_subject_selection_is_refused() {
 #[test]
 fn a_copied_archive_verifies_against_copied_recordings_and_names_a_changed_one() {
     let p = archived_project();
-    assert_success(
-        &archive(p.path(), "results/manifest.json", "bundle"),
-        "archive",
-    );
+    archive_to_bundle(p.path());
     // Another machine: the bundle and the recordings in two other folders, the originals gone.
     let elsewhere = tempfile::tempdir().expect("tempdir");
     let bundle = elsewhere.path().join("from-journal");

@@ -17,6 +17,16 @@ fn project() -> tempfile::TempDir {
     dir
 }
 
+/// A two-by-two grid: the baseline's mode and the aggregate's late window.
+const GRID: [&str; 6] = [
+    "sweep",
+    "pipeline.yaml",
+    "--vary",
+    "norm.mode=[subtract, zscore]",
+    "--vary",
+    "group.windows.late=[[0.3, 0.7], [0.2, 0.9]]",
+];
+
 /// (stage, status) of every unit in a variant's manifest.
 fn statuses(output: &Path) -> Vec<(String, String)> {
     unit_statuses(&manifest(output))
@@ -29,18 +39,7 @@ fn statuses(output: &Path) -> Vec<(String, String)> {
 fn each_variant_is_the_run_with_that_set_and_shares_what_it_does_not_change() {
     let p = project();
     let dir = p.path();
-    let out = run_cli(
-        dir,
-        &[
-            "sweep",
-            "pipeline.yaml",
-            "--vary",
-            "norm.mode=[subtract, zscore]",
-            "--vary",
-            "group.windows.late=[[0.3, 0.7], [0.2, 0.9]]",
-        ],
-    );
-    assert_success(&out, "sweep");
+    assert_success(&run_cli(dir, &GRID), "sweep");
     let variants = dir.join("results/variants");
     let names: Vec<String> = fs::read_dir(&variants)
         .unwrap()
@@ -141,17 +140,7 @@ fn each_variant_is_the_run_with_that_set_and_shares_what_it_does_not_change() {
     }
 
     // The same sweep again computes nothing.
-    let again = run_cli(
-        dir,
-        &[
-            "sweep",
-            "pipeline.yaml",
-            "--vary",
-            "norm.mode=[subtract, zscore]",
-            "--vary",
-            "group.windows.late=[[0.3, 0.7], [0.2, 0.9]]",
-        ],
-    );
+    let again = run_cli(dir, &GRID);
     assert_success(&again, "second sweep");
     let text = String::from_utf8_lossy(&again.stdout);
     assert_eq!(text.matches(" 0 computed").count(), 4, "{text}");
