@@ -47,6 +47,7 @@ pub fn archive(
     manifest_path: &Path,
     out: &Path,
     license: Option<&str>,
+    authors: &[String],
 ) -> Result<usize, ArchiveError> {
     let mut m = manifest::read(manifest_path).map_err(ArchiveError)?;
     let output = manifest_path.parent().unwrap_or(Path::new("."));
@@ -153,7 +154,7 @@ pub fn archive(
         .prefix(&format!(".{name}.partial-"))
         .tempdir_in(&parent)
         .map_err(|e| fail(format!("{}: {e}", parent.display())))?;
-    let count = write_bundle(temp.path(), &m, &entries, license)?;
+    let count = write_bundle(temp.path(), &m, &entries, license, authors)?;
     let built = temp.keep();
     if out.exists() {
         // An empty folder: replaced by the bundle.
@@ -220,6 +221,7 @@ fn write_bundle(
     m: &Manifest,
     entries: &[Entry],
     license: Option<&str>,
+    authors: &[String],
 ) -> Result<usize, ArchiveError> {
     for e in entries {
         let bytes =
@@ -245,6 +247,9 @@ fn write_bundle(
     });
     if let Some(l) = license {
         description["License"] = json!(l);
+    }
+    if !authors.is_empty() {
+        description["Authors"] = json!(authors);
     }
     write_file(root, "dataset_description.json", &json_bytes(&description))?;
     write_file(root, ".bidsignore", BIDSIGNORE.as_bytes())?;
@@ -346,6 +351,12 @@ fn write_bundle(
             json!({"@id": "#license"})
         }
     };
+    let mut author_refs = Vec::new();
+    for (i, name) in authors.iter().enumerate() {
+        let id = format!("#author-{}", i + 1);
+        author_refs.push(json!({"@id": id}));
+        graph.push(json!({"@id": id, "@type": "Person", "name": name}));
+    }
     graph[1] = json!({
         "@id": "./",
         "@type": "Dataset",
@@ -357,6 +368,9 @@ fn write_bundle(
         "hasPart": parts,
         "mentions": {"@id": "#run"},
     });
+    if !author_refs.is_empty() {
+        graph[1]["author"] = json!(author_refs);
+    }
     // `sha256` is no term of the RO-Crate 1.1 context (later versions map it to schema.org's
     // `sha256`): the same mapping is added here, as RO-Crate 1.1 allows ("Extending the
     // context"), so the document stays compacted JSON-LD.

@@ -86,6 +86,10 @@ pub enum Command {
         /// The results' license: an SPDX identifier (CC-BY-4.0) or a URL.
         #[arg(long)]
         license: Option<String>,
+        /// An author of the results, as the paper names them (repeatable, in order): BIDS
+        /// `Authors` and the crate's `author`.
+        #[arg(long = "author", value_name = "NAME")]
+        authors: Vec<String>,
     },
     /// Describe a cached result: dims, shape, coords, value summary.
     Inspect {
@@ -325,13 +329,16 @@ fn dispatch(cli: &Cli) -> Result<i32> {
             manifest,
             out,
             license,
+            authors,
         } => {
-            let n = crate::archive::archive(manifest, out, license.as_deref()).map_err(|e| {
-                anyhow!(Exit {
-                    code: 2,
-                    message: e.to_string(),
-                })
-            })?;
+            let n = crate::archive::archive(manifest, out, license.as_deref(), authors).map_err(
+                |e| {
+                    anyhow!(Exit {
+                        code: 2,
+                        message: e.to_string(),
+                    })
+                },
+            )?;
             println!("{}: bundle of {n} files", out.display());
             Ok(0)
         }

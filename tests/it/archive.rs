@@ -119,6 +119,7 @@ fn the_bundle_holds_every_file_its_crate_lists_with_matching_hashes() {
             .unwrap();
     assert_eq!(description["DatasetType"], "derivative");
     assert_eq!(description["GeneratedBy"][0]["Name"], "phasewise");
+    assert!(description.get("Authors").is_none(), "no author given");
     // No temporary folder is left beside the bundle.
     let leftovers: Vec<_> = fs::read_dir(p.path())
         .unwrap()
@@ -209,4 +210,45 @@ fn a_copied_archive_verifies_against_copied_recordings_and_names_a_changed_one()
         "{text}"
     );
     assert!(text.contains("not reproduced"), "{text}");
+}
+
+#[test]
+fn authors_are_named_in_the_bids_description_and_the_crate_in_order() {
+    let p = archived_project();
+    let out = run_cli(
+        p.path(),
+        &[
+            "archive",
+            "results/manifest.json",
+            "--out",
+            "bundle",
+            "--author",
+            "Ada Example",
+            "--author",
+            "Ben Example",
+        ],
+    );
+    assert_success(&out, "archive --author");
+    let bundle = p.path().join("bundle");
+    let read = |name: &str| -> serde_json::Value {
+        serde_json::from_slice(&fs::read(bundle.join(name)).unwrap()).unwrap()
+    };
+    assert_eq!(
+        read("dataset_description.json")["Authors"],
+        serde_json::json!(["Ada Example", "Ben Example"])
+    );
+    let crate_doc = read("ro-crate-metadata.json");
+    let graph = crate_doc["@graph"].as_array().unwrap();
+    let root = graph.iter().find(|e| e["@id"] == "./").unwrap();
+    let names: Vec<&str> = root["author"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|r| {
+            let person = graph.iter().find(|e| e["@id"] == r["@id"]).unwrap();
+            assert_eq!(person["@type"], "Person");
+            person["name"].as_str().unwrap()
+        })
+        .collect();
+    assert_eq!(names, ["Ada Example", "Ben Example"]);
 }

@@ -24,7 +24,8 @@ if [ -z "$venv" ]; then
 fi
 
 bundle=$work/bundle
-"$phasewise" archive "$manifest" --out "$bundle" --license CC-BY-4.0
+"$phasewise" archive "$manifest" --out "$bundle" --license CC-BY-4.0 \
+  --author "Ada Example" --author "Ben Example"
 
 echo "-- bids-validator-deno $("$venv/bin/bids-validator-deno" --version 2>&1 | tr -d '\n')"
 NO_COLOR=1 "$venv/bin/bids-validator-deno" "$bundle" || true
