@@ -47,6 +47,7 @@ pub fn archive(
     manifest_path: &Path,
     out: &Path,
     license: Option<&str>,
+    authors: &[String],
 ) -> Result<usize, ArchiveError> {
     let mut m = manifest::read(manifest_path).map_err(ArchiveError)?;
     let output = manifest_path.parent().unwrap_or(Path::new("."));
@@ -153,7 +154,7 @@ pub fn archive(
         .prefix(&format!(".{name}.partial-"))
         .tempdir_in(&parent)
         .map_err(|e| fail(format!("{}: {e}", parent.display())))?;
-    let count = write_bundle(temp.path(), &m, &entries, license)?;
+    let count = write_bundle(temp.path(), &m, &entries, license, authors)?;
     let built = temp.keep();
     if out.exists() {
         // An empty folder: replaced by the bundle.
@@ -220,6 +221,7 @@ fn write_bundle(
     m: &Manifest,
     entries: &[Entry],
     license: Option<&str>,
+    authors: &[String],
 ) -> Result<usize, ArchiveError> {
     for e in entries {
         let bytes =
@@ -245,6 +247,9 @@ fn write_bundle(
     });
     if let Some(l) = license {
         description["License"] = json!(l);
+    }
+    if !authors.is_empty() {
+        description["Authors"] = json!(authors);
     }
     write_file(root, "dataset_description.json", &json_bytes(&description))?;
     write_file(root, ".bidsignore", BIDSIGNORE.as_bytes())?;
@@ -346,6 +351,12 @@ fn write_bundle(
             json!({"@id": "#license"})
         }
     };
+    let mut author_refs = Vec::new();
+    for (i, name) in authors.iter().enumerate() {
+        let id = format!("#author-{}", i + 1);
+        author_refs.push(json!({"@id": id}));
+        graph.push(json!({"@id": id, "@type": "Person", "name": name}));
+    }
     graph[1] = json!({
         "@id": "./",
         "@type": "Dataset",
@@ -357,16 +368,30 @@ fn write_bundle(
         "hasPart": parts,
         "mentions": {"@id": "#run"},
     });
+    if !author_refs.is_empty() {
+        graph[1]["author"] = json!(author_refs);
+    }
+    // `sha256` is no term of the RO-Crate 1.1 context (later versions map it to schema.org's
+    // `sha256`): the same mapping is added here, as RO-Crate 1.1 allows ("Extending the
+    // context"), so the document stays compacted JSON-LD.
     let crate_doc = json!({
-        "@context": "https://w3id.org/ro/crate/1.1/context",
+        "@context": [
+            "https://w3id.org/ro/crate/1.1/context",
+            {"sha256": "http://schema.org/sha256"},
+        ],
         "@graph": graph,
     });
     write_file(root, "ro-crate-metadata.json", &json_bytes(&crate_doc))?;
     Ok(files.len() + 1)
 }
 
-/// What BIDS has no name for yet (README.md, "Archiving and verifying").
-const BIDSIGNORE: &str = "manifest.json\nro-crate-metadata.json\ngroup/\n*_conn.npy\n*_conn.json\n*_conntable.tsv\n*_conntable.json\n";
+/// What BIDS has no name for yet (README.md, "Archiving and verifying"): the manifest and the
+/// crate's metadata at the root, the group folder (BIDS has no group level in a derivative's
+/// layout), and connectivity arrays and tables (no suffix for them in BIDS 1.10; NPY is no
+/// BIDS file format). The folder is written `/group`, anchored at the root and without the
+/// trailing slash: bids-validator-deno 3.0.2 still reports `/group/` as NOT_INCLUDED when the
+/// pattern is `group/`.
+const BIDSIGNORE: &str = "manifest.json\nro-crate-metadata.json\n/group\n*_conn.npy\n*_conn.json\n*_conntable.tsv\n*_conntable.json\n";
 
 fn readme(m: &Manifest) -> String {
     format!(

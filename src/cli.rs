@@ -86,6 +86,10 @@ pub enum Command {
         /// The results' license: an SPDX identifier (CC-BY-4.0) or a URL.
         #[arg(long)]
         license: Option<String>,
+        /// An author of the results, as the paper names them (repeatable, in order): BIDS
+        /// `Authors` and the crate's `author`.
+        #[arg(long = "author", value_name = "NAME")]
+        authors: Vec<String>,
     },
     /// Describe a cached result: dims, shape, coords, value summary.
     Inspect {
@@ -156,6 +160,25 @@ pub enum Command {
     },
     /// Print the JSON Schema of the pipeline file, for editors that check YAML as it is typed.
     Schema,
+    /// Run the pipeline once per variant of some params (a grid of `--vary` lists), each into
+    /// `<output>/variants/<name>/`, sharing one cache; line up their group results in
+    /// `<output>/sweep.tsv` (DESIGN §6).
+    Sweep {
+        /// Pipeline, `--set` overrides that every variant shares, and cache.
+        #[command(flatten)]
+        target: Target,
+        /// A param and its alternative values, as a YAML list: STAGE.PARAM=[V1, V2, ...]
+        /// (repeatable: several combine as a grid).
+        #[arg(
+            long = "vary",
+            value_name = "STAGE.PARAM=[V1, V2, ...]",
+            required = true
+        )]
+        vary: Vec<String>,
+        /// Number of threads, at least 1 (default: all cores).
+        #[arg(long, short = 'j', value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
+        jobs: Option<usize>,
+    },
 }
 
 /// A pipeline with its overrides, subject selection and cache.
@@ -306,13 +329,16 @@ fn dispatch(cli: &Cli) -> Result<i32> {
             manifest,
             out,
             license,
+            authors,
         } => {
-            let n = crate::archive::archive(manifest, out, license.as_deref()).map_err(|e| {
-                anyhow!(Exit {
-                    code: 2,
-                    message: e.to_string(),
-                })
-            })?;
+            let n = crate::archive::archive(manifest, out, license.as_deref(), authors).map_err(
+                |e| {
+                    anyhow!(Exit {
+                        code: 2,
+                        message: e.to_string(),
+                    })
+                },
+            )?;
             println!("{}: bundle of {n} files", out.display());
             Ok(0)
         }
@@ -336,6 +362,7 @@ fn dispatch(cli: &Cli) -> Result<i32> {
             clap_complete::generate(*shell, &mut command, "phasewise", &mut std::io::stdout());
             Ok(0)
         }
+        Command::Sweep { target, vary, jobs } => sweep(target, vary, *jobs, cli.quiet, env),
         Command::Schema => {
             let schema = crate::schema::pipeline(env.ops);
             println!("{}", serde_json::to_string_pretty(&schema)?);
@@ -643,6 +670,48 @@ fn status(pipeline: &Path, set: &[String], cache: Option<&Path>, env: Env<'_>) -
             text.push_str(&format!(" log {}", log.display()));
         }
         println!("{}", text.trim_end());
+    }
+    Ok(0)
+}
+
+/// `phasewise sweep PIPELINE --vary ...`.
+fn sweep(
+    target: &Target,
+    vary: &[String],
+    jobs: Option<usize>,
+    quiet: bool,
+    env: Env<'_>,
+) -> Result<i32> {
+    if !target.subjects.is_empty() {
+        return Err(anyhow!(Exit {
+            code: 2,
+            message: "sweep runs every subject (its table lines up group results): drop --subject"
+                .into(),
+        }));
+    }
+    let summary = crate::sweep::sweep(&target.pipeline, &options(target, jobs, quiet), vary, env)
+        .map_err(|e| {
+        anyhow!(Exit {
+            code: e.exit_code(),
+            message: e.to_string(),
+        })
+    })?;
+    if !quiet {
+        for (variant, run) in &summary.runs {
+            println!(
+                "{}: {} computed, {} cached; manifest {}",
+                variant.name,
+                run.computed,
+                run.cached,
+                run.manifest_path.display()
+            );
+        }
+        println!(
+            "{}: {} across {}",
+            summary.table.display(),
+            count(summary.rows, "row", "rows"),
+            count(summary.runs.len(), "variant", "variants")
+        );
     }
     Ok(0)
 }

@@ -51,5 +51,6 @@ pub mod slabs;
 pub mod sources;
 pub mod store;
 pub mod study;
+pub mod sweep;
 pub mod verify;
 pub mod words;

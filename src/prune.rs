@@ -46,6 +46,16 @@ fn manifest_files(output: &Path) -> Vec<PathBuf> {
         parts.sort();
         files.extend(parts);
     }
+    // A sweep's variants (`<output>/variants/<name>/`), each with its own manifest.
+    if let Ok(variants) = std::fs::read_dir(output.join("variants")) {
+        let mut found: Vec<PathBuf> = variants
+            .flatten()
+            .map(|e| e.path().join("manifest.json"))
+            .filter(|p| p.is_file())
+            .collect();
+        found.sort();
+        files.extend(found);
+    }
     files
 }
 

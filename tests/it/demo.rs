@@ -961,3 +961,116 @@ fn with_hilbert_instead_of_wavelet_the_planted_pair_is_still_the_strongest() {
     );
     assert_eq!(pairs[best], planted, "largest ppc at {:?}", pairs[best]);
 }
+
+/// Issue 23, "what it must show" 4: `sweep --vary 'tf.cycles=[4, 6, 8]'` on the demo computes
+/// re-reference, notch and epoch once, the wavelet and everything after it once per variant;
+/// `sweep.tsv` holds the planted pair's group value for each variant, and the planted coupling
+/// (truth.json, an input of the generator) holds for every cycle count: the planted condition's
+/// group ppc in the planted band and window is above the other condition's. A second sweep
+/// computes nothing.
+#[test]
+fn demo_sweep_over_wavelet_cycles_shares_the_preprocessing_and_keeps_the_planted_pair() {
+    let tmp = project();
+    let root = tmp.path();
+    let truth = read_json(&repo().join("demo-data/truth.json"));
+    let args = [
+        "sweep",
+        "pipelines/demo.yaml",
+        "--vary",
+        "tf.cycles=[4, 6, 8]",
+    ];
+    let out = phasewise(&args, root);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let results = root.join("results/demo");
+    let names = ["tf.cycles=4", "tf.cycles=6", "tf.cycles=8"];
+    let subjects = truth["config"]["subjects"].as_u64().unwrap() as usize;
+    for (i, name) in names.iter().enumerate() {
+        let manifest = read_json(&results.join("variants").join(name).join("manifest.json"));
+        let count = |stage: &str, status: &str| {
+            statuses(&manifest)
+                .iter()
+                .filter(|(s, st)| s == stage && st == status)
+                .count()
+        };
+        for stage in ["reref", "line", "trials"] {
+            let expected = if i == 0 { "computed" } else { "cached" };
+            assert_eq!(count(stage, expected), subjects, "{name}: {stage}");
+        }
+        for stage in ["sync", "norm"] {
+            assert_eq!(count(stage, "computed"), subjects, "{name}: {stage}");
+        }
+        assert_eq!(count("group", "computed"), 1, "{name}: group");
+    }
+
+    // sweep.tsv: the planted pair, ppc, planted band and window, group rows, both conditions.
+    let freq = truth["coupling"]["frequency_hz"].as_f64().unwrap();
+    let window = truth["coupling"]["window_s"].as_array().unwrap();
+    let first = read_json(&results.join("variants/tf.cycles=4/group/group.json"));
+    let band = first["attrs"]["bands"]
+        .as_object()
+        .unwrap()
+        .iter()
+        .find(|(_, r)| (r[0].as_f64().unwrap()..=r[1].as_f64().unwrap()).contains(&freq))
+        .map(|(name, _)| name.clone())
+        .unwrap();
+    let late = first["attrs"]["windows"]
+        .as_object()
+        .unwrap()
+        .iter()
+        .find(|(_, r)| r[0] == window[0] && r[1] == window[1])
+        .map(|(name, _)| name.clone())
+        .unwrap();
+    let pair = string_pair(&truth["coupling"]["pair"]);
+    let condition = truth["coupling"]["condition"].as_str().unwrap();
+    let (on, off) = if condition == "cue-left" {
+        ("left", "right")
+    } else {
+        ("right", "left")
+    };
+    let sweep = std::fs::read_to_string(results.join("sweep.tsv")).unwrap();
+    let mut lines = sweep.lines();
+    let header: Vec<&str> = lines.next().unwrap().split('\t').collect();
+    let col = |name: &str| header.iter().position(|c| *c == name).unwrap();
+    let rows: Vec<Vec<&str>> = lines.map(|l| l.split('\t').collect()).collect();
+    let value = |variant: &str, cond: &str| -> f64 {
+        let found: Vec<&Vec<&str>> = rows
+            .iter()
+            .filter(|r| {
+                r[col("variant")] == variant
+                    && r[col("condition")] == cond
+                    && r[col("measure")] == "ppc"
+                    && r[col("channel_a")] == pair[0]
+                    && r[col("channel_b")] == pair[1]
+                    && r[col("band")] == band
+                    && r[col("window")] == late
+            })
+            .collect();
+        assert_eq!(found.len(), 1, "{variant} {cond}: {found:?}");
+        assert_eq!(found[0][col("subject")], "group");
+        found[0][col("mean")].parse().unwrap()
+    };
+    for name in names {
+        let cycles = name.trim_start_matches("tf.cycles=");
+        assert!(rows
+            .iter()
+            .any(|r| r[col("variant")] == name && r[col("tf.cycles")] == cycles));
+        let (a, b) = (value(name, on), value(name, off));
+        assert!(a > b, "{name}: planted {on} {a} vs {off} {b}");
+    }
+
+    // Nothing left to compute.
+    let again = phasewise(&args, root);
+    assert!(again.status.success());
+    for name in names {
+        let manifest = read_json(&results.join("variants").join(name).join("manifest.json"));
+        assert!(
+            statuses(&manifest).iter().all(|(_, s)| s == "cached"),
+            "{name}: {:?}",
+            statuses(&manifest)
+        );
+    }
+}

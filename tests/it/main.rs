@@ -2,6 +2,7 @@
 //! module is one area; `common` (small studies of test ops) and `reliability` (the demo study
 //! in temporary folders, damage, concurrent runs) are the shared harness.
 
+mod archive;
 mod bad_inputs;
 mod cli;
 mod cluster;
@@ -17,3 +18,4 @@ mod report;
 mod runner;
 mod slabs;
 mod streaming;
+mod sweep;
