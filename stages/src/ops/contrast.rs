@@ -34,11 +34,16 @@
 //! for every flip), t² = (n − 1) S² / (n Q − S²), so |t| grows with |S| at a point and a
 //! threshold on |t| is one on |S|. S is summed from tables: the subjects are cut into groups of
 //! [`GROUP`], and for each group every sign pattern's partial sum map is built once per pair;
-//! a pattern's S is then a sum of one row per group. Table rows are built left to right over the
-//! subjects, so a pattern and its mirror image give exactly opposite sums. The observed map goes
-//! through the same arithmetic (the unflipped pattern), so its clusters and statistics are
-//! exactly those of pattern 0. The t shown in the output is the plain two-pass t in f64; the
-//! clusters and masses come from the table sums (f32), which agree with it to about 1e-6.
+//! a pattern's S is then a sum of one row per group: g − 1 additions per point and pattern for g
+//! groups, instead of the n multiply-adds of Σ εᵢ dᵢ. Tables and sums are f64 (f32 data of a
+//! moderate range then sum exactly), built left to right over the subjects, so a pattern and its
+//! mirror image give exactly opposite sums. The observed map goes through the same arithmetic (the
+//! unflipped pattern), so its clusters and statistics are exactly those of pattern 0. The t shown
+//! in the output is the plain two-pass t in f64; the clusters and masses come from the table sums,
+//! which agree with it to about 1e-12 relative. A cluster's mass is its points' t added in raster
+//! order (freq, then time), however the clusters were found: the observed map's by flood fill,
+//! every pattern's from its sign bitmaps as runs of set bits joined across rows (union-find), t
+//! computed at the points above threshold only.
 
 use std::collections::BTreeMap;
 use std::fmt::Write as _;
@@ -503,11 +508,11 @@ impl Flips {
     }
 }
 
-/// The tables of one map: for each group, the partial sum map of every sign pattern.
+/// The tables of one map: for each group, the partial sum map of every sign pattern, in f64.
 struct Tables {
     /// Row offsets of each group's first pattern (in units of maps).
     offsets: Vec<usize>,
-    rows: Vec<f32>,
+    rows: Vec<f64>,
     len: usize,
 }
 
@@ -520,7 +525,7 @@ impl Tables {
             offsets.push(total);
             total += 1 << g.len();
         }
-        let mut rows = vec![0f32; total * len];
+        let mut rows = vec![0f64; total * len];
         for (g, range) in flips.groups.iter().enumerate() {
             let block = &mut rows[offsets[g] * len..(offsets[g] + (1 << range.len())) * len];
             // Level k holds the 2^(k+1) patterns of the group's first k + 1 subjects, each the
@@ -529,9 +534,10 @@ impl Tables {
                 let d = maps[s];
                 let half = 1 << k;
                 if k == 0 {
-                    block[..len].copy_from_slice(d);
-                    for (o, &x) in block[len..2 * len].iter_mut().zip(d) {
-                        *o = -x;
+                    let (plus, minus) = block.split_at_mut(len);
+                    for ((p, m), &x) in plus.iter_mut().zip(&mut minus[..len]).zip(d) {
+                        *p = f64::from(x);
+                        *m = -f64::from(x);
                     }
                     continue;
                 }
@@ -540,6 +546,7 @@ impl Tables {
                     let src = &mut lower[m * len..(m + 1) * len];
                     let dst = &mut upper[m * len..(m + 1) * len];
                     for ((o, x), &v) in dst.iter_mut().zip(src.iter_mut()).zip(d) {
+                        let v = f64::from(v);
                         *o = *x - v;
                         *x += v;
                     }
@@ -551,7 +558,7 @@ impl Tables {
 
     /// S of pattern `masks` (one mask per group) at the points `range` into `s`: the group's
     /// rows added left to right, the same additions at every point whatever the range.
-    fn sum(&self, masks: &[u8], range: std::ops::Range<usize>, s: &mut [f32]) {
+    fn sum(&self, masks: &[u8], range: std::ops::Range<usize>, s: &mut [f64]) {
         let len = self.len;
         for (g, (&off, &m)) in self.offsets.iter().zip(masks).enumerate() {
             let row = (off + m as usize) * len;
@@ -566,8 +573,7 @@ impl Tables {
 }
 
 /// t from S and Q for n subjects: S √((n − 1) / (n Q − S²)).
-fn t_of(s: f32, q: f64, n: f64) -> f64 {
-    let s = f64::from(s);
+fn t_of(s: f64, q: f64, n: f64) -> f64 {
     let den = n * q - s * s;
     if q == 0.0 {
         return f64::NAN;
@@ -576,6 +582,21 @@ fn t_of(s: f32, q: f64, n: f64) -> f64 {
         return s.signum() * f64::INFINITY;
     }
     s * ((n - 1.0) / den).sqrt()
+}
+
+/// The threshold on S equivalent to |t| > c (given c²) for n subjects and Q = Σ dᵢ².
+///
+/// For fixed Q, t = S √((n − 1) / (n Q − S²)) on −√(nQ) < S < √(nQ) (and S² ≤ n Q always, by
+/// Cauchy–Schwarz), and dt/dS = √(n − 1) · n Q / (n Q − S²)^{3/2} > 0: t is strictly increasing
+/// in S. So for c > 0, t > c ⇔ S > 0 and (n − 1) S² > c² (n Q − S²) ⇔ S > √(c² n Q / (n − 1 + c²)),
+/// and t < −c ⇔ S < −that. Q = 0 (every difference 0; t undefined) or not finite: no point
+/// passes (infinity).
+fn threshold_of_s(q: f64, c2: f64, n: f64) -> f64 {
+    if q.is_finite() && q > 0.0 {
+        (c2 * n * q / (n - 1.0 + c2)).sqrt()
+    } else {
+        f64::INFINITY
+    }
 }
 
 /// The permutation side of one pair's map.
@@ -595,19 +616,24 @@ struct MapResult {
 struct MapInput<'a> {
     maps: Vec<&'a [f32]>,
     q: &'a [f64],
-    threshold_s: &'a [f32],
+    threshold_s: &'a [f64],
     cols: usize,
 }
 
-/// Points per tile of the `max`, `fdr` and `none` permutation loops: one tile's table rows (groups × 32 × TILE f32,
-/// 256 KiB for 20 subjects) stay in the core's cache while every pattern of a block passes over
-/// them, instead of every pattern streaming the whole map's tables from memory. A multiple of 64,
-/// so that a tile fills whole bitmap words.
-const TILE: usize = 512;
+/// Points per tile of the `max`, `fdr` and `none` permutation loops: one tile's table rows
+/// (groups × 32 × TILE f64, 256 KiB for 20 subjects) stay in the core's cache while every
+/// pattern of a block passes over them, instead of every pattern streaming the whole map's tables
+/// from memory. A multiple of 64, so that a tile fills whole bitmap words.
+const TILE: usize = 256;
+
+/// Patterns per block of the `cluster` loop: the block's bitmaps and supra-threshold t (a few
+/// KiB per pattern) and one map row's table rows stay in the core's cache while the block's
+/// patterns pass over the row.
+const BLOCK: usize = 64;
 
 /// Bit k of the first word is set where S is above the point's threshold, of the second where
 /// below its negative (NaN: neither), for up to 64 points.
-fn sign_bits(s: &[f32], thr: &[f32]) -> (u64, u64) {
+fn sign_bits(s: &[f64], thr: &[f64]) -> (u64, u64) {
     let (mut pos, mut neg) = (0u64, 0u64);
     for (k, (&x, &c)) in s.iter().zip(thr).enumerate() {
         pos |= u64::from(x > c) << k;
@@ -616,44 +642,41 @@ fn sign_bits(s: &[f32], thr: &[f32]) -> (u64, u64) {
     (pos, neg)
 }
 
-/// Calls `each(mass)` for every cluster of `sign` (+1, −1, 0 per point) whose first point, in
-/// raster order, is among `starts` (ascending, every nonzero point at least); writes 1-based
-/// labels when `labels` is given. `seen` must hold no `mark`.
-fn visit_masses(
-    (sign, starts): (&[i8], impl Iterator<Item = usize>),
-    cols: usize,
-    t_at: impl Fn(usize) -> f64,
-    (seen, mark): (&mut [u32], u32),
-    stack: &mut Vec<usize>,
-    mut labels: Option<&mut [u32]>,
-    mut each: impl FnMut(f64),
-) {
+/// Labels the 4-connected clusters of `sign` (+1, −1, 0 per point; one sign per cluster) by
+/// flood fill, 1, 2, … in the raster order of each cluster's first point; returns the count.
+fn label_clusters(sign: &[i8], cols: usize, labels: &mut [u32]) -> usize {
+    labels.iter_mut().for_each(|l| *l = 0);
+    let mut stack = Vec::new();
     let mut label = 0;
-    for first in starts {
-        if sign[first] == 0 || seen[first] == mark {
+    for first in 0..sign.len() {
+        if sign[first] == 0 || labels[first] != 0 {
             continue;
         }
         label += 1;
-        let mut mass = 0.0;
         stats::fill(
             sign,
             cols,
             first,
             |i| {
-                if seen[i] == mark {
-                    return false;
-                }
-                seen[i] = mark;
-                mass += t_at(i);
-                if let Some(l) = labels.as_deref_mut() {
-                    l[i] = label;
-                }
-                true
+                let new = labels[i] == 0;
+                labels[i] = label;
+                new
             },
-            stack,
+            &mut stack,
         );
-        each(mass);
     }
+    label as usize
+}
+
+/// The mass of every cluster of `labels`: Σ t over its points, added in raster order.
+fn raster_masses(labels: &[u32], count: usize, t_at: impl Fn(usize) -> f64) -> Vec<f64> {
+    let mut masses = vec![0f64; count];
+    for (i, &l) in labels.iter().enumerate() {
+        if l > 0 {
+            masses[l as usize - 1] += t_at(i);
+        }
+    }
+    masses
 }
 
 /// The set bits of `words`, ascending.
@@ -675,14 +698,121 @@ fn tiles(len: usize) -> impl Iterator<Item = std::ops::Range<usize>> {
     (0..len).step_by(TILE).map(move |a| a..(a + TILE).min(len))
 }
 
+/// Calls `each(first, last)` for every run of set bits of one bitmap row (columns, inclusive),
+/// left to right.
+fn for_each_run(row: &[u64], mut each: impl FnMut(usize, usize)) {
+    let mut open = None;
+    for (w, &word) in row.iter().enumerate() {
+        let before = if w > 0 { row[w - 1] >> 63 } else { 0 };
+        let after = row.get(w + 1).map_or(0, |&x| x & 1);
+        let mut starts = word & !((word << 1) | before);
+        let mut ends = word & !((word >> 1) | (after << 63));
+        loop {
+            if open.is_none() {
+                if starts == 0 {
+                    break;
+                }
+                open = Some(w * 64 + starts.trailing_zeros() as usize);
+                starts &= starts - 1;
+            }
+            if ends == 0 {
+                break;
+            }
+            let last = w * 64 + ends.trailing_zeros() as usize;
+            ends &= ends - 1;
+            each(open.take().unwrap_or(last), last);
+        }
+    }
+}
+
+/// Scratch of [`largest_mass`]: the runs of set bits of one sign's bitmap.
+#[derive(Default)]
+struct Runs {
+    /// First and last column of each run.
+    span: Vec<(u32, u32)>,
+    /// Index of each run's first t.
+    first: Vec<u32>,
+    /// Union-find parents; a cluster's root is its first run in raster order.
+    parent: Vec<u32>,
+    mass: Vec<f64>,
+}
+
+fn find(parent: &mut [u32], mut x: usize) -> usize {
+    while parent[x] as usize != x {
+        parent[x] = parent[parent[x] as usize];
+        x = parent[x] as usize;
+    }
+    x
+}
+
+/// The largest |mass| over the clusters of one sign of one pattern: `bits` holds the sign's
+/// bitmap row by row (`row_words` words a row, the columns of a row from bit 0), `t` the t of
+/// its set points in raster order. Runs of set bits are joined into 4-connected clusters when
+/// they share a column with a run of the row above (union-find); each cluster's mass is then its
+/// t added in raster order, the same additions in the same order as [`raster_masses`] on the
+/// flood fill's labels.
+fn largest_mass(bits: &[u64], row_words: usize, t: &[f64], runs: &mut Runs) -> f64 {
+    runs.span.clear();
+    runs.first.clear();
+    runs.parent.clear();
+    let mut next_t = 0u32;
+    let mut above = 0..0;
+    for row in bits.chunks(row_words) {
+        let here = runs.span.len();
+        let mut p = above.start;
+        for_each_run(row, |a, b| {
+            let id = runs.span.len();
+            runs.span.push((a as u32, b as u32));
+            runs.first.push(next_t);
+            runs.parent.push(id as u32);
+            next_t += (b - a + 1) as u32;
+            while p < above.end && (runs.span[p].1 as usize) < a {
+                p += 1;
+            }
+            let mut q = p;
+            while q < above.end && runs.span[q].0 as usize <= b {
+                let (x, y) = (find(&mut runs.parent, id), find(&mut runs.parent, q));
+                let (lo, hi) = (x.min(y), x.max(y));
+                runs.parent[hi] = lo as u32;
+                q += 1;
+            }
+        });
+        above = here..runs.span.len();
+    }
+    debug_assert_eq!(next_t as usize, t.len());
+    runs.mass.clear();
+    runs.mass.resize(runs.span.len(), 0.0);
+    for id in 0..runs.span.len() {
+        let root = find(&mut runs.parent, id);
+        let (a, b) = runs.span[id];
+        let from = runs.first[id] as usize;
+        let m = &mut runs.mass[root];
+        for &x in &t[from..from + (b - a) as usize + 1] {
+            *m += x;
+        }
+    }
+    runs.mass.iter().fold(0f64, |m, x| m.max(x.abs()))
+}
+
+/// One pattern's supra-threshold points in the `cluster` loop.
+#[derive(Default)]
+struct Marks {
+    /// Bitmaps of S above / below the thresholds, row by row.
+    pos: Vec<u64>,
+    neg: Vec<u64>,
+    /// t at the set points of each, in raster order.
+    t_pos: Vec<f64>,
+    t_neg: Vec<f64>,
+}
+
 fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapResult {
     let n = input.maps.len() as f64;
     let len = input.q.len();
     let tables = Tables::build(&input.maps, flips);
     let g = flips.groups.len();
     let count = flips.count();
-    let mut s = vec![0f32; TILE.min(len)];
-    let mut s_obs = vec![0f32; len];
+    let mut s = vec![0f64; TILE.min(len)];
+    let mut s_obs = vec![0f64; len];
     tables.sum(&flips.masks[..g], 0..len, &mut s_obs);
     let mut out = MapResult {
         null: Vec::new(),
@@ -691,73 +821,60 @@ fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapRe
         masses: Vec::new(),
         ratio: Vec::new(),
     };
-    let ratio = |x: f32, q: f64| {
-        let x = f64::from(x);
-        if q > 0.0 {
-            x * x / q
-        } else {
-            f64::NAN
-        }
-    };
+    let ratio = |x: f64, q: f64| if q > 0.0 { x * x / q } else { f64::NAN };
     match correction {
         Correction::Cluster => {
-            let mut sign = vec![0i8; len];
-            let mut seen = vec![0u32; len];
-            let mut stack = Vec::new();
+            let cols = input.cols;
+            let sign: Vec<i8> = s_obs
+                .iter()
+                .zip(input.threshold_s)
+                .map(|(&x, &c)| i8::from(x > c) - i8::from(x < -c))
+                .collect();
             out.labels = vec![0; len];
-            for (o, (&x, &c)) in sign.iter_mut().zip(s_obs.iter().zip(input.threshold_s)) {
-                *o = i8::from(x > c) - i8::from(x < -c);
-            }
-            let mut masses = Vec::new();
-            visit_masses(
-                (&sign, 0..len),
-                input.cols,
-                |i| t_of(s_obs[i], input.q[i], n),
-                (&mut seen, 1),
-                &mut stack,
-                Some(&mut out.labels),
-                |m| masses.push(m),
-            );
-            out.masses = masses;
-            seen.iter_mut().for_each(|x| *x = 0);
-            sign.iter_mut().for_each(|x| *x = 0);
-            // Per pattern: S over the map and its signs as two bitmaps in one pass, then the
-            // clusters grown from the bitmaps' set points only.
-            let words = len.div_ceil(64);
-            let (mut pos, mut neg, mut either) =
-                (vec![0u64; words], vec![0u64; words], vec![0u64; words]);
-            let mut s = vec![0f32; len];
+            let found = label_clusters(&sign, cols, &mut out.labels);
+            out.masses = raster_masses(&out.labels, found, |i| t_of(s_obs[i], input.q[i], n));
+            // A block of patterns at a time, one map row at a time: each pattern's S over the
+            // row, its signs as bitmaps and t at the supra-threshold points only; then each
+            // pattern's clusters from its bitmaps.
+            let rows = len.checked_div(cols).unwrap_or(0);
+            let row_words = cols.div_ceil(64);
+            let mut marks: Vec<Marks> = (0..BLOCK.min(count)).map(|_| Marks::default()).collect();
+            let mut runs = Runs::default();
+            let mut s = [0f64; 64];
             out.null = Vec::with_capacity(count);
-            for (j, masks) in flips.masks.chunks(g).enumerate() {
-                for (w, r) in (0..len)
-                    .step_by(64)
-                    .map(|a| a..(a + 64).min(len))
-                    .enumerate()
-                {
-                    let x = &mut s[r.clone()];
-                    tables.sum(masks, r.clone(), x);
-                    (pos[w], neg[w]) = sign_bits(x, &input.threshold_s[r]);
-                    either[w] = pos[w] | neg[w];
+            for block in (0..count).step_by(BLOCK) {
+                let patterns = block..(block + BLOCK).min(count);
+                let marks = &mut marks[..patterns.len()];
+                for m in marks.iter_mut() {
+                    m.pos.clear();
+                    m.neg.clear();
+                    m.t_pos.clear();
+                    m.t_neg.clear();
                 }
-                for i in set_bits(&pos) {
-                    sign[i] = 1;
+                for r in 0..rows {
+                    for (j, m) in patterns.clone().zip(marks.iter_mut()) {
+                        let masks = &flips.masks[j * g..(j + 1) * g];
+                        for a in (r * cols..(r + 1) * cols).step_by(64) {
+                            let at = a..(a + 64).min((r + 1) * cols);
+                            let s = &mut s[..at.len()];
+                            tables.sum(masks, at.clone(), s);
+                            let q = &input.q[at.clone()];
+                            let (pos, neg) = sign_bits(s, &input.threshold_s[at]);
+                            m.pos.push(pos);
+                            m.neg.push(neg);
+                            for k in set_bits(&[pos]) {
+                                m.t_pos.push(t_of(s[k], q[k], n));
+                            }
+                            for k in set_bits(&[neg]) {
+                                m.t_neg.push(t_of(s[k], q[k], n));
+                            }
+                        }
+                    }
                 }
-                for i in set_bits(&neg) {
-                    sign[i] = -1;
-                }
-                let mut largest = 0f64;
-                visit_masses(
-                    (&sign, set_bits(&either)),
-                    input.cols,
-                    |i| t_of(s[i], input.q[i], n),
-                    (&mut seen, j as u32 + 1),
-                    &mut stack,
-                    None,
-                    |m| largest = largest.max(m.abs()),
-                );
-                out.null.push(largest);
-                for i in set_bits(&either) {
-                    sign[i] = 0;
+                for m in marks.iter() {
+                    let pos = largest_mass(&m.pos, row_words, &m.t_pos, &mut runs);
+                    let neg = largest_mass(&m.neg, row_words, &m.t_neg, &mut runs);
+                    out.null.push(pos.max(neg));
                 }
             }
         }
@@ -767,9 +884,9 @@ fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapRe
                 .zip(input.q)
                 .map(|(&x, &q)| ratio(x, q))
                 .collect();
-            // The largest over a map is the largest of its tiles' largest (NaN skipped). S² is
-            // exact in f64 (an f32 squared), and fl(S²/Q) < M wherever S² < M·Q·(1 − 1e-9) (each
-            // rounding is below 1.2e-16), so the division runs only where a point may raise M.
+            // The largest over a map is the largest of its tiles' largest (NaN skipped). With
+            // x2 = fl(S²), fl(x2/Q) < M wherever x2 < fl(fl(M·Q)·(1 − 1e-9)) (each rounding is
+            // below 1.2e-16 relative), so the division runs only where a point may raise M.
             out.null = vec![0f64; count];
             for r in tiles(len) {
                 let s = &mut s[..r.len()];
@@ -779,8 +896,7 @@ fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapRe
                         .iter()
                         .zip(&input.q[r.clone()])
                         .fold(*largest, |m, (&x, &q)| {
-                            let x2 = f64::from(x) * f64::from(x);
-                            if x2 < m * q * (1.0 - 1e-9) {
+                            if x * x < m * q * (1.0 - 1e-9) {
                                 return m;
                             }
                             let r = ratio(x, q);
@@ -871,17 +987,10 @@ pub fn test(subjects: &[&[f32]], flips: &Flips, settings: Settings) -> Tested {
             }
         });
     let c2 = settings.threshold_t * settings.threshold_t;
-    // |t| > c ⇔ S² (n − 1 + c²) > c² n Q.
-    // Compared with the f32 sums S in f32, for the observed map and every pattern alike.
-    let threshold_s: Vec<f32> = q
+    // Compared with the f64 sums S, for the observed map and every pattern alike.
+    let threshold_s: Vec<f64> = q
         .iter()
-        .map(|&q| {
-            if q.is_finite() && q > 0.0 {
-                (c2 * nf * q / (nf - 1.0 + c2)).sqrt() as f32
-            } else {
-                f32::INFINITY
-            }
-        })
+        .map(|&q| threshold_of_s(q, c2, nf))
         .collect();
     Tested {
         p: Vec::new(),
@@ -898,7 +1007,7 @@ impl Tested {
         mut self,
         subjects: &[&[f32]],
         q: &[f64],
-        threshold_s: &[f32],
+        threshold_s: &[f64],
         flips: &Flips,
         settings: Settings,
     ) -> Tested {
@@ -1005,7 +1114,7 @@ fn check_probability(field: &str, x: f64) -> Result<(), StageError> {
 impl Op for Contrast {
     type Params = ContrastParams;
     const NAME: &'static str = "contrast";
-    const VERSION: u32 = 1;
+    const VERSION: u32 = 2;
 
     fn check(p: &Self::Params) -> Result<(), StageError> {
         match (&p.compare, &p.condition) {
@@ -1526,12 +1635,12 @@ mod tests {
             let flips = Flips::new(n, 1 << n, true, 0);
             let tables = Tables::build(&views, &flips);
             let g = flips.groups.len();
-            let (mut a, mut b) = (vec![0f32; 33], vec![0f32; 33]);
+            let (mut a, mut b) = (vec![0f64; 33], vec![0f64; 33]);
             for k in 0..1usize << n {
                 let mirror = (1 << n) - 1 - k;
                 tables.sum(&flips.masks[k * g..(k + 1) * g], 0..33, &mut a);
                 tables.sum(&flips.masks[mirror * g..(mirror + 1) * g], 0..33, &mut b);
-                let mut part = vec![0f32; 20];
+                let mut part = vec![0f64; 20];
                 tables.sum(&flips.masks[k * g..(k + 1) * g], 10..30, &mut part);
                 assert!(part
                     .iter()
@@ -1541,52 +1650,46 @@ mod tests {
                     a.iter().zip(&b).all(|(x, y)| *x == -*y),
                     "n {n} pattern {k}"
                 );
-                // Against the plain signed sum in f64: f32 rounding only.
+                // Against the plain signed sum in f64, left to right: f32 data of a narrow
+                // range sum exactly in f64 (24-bit significands, at most 2^4 terms), in any order.
                 for (j, x) in a.iter().enumerate() {
                     let plain: f64 = (0..n)
                         .map(|i| if k >> i & 1 == 1 { -1.0 } else { 1.0 } * f64::from(data[i][j]))
                         .sum();
-                    assert!((f64::from(*x) - plain).abs() < 1e-5, "n {n} k {k}");
+                    assert_eq!(*x, plain, "n {n} k {k}");
                 }
             }
         }
     }
 
-    /// The permutation loop without tiles or bitmaps: every pattern's whole map summed, signed
-    /// and scanned in turn (the oracle of the tiled [`run_map`]).
+    /// The permutation loop without tiles, bitmaps or runs: every pattern's whole map summed,
+    /// signed, labelled by flood fill and its masses added in raster order, in turn (the oracle
+    /// of the tiled [`run_map`]).
     fn plain_run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> Vec<f64> {
         let n = input.maps.len() as f64;
         let len = input.q.len();
         let tables = Tables::build(&input.maps, flips);
         let g = flips.groups.len();
-        let mut s = vec![0f32; len];
-        let (mut s_obs, mut sign) = (vec![0f32; len], vec![0i8; len]);
+        let mut s = vec![0f64; len];
+        let (mut s_obs, mut sign) = (vec![0f64; len], vec![0i8; len]);
         tables.sum(&flips.masks[..g], 0..len, &mut s_obs);
-        let mut seen = vec![0u32; len];
+        let mut labels = vec![0u32; len];
         let mut out = Vec::new();
-        for (j, masks) in flips.masks.chunks(g).enumerate() {
+        for masks in flips.masks.chunks(g) {
             tables.sum(masks, 0..len, &mut s);
             match correction {
                 Correction::Cluster => {
                     for (o, (&x, &c)) in sign.iter_mut().zip(s.iter().zip(input.threshold_s)) {
                         *o = i8::from(x > c) - i8::from(x < -c);
                     }
-                    let mut largest = 0f64;
-                    visit_masses(
-                        (&sign, 0..len),
-                        input.cols,
-                        |i| t_of(s[i], input.q[i], n),
-                        (&mut seen, j as u32 + 1),
-                        &mut Vec::new(),
-                        None,
-                        |m| largest = largest.max(m.abs()),
-                    );
-                    out.push(largest);
+                    let found = label_clusters(&sign, input.cols, &mut labels);
+                    let masses = raster_masses(&labels, found, |i| t_of(s[i], input.q[i], n));
+                    out.push(masses.iter().fold(0f64, |m, x| m.max(x.abs())));
                 }
                 Correction::Max => out.push(
                     s.iter()
                         .zip(input.q)
-                        .map(|(&x, &q)| f64::from(x) * f64::from(x) / q)
+                        .map(|(&x, &q)| x * x / q)
                         .filter(|r| !r.is_nan())
                         .fold(0f64, f64::max),
                 ),
@@ -1608,8 +1711,10 @@ mod tests {
 
     #[test]
     fn tiled_permutations_equal_the_plain_loop_bit_for_bit() {
-        // Maps of 9 × 70 = 630 points (two tiles, the second partial), 600 patterns (three
-        // random chunks), smooth enough to form clusters, 13 subjects (groups of 5, 5, 3).
+        // Maps of 9 × 70 = 630 points (three tiles, the last partial; rows of two bitmap
+        // words, runs crossing the word boundary), 600 patterns (three random chunks, ten
+        // blocks, the last partial), smooth enough to form clusters, 13 subjects (groups of 5,
+        // 5, 3).
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(17);
         let (rows, cols, n) = (9, 70, 13);
         let maps: Vec<Vec<f32>> = (0..n)
@@ -1624,10 +1729,9 @@ mod tests {
         let q: Vec<f64> = (0..rows * cols)
             .map(|i| maps.iter().map(|m| f64::from(m[i]).powi(2)).sum())
             .collect();
-        let c2 = 2.2f64 * 2.2;
-        let threshold_s: Vec<f32> = q
+        let threshold_s: Vec<f64> = q
             .iter()
-            .map(|&q| (c2 * n as f64 * q / (n as f64 - 1.0 + c2)).sqrt() as f32)
+            .map(|&q| threshold_of_s(q, 2.2 * 2.2, n as f64))
             .collect();
         let input = MapInput {
             maps: views.clone(),
@@ -1657,6 +1761,109 @@ mod tests {
             bits(&counts),
             bits(&plain_run_map(&input, &flips, Correction::Fdr))
         );
+    }
+
+    #[test]
+    fn runs_joined_by_union_find_give_the_flood_fill_masses() {
+        // Random sign maps from sparse to dense (spirals, U shapes and combs whose arms meet
+        // only rows later), widths around the 64-bit word: the largest |mass| from the runs of
+        // the bitmaps equals, bit for bit, flood-fill labels with masses added in raster order.
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(23);
+        let mut runs = Runs::default();
+        for &(rows, cols) in &[(1, 1), (5, 1), (1, 130), (7, 63), (6, 64), (9, 65), (4, 200)] {
+            for density in [0.05, 0.3, 0.5, 0.7, 0.95] {
+                let len = rows * cols;
+                let sign: Vec<i8> = (0..len)
+                    .map(|_| {
+                        let u: f64 = rng.gen();
+                        if u < density / 2.0 {
+                            1
+                        } else if u < density {
+                            -1
+                        } else {
+                            0
+                        }
+                    })
+                    .collect();
+                let t: Vec<f64> = sign
+                    .iter()
+                    .map(|&s| f64::from(s) * rng.gen_range(2.0..9.0))
+                    .collect();
+                let mut labels = vec![0; len];
+                let found = label_clusters(&sign, cols, &mut labels);
+                let masses = raster_masses(&labels, found, |i| t[i]);
+                let want = masses.iter().fold(0f64, |m, x| m.max(x.abs()));
+                let row_words = cols.div_ceil(64);
+                let bitmap = |s: i8| {
+                    let mut bits = vec![0u64; rows * row_words];
+                    for i in (0..len).filter(|&i| sign[i] == s) {
+                        let (r, c) = (i / cols, i % cols);
+                        bits[r * row_words + c / 64] |= 1 << (c % 64);
+                    }
+                    let ts: Vec<f64> = (0..len).filter(|&i| sign[i] == s).map(|i| t[i]).collect();
+                    (bits, ts)
+                };
+                let (pos, t_pos) = bitmap(1);
+                let (neg, t_neg) = bitmap(-1);
+                let got = largest_mass(&pos, row_words, &t_pos, &mut runs).max(largest_mass(
+                    &neg,
+                    row_words,
+                    &t_neg,
+                    &mut runs,
+                ));
+                assert_eq!(got.to_bits(), want.to_bits(), "{rows} x {cols} at {density}");
+            }
+        }
+    }
+
+    #[test]
+    fn threshold_on_the_sum_is_the_threshold_on_t() {
+        // Formula: the one-sample t of the flipped differences, mean / (SD (ddof 1) / √n), as
+        // scipy.stats.ttest_1samp defines it, computed here in two passes from the flipped
+        // values themselves; against it, S > threshold_of_s(Q) must say the same as t > c (and
+        // S < −threshold as t < −c) wherever t is not within 1e-9 relative of ±c, and t_of(S)
+        // must equal that t to 1e-12 relative.
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(29);
+        let (mut checked, mut passed) = (0, 0);
+        for n in [3usize, 7, 20] {
+            let c = stats::t_isf(0.025, (n - 1) as f64);
+            let points = 400;
+            let data: Vec<Vec<f32>> = (0..n)
+                .map(|_| (0..points).map(|_| rng.gen_range(-1.0f32..1.6)).collect())
+                .collect();
+            let views: Vec<&[f32]> = data.iter().map(|d| d.as_slice()).collect();
+            let flips = Flips::new(n, 300, false, 4);
+            let tables = Tables::build(&views, &flips);
+            let g = flips.groups.len();
+            let mut s = vec![0f64; points];
+            for (j, masks) in flips.masks.chunks(g).enumerate() {
+                tables.sum(masks, 0..points, &mut s);
+                for (i, &s) in s.iter().enumerate() {
+                    let flip = |k: usize| {
+                        let (grp, bit) = (k / GROUP, k % GROUP);
+                        let neg = flips.masks[j * g + grp] >> bit & 1 == 1;
+                        f64::from(data[k][i]) * if neg { -1.0 } else { 1.0 }
+                    };
+                    let x: Vec<f64> = (0..n).map(flip).collect();
+                    let nf = n as f64;
+                    let mean = x.iter().sum::<f64>() / nf;
+                    let sd = (x.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (nf - 1.0)).sqrt();
+                    let t = mean / (sd / nf.sqrt());
+                    let q: f64 = x.iter().map(|v| v * v).sum();
+                    assert!((t_of(s, q, nf) - t).abs() <= 1e-12 * t.abs().max(1.0));
+                    let thr = threshold_of_s(q, c * c, nf);
+                    if (t.abs() - c).abs() > 1e-9 * c {
+                        checked += 1;
+                        passed += usize::from(t > c);
+                        assert_eq!(s > thr, t > c, "n {n} pattern {j} point {i}");
+                        assert_eq!(s < -thr, t < -c, "n {n} pattern {j} point {i}");
+                    }
+                }
+            }
+        }
+        assert!(checked > 300_000 && passed > 1000, "{checked} {passed}");
     }
 
     #[test]
