@@ -576,15 +576,32 @@ impl Tables {
     /// rows added left to right, the same additions at every point whatever the range.
     fn sum(&self, masks: &[u8], range: std::ops::Range<usize>, s: &mut [f64]) {
         let len = self.len;
-        for (g, (&off, &m)) in self.offsets.iter().zip(masks).enumerate() {
-            let row = (off + m as usize) * len;
-            let row = &self.rows[row + range.start..row + range.end];
-            if g == 0 {
-                // A plain loop, not copy_from_slice: a library call per short range costs more.
-                s.iter_mut().zip(row).for_each(|(a, &b)| *a = b);
-            } else {
-                s.iter_mut().zip(row).for_each(|(a, &b)| *a += b);
+        let row = |g: usize| {
+            let at = (self.offsets[g] + masks[g] as usize) * len;
+            &self.rows[at + range.start..at + range.end]
+        };
+        let groups = self.offsets.len().min(masks.len());
+        if groups == 1 {
+            s.iter_mut().zip(row(0)).for_each(|(a, &b)| *a = b);
+        }
+        if groups < 2 {
+            return;
+        }
+        // The same additions as copying the first row and adding the others one by one, two
+        // rows a pass (fewer loads and stores of s; a plain copy loop would become a library
+        // call per short range).
+        for ((a, &x), &y) in s.iter_mut().zip(row(0)).zip(row(1)) {
+            *a = x + y;
+        }
+        let mut g = 2;
+        while g + 1 < groups {
+            for ((a, &x), &y) in s.iter_mut().zip(row(g)).zip(row(g + 1)) {
+                *a = *a + x + y;
             }
+            g += 2;
+        }
+        if g < groups {
+            s.iter_mut().zip(row(g)).for_each(|(a, &b)| *a += b);
         }
     }
 }
@@ -745,22 +762,30 @@ fn for_each_run(row: &[u64], mut each: impl FnMut(usize, usize)) {
     }
 }
 
-/// Scratch of [`largest_mass`]: the runs of set bits of one sign's bitmap.
+/// A run of set bits of one bitmap row, in [`largest_mass`].
+#[derive(Clone, Copy)]
+struct Run {
+    /// First and last column.
+    from: u32,
+    to: u32,
+    /// Index of its first t.
+    first: u32,
+    /// Union-find parent; a cluster's root is its first run in raster order.
+    parent: u32,
+}
+
+/// Scratch of [`largest_mass`].
 #[derive(Default)]
 struct Runs {
-    /// First and last column of each run.
-    span: Vec<(u32, u32)>,
-    /// Index of each run's first t.
-    first: Vec<u32>,
-    /// Union-find parents; a cluster's root is its first run in raster order.
-    parent: Vec<u32>,
+    runs: Vec<Run>,
     mass: Vec<f64>,
 }
 
-fn find(parent: &mut [u32], mut x: usize) -> usize {
-    while parent[x] as usize != x {
-        parent[x] = parent[parent[x] as usize];
-        x = parent[x] as usize;
+fn find(runs: &mut [Run], mut x: usize) -> usize {
+    while runs[x].parent as usize != x {
+        let up = runs[runs[x].parent as usize].parent;
+        runs[x].parent = up;
+        x = up as usize;
     }
     x
 }
@@ -771,50 +796,53 @@ fn find(parent: &mut [u32], mut x: usize) -> usize {
 /// they share a column with a run of the row above (union-find); each cluster's mass is then its
 /// t added in raster order, the same additions in the same order as [`raster_masses`] on the
 /// flood fill's labels.
-fn largest_mass(bits: &[u64], row_words: usize, t: &[f64], runs: &mut Runs) -> f64 {
+fn largest_mass(bits: &[u64], row_words: usize, t: &[f64], scratch: &mut Runs) -> f64 {
     if t.is_empty() {
         return 0.0;
     }
-    runs.span.clear();
-    runs.first.clear();
-    runs.parent.clear();
+    let runs = &mut scratch.runs;
+    runs.clear();
     let mut next_t = 0u32;
     let mut above = 0..0;
     for row in bits.chunks(row_words) {
-        let here = runs.span.len();
+        let here = runs.len();
         let mut p = above.start;
         for_each_run(row, |a, b| {
-            let id = runs.span.len();
-            runs.span.push((a as u32, b as u32));
-            runs.first.push(next_t);
-            runs.parent.push(id as u32);
+            let id = runs.len();
+            runs.push(Run {
+                from: a as u32,
+                to: b as u32,
+                first: next_t,
+                parent: id as u32,
+            });
             next_t += (b - a + 1) as u32;
-            while p < above.end && (runs.span[p].1 as usize) < a {
+            while p < above.end && (runs[p].to as usize) < a {
                 p += 1;
             }
             let mut q = p;
-            while q < above.end && runs.span[q].0 as usize <= b {
-                let (x, y) = (find(&mut runs.parent, id), find(&mut runs.parent, q));
+            while q < above.end && runs[q].from as usize <= b {
+                let (x, y) = (find(runs, id), find(runs, q));
                 let (lo, hi) = (x.min(y), x.max(y));
-                runs.parent[hi] = lo as u32;
+                runs[hi].parent = lo as u32;
                 q += 1;
             }
         });
-        above = here..runs.span.len();
+        above = here..runs.len();
     }
     debug_assert_eq!(next_t as usize, t.len());
-    runs.mass.clear();
-    runs.mass.resize(runs.span.len(), 0.0);
-    for id in 0..runs.span.len() {
-        let root = find(&mut runs.parent, id);
-        let (a, b) = runs.span[id];
-        let from = runs.first[id] as usize;
-        let m = &mut runs.mass[root];
-        for &x in &t[from..from + (b - a) as usize + 1] {
+    let mass = &mut scratch.mass;
+    mass.clear();
+    mass.resize(runs.len(), 0.0);
+    for id in 0..runs.len() {
+        let root = find(runs, id);
+        let run = runs[id];
+        let from = run.first as usize;
+        let m = &mut mass[root];
+        for &x in &t[from..from + (run.to - run.from) as usize + 1] {
             *m += x;
         }
     }
-    runs.mass.iter().fold(0f64, |m, x| m.max(x.abs()))
+    mass.iter().fold(0f64, |m, x| m.max(x.abs()))
 }
 
 /// One pattern's supra-threshold points in the `cluster` loop.
