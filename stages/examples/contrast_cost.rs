@@ -59,7 +59,11 @@ fn main() {
     );
     // The share of points above the threshold in the observed map (pattern 0), an estimate of
     // the share in every pattern under the null.
-    let above = tested.t.iter().filter(|t| t.abs() > settings.threshold_t).count();
+    let above = tested
+        .t
+        .iter()
+        .filter(|t| t.abs() > settings.threshold_t)
+        .count();
     floor(&flips, len, correction, above as f64 / len as f64);
 }
 

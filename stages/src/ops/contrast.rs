@@ -1131,10 +1131,7 @@ pub fn test(subjects: &[&[f32]], flips: &Flips, settings: Settings) -> Tested {
         });
     let c2 = settings.threshold_t * settings.threshold_t;
     // Compared with the f64 sums S, for the observed map and every pattern alike.
-    let threshold_s: Vec<f64> = q
-        .iter()
-        .map(|&q| threshold_of_s(q, c2, nf))
-        .collect();
+    let threshold_s: Vec<f64> = q.iter().map(|&q| threshold_of_s(q, c2, nf)).collect();
     Tested {
         p: Vec::new(),
         cluster: Vec::new(),
@@ -1918,7 +1915,15 @@ mod tests {
         use rand::{Rng, SeedableRng};
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(23);
         let mut runs = Runs::default();
-        for &(rows, cols) in &[(1, 1), (5, 1), (1, 130), (7, 63), (6, 64), (9, 65), (4, 200)] {
+        for &(rows, cols) in &[
+            (1, 1),
+            (5, 1),
+            (1, 130),
+            (7, 63),
+            (6, 64),
+            (9, 65),
+            (4, 200),
+        ] {
             for density in [0.05, 0.3, 0.5, 0.7, 0.95] {
                 let len = rows * cols;
                 let sign: Vec<i8> = (0..len)
@@ -1953,13 +1958,13 @@ mod tests {
                 };
                 let (pos, t_pos) = bitmap(1);
                 let (neg, t_neg) = bitmap(-1);
-                let got = largest_mass(&pos, row_words, &t_pos, &mut runs).max(largest_mass(
-                    &neg,
-                    row_words,
-                    &t_neg,
-                    &mut runs,
-                ));
-                assert_eq!(got.to_bits(), want.to_bits(), "{rows} x {cols} at {density}");
+                let got = largest_mass(&pos, row_words, &t_pos, &mut runs)
+                    .max(largest_mass(&neg, row_words, &t_neg, &mut runs));
+                assert_eq!(
+                    got.to_bits(),
+                    want.to_bits(),
+                    "{rows} x {cols} at {density}"
+                );
             }
         }
     }
@@ -1996,7 +2001,8 @@ mod tests {
                     let x: Vec<f64> = (0..n).map(flip).collect();
                     let nf = n as f64;
                     let mean = x.iter().sum::<f64>() / nf;
-                    let sd = (x.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (nf - 1.0)).sqrt();
+                    let sd =
+                        (x.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (nf - 1.0)).sqrt();
                     let t = mean / (sd / nf.sqrt());
                     let q: f64 = x.iter().map(|v| v * v).sum();
                     assert!((t_of(s, q, nf) - t).abs() <= 1e-12 * t.abs().max(1.0));
