@@ -11,6 +11,20 @@
 //! 1.6 GB; 100 pairs, old loop against new, back to back: `cluster` 9.2 → 8.5 s, `max` 7.5 →
 //! 4.4 s, `fdr` 2.3 → 2.0 s of CPU. Cluster's time goes to the t of each point above threshold
 //! (a square root and a division) and the flood fill, not to the sums.
+//!
+//! Op version 2 (branch stats3, 2026-12-03; release build, nice, two cores shared with five
+//! other sessions' builds, load 12–19 throughout): sums in f64 (they were f32), the cluster null
+//! from per-pattern sign bitmaps (runs joined by union-find, t only above threshold, each row's
+//! tables built per block of 512 patterns). 100 pairs, `cluster`, old and new binaries
+//! alternated back to back at load ~13: 9.04, 8.65 s against 8.33, 8.16 s of CPU (user), about 7 %
+//! less; `max` 4.94 → 4.92 s, `fdr` 2.09 → 2.79 s (f64 tables are twice the bytes). Full study,
+//! `cluster`: before 164.3 s CPU (load 13–17, 745 s wall), after 180.4 s CPU (load 12–16, with a
+//! workspace build of this session running beside it, 1089 s wall), peak RSS 1.64 → 1.68 GB: no
+//! gain shown at full size on this machine. The example prints the floor beside its time: at full
+//! size 4.955e10 point-patterns, 9.909e11 multiply-adds written plainly against 1.486e11 f64
+//! additions through the tables (plus 1.5e9 to build them), 4.955e10 threshold comparisons,
+//! ~2.55e9 points above threshold (a square root, a division, an addition each), 0.97 GB of data
+//! to read once.
 
 use std::time::Instant;
 
