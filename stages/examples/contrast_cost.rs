@@ -11,6 +11,20 @@
 //! 1.6 GB; 100 pairs, old loop against new, back to back: `cluster` 9.2 → 8.5 s, `max` 7.5 →
 //! 4.4 s, `fdr` 2.3 → 2.0 s of CPU. Cluster's time goes to the t of each point above threshold
 //! (a square root and a division) and the flood fill, not to the sums.
+//!
+//! Op version 2 (branch stats3, 2026-12-03; release build, nice, two cores shared with five
+//! other sessions' builds, load 12–19 throughout): sums in f64 (they were f32), the cluster null
+//! from per-pattern sign bitmaps (runs joined by union-find, t only above threshold, each row's
+//! tables built per block of 512 patterns). 100 pairs, `cluster`, old and new binaries
+//! alternated back to back at load ~13: 9.04, 8.65 s against 8.33, 8.16 s of CPU (user), about 7 %
+//! less; `max` 4.94 → 4.92 s, `fdr` 2.09 → 2.79 s (f64 tables are twice the bytes). Full study,
+//! `cluster`: before 164.3 s CPU (load 13–17, 745 s wall), after 180.4 s CPU (load 12–16, with a
+//! workspace build of this session running beside it, 1089 s wall), peak RSS 1.64 → 1.68 GB: no
+//! gain shown at full size on this machine. The example prints the floor beside its time: at full
+//! size 4.955e10 point-patterns, 9.909e11 multiply-adds written plainly against 1.486e11 f64
+//! additions through the tables (plus 1.5e9 to build them), 4.955e10 threshold comparisons,
+//! ~2.55e9 points above threshold (a square root, a division, an addition each), 0.97 GB of data
+//! to read once.
 
 use std::time::Instant;
 
@@ -57,4 +71,44 @@ fn main() {
          {correction:?}, {} threads: {secs:.2} s ({significant} points at p <= 0.05)",
         rayon::current_num_threads()
     );
+    // The share of points above the threshold in the observed map (pattern 0), an estimate of
+    // the share in every pattern under the null.
+    let above = tested
+        .t
+        .iter()
+        .filter(|t| t.abs() > settings.threshold_t)
+        .count();
+    floor(&flips, len, correction, above as f64 / len as f64);
+}
+
+/// What any sign-flip test of this size must do, printed beside the measured time: the permuted
+/// sum at every point for every pattern (n multiply-adds each written plainly, g − 1 additions
+/// through the op's tables), a comparison with the threshold, and for `cluster` a t (a square
+/// root and a division) and one addition at every point above the threshold (under the null
+/// about the cluster-forming p, 0.05, of them; `share` is the observed map's). The data must be
+/// read once from memory; the tables stay in cache.
+fn floor(flips: &Flips, points: usize, correction: Correction, share: f64) {
+    let n = flips.groups.last().map_or(0, |r| r.end);
+    let work = points as f64 * flips.count() as f64;
+    let g = flips.groups.len() as f64;
+    let table_rows: usize = flips.groups.iter().map(|r| 1 << r.len()).sum();
+    println!(
+        "floor: {:.3e} point-patterns; plain sums {:.3e} multiply-adds (n = {n}); \
+         table sums {:.3e} f64 additions (g = {g}) + {:.3e} to build the tables; \
+         {:.3e} threshold comparisons; data read once: {:.2} GB (f32)",
+        work,
+        work * n as f64,
+        work * (g - 1.0),
+        (table_rows * points) as f64,
+        work,
+        (n * points * 4) as f64 / 1e9,
+    );
+    if correction == Correction::Cluster {
+        println!(
+            "floor (cluster): ~{:.3e} supra-threshold points ({share:.4} of point-patterns, \
+             the observed map's share), each a square root, a division and an addition into \
+             its cluster's mass",
+            work * share
+        );
+    }
 }

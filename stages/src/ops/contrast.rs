@@ -34,11 +34,16 @@
 //! for every flip), t² = (n − 1) S² / (n Q − S²), so |t| grows with |S| at a point and a
 //! threshold on |t| is one on |S|. S is summed from tables: the subjects are cut into groups of
 //! [`GROUP`], and for each group every sign pattern's partial sum map is built once per pair;
-//! a pattern's S is then a sum of one row per group. Table rows are built left to right over the
-//! subjects, so a pattern and its mirror image give exactly opposite sums. The observed map goes
-//! through the same arithmetic (the unflipped pattern), so its clusters and statistics are
-//! exactly those of pattern 0. The t shown in the output is the plain two-pass t in f64; the
-//! clusters and masses come from the table sums (f32), which agree with it to about 1e-6.
+//! a pattern's S is then a sum of one row per group: g − 1 additions per point and pattern for g
+//! groups, instead of the n multiply-adds of Σ εᵢ dᵢ. Tables and sums are f64 (f32 data of a
+//! moderate range then sum exactly), built left to right over the subjects, so a pattern and its
+//! mirror image give exactly opposite sums. The observed map goes through the same arithmetic (the
+//! unflipped pattern), so its clusters and statistics are exactly those of pattern 0. The t shown
+//! in the output is the plain two-pass t in f64; the clusters and masses come from the table sums,
+//! which agree with it to about 1e-12 relative. A cluster's mass is its points' t added in raster
+//! order (freq, then time), however the clusters were found: the observed map's by flood fill,
+//! every pattern's from its sign bitmaps as runs of set bits joined across rows (union-find), t
+//! computed at the points above threshold only.
 
 use std::collections::BTreeMap;
 use std::fmt::Write as _;
@@ -503,24 +508,41 @@ impl Flips {
     }
 }
 
-/// The tables of one map: for each group, the partial sum map of every sign pattern.
+/// The tables of one map: for each group, the partial sum map of every sign pattern, in f64.
 struct Tables {
     /// Row offsets of each group's first pattern (in units of maps).
     offsets: Vec<usize>,
-    rows: Vec<f32>,
+    rows: Vec<f64>,
     len: usize,
 }
 
 impl Tables {
     fn build(maps: &[&[f32]], flips: &Flips) -> Tables {
+        let mut tables = Tables {
+            offsets: Vec::new(),
+            rows: Vec::new(),
+            len: 0,
+        };
+        tables.build_into(maps, flips);
+        tables
+    }
+
+    /// [`Tables::build`] into this table's memory (every row is written).
+    fn build_into(&mut self, maps: &[&[f32]], flips: &Flips) {
         let len = maps.first().map_or(0, |m| m.len());
-        let mut offsets = Vec::new();
+        let offsets = &mut self.offsets;
+        offsets.clear();
         let mut total = 0;
         for g in &flips.groups {
             offsets.push(total);
             total += 1 << g.len();
         }
-        let mut rows = vec![0f32; total * len];
+        self.len = len;
+        if maps.is_empty() {
+            return;
+        }
+        let rows = &mut self.rows;
+        rows.resize(total * len, 0.0);
         for (g, range) in flips.groups.iter().enumerate() {
             let block = &mut rows[offsets[g] * len..(offsets[g] + (1 << range.len())) * len];
             // Level k holds the 2^(k+1) patterns of the group's first k + 1 subjects, each the
@@ -529,9 +551,10 @@ impl Tables {
                 let d = maps[s];
                 let half = 1 << k;
                 if k == 0 {
-                    block[..len].copy_from_slice(d);
-                    for (o, &x) in block[len..2 * len].iter_mut().zip(d) {
-                        *o = -x;
+                    let (plus, minus) = block.split_at_mut(len);
+                    for ((p, m), &x) in plus.iter_mut().zip(&mut minus[..len]).zip(d) {
+                        *p = f64::from(x);
+                        *m = -f64::from(x);
                     }
                     continue;
                 }
@@ -540,34 +563,51 @@ impl Tables {
                     let src = &mut lower[m * len..(m + 1) * len];
                     let dst = &mut upper[m * len..(m + 1) * len];
                     for ((o, x), &v) in dst.iter_mut().zip(src.iter_mut()).zip(d) {
+                        let v = f64::from(v);
                         *o = *x - v;
                         *x += v;
                     }
                 }
             }
         }
-        Tables { offsets, rows, len }
     }
 
     /// S of pattern `masks` (one mask per group) at the points `range` into `s`: the group's
     /// rows added left to right, the same additions at every point whatever the range.
-    fn sum(&self, masks: &[u8], range: std::ops::Range<usize>, s: &mut [f32]) {
+    fn sum(&self, masks: &[u8], range: std::ops::Range<usize>, s: &mut [f64]) {
         let len = self.len;
-        for (g, (&off, &m)) in self.offsets.iter().zip(masks).enumerate() {
-            let row = (off + m as usize) * len;
-            let row = &self.rows[row + range.start..row + range.end];
-            if g == 0 {
-                s.copy_from_slice(row);
-            } else {
-                s.iter_mut().zip(row).for_each(|(a, &b)| *a += b);
+        let row = |g: usize| {
+            let at = (self.offsets[g] + masks[g] as usize) * len;
+            &self.rows[at + range.start..at + range.end]
+        };
+        let groups = self.offsets.len().min(masks.len());
+        if groups == 1 {
+            s.iter_mut().zip(row(0)).for_each(|(a, &b)| *a = b);
+        }
+        if groups < 2 {
+            return;
+        }
+        // The same additions as copying the first row and adding the others one by one, two
+        // rows a pass (fewer loads and stores of s; a plain copy loop would become a library
+        // call per short range).
+        for ((a, &x), &y) in s.iter_mut().zip(row(0)).zip(row(1)) {
+            *a = x + y;
+        }
+        let mut g = 2;
+        while g + 1 < groups {
+            for ((a, &x), &y) in s.iter_mut().zip(row(g)).zip(row(g + 1)) {
+                *a = *a + x + y;
             }
+            g += 2;
+        }
+        if g < groups {
+            s.iter_mut().zip(row(g)).for_each(|(a, &b)| *a += b);
         }
     }
 }
 
 /// t from S and Q for n subjects: S √((n − 1) / (n Q − S²)).
-fn t_of(s: f32, q: f64, n: f64) -> f64 {
-    let s = f64::from(s);
+fn t_of(s: f64, q: f64, n: f64) -> f64 {
     let den = n * q - s * s;
     if q == 0.0 {
         return f64::NAN;
@@ -576,6 +616,21 @@ fn t_of(s: f32, q: f64, n: f64) -> f64 {
         return s.signum() * f64::INFINITY;
     }
     s * ((n - 1.0) / den).sqrt()
+}
+
+/// The threshold on S equivalent to |t| > c (given c²) for n subjects and Q = Σ dᵢ².
+///
+/// For fixed Q, t = S √((n − 1) / (n Q − S²)) on −√(nQ) < S < √(nQ) (and S² ≤ n Q always, by
+/// Cauchy–Schwarz), and dt/dS = √(n − 1) · n Q / (n Q − S²)^{3/2} > 0: t is strictly increasing
+/// in S. So for c > 0, t > c ⇔ S > 0 and (n − 1) S² > c² (n Q − S²) ⇔ S > √(c² n Q / (n − 1 + c²)),
+/// and t < −c ⇔ S < −that. Q = 0 (every difference 0; t undefined) or not finite: no point
+/// passes (infinity).
+fn threshold_of_s(q: f64, c2: f64, n: f64) -> f64 {
+    if q.is_finite() && q > 0.0 {
+        (c2 * n * q / (n - 1.0 + c2)).sqrt()
+    } else {
+        f64::INFINITY
+    }
 }
 
 /// The permutation side of one pair's map.
@@ -595,19 +650,27 @@ struct MapResult {
 struct MapInput<'a> {
     maps: Vec<&'a [f32]>,
     q: &'a [f64],
-    threshold_s: &'a [f32],
+    threshold_s: &'a [f64],
     cols: usize,
 }
 
-/// Points per tile of the `max`, `fdr` and `none` permutation loops: one tile's table rows (groups × 32 × TILE f32,
-/// 256 KiB for 20 subjects) stay in the core's cache while every pattern of a block passes over
-/// them, instead of every pattern streaming the whole map's tables from memory. A multiple of 64,
-/// so that a tile fills whole bitmap words.
-const TILE: usize = 512;
+/// Points per tile of the `max`, `fdr` and `none` permutation loops: one tile's table rows
+/// (groups × 32 × TILE f64, 256 KiB for 20 subjects) stay in the core's cache while every
+/// pattern of a block passes over them, instead of every pattern streaming the whole map's tables
+/// from memory. A multiple of 64, so that a tile fills whole bitmap words.
+const TILE: usize = 256;
+
+/// Patterns per block of the `cluster` loop. A block passes over the map row by row; each row's
+/// tables (groups × 32 × cols f64, 200 KiB for 20 subjects and 200 times) are built for the
+/// block and stay in the core's cache while the block's patterns read them; each pattern keeps
+/// its bitmaps and supra-threshold t (a few KiB) for the clusters. The tables are built
+/// patterns / BLOCK times (about 124 additions per point each, against 3 per point and pattern
+/// for the sums).
+const BLOCK: usize = 512;
 
 /// Bit k of the first word is set where S is above the point's threshold, of the second where
 /// below its negative (NaN: neither), for up to 64 points.
-fn sign_bits(s: &[f32], thr: &[f32]) -> (u64, u64) {
+fn sign_bits(s: &[f64], thr: &[f64]) -> (u64, u64) {
     let (mut pos, mut neg) = (0u64, 0u64);
     for (k, (&x, &c)) in s.iter().zip(thr).enumerate() {
         pos |= u64::from(x > c) << k;
@@ -616,44 +679,41 @@ fn sign_bits(s: &[f32], thr: &[f32]) -> (u64, u64) {
     (pos, neg)
 }
 
-/// Calls `each(mass)` for every cluster of `sign` (+1, −1, 0 per point) whose first point, in
-/// raster order, is among `starts` (ascending, every nonzero point at least); writes 1-based
-/// labels when `labels` is given. `seen` must hold no `mark`.
-fn visit_masses(
-    (sign, starts): (&[i8], impl Iterator<Item = usize>),
-    cols: usize,
-    t_at: impl Fn(usize) -> f64,
-    (seen, mark): (&mut [u32], u32),
-    stack: &mut Vec<usize>,
-    mut labels: Option<&mut [u32]>,
-    mut each: impl FnMut(f64),
-) {
+/// Labels the 4-connected clusters of `sign` (+1, −1, 0 per point; one sign per cluster) by
+/// flood fill, 1, 2, … in the raster order of each cluster's first point; returns the count.
+fn label_clusters(sign: &[i8], cols: usize, labels: &mut [u32]) -> usize {
+    labels.iter_mut().for_each(|l| *l = 0);
+    let mut stack = Vec::new();
     let mut label = 0;
-    for first in starts {
-        if sign[first] == 0 || seen[first] == mark {
+    for first in 0..sign.len() {
+        if sign[first] == 0 || labels[first] != 0 {
             continue;
         }
         label += 1;
-        let mut mass = 0.0;
         stats::fill(
             sign,
             cols,
             first,
             |i| {
-                if seen[i] == mark {
-                    return false;
-                }
-                seen[i] = mark;
-                mass += t_at(i);
-                if let Some(l) = labels.as_deref_mut() {
-                    l[i] = label;
-                }
-                true
+                let new = labels[i] == 0;
+                labels[i] = label;
+                new
             },
-            stack,
+            &mut stack,
         );
-        each(mass);
     }
+    label as usize
+}
+
+/// The mass of every cluster of `labels`: Σ t over its points, added in raster order.
+fn raster_masses(labels: &[u32], count: usize, t_at: impl Fn(usize) -> f64) -> Vec<f64> {
+    let mut masses = vec![0f64; count];
+    for (i, &l) in labels.iter().enumerate() {
+        if l > 0 {
+            masses[l as usize - 1] += t_at(i);
+        }
+    }
+    masses
 }
 
 /// The set bits of `words`, ascending.
@@ -675,14 +735,281 @@ fn tiles(len: usize) -> impl Iterator<Item = std::ops::Range<usize>> {
     (0..len).step_by(TILE).map(move |a| a..(a + TILE).min(len))
 }
 
-fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapResult {
+/// Calls `each(first, last)` for every run of set bits of one bitmap row (columns, inclusive),
+/// left to right.
+fn for_each_run(row: &[u64], mut each: impl FnMut(usize, usize)) {
+    let mut open = None;
+    for (w, &word) in row.iter().enumerate() {
+        let before = if w > 0 { row[w - 1] >> 63 } else { 0 };
+        let after = row.get(w + 1).map_or(0, |&x| x & 1);
+        let mut starts = word & !((word << 1) | before);
+        let mut ends = word & !((word >> 1) | (after << 63));
+        loop {
+            if open.is_none() {
+                if starts == 0 {
+                    break;
+                }
+                open = Some(w * 64 + starts.trailing_zeros() as usize);
+                starts &= starts - 1;
+            }
+            if ends == 0 {
+                break;
+            }
+            let last = w * 64 + ends.trailing_zeros() as usize;
+            ends &= ends - 1;
+            each(open.take().unwrap_or(last), last);
+        }
+    }
+}
+
+/// A run of set bits of one bitmap row, in [`largest_mass`].
+#[derive(Clone, Copy)]
+struct Run {
+    /// First and last column.
+    from: u32,
+    to: u32,
+    /// Index of its first t.
+    first: u32,
+    /// Union-find parent; a cluster's root is its first run in raster order.
+    parent: u32,
+}
+
+/// Scratch of [`largest_mass`].
+#[derive(Default)]
+struct Runs {
+    runs: Vec<Run>,
+    mass: Vec<f64>,
+}
+
+fn find(runs: &mut [Run], mut x: usize) -> usize {
+    while runs[x].parent as usize != x {
+        let up = runs[runs[x].parent as usize].parent;
+        runs[x].parent = up;
+        x = up as usize;
+    }
+    x
+}
+
+/// The largest |mass| over the clusters of one sign of one pattern: `bits` holds the sign's
+/// bitmap row by row (`row_words` words a row, the columns of a row from bit 0), `t` the t of
+/// its set points in raster order. Runs of set bits are joined into 4-connected clusters when
+/// they share a column with a run of the row above (union-find); each cluster's mass is then its
+/// t added in raster order, the same additions in the same order as [`raster_masses`] on the
+/// flood fill's labels.
+fn largest_mass(bits: &[u64], row_words: usize, t: &[f64], scratch: &mut Runs) -> f64 {
+    if t.is_empty() {
+        return 0.0;
+    }
+    let runs = &mut scratch.runs;
+    runs.clear();
+    let mut next_t = 0u32;
+    let mut above = 0..0;
+    for row in bits.chunks(row_words) {
+        let here = runs.len();
+        let mut p = above.start;
+        for_each_run(row, |a, b| {
+            let id = runs.len();
+            runs.push(Run {
+                from: a as u32,
+                to: b as u32,
+                first: next_t,
+                parent: id as u32,
+            });
+            next_t += (b - a + 1) as u32;
+            while p < above.end && (runs[p].to as usize) < a {
+                p += 1;
+            }
+            let mut q = p;
+            while q < above.end && runs[q].from as usize <= b {
+                let (x, y) = (find(runs, id), find(runs, q));
+                let (lo, hi) = (x.min(y), x.max(y));
+                runs[hi].parent = lo as u32;
+                q += 1;
+            }
+        });
+        above = here..runs.len();
+    }
+    debug_assert_eq!(next_t as usize, t.len());
+    let mass = &mut scratch.mass;
+    mass.clear();
+    mass.resize(runs.len(), 0.0);
+    for id in 0..runs.len() {
+        let root = find(runs, id);
+        let run = runs[id];
+        let from = run.first as usize;
+        let m = &mut mass[root];
+        for &x in &t[from..from + (run.to - run.from) as usize + 1] {
+            *m += x;
+        }
+    }
+    mass.iter().fold(0f64, |m, x| m.max(x.abs()))
+}
+
+/// One pattern's supra-threshold points in the `cluster` loop.
+#[derive(Default)]
+struct Marks {
+    /// Bitmaps of S above / below the thresholds, row by row (`row_words` words a row).
+    pos: Vec<u64>,
+    neg: Vec<u64>,
+    /// t at the set points of each, in raster order.
+    t_pos: Vec<f64>,
+    t_neg: Vec<f64>,
+}
+
+/// One map row as the `cluster` loop reads it.
+struct Row<'a> {
+    tables: &'a Tables,
+    threshold_s: &'a [f64],
+    q: &'a [f64],
+    n: f64,
+    /// Index of the row's first bitmap word.
+    word: usize,
+}
+
+/// Every pattern of `masks` (`g` masks a pattern) over one row, into its marks: S from the row's
+/// tables 64 points at a time, the signs as bitmap words, t at the points above threshold.
+#[inline(always)]
+fn mark_row_body(row: &Row<'_>, masks: &[u8], g: usize, marks: &mut [Marks]) {
+    let tables = row.tables;
+    let cols = tables.len;
+    let mut s = [0f64; 64];
+    for (masks, m) in masks.chunks(g).zip(marks.iter_mut()) {
+        for (w, a) in (0..cols).step_by(64).enumerate() {
+            let at = a..(a + 64).min(cols);
+            let s = &mut s[..at.len()];
+            tables.sum(masks, at.clone(), s);
+            let q = &row.q[at.clone()];
+            let (pos, neg) = sign_bits(s, &row.threshold_s[at]);
+            m.pos[row.word + w] = pos;
+            m.neg[row.word + w] = neg;
+            for k in set_bits(&[pos]) {
+                m.t_pos.push(t_of(s[k], q[k], row.n));
+            }
+            for k in set_bits(&[neg]) {
+                m.t_neg.push(t_of(s[k], q[k], row.n));
+            }
+        }
+    }
+}
+
+fn mark_row_portable(row: &Row<'_>, masks: &[u8], g: usize, marks: &mut [Marks]) {
+    mark_row_body(row, masks, g, marks);
+}
+
+/// The same operations compiled for AVX2 (IEEE additions, comparisons, divisions and square
+/// roots in the same order: the same bits).
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn mark_row_avx2(row: &Row<'_>, masks: &[u8], g: usize, marks: &mut [Marks]) {
+    mark_row_body(row, masks, g, marks);
+}
+
+fn mark_row(row: &Row<'_>, masks: &[u8], g: usize, marks: &mut [Marks]) {
+    #[cfg(target_arch = "x86_64")]
+    if std::arch::is_x86_feature_detected!("avx2") {
+        // SAFETY: the CPU supports AVX2 (checked above).
+        unsafe { mark_row_avx2(row, masks, g, marks) };
+        return;
+    }
+    mark_row_portable(row, masks, g, marks);
+}
+
+/// The `cluster` side of one map: the observed clusters (labels and masses) and, per pattern,
+/// the largest |mass|.
+fn cluster_map(
+    input: &MapInput<'_>,
+    flips: &Flips,
+    mark: fn(&Row<'_>, &[u8], usize, &mut [Marks]),
+) -> MapResult {
     let n = input.maps.len() as f64;
+    let len = input.q.len();
+    let cols = input.cols;
+    let rows = len.checked_div(cols).unwrap_or(0);
+    let row_words = cols.div_ceil(64);
+    let g = flips.groups.len();
+    let count = flips.count();
+    let mut tables = Tables::build(&[], flips);
+    let row_maps = |r: usize| -> Vec<&[f32]> {
+        input
+            .maps
+            .iter()
+            .map(|m| &m[r * cols..(r + 1) * cols])
+            .collect()
+    };
+    // The observed map: pattern 0 through the same tables, clusters by flood fill.
+    let mut s_obs = vec![0f64; len];
+    for (r, s) in s_obs.chunks_mut(cols.max(1)).enumerate().take(rows) {
+        tables.build_into(&row_maps(r), flips);
+        tables.sum(&flips.masks[..g], 0..cols, s);
+    }
+    let sign: Vec<i8> = s_obs
+        .iter()
+        .zip(input.threshold_s)
+        .map(|(&x, &c)| i8::from(x > c) - i8::from(x < -c))
+        .collect();
+    let mut labels = vec![0; len];
+    let found = label_clusters(&sign, cols, &mut labels);
+    let masses = raster_masses(&labels, found, |i| t_of(s_obs[i], input.q[i], n));
+    // A block of patterns at a time, one map row at a time: each pattern's S over the row, its
+    // signs as bitmaps and t at the supra-threshold points only; then each pattern's clusters
+    // from its bitmaps.
+    let mut marks: Vec<Marks> = (0..BLOCK.min(count))
+        .map(|_| Marks {
+            pos: vec![0; rows * row_words],
+            neg: vec![0; rows * row_words],
+            ..Marks::default()
+        })
+        .collect();
+    let mut runs = Runs::default();
+    let mut null = Vec::with_capacity(count);
+    for block in (0..count).step_by(BLOCK) {
+        let patterns = block..(block + BLOCK).min(count);
+        let marks = &mut marks[..patterns.len()];
+        for m in marks.iter_mut() {
+            m.t_pos.clear();
+            m.t_neg.clear();
+        }
+        for r in 0..rows {
+            tables.build_into(&row_maps(r), flips);
+            let row = Row {
+                tables: &tables,
+                threshold_s: &input.threshold_s[r * cols..(r + 1) * cols],
+                q: &input.q[r * cols..(r + 1) * cols],
+                n,
+                word: r * row_words,
+            };
+            mark(
+                &row,
+                &flips.masks[patterns.start * g..patterns.end * g],
+                g,
+                marks,
+            );
+        }
+        for m in marks.iter() {
+            let pos = largest_mass(&m.pos, row_words, &m.t_pos, &mut runs);
+            let neg = largest_mass(&m.neg, row_words, &m.t_neg, &mut runs);
+            null.push(pos.max(neg));
+        }
+    }
+    MapResult {
+        null,
+        counts: Vec::new(),
+        labels,
+        masses,
+        ratio: Vec::new(),
+    }
+}
+
+fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapResult {
+    if correction == Correction::Cluster {
+        return cluster_map(input, flips, mark_row);
+    }
     let len = input.q.len();
     let tables = Tables::build(&input.maps, flips);
     let g = flips.groups.len();
     let count = flips.count();
-    let mut s = vec![0f32; TILE.min(len)];
-    let mut s_obs = vec![0f32; len];
+    let mut s = vec![0f64; TILE.min(len)];
+    let mut s_obs = vec![0f64; len];
     tables.sum(&flips.masks[..g], 0..len, &mut s_obs);
     let mut out = MapResult {
         null: Vec::new(),
@@ -691,85 +1018,17 @@ fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapRe
         masses: Vec::new(),
         ratio: Vec::new(),
     };
-    let ratio = |x: f32, q: f64| {
-        let x = f64::from(x);
-        if q > 0.0 {
-            x * x / q
-        } else {
-            f64::NAN
-        }
-    };
+    let ratio = |x: f64, q: f64| if q > 0.0 { x * x / q } else { f64::NAN };
     match correction {
-        Correction::Cluster => {
-            let mut sign = vec![0i8; len];
-            let mut seen = vec![0u32; len];
-            let mut stack = Vec::new();
-            out.labels = vec![0; len];
-            for (o, (&x, &c)) in sign.iter_mut().zip(s_obs.iter().zip(input.threshold_s)) {
-                *o = i8::from(x > c) - i8::from(x < -c);
-            }
-            let mut masses = Vec::new();
-            visit_masses(
-                (&sign, 0..len),
-                input.cols,
-                |i| t_of(s_obs[i], input.q[i], n),
-                (&mut seen, 1),
-                &mut stack,
-                Some(&mut out.labels),
-                |m| masses.push(m),
-            );
-            out.masses = masses;
-            seen.iter_mut().for_each(|x| *x = 0);
-            sign.iter_mut().for_each(|x| *x = 0);
-            // Per pattern: S over the map and its signs as two bitmaps in one pass, then the
-            // clusters grown from the bitmaps' set points only.
-            let words = len.div_ceil(64);
-            let (mut pos, mut neg, mut either) =
-                (vec![0u64; words], vec![0u64; words], vec![0u64; words]);
-            let mut s = vec![0f32; len];
-            out.null = Vec::with_capacity(count);
-            for (j, masks) in flips.masks.chunks(g).enumerate() {
-                for (w, r) in (0..len)
-                    .step_by(64)
-                    .map(|a| a..(a + 64).min(len))
-                    .enumerate()
-                {
-                    let x = &mut s[r.clone()];
-                    tables.sum(masks, r.clone(), x);
-                    (pos[w], neg[w]) = sign_bits(x, &input.threshold_s[r]);
-                    either[w] = pos[w] | neg[w];
-                }
-                for i in set_bits(&pos) {
-                    sign[i] = 1;
-                }
-                for i in set_bits(&neg) {
-                    sign[i] = -1;
-                }
-                let mut largest = 0f64;
-                visit_masses(
-                    (&sign, set_bits(&either)),
-                    input.cols,
-                    |i| t_of(s[i], input.q[i], n),
-                    (&mut seen, j as u32 + 1),
-                    &mut stack,
-                    None,
-                    |m| largest = largest.max(m.abs()),
-                );
-                out.null.push(largest);
-                for i in set_bits(&either) {
-                    sign[i] = 0;
-                }
-            }
-        }
         Correction::Max => {
             out.ratio = s_obs
                 .iter()
                 .zip(input.q)
                 .map(|(&x, &q)| ratio(x, q))
                 .collect();
-            // The largest over a map is the largest of its tiles' largest (NaN skipped). S² is
-            // exact in f64 (an f32 squared), and fl(S²/Q) < M wherever S² < M·Q·(1 − 1e-9) (each
-            // rounding is below 1.2e-16), so the division runs only where a point may raise M.
+            // The largest over a map is the largest of its tiles' largest (NaN skipped). With
+            // x2 = fl(S²), fl(x2/Q) < M wherever x2 < fl(fl(M·Q)·(1 − 1e-9)) (each rounding is
+            // below 1.2e-16 relative), so the division runs only where a point may raise M.
             out.null = vec![0f64; count];
             for r in tiles(len) {
                 let s = &mut s[..r.len()];
@@ -779,8 +1038,7 @@ fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapRe
                         .iter()
                         .zip(&input.q[r.clone()])
                         .fold(*largest, |m, (&x, &q)| {
-                            let x2 = f64::from(x) * f64::from(x);
-                            if x2 < m * q * (1.0 - 1e-9) {
+                            if x * x < m * q * (1.0 - 1e-9) {
                                 return m;
                             }
                             let r = ratio(x, q);
@@ -793,6 +1051,7 @@ fn run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> MapRe
                 }
             }
         }
+        Correction::Cluster => unreachable!("cluster_map runs the cluster correction"),
         Correction::Fdr | Correction::None => {
             out.counts = vec![0; len];
             for r in tiles(len) {
@@ -871,18 +1130,8 @@ pub fn test(subjects: &[&[f32]], flips: &Flips, settings: Settings) -> Tested {
             }
         });
     let c2 = settings.threshold_t * settings.threshold_t;
-    // |t| > c ⇔ S² (n − 1 + c²) > c² n Q.
-    // Compared with the f32 sums S in f32, for the observed map and every pattern alike.
-    let threshold_s: Vec<f32> = q
-        .iter()
-        .map(|&q| {
-            if q.is_finite() && q > 0.0 {
-                (c2 * nf * q / (nf - 1.0 + c2)).sqrt() as f32
-            } else {
-                f32::INFINITY
-            }
-        })
-        .collect();
+    // Compared with the f64 sums S, for the observed map and every pattern alike.
+    let threshold_s: Vec<f64> = q.iter().map(|&q| threshold_of_s(q, c2, nf)).collect();
     Tested {
         p: Vec::new(),
         cluster: Vec::new(),
@@ -898,7 +1147,7 @@ impl Tested {
         mut self,
         subjects: &[&[f32]],
         q: &[f64],
-        threshold_s: &[f32],
+        threshold_s: &[f64],
         flips: &Flips,
         settings: Settings,
     ) -> Tested {
@@ -1005,7 +1254,7 @@ fn check_probability(field: &str, x: f64) -> Result<(), StageError> {
 impl Op for Contrast {
     type Params = ContrastParams;
     const NAME: &'static str = "contrast";
-    const VERSION: u32 = 1;
+    const VERSION: u32 = 2;
 
     fn check(p: &Self::Params) -> Result<(), StageError> {
         match (&p.compare, &p.condition) {
@@ -1526,12 +1775,12 @@ mod tests {
             let flips = Flips::new(n, 1 << n, true, 0);
             let tables = Tables::build(&views, &flips);
             let g = flips.groups.len();
-            let (mut a, mut b) = (vec![0f32; 33], vec![0f32; 33]);
+            let (mut a, mut b) = (vec![0f64; 33], vec![0f64; 33]);
             for k in 0..1usize << n {
                 let mirror = (1 << n) - 1 - k;
                 tables.sum(&flips.masks[k * g..(k + 1) * g], 0..33, &mut a);
                 tables.sum(&flips.masks[mirror * g..(mirror + 1) * g], 0..33, &mut b);
-                let mut part = vec![0f32; 20];
+                let mut part = vec![0f64; 20];
                 tables.sum(&flips.masks[k * g..(k + 1) * g], 10..30, &mut part);
                 assert!(part
                     .iter()
@@ -1541,52 +1790,46 @@ mod tests {
                     a.iter().zip(&b).all(|(x, y)| *x == -*y),
                     "n {n} pattern {k}"
                 );
-                // Against the plain signed sum in f64: f32 rounding only.
+                // Against the plain signed sum in f64, left to right: f32 data of a narrow
+                // range sum exactly in f64 (24-bit significands, at most 2^4 terms), in any order.
                 for (j, x) in a.iter().enumerate() {
                     let plain: f64 = (0..n)
                         .map(|i| if k >> i & 1 == 1 { -1.0 } else { 1.0 } * f64::from(data[i][j]))
                         .sum();
-                    assert!((f64::from(*x) - plain).abs() < 1e-5, "n {n} k {k}");
+                    assert_eq!(*x, plain, "n {n} k {k}");
                 }
             }
         }
     }
 
-    /// The permutation loop without tiles or bitmaps: every pattern's whole map summed, signed
-    /// and scanned in turn (the oracle of the tiled [`run_map`]).
+    /// The permutation loop without tiles, bitmaps or runs: every pattern's whole map summed,
+    /// signed, labelled by flood fill and its masses added in raster order, in turn (the oracle
+    /// of the tiled [`run_map`]).
     fn plain_run_map(input: &MapInput<'_>, flips: &Flips, correction: Correction) -> Vec<f64> {
         let n = input.maps.len() as f64;
         let len = input.q.len();
         let tables = Tables::build(&input.maps, flips);
         let g = flips.groups.len();
-        let mut s = vec![0f32; len];
-        let (mut s_obs, mut sign) = (vec![0f32; len], vec![0i8; len]);
+        let mut s = vec![0f64; len];
+        let (mut s_obs, mut sign) = (vec![0f64; len], vec![0i8; len]);
         tables.sum(&flips.masks[..g], 0..len, &mut s_obs);
-        let mut seen = vec![0u32; len];
+        let mut labels = vec![0u32; len];
         let mut out = Vec::new();
-        for (j, masks) in flips.masks.chunks(g).enumerate() {
+        for masks in flips.masks.chunks(g) {
             tables.sum(masks, 0..len, &mut s);
             match correction {
                 Correction::Cluster => {
                     for (o, (&x, &c)) in sign.iter_mut().zip(s.iter().zip(input.threshold_s)) {
                         *o = i8::from(x > c) - i8::from(x < -c);
                     }
-                    let mut largest = 0f64;
-                    visit_masses(
-                        (&sign, 0..len),
-                        input.cols,
-                        |i| t_of(s[i], input.q[i], n),
-                        (&mut seen, j as u32 + 1),
-                        &mut Vec::new(),
-                        None,
-                        |m| largest = largest.max(m.abs()),
-                    );
-                    out.push(largest);
+                    let found = label_clusters(&sign, input.cols, &mut labels);
+                    let masses = raster_masses(&labels, found, |i| t_of(s[i], input.q[i], n));
+                    out.push(masses.iter().fold(0f64, |m, x| m.max(x.abs())));
                 }
                 Correction::Max => out.push(
                     s.iter()
                         .zip(input.q)
-                        .map(|(&x, &q)| f64::from(x) * f64::from(x) / q)
+                        .map(|(&x, &q)| x * x / q)
                         .filter(|r| !r.is_nan())
                         .fold(0f64, f64::max),
                 ),
@@ -1608,8 +1851,11 @@ mod tests {
 
     #[test]
     fn tiled_permutations_equal_the_plain_loop_bit_for_bit() {
-        // Maps of 9 × 70 = 630 points (two tiles, the second partial), 600 patterns (three
-        // random chunks), smooth enough to form clusters, 13 subjects (groups of 5, 5, 3).
+        // Maps of 9 × 70 = 630 points (three tiles, the last partial; rows of two bitmap
+        // words, runs crossing the word boundary), 600 patterns (three random chunks, two
+        // blocks, the last partial), smooth enough to form clusters, 13 subjects (groups of 5,
+        // 5, 3). The cluster loop is checked compiled for AVX2 (where the CPU has it) and
+        // portably.
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(17);
         let (rows, cols, n) = (9, 70, 13);
         let maps: Vec<Vec<f32>> = (0..n)
@@ -1624,10 +1870,9 @@ mod tests {
         let q: Vec<f64> = (0..rows * cols)
             .map(|i| maps.iter().map(|m| f64::from(m[i]).powi(2)).sum())
             .collect();
-        let c2 = 2.2f64 * 2.2;
-        let threshold_s: Vec<f32> = q
+        let threshold_s: Vec<f64> = q
             .iter()
-            .map(|&q| (c2 * n as f64 * q / (n as f64 - 1.0 + c2)).sqrt() as f32)
+            .map(|&q| threshold_of_s(q, 2.2 * 2.2, n as f64))
             .collect();
         let input = MapInput {
             maps: views.clone(),
@@ -1646,6 +1891,9 @@ mod tests {
             bits(&cluster.null),
             bits(&plain_run_map(&input, &flips, Correction::Cluster))
         );
+        let portable = cluster_map(&input, &flips, mark_row_portable);
+        assert_eq!(bits(&cluster.null), bits(&portable.null));
+        assert_eq!(bits(&cluster.masses), bits(&portable.masses));
         let max = run_map(&input, &flips, Correction::Max);
         assert_eq!(
             bits(&max.null),
@@ -1657,6 +1905,118 @@ mod tests {
             bits(&counts),
             bits(&plain_run_map(&input, &flips, Correction::Fdr))
         );
+    }
+
+    #[test]
+    fn runs_joined_by_union_find_give_the_flood_fill_masses() {
+        // Random sign maps from sparse to dense (spirals, U shapes and combs whose arms meet
+        // only rows later), widths around the 64-bit word: the largest |mass| from the runs of
+        // the bitmaps equals, bit for bit, flood-fill labels with masses added in raster order.
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(23);
+        let mut runs = Runs::default();
+        for &(rows, cols) in &[
+            (1, 1),
+            (5, 1),
+            (1, 130),
+            (7, 63),
+            (6, 64),
+            (9, 65),
+            (4, 200),
+        ] {
+            for density in [0.05, 0.3, 0.5, 0.7, 0.95] {
+                let len = rows * cols;
+                let sign: Vec<i8> = (0..len)
+                    .map(|_| {
+                        let u: f64 = rng.gen();
+                        if u < density / 2.0 {
+                            1
+                        } else if u < density {
+                            -1
+                        } else {
+                            0
+                        }
+                    })
+                    .collect();
+                let t: Vec<f64> = sign
+                    .iter()
+                    .map(|&s| f64::from(s) * rng.gen_range(2.0..9.0))
+                    .collect();
+                let mut labels = vec![0; len];
+                let found = label_clusters(&sign, cols, &mut labels);
+                let masses = raster_masses(&labels, found, |i| t[i]);
+                let want = masses.iter().fold(0f64, |m, x| m.max(x.abs()));
+                let row_words = cols.div_ceil(64);
+                let bitmap = |s: i8| {
+                    let mut bits = vec![0u64; rows * row_words];
+                    for i in (0..len).filter(|&i| sign[i] == s) {
+                        let (r, c) = (i / cols, i % cols);
+                        bits[r * row_words + c / 64] |= 1 << (c % 64);
+                    }
+                    let ts: Vec<f64> = (0..len).filter(|&i| sign[i] == s).map(|i| t[i]).collect();
+                    (bits, ts)
+                };
+                let (pos, t_pos) = bitmap(1);
+                let (neg, t_neg) = bitmap(-1);
+                let got = largest_mass(&pos, row_words, &t_pos, &mut runs)
+                    .max(largest_mass(&neg, row_words, &t_neg, &mut runs));
+                assert_eq!(
+                    got.to_bits(),
+                    want.to_bits(),
+                    "{rows} x {cols} at {density}"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn threshold_on_the_sum_is_the_threshold_on_t() {
+        // Formula: the one-sample t of the flipped differences, mean / (SD (ddof 1) / √n), as
+        // scipy.stats.ttest_1samp defines it, computed here in two passes from the flipped
+        // values themselves; against it, S > threshold_of_s(Q) must say the same as t > c (and
+        // S < −threshold as t < −c) wherever t is not within 1e-9 relative of ±c, and t_of(S)
+        // must equal that t to 1e-12 relative.
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(29);
+        let (mut checked, mut passed) = (0, 0);
+        for n in [3usize, 7, 20] {
+            let c = stats::t_isf(0.025, (n - 1) as f64);
+            let points = 400;
+            let data: Vec<Vec<f32>> = (0..n)
+                .map(|_| (0..points).map(|_| rng.gen_range(-1.0f32..1.6)).collect())
+                .collect();
+            let views: Vec<&[f32]> = data.iter().map(|d| d.as_slice()).collect();
+            let flips = Flips::new(n, 300, false, 4);
+            let tables = Tables::build(&views, &flips);
+            let g = flips.groups.len();
+            let mut s = vec![0f64; points];
+            for (j, masks) in flips.masks.chunks(g).enumerate() {
+                tables.sum(masks, 0..points, &mut s);
+                for (i, &s) in s.iter().enumerate() {
+                    let flip = |k: usize| {
+                        let (grp, bit) = (k / GROUP, k % GROUP);
+                        let neg = flips.masks[j * g + grp] >> bit & 1 == 1;
+                        f64::from(data[k][i]) * if neg { -1.0 } else { 1.0 }
+                    };
+                    let x: Vec<f64> = (0..n).map(flip).collect();
+                    let nf = n as f64;
+                    let mean = x.iter().sum::<f64>() / nf;
+                    let sd =
+                        (x.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (nf - 1.0)).sqrt();
+                    let t = mean / (sd / nf.sqrt());
+                    let q: f64 = x.iter().map(|v| v * v).sum();
+                    assert!((t_of(s, q, nf) - t).abs() <= 1e-12 * t.abs().max(1.0));
+                    let thr = threshold_of_s(q, c * c, nf);
+                    if (t.abs() - c).abs() > 1e-9 * c {
+                        checked += 1;
+                        passed += usize::from(t > c);
+                        assert_eq!(s > thr, t > c, "n {n} pattern {j} point {i}");
+                        assert_eq!(s < -thr, t < -c, "n {n} pattern {j} point {i}");
+                    }
+                }
+            }
+        }
+        assert!(checked > 300_000 && passed > 1000, "{checked} {passed}");
     }
 
     #[test]
