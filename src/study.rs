@@ -311,7 +311,7 @@ impl Study {
                 let stored = match self.store.lookup(&self.keys[u]) {
                     Lookup::Present(_) => Stored::Present,
                     Lookup::Absent => Stored::Absent,
-                    Lookup::Damaged(why) => Stored::Damaged(why),
+                    Lookup::Damaged(why) => Stored::Damaged(why.to_string()),
                 };
                 let changed_files = self.units[u]
                     .inputs
