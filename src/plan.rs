@@ -325,7 +325,11 @@ pub fn explain(facts: &UnitFacts) -> Reason {
 }
 
 /// The first leaf (in sorted key order) where two param trees differ.
-pub(crate) fn first_difference(path: &str, old: &Value, new: &Value) -> Option<(String, String, String)> {
+pub(crate) fn first_difference(
+    path: &str,
+    old: &Value,
+    new: &Value,
+) -> Option<(String, String, String)> {
     if canonical_json(old) == canonical_json(new) {
         return None;
     }

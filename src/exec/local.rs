@@ -813,7 +813,8 @@ impl Worker<'_, '_> {
                                 }
                                 Ok(())
                             });
-                    read.map(|()| Notes::default()).map_err(|stop| stop.to_string())
+                    read.map(|()| Notes::default())
+                        .map_err(|stop| stop.to_string())
                 });
         let record = match written {
             Ok(Ok(record)) => record,

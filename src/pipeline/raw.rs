@@ -197,8 +197,8 @@ fn parse_override(index: usize, text: &str) -> Result<Override, OverrideError> {
             lhs: lhs.to_string(),
         });
     }
-    let value = yaml::parse(rhs, |_, _| Origin::Override(index))
-        .map_err(|e| OverrideError::NotYaml {
+    let value =
+        yaml::parse(rhs, |_, _| Origin::Override(index)).map_err(|e| OverrideError::NotYaml {
             rhs: rhs.to_string(),
             source: e,
         })?;

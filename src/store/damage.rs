@@ -83,4 +83,3 @@ impl Damage {
         Damage::Unreadable(Arc::new(e))
     }
 }
-

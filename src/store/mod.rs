@@ -212,9 +212,7 @@ impl Store {
             None => {
                 let bytes = match std::fs::read(&json) {
                     Ok(b) => b,
-                    Err(_) if npy_meta.is_some() => {
-                        return Lookup::Damaged(Damage::RecordMissing)
-                    }
+                    Err(_) if npy_meta.is_some() => return Lookup::Damaged(Damage::RecordMissing),
                     Err(_) => return Lookup::Absent,
                 };
                 let record = match parse_record(&bytes, key) {
@@ -274,8 +272,7 @@ impl Store {
         }
         // A header this reader does not know: the general way (read, hash, decode).
         let bytes = self.load_bytes(key, record)?;
-        values_from_npy(&bytes, record.layout.complex)
-            .map_err(|e| Damage::Undecodable(Arc::new(e)))
+        values_from_npy(&bytes, record.layout.complex).map_err(|e| Damage::Undecodable(Arc::new(e)))
     }
 
     /// The NPY bytes of an object, verified against its record.
@@ -463,8 +460,8 @@ fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, Unreadable> {
             return Ok(record);
         }
     }
-    let value: serde_json::Value = serde_json::from_slice(bytes)
-        .map_err(|e| damaged(Damage::RecordNotJson(Arc::new(e))))?;
+    let value: serde_json::Value =
+        serde_json::from_slice(bytes).map_err(|e| damaged(Damage::RecordNotJson(Arc::new(e))))?;
     let version = value.get("format_version").and_then(|v| v.as_u64());
     if value.get("format").and_then(|v| v.as_str()) != Some(FORMAT) {
         return Err(damaged(Damage::NotARecord));
@@ -591,9 +588,10 @@ mod tests {
         let last = bytes.len() - 1;
         bytes[last] ^= 1;
         std::fs::write(&npy_path, &bytes).unwrap();
-        assert!(
-            matches!(store.load(&record.key), Err(LoadError::Damaged(Damage::Hash { .. })))
-        );
+        assert!(matches!(
+            store.load(&record.key),
+            Err(LoadError::Damaged(Damage::Hash { .. }))
+        ));
         std::fs::remove_file(&json_path).unwrap();
         assert!(matches!(store.lookup(&record.key), Lookup::Damaged(_)));
     }

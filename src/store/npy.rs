@@ -172,9 +172,7 @@ pub(crate) fn geometry(record: &ObjectRecord) -> Result<Option<Geometry>, Damage
     if complex != record.layout.complex || !cfg!(target_endian = "little") {
         return Ok(None);
     }
-    let data_len = count
-        .checked_mul(width)
-        .ok_or(Damage::ShapeOverflow)? as u64;
+    let data_len = count.checked_mul(width).ok_or(Damage::ShapeOverflow)? as u64;
     let Some(header_len) = record.npy_size.checked_sub(data_len) else {
         return Err(Damage::TooSmallForShape {
             size: record.npy_size,

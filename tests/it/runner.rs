@@ -881,7 +881,11 @@ fn switching_data_events_makes_the_recordings_units_stale_naming_it() {
     assert_ne!(key_a(&switched), key_a(&first));
     replace_in(&file, "  events: annotations\n", "  events: sidecar\n");
     let back = p.run();
-    assert_eq!(computed(&back), Vec::<String>::new(), "the first results are cached");
+    assert_eq!(
+        computed(&back),
+        Vec::<String>::new(),
+        "the first results are cached"
+    );
     assert_eq!(key_a(&back), key_a(&first));
     // Without the setting, the default: the same keys.
     replace_in(&file, "  events: sidecar\n", "");

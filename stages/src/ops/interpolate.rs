@@ -13,9 +13,9 @@ use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use crate::array::{LabelledArray, Layout};
+use crate::dsp::spline_map::{check_spline, default_lambda, default_m, default_terms, SplineMap};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
-use crate::dsp::spline_map::{check_spline, default_lambda, default_m, default_terms, SplineMap};
 use crate::spatial::channel_input;
 use crate::spatial::splines::interpolation_matrix;
 
@@ -92,9 +92,14 @@ fn plan(p: &InterpolateParams, input: &Layout) -> Result<SplineMap, StageError> 
         .filter(|i| is_data[*i] && !bad.contains(i))
         .collect();
     // Bad channels need positions too; the same checks name them.
-    SplineMap::fit(input, &names, (good, bad), layout, "interpolate", |from, to| {
-        interpolation_matrix(&spline, from, to)
-    })
+    SplineMap::fit(
+        input,
+        &names,
+        (good, bad),
+        layout,
+        "interpolate",
+        |from, to| interpolation_matrix(&spline, from, to),
+    )
 }
 
 impl Op for Interpolate {

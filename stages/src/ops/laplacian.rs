@@ -16,9 +16,9 @@
 use serde::{Deserialize, Serialize};
 
 use crate::array::{LabelledArray, Layout};
+use crate::dsp::spline_map::{check_spline, default_lambda, default_m, default_terms, SplineMap};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
-use crate::dsp::spline_map::{check_spline, default_lambda, default_m, default_terms, SplineMap};
 use crate::spatial::channel_input;
 use crate::spatial::splines::laplacian_matrix;
 
