@@ -49,7 +49,7 @@ pub fn archive(
     license: Option<&str>,
     authors: &[String],
 ) -> Result<usize, ArchiveError> {
-    let mut m = manifest::read(manifest_path).map_err(ArchiveError)?;
+    let mut m = manifest::read(manifest_path).map_err(|e| ArchiveError(e.to_string()))?;
     let output = manifest_path.parent().unwrap_or(Path::new("."));
     if let Some(subjects) = &m.pipeline.subjects {
         return Err(fail(format!(

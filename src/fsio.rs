@@ -4,7 +4,8 @@
 //! sees the old file or the new one, never a part of one.
 //!
 //! The writer of a temporary file decides, once it has written it, whether it is to be renamed:
-//! [`Declined`] says why not, as a value the caller matches on.
+//! [`Declined`] says why not, as a value the caller matches on (the writer's own error type
+//! when the content turned out wrong).
 
 use std::fs::File;
 use std::io::Write;
@@ -12,18 +13,22 @@ use std::path::Path;
 use std::sync::atomic::{AtomicU64, Ordering};
 
 /// Why a `fill` turned its temporary file down: nothing is renamed and the temporary file is
-/// removed.
+/// removed. `E` is the writer's own error type (a stored object's [`Damage`](crate::store::Damage),
+/// an encoding error); writers that never find their content wrong use [`Never`].
 #[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
-pub enum Declined {
+pub enum Declined<E> {
     /// The file at the target path already holds exactly this content (it is left alone, with
     /// its modification time).
     #[error("the file already holds this content")]
     Unchanged,
     /// The content turned out wrong (a hash that does not match its record, a part that does
-    /// not fit): the message says what.
-    #[error("{0}")]
-    Wrong(String),
+    /// not fit): the writer's error says what.
+    #[error(transparent)]
+    Wrong(E),
 }
+
+/// The error of a writer whose content cannot turn out wrong.
+pub type Never = std::convert::Infallible;
 
 /// Bytes after which [`Writeback`] asks the kernel to start writing them to disk.
 pub(crate) const WRITEBACK_BYTES: u64 = 8 << 20;
@@ -83,7 +88,7 @@ impl Write for Writeback<'_> {
 /// Write `bytes` to `path` atomically: a temporary file in the same folder, fsync, rename.
 pub fn atomic_write(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     write_then_rename(path, false, |file| file.write_all(bytes).map(Ok))
-        .map(|r: Result<(), Declined>| r.unwrap_or(()))
+        .map(|r: Result<(), Declined<Never>>| r.unwrap_or(()))
 }
 
 /// [`atomic_write`] without the fsyncs, for bookkeeping whose loss in a crash costs only work
@@ -91,7 +96,7 @@ pub fn atomic_write(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
 /// the old file or the new one, never a part, and one lost after a power cut is simply redone.
 pub fn bookkeeping_write(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     replace_via_temp(path, false, false, |file| file.write_all(bytes).map(Ok))
-        .map(|r: Result<(), Declined>| r.unwrap_or(()))
+        .map(|r: Result<(), Declined<Never>>| r.unwrap_or(()))
 }
 
 static TEMP_COUNTER: AtomicU64 = AtomicU64::new(0);
@@ -102,11 +107,11 @@ pub const TEMP_PREFIX: &str = ".tmp-";
 /// Fill a temporary file in `path`'s folder with `fill`, fsync it and rename it to `path`. When
 /// `fill` declines (`Ok(Err(_))`: the content turned out wrong, or the file already holds it)
 /// the temporary file is removed, nothing is renamed and the answer is passed on.
-pub fn write_then_rename<T>(
+pub fn write_then_rename<T, E>(
     path: &Path,
     abort_before_rename: bool,
-    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, Declined>>,
-) -> std::io::Result<Result<T, Declined>> {
+    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, Declined<E>>>,
+) -> std::io::Result<Result<T, Declined<E>>> {
     replace_via_temp(path, abort_before_rename, true, fill)
 }
 
@@ -114,11 +119,11 @@ pub fn write_then_rename<T>(
 /// checks an object against the content hash in its record, so one that a power loss left
 /// incomplete is recomputed, never used; an exported object is made durable when it is linked
 /// ([`link_then_rename`]). See DEVELOPERS.md "Durability".
-pub fn write_then_rename_unsynced<T>(
+pub fn write_then_rename_unsynced<T, E>(
     path: &Path,
     abort_before_rename: bool,
-    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, Declined>>,
-) -> std::io::Result<Result<T, Declined>> {
+    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, Declined<E>>>,
+) -> std::io::Result<Result<T, Declined<E>>> {
     replace_via_temp(path, abort_before_rename, false, fill)
 }
 
@@ -146,12 +151,12 @@ pub fn link_then_rename(source: &File, source_path: &Path, path: &Path) -> std::
 }
 
 /// [`write_then_rename`], with the fsyncs of the file and its folder only when `durable`.
-fn replace_via_temp<T>(
+fn replace_via_temp<T, E>(
     path: &Path,
     abort_before_rename: bool,
     durable: bool,
-    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, Declined>>,
-) -> std::io::Result<Result<T, Declined>> {
+    fill: impl FnOnce(&mut Writeback<'_>) -> std::io::Result<Result<T, Declined<E>>>,
+) -> std::io::Result<Result<T, Declined<E>>> {
     let dir = path.parent().unwrap_or(Path::new("."));
     std::fs::create_dir_all(dir)?;
     let name = path.file_name().map(|n| n.to_string_lossy().into_owned());

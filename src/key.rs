@@ -10,7 +10,9 @@
 //! | `inputs`     | the keys of the input units (or of the source recordings)           |
 //! | `subject`    | two subjects with identical files still get their own results      |
 //!
-//! A source's key is blake3 over the content hashes of the recording and its sidecars.
+//! A source's key is blake3 over the content hashes of the recording and its sidecars (the
+//! events sidecar among them), the reader's version, and how the files are read when that is
+//! not the default (`data.events: annotations`, `data.channels`, `data.rate`, ...).
 //! What is never hashed: absolute paths and modification times (a renamed or copied project keeps
 //! its cache), stage names (renaming a stage does not invalidate its results), thread counts.
 //!

@@ -21,7 +21,7 @@
 //! order then subject, inputs by path, warnings in unit order.
 
 use std::collections::BTreeMap;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 use serde_json::Value;
@@ -305,7 +305,7 @@ pub fn path_for(output: &Path, selection: &[String]) -> std::path::PathBuf {
 /// come from the same pipeline file and overrides; parts of other pipelines or overrides, and
 /// unreadable ones, are left out. The units, inputs and order are `current`'s; a unit that a part
 /// computed (with the same key) is recorded as that part recorded it, host included.
-pub fn merge_with_parts(current: Manifest, output: &Path) -> Result<Manifest, String> {
+pub fn merge_with_parts(current: Manifest, output: &Path) -> Result<Manifest, ManifestError> {
     let mut parts = vec![current];
     let dir = output.join("manifest.parts");
     let mut files: Vec<_> = std::fs::read_dir(&dir)
@@ -346,20 +346,90 @@ pub fn merge_with_parts(current: Manifest, output: &Path) -> Result<Manifest, St
     Ok(merged)
 }
 
+/// Why a manifest could not be read or merged.
+#[derive(Debug, thiserror::Error)]
+pub enum ManifestError {
+    /// The file could not be read.
+    #[error("cannot read {}: {source}", path.display())]
+    Read {
+        /// The manifest file.
+        path: PathBuf,
+        /// The cause.
+        source: std::io::Error,
+    },
+    /// The file is not JSON.
+    #[error("{} is not valid JSON: {source}", path.display())]
+    NotJson {
+        /// The manifest file.
+        path: PathBuf,
+        /// Where and why it does not parse.
+        source: serde_json::Error,
+    },
+    /// JSON, but not a manifest of this format version.
+    #[error(
+        "{} is not a phasewise manifest of format version {FORMAT_VERSION} (its format is {found})",
+        path.display()
+    )]
+    OtherFormat {
+        /// The manifest file.
+        path: PathBuf,
+        /// Its `format` and `format_version`, as found.
+        found: String,
+    },
+    /// A manifest of this format with a field missing or of the wrong type.
+    #[error("{}: {source}", path.display())]
+    Field {
+        /// The manifest file.
+        path: PathBuf,
+        /// Which field, and what was expected.
+        source: serde_json::Error,
+    },
+    /// [`merge`] was given no manifests.
+    #[error("no manifest parts to merge")]
+    NoParts,
+    /// [`merge`] was given parts of different pipelines or overrides.
+    #[error(
+        "the parts come from different pipelines or overrides (part {index} has {found}, the \
+         first {expected})"
+    )]
+    OtherPipeline {
+        /// The part's position in the list.
+        index: usize,
+        /// The first part's pipeline blake3 and overrides.
+        expected: String,
+        /// This part's.
+        found: String,
+    },
+}
+
 /// Read a manifest, checking its format and version.
-pub fn read(path: &Path) -> Result<Manifest, String> {
-    let bytes = std::fs::read(path).map_err(|e| format!("cannot read {}: {e}", path.display()))?;
-    let value: Value = serde_json::from_slice(&bytes)
-        .map_err(|e| format!("{} is not valid JSON: {e}", path.display()))?;
-    if value.get("format").and_then(Value::as_str) != Some(FORMAT)
-        || value.get("format_version").and_then(Value::as_u64) != Some(u64::from(FORMAT_VERSION))
-    {
-        return Err(format!(
-            "{} is not a phasewise manifest of format version {FORMAT_VERSION}",
-            path.display()
-        ));
+pub fn read(path: &Path) -> Result<Manifest, ManifestError> {
+    let path_buf = || path.to_path_buf();
+    let bytes = std::fs::read(path).map_err(|source| ManifestError::Read {
+        path: path_buf(),
+        source,
+    })?;
+    let value: Value = serde_json::from_slice(&bytes).map_err(|source| ManifestError::NotJson {
+        path: path_buf(),
+        source,
+    })?;
+    let format = value.get("format").and_then(Value::as_str);
+    let version = value.get("format_version").and_then(Value::as_u64);
+    if format != Some(FORMAT) || version != Some(u64::from(FORMAT_VERSION)) {
+        let shown = |v: Option<&Value>| v.map_or("none".to_string(), Value::to_string);
+        return Err(ManifestError::OtherFormat {
+            path: path_buf(),
+            found: format!(
+                "{} version {}",
+                shown(value.get("format")),
+                shown(value.get("format_version"))
+            ),
+        });
     }
-    serde_json::from_value(value).map_err(|e| format!("{}: {e}", path.display()))
+    serde_json::from_value(value).map_err(|source| ManifestError::Field {
+        path: path_buf(),
+        source,
+    })
 }
 
 /// The manifest as written: pretty JSON with a final newline.
@@ -375,13 +445,21 @@ pub fn to_bytes(manifest: &Manifest) -> Vec<u8> {
 /// of a later part replaces one already taken only when it was computed, the one taken was not,
 /// and both have the same key (a part left by an earlier run with other params never replaces
 /// the current record).
-pub fn merge(parts: &[Manifest]) -> Result<Manifest, String> {
-    let first = parts.first().ok_or("no manifest parts to merge")?;
-    for part in parts {
+pub fn merge(parts: &[Manifest]) -> Result<Manifest, ManifestError> {
+    let first = parts.first().ok_or(ManifestError::NoParts)?;
+    for (index, part) in parts.iter().enumerate() {
         if part.pipeline.blake3 != first.pipeline.blake3
             || part.pipeline.overrides != first.pipeline.overrides
         {
-            return Err("the parts come from different pipelines or overrides".into());
+            let origin = |m: &Manifest| {
+                let o = &m.pipeline.overrides;
+                format!("pipeline blake3 {} and overrides {o:?}", m.pipeline.blake3)
+            };
+            return Err(ManifestError::OtherPipeline {
+                index,
+                expected: origin(first),
+                found: origin(part),
+            });
         }
     }
     let stage_rank = |stage: &str| first.pipeline.stages.iter().position(|s| s == stage);

@@ -29,7 +29,7 @@ use serde_json::json;
 use crate::fsio::{
     atomic_write, bookkeeping_write, remove_stale_temps, write_then_rename, Declined,
 };
-use crate::store::{write_npy_to, ObjectRecord, Store};
+use crate::store::{write_npy_to, Damage, ObjectRecord, Store};
 
 /// An export that could not be written.
 #[derive(Debug, thiserror::Error)]
@@ -72,7 +72,7 @@ pub enum ExportError {
     /// A file could not be written.
     Output(OutputError),
     /// The stored object did not match its record (nothing was written from it).
-    Damaged(String),
+    Damaged(Damage),
 }
 
 impl From<OutputError> for ExportError {
@@ -256,8 +256,7 @@ pub fn export(
             let values = &array.values;
             let written = write_then_rename(&npy_path, false, |file| {
                 let mut out = std::io::BufWriter::with_capacity(1 << 20, file);
-                let done =
-                    write_npy_to(values, &mut out).map_err(|e| Declined::Wrong(e.to_string()));
+                let done = write_npy_to(values, &mut out).map_err(Declined::Wrong);
                 out.flush()?;
                 Ok(done)
             });
@@ -281,9 +280,8 @@ pub fn export(
                 let values = store
                     .load_values(&record.key, record)
                     .map_err(ExportError::Damaged)?;
-                let array = LabelledArray::checked(record.layout.clone(), values).map_err(|e| {
-                    ExportError::Damaged(format!("its values do not fit its layout: {e}"))
-                })?;
+                let array = LabelledArray::checked(record.layout.clone(), values)
+                    .map_err(|e| ExportError::Damaged(Damage::Layout(e.into())))?;
                 write_table(target, &array)?;
             }
         }
@@ -508,7 +506,7 @@ fn write_streamed_atomically(
     fill: impl FnOnce(&mut (dyn FnMut(&str) -> std::io::Result<()> + Send)) -> std::io::Result<()>,
 ) -> Result<(), OutputError> {
     let mut old = SameAs::open(path);
-    let written = write_then_rename(path, false, |file| {
+    let written = write_then_rename::<_, crate::fsio::Never>(path, false, |file| {
         fill(&mut |piece: &str| {
             old.feed(piece.as_bytes());
             file.write_all(piece.as_bytes())
@@ -522,7 +520,7 @@ fn write_streamed_atomically(
     });
     let message = match written {
         Ok(Ok(())) | Ok(Err(Declined::Unchanged)) => return Ok(()),
-        Ok(Err(Declined::Wrong(why))) => why,
+        Ok(Err(Declined::Wrong(never))) => match never {},
         Err(e) => e.to_string(),
     };
     Err(OutputError {

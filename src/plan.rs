@@ -36,6 +36,16 @@ pub enum Reason {
         /// Its new value.
         new: String,
     },
+    /// A setting of how the subject's recording is read changed (`data.events`,
+    /// `data.channels`, `data.rate`, ...).
+    ReadingChanged {
+        /// The setting, as the pipeline file names it (`data.events`).
+        setting: String,
+        /// Its old value (canonical JSON; `absent` when it was not there).
+        old: String,
+        /// Its new value.
+        new: String,
+    },
     /// A file of the subject's recording changed.
     InputFileChanged {
         /// The file.
@@ -73,6 +83,9 @@ impl fmt::Display for Reason {
             Reason::OpVersionChanged { old, new } => write!(f, "op version changed: {old} → {new}"),
             Reason::ParamChanged { name, old, new } => {
                 write!(f, "param {name} changed: {old} → {new}")
+            }
+            Reason::ReadingChanged { setting, old, new } => {
+                write!(f, "{setting} changed: {old} → {new}")
             }
             Reason::InputFileChanged { path } => write!(f, "input file changed: {path}"),
             Reason::Upstream { stage } => write!(f, "upstream {stage} changed"),
@@ -121,6 +134,9 @@ pub struct UnitFacts {
     pub last: Option<Fingerprint>,
     /// Files of the subject's recording whose hash differs from the last recorded one.
     pub changed_files: Vec<String>,
+    /// The first setting of how the subject's recording is read (`data.events`, ...) whose
+    /// value differs from the last recorded one: its name, old and new value (canonical JSON).
+    pub changed_reading: Option<(String, String, String)>,
     /// Indices (into the same list) of the units consuming this one.
     pub consumers: Vec<usize>,
     /// False for `cache: false` stages.
@@ -212,6 +228,9 @@ impl Reason {
             Reason::ParamChanged { name, old, new } => serde_json::json!({
                 "kind": "param", "param": name, "old": value(old), "new": value(new)
             }),
+            Reason::ReadingChanged { setting, old, new } => serde_json::json!({
+                "kind": "reading", "setting": setting, "old": value(old), "new": value(new)
+            }),
             Reason::InputFileChanged { path } => {
                 serde_json::json!({"kind": "input_file", "path": path})
             }
@@ -287,6 +306,9 @@ pub fn explain(facts: &UnitFacts) -> Reason {
             continue;
         }
         if input.stage == SOURCE {
+            if let Some((setting, old, new)) = facts.changed_reading.clone() {
+                return Reason::ReadingChanged { setting, old, new };
+            }
             let path = facts.changed_files.first().cloned().unwrap_or_else(|| {
                 format!(
                     "the recording of {}",
@@ -303,7 +325,11 @@ pub fn explain(facts: &UnitFacts) -> Reason {
 }
 
 /// The first leaf (in sorted key order) where two param trees differ.
-fn first_difference(path: &str, old: &Value, new: &Value) -> Option<(String, String, String)> {
+pub(crate) fn first_difference(
+    path: &str,
+    old: &Value,
+    new: &Value,
+) -> Option<(String, String, String)> {
     if canonical_json(old) == canonical_json(new) {
         return None;
     }
@@ -375,6 +401,7 @@ mod tests {
             stored,
             last,
             changed_files: vec![],
+            changed_reading: None,
             consumers: vec![],
             cache: true,
         }

@@ -24,7 +24,7 @@ pub struct PruneReport {
 }
 
 /// The unit keys referred to by the manifests in these output folders.
-pub fn referenced_keys(outputs: &[PathBuf]) -> Result<BTreeSet<String>, String> {
+pub fn referenced_keys(outputs: &[PathBuf]) -> Result<BTreeSet<String>, manifest::ManifestError> {
     let mut keys = BTreeSet::new();
     for output in outputs {
         for path in manifest_files(output) {

@@ -31,7 +31,7 @@ use phasewise_stages::{LabelledArray, Layout, Notes, StageError, Values};
 use crate::fsio::{self, Declined};
 use crate::key::Fingerprint;
 use crate::store::npy::{check_end, fortran_order, geometry, read_fresh, Geometry};
-use crate::store::{self, HashingWriter, ObjectRecord, Store, StoreError};
+use crate::store::{self, Damage, HashingWriter, ObjectRecord, Store, StoreError};
 
 /// Bytes of one box (at least one row each).
 pub const SLAB_BYTES: usize = 4 << 20;
@@ -163,13 +163,66 @@ pub fn join_boxes(
     Err(StageError::data("internal: no boxes to join"))
 }
 
-/// Why [`Store::read_slabs`] stopped.
-#[derive(Debug)]
-pub enum SlabStop {
+/// Why [`Store::read_slabs`] stopped; `E` is the visitor's own error.
+#[derive(Debug, thiserror::Error)]
+pub enum SlabStop<E> {
     /// The stored object does not match its record.
-    Damaged(String),
-    /// The object's form, or the visitor, declined; the caller should do the work whole.
-    Declined(String),
+    #[error(transparent)]
+    Damaged(Damage),
+    /// The object's form does not allow reading it in these boxes; the caller should do the
+    /// work whole.
+    #[error(transparent)]
+    Declined(SlabDecline),
+    /// The visitor gave up on a box; the caller should do the work whole.
+    #[error("{0}")]
+    Visitor(E),
+}
+
+/// Why a stored object is not read in slabs (nothing is wrong with it).
+#[derive(Debug, thiserror::Error)]
+pub enum SlabDecline {
+    /// Another dtype, a big-endian machine, or a header over 1 MiB.
+    #[error("not a form read in slabs")]
+    Form,
+    /// Stored in Fortran order.
+    #[error("not stored in C order")]
+    NotCOrder,
+    /// A box that is not a cut of the object's layout.
+    #[error("a box does not cut the stored layout: {0}")]
+    Box(StageError),
+    /// The boxes cover more than the array.
+    #[error("boxes beyond the array")]
+    Beyond,
+    /// The boxes cover less than the array.
+    #[error("boxes short of the array")]
+    Short,
+    /// A box's values do not have its layout's shape.
+    #[error("a box's values do not have its shape: {0}")]
+    Shape(ndarray::ShapeError),
+    /// A box's values do not fit its layout.
+    #[error("a box's values do not fit its layout: {0}")]
+    Layout(StageError),
+}
+
+/// Why a [`Spool`] could not be written to the store.
+#[derive(Debug, thiserror::Error)]
+pub enum SpoolError {
+    /// Fewer or more indices along the part axis than the output has.
+    #[error("internal: {at} of {shape:?} spooled along axis {axis}")]
+    Incomplete {
+        /// Indices spooled.
+        at: usize,
+        /// The output's shape.
+        shape: Vec<usize>,
+        /// The part axis.
+        axis: usize,
+    },
+    /// The spooled parts could not be read back from their temporary file.
+    #[error("cannot read the spooled parts back: {0}")]
+    ReadBack(std::io::Error),
+    /// The object's values could not be written (the store reports the write error itself).
+    #[error("cannot write the spooled parts to the store: {0}")]
+    Write(std::io::Error),
 }
 
 /// The NPY header (numpy's format, version 1.0 while the text fits, else 2.0; the dictionary
@@ -233,42 +286,42 @@ impl Store {
     /// layout) to `visit`, and check the whole file against `record` at the end. `visit` sees
     /// values before they are known to be intact: nothing it does may be committed unless this
     /// returns `Ok`.
-    pub fn read_slabs(
+    pub fn read_slabs<E>(
         &self,
         key: &str,
         record: &ObjectRecord,
         boxes: &[SlabBox],
-        mut visit: impl FnMut(&SlabBox, LabelledArray) -> Result<(), String>,
-    ) -> Result<(), SlabStop> {
+        mut visit: impl FnMut(&SlabBox, LabelledArray) -> Result<(), E>,
+    ) -> Result<(), SlabStop<E>> {
         let (npy, _) = self.object_paths(key);
         let damaged = SlabStop::Damaged;
-        let mut file = std::fs::File::open(&npy)
-            .map_err(|e| damaged(format!("cannot read its values: {e}")))?;
+        let declined = SlabStop::Declined;
+        let mut file = std::fs::File::open(&npy).map_err(|e| damaged(Damage::unreadable(e)))?;
         let Some(Geometry {
             count,
             complex,
             header_len,
         }) = geometry(record).map_err(damaged)?
         else {
-            return Err(SlabStop::Declined("not a form read in slabs".into()));
+            return Err(declined(SlabDecline::Form));
         };
         let mut hasher = blake3::Hasher::new();
         let mut head = vec![0u8; header_len];
         std::io::Read::read_exact(&mut file, &mut head)
-            .map_err(|e| damaged(format!("cannot read its values: {e}")))?;
+            .map_err(|e| damaged(store::npy::short_or_unreadable(e)))?;
         hasher.update(&head);
         if fortran_order(&head) != Some(false) {
-            return Err(SlabStop::Declined("not stored in C order".into()));
+            return Err(declined(SlabDecline::NotCOrder));
         }
         let mut read = 0;
         for b in boxes {
             let layout =
-                box_layout(&record.layout, b).map_err(|e| SlabStop::Declined(e.to_string()))?;
+                box_layout(&record.layout, b).map_err(|e| declined(SlabDecline::Box(e)))?;
             let shape = ndarray::IxDyn(&layout.shape());
             let n = ndarray::Dimension::size(&shape);
             read += n;
             if read > count {
-                return Err(SlabStop::Declined("boxes beyond the array".into()));
+                return Err(declined(SlabDecline::Beyond));
             }
             let values = if complex {
                 let v = read_fresh(&mut file, n, &mut hasher).map_err(damaged)?;
@@ -277,13 +330,13 @@ impl Store {
                 let v = read_fresh(&mut file, n, &mut hasher).map_err(damaged)?;
                 ndarray::ArrayD::from_shape_vec(shape, v).map(Values::Real)
             }
-            .map_err(|e| SlabStop::Declined(e.to_string()))?;
+            .map_err(|e| declined(SlabDecline::Shape(e)))?;
             let slab = LabelledArray::checked(layout, values)
-                .map_err(|e| SlabStop::Declined(e.to_string()))?;
-            visit(b, slab).map_err(SlabStop::Declined)?;
+                .map_err(|e| declined(SlabDecline::Layout(e)))?;
+            visit(b, slab).map_err(SlabStop::Visitor)?;
         }
         if read != count {
-            return Err(SlabStop::Declined("boxes short of the array".into()));
+            return Err(declined(SlabDecline::Short));
         }
         check_end(&mut file, hasher, record).map_err(damaged)
     }
@@ -291,19 +344,19 @@ impl Store {
     /// Write a unit's object from its output boxes: `fill` writes the values of each box, in
     /// file order, to the writer it is given (after the NPY header of `layout`'s shape, which
     /// this writes) and returns the unit's notes. The NPY (when `stored`) and the record are
-    /// committed only when `fill` succeeds; `Ok(Err(why))` when it did not, and then nothing
-    /// is written.
-    pub fn put_slabs(
+    /// committed only when `fill` succeeds; `Ok(Err(why))` (`fill`'s error) when it did not,
+    /// and then nothing is written.
+    pub fn put_slabs<E>(
         &self,
         layout: &Layout,
         fingerprint: &Fingerprint,
         stored: bool,
-        fill: impl FnOnce(&mut dyn FnMut(&[u8]) -> std::io::Result<()>) -> Result<Notes, String>,
-    ) -> Result<Result<ObjectRecord, String>, StoreError> {
+        fill: impl FnOnce(&mut dyn FnMut(&[u8]) -> std::io::Result<()>) -> Result<Notes, E>,
+    ) -> Result<Result<ObjectRecord, E>, StoreError> {
         let dtype = if layout.complex { "<c8" } else { "<f4" };
         let key = fingerprint.key();
         let (npy_path, json_path) = self.object_paths(&key);
-        let write = |out: &mut dyn Write| -> std::io::Result<Result<(Notes, String, u64), String>> {
+        let write = |out: &mut dyn Write| -> std::io::Result<Result<(Notes, String, u64), E>> {
             let mut tee = HashingWriter::new(out);
             tee.write_all(&npy_header(&layout.shape(), dtype))?;
             // A write error is the caller's failure to report (a full disk, say), not the
@@ -325,7 +378,12 @@ impl Store {
             fsio::write_then_rename_unsynced(&npy_path, abort, |file| {
                 write(file).map(|r| r.map_err(Declined::Wrong))
             })
-            .map(|r| r.map_err(|declined| declined.to_string()))
+            .map(|r| {
+                r.map_err(|declined| match declined {
+                    Declined::Wrong(why) => why,
+                    Declined::Unchanged => unreachable!("put_slabs does not compare its target"),
+                })
+            })
         } else {
             write(&mut std::io::sink())
         };
@@ -408,13 +466,14 @@ impl Spool {
         store: &Store,
         fingerprint: &Fingerprint,
         notes: &Notes,
-    ) -> Result<Result<ObjectRecord, String>, StoreError> {
+    ) -> Result<Result<ObjectRecord, SpoolError>, StoreError> {
         let shape = self.layout.shape();
         if shape.get(self.axis) != Some(&self.at) {
-            return Ok(Err(format!(
-                "internal: {} of {:?} spooled along axis {}",
-                self.at, shape, self.axis
-            )));
+            return Ok(Err(SpoolError::Incomplete {
+                at: self.at,
+                shape,
+                axis: self.axis,
+            }));
         }
         let rows: usize = shape[..self.axis].iter().product();
         let row_bytes = self.at * self.inner * self.element;
@@ -434,7 +493,7 @@ impl Spool {
                     let at = offset + (first * part_row) as u64;
                     file.seek(SeekFrom::Start(at))
                         .and_then(|_| file.read_exact(piece))
-                        .map_err(|e| format!("cannot read the spooled parts back: {e}"))?;
+                        .map_err(SpoolError::ReadBack)?;
                 }
                 out.clear();
                 for r in 0..count {
@@ -443,7 +502,7 @@ impl Spool {
                         out.extend_from_slice(&piece[r * part_row..(r + 1) * part_row]);
                     }
                 }
-                write(&out).map_err(|e| e.to_string())?;
+                write(&out).map_err(SpoolError::Write)?;
             }
             Ok(notes.clone())
         })

@@ -365,17 +365,23 @@ impl Hasher {
         })
     }
 
-    /// The key of a source and the hashes of its files; `choice` (`data.channels`,
-    /// `data.rate`) joins the key when it is not the default, so a pipeline without it keeps
-    /// its keys.
+    /// The key of a source and the hashes of its files (the events sidecar among them, when
+    /// there is one). How the files are read joins the key when it is not the default, so a
+    /// pipeline without those settings keeps its keys: `events` (`data.events`; the default
+    /// reads the events sidecar, `annotations` the recording's own events, which can differ)
+    /// and `choice` (`data.channels`, `data.rate`, ...).
     pub fn source_key(
         &self,
         source: &Source,
+        events: EventSource,
         choice: &Choice,
     ) -> Result<(String, Vec<FileHash>), SourceError> {
         // What the reader makes of the files is part of the key too.
         let reader = phasewise_stages::io::READER_VERSION.to_string();
         let mut roles = vec![("reader".to_string(), reader)];
+        if events != EventSource::Sidecar {
+            roles.push(("events".to_string(), events_name(events).to_string()));
+        }
         if !choice.is_default() {
             let value = serde_json::to_value(choice).unwrap_or_default();
             roles.push(("choice".to_string(), key::canonical_json(&value)));
@@ -401,6 +407,14 @@ fn read_record(path: &Path) -> Option<StatRecord> {
     let bytes = std::fs::read(path).ok()?;
     let record: StatRecord = serde_json::from_slice(&bytes).ok()?;
     (record.format_version == STAT_VERSION).then_some(record)
+}
+
+/// `data.events` as the pipeline file writes it.
+pub fn events_name(events: EventSource) -> &'static str {
+    match events {
+        EventSource::Sidecar => "sidecar",
+        EventSource::Annotations => "annotations",
+    }
 }
 
 /// Size and blake3 of a file, read in chunks.

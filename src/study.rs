@@ -144,7 +144,7 @@ impl Study {
         let mut source_files = Vec::new();
         for source in &sources {
             let (key, files) = hasher
-                .source_key(source, &pipeline.choice)
+                .source_key(source, pipeline.events, &pipeline.choice)
                 .map_err(|e| RunError::Other(e.to_string()))?;
             source_keys.push(key);
             source_files.push(files);
@@ -284,10 +284,25 @@ impl Study {
         Fingerprint {
             op: SOURCE.into(),
             op_version: 0,
-            params: json!({ "files": files }),
+            params: json!({ "files": files, "reading": self.reading() }),
             inputs: Vec::new(),
             subject: Some(self.sources[source].subject.clone()),
         }
+    }
+
+    /// How the recordings are read, as the settings of the pipeline file name it: `data.events`
+    /// always, `data.channels`, `data.rate`, ... when set. Remembered with each source's files,
+    /// so that a changed setting is named as the reason its units are stale.
+    fn reading(&self) -> serde_json::Value {
+        let mut reading = serde_json::Map::new();
+        let events = sources::events_name(self.pipeline.events);
+        reading.insert("data.events".into(), json!(events));
+        if let Ok(serde_json::Value::Object(choice)) = serde_json::to_value(&self.pipeline.choice) {
+            for (k, v) in choice {
+                reading.insert(format!("data.{k}"), v);
+            }
+        }
+        serde_json::Value::Object(reading)
     }
 
     /// Remember the sources' file hashes (after a successful run) for later explanations.
@@ -306,12 +321,15 @@ impl Study {
         let changed: Vec<Vec<String>> = (0..self.sources.len())
             .map(|s| self.changed_files(s))
             .collect();
+        let reading: Vec<_> = (0..self.sources.len())
+            .map(|s| self.changed_reading(s))
+            .collect();
         (0..self.units.len())
             .map(|u| {
                 let stored = match self.store.lookup(&self.keys[u]) {
                     Lookup::Present(_) => Stored::Present,
                     Lookup::Absent => Stored::Absent,
-                    Lookup::Damaged(why) => Stored::Damaged(why),
+                    Lookup::Damaged(why) => Stored::Damaged(why.to_string()),
                 };
                 let changed_files = self.units[u]
                     .inputs
@@ -329,6 +347,10 @@ impl Study {
                     stored,
                     last: self.store.last(&self.last_id(u)),
                     changed_files,
+                    changed_reading: self.units[u].inputs.iter().find_map(|i| match i {
+                        UnitInput::Source(s) => reading[*s].clone(),
+                        UnitInput::Unit(_) => None,
+                    }),
                     consumers: self.consumers[u].clone(),
                     cache: self.pipeline.stages[self.units[u].stage].cache,
                 }
@@ -339,6 +361,14 @@ impl Study {
     /// The plan of this study.
     pub fn plan(&self) -> Plan {
         Plan::decide(&self.facts())
+    }
+
+    /// The first reading setting that differs from the one last remembered for `source` (none
+    /// when nothing was remembered, or by a version that did not remember settings).
+    fn changed_reading(&self, source: usize) -> Option<(String, String, String)> {
+        let last = self.store.last(&self.source_last_id(source))?;
+        let old = last.params.get("reading")?;
+        crate::plan::first_difference("", old, &self.reading())
     }
 
     fn changed_files(&self, source: usize) -> Vec<String> {

@@ -119,7 +119,7 @@ pub fn verify_with(
     data: Option<&Path>,
     env: Env<'_>,
 ) -> Result<VerifyReport, VerifyError> {
-    let old = manifest::read(manifest_path).map_err(VerifyError)?;
+    let old = manifest::read(manifest_path).map_err(|e| VerifyError(e.to_string()))?;
     let output = output_dir(manifest_path);
     let pipeline_file = output.join(&old.pipeline.path);
     let place = match data {

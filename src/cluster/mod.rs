@@ -627,9 +627,23 @@ pub fn status(
 /// `run --merge-parts`: merge the manifest parts in the output folder into the manifest just
 /// written at `manifest_path` (the group job's last step), so that each unit computed by an
 /// array task is recorded as that task recorded it, with its host.
-pub fn merge_parts(manifest_path: &Path, current: crate::manifest::Manifest) -> Result<(), String> {
+pub fn merge_parts(
+    manifest_path: &Path,
+    current: crate::manifest::Manifest,
+) -> Result<(), MergeError> {
     let output = manifest_path.parent().unwrap_or(Path::new("."));
     let merged = crate::manifest::merge_with_parts(current, output)?;
-    crate::output::write_atomically(manifest_path, &crate::manifest::to_bytes(&merged))
-        .map_err(|e| e.to_string())
+    crate::output::write_atomically(manifest_path, &crate::manifest::to_bytes(&merged))?;
+    Ok(())
+}
+
+/// Why [`merge_parts`] failed.
+#[derive(Debug, thiserror::Error)]
+pub enum MergeError {
+    /// The parts do not merge.
+    #[error(transparent)]
+    Manifest(#[from] crate::manifest::ManifestError),
+    /// The merged manifest could not be written.
+    #[error(transparent)]
+    Write(#[from] crate::output::OutputError),
 }

@@ -450,7 +450,7 @@ impl Worker<'_, '_> {
         }
     }
 
-    fn warn_damaged(&mut self, u: usize, why: &str) {
+    fn warn_damaged(&mut self, u: usize, why: &dyn std::fmt::Display) {
         tracing::warn!(
             stage = %self.study().stage_name(u),
             subject = ?self.study().subject(u),
@@ -513,7 +513,7 @@ impl Worker<'_, '_> {
                     output::export(&target, &record, ExportFrom::Array(&array), &study.store)
                         .map_err(|e| match e {
                             ExportError::Output(e) => self.fail(u, e.to_string()),
-                            ExportError::Damaged(why) => self.fail(u, why),
+                            ExportError::Damaged(why) => self.fail(u, why.to_string()),
                         })?
                 }
             }
@@ -813,9 +813,8 @@ impl Worker<'_, '_> {
                                 }
                                 Ok(())
                             });
-                    read.map(|()| Notes::default()).map_err(|stop| match stop {
-                        slabs::SlabStop::Damaged(why) | slabs::SlabStop::Declined(why) => why,
-                    })
+                    read.map(|()| Notes::default())
+                        .map_err(|stop| stop.to_string())
                 });
         let record = match written {
             Ok(Ok(record)) => record,
@@ -921,7 +920,7 @@ impl Worker<'_, '_> {
             Err(spool) => {
                 let record = match spool.commit(&study.store, &study.fingerprints[u], notes) {
                     Ok(Ok(record)) => record,
-                    Ok(Err(why)) => return Err(self.fail(u, why)),
+                    Ok(Err(why)) => return Err(self.fail(u, why.to_string())),
                     Err(e) => return Err(self.fail(u, e.to_string())),
                 };
                 self.record_result(u, record, seconds());

@@ -145,32 +145,63 @@ pub fn parse_overrides(args: &[String]) -> (Vec<Override>, Vec<Diagnostic>) {
     for (i, text) in args.iter().enumerate() {
         match parse_override(i, text) {
             Ok(o) => overrides.push(o),
-            Err(message) => problems.push(Diagnostic {
+            Err(e) => problems.push(Diagnostic {
                 file: None,
                 line: 0,
                 col: 0,
                 field: format!("--set {text}"),
-                message,
+                message: e.to_string(),
             }),
         }
     }
     (overrides, problems)
 }
 
-fn parse_override(index: usize, text: &str) -> Result<Override, String> {
-    let (lhs, rhs) = text
-        .split_once('=')
-        .ok_or("expected STAGE.PARAM=VALUE, found no `=`")?;
+/// Why a `--set` argument was refused (reported as a command-line diagnostic).
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum OverrideError {
+    /// No `=`.
+    #[error("expected STAGE.PARAM=VALUE, found no `=`")]
+    NoEquals,
+    /// The left side is not a stage name and a dotted path.
+    #[error("expected STAGE.PARAM=VALUE with a dotted path, found `{lhs}`")]
+    NotDotted {
+        /// The left side as written.
+        lhs: String,
+    },
+    /// The right side is not YAML.
+    #[error("the value `{rhs}` is not valid YAML: {}", .source.message)]
+    NotYaml {
+        /// The right side as written.
+        rhs: String,
+        /// The YAML reader's error (its position is within the value).
+        source: yaml::YamlError,
+    },
+    /// The path goes through a value that is not a mapping.
+    #[error("cannot set `{key}` inside {kind}, which is not a mapping")]
+    NotAMapping {
+        /// The path's next key.
+        key: String,
+        /// What the value there is (`a list`, `a scalar`).
+        kind: &'static str,
+    },
+}
+
+fn parse_override(index: usize, text: &str) -> Result<Override, OverrideError> {
+    let (lhs, rhs) = text.split_once('=').ok_or(OverrideError::NoEquals)?;
     let mut parts = lhs.trim().split('.');
     let stage = parts.next().unwrap_or_default().to_string();
     let path: Vec<String> = parts.map(str::to_string).collect();
     if stage.is_empty() || path.is_empty() || path.iter().any(String::is_empty) {
-        return Err(format!(
-            "expected STAGE.PARAM=VALUE with a dotted path, found `{lhs}`"
-        ));
+        return Err(OverrideError::NotDotted {
+            lhs: lhs.to_string(),
+        });
     }
-    let value = yaml::parse(rhs, |_, _| Origin::Override(index))
-        .map_err(|e| format!("the value `{rhs}` is not valid YAML: {}", e.message))?;
+    let value =
+        yaml::parse(rhs, |_, _| Origin::Override(index)).map_err(|e| OverrideError::NotYaml {
+            rhs: rhs.to_string(),
+            source: e,
+        })?;
     // An empty value parses as an empty document; treat it as an explicit null.
     let value = if rhs.trim().is_empty() {
         Node {
@@ -404,22 +435,27 @@ pub fn apply_overrides(raw: &mut RawPipeline, overrides: &[Override], c: &mut Co
             );
             continue;
         };
-        if let Err(message) = set_path(&mut stage.params, &o.path, o.value.clone(), i) {
-            c.at(Origin::Override(i), o.path.join("."), message);
+        if let Err(e) = set_path(&mut stage.params, &o.path, o.value.clone(), i) {
+            c.at(Origin::Override(i), o.path.join("."), e.to_string());
         }
     }
 }
 
-fn set_path(node: &mut Node, path: &[String], value: Node, index: usize) -> Result<(), String> {
+fn set_path(
+    node: &mut Node,
+    path: &[String],
+    value: Node,
+    index: usize,
+) -> Result<(), OverrideError> {
     let Some((first, rest)) = path.split_first() else {
         *node = value;
         return Ok(());
     };
     let NodeKind::Map(entries) = &mut node.kind else {
-        return Err(format!(
-            "cannot set `{first}` inside {}, which is not a mapping",
-            node.kind_name()
-        ));
+        return Err(OverrideError::NotAMapping {
+            key: first.clone(),
+            kind: node.kind_name(),
+        });
     };
     let position = entries.iter().position(|(k, _)| k.as_str() == Some(first));
     let slot = match position {

@@ -283,20 +283,46 @@ fn output_path(raw: &RawPipeline, dir: &Path, c: &mut Collector<'_>) -> Option<P
     let origin = raw.output.as_ref().map_or(raw.stages_origin, |o| o.origin);
     match check_output(&written) {
         Ok(relative) => Some(dir.join(relative)),
-        Err(message) => {
-            c.at(origin, "output", message);
+        Err(e) => {
+            c.at(origin, "output", e.to_string());
             None
         }
     }
 }
 
+/// Why an `output:` path was refused.
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+pub enum OutputPathError {
+    /// An absolute path.
+    #[error("expected a path relative to the pipeline file, found the absolute path `{written}`")]
+    Absolute {
+        /// The path as written.
+        written: String,
+    },
+    /// More than one `..` beyond the pipeline's folder.
+    #[error(
+        "`{written}` climbs {ups} levels above the pipeline's folder; at most one (`../results/x`) is allowed"
+    )]
+    TooHigh {
+        /// The path as written.
+        written: String,
+        /// How many levels it climbs.
+        ups: usize,
+    },
+    /// The pipeline's folder itself, or its parent.
+    #[error("`{written}` is the pipeline's folder or its parent; expected a folder of its own")]
+    NotOwnFolder {
+        /// The path as written.
+        written: String,
+    },
+}
+
 /// Normalise an output path lexically and check that it stays near the pipeline file.
-pub fn check_output(written: &str) -> Result<PathBuf, String> {
+pub fn check_output(written: &str) -> Result<PathBuf, OutputPathError> {
     let path = Path::new(written);
+    let written = written.to_string();
     if path.is_absolute() {
-        return Err(format!(
-            "expected a path relative to the pipeline file, found the absolute path `{written}`"
-        ));
+        return Err(OutputPathError::Absolute { written });
     }
     let mut kept: Vec<String> = Vec::new();
     let mut ups = 0usize;
@@ -308,14 +334,10 @@ pub fn check_output(written: &str) -> Result<PathBuf, String> {
         }
     }
     if ups > 1 {
-        return Err(format!(
-            "`{written}` climbs {ups} levels above the pipeline's folder; at most one (`../results/x`) is allowed"
-        ));
+        return Err(OutputPathError::TooHigh { written, ups });
     }
     if kept.is_empty() {
-        return Err(format!(
-            "`{written}` is the pipeline's folder or its parent; expected a folder of its own"
-        ));
+        return Err(OutputPathError::NotOwnFolder { written });
     }
     let mut out: PathBuf = std::iter::repeat_n("..", ups).collect();
     out.extend(kept);

@@ -35,7 +35,9 @@ use crate::fsio::{
 };
 use crate::key::Fingerprint;
 
+mod damage;
 pub(crate) mod npy;
+pub use damage::Damage;
 use npy::*;
 pub use npy::{npy_bytes, npy_digest, values_from_npy, write_npy_to, HashingWriter};
 
@@ -59,9 +61,12 @@ pub enum StoreError {
         /// The cause.
         source: std::io::Error,
     },
-    /// The values could not be encoded.
+    /// The values could not be encoded (or written while encoding).
     #[error("cannot encode NPY: {0}")]
-    Encode(String),
+    Npy(#[from] ndarray_npy::WriteNpyError),
+    /// The object record could not be encoded.
+    #[error("cannot encode the object record: {0}")]
+    Record(#[from] serde_json::Error),
 }
 
 /// The record beside every object.
@@ -128,16 +133,18 @@ impl ObjectRecord {
 }
 
 /// Why an object's values could not be loaded.
-#[derive(Clone, Debug, PartialEq, Eq)]
+#[derive(Clone, Debug, thiserror::Error)]
 pub enum LoadError {
     /// Nothing is stored under the key (or only a record, for `cache: false`).
+    #[error("nothing is cached under its key")]
     Unavailable,
     /// Something is stored but cannot be trusted.
-    Damaged(String),
+    #[error("its cached object is damaged: {0}")]
+    Damaged(Damage),
 }
 
 /// What a cheap look at the store finds for a key.
-#[derive(Clone, Debug, PartialEq)]
+#[derive(Clone, Debug)]
 pub enum Lookup {
     /// A record (and, for stored units, an NPY of the recorded size), shared with the store's
     /// memo of parsed records: a record holds the whole layout (thousands of pair labels), and
@@ -146,7 +153,7 @@ pub enum Lookup {
     /// Nothing.
     Absent,
     /// Something that cannot be trusted; the reason says what.
-    Damaged(String),
+    Damaged(Damage),
 }
 
 /// A cache folder.
@@ -205,9 +212,7 @@ impl Store {
             None => {
                 let bytes = match std::fs::read(&json) {
                     Ok(b) => b,
-                    Err(_) if npy_meta.is_some() => {
-                        return Lookup::Damaged("its record (.json) is missing".into())
-                    }
+                    Err(_) if npy_meta.is_some() => return Lookup::Damaged(Damage::RecordMissing),
                     Err(_) => return Lookup::Absent,
                 };
                 let record = match parse_record(&bytes, key) {
@@ -232,13 +237,12 @@ impl Store {
         };
         if record.stored {
             match npy_meta {
-                None => return Lookup::Damaged("its values (.npy) are missing".into()),
+                None => return Lookup::Damaged(Damage::ValuesMissing),
                 Some(m) if m.len() != record.npy_size => {
-                    return Lookup::Damaged(format!(
-                        "its values (.npy) have {} bytes, the record says {}",
-                        m.len(),
-                        record.npy_size
-                    ))
+                    return Lookup::Damaged(Damage::Size {
+                        found: m.len(),
+                        recorded: record.npy_size,
+                    })
                 }
                 Some(_) => {}
             }
@@ -256,34 +260,34 @@ impl Store {
         };
         let values = self.load_values(key, &record).map_err(LoadError::Damaged)?;
         let array = LabelledArray::checked(record.layout.clone(), values)
-            .map_err(|e| LoadError::Damaged(e.to_string()))?;
+            .map_err(|e| LoadError::Damaged(Damage::Layout(Arc::new(e))))?;
         Ok((array, record))
     }
 
     /// The values of a stored object, verified against its record.
-    pub fn load_values(&self, key: &str, record: &ObjectRecord) -> Result<Values, String> {
-        let (npy, _) = self.object_paths(key);
-        let mut file = File::open(&npy).map_err(|e| format!("cannot read its values: {e}"))?;
+    pub fn load_values(&self, key: &str, record: &ObjectRecord) -> Result<Values, Damage> {
+        let (_, mut file) = self.open_values(key)?;
         if let Some(values) = read_values(&mut file, record)? {
             return Ok(values);
         }
         // A header this reader does not know: the general way (read, hash, decode).
         let bytes = self.load_bytes(key, record)?;
-        values_from_npy(&bytes, record.layout.complex)
+        values_from_npy(&bytes, record.layout.complex).map_err(|e| Damage::Undecodable(Arc::new(e)))
     }
 
     /// The NPY bytes of an object, verified against its record.
-    pub fn load_bytes(&self, key: &str, record: &ObjectRecord) -> Result<Vec<u8>, String> {
+    pub fn load_bytes(&self, key: &str, record: &ObjectRecord) -> Result<Vec<u8>, Damage> {
         let (npy, _) = self.object_paths(key);
-        let bytes = std::fs::read(&npy).map_err(|e| format!("cannot read its values: {e}"))?;
-        let hash = blake3::hash(&bytes).to_hex().to_string();
-        if hash != record.blake3 {
-            return Err(format!(
-                "its values' blake3 is {hash}, the record says {}",
-                record.blake3
-            ));
-        }
+        let bytes = std::fs::read(&npy).map_err(Damage::unreadable)?;
+        check_hash(blake3::hash(&bytes), record)?;
         Ok(bytes)
+    }
+
+    /// The path of `key`'s values and the file opened for reading.
+    fn open_values(&self, key: &str) -> Result<(PathBuf, File), Damage> {
+        let (npy, _) = self.object_paths(key);
+        let file = File::open(&npy).map_err(Damage::unreadable)?;
+        Ok((npy, file))
     }
 
     /// Copy a stored object's NPY to `path` (atomically), hashing it on the way: `Ok(Err(why))`
@@ -293,11 +297,10 @@ impl Store {
         key: &str,
         record: &ObjectRecord,
         path: &Path,
-    ) -> std::io::Result<Result<(), String>> {
-        let (npy, _) = self.object_paths(key);
-        let mut from = match File::open(&npy) {
-            Ok(f) => f,
-            Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
+    ) -> std::io::Result<Result<(), Damage>> {
+        let (_, mut from) = match self.open_values(key) {
+            Ok(opened) => opened,
+            Err(damage) => return Ok(Err(damage)),
         };
         let copied = write_then_rename(path, false, |to| {
             Ok(
@@ -305,7 +308,15 @@ impl Store {
                     .map_err(Declined::Wrong),
             )
         });
-        copied.map(|r| r.map_err(|declined| declined.to_string()))
+        copied.map(|r| match r {
+            Ok(()) => Ok(()),
+            Err(declined) => match declined {
+                Declined::Wrong(damage) => Err(damage),
+                // `read_checked` never compares with the target; were it found to hold these
+                // checked bytes already, the copy would be done.
+                Declined::Unchanged => Ok(()),
+            },
+        })
     }
 
     /// Give a stored object's values the name `path` without copying them (an export): its
@@ -318,11 +329,10 @@ impl Store {
         key: &str,
         record: &ObjectRecord,
         path: &Path,
-    ) -> std::io::Result<Result<(), String>> {
-        let (npy, _) = self.object_paths(key);
-        let mut from = match File::open(&npy) {
-            Ok(f) => f,
-            Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
+    ) -> std::io::Result<Result<(), Damage>> {
+        let (npy, mut from) = match self.open_values(key) {
+            Ok(opened) => opened,
+            Err(damage) => return Ok(Err(damage)),
         };
         if let Err(why) = read_checked(&mut from, record, |_| Ok(()))? {
             return Ok(Err(why));
@@ -421,7 +431,7 @@ struct LastRecord {
 
 /// Write an object's record (atomically).
 pub(crate) fn write_record(json_path: &Path, record: &ObjectRecord) -> Result<(), StoreError> {
-    let json = serde_json::to_vec_pretty(record).map_err(|e| StoreError::Encode(e.to_string()))?;
+    let json = serde_json::to_vec_pretty(record)?;
     // Not fsynced: a record lost or left incomplete by a power loss makes its object absent
     // or damaged (recomputed), never wrong; see DEVELOPERS.md "Durability".
     bookkeeping_write(json_path, &json).map_err(|source| StoreError::Write {
@@ -435,7 +445,7 @@ enum Unreadable {
     /// Another record format or format version.
     OtherVersion,
     /// Not a record, or not this key's.
-    Damaged(String),
+    Damaged(Damage),
 }
 
 fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, Unreadable> {
@@ -445,26 +455,24 @@ fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, Unreadable> {
     if let Ok(record) = serde_json::from_slice::<ObjectRecord>(bytes) {
         if record.format == FORMAT && record.format_version == FORMAT_VERSION {
             if record.key != key {
-                return Err(damaged(format!("its record belongs to key {}", record.key)));
+                return Err(damaged(Damage::OtherKey { key: record.key }));
             }
             return Ok(record);
         }
     }
-    let value: serde_json::Value = serde_json::from_slice(bytes)
-        .map_err(|e| damaged(format!("its record is not valid JSON: {e}")))?;
+    let value: serde_json::Value =
+        serde_json::from_slice(bytes).map_err(|e| damaged(Damage::RecordNotJson(Arc::new(e))))?;
     let version = value.get("format_version").and_then(|v| v.as_u64());
     if value.get("format").and_then(|v| v.as_str()) != Some(FORMAT) {
-        return Err(damaged(
-            "its record is not a phasewise object record".into(),
-        ));
+        return Err(damaged(Damage::NotARecord));
     }
     if version != Some(u64::from(FORMAT_VERSION)) {
         return Err(Unreadable::OtherVersion);
     }
     let record: ObjectRecord = serde_json::from_value(value)
-        .map_err(|e| damaged(format!("its record is incomplete: {e}")))?;
+        .map_err(|e| damaged(Damage::RecordIncomplete(Arc::new(e))))?;
     if record.key != key {
-        return Err(damaged(format!("its record belongs to key {}", record.key)));
+        return Err(damaged(Damage::OtherKey { key: record.key }));
     }
     Ok(record)
 }
@@ -472,11 +480,12 @@ fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, Unreadable> {
 fn write_object_file(path: &Path, values: &Values) -> Result<(String, u64), StoreError> {
     let abort = std::env::var_os(ABORT_BEFORE_RENAME).is_some();
     let written = write_then_rename_unsynced(path, abort, |file| {
-        Ok(stream_npy(values, file).map_err(|e| Declined::Wrong(e.to_string())))
+        Ok(stream_npy(values, file).map_err(Declined::Wrong))
     });
     match written {
         Ok(Ok(digest)) => Ok(digest),
-        Ok(Err(declined)) => Err(StoreError::Encode(declined.to_string())),
+        Ok(Err(Declined::Wrong(e))) => Err(e),
+        Ok(Err(Declined::Unchanged)) => unreachable!("an object's writer does not compare"),
         Err(source) => Err(StoreError::Write {
             path: path.to_path_buf(),
             source,
@@ -501,14 +510,14 @@ fn write_object_file(path: &Path, values: &Values) -> Result<(String, u64), Stor
 pub mod record_layout;
 
 /// Read a stored object's values to the end, handing each chunk to `sink` and hashing it on the
-/// way: `Ok(Err(why))` when they do not match the record (content hash or size) or cannot be
-/// read; an I/O error only from `sink`. Shared by [`Store::copy_object`] and
+/// way: `Ok(Err(damage))` when they do not match the record (content hash or size) or cannot
+/// be read; an I/O error only from `sink`. Shared by [`Store::copy_object`] and
 /// [`Store::link_object`].
 fn read_checked(
     from: &mut File,
     record: &ObjectRecord,
     mut sink: impl FnMut(&[u8]) -> std::io::Result<()>,
-) -> std::io::Result<Result<(), String>> {
+) -> std::io::Result<Result<(), Damage>> {
     let mut hasher = blake3::Hasher::new();
     let mut buffer = vec![0u8; READ_CHUNK];
     let mut total = 0u64;
@@ -517,20 +526,19 @@ fn read_checked(
             Ok(0) => break,
             Ok(n) => n,
             Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
-            Err(e) => return Ok(Err(format!("cannot read its values: {e}"))),
+            Err(e) => return Ok(Err(Damage::unreadable(e))),
         };
         hash_update(&mut hasher, &buffer[..n]);
         sink(&buffer[..n])?;
         total += n as u64;
     }
-    let hash = hasher.finalize().to_hex().to_string();
-    if hash != record.blake3 || total != record.npy_size {
-        return Ok(Err(format!(
-            "its values' blake3 is {hash}, the record says {}",
-            record.blake3
-        )));
+    if total != record.npy_size {
+        return Ok(Err(Damage::Size {
+            found: total,
+            recorded: record.npy_size,
+        }));
     }
-    Ok(Ok(()))
+    Ok(check_hash(hasher.finalize(), record))
 }
 
 #[cfg(test)]
@@ -580,9 +588,10 @@ mod tests {
         let last = bytes.len() - 1;
         bytes[last] ^= 1;
         std::fs::write(&npy_path, &bytes).unwrap();
-        assert!(
-            matches!(store.load(&record.key), Err(LoadError::Damaged(why)) if why.contains("blake3"))
-        );
+        assert!(matches!(
+            store.load(&record.key),
+            Err(LoadError::Damaged(Damage::Hash { .. }))
+        ));
         std::fs::remove_file(&json_path).unwrap();
         assert!(matches!(store.lookup(&record.key), Lookup::Damaged(_)));
     }
@@ -835,7 +844,9 @@ mod tests {
         for bad in [cut, long, "not base64!".to_string()] {
             std::fs::write(&json_path, text.replace(&encoded, &bad)).unwrap();
             match Store::new(dir.path()).lookup(&record.key) {
-                Lookup::Damaged(why) => assert!(why.contains("packed coordinate"), "{why}"),
+                Lookup::Damaged(why) => {
+                    assert!(why.to_string().contains("packed coordinate"), "{why}")
+                }
                 other => panic!("a garbled record was read as {other:?}"),
             }
         }

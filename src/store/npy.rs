@@ -10,7 +10,7 @@ use ndarray_npy::{ReadNpyExt, WriteNpyExt};
 use num_complex::Complex32;
 use phasewise_stages::Values;
 
-use super::{ObjectRecord, StoreError};
+use super::{Damage, ObjectRecord, StoreError};
 
 /// The NPY bytes of an array (the reference encoding; the store streams the same bytes through
 /// [`write_npy_to`] without building them in memory).
@@ -27,7 +27,7 @@ pub fn write_npy_to<W: Write>(values: &Values, writer: W) -> Result<(), StoreErr
         Values::Real(a) => a.write_npy(writer),
         Values::Complex(a) => a.write_npy(writer),
     };
-    written.map_err(|e| StoreError::Encode(e.to_string()))
+    Ok(written?)
 }
 
 /// A writer that hashes (blake3) and counts every byte it passes on.
@@ -88,7 +88,7 @@ pub(crate) fn stream_npy<W: Write>(values: &Values, sink: W) -> Result<(String, 
     write_npy_to(values, &mut out)?;
     let tee = out
         .into_inner()
-        .map_err(|e| StoreError::Encode(e.error().to_string()))?;
+        .map_err(|e| StoreError::Npy(e.into_error().into()))?;
     let (hash, len, _) = tee.finish();
     Ok((hash, len))
 }
@@ -99,15 +99,11 @@ pub fn npy_digest(values: &Values) -> Result<(String, u64), StoreError> {
 }
 
 /// Decode NPY bytes as real or complex values.
-pub fn values_from_npy(bytes: &[u8], complex: bool) -> Result<Values, String> {
+pub fn values_from_npy(bytes: &[u8], complex: bool) -> Result<Values, ndarray_npy::ReadNpyError> {
     if complex {
-        ArrayD::<Complex32>::read_npy(bytes)
-            .map(Values::Complex)
-            .map_err(|e| e.to_string())
+        ArrayD::<Complex32>::read_npy(bytes).map(Values::Complex)
     } else {
-        ArrayD::<f32>::read_npy(bytes)
-            .map(Values::Real)
-            .map_err(|e| e.to_string())
+        ArrayD::<f32>::read_npy(bytes).map(Values::Real)
     }
 }
 
@@ -118,7 +114,7 @@ pub fn values_from_npy(bytes: &[u8], complex: bool) -> Result<Values, String> {
 pub(crate) fn read_values(
     file: &mut File,
     record: &ObjectRecord,
-) -> Result<Option<Values>, String> {
+) -> Result<Option<Values>, Damage> {
     let Some(Geometry {
         count,
         complex,
@@ -129,8 +125,7 @@ pub(crate) fn read_values(
     };
     let mut hasher = blake3::Hasher::new();
     let mut head = vec![0u8; header_len];
-    let io = |e: std::io::Error| format!("cannot read its values: {e}");
-    file.read_exact(&mut head).map_err(io)?;
+    file.read_exact(&mut head).map_err(short_or_unreadable)?;
     hasher.update(&head);
     let values = if complex {
         Data::Complex(read_fresh(file, count, &mut hasher)?)
@@ -148,7 +143,7 @@ pub(crate) fn read_values(
         Data::Real(v) => ArrayD::from_shape_vec(shape, v).map(Values::Real),
         Data::Complex(v) => ArrayD::from_shape_vec(shape, v).map(Values::Complex),
     };
-    built.map(Some).map_err(|e| e.to_string())
+    built.map(Some).map_err(Damage::Shape)
 }
 
 /// Where a stored object's values lie in its NPY file.
@@ -163,12 +158,12 @@ pub(crate) struct Geometry {
 
 /// The [`Geometry`] of `record`'s NPY, from its shape, dtype and size; `None` for a form the
 /// fast readers do not take (another dtype, a big-endian machine, a header over 1 MiB).
-pub(crate) fn geometry(record: &ObjectRecord) -> Result<Option<Geometry>, String> {
+pub(crate) fn geometry(record: &ObjectRecord) -> Result<Option<Geometry>, Damage> {
     let count = record
         .shape
         .iter()
         .try_fold(1usize, |n, &d| n.checked_mul(d))
-        .ok_or("its recorded shape overflows")?;
+        .ok_or(Damage::ShapeOverflow)?;
     let (width, complex) = match record.dtype.as_str() {
         "<f4" => (4usize, false),
         "<c8" => (8usize, true),
@@ -177,14 +172,11 @@ pub(crate) fn geometry(record: &ObjectRecord) -> Result<Option<Geometry>, String
     if complex != record.layout.complex || !cfg!(target_endian = "little") {
         return Ok(None);
     }
-    let data_len = count
-        .checked_mul(width)
-        .ok_or("its recorded shape overflows")? as u64;
+    let data_len = count.checked_mul(width).ok_or(Damage::ShapeOverflow)? as u64;
     let Some(header_len) = record.npy_size.checked_sub(data_len) else {
-        return Err(format!(
-            "its values (.npy) have {} bytes, too few for the recorded shape",
-            record.npy_size
-        ));
+        return Err(Damage::TooSmallForShape {
+            size: record.npy_size,
+        });
     };
     if header_len > 1 << 20 {
         return Ok(None);
@@ -215,20 +207,33 @@ pub(crate) fn check_end(
     file: &mut File,
     hasher: blake3::Hasher,
     record: &ObjectRecord,
-) -> Result<(), String> {
+) -> Result<(), Damage> {
     let mut rest = [0u8; 1];
-    let io = |e: std::io::Error| format!("cannot read its values: {e}");
-    if file.read(&mut rest).map_err(io)? != 0 {
-        return Err("its values (.npy) are longer than the record says".into());
+    if file.read(&mut rest).map_err(Damage::unreadable)? != 0 {
+        return Err(Damage::Longer);
     }
-    let hash = hasher.finalize().to_hex().to_string();
-    if hash != record.blake3 {
-        return Err(format!(
-            "its values' blake3 is {hash}, the record says {}",
-            record.blake3
-        ));
+    check_hash(hasher.finalize(), record)
+}
+
+/// The content hash of everything read against the record's.
+pub(crate) fn check_hash(hash: blake3::Hash, record: &ObjectRecord) -> Result<(), Damage> {
+    let found = hash.to_hex().to_string();
+    if found != record.blake3 {
+        return Err(Damage::Hash {
+            found,
+            recorded: record.blake3.clone(),
+        });
     }
     Ok(())
+}
+
+/// A read that ended early is [`Damage::Shorter`]; any other read error
+/// [`Damage::Unreadable`].
+pub(crate) fn short_or_unreadable(e: std::io::Error) -> Damage {
+    match e.kind() {
+        std::io::ErrorKind::UnexpectedEof => Damage::Shorter,
+        _ => Damage::unreadable(e),
+    }
 }
 
 pub(crate) enum Data {
@@ -245,11 +250,11 @@ pub(crate) fn read_fresh<T: bytemuck::Pod>(
     file: &mut File,
     count: usize,
     hasher: &mut blake3::Hasher,
-) -> Result<Vec<T>, String> {
+) -> Result<Vec<T>, Damage> {
     use std::os::fd::AsRawFd;
     let len = count
         .checked_mul(std::mem::size_of::<T>())
-        .ok_or("its recorded shape overflows")?;
+        .ok_or(Damage::ShapeOverflow)?;
     let mut data: Vec<T> = Vec::with_capacity(count);
     let base = data.as_mut_ptr().cast::<u8>();
     let mut filled = 0;
@@ -263,10 +268,10 @@ pub(crate) fn read_fresh<T: bytemuck::Pod>(
             if e.kind() == std::io::ErrorKind::Interrupted {
                 continue;
             }
-            return Err(format!("cannot read its values: {e}"));
+            return Err(Damage::unreadable(e));
         }
         if n == 0 {
-            return Err("its values (.npy) are shorter than the record says".into());
+            return Err(Damage::Shorter);
         }
         // SAFETY: read(2) has just written these `n` bytes.
         let piece = unsafe { std::slice::from_raw_parts(base.add(filled), n as usize) };
@@ -283,11 +288,10 @@ pub(crate) fn read_fresh<T: bytemuck::Pod>(
     file: &mut File,
     count: usize,
     hasher: &mut blake3::Hasher,
-) -> Result<Vec<T>, String> {
+) -> Result<Vec<T>, Damage> {
     let mut data = vec![T::zeroed(); count];
     for piece in bytemuck::cast_slice_mut::<T, u8>(&mut data).chunks_mut(READ_CHUNK) {
-        file.read_exact(piece)
-            .map_err(|e| format!("cannot read its values: {e}"))?;
+        file.read_exact(piece).map_err(short_or_unreadable)?;
         hash_update(hasher, piece);
     }
     Ok(data)

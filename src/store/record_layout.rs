@@ -7,6 +7,27 @@ pub const PLAIN_NUMBERS: usize = 64;
 
 const BASE64: base64::engine::GeneralPurpose = base64::engine::general_purpose::STANDARD;
 
+/// Why a packed coordinate of a record does not unpack (the record is then damaged and its
+/// object recomputed).
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+pub enum PackedCoordError {
+    /// The `values` string is not base64.
+    #[error("a packed coordinate is not base64: {0}")]
+    NotBase64(#[from] base64::DecodeError),
+    /// `numbers_f64le` bytes that are not a whole number of 8-byte numbers.
+    #[error("a packed coordinate has {bytes} bytes, not a whole number of f64")]
+    NotWholeF64 {
+        /// The number of bytes decoded.
+        bytes: usize,
+    },
+    /// A `numbers_delta2` varint of more than 64 bits.
+    #[error("a packed coordinate has a varint longer than 64 bits")]
+    VarintTooLong,
+    /// `numbers_delta2` bytes that end inside a varint.
+    #[error("a packed coordinate ends inside a varint")]
+    EndsInsideVarint,
+}
+
 #[derive(Serialize)]
 #[serde(tag = "kind", content = "values", rename_all = "snake_case")]
 enum CoordOut<'a> {
@@ -65,7 +86,7 @@ pub fn deserialize<'de, D: Deserializer<'de>>(deserializer: D) -> Result<Layout,
         .coords
         .into_iter()
         .map(unpack)
-        .collect::<Result<Vec<Coord>, String>>()
+        .collect::<Result<Vec<Coord>, PackedCoordError>>()
         .map_err(serde::de::Error::custom)?;
     Ok(Layout {
         dims: raw.dims,
@@ -95,12 +116,8 @@ fn pack(coord: &Coord) -> CoordOut<'_> {
     }
 }
 
-fn unpack(coord: CoordIn) -> Result<Coord, String> {
-    let decode = |text: &str| {
-        BASE64
-            .decode(text)
-            .map_err(|e| format!("a packed coordinate is not base64: {e}"))
-    };
+fn unpack(coord: CoordIn) -> Result<Coord, PackedCoordError> {
+    let decode = |text: &str| BASE64.decode(text).map_err(PackedCoordError::NotBase64);
     Ok(match coord {
         CoordIn::Labels(v) => Coord::Labels(v),
         CoordIn::Numbers(v) => Coord::Numbers(v),
@@ -109,10 +126,7 @@ fn unpack(coord: CoordIn) -> Result<Coord, String> {
         CoordIn::NumbersF64le(text) => {
             let bytes = decode(&text)?;
             if bytes.len() % 8 != 0 {
-                return Err(format!(
-                    "a packed coordinate has {} bytes, not a whole number of f64",
-                    bytes.len()
-                ));
+                return Err(PackedCoordError::NotWholeF64 { bytes: bytes.len() });
             }
             let numbers = bytes
                 .chunks_exact(8)
@@ -142,14 +156,14 @@ pub fn delta2_bytes(numbers: &[f64]) -> Vec<u8> {
 }
 
 /// The numbers of `numbers_delta2` bytes; an error for a truncated or over-long varint.
-pub fn from_delta2_bytes(bytes: &[u8]) -> Result<Vec<f64>, String> {
+pub fn from_delta2_bytes(bytes: &[u8]) -> Result<Vec<f64>, PackedCoordError> {
     let mut out = Vec::with_capacity(bytes.len());
     let (mut b1, mut b2) = (0u64, 0u64);
     let mut z = 0u64;
     let mut shift = 0u32;
     for &byte in bytes {
         if shift > 63 || (shift == 63 && byte > 1) {
-            return Err("a packed coordinate has a varint longer than 64 bits".into());
+            return Err(PackedCoordError::VarintTooLong);
         }
         z |= u64::from(byte & 0x7f) << shift;
         if byte & 0x80 != 0 {
@@ -165,7 +179,7 @@ pub fn from_delta2_bytes(bytes: &[u8]) -> Result<Vec<f64>, String> {
         (z, shift) = (0, 0);
     }
     if shift != 0 {
-        return Err("a packed coordinate ends inside a varint".into());
+        return Err(PackedCoordError::EndsInsideVarint);
     }
     Ok(out)
 }

@@ -841,6 +841,57 @@ fn the_manifest_has_the_core_shape_of_design_section_6() {
     }
 }
 
+// --- data.events ------------------------------------------------------------------------------
+
+/// `data.events` decides which events the recordings carry (the sidecar's or the file's own), so
+/// it is part of the source's key: switching it makes the units reading the recordings stale
+/// with a reason naming `data.events` and its old and new values, their consumers stale as a
+/// cascade, and everything computed again; switching back finds the first results cached. The
+/// default (`sidecar`) keeps the keys a pipeline had before the setting joined the key.
+#[test]
+fn switching_data_events_makes_the_recordings_units_stale_naming_it() {
+    let p = Project::new(&["01", "02"]);
+    let file = p.pipeline(CHAIN);
+    let first = p.run();
+    let key_a = |m: &phasewise::manifest::Manifest| unit(m, "a", Some("01")).key.clone();
+    replace_in(&file, "  events: sidecar\n", "  events: annotations\n");
+    let plan = p.plan(&Options::default());
+    let lines = plan_lines(&plan);
+    for s in ["01", "02"] {
+        assert_eq!(
+            lines[&label("a", Some(s))],
+            "data.events changed: \"sidecar\" → \"annotations\"",
+            "{lines:?}"
+        );
+        assert_eq!(lines[&label("b", Some(s))], "upstream a changed");
+    }
+    assert_eq!(lines[&label("g", None)], "upstream c changed");
+    let a = plan.units.iter().find(|u| u.stage == "a").unwrap();
+    let phasewise::plan::Status::Stale(reason) = &a.status else {
+        panic!("a is fresh");
+    };
+    assert_eq!(
+        reason.to_json(),
+        serde_json::json!({
+            "kind": "reading", "setting": "data.events", "old": "sidecar", "new": "annotations"
+        })
+    );
+    let switched = p.run();
+    assert_eq!(computed(&switched).len(), 7, "every unit runs again");
+    assert_ne!(key_a(&switched), key_a(&first));
+    replace_in(&file, "  events: annotations\n", "  events: sidecar\n");
+    let back = p.run();
+    assert_eq!(
+        computed(&back),
+        Vec::<String>::new(),
+        "the first results are cached"
+    );
+    assert_eq!(key_a(&back), key_a(&first));
+    // Without the setting, the default: the same keys.
+    replace_in(&file, "  events: sidecar\n", "");
+    assert_eq!(key_a(&p.run()), key_a(&first));
+}
+
 // --- data.channels and data.rate ---------------------------------------------------------------
 
 /// `data.channels` and `data.rate` shape what is read (the test recordings hold Fz and Cz at

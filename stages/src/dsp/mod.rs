@@ -9,3 +9,4 @@ pub mod design;
 pub mod recording;
 pub mod resample;
 pub mod sos;
+pub mod spline_map;

@@ -13,12 +13,11 @@ use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use crate::array::{LabelledArray, Layout};
+use crate::dsp::spline_map::{check_spline, default_lambda, default_m, default_terms, SplineMap};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
+use crate::spatial::channel_input;
 use crate::spatial::splines::interpolation_matrix;
-use crate::spatial::{apply_to_channels, channel_input, spline_positions};
-
-use super::laplacian::{check_spline, default_lambda, default_m, default_terms};
 
 /// The `interpolate` op.
 pub struct Interpolate;
@@ -41,14 +40,8 @@ pub struct InterpolateParams {
     pub terms: usize,
 }
 
-struct Plan {
-    layout: Layout,
-    matrix: Vec<f64>,
-    good: Vec<usize>,
-    bad: Vec<usize>,
-}
-
-fn plan(p: &InterpolateParams, input: &Layout) -> Result<Plan, StageError> {
+/// The bad EEG channels replaced by the spline through the good ones.
+fn plan(p: &InterpolateParams, input: &Layout) -> Result<SplineMap, StageError> {
     let spline = check_spline(p.m, p.lambda, p.terms)?;
     let (names, is_data) = channel_input(input, "interpolate")?;
     let (listed, field): (Vec<String>, &str) = if p.channels.is_empty() {
@@ -93,34 +86,20 @@ fn plan(p: &InterpolateParams, input: &Layout) -> Result<Plan, StageError> {
         .extra
         .insert("interpolated".into(), json!(replaced));
     if bad.is_empty() {
-        return Ok(Plan {
-            layout,
-            matrix: Vec::new(),
-            good: Vec::new(),
-            bad,
-        });
+        return Ok(SplineMap::pass_through(layout));
     }
     let good: Vec<usize> = (0..names.len())
         .filter(|i| is_data[*i] && !bad.contains(i))
         .collect();
-    let from = spline_positions(input, &names, &good, "interpolate")?;
     // Bad channels need positions too; the same checks name them.
-    let mut all = good.clone();
-    all.extend(&bad);
-    let with_bad = spline_positions(input, &names, &all, "interpolate")?;
-    let to = &with_bad[good.len()..];
-    let matrix = interpolation_matrix(&spline, &from, to).ok_or_else(|| {
-        StageError::param(
-            "lambda",
-            "the spline system is singular for these positions; use a lambda above 0",
-        )
-    })?;
-    Ok(Plan {
+    SplineMap::fit(
+        input,
+        &names,
+        (good, bad),
         layout,
-        matrix,
-        good,
-        bad,
-    })
+        "interpolate",
+        |from, to| interpolation_matrix(&spline, from, to),
+    )
 }
 
 impl Op for Interpolate {
@@ -147,12 +126,11 @@ impl Op for Interpolate {
             "interpolated",
             plan.layout.meta.extra["interpolated"].clone(),
         );
-        if plan.bad.is_empty() {
+        if plan.to().is_empty() {
             notes.warn("interpolate: no channel is marked bad (by `channels` or the channels sidecar); the data pass through unchanged");
             return LabelledArray::real(plan.layout, input.real_values()?.clone());
         }
-        let values = apply_to_channels(input.real_values()?, &plan.matrix, &plan.good, &plan.bad);
-        LabelledArray::real(plan.layout, values)
+        plan.apply(input.real_values()?)
     }
 }
 

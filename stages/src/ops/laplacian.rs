@@ -16,10 +16,11 @@
 use serde::{Deserialize, Serialize};
 
 use crate::array::{LabelledArray, Layout};
+use crate::dsp::spline_map::{check_spline, default_lambda, default_m, default_terms, SplineMap};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
-use crate::spatial::splines::{laplacian_matrix, Spline};
-use crate::spatial::{apply_to_channels, channel_input, spline_positions};
+use crate::spatial::channel_input;
+use crate::spatial::splines::laplacian_matrix;
 
 /// The `laplacian` op.
 pub struct Laplacian;
@@ -42,69 +43,23 @@ pub struct LaplacianParams {
     pub radius: f64,
 }
 
-pub(crate) fn default_m() -> u32 {
-    4
-}
-pub(crate) fn default_lambda() -> f64 {
-    1e-5
-}
-pub(crate) fn default_terms() -> usize {
-    50
-}
 fn default_radius() -> f64 {
     0.095
 }
 
-/// Checks of the spline params (shared with `interpolate`). m ≥ 2: h_m's series has terms
-/// (2n+1)/(n(n+1))^(m−1), which do not decay for m = 1.
-pub(crate) fn check_spline(m: u32, lambda: f64, terms: usize) -> Result<Spline, StageError> {
-    if !(2..=10).contains(&m) {
-        return Err(StageError::param(
-            "m",
-            format!("the spline order must be between 2 and 10, found {m}"),
-        ));
-    }
-    if !(lambda.is_finite() && lambda >= 0.0) {
-        return Err(StageError::param(
-            "lambda",
-            format!("expected a number ≥ 0, found {lambda}"),
-        ));
-    }
-    if !(1..=1000).contains(&terms) {
-        return Err(StageError::param(
-            "terms",
-            format!("expected between 1 and 1000 Legendre terms, found {terms}"),
-        ));
-    }
-    Ok(Spline { m, lambda, terms })
-}
-
-struct Plan {
-    layout: Layout,
-    matrix: Vec<f64>,
-    rows: Vec<usize>,
-}
-
-fn plan(p: &LaplacianParams, input: &Layout) -> Result<Plan, StageError> {
+/// Every EEG channel replaced by the spline's Laplacian at its position.
+fn plan(p: &LaplacianParams, input: &Layout) -> Result<SplineMap, StageError> {
     let spline = Laplacian::check(p).and_then(|_| check_spline(p.m, p.lambda, p.terms))?;
     let (names, is_data) = channel_input(input, "laplacian")?;
     let rows: Vec<usize> = (0..names.len()).filter(|&i| is_data[i]).collect();
-    let at = spline_positions(input, &names, &rows, "laplacian")?;
-    let matrix = laplacian_matrix(&spline, &at, p.radius).ok_or_else(|| {
-        StageError::param(
-            "lambda",
-            "the spline system is singular for these positions; use a lambda above 0",
-        )
-    })?;
     let mut layout = input.clone();
     layout.units = match input.units.as_str() {
         "V" => "V/m²".into(),
         other => format!("{other}/m²"),
     };
-    Ok(Plan {
-        layout,
-        matrix,
-        rows,
+    let rows = (rows.clone(), rows);
+    SplineMap::fit(input, &names, rows, layout, "laplacian", |at, _| {
+        laplacian_matrix(&spline, at, p.radius)
     })
 }
 
@@ -134,9 +89,7 @@ impl Op for Laplacian {
         _notes: &mut Notes,
     ) -> Result<LabelledArray, StageError> {
         let input = single(inputs)?.array;
-        let plan = plan(p, &input.layout)?;
-        let values = apply_to_channels(input.real_values()?, &plan.matrix, &plan.rows, &plan.rows);
-        LabelledArray::real(plan.layout, values)
+        plan(p, &input.layout)?.apply(input.real_values()?)
     }
 }
 
