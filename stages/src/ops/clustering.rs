@@ -39,7 +39,7 @@ use crate::op::{single, Input, InputLayout, Notes, Op};
 pub use super::measures::Measure;
 use super::measures::{polar, Sums};
 use super::params_de::map_only;
-use super::trial_sums::{self, Needs, PairSums, Planes, Wide};
+use super::trial_sums::{self, Needs, PairSums, Planes};
 
 /// The `clustering` op.
 pub struct Clustering;
@@ -719,26 +719,14 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
             .pairs
             .par_chunks(PAIR_CHUNK)
             .map(|chunk| {
-                let tile = trial_sums::TILE_BLOCKS.min(nblocks);
-                let mut sums = PairSums::new(needs, tile);
+                let mut sums = PairSums::new(needs, trial_sums::TILE_BLOCKS.min(nblocks));
                 let mut vals = vec![0.0f32; chunk.len() * nm * nt];
-                // The chunk's channels, each tile widened once for all its pairs.
-                let mine = used_channels(chunk);
-                let mut at = vec![0; slot.len()];
-                for (i, &c) in mine.iter().enumerate() {
-                    at[c] = i;
-                }
-                let mut wide = vec![Wide::new(needs, n, tile); mine.len()];
                 for first in (0..nblocks).step_by(trial_sums::TILE_BLOCKS) {
                     let blocks = first..(first + trial_sums::TILE_BLOCKS).min(nblocks);
                     let times = first * trial_sums::LANES..(blocks.end * trial_sums::LANES).min(nt);
-                    for (w, &c) in wide.iter_mut().zip(&mine) {
-                        w.load(&slab[slot[c]], blocks.clone());
-                    }
                     for (i, &(a, b)) in chunk.iter().enumerate() {
                         let (pa, pb) = (&slab[slot[a]], &slab[slot[b]]);
-                        let (wa, wb) = (&wide[at[a]], &wide[at[b]]);
-                        sums.compute_wide(needs, wa, wb, n, blocks.clone());
+                        sums.compute_blocks(needs, pa, pb, n, blocks.clone());
                         let pair_vals = &mut vals[i * nm * nt..(i + 1) * nm * nt];
                         for (&measure, v) in
                             plan.measures.iter().zip(pair_vals.chunks_exact_mut(nt))

@@ -172,108 +172,6 @@ fn scatter(values: &[Complex32], k: usize, n: usize, re: &mut [f32], im: &mut [f
     }
 }
 
-/// A plane's element: f32 in a slab, f64 in a [`Wide`] tile (widening an f32 is exact, so the
-/// sums are the same bits either way).
-pub trait Lane: Copy + Send + Sync {
-    /// The value as f64.
-    fn wide(self) -> f64;
-}
-
-impl Lane for f32 {
-    #[inline(always)]
-    fn wide(self) -> f64 {
-        f64::from(self)
-    }
-}
-
-impl Lane for f64 {
-    #[inline(always)]
-    fn wide(self) -> f64 {
-        self
-    }
-}
-
-/// One channel's four planes (some empty) over the blocks from `first` on.
-#[derive(Clone, Copy)]
-struct View<'a, T> {
-    unit_re: &'a [T],
-    unit_im: &'a [T],
-    raw_re: &'a [T],
-    raw_im: &'a [T],
-    /// The block that the planes' first element belongs to.
-    first: usize,
-}
-
-impl Planes {
-    fn view(&self) -> View<'_, f32> {
-        View {
-            unit_re: &self.unit_re,
-            unit_im: &self.unit_im,
-            raw_re: &self.raw_re,
-            raw_im: &self.raw_im,
-            first: 0,
-        }
-    }
-}
-
-/// One channel's planes over a tile of blocks, widened to f64 once ([`Wide::load`]) and then
-/// read by every pair of a task that has the channel: the pair loop then does no conversions
-/// (in the slab's f32 planes each pair widened both of its channels again). The values, and so
-/// every sum, are the same.
-#[derive(Clone, Debug, Default)]
-pub struct Wide {
-    unit_re: Vec<f64>,
-    unit_im: Vec<f64>,
-    raw_re: Vec<f64>,
-    raw_im: Vec<f64>,
-    first: usize,
-}
-
-impl Wide {
-    /// Room for `blocks` blocks of `trials` trials of the planes `needs` asks for.
-    pub fn new(needs: Needs, trials: usize, blocks: usize) -> Wide {
-        let len = blocks * trials * LANES;
-        let take = |b: bool| if b { vec![0.0f64; len] } else { Vec::new() };
-        Wide {
-            unit_re: take(needs.phasor),
-            unit_im: take(needs.phasor),
-            raw_re: take(needs.raw()),
-            raw_im: take(needs.raw()),
-            first: 0,
-        }
-    }
-
-    /// The blocks `range` of `planes` (at most the room of [`Wide::new`]), widened.
-    pub fn load(&mut self, planes: &Planes, range: std::ops::Range<usize>) {
-        let span = planes.trials * LANES;
-        let from = range.start * span..range.end * span;
-        let pairs = [
-            (&mut self.unit_re, &planes.unit_re),
-            (&mut self.unit_im, &planes.unit_im),
-            (&mut self.raw_re, &planes.raw_re),
-            (&mut self.raw_im, &planes.raw_im),
-        ];
-        for (dst, src) in pairs {
-            if let Some(src) = src.get(from.clone()) {
-                for (d, &s) in dst.iter_mut().zip(src) {
-                    *d = f64::from(s);
-                }
-            }
-        }
-        self.first = range.start;
-    }
-
-    fn view(&self) -> View<'_, f64> {
-        View {
-            unit_re: &self.unit_re,
-            unit_im: &self.unit_im,
-            raw_re: &self.raw_re,
-            raw_im: &self.raw_im,
-            first: self.first,
-        }
-    }
-}
-
 /// Time blocks per tile: the pairs of a task are summed one tile of blocks at a time, so that
 /// the tile's planes of every channel (24 channels × 8 blocks × 50 trials × 4 lanes × 4 planes ×
 /// 4 bytes = 614 KB) stay in a core's L2 cache while every pair reads them, instead of each
@@ -340,31 +238,6 @@ impl PairSums {
         trials: usize,
         range: std::ops::Range<usize>,
     ) {
-        self.compute_views(needs, a.view(), b.view(), trials, range);
-    }
-
-    /// [`PairSums::compute_blocks`] on channels' tiles widened beforehand ([`Wide::load`] of
-    /// the same `range`): the same sums, bit for bit.
-    pub fn compute_wide(
-        &mut self,
-        needs: Needs,
-        a: &Wide,
-        b: &Wide,
-        trials: usize,
-        range: std::ops::Range<usize>,
-    ) {
-        debug_assert!(a.first == range.start && b.first == range.start);
-        self.compute_views(needs, a.view(), b.view(), trials, range);
-    }
-
-    fn compute_views<T: Lane>(
-        &mut self,
-        needs: Needs,
-        a: View<'_, T>,
-        b: View<'_, T>,
-        trials: usize,
-        range: std::ops::Range<usize>,
-    ) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU supports AVX2, checked on the line above.
@@ -376,11 +249,11 @@ impl PairSums {
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn compute_avx2<T: Lane>(
+    unsafe fn compute_avx2(
         &mut self,
         needs: Needs,
-        a: View<'_, T>,
-        b: View<'_, T>,
+        a: &Planes,
+        b: &Planes,
         trials: usize,
         range: std::ops::Range<usize>,
     ) {
@@ -388,19 +261,15 @@ impl PairSums {
     }
 
     #[inline(always)]
-    fn compute_any<T: Lane>(
+    fn compute_any(
         &mut self,
         needs: Needs,
-        a: View<'_, T>,
-        b: View<'_, T>,
+        a: &Planes,
+        b: &Planes,
         trials: usize,
         range: std::ops::Range<usize>,
     ) {
         assert!(range.len() <= self.blocks, "more blocks than room");
-        assert!(
-            a.first <= range.start && b.first == a.first,
-            "planes not at the range"
-        );
         self.first = range.start;
         match (
             needs.phasor,
@@ -410,31 +279,29 @@ impl PairSums {
             needs.sign,
         ) {
             (true, false, ..) => {
-                self.fused::<T, true, false, false, false, false>(a, b, trials, range)
+                self.fused::<true, false, false, false, false>(a, b, trials, range)
             }
             (true, true, false, false, false) => {
-                self.fused::<T, true, true, false, false, false>(a, b, trials, range)
+                self.fused::<true, true, false, false, false>(a, b, trials, range)
             }
             (true, true, true, false, false) => {
-                self.fused::<T, true, true, true, false, false>(a, b, trials, range)
+                self.fused::<true, true, true, false, false>(a, b, trials, range)
             }
             (false, true, true, false, false) => {
-                self.fused::<T, false, true, true, false, false>(a, b, trials, range)
+                self.fused::<false, true, true, false, false>(a, b, trials, range)
             }
             (false, true, true, true, false) => {
-                self.fused::<T, false, true, true, true, false>(a, b, trials, range)
+                self.fused::<false, true, true, true, false>(a, b, trials, range)
             }
             (false, true, false, false, true) => {
-                self.fused::<T, false, true, false, false, true>(a, b, trials, range)
+                self.fused::<false, true, false, false, true>(a, b, trials, range)
             }
             (false, true, false, false, false) => {
-                self.fused::<T, false, true, false, false, false>(a, b, trials, range)
+                self.fused::<false, true, false, false, false>(a, b, trials, range)
             }
             (false, false, ..) => {}
-            (true, true, ..) => self.fused::<T, true, true, true, true, true>(a, b, trials, range),
-            (false, true, ..) => {
-                self.fused::<T, false, true, true, true, true>(a, b, trials, range)
-            }
+            (true, true, ..) => self.fused::<true, true, true, true, true>(a, b, trials, range),
+            (false, true, ..) => self.fused::<false, true, true, true, true>(a, b, trials, range),
         }
     }
 
@@ -443,28 +310,19 @@ impl PairSums {
     /// Σ (Im S)², Σ sign Im S from the raw planes. Each lane's sums run over the trials in
     /// trial order, in f64.
     #[inline(always)]
-    fn fused<
-        T: Lane,
-        const PH: bool,
-        const IM: bool,
-        const ABS: bool,
-        const SQ: bool,
-        const SIGN: bool,
-    >(
+    fn fused<const PH: bool, const IM: bool, const ABS: bool, const SQ: bool, const SIGN: bool>(
         &mut self,
-        a: View<'_, T>,
-        b: View<'_, T>,
+        a: &Planes,
+        b: &Planes,
         trials: usize,
         range: std::ops::Range<usize>,
     ) {
         let span = trials * LANES;
-        let base = a.first;
         for (i, blk) in range.enumerate() {
-            let r = (blk - base) * span..(blk - base + 1) * span;
+            let r = blk * span..(blk + 1) * span;
             let (mut sr, mut si) = ([0.0f64; LANES], [0.0f64; LANES]);
             let (mut s, mut abs, mut sq, mut sg) =
                 ([0.0f64; LANES], [0.0; LANES], [0.0; LANES], [0.0; LANES]);
-            let empty: &[T] = &[];
             let (ar, ai, br, bi) = if PH {
                 (
                     &a.unit_re[r.clone()],
@@ -473,7 +331,7 @@ impl PairSums {
                     &b.unit_im[r.clone()],
                 )
             } else {
-                (empty, empty, empty, empty)
+                (&[][..], &[][..], &[][..], &[][..])
             };
             let (xr, xi, yr, yi) = if IM {
                 (
@@ -483,7 +341,7 @@ impl PairSums {
                     &b.raw_im[r],
                 )
             } else {
-                (empty, empty, empty, empty)
+                (&[][..], &[][..], &[][..], &[][..])
             };
             for k in 0..trials {
                 let at = k * LANES;
@@ -491,8 +349,8 @@ impl PairSums {
                     let (ar, ai) = (&ar[at..at + LANES], &ai[at..at + LANES]);
                     let (br, bi) = (&br[at..at + LANES], &bi[at..at + LANES]);
                     for j in 0..LANES {
-                        let (xr, xi) = (ar[j].wide(), ai[j].wide());
-                        let (yr, yi) = (br[j].wide(), bi[j].wide());
+                        let (xr, xi) = (f64::from(ar[j]), f64::from(ai[j]));
+                        let (yr, yi) = (f64::from(br[j]), f64::from(bi[j]));
                         sr[j] += xr * yr + xi * yi;
                         si[j] += xi * yr - xr * yi;
                     }
@@ -502,7 +360,8 @@ impl PairSums {
                     let (yr, yi) = (&yr[at..at + LANES], &yi[at..at + LANES]);
                     for j in 0..LANES {
                         // Im(X conj Y) = Im X Re Y − Re X Im Y.
-                        let v = xi[j].wide() * yr[j].wide() - xr[j].wide() * yi[j].wide();
+                        let v = f64::from(xi[j]) * f64::from(yr[j])
+                            - f64::from(xr[j]) * f64::from(yi[j]);
                         s[j] += v;
                         if ABS {
                             abs[j] += v.abs();
@@ -744,50 +603,11 @@ mod tests {
         let mut fast = PairSums::new(needs, blocks(times));
         fast.compute(needs, &a, &b, trials);
         let mut portable = PairSums::new(needs, blocks(times));
-        portable.compute_any(needs, a.view(), b.view(), trials, 0..blocks(times));
+        portable.compute_any(needs, &a, &b, trials, 0..blocks(times));
         for t in 0..times {
             let (f, p) = (fast.at(t, trials, &a, &b), portable.at(t, trials, &a, &b));
             for m in ALL {
                 assert_eq!(f.value(m).to_bits(), p.value(m).to_bits(), "{m:?} at {t}");
-            }
-        }
-    }
-
-    #[test]
-    fn trial_sums_on_widened_tiles_give_the_same_bits() {
-        // Widening a tile of f32 planes to f64 beforehand is exact, so the sums on a `Wide`
-        // tile must equal the sums on the slab, bit for bit, for every tile.
-        let mut rng = ChaCha8Rng::seed_from_u64(10);
-        for (trials, times, tile) in [(1, 9, 1), (23, 37, 2), (40, 64, 8)] {
-            let (x, y) = (
-                coefs(&mut rng, trials, times),
-                coefs(&mut rng, trials, times),
-            );
-            for measures in [&ALL[..], &[Measure::Plv], &[Measure::Pli, Measure::Icoh]] {
-                let needs = Needs::of(measures);
-                let (a, b) = (planes(needs, &x, times), planes(needs, &y, times));
-                let (mut wa, mut wb) = (
-                    Wide::new(needs, trials, tile),
-                    Wide::new(needs, trials, tile),
-                );
-                let (mut slab, mut wide) = (PairSums::new(needs, tile), PairSums::new(needs, tile));
-                for first in (0..blocks(times)).step_by(tile) {
-                    let range = first..(first + tile).min(blocks(times));
-                    slab.compute_blocks(needs, &a, &b, trials, range.clone());
-                    wa.load(&a, range.clone());
-                    wb.load(&b, range.clone());
-                    wide.compute_wide(needs, &wa, &wb, trials, range.clone());
-                    for t in first * LANES..(range.end * LANES).min(times) {
-                        let (s, w) = (slab.at(t, trials, &a, &b), wide.at(t, trials, &a, &b));
-                        for m in ALL {
-                            assert_eq!(s.value(m).to_bits(), w.value(m).to_bits(), "{m:?} at {t}");
-                        }
-                        assert_eq!(
-                            (s.phasor, s.im, s.abs_im, s.im2, s.sign),
-                            (w.phasor, w.im, w.abs_im, w.im2, w.sign)
-                        );
-                    }
-                }
             }
         }
     }
