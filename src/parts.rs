@@ -7,7 +7,7 @@
 //! and `parts` ([`crate::recipe`]). The executor then never
 //! holds P's whole output: it computes P a part at a time (a range along the axis), runs C on
 //! each part and hands C's parts on: joined in memory ([`Joined`]), or, when C is stored and
-//! every consumer of C can read it in slabs, through a spool file into the cache
+//! every consumer of C can read it in slabs, each part written at its place in C's object file
 //! ([`crate::slabs::Spool`]), so C is never whole in memory either. Peak memory holds one part
 //! of P instead of all of it, so it no longer grows with the length of that axis (for the
 //! wavelet: the number of frequencies) once the axis is longer than one part.

@@ -9,7 +9,7 @@
 //! | `cached` | fresh: its stored object (for `cache: false`, its record) stands |
 //! | `deferred` | stale, `cache: false`, not exported, no group unit prepares from it, and every consumer is a stale unit of another chain: they compute it when they need it |
 //! | `streamed` | stale, `cache: false`, not exported, its only consumer's only input, its op computes parts along an axis ([`phasewise_stages::Op::part_axis`]) and the consumer's op slices along it: computed a part at a time inside the consumer's unit, never whole |
-//! | `parts` | the consumer of a `streamed` unit: computed part by part; `spooled` when it is stored and every consumer can read it in slabs (its parts go through a file into the store), else joined in memory |
+//! | `parts` | the consumer of a `streamed` unit: computed part by part; `spooled` when it is stored and every consumer can read it in slabs (each part written at its place in the object file), else joined in memory |
 //! | `slabs` | one input whose values are in the store and not held in memory, no consumer in its own chain, its op (and the `prepare` of every group unit it feeds) slicing along the leading `axes`, output shaped like the input: computed box by box ([`crate::slabs`]) |
 //! | `joined` | its op prepares its inputs ([`phasewise_stages::Op::prepares`]): it joins inputs prepared one by one, most of them in their subjects' chains |
 //! | `whole` | anything else: computed from its inputs held whole |

@@ -217,12 +217,6 @@ pub enum SpoolError {
         /// The part axis.
         axis: usize,
     },
-    /// The spooled parts could not be read back from their temporary file.
-    #[error("cannot read the spooled parts back: {0}")]
-    ReadBack(std::io::Error),
-    /// The object's values could not be written (the store reports the write error itself).
-    #[error("cannot write the spooled parts to the store: {0}")]
-    Write(std::io::Error),
 }
 
 /// The NPY header (numpy's format, version 1.0 while the text fits, else 2.0; the dictionary
@@ -405,43 +399,60 @@ impl Store {
 }
 
 /// A unit's output arriving in parts along an inner axis (a streamed consumer's parts, see
-/// [`crate::parts`]), kept in an anonymous temporary file in the cache folder instead of
-/// memory, then written to the store in file order: for each run of rows (the axes before the
-/// part axis, flattened) the rows of every part are read back and interleaved. The NPY is the
-/// same bytes as the joined array's encoding.
+/// [`crate::parts`]), written straight into its NPY file instead of being joined in memory:
+/// the file (header, then the values in row-major order) is made at its full size in the
+/// cache's object folder under a temporary name, and each part's rows (the axes before the part
+/// axis, flattened) are written at their final offsets. On commit the file is read back in order
+/// once to hash it and is renamed into the store; uncommitted, it is removed. The NPY is the same
+/// bytes as the joined array's encoding, and each byte is written once (an earlier form wrote the
+/// parts to a scratch file and copied them into the object, writing every byte twice).
 pub struct Spool {
-    file: std::fs::File,
+    file: tempfile::NamedTempFile,
     layout: Layout,
     axis: usize,
     /// Values per index of the part axis in one row.
     inner: usize,
     element: usize,
-    /// Each part's length along the axis and its offset in the file.
-    parts: Vec<(usize, u64)>,
+    /// Rows (the product of the axes before the part axis) and the axis' length.
+    rows: usize,
+    len: usize,
+    /// Bytes of the NPY header.
+    header: u64,
     at: usize,
-    written: u64,
 }
 
 impl Spool {
     /// An empty spool for an output of `layout`, in parts along axis number `axis`, in a
-    /// temporary file under `dir`.
+    /// temporary file under `dir` (on the store's filesystem: it is renamed into the store).
     pub fn new(dir: &std::path::Path, layout: &Layout, axis: usize) -> std::io::Result<Spool> {
         std::fs::create_dir_all(dir)?;
         let shape = layout.shape();
+        let dtype = if layout.complex { "<c8" } else { "<f4" };
+        let element = if layout.complex { 8 } else { 4 };
+        let header = npy_header(&shape, dtype);
+        let mut file = tempfile::Builder::new()
+            .prefix(fsio::TEMP_PREFIX)
+            .tempfile_in(dir)?;
+        file.write_all(&header)?;
+        let total = shape.iter().product::<usize>() * element;
+        file.as_file().set_len((header.len() + total) as u64)?;
         Ok(Spool {
-            file: tempfile::tempfile_in(dir)?,
+            file,
             layout: layout.clone(),
             axis,
             inner: shape.get(axis + 1..).unwrap_or(&[]).iter().product(),
-            element: if layout.complex { 8 } else { 4 },
-            parts: Vec::new(),
+            element,
+            rows: shape.get(..axis).unwrap_or(&[]).iter().product(),
+            len: shape.get(axis).copied().unwrap_or(0),
+            header: header.len() as u64,
             at: 0,
-            written: 0,
         })
     }
 
-    /// Add the next part (its layout the whole's with the axis cut to the next range).
+    /// Add the next part (its layout the whole's with the axis cut to the next range): each of
+    /// its rows goes to its place in the file.
     pub fn push(&mut self, part: &LabelledArray) -> Result<(), StageError> {
+        use std::os::unix::fs::FileExt;
         let n = part.values.shape().get(self.axis).copied().unwrap_or(0);
         let expected = self.layout.slice(self.axis, self.at..self.at + n);
         if expected.as_ref().ok() != Some(&part.layout) {
@@ -453,59 +464,80 @@ impl Spool {
             )));
         }
         let io = |e: std::io::Error| StageError::data(format!("cannot spool a part: {e}"));
-        value_bytes(&part.values, |bytes| self.file.write_all(bytes)).map_err(io)?;
-        self.parts.push((n, self.written));
-        self.written += (part.values.shape().iter().product::<usize>() * self.element) as u64;
+        let part_row = n * self.inner * self.element;
+        let whole_row = (self.len * self.inner * self.element) as u64;
+        let skip = (self.at * self.inner * self.element) as u64;
+        let (file, rows, header) = (self.file.as_file(), self.rows, self.header);
+        value_bytes(&part.values, |bytes| {
+            if part_row == 0 {
+                return Ok(());
+            }
+            for (r, row) in bytes.chunks_exact(part_row).take(rows).enumerate() {
+                file.write_all_at(row, header + r as u64 * whole_row + skip)?;
+            }
+            Ok(())
+        })
+        .map_err(io)?;
         self.at += n;
         Ok(())
     }
 
-    /// Write the whole output to the store as the object of `fingerprint`, with `notes`.
+    /// Commit the whole output to the store as the object of `fingerprint`, with `notes`:
+    /// `Ok(Err(why))` when parts are missing (nothing is stored).
     pub fn commit(
         self,
         store: &Store,
         fingerprint: &Fingerprint,
         notes: &Notes,
     ) -> Result<Result<ObjectRecord, SpoolError>, StoreError> {
-        let shape = self.layout.shape();
-        if shape.get(self.axis) != Some(&self.at) {
+        use std::io::{Read, Seek, SeekFrom};
+        if self.at != self.len {
             return Ok(Err(SpoolError::Incomplete {
                 at: self.at,
-                shape,
+                shape: self.layout.shape(),
                 axis: self.axis,
             }));
         }
-        let rows: usize = shape[..self.axis].iter().product();
-        let row_bytes = self.at * self.inner * self.element;
-        let step = (slab_bytes() / row_bytes.max(1)).clamp(1, rows.max(1));
-        let parts = &self.parts;
-        let (file, inner, element) = (&self.file, self.inner, self.element);
-        store.put_slabs(&self.layout, fingerprint, true, |write| {
-            use std::io::{Read, Seek, SeekFrom};
-            let mut file = file;
-            let mut pieces: Vec<Vec<u8>> = vec![Vec::new(); parts.len()];
-            let mut out = Vec::with_capacity(step * row_bytes);
-            for first in (0..rows).step_by(step) {
-                let count = step.min(rows - first);
-                for (piece, &(n, offset)) in pieces.iter_mut().zip(parts) {
-                    let part_row = n * inner * element;
-                    piece.resize(count * part_row, 0);
-                    let at = offset + (first * part_row) as u64;
-                    file.seek(SeekFrom::Start(at))
-                        .and_then(|_| file.read_exact(piece))
-                        .map_err(SpoolError::ReadBack)?;
-                }
-                out.clear();
-                for r in 0..count {
-                    for (piece, &(n, _)) in pieces.iter().zip(parts) {
-                        let part_row = n * inner * element;
-                        out.extend_from_slice(&piece[r * part_row..(r + 1) * part_row]);
-                    }
-                }
-                write(&out).map_err(SpoolError::Write)?;
+        let key = fingerprint.key();
+        let (npy_path, json_path) = store.object_paths(&key);
+        let failed = |source: std::io::Error| StoreError::Write {
+            path: npy_path.clone(),
+            source,
+        };
+        // The hash of the bytes as the file holds them, read back in order (from the page
+        // cache: they were just written).
+        let mut hasher = blake3::Hasher::new();
+        let mut npy_size = 0u64;
+        {
+            let mut file = self.file.as_file();
+            file.seek(SeekFrom::Start(0)).map_err(failed)?;
+            let mut buffer = vec![0u8; 4 << 20];
+            loop {
+                let n = match file.read(&mut buffer) {
+                    Ok(0) => break,
+                    Ok(n) => n,
+                    Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
+                    Err(e) => return Err(failed(e)),
+                };
+                store::npy::hash_update(&mut hasher, &buffer[..n]);
+                npy_size += n as u64;
             }
-            Ok(notes.clone())
-        })
+        }
+        if let Some(dir) = npy_path.parent() {
+            std::fs::create_dir_all(dir).map_err(failed)?;
+        }
+        if std::env::var_os(store::ABORT_BEFORE_RENAME).is_some() {
+            std::process::abort();
+        }
+        self.file.persist(&npy_path).map_err(|e| failed(e.error))?;
+        let dtype = if self.layout.complex { "<c8" } else { "<f4" };
+        let record = ObjectRecord::new(&self.layout, dtype, notes, fingerprint).with_values(
+            true,
+            hasher.finalize().to_hex().to_string(),
+            npy_size,
+        );
+        store::write_record(&json_path, &record)?;
+        Ok(Ok(record))
     }
 }
 
@@ -634,6 +666,17 @@ mod tests {
             store.lookup(&f.key()),
             crate::store::Lookup::Absent
         ));
+        // Each spool's file was renamed into the store or, uncommitted, removed.
+        let temps: Vec<_> = std::fs::read_dir(dir.path())
+            .unwrap()
+            .flatten()
+            .filter(|e| {
+                e.file_name()
+                    .to_string_lossy()
+                    .starts_with(fsio::TEMP_PREFIX)
+            })
+            .collect();
+        assert!(temps.is_empty(), "{temps:?}");
     }
 
     #[test]

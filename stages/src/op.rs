@@ -176,6 +176,31 @@ pub trait Op: Send + Sync + 'static {
         )))
     }
 
+    /// [`Op::run`] with the bound op's private [`Plans`]: an op whose work starts with a plan
+    /// derived from its params and its input's layout alone (frequencies, kernels, FFT plans)
+    /// computes it once per input layout ([`Plans::get_or_make`]) and reuses it for every unit
+    /// and part with that layout. Must give the same output as `run`; the default calls `run`.
+    fn run_planned(
+        params: &Self::Params,
+        _plans: &Plans,
+        inputs: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        Self::run(params, inputs, notes)
+    }
+
+    /// [`Op::run_part`] with the bound op's private [`Plans`] (see [`Op::run_planned`]). The
+    /// default calls `run_part`.
+    fn run_part_planned(
+        params: &Self::Params,
+        _plans: &Plans,
+        inputs: &[Input<'_>],
+        part: std::ops::Range<usize>,
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
+        Self::run_part(params, inputs, part, notes)
+    }
+
     /// True when [`Op::prepare`] gives `Some` for these params (so the runner may prepare each
     /// input where it is produced).
     fn prepares(_params: &Self::Params) -> bool {
@@ -277,6 +302,86 @@ pub trait BoundOp: Send + Sync {
     fn join(&self, prepared: &[Input<'_>], notes: &mut Notes) -> Result<LabelledArray, StageError>;
 }
 
+/// Plans an op derives from its params and an input layout alone (frequencies, kernels, FFT
+/// plans), kept by its [`BoundOp`] so that each is computed once per distinct input layout and
+/// reused by every unit (subject) and part with that layout, on any thread. A plan is found by a
+/// key the op computes from everything the plan depends on (see [`PlanKey`]); the last
+/// [`Plans::KEPT`] plans are kept. A plan never holds values of the data, so outputs are the same
+/// whether a plan was made or found.
+#[derive(Default)]
+pub struct Plans {
+    kept: std::sync::Mutex<Vec<(PlanKey, SharedPlan)>>,
+}
+
+type SharedPlan = std::sync::Arc<dyn std::any::Any + Send + Sync>;
+
+impl Plans {
+    /// Plans kept per bound op (the study's subjects usually share one input layout).
+    pub const KEPT: usize = 4;
+
+    /// The plan of type `T` under `key`, made by `make` when there is none yet (outside the
+    /// lock, so two threads may both make it the first time; both get equal plans). An error of
+    /// `make` is returned and nothing is kept.
+    pub fn get_or_make<T: Send + Sync + 'static, E>(
+        &self,
+        key: &PlanKey,
+        make: impl FnOnce() -> Result<T, E>,
+    ) -> Result<std::sync::Arc<T>, E> {
+        let found = self
+            .lock()
+            .iter()
+            .find(|(k, _)| k == key)
+            .map(|(_, p)| p.clone());
+        if let Some(plan) = found.and_then(|p| p.downcast::<T>().ok()) {
+            return Ok(plan);
+        }
+        let plan = std::sync::Arc::new(make()?);
+        let mut kept = self.lock();
+        kept.retain(|(k, _)| k != key);
+        if kept.len() >= Self::KEPT {
+            kept.remove(0);
+        }
+        kept.push((key.clone(), plan.clone()));
+        Ok(plan)
+    }
+
+    /// How many plans are kept (for tests).
+    pub fn len(&self) -> usize {
+        self.lock().len()
+    }
+
+    /// True when no plan is kept.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    fn lock(&self) -> std::sync::MutexGuard<'_, Vec<(PlanKey, SharedPlan)>> {
+        // A panic while the lock was held leaves a list that is still valid: keep using it.
+        self.kept.lock().unwrap_or_else(|e| e.into_inner())
+    }
+}
+
+/// The key of a plan in [`Plans`]: everything the plan depends on, numbers by their bit
+/// patterns, compared in full (two layouts share a plan only when those numbers are identical).
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct PlanKey(Vec<u64>);
+
+impl PlanKey {
+    /// Adds numbers, by their bit patterns.
+    pub fn numbers(mut self, values: &[f64]) -> Self {
+        self.0.push(values.len() as u64);
+        self.0.extend(values.iter().map(|v| v.to_bits()));
+        self
+    }
+
+    /// Adds counts.
+    pub fn counts(mut self, values: &[usize]) -> Self {
+        self.0.push(values.len() as u64);
+        self.0.extend(values.iter().map(|&v| v as u64));
+        self
+    }
+}
+
 /// Wraps an [`Op`] type as a [`DynOp`] value.
 pub struct Registered<O: Op>(PhantomData<O>);
 
@@ -320,6 +425,7 @@ impl<O: Op> DynOp for Registered<O> {
         Ok(Box::new(Bound::<O> {
             params: typed,
             effective,
+            plans: Plans::default(),
         }))
     }
 }
@@ -328,6 +434,8 @@ impl<O: Op> DynOp for Registered<O> {
 struct Bound<O: Op> {
     params: O::Params,
     effective: Value,
+    /// The op's private plans, computed once per input layout ([`Op::run_planned`]).
+    plans: Plans,
 }
 
 impl<O: Op> BoundOp for Bound<O> {
@@ -347,7 +455,7 @@ impl<O: Op> BoundOp for Bound<O> {
         O::layout(&self.params, inputs)
     }
     fn run(&self, inputs: &[Input<'_>], notes: &mut Notes) -> Result<LabelledArray, StageError> {
-        O::run(&self.params, inputs, notes)
+        O::run_planned(&self.params, &self.plans, inputs, notes)
     }
     fn run_owned(
         &self,
@@ -365,7 +473,7 @@ impl<O: Op> BoundOp for Bound<O> {
         part: std::ops::Range<usize>,
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError> {
-        O::run_part(&self.params, inputs, part, notes)
+        O::run_part_planned(&self.params, &self.plans, inputs, part, notes)
     }
     fn slices_along(&self, axis: &str) -> bool {
         O::slices_along(&self.params, axis)

@@ -214,6 +214,18 @@ impl Bank {
         self
     }
 
+    /// A bank with only the wavelets in `range` of this one (the same FFT plans and lengths,
+    /// so each gives exactly the coefficients it gives here), leaving this one whole: how one
+    /// bank planned once serves every part.
+    pub fn part(&self, range: std::ops::Range<usize>) -> Bank {
+        Bank {
+            spectra: self.spectra[range].to_vec(),
+            forward: Arc::clone(&self.forward),
+            inverse: Arc::clone(&self.inverse),
+            ..*self
+        }
+    }
+
     /// The forward FFT length in use.
     pub fn nfft(&self) -> usize {
         self.nfft

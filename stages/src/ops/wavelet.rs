@@ -27,7 +27,7 @@ use serde::{Deserialize, Serialize};
 use crate::array::Values;
 use crate::array::{Coord, LabelledArray, Layout};
 use crate::error::StageError;
-use crate::op::{single, Input, InputLayout, Notes, Op};
+use crate::op::{single, Input, InputLayout, Notes, Op, PlanKey, Plans};
 use crate::range;
 
 use super::morlet::{self, Bank, Keep};
@@ -470,13 +470,25 @@ impl Op for Wavelet {
         inputs: &[Input<'_>],
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError> {
+        Self::run_planned(p, &Plans::default(), inputs, notes)
+    }
+
+    /// The wavelets' spectra and FFT plans ([`Bank`]) are made once per epoch layout
+    /// ([`bank_for`]) and shared by every subject and part.
+    fn run_planned(
+        p: &Self::Params,
+        plans: &Plans,
+        inputs: &[Input<'_>],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
         let input = single(inputs)?.array;
         let plan = plan(p, &input.layout)?;
         if let Some(w) = edge_warning(p, &input.layout)? {
             notes.warn(w);
         }
         let all = 0..plan.freqs.len();
-        transform_part(plan, input, all)
+        let bank = bank_for(plans, &plan)?;
+        transform_part(plan, &bank, input, all)
     }
 
     /// Frequencies are transformed one by one, each with the FFT lengths of the whole set.
@@ -490,6 +502,16 @@ impl Op for Wavelet {
         part: std::ops::Range<usize>,
         notes: &mut Notes,
     ) -> Result<LabelledArray, StageError> {
+        Self::run_part_planned(p, &Plans::default(), inputs, part, notes)
+    }
+
+    fn run_part_planned(
+        p: &Self::Params,
+        plans: &Plans,
+        inputs: &[Input<'_>],
+        part: std::ops::Range<usize>,
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
         let input = single(inputs)?.array;
         let plan = plan(p, &input.layout)?;
         check_part(&part, plan.freqs.len(), "frequencies")?;
@@ -499,8 +521,34 @@ impl Op for Wavelet {
                 notes.warn(w);
             }
         }
-        transform_part(plan, input, part)
+        let bank = bank_for(plans, &plan)?;
+        transform_part(plan, &bank, input, part)
     }
+}
+
+/// The bank of every wavelet of `plan` for its epochs, from `plans` when one was made for the
+/// same frequencies, cycles, sampling rate, epoch length and kept samples (the whole key of what
+/// [`Bank::new`] reads), else made now and kept there.
+fn bank_for(plans: &Plans, plan: &Plan) -> Result<std::sync::Arc<Bank>, StageError> {
+    let key = PlanKey::default()
+        .numbers(&plan.freqs)
+        .numbers(&plan.cycles)
+        .numbers(&[plan.fs])
+        .counts(&[
+            plan.epoch_len,
+            plan.keep.start,
+            plan.keep.stride,
+            plan.keep.count,
+        ]);
+    plans.get_or_make(&key, || -> Result<Bank, StageError> {
+        let taps: Vec<Vec<Complex64>> = plan
+            .freqs
+            .iter()
+            .zip(&plan.cycles)
+            .map(|(&f, &n)| morlet::taps(f, n, plan.fs))
+            .collect();
+        Ok(Bank::new(&taps, plan.epoch_len, plan.keep))
+    })
 }
 
 /// A part (a range of `len` `what`, e.g. frequencies) that the runner asks for must be a
@@ -521,13 +569,14 @@ pub(crate) fn check_part(
 /// The coefficients of the frequencies in `part` (all of them for a whole run).
 fn transform_part(
     mut plan: Plan,
+    bank: &Bank,
     input: &LabelledArray,
     part: std::ops::Range<usize>,
 ) -> Result<LabelledArray, StageError> {
     let values = input.real_values()?.as_standard_layout();
     let values = values.as_slice().unwrap_or(&[]);
     check_finite(values, &input.layout, plan.epoch_len)?;
-    let out = transform_all(&plan, values, part.clone())?;
+    let out = transform_all(&plan, bank, values, part.clone())?;
     let k = plan.layout.axis("freq")?;
     plan.layout.coords[k] = plan.layout.coords[k].slice(part)?;
     let shape = plan.layout.shape();
@@ -546,15 +595,10 @@ const SIGNALS_PER_TASK: usize = 16;
 /// thread count.
 fn transform_all(
     plan: &Plan,
+    bank: &Bank,
     values: &[f32],
     part: std::ops::Range<usize>,
 ) -> Result<Vec<Complex32>, StageError> {
-    let taps: Vec<Vec<Complex64>> = plan
-        .freqs
-        .iter()
-        .zip(&plan.cycles)
-        .map(|(&f, &n)| morlet::taps(f, n, plan.fs))
-        .collect();
     let per_signal = part.len() * plan.keep.count;
     let signals: usize = plan.layout.shape().iter().take(2).product();
     let len = per_signal * signals;
@@ -568,7 +612,7 @@ fn transform_all(
             plan.epoch_len
         )));
     }
-    let bank = Bank::new(&taps, plan.epoch_len, plan.keep).only(part);
+    let bank = bank.part(part);
     // Not cleared first: the transform writes every value, and clearing would cost a pass over
     // the whole output (memory the allocator hands back from an earlier part is not zero).
     let mut out: Vec<Complex32> = Vec::with_capacity(len);
@@ -742,6 +786,47 @@ mod tests {
             &[0..1, 0..7, 2..5, 6..7],
         );
         assert_eq!(whole.layout.coord("freq").unwrap().len(), 7);
+    }
+
+    #[test]
+    fn wavelet_plans_its_bank_once_per_epoch_layout_and_gives_the_same_bits() {
+        // Issue 18 "bind once": the bound op keeps the wavelets' spectra and FFT plans for an
+        // epoch layout, so a second subject and every part reuse them; the numbers are those of
+        // a run that plans afresh.
+        let params: WaveletParams = serde_json::from_value(
+            json!({"freqs": {"from": 3, "to": 30, "count": 5}, "cycles": {"from": 3, "to": 8}, "crop": [-0.2, 1.0]}),
+        )
+        .unwrap();
+        let plans = Plans::default();
+        let run = |x: &LabelledArray, plans: &Plans, part: std::ops::Range<usize>| {
+            let input = Input {
+                stage: "trials",
+                subject: Some("01"),
+                array: x,
+            };
+            Wavelet::run_part_planned(&params, plans, &[input], part, &mut Notes::default())
+                .unwrap()
+        };
+        let (a, b) = (
+            noise((2, 3, 200), 100.0, -50),
+            noise((3, 2, 200), 100.0, -50),
+        );
+        for x in [&a, &b] {
+            for part in [0..2, 2..5, 0..5] {
+                assert_eq!(
+                    run(x, &plans, part.clone()),
+                    run(x, &Plans::default(), part)
+                );
+            }
+        }
+        assert_eq!(
+            plans.len(),
+            1,
+            "two subjects of one epoch layout share one plan"
+        );
+        // Another epoch length is another plan.
+        run(&noise((2, 3, 240), 100.0, -50), &plans, 0..5);
+        assert_eq!(plans.len(), 2);
     }
 
     #[test]
