@@ -409,38 +409,67 @@ pub fn sidecar(target: &ExportTarget<'_>, record: &ObjectRecord) -> serde_json::
     })
 }
 
+/// Why a format-2 sidecar's axes cannot be read ([`sidecar_axes`]).
+#[derive(Debug, thiserror::Error)]
+pub enum SidecarAxesError {
+    /// `dims` is not a list of names.
+    #[error("`dims` should be a list of axis names ({0})")]
+    Dims(serde_json::Error),
+    /// `coords` is not an object.
+    #[error("`coords` should map coordinate names to {{dims, data, attrs}}")]
+    Coords,
+    /// A coordinate lies along other axes than its own.
+    #[error("coordinate `{name}` should lie along `{dim}` alone")]
+    NotAlong {
+        /// The coordinate.
+        name: String,
+        /// The axis it should lie along.
+        dim: String,
+    },
+    /// A coordinate without values.
+    #[error("coordinate `{0}` has no `data` list")]
+    NoData(String),
+    /// A label coordinate with values that are not text.
+    #[error("coordinate `{0}` mixes text with other values")]
+    MixedText(String),
+    /// An axis without a coordinate (nor a channel_a/channel_b pair of them).
+    #[error("axis `{0}` has no coordinate")]
+    NoCoordinate(String),
+}
+
 /// The axis names and coordinates of a format-2 sidecar ([`sidecar`]), read back: one list
 /// per axis, a pair axis from its `channel_a`, `channel_b` coordinates. Subjects keep the
 /// names the sidecar gives them (`sub-01`).
 pub fn sidecar_axes(
     sidecar: &serde_json::Value,
-) -> Result<(Vec<String>, Vec<phasewise_stages::Coord>), String> {
+) -> Result<(Vec<String>, Vec<phasewise_stages::Coord>), SidecarAxesError> {
     use phasewise_stages::Coord;
     use serde_json::Value;
-    let dims: Vec<String> = serde_json::from_value(sidecar["dims"].clone())
-        .map_err(|e| format!("`dims` should be a list of axis names ({e})"))?;
+    let dims: Vec<String> =
+        serde_json::from_value(sidecar["dims"].clone()).map_err(SidecarAxesError::Dims)?;
     let coords = sidecar["coords"]
         .as_object()
-        .ok_or("`coords` should map coordinate names to {dims, data, attrs}")?;
-    let along = |name: &str, dim: &str| -> Result<Option<&Vec<Value>>, String> {
+        .ok_or(SidecarAxesError::Coords)?;
+    let along = |name: &str, dim: &str| -> Result<Option<&Vec<Value>>, SidecarAxesError> {
         let Some(c) = coords.get(name) else {
             return Ok(None);
         };
         if c["dims"] != json!([dim]) {
-            return Err(format!(
-                "coordinate `{name}` should lie along `{dim}` alone"
-            ));
+            return Err(SidecarAxesError::NotAlong {
+                name: name.to_string(),
+                dim: dim.to_string(),
+            });
         }
         c["data"]
             .as_array()
             .map(Some)
-            .ok_or_else(|| format!("coordinate `{name}` has no `data` list"))
+            .ok_or_else(|| SidecarAxesError::NoData(name.to_string()))
     };
-    let texts = |name: &str, data: &[Value]| -> Result<Vec<String>, String> {
+    let texts = |name: &str, data: &[Value]| -> Result<Vec<String>, SidecarAxesError> {
         data.iter()
             .map(|v| v.as_str().map(str::to_string))
             .collect::<Option<_>>()
-            .ok_or_else(|| format!("coordinate `{name}` mixes text with other values"))
+            .ok_or_else(|| SidecarAxesError::MixedText(name.to_string()))
     };
     let mut out = Vec::with_capacity(dims.len());
     for dim in &dims {
@@ -456,7 +485,7 @@ pub fn sidecar_axes(
                     let (a, b) = (texts("channel_a", a)?, texts("channel_b", b)?);
                     Coord::Pairs(a.into_iter().zip(b).map(|(a, b)| [a, b]).collect())
                 }
-                _ => return Err(format!("axis `{dim}` has no coordinate")),
+                _ => return Err(SidecarAxesError::NoCoordinate(dim.clone())),
             },
         };
         out.push(coord);

@@ -733,18 +733,18 @@ impl Worker<'_, '_> {
         u: usize,
         axes: usize,
         groups: &[usize],
-    ) -> Result<Result<(), String>, UnitFailure> {
+    ) -> Result<Result<(), WholeAfterAll>, UnitFailure> {
         let study = self.ctx.study;
         let unit = &study.units[u];
         let stage = &study.pipeline.stages[unit.stage];
         let [input @ UnitInput::Unit(i)] = unit.inputs[..] else {
-            return Ok(Err("it has not one input".into()));
+            return Ok(Err(WholeAfterAll::NotOneInput));
         };
         if self.memory.contains_key(&input) {
-            return Ok(Err("its input is in memory".into()));
+            return Ok(Err(WholeAfterAll::InputInMemory));
         }
         let Lookup::Present(record) = study.store.lookup(&study.keys[i]) else {
-            return Ok(Err("its input is not in the cache".into()));
+            return Ok(Err(WholeAfterAll::InputNotCached));
         };
         let (stage_name, subject) = study.origin(input);
         let whole_input = [InputLayout {
@@ -753,10 +753,10 @@ impl Worker<'_, '_> {
             layout: &record.layout,
         }];
         let Ok(Some(out_layout)) = stage.op.layout(&whole_input) else {
-            return Ok(Err("its layout is not known in advance".into()));
+            return Ok(Err(WholeAfterAll::LayoutUnknown));
         };
         if !record.stored {
-            return Ok(Err("its input's values are not stored".into()));
+            return Ok(Err(WholeAfterAll::InputNotStored));
         }
         let k = axes;
         let group_stages: Vec<_> = groups
@@ -785,20 +785,18 @@ impl Worker<'_, '_> {
                                 let out = stage
                                     .op
                                     .run_owned(owned, &mut notes)
-                                    .map_err(|e| e.to_string())?;
+                                    .map_err(WholeAfterAll::BoxFailed)?;
                                 if notes != Notes::default() {
-                                    return Err("the op noted something about one box".into());
+                                    return Err(WholeAfterAll::BoxNoted);
                                 }
                                 if out.layout
                                     != slabs::box_layout(&out_layout, b)
-                                        .map_err(|e| e.to_string())?
+                                        .map_err(WholeAfterAll::BoxFailed)?
                                 {
-                                    return Err(
-                                        "a box's output is not the whole output's cut".into()
-                                    );
+                                    return Err(WholeAfterAll::BoxNotACut);
                                 }
                                 slabs::value_bytes(&out.values, &mut *write)
-                                    .map_err(|e| e.to_string())?;
+                                    .map_err(WholeAfterAll::Write)?;
                                 let input = Input {
                                     stage: &stage.name,
                                     subject: study.subject(u),
@@ -807,14 +805,17 @@ impl Worker<'_, '_> {
                                 for (g, list) in group_stages.iter().zip(&mut prepared) {
                                     match g.op.prepare(&input) {
                                         Some(Ok(small)) => list.push(small),
-                                        Some(Err(e)) => return Err(e.to_string()),
-                                        None => return Err("a group unit did not prepare".into()),
+                                        Some(Err(e)) => return Err(WholeAfterAll::BoxFailed(e)),
+                                        None => return Err(WholeAfterAll::GroupDidNotPrepare),
                                     }
                                 }
                                 Ok(())
                             });
-                    read.map(|()| Notes::default())
-                        .map_err(|stop| stop.to_string())
+                    read.map(|()| Notes::default()).map_err(|stop| match stop {
+                        slabs::SlabStop::Damaged(d) => WholeAfterAll::InputDamaged(d),
+                        slabs::SlabStop::Declined(d) => WholeAfterAll::Declined(d),
+                        slabs::SlabStop::Visitor(why) => why,
+                    })
                 });
         let record = match written {
             Ok(Ok(record)) => record,
@@ -941,4 +942,34 @@ impl Worker<'_, '_> {
             }
         }
     }
+}
+
+/// Why a unit whose recipe said "in slabs" was computed whole after all. Recorded in the
+/// manifest as [`Recipe::fallback`]; a damaged input is then found and reported by the whole run.
+#[derive(Debug, thiserror::Error)]
+enum WholeAfterAll {
+    #[error("it has not one input")]
+    NotOneInput,
+    #[error("its input is in memory")]
+    InputInMemory,
+    #[error("its input is not in the cache")]
+    InputNotCached,
+    #[error("its layout is not known in advance")]
+    LayoutUnknown,
+    #[error("its input's values are not stored")]
+    InputNotStored,
+    #[error("the op noted something about one box")]
+    BoxNoted,
+    #[error("a box's output is not the whole output's cut")]
+    BoxNotACut,
+    #[error("a group unit did not prepare")]
+    GroupDidNotPrepare,
+    #[error("{0}")]
+    BoxFailed(StageError),
+    #[error("writing a box: {0}")]
+    Write(std::io::Error),
+    #[error(transparent)]
+    InputDamaged(crate::store::Damage),
+    #[error(transparent)]
+    Declined(slabs::SlabDecline),
 }

@@ -373,7 +373,7 @@ pub fn read_sidecar(path: &Path) -> Result<Sidecar, LoadError> {
             field(
                 "coords",
                 "axis names and a coordinate per axis, as the run exports them (format 2)",
-                e,
+                e.to_string(),
             )
         })?;
         return Ok(Sidecar {

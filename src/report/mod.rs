@@ -246,12 +246,12 @@ pub enum ReportError {
         msg: String,
     },
     /// A figure could not be drawn.
-    #[error("figure {id}: {msg}")]
+    #[error("figure {id}: {source}")]
     Draw {
         /// The figure.
         id: String,
         /// What went wrong.
-        msg: String,
+        source: scene::DrawError,
     },
 }
 
@@ -327,9 +327,9 @@ impl Ctx<'_> {
         let svg_path = self.fig_dir.join(format!("{id}.svg"));
         let png_path = self.fig_dir.join(format!("{id}.png"));
         let scale = self.opts.png_scale;
-        let draw_err = |msg: String| ReportError::Draw {
+        let draw_err = |source| ReportError::Draw {
             id: id.clone(),
-            msg,
+            source,
         };
         let svg = scene::to_svg(&d.scene, scale).map_err(draw_err)?;
         fs::write(&svg_path, svg).map_err(|e| ReportError::io(&svg_path, e))?;

@@ -204,8 +204,30 @@ impl Scene {
     }
 }
 
+/// Why a figure could not be drawn or written.
+#[derive(Debug, thiserror::Error)]
+pub enum DrawError {
+    /// The font compiled into the binary was not accepted by the drawing library.
+    #[error("the embedded font could not be loaded")]
+    Font,
+    /// The drawing library failed (its own message).
+    #[error("{0}")]
+    Backend(String),
+    /// The PNG file could not be created.
+    #[error("{}: {source}", path.display())]
+    Create {
+        /// The PNG file.
+        path: std::path::PathBuf,
+        /// Why.
+        source: std::io::Error,
+    },
+    /// Encoding or writing the PNG failed.
+    #[error(transparent)]
+    Png(#[from] png::EncodingError),
+}
+
 /// Makes the embedded font known to plotters under the family name the scenes use.
-fn register_font() -> Result<(), String> {
+fn register_font() -> Result<(), DrawError> {
     static DONE: OnceLock<bool> = OnceLock::new();
     let ok = *DONE.get_or_init(|| {
         plotters::style::register_font("sans-serif", FontStyle::Normal, FONT).is_ok()
@@ -213,19 +235,20 @@ fn register_font() -> Result<(), String> {
     if ok {
         Ok(())
     } else {
-        Err("the embedded font could not be loaded".to_string())
+        Err(DrawError::Font)
     }
 }
 
 /// Draws a scene as SVG text.
-pub fn to_svg(scene: &Scene, scale: f64) -> Result<String, String> {
+pub fn to_svg(scene: &Scene, scale: f64) -> Result<String, DrawError> {
     register_font()?;
     let size = pixel_size(scene, scale);
     let mut out = String::new();
     {
         let root = SVGBackend::with_string(&mut out, size).into_drawing_area();
         draw(&root, scene, scale, false)?;
-        root.present().map_err(|e| e.to_string())?;
+        root.present()
+            .map_err(|e| DrawError::Backend(e.to_string()))?;
     }
     Ok(logical_svg_size(&out, scene))
 }
@@ -233,24 +256,28 @@ pub fn to_svg(scene: &Scene, scale: f64) -> Result<String, String> {
 /// Draws a scene into a PNG file: RGB, 8 bits, encoded with the `png` crate at its best
 /// compression and adaptive filtering (the figures are mostly flat colour, which this shrinks
 /// well below a fast encoder's output; the report's page size depends on it).
-pub fn to_png(scene: &Scene, scale: f64, path: &Path) -> Result<(), String> {
+pub fn to_png(scene: &Scene, scale: f64, path: &Path) -> Result<(), DrawError> {
     register_font()?;
     let (w, h) = pixel_size(scene, scale);
     let mut buf = vec![0u8; w as usize * h as usize * 3];
     {
         let root = BitMapBackend::with_buffer(&mut buf, (w, h)).into_drawing_area();
         draw(&root, scene, scale, true)?;
-        root.present().map_err(|e| e.to_string())?;
+        root.present()
+            .map_err(|e| DrawError::Backend(e.to_string()))?;
     }
-    let file = std::fs::File::create(path).map_err(|e| format!("{}: {e}", path.display()))?;
+    let file = std::fs::File::create(path).map_err(|source| DrawError::Create {
+        path: path.to_path_buf(),
+        source,
+    })?;
     let mut enc = png::Encoder::new(std::io::BufWriter::new(file), w, h);
     enc.set_color(png::ColorType::Rgb);
     enc.set_depth(png::BitDepth::Eight);
     enc.set_compression(png::Compression::High);
     enc.set_filter(png::Filter::Adaptive);
-    let mut writer = enc.write_header().map_err(|e| e.to_string())?;
-    writer.write_image_data(&buf).map_err(|e| e.to_string())?;
-    writer.finish().map_err(|e| e.to_string())
+    let mut writer = enc.write_header()?;
+    writer.write_image_data(&buf)?;
+    Ok(writer.finish()?)
 }
 
 fn pixel_size(scene: &Scene, scale: f64) -> (u32, u32) {
@@ -299,10 +326,11 @@ fn draw<DB: DrawingBackend>(
     scene: &Scene,
     scale: f64,
     bitmap: bool,
-) -> Result<(), String> {
-    root.fill(&WHITE).map_err(|e| e.to_string())?;
+) -> Result<(), DrawError> {
+    let backend = |e: DrawingAreaErrorKind<DB::ErrorType>| DrawError::Backend(e.to_string());
+    root.fill(&WHITE).map_err(backend)?;
     for shape in &scene.shapes {
-        draw_shape(root, shape, scale, bitmap).map_err(|e| e.to_string())?;
+        draw_shape(root, shape, scale, bitmap).map_err(backend)?;
     }
     Ok(())
 }
