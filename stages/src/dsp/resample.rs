@@ -52,13 +52,38 @@ fn as_fraction(rate: f64) -> Option<(u64, u64)> {
     })
 }
 
-/// The factor up/down (in lowest terms) that takes `from` Hz to `to` Hz, or a message saying why
-/// there is none within [`MAX_FACTOR`].
-pub fn factors(from: f64, to: f64) -> Result<(usize, usize), String> {
+/// Why no rational factor within [`MAX_FACTOR`] takes one rate to another.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum FactorError {
+    /// A rate is no fraction p/q with q ≤ 10 000.
+    #[error("{to} Hz is not a simple rational multiple of the recording's {from} Hz")]
+    NotRational {
+        /// The recording's rate in Hz.
+        from: f64,
+        /// The rate asked for in Hz.
+        to: f64,
+    },
+    /// The factor in lowest terms has an up or down beyond [`MAX_FACTOR`].
+    #[error(
+        "going from {from} Hz to {to} Hz needs the factor {up}/{down}, beyond the largest supported up or down factor ({MAX_FACTOR}); choose a rate closer to a simple fraction of {from} Hz"
+    )]
+    TooLarge {
+        /// The recording's rate in Hz.
+        from: f64,
+        /// The rate asked for in Hz.
+        to: f64,
+        /// The up factor in lowest terms.
+        up: u128,
+        /// The down factor in lowest terms.
+        down: u128,
+    },
+}
+
+/// The factor up/down (in lowest terms) that takes `from` Hz to `to` Hz, or why there is none
+/// within [`MAX_FACTOR`].
+pub fn factors(from: f64, to: f64) -> Result<(usize, usize), FactorError> {
     let (Some((pf, qf)), Some((pt, qt))) = (as_fraction(from), as_fraction(to)) else {
-        return Err(format!(
-            "{to} Hz is not a simple rational multiple of the recording's {from} Hz"
-        ));
+        return Err(FactorError::NotRational { from, to });
     };
     // to/from = (pt/qt)/(pf/qf) = (pt·qf)/(qt·pf).
     let (up, down) = (
@@ -74,11 +99,7 @@ pub fn factors(from: f64, to: f64) -> Result<(usize, usize), String> {
     };
     let (up, down) = (up / g, down / g);
     if up > u128::from(MAX_FACTOR) || down > u128::from(MAX_FACTOR) {
-        return Err(format!(
-            "going from {from} Hz to {to} Hz needs the factor {up}/{down}, beyond the largest \
-             supported up or down factor ({MAX_FACTOR}); choose a rate closer to a simple \
-             fraction of {from} Hz"
-        ));
+        return Err(FactorError::TooLarge { from, to, up, down });
     }
     Ok((up as usize, down as usize))
 }
@@ -240,7 +261,21 @@ mod tests {
         assert_eq!(factors(999.0, 1000.0), Ok((1000, 999)));
         assert_eq!(factors(1000.0 / 3.0, 250.0), Ok((3, 4)));
         let err = factors(1000.0, 997.3).unwrap_err();
-        assert!(err.contains("9973/10000"), "{err}");
-        assert!(factors(1000.0, 250.123_456_789).is_err());
+        assert!(
+            matches!(
+                err,
+                FactorError::TooLarge {
+                    up: 9973,
+                    down: 10000,
+                    ..
+                }
+            ),
+            "{err}"
+        );
+        assert!(err.to_string().contains("9973/10000"), "{err}");
+        assert!(matches!(
+            factors(1000.0, 250.123_456_789),
+            Err(FactorError::NotRational { .. })
+        ));
     }
 }

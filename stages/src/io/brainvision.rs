@@ -29,7 +29,7 @@ pub use markers::{marker_events, parse_markers, Marker};
 use super::channels::{check_unique, describe_label, keep_chosen, Selection};
 use super::recording::{finish_single_rate, full_layout, resampled_length, sidecar_events};
 use super::tsv::{candidate_sidecars, read_channels};
-use super::{Choice, EventSource};
+use super::{fail, Choice, EventSource};
 use crate::array::{Event, LabelledArray, Layout};
 use crate::error::StageError;
 
@@ -42,10 +42,6 @@ pub struct Opened {
     pub layout: Layout,
     /// Warnings found while opening.
     pub warnings: Vec<String>,
-}
-
-fn fail(path: &Path, message: impl std::fmt::Display) -> StageError {
-    StageError::input(format!("{}: {message}", path.display()))
 }
 
 impl Opened {

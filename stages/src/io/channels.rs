@@ -17,6 +17,44 @@ const EDF_PLUS_TYPES: [&str; 14] = [
     "Sound", "Event",
 ];
 
+/// Why the channels of a recording cannot be chosen (the same for every format); the reader
+/// adds the file's path.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum ChannelError {
+    /// `data.channels` names a channel twice.
+    #[error("data.channels: {name:?} is listed twice")]
+    ListedTwice {
+        /// The name.
+        name: String,
+    },
+    /// `data.channels` names a channel the recording does not have.
+    #[error(
+        "data.channels: the recording has no channel named {name:?}; its channels are {}",
+        channels.join(", ")
+    )]
+    NoSuchChannel {
+        /// The name asked for.
+        name: String,
+        /// The names the recording has.
+        channels: Vec<String>,
+    },
+    /// No sampling rate is shared by more EEG channels than any other.
+    #[error(
+        "the EEG channels share no sampling rate that most of them have ({}); phasewise analyses the EEG channels at one rate: set `data.rate` to resample every channel as it is read, or choose channels of one rate with `data.channels`",
+        rates.iter().map(|(name, hz)| format!("{name} {hz} Hz")).collect::<Vec<_>>().join(", ")
+    )]
+    NoMajorityRate {
+        /// Each voting channel's name and rate in Hz.
+        rates: Vec<(String, f64)>,
+    },
+    /// Two channels end up with the same name.
+    #[error("two channels are named {name:?}; channel names must be unique")]
+    SameName {
+        /// The name.
+        name: String,
+    },
+}
+
 /// One data signal that becomes a channel.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Channel {
@@ -55,7 +93,7 @@ pub fn select(
     sidecar: Option<&[ChannelRow]>,
     choice: &Choice,
     warnings: &mut Vec<String>,
-) -> Result<Selection, String> {
+) -> Result<Selection, ChannelError> {
     // Each channel's own warnings are kept apart so that a dropped channel reports only its drop.
     let all: Vec<(Channel, usize, Vec<String>)> = header
         .signals
@@ -120,23 +158,22 @@ pub fn keep_chosen<T>(
     items: Vec<T>,
     wanted: Option<&[String]>,
     name_label: impl Fn(&T) -> (String, String),
-) -> Result<Vec<T>, String> {
+) -> Result<Vec<T>, ChannelError> {
     let Some(wanted) = wanted else {
         return Ok(items);
     };
     for (i, w) in wanted.iter().enumerate() {
         if wanted[..i].contains(w) {
-            return Err(format!("data.channels: {w:?} is listed twice"));
+            return Err(ChannelError::ListedTwice { name: w.clone() });
         }
         if !items.iter().any(|t| {
             let (name, label) = name_label(t);
             &name == w || label.trim() == w
         }) {
-            let names: Vec<String> = items.iter().map(|t| name_label(t).0).collect();
-            return Err(format!(
-                "data.channels: the recording has no channel named {w:?}; its channels are {}",
-                names.join(", ")
-            ));
+            return Err(ChannelError::NoSuchChannel {
+                name: w.clone(),
+                channels: items.iter().map(|t| name_label(t).0).collect(),
+            });
         }
     }
     Ok(items
@@ -256,7 +293,7 @@ fn unit_factor(
 fn majority_samples_per_record(
     all: &[(Channel, usize, Vec<String>)],
     record_seconds: f64,
-) -> Result<usize, String> {
+) -> Result<usize, ChannelError> {
     let eeg: Vec<&(Channel, usize, Vec<String>)> =
         all.iter().filter(|(c, _, _)| c.kind == "EEG").collect();
     let voters: Vec<&(Channel, usize, Vec<String>)> = if eeg.is_empty() {
@@ -278,29 +315,22 @@ fn majority_samples_per_record(
         [] => Ok(0),
         [one] => Ok(*one),
         _ => {
-            let rates: Vec<String> = voters
+            let rates = voters
                 .iter()
-                .map(|(c, n, _)| format!("{} {} Hz", c.name, *n as f64 / record_seconds))
+                .map(|(c, n, _)| (c.name.clone(), *n as f64 / record_seconds))
                 .collect();
-            Err(format!(
-                "the EEG channels share no sampling rate that most of them have ({}); \
-                 phasewise analyses the EEG channels at one rate: set `data.rate` to resample \
-                 every channel as it is read, or choose channels of one rate with \
-                 `data.channels`",
-                rates.join(", ")
-            ))
+            Err(ChannelError::NoMajorityRate { rates })
         }
     }
 }
 
 /// Channel names must be unique: every op addresses channels by name.
-pub fn check_unique(channels: &[Channel]) -> Result<(), String> {
+pub fn check_unique(channels: &[Channel]) -> Result<(), ChannelError> {
     for (i, c) in channels.iter().enumerate() {
         if channels[..i].iter().any(|d| d.name == c.name) {
-            return Err(format!(
-                "two channels are named {:?}; channel names must be unique",
-                c.name
-            ));
+            return Err(ChannelError::SameName {
+                name: c.name.clone(),
+            });
         }
     }
     Ok(())
@@ -329,6 +359,54 @@ mod tests {
         );
         assert_eq!(split_label("Fz"), ("Fz".into(), None));
         assert_eq!(split_label("Fp1 ref"), ("Fp1 ref".into(), None));
+    }
+
+    #[test]
+    fn choices_and_names_fail_with_their_variant() {
+        let names = || vec!["Fz".to_string(), "Cz".to_string()];
+        let pick = |wanted: &[&str]| {
+            let wanted: Vec<String> = wanted.iter().map(|w| w.to_string()).collect();
+            keep_chosen(names(), Some(&wanted), |n| (n.clone(), format!("EEG {n}")))
+        };
+        assert_eq!(pick(&["EEG Cz"]), Ok(vec!["Cz".to_string()]));
+        assert_eq!(
+            pick(&["Cz", "Cz"]),
+            Err(ChannelError::ListedTwice { name: "Cz".into() })
+        );
+        let err = pick(&["Pz"]).unwrap_err();
+        assert_eq!(
+            err,
+            ChannelError::NoSuchChannel {
+                name: "Pz".into(),
+                channels: names(),
+            }
+        );
+        assert_eq!(
+            err.to_string(),
+            "data.channels: the recording has no channel named \"Pz\"; its channels are Fz, Cz"
+        );
+        let channel = |name: &str| Channel {
+            signal: 0,
+            name: name.into(),
+            kind: "EEG".into(),
+            to_volts: 1.0,
+        };
+        assert_eq!(
+            check_unique(&[channel("Fz"), channel("Cz"), channel("Fz")]),
+            Err(ChannelError::SameName { name: "Fz".into() })
+        );
+        let voters = vec![
+            (channel("Fz"), 100, Vec::new()),
+            (channel("Cz"), 200, Vec::new()),
+        ];
+        let err = majority_samples_per_record(&voters, 0.5).unwrap_err();
+        assert_eq!(
+            err,
+            ChannelError::NoMajorityRate {
+                rates: vec![("Fz".into(), 200.0), ("Cz".into(), 400.0)]
+            }
+        );
+        assert!(err.to_string().contains("(Fz 200 Hz, Cz 400 Hz)"), "{err}");
     }
 
     #[test]

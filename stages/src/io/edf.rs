@@ -16,10 +16,10 @@ mod samples;
 mod tal;
 mod write;
 
-pub use header::{FileKind, Header, SignalHeader};
+pub use header::{EdfHeaderError, Expected, FieldName, FileKind, Header, SignalHeader, SignalRef};
 pub use samples::{read_annotation_bytes, read_samples, Scaling};
-pub use tal::{parse_record_tals, RecordTals};
-pub use write::{write_edf_plus, EdfWriteSpec, SignalSpec};
+pub use tal::{parse_record_tals, RecordTals, TalError};
+pub use write::{write_edf_plus, EdfWriteError, EdfWriteSpec, SignalSpec};
 
 /// Width in bytes of the fixed part of the header and of each signal's header block.
 pub const BLOCK: usize = 256;

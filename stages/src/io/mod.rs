@@ -43,6 +43,12 @@ mod tsv;
 
 use recording::Opened;
 
+/// A reader's error about the file `path`: its path, once, then what is wrong. Every reader
+/// attaches the path here, at the boundary between its typed errors and [`StageError`].
+pub(crate) fn fail(path: &Path, message: impl std::fmt::Display) -> StageError {
+    StageError::input(format!("{}: {message}", path.display()))
+}
+
 /// Where the events of a recording come from (`data.events` in the pipeline file).
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]

@@ -32,7 +32,7 @@ use ndarray::Array2;
 use super::channels::{check_unique, describe_label, keep_chosen, Selection};
 use super::recording::{finish_single_rate, full_layout, resampled_length, sidecar_events};
 use super::tsv::{candidate_sidecars, read_channels};
-use super::{Choice, EventSource};
+use super::{fail, Choice, EventSource};
 use crate::array::{Event, LabelledArray, Layout, Positions};
 use crate::error::StageError;
 
@@ -43,8 +43,76 @@ const ELECTRODES: &str = "general/extracellular_ephys/electrodes";
 /// Columns of the trials table that can give an event's label, in order of preference.
 const LABEL_COLUMNS: [&str; 3] = ["trial_type", "condition", "label"];
 
-fn fail(path: &Path, message: impl std::fmt::Display) -> StageError {
-    StageError::input(format!("{}: {message}", path.display()))
+/// Why the series list, the electrodes table or the trials table of an NWB file cannot be read;
+/// the reader adds the file's path.
+#[derive(Debug, thiserror::Error)]
+pub enum NwbError {
+    /// A group's subgroups cannot be listed.
+    #[error("{group}: cannot list its groups: {source}")]
+    Groups {
+        /// The group's path.
+        group: String,
+        /// HDF5's reason.
+        source: hdf5::Error,
+    },
+    /// A column that must hold text does not.
+    #[error("{dataset}: expected a column of text: {source}")]
+    NotText {
+        /// The dataset's path.
+        dataset: String,
+        /// HDF5's reason.
+        source: hdf5::Error,
+    },
+    /// A column that must hold numbers does not.
+    #[error("{dataset}: expected numbers: {source}")]
+    NotNumbers {
+        /// The dataset's path.
+        dataset: String,
+        /// HDF5's reason.
+        source: hdf5::Error,
+    },
+    /// No electrodes table.
+    #[error("the file has no electrodes table (/{ELECTRODES}), which an ElectricalSeries needs")]
+    NoElectrodesTable,
+    /// The electrodes table's `id` column cannot be read as integers.
+    #[error("/{ELECTRODES}/id: {0}")]
+    ElectrodeIds(#[source] hdf5::Error),
+    /// The `label` and `id` columns differ in length.
+    #[error("/{ELECTRODES}: the label column has {labels} rows, the id column {ids}")]
+    LabelRows {
+        /// Rows of `label`.
+        labels: usize,
+        /// Rows of `id`.
+        ids: usize,
+    },
+    /// `events: annotations` on a file without a trials table.
+    #[error(
+        "`events: annotations` reads the NWB trials table, but the file has none (/intervals/trials); use `events: sidecar`"
+    )]
+    NoTrials,
+    /// The trials table lacks a required column.
+    #[error("/intervals/trials has no {column} column")]
+    NoTrialColumn {
+        /// `start_time` or `stop_time`.
+        column: &'static str,
+    },
+    /// The trials table's columns differ in length.
+    #[error("/intervals/trials: its columns have different lengths")]
+    RaggedTrials,
+    /// A trial starting outside the series.
+    #[error(
+        "/intervals/trials row {row}: start_time {start_time} s lies outside the series ({from} s to {to} s)"
+    )]
+    TrialOutside {
+        /// 0-based row (as NWB tools count).
+        row: usize,
+        /// The row's start_time in s.
+        start_time: f64,
+        /// The series' first sample in s.
+        from: f64,
+        /// The end of the series in s.
+        to: f64,
+    },
 }
 
 /// An NWB recording whose series, electrodes and events have been read (all but the samples).
@@ -75,7 +143,7 @@ fn open_file(path: &Path) -> Result<hdf5::File, StageError> {
         .map_err(|e| fail(path, format!("cannot open it as an HDF5 (NWB) file: {e}")))
 }
 
-fn series_in(file: &hdf5::File) -> Result<Vec<String>, String> {
+fn series_in(file: &hdf5::File) -> Result<Vec<String>, NwbError> {
     let mut found = Vec::new();
     for top in ["acquisition", "processing"] {
         if let Ok(group) = file.group(top) {
@@ -86,8 +154,12 @@ fn series_in(file: &hdf5::File) -> Result<Vec<String>, String> {
     Ok(found)
 }
 
-fn collect_series(group: &hdf5::Group, found: &mut Vec<String>) -> Result<(), String> {
-    for child in group.groups().map_err(|e| e.to_string())? {
+fn collect_series(group: &hdf5::Group, found: &mut Vec<String>) -> Result<(), NwbError> {
+    let children = group.groups().map_err(|source| NwbError::Groups {
+        group: group.name(),
+        source,
+    })?;
+    for child in children {
         if text_attr(&child, "neurodata_type").as_deref() == Some(SERIES_TYPE) {
             found.push(child.name().trim_start_matches('/').to_string());
         } else {
@@ -113,20 +185,26 @@ fn number_attr(location: &hdf5::Location, name: &str) -> Option<f64> {
 }
 
 /// A column of strings (variable-length UTF-8 or ASCII).
-fn text_column(dataset: &hdf5::Dataset) -> Result<Vec<String>, String> {
+fn text_column(dataset: &hdf5::Dataset) -> Result<Vec<String>, NwbError> {
     if let Ok(v) = dataset.read_raw::<hdf5::types::VarLenUnicode>() {
         return Ok(v.iter().map(|s| s.as_str().to_string()).collect());
     }
     dataset
         .read_raw::<hdf5::types::VarLenAscii>()
         .map(|v| v.iter().map(|s| s.as_str().to_string()).collect())
-        .map_err(|e| format!("{}: expected a column of text: {e}", dataset.name()))
+        .map_err(|source| NwbError::NotText {
+            dataset: dataset.name(),
+            source,
+        })
 }
 
-fn numbers(dataset: &hdf5::Dataset) -> Result<Vec<f64>, String> {
+fn numbers(dataset: &hdf5::Dataset) -> Result<Vec<f64>, NwbError> {
     dataset
         .read_raw::<f64>()
-        .map_err(|e| format!("{}: expected numbers: {e}", dataset.name()))
+        .map_err(|source| NwbError::NotNumbers {
+            dataset: dataset.name(),
+            source,
+        })
 }
 
 /// The series `choice.series` names, or the only one there is.
@@ -182,14 +260,14 @@ struct ElectrodeRows {
     positions: Option<Vec<[f64; 3]>>,
 }
 
-fn electrode_rows(file: &hdf5::File) -> Result<ElectrodeRows, String> {
-    let table = file.group(ELECTRODES).map_err(|_| {
-        format!("the file has no electrodes table (/{ELECTRODES}), which an ElectricalSeries needs")
-    })?;
+fn electrode_rows(file: &hdf5::File) -> Result<ElectrodeRows, NwbError> {
+    let table = file
+        .group(ELECTRODES)
+        .map_err(|_| NwbError::NoElectrodesTable)?;
     let ids = table
         .dataset("id")
         .and_then(|d| d.read_raw::<i64>())
-        .map_err(|e| format!("/{ELECTRODES}/id: {e}"))?;
+        .map_err(NwbError::ElectrodeIds)?;
     let names = match table.dataset("label") {
         Ok(d) => text_column(&d)?,
         Err(_) => ids.iter().map(|i| format!("e{i}")).collect(),
@@ -210,11 +288,10 @@ fn electrode_rows(file: &hdf5::File) -> Result<ElectrodeRows, String> {
         _ => None,
     };
     if names.len() != ids.len() {
-        return Err(format!(
-            "/{ELECTRODES}: the label column has {} rows, the id column {}",
-            names.len(),
-            ids.len()
-        ));
+        return Err(NwbError::LabelRows {
+            labels: names.len(),
+            ids: ids.len(),
+        });
     }
     Ok(ElectrodeRows {
         names,
@@ -262,7 +339,7 @@ impl Opened {
         }
         let channel_conversion = match series.dataset("channel_conversion") {
             Ok(d) => {
-                let v = numbers(&d).map_err(at)?;
+                let v = numbers(&d).map_err(|e| at(e.to_string()))?;
                 if v.len() != n_channels {
                     return Err(at(format!(
                         "channel_conversion has {} values for {n_channels} channels",
@@ -466,14 +543,14 @@ fn add_table_positions(
 }
 
 /// The trials table as events (onsets relative to the series' first sample).
-fn trials(file: &hdf5::File, start: f64, length: f64) -> Result<Vec<Event>, String> {
-    let table = file.group("intervals/trials").map_err(|_| {
-        "`events: annotations` reads the NWB trials table, but the file has none (/intervals/trials); use `events: sidecar`".to_string()
-    })?;
-    let column = |name: &str| {
+fn trials(file: &hdf5::File, start: f64, length: f64) -> Result<Vec<Event>, NwbError> {
+    let table = file
+        .group("intervals/trials")
+        .map_err(|_| NwbError::NoTrials)?;
+    let column = |name: &'static str| {
         table
             .dataset(name)
-            .map_err(|_| format!("/intervals/trials has no {name} column"))
+            .map_err(|_| NwbError::NoTrialColumn { column: name })
     };
     let starts = numbers(&column("start_time")?)?;
     let stops = numbers(&column("stop_time")?)?;
@@ -482,16 +559,18 @@ fn trials(file: &hdf5::File, start: f64, length: f64) -> Result<Vec<Event>, Stri
         None => vec!["trial".to_string(); starts.len()],
     };
     if stops.len() != starts.len() || labels.len() != starts.len() {
-        return Err("/intervals/trials: its columns have different lengths".into());
+        return Err(NwbError::RaggedTrials);
     }
     let mut events = Vec::with_capacity(starts.len());
     for (i, ((&s, &e), label)) in starts.iter().zip(&stops).zip(labels).enumerate() {
         let onset = s - start;
         if !(onset.is_finite() && (0.0..length).contains(&onset)) {
-            return Err(format!(
-                "/intervals/trials row {i}: start_time {s} s lies outside the series ({start} s to {} s)",
-                start + length
-            ));
+            return Err(NwbError::TrialOutside {
+                row: i,
+                start_time: s,
+                from: start,
+                to: start + length,
+            });
         }
         events.push(Event {
             onset,
@@ -623,7 +702,16 @@ mod tests {
             let err = read_chosen_layout(&path, EventSource::Annotations, &choice).unwrap_err();
             let err = err.to_string();
             assert!(err.contains(needle) && err.contains(file), "{file}: {err}");
+            assert_eq!(err.matches(file).count(), 1, "{err}");
         }
+        let two = open_file(&fixture_path("nwb", "two.nwb")).unwrap();
+        assert!(matches!(trials(&two, 0.0, 1.0), Err(NwbError::NoTrials)));
+        let lfp = open_file(&fixture_path("nwb", "lfp.nwb")).unwrap();
+        assert!(matches!(
+            trials(&lfp, 1e6, 1.0),
+            Err(NwbError::TrialOutside { row: 0, .. })
+        ));
+        assert_eq!(electrode_rows(&lfp).unwrap().names.len(), 4);
         let not_hdf5 = fixture_path("multirate", "rates.json");
         let dir = tempfile::tempdir().unwrap();
         let copy = dir.path().join("x.nwb");

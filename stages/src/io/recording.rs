@@ -14,16 +14,109 @@ use std::path::{Path, PathBuf};
 use ndarray::Array2;
 
 use super::channels::{select, Selection};
-use super::edf::{parse_record_tals, read_annotation_bytes, read_samples, Header, Scaling, BLOCK};
+use super::edf::{
+    parse_record_tals, read_annotation_bytes, read_samples, EdfHeaderError, Header, Scaling,
+    TalError, BLOCK,
+};
 use super::tsv::{
     candidate_sidecars, read_channels, read_coordinate_units, read_electrodes, read_events,
     ChannelRow,
 };
-use super::{Choice, EventSource};
+use super::{fail, Choice, EventSource};
 use crate::array::{Coord, Event, LabelledArray, Layout, Meta, Positions};
-use crate::dsp::resample::{factors, output_len, Resampler};
+use crate::dsp::resample::{factors, output_len, FactorError, Resampler};
 use crate::error::StageError;
 use crate::ops::resample::resample_rows;
+
+/// Why an EDF/BDF file cannot be read, beyond its header's own fields: its size, its reading,
+/// its annotations. [`Opened::open`] adds the file's path.
+#[derive(Debug, thiserror::Error)]
+pub enum EdfFileError {
+    /// The file's size cannot be read.
+    #[error("cannot read its size: {0}")]
+    Size(#[source] std::io::Error),
+    /// The file is shorter than the fixed header.
+    #[error("the file is {size} bytes long, shorter than the {BLOCK}-byte EDF/BDF header")]
+    ShorterThanFixedHeader {
+        /// The file's size in bytes.
+        size: u64,
+    },
+    /// The file is shorter than the header its signal count implies.
+    #[error(
+        "the file is {size} bytes long, shorter than the {header}-byte header its {signals} signals need"
+    )]
+    ShorterThanHeader {
+        /// The file's size in bytes.
+        size: u64,
+        /// `256 · (signals + 1)`.
+        header: usize,
+        /// The declared number of signals.
+        signals: usize,
+    },
+    /// Reading the header failed.
+    #[error("cannot read the header: {0}")]
+    ReadHeader(#[source] std::io::Error),
+    /// A header field is wrong.
+    #[error(transparent)]
+    Header(#[from] EdfHeaderError),
+    /// The header declares no data records.
+    #[error("the header declares 0 data records: the file holds no samples")]
+    NoRecords,
+    /// The file's size is not what the header declares.
+    #[error(
+        "the header declares {records} data records of {record_bytes} bytes (a file of {} bytes), but the file is {size} bytes and holds {whole} whole records{}; it is truncated or its record count is wrong",
+        expected.map_or("more than 2^64".to_string(), |e| e.to_string()),
+        if *partial { " and part of another" } else { "" }
+    )]
+    SizeMismatch {
+        /// The declared number of data records.
+        records: usize,
+        /// Bytes in one data record.
+        record_bytes: u64,
+        /// The size the header implies (`None`: beyond 2^64).
+        expected: Option<u64>,
+        /// The file's size.
+        size: u64,
+        /// Whole records the file holds.
+        whole: u64,
+        /// It holds part of one more record.
+        partial: bool,
+    },
+    /// Reading the annotation signal's bytes failed.
+    #[error("cannot read the annotations: {0}")]
+    ReadAnnotations(#[source] std::io::Error),
+    /// A data record's annotations do not parse.
+    #[error("data record {record}: {source}")]
+    Annotation {
+        /// 1-based number of the data record.
+        record: usize,
+        /// What is wrong with its TALs.
+        source: TalError,
+    },
+    /// An EDF+D file whose records are not contiguous.
+    #[error(
+        "this EDF+D (discontinuous) file has a gap: data record {record} starts at {starts} s, not at {expected} s; recordings with gaps are not supported"
+    )]
+    Gap {
+        /// 1-based number of the data record.
+        record: usize,
+        /// Its time stamp in s.
+        starts: f64,
+        /// Where it would start without a gap, in s.
+        expected: f64,
+    },
+}
+
+/// A `data.rate` that no rational factor reaches from a channel's rate; the reader adds the
+/// file's path.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+#[error("data.rate: {}{source}", channel.as_ref().map_or(String::new(), |c| format!("channel {c}: ")))]
+pub struct DataRateError {
+    /// The channel, when the rates differ by channel.
+    pub channel: Option<String>,
+    /// Why no factor reaches the rate.
+    pub source: FactorError,
+}
 
 /// A recording whose header and sidecars have been read and checked.
 pub struct Opened {
@@ -44,9 +137,9 @@ impl Opened {
         events: Option<EventSource>,
         choice: &Choice,
     ) -> Result<Opened, StageError> {
-        let fail = |m: String| StageError::input(format!("{}: {m}", path.display()));
-        let mut file = File::open(path).map_err(|e| fail(format!("cannot open: {e}")))?;
-        let header = read_header(&mut file).map_err(fail)?;
+        let fail = |m: &dyn std::fmt::Display| super::fail(path, m);
+        let mut file = File::open(path).map_err(|e| fail(&format_args!("cannot open: {e}")))?;
+        let header = read_header(&mut file).map_err(|e| fail(&e))?;
         let [events_path, channels_path, electrodes_path, coordsystem_path] =
             candidate_sidecars(path);
         let sidecar = match channels_path.is_file() {
@@ -54,7 +147,8 @@ impl Opened {
             false => None,
         };
         let mut warnings = Vec::new();
-        let selection = select(&header, sidecar.as_deref(), choice, &mut warnings).map_err(fail)?;
+        let selection =
+            select(&header, sidecar.as_deref(), choice, &mut warnings).map_err(|e| fail(&e))?;
         let samples = match &selection.resampled_from {
             None => header.records * selection.samples_per_record,
             Some(per_record) => {
@@ -67,11 +161,11 @@ impl Opened {
                         )
                     })
                     .collect();
-                resampled_length(&native, selection.rate).map_err(fail)?
+                resampled_length(&native, selection.rate).map_err(|e| fail(&e))?
             }
         };
         let length = samples as f64 / selection.rate;
-        let annotations = annotations(&mut file, &header, selection.rate).map_err(fail)?;
+        let annotations = annotations(&mut file, &header, selection.rate).map_err(|e| fail(&e))?;
         let events = match (annotations, events) {
             (_, None) => Vec::new(),
             (Some(found), Some(EventSource::Annotations)) => found,
@@ -95,7 +189,7 @@ impl Opened {
 
     /// Read the samples of the kept channels, in volts (resampled to `data.rate` when given).
     pub fn read(self) -> Result<LabelledArray, StageError> {
-        let fail = |m: String| StageError::input(format!("{}: {m}", self.path.display()));
+        let fail = |m: &dyn std::fmt::Display| super::fail(&self.path, m);
         let chosen: Vec<(usize, Scaling)> = self
             .selection
             .channels
@@ -107,14 +201,15 @@ impl Opened {
                 )
             })
             .collect();
-        let mut file = File::open(&self.path).map_err(|e| fail(format!("cannot open: {e}")))?;
+        let mut file =
+            File::open(&self.path).map_err(|e| fail(&format_args!("cannot open: {e}")))?;
         let mut read_rows = |rows: &[(usize, Scaling)], spr: usize| {
             let mut values = Array2::<f32>::zeros((rows.len(), self.header.records * spr));
             let out = values
                 .as_slice_mut()
-                .ok_or_else(|| fail("internal: the output array is not contiguous".into()))?;
+                .ok_or_else(|| fail(&"internal: the output array is not contiguous"))?;
             read_samples(&mut file, &self.header, rows, out)
-                .map_err(|e| fail(format!("reading the data records failed: {e}")))?;
+                .map_err(|e| fail(&format_args!("reading the data records failed: {e}")))?;
             Ok::<_, StageError>(values)
         };
         let Some(per_record) = &self.selection.resampled_from else {
@@ -134,8 +229,8 @@ impl Opened {
             let group: Vec<(usize, Scaling)> = rows.iter().map(|&r| chosen[r]).collect();
             let native = read_rows(&group, spr)?;
             let from = spr as f64 / self.header.record_seconds;
-            let resampled =
-                resample_to(native.view(), from, self.selection.rate, samples).map_err(fail)?;
+            let resampled = resample_to(native.view(), from, self.selection.rate, samples)
+                .map_err(|e| fail(&e))?;
             for (k, &r) in rows.iter().enumerate() {
                 values.row_mut(r).assign(&resampled.row(k));
             }
@@ -151,11 +246,13 @@ impl Opened {
 pub(super) fn resampled_length(
     channels: &[(&str, f64, usize)],
     rate: f64,
-) -> Result<usize, String> {
+) -> Result<usize, DataRateError> {
     let mut shortest = usize::MAX;
     for &(name, from, n) in channels {
-        let (up, down) =
-            factors(from, rate).map_err(|m| format!("data.rate: channel {name}: {m}"))?;
+        let (up, down) = factors(from, rate).map_err(|source| DataRateError {
+            channel: Some(name.to_string()),
+            source,
+        })?;
         shortest = shortest.min(output_len(n, up, down));
     }
     Ok(if channels.is_empty() { 0 } else { shortest })
@@ -169,7 +266,7 @@ pub(super) fn finish_single_rate(
     selection: &Selection,
     from: f64,
     layout: &Layout,
-) -> Result<Array2<f32>, String> {
+) -> Result<Array2<f32>, DataRateError> {
     let rows: Vec<usize> = selection.channels.iter().map(|c| c.signal).collect();
     let kept = match rows.iter().copied().eq(0..all.nrows()) {
         true => all,
@@ -191,8 +288,11 @@ pub(super) fn resample_to(
     from: f64,
     to: f64,
     samples: usize,
-) -> Result<Array2<f32>, String> {
-    let (up, down) = factors(from, to).map_err(|m| format!("data.rate: {m}"))?;
+) -> Result<Array2<f32>, DataRateError> {
+    let (up, down) = factors(from, to).map_err(|source| DataRateError {
+        channel: None,
+        source,
+    })?;
     let out = resample_rows(x, &Resampler::new(up, down));
     if out.ncols() == samples {
         return Ok(out);
@@ -209,52 +309,52 @@ pub(super) fn sidecar_events(
     length: f64,
     warnings: &mut Vec<String>,
 ) -> Result<Vec<Event>, StageError> {
-    let fail = |m: String| StageError::input(format!("{}: {m}", path.display()));
     match source {
         EventSource::Annotations => Err(fail(
-            "`events: annotations` needs an EDF+/BDF+ file with an annotations signal; this is plain EDF/BDF (use `events: sidecar`)".into(),
+            path,
+            "`events: annotations` needs an EDF+/BDF+ file with an annotations signal; this is plain EDF/BDF (use `events: sidecar`)",
         )),
-        EventSource::Sidecar if !events_path.is_file() => Err(fail(format!(
-            "`events: sidecar` needs the events file {}, which does not exist",
-            events_path.display()
-        ))),
+        EventSource::Sidecar if !events_path.is_file() => Err(fail(
+            path,
+            format!(
+                "`events: sidecar` needs the events file {}, which does not exist",
+                events_path.display()
+            ),
+        )),
         EventSource::Sidecar => read_events(events_path, length, warnings),
     }
 }
 
 /// Read and check the header, and that the file size matches it.
-fn read_header(file: &mut File) -> Result<Header, String> {
-    let size = file
-        .metadata()
-        .map_err(|e| format!("cannot read its size: {e}"))?
-        .len();
+fn read_header(file: &mut File) -> Result<Header, EdfFileError> {
+    let size = file.metadata().map_err(EdfFileError::Size)?.len();
     if size < BLOCK as u64 {
-        return Err(format!(
-            "the file is {size} bytes long, shorter than the {BLOCK}-byte EDF/BDF header"
-        ));
+        return Err(EdfFileError::ShorterThanFixedHeader { size });
     }
     let mut bytes = vec![0u8; BLOCK];
     file.read_exact(&mut bytes)
-        .map_err(|e| format!("cannot read the header: {e}"))?;
+        .map_err(EdfFileError::ReadHeader)?;
     let ns = Header::signal_count(&bytes)?;
     let full = BLOCK * (ns + 1);
     if size < full as u64 {
-        return Err(format!(
-            "the file is {size} bytes long, shorter than the {full}-byte header its {ns} signals need"
-        ));
+        return Err(EdfFileError::ShorterThanHeader {
+            size,
+            header: full,
+            signals: ns,
+        });
     }
     bytes.resize(full, 0);
     file.read_exact(&mut bytes[BLOCK..])
-        .map_err(|e| format!("cannot read the header: {e}"))?;
+        .map_err(EdfFileError::ReadHeader)?;
     let header = Header::parse(&bytes)?;
     check_size(&header, size)?;
     Ok(header)
 }
 
 /// The file must hold exactly the records the header declares.
-fn check_size(header: &Header, size: u64) -> Result<(), String> {
+fn check_size(header: &Header, size: u64) -> Result<(), EdfFileError> {
     if header.records == 0 {
-        return Err("the header declares 0 data records: the file holds no samples".into());
+        return Err(EdfFileError::NoRecords);
     }
     let record = header.record_bytes() as u64;
     let expected = header.expected_file_size();
@@ -263,20 +363,23 @@ fn check_size(header: &Header, size: u64) -> Result<(), String> {
     }
     let data = size.saturating_sub(header.header_bytes as u64);
     let whole = data / record.max(1);
-    let partial = match data.is_multiple_of(record.max(1)) {
-        true => "",
-        false => " and part of another",
-    };
-    let expected = expected.map_or("more than 2^64".to_string(), |e| e.to_string());
-    Err(format!(
-        "the header declares {} data records of {record} bytes (a file of {expected} bytes), but the file is {size} bytes and holds {whole} whole records{partial}; it is truncated or its record count is wrong",
-        header.records
-    ))
+    Err(EdfFileError::SizeMismatch {
+        records: header.records,
+        record_bytes: record,
+        expected,
+        size,
+        whole,
+        partial: !data.is_multiple_of(record.max(1)),
+    })
 }
 
 /// EDF+ annotations as events relative to the first sample, or `None` for plain EDF/BDF.
 /// Also checks that an EDF+D file's records are contiguous.
-fn annotations(file: &mut File, header: &Header, rate: f64) -> Result<Option<Vec<Event>>, String> {
+fn annotations(
+    file: &mut File,
+    header: &Header,
+    rate: f64,
+) -> Result<Option<Vec<Event>>, EdfFileError> {
     let signals: Vec<usize> = (0..header.signals.len())
         .filter(|&i| header.signals[i].annotation)
         .collect();
@@ -286,11 +389,14 @@ fn annotations(file: &mut File, header: &Header, rate: f64) -> Result<Option<Vec
     let mut stamps = Vec::new();
     let mut events = Vec::new();
     for (n, &signal) in signals.iter().enumerate() {
-        let records = read_annotation_bytes(file, header, signal)
-            .map_err(|e| format!("cannot read the annotations: {e}"))?;
+        let records =
+            read_annotation_bytes(file, header, signal).map_err(EdfFileError::ReadAnnotations)?;
         for (r, bytes) in records.iter().enumerate() {
-            let tals = parse_record_tals(bytes, n == 0)
-                .map_err(|m| format!("data record {}: {m}", r + 1))?;
+            let tals =
+                parse_record_tals(bytes, n == 0).map_err(|source| EdfFileError::Annotation {
+                    record: r + 1,
+                    source,
+                })?;
             stamps.extend(tals.stamp);
             events.extend(tals.annotations);
         }
@@ -309,15 +415,16 @@ fn annotations(file: &mut File, header: &Header, rate: f64) -> Result<Option<Vec
 }
 
 /// EDF+D records may have gaps between them; a [channel, time] array cannot show a gap.
-fn check_contiguous(stamps: &[f64], record_seconds: f64, rate: f64) -> Result<(), String> {
+fn check_contiguous(stamps: &[f64], record_seconds: f64, rate: f64) -> Result<(), EdfFileError> {
     let start = stamps.first().copied().unwrap_or(0.0);
     for (r, &s) in stamps.iter().enumerate() {
         let expected = start + r as f64 * record_seconds;
         if (s - expected).abs() > 0.5 / rate {
-            return Err(format!(
-                "this EDF+D (discontinuous) file has a gap: data record {} starts at {s} s, not at {expected} s; recordings with gaps are not supported",
-                r + 1
-            ));
+            return Err(EdfFileError::Gap {
+                record: r + 1,
+                starts: s,
+                expected,
+            });
         }
     }
     Ok(())
@@ -716,6 +823,7 @@ mod tests {
                 err.contains(needle) && err.contains("sub-01_task-x_eeg.edf"),
                 "{text}: {err}"
             );
+            assert_eq!(err.matches("sub-01_task-x_eeg.edf").count(), 1, "{err}");
         }
     }
 
@@ -757,6 +865,82 @@ mod tests {
         let err = read_error(&path, EventSource::Annotations);
         assert!(
             err.contains("data record 1") && err.contains("\"x0\""),
+            "{err}"
+        );
+    }
+
+    // The same problems as values: the reader's own variants, the header's and the TALs'
+    // wrapped in them.
+    #[test]
+    fn file_errors_are_variants() {
+        let (_dir, path) = recording();
+        let bytes = std::fs::read(&path).unwrap();
+        let header = |path: &Path| read_header(&mut File::open(path).unwrap());
+        std::fs::write(&path, &bytes[..bytes.len() - 10]).unwrap();
+        assert!(matches!(
+            header(&path),
+            Err(EdfFileError::SizeMismatch {
+                records: 3,
+                whole: 2,
+                partial: true,
+                ..
+            })
+        ));
+        std::fs::write(&path, &bytes[..600]).unwrap();
+        assert!(matches!(
+            header(&path),
+            Err(EdfFileError::ShorterThanHeader {
+                size: 600,
+                header: 1280,
+                signals: 4
+            })
+        ));
+        std::fs::write(&path, &bytes).unwrap();
+        patch(&path, 236, 8, "many");
+        assert!(matches!(
+            header(&path),
+            Err(EdfFileError::Header(EdfHeaderError::NotANumber {
+                offset: 236,
+                ..
+            }))
+        ));
+        std::fs::write(&path, &bytes).unwrap();
+        // The first record's time-stamp TAL, in the annotation signal (the last one).
+        patch(&path, 1280 + 3 * 100 * 2, 2, "x0");
+        let parsed = header(&path).unwrap();
+        let found = annotations(&mut File::open(&path).unwrap(), &parsed, FS);
+        assert!(
+            matches!(
+                &found,
+                Err(EdfFileError::Annotation {
+                    record: 1,
+                    source: TalError::Onset { found }
+                }) if found == "x0"
+            ),
+            "{found:?}"
+        );
+        assert_eq!(
+            check_contiguous(&[0.0, 1.0, 5.0], 1.0, FS).unwrap_err().to_string(),
+            "this EDF+D (discontinuous) file has a gap: data record 3 starts at 5 s, not at 2 s; recordings with gaps are not supported"
+        );
+    }
+
+    #[test]
+    fn a_rate_no_factor_reaches_names_the_channel() {
+        let err = resampled_length(&[("Fz", 1000.0, 100), ("Cz", 800.0, 80)], 997.3).unwrap_err();
+        assert_eq!(err.channel.as_deref(), Some("Fz"));
+        assert!(matches!(err.source, FactorError::TooLarge { .. }));
+        assert!(
+            err.to_string()
+                .starts_with("data.rate: channel Fz: going from 1000 Hz"),
+            "{err}"
+        );
+        let x = Array2::<f32>::zeros((1, 10));
+        let err = resample_to(x.view(), 1000.0, 250.123_456_789, 3).unwrap_err();
+        assert_eq!(err.channel, None);
+        assert!(
+            err.to_string()
+                .starts_with("data.rate: 250.123456789 Hz is not"),
             "{err}"
         );
     }

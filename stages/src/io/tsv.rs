@@ -10,6 +10,7 @@
 
 use std::path::{Path, PathBuf};
 
+use super::fail;
 use crate::array::Event;
 use crate::error::StageError;
 
@@ -104,10 +105,6 @@ impl Table {
             )
         })
     }
-}
-
-fn fail(path: &Path, message: impl std::fmt::Display) -> StageError {
-    StageError::input(format!("{}: {message}", path.display()))
 }
 
 /// `n/a` or empty.

@@ -83,7 +83,8 @@ pub fn resample_rows(x: ndarray::ArrayView2<'_, f32>, resampler: &Resampler) -> 
 fn plan(p: &ResampleParams, input: &Layout) -> Result<(Layout, Resampler), StageError> {
     Resample::check(p)?;
     let rec = Continuous::of(input)?;
-    let (up, down) = factors(rec.fs, p.rate).map_err(|m| StageError::param("rate", m))?;
+    let (up, down) =
+        factors(rec.fs, p.rate).map_err(|m| StageError::param("rate", m.to_string()))?;
     let resampler = Resampler::new(up, down);
     let n_out = resampler.output_len(rec.n_times);
     let mut layout = input.clone();

@@ -70,35 +70,200 @@ pub struct Header {
     pub signals: Vec<SignalHeader>,
 }
 
+/// A header that cannot be read, found while parsing or checking it. It names the field (and
+/// for a per-signal field the signal's number and label), the value found and what was
+/// expected; the reader adds the file's path.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum EdfHeaderError {
+    /// The version field is neither EDF's `0` nor BDF's 0xFF `BIOSEMI`.
+    #[error(
+        "the version field is {found:?}; an EDF file starts with \"0\" and a BDF file with 0xFF BIOSEMI"
+    )]
+    Version {
+        /// The field's text.
+        found: String,
+    },
+    /// A field that must hold a number does not.
+    #[error("the {field} is {found:?} (header byte {offset}), expected {expected}")]
+    NotANumber {
+        /// Which field.
+        field: FieldName,
+        /// Its byte offset in the header.
+        offset: usize,
+        /// Its text, trimmed.
+        found: String,
+        /// What it must hold.
+        expected: Expected,
+    },
+    /// The number of signals is 0 or negative.
+    #[error("the header declares {count} signals; a recording needs at least one")]
+    NoSignals {
+        /// The declared count.
+        count: i64,
+    },
+    /// The number of data records is negative (-1: unknown).
+    #[error(
+        "the header says there are {count} data records; -1 means the recorder never closed the file, any negative count is invalid"
+    )]
+    NegativeRecords {
+        /// The declared count.
+        count: i64,
+    },
+    /// A signal's samples per data record is negative.
+    #[error("the samples per data record of {signal} is {found}; it must not be negative")]
+    NegativeSamples {
+        /// Which signal.
+        signal: SignalRef,
+        /// The declared number.
+        found: i64,
+    },
+    /// The header-size field disagrees with the number of signals.
+    #[error(
+        "the header says it is {declared} bytes long, but with {signals} signals it must be {expected}"
+    )]
+    HeaderBytes {
+        /// The header-size field.
+        declared: usize,
+        /// The number of signals.
+        signals: usize,
+        /// `256 · (signals + 1)`.
+        expected: usize,
+    },
+    /// Every signal is an annotation signal.
+    #[error("the file holds no data signals, only annotations")]
+    OnlyAnnotations,
+    /// The record duration is not positive.
+    #[error("the duration of a data record is {seconds} s; it must be positive")]
+    RecordDuration {
+        /// The declared duration.
+        seconds: f64,
+    },
+    /// A signal has 0 samples per data record.
+    #[error("{signal} has 0 samples per data record, so its sampling rate is not positive")]
+    NoSamples {
+        /// Which signal.
+        signal: SignalRef,
+    },
+    /// A data signal's digital range is empty, inverted or beyond the sample width.
+    #[error(
+        "{signal} has the digital range {min}..{max}; expected minimum < maximum within {lowest}..{highest}"
+    )]
+    DigitalRange {
+        /// Which signal.
+        signal: SignalRef,
+        /// Digital minimum.
+        min: i64,
+        /// Digital maximum.
+        max: i64,
+        /// Smallest value a sample of this format holds.
+        lowest: i64,
+        /// Largest value a sample of this format holds.
+        highest: i64,
+    },
+    /// A data signal's physical range is empty (or not finite).
+    #[error(
+        "{signal} has physical minimum {min} and maximum {max}; they must be finite and differ"
+    )]
+    PhysicalRange {
+        /// Which signal.
+        signal: SignalRef,
+        /// Physical minimum.
+        min: f64,
+        /// Physical maximum.
+        max: f64,
+    },
+}
+
+/// A signal of the header, as messages name it: `signal 2 ("EEG Cz")` (1-based, as a user
+/// counts).
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct SignalRef {
+    /// 1-based number of the signal in the header.
+    pub number: usize,
+    /// Its label, trimmed.
+    pub label: String,
+}
+
+impl SignalRef {
+    fn new(index: usize, label: &str) -> SignalRef {
+        SignalRef {
+            number: index + 1,
+            label: label.to_string(),
+        }
+    }
+}
+
+impl std::fmt::Display for SignalRef {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "signal {} ({:?})", self.number, self.label)
+    }
+}
+
+/// A header field by its name in the specification, and the signal for a per-signal field.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct FieldName {
+    /// The field (`number of data records`, `digital maximum`).
+    pub what: &'static str,
+    /// The signal, for a field of a signal's block.
+    pub signal: Option<SignalRef>,
+}
+
+impl FieldName {
+    fn fixed(what: &'static str) -> FieldName {
+        FieldName { what, signal: None }
+    }
+}
+
+impl std::fmt::Display for FieldName {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match &self.signal {
+            Some(signal) => write!(f, "{} of {signal}", self.what),
+            None => f.write_str(self.what),
+        }
+    }
+}
+
+/// What a numeric field must hold.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Expected {
+    /// A finite decimal number.
+    Number,
+    /// A whole number.
+    Integer,
+}
+
+impl std::fmt::Display for Expected {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(match self {
+            Expected::Number => "a number",
+            Expected::Integer => "an integer",
+        })
+    }
+}
+
 /// Field widths of the per-signal block, in the order they appear.
 const SIGNAL_FIELDS: [usize; 10] = [16, 80, 8, 8, 8, 8, 8, 80, 8, 32];
 
 impl Header {
     /// The number of signals declared in the fixed header, which says how many bytes the full
     /// header has. `fixed` must hold the first 256 bytes.
-    pub fn signal_count(fixed: &[u8]) -> Result<usize, String> {
-        let text = field_text(fixed, 252, 4);
-        let count: i64 = text.parse().map_err(|_| {
-            format!("the header's number of signals is {text:?}, expected an integer")
-        })?;
-        if count <= 0 {
-            return Err(format!(
-                "the header declares {count} signals; a recording needs at least one"
-            ));
-        }
-        usize::try_from(count).map_err(|_| format!("the header declares {count} signals"))
+    pub fn signal_count(fixed: &[u8]) -> Result<usize, EdfHeaderError> {
+        let count: i64 = int_field(fixed, 252, 4, FieldName::fixed("number of signals"))?;
+        usize::try_from(count)
+            .ok()
+            .filter(|&n| n > 0)
+            .ok_or(EdfHeaderError::NoSignals { count })
     }
 
     /// Parse the full header (`256 · (signals + 1)` bytes) and check its fields.
-    pub fn parse(bytes: &[u8]) -> Result<Header, String> {
+    pub fn parse(bytes: &[u8]) -> Result<Header, EdfHeaderError> {
         let kind = match bytes.first() {
             Some(0xFF) if field_text(bytes, 1, 7) == "BIOSEMI" => FileKind::Bdf,
             _ if field_text(bytes, 0, 8) == "0" => FileKind::Edf,
             _ => {
-                return Err(format!(
-                    "the version field is {:?}; an EDF file starts with \"0\" and a BDF file with 0xFF BIOSEMI",
-                    field_text(bytes, 0, 8)
-                ))
+                return Err(EdfHeaderError::Version {
+                    found: field_text(bytes, 0, 8),
+                })
             }
         };
         let ns = Header::signal_count(bytes)?;
@@ -110,9 +275,19 @@ impl Header {
             recording: field_text(bytes, 88, 80),
             start_date: field_text(bytes, 168, 8),
             start_time: field_text(bytes, 176, 8),
-            header_bytes: int_field(bytes, 184, 8, "number of bytes in the header")?,
+            header_bytes: int_field(
+                bytes,
+                184,
+                8,
+                FieldName::fixed("number of bytes in the header"),
+            )?,
             records: record_count(bytes)?,
-            record_seconds: float_field(bytes, 244, 8, "duration of a data record")?,
+            record_seconds: float_field(
+                bytes,
+                244,
+                8,
+                FieldName::fixed("duration of a data record"),
+            )?,
             signals: parse_signals(bytes, ns)?,
         };
         header.check(ns)?;
@@ -157,33 +332,31 @@ impl Header {
     }
 
     /// Check the fields against each other.
-    fn check(&self, ns: usize) -> Result<(), String> {
+    fn check(&self, ns: usize) -> Result<(), EdfHeaderError> {
         if self.header_bytes != BLOCK * (ns + 1) {
-            return Err(format!(
-                "the header says it is {} bytes long, but with {ns} signals it must be {}",
-                self.header_bytes,
-                BLOCK * (ns + 1)
-            ));
+            return Err(EdfHeaderError::HeaderBytes {
+                declared: self.header_bytes,
+                signals: ns,
+                expected: BLOCK * (ns + 1),
+            });
         }
         if !self.signals.iter().any(|s| !s.annotation) {
-            return Err("the file holds no data signals, only annotations".into());
+            return Err(EdfHeaderError::OnlyAnnotations);
         }
         if !(self.record_seconds.is_finite() && self.record_seconds > 0.0) {
-            return Err(format!(
-                "the duration of a data record is {} s; it must be positive",
-                self.record_seconds
-            ));
+            return Err(EdfHeaderError::RecordDuration {
+                seconds: self.record_seconds,
+            });
         }
-        self.signals.iter().try_for_each(|s| self.check_signal(s))
+        (self.signals.iter().enumerate()).try_for_each(|(i, s)| self.check_signal(i, s))
     }
 
-    /// Ranges of one data signal (annotation signals carry no physical values).
-    fn check_signal(&self, s: &SignalHeader) -> Result<(), String> {
+    /// Ranges of one data signal (annotation signals carry no physical values); `index` is its
+    /// 0-based position in the header.
+    fn check_signal(&self, index: usize, s: &SignalHeader) -> Result<(), EdfHeaderError> {
+        let signal = || SignalRef::new(index, &s.label);
         if s.samples_per_record == 0 {
-            return Err(format!(
-                "signal {:?} has 0 samples per data record, so its sampling rate is not positive",
-                s.label
-            ));
+            return Err(EdfHeaderError::NoSamples { signal: signal() });
         }
         if s.annotation {
             return Ok(());
@@ -193,16 +366,20 @@ impl Header {
             FileKind::Bdf => (-8_388_608, 8_388_607),
         };
         if s.dig_max <= s.dig_min || s.dig_min < lo || s.dig_max > hi {
-            return Err(format!(
-                "signal {:?} has the digital range {}..{}; expected minimum < maximum within {lo}..{hi}",
-                s.label, s.dig_min, s.dig_max
-            ));
+            return Err(EdfHeaderError::DigitalRange {
+                signal: signal(),
+                min: s.dig_min,
+                max: s.dig_max,
+                lowest: lo,
+                highest: hi,
+            });
         }
         if s.phys_max == s.phys_min || !s.phys_min.is_finite() || !s.phys_max.is_finite() {
-            return Err(format!(
-                "signal {:?} has physical minimum {} and maximum {}; they must be finite and differ",
-                s.label, s.phys_min, s.phys_max
-            ));
+            return Err(EdfHeaderError::PhysicalRange {
+                signal: signal(),
+                min: s.phys_min,
+                max: s.phys_max,
+            });
         }
         Ok(())
     }
@@ -218,17 +395,13 @@ fn plus_variant(reserved: &str) -> Option<bool> {
 }
 
 /// The number of data records, which must be known (not -1) and not negative.
-fn record_count(bytes: &[u8]) -> Result<usize, String> {
-    let count: i64 = int_field(bytes, 236, 8, "number of data records")?;
-    usize::try_from(count).map_err(|_| {
-        format!(
-            "the header says there are {count} data records; -1 means the recorder never closed the file, any negative count is invalid"
-        )
-    })
+fn record_count(bytes: &[u8]) -> Result<usize, EdfHeaderError> {
+    let count: i64 = int_field(bytes, 236, 8, FieldName::fixed("number of data records"))?;
+    usize::try_from(count).map_err(|_| EdfHeaderError::NegativeRecords { count })
 }
 
 /// All signal blocks: the fields are stored field by field across signals.
-fn parse_signals(bytes: &[u8], ns: usize) -> Result<Vec<SignalHeader>, String> {
+fn parse_signals(bytes: &[u8], ns: usize) -> Result<Vec<SignalHeader>, EdfHeaderError> {
     let mut starts = [0usize; 10];
     let mut at = BLOCK;
     for (start, width) in starts.iter_mut().zip(SIGNAL_FIELDS) {
@@ -237,25 +410,23 @@ fn parse_signals(bytes: &[u8], ns: usize) -> Result<Vec<SignalHeader>, String> {
     }
     (0..ns)
         .map(|i| {
-            let text =
-                |f: usize| field_text(bytes, starts[f] + i * SIGNAL_FIELDS[f], SIGNAL_FIELDS[f]);
-            let label = text(0);
-            let named = |what: &str| format!("{what} of signal {} ({label:?})", i + 1);
-            let number = |f: usize, what: &str| {
-                float_field(
-                    bytes,
-                    starts[f] + i * SIGNAL_FIELDS[f],
-                    SIGNAL_FIELDS[f],
-                    &named(what),
-                )
+            let place = |f: usize| (starts[f] + i * SIGNAL_FIELDS[f], SIGNAL_FIELDS[f]);
+            let text = |f: usize| {
+                let (start, width) = place(f);
+                field_text(bytes, start, width)
             };
-            let int = |f: usize, what: &str| {
-                int_field::<i64>(
-                    bytes,
-                    starts[f] + i * SIGNAL_FIELDS[f],
-                    SIGNAL_FIELDS[f],
-                    &named(what),
-                )
+            let label = text(0);
+            let named = |what: &'static str| FieldName {
+                what,
+                signal: Some(SignalRef::new(i, &label)),
+            };
+            let number = |f: usize, what: &'static str| {
+                let (start, width) = place(f);
+                float_field(bytes, start, width, named(what))
+            };
+            let int = |f: usize, what: &'static str| {
+                let (start, width) = place(f);
+                int_field::<i64>(bytes, start, width, named(what))
             };
             let spr = int(8, "samples per data record")?;
             Ok(SignalHeader {
@@ -268,10 +439,10 @@ fn parse_signals(bytes: &[u8], ns: usize) -> Result<Vec<SignalHeader>, String> {
                 dig_max: int(6, "digital maximum")?,
                 prefilter: text(7),
                 samples_per_record: usize::try_from(spr).map_err(|_| {
-                    format!(
-                        "{} is {spr}; it must not be negative",
-                        named("samples per data record")
-                    )
+                    EdfHeaderError::NegativeSamples {
+                        signal: SignalRef::new(i, &label),
+                        found: spr,
+                    }
                 })?,
                 label,
             })
@@ -292,11 +463,21 @@ fn field_text(bytes: &[u8], start: usize, width: usize) -> String {
 }
 
 /// A numeric header field.
-fn float_field(bytes: &[u8], start: usize, width: usize, what: &str) -> Result<f64, String> {
+fn float_field(
+    bytes: &[u8],
+    start: usize,
+    width: usize,
+    field: FieldName,
+) -> Result<f64, EdfHeaderError> {
     let text = field_text(bytes, start, width);
     match text.parse::<f64>() {
         Ok(v) if v.is_finite() => Ok(v),
-        _ => Err(format!("the {what} is {text:?}, expected a number")),
+        _ => Err(EdfHeaderError::NotANumber {
+            field,
+            offset: start,
+            found: text,
+            expected: Expected::Number,
+        }),
     }
 }
 
@@ -305,9 +486,154 @@ fn int_field<T: std::str::FromStr>(
     bytes: &[u8],
     start: usize,
     width: usize,
-    what: &str,
-) -> Result<T, String> {
+    field: FieldName,
+) -> Result<T, EdfHeaderError> {
     let text = field_text(bytes, start, width);
-    text.parse::<T>()
-        .map_err(|_| format!("the {what} is {text:?}, expected an integer"))
+    text.parse::<T>().map_err(|_| EdfHeaderError::NotANumber {
+        field,
+        offset: start,
+        found: text,
+        expected: Expected::Integer,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A one-signal EDF header laid out field by field as Kemp et al. 1992 specify (fixed
+    /// fields at 0, 8, 88, 168, 176, 184, 192, 236, 244, 252; one signal's fields from 256),
+    /// with `edit` applied to the field texts first.
+    fn header_bytes(edit: impl FnOnce(&mut Vec<(usize, &'static str)>)) -> Vec<u8> {
+        let mut fields: Vec<(usize, &'static str)> = vec![
+            (8, "0"),
+            (80, "X X X X"),
+            (80, "Startdate X X X X"),
+            (8, "01.01.20"),
+            (8, "10.00.00"),
+            (8, "512"),
+            (44, ""),
+            (8, "1"),
+            (8, "1"),
+            (4, "1"),
+            (16, "EEG Fz"),
+            (80, ""),
+            (8, "uV"),
+            (8, "-100"),
+            (8, "100"),
+            (8, "-32768"),
+            (8, "32767"),
+            (80, ""),
+            (8, "10"),
+            (32, ""),
+        ];
+        edit(&mut fields);
+        let mut out = Vec::new();
+        for (width, text) in fields {
+            out.extend_from_slice(text.as_bytes());
+            out.resize(out.len() + width - text.len(), b' ');
+        }
+        assert_eq!(out.len(), 512);
+        out
+    }
+
+    fn parse_with(index: usize, text: &'static str) -> Result<Header, EdfHeaderError> {
+        Header::parse(&header_bytes(|f| f[index].1 = text))
+    }
+
+    #[test]
+    fn a_well_formed_header_parses() {
+        let header = Header::parse(&header_bytes(|_| {})).unwrap();
+        assert_eq!(header.kind, FileKind::Edf);
+        assert_eq!((header.records, header.header_bytes), (1, 512));
+        assert_eq!(header.signals[0].label, "EEG Fz");
+        assert_eq!(header.signals[0].samples_per_record, 10);
+    }
+
+    // Each error names the field, where it is (byte offset of the field, or the signal's
+    // number and label) and what was found.
+    #[test]
+    fn errors_carry_the_field_place_and_value() {
+        let fz = || SignalRef {
+            number: 1,
+            label: "EEG Fz".into(),
+        };
+        let err = parse_with(7, "many").unwrap_err();
+        assert_eq!(
+            err,
+            EdfHeaderError::NotANumber {
+                field: FieldName::fixed("number of data records"),
+                offset: 236,
+                found: "many".into(),
+                expected: Expected::Integer,
+            }
+        );
+        assert_eq!(
+            err.to_string(),
+            "the number of data records is \"many\" (header byte 236), expected an integer"
+        );
+        // The digital maximum of signal 1 is at 256 + (16 + 80 + 8·4) = 384.
+        let err = parse_with(16, "abc").unwrap_err();
+        assert!(
+            matches!(&err, EdfHeaderError::NotANumber { field, offset: 384, .. }
+                if field.signal == Some(fz()) && field.what == "digital maximum"),
+            "{err:?}"
+        );
+        assert_eq!(
+            parse_with(9, "0").unwrap_err(),
+            EdfHeaderError::NoSignals { count: 0 }
+        );
+        assert_eq!(
+            parse_with(7, "-1").unwrap_err(),
+            EdfHeaderError::NegativeRecords { count: -1 }
+        );
+        assert_eq!(
+            parse_with(0, "1.0").unwrap_err(),
+            EdfHeaderError::Version {
+                found: "1.0".into()
+            }
+        );
+        assert_eq!(
+            parse_with(5, "768").unwrap_err(),
+            EdfHeaderError::HeaderBytes {
+                declared: 768,
+                signals: 1,
+                expected: 512
+            }
+        );
+        assert!(matches!(
+            parse_with(8, "0").unwrap_err(),
+            EdfHeaderError::RecordDuration { seconds } if seconds == 0.0
+        ));
+        assert_eq!(
+            parse_with(18, "0").unwrap_err(),
+            EdfHeaderError::NoSamples { signal: fz() }
+        );
+        assert_eq!(
+            parse_with(18, "-5").unwrap_err(),
+            EdfHeaderError::NegativeSamples {
+                signal: fz(),
+                found: -5
+            }
+        );
+        // EDF samples are 16-bit two's complement: −32768..32767 (Kemp et al. 1992).
+        assert_eq!(
+            parse_with(15, "32767").unwrap_err(),
+            EdfHeaderError::DigitalRange {
+                signal: fz(),
+                min: 32767,
+                max: 32767,
+                lowest: -32768,
+                highest: 32767
+            }
+        );
+        assert!(matches!(
+            parse_with(13, "100").unwrap_err(),
+            EdfHeaderError::PhysicalRange { signal, .. } if signal == fz()
+        ));
+        assert_eq!(
+            parse_with(10, "EDF Annotations").unwrap_err(),
+            EdfHeaderError::OnlyAnnotations
+        );
+    }
 }

@@ -15,6 +15,57 @@ const TEXT_END: u8 = 0x14;
 /// Closes a TAL.
 const TAL_END: u8 = 0x00;
 
+/// A TAL that cannot be read (the first four variants) or an annotation that cannot be written
+/// as one (the last two). The reader adds the file and the data record; the writer the file.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum TalError {
+    /// The onset is not `[+-]digits[.digits]` with its mandatory sign.
+    #[error("an annotation has the onset {found:?}, expected e.g. +12.5")]
+    Onset {
+        /// The onset's text.
+        found: String,
+    },
+    /// The duration is not `digits[.digits]`.
+    #[error("the annotation at {onset} s has the duration {found:?}, expected e.g. 0.5")]
+    Duration {
+        /// The annotation's onset in seconds.
+        onset: f64,
+        /// The duration's text.
+        found: String,
+    },
+    /// No 0x14 after the onset (and duration).
+    #[error("the annotation at {onset} s is not closed by byte 0x14 after its onset")]
+    Unclosed {
+        /// The annotation's onset in seconds.
+        onset: f64,
+    },
+    /// The first annotation signal's bytes of a record hold no TAL at all.
+    #[error("a data record's annotations lack the time-stamp TAL that EDF+ requires")]
+    NoTimeStamp,
+    /// A label that is empty or holds a byte the TAL syntax reserves.
+    #[error(
+        "the annotation at {onset} s has the label {label:?}; labels must be non-empty and hold no bytes 0x00, 0x14 or 0x15"
+    )]
+    Label {
+        /// The annotation's onset in seconds.
+        onset: f64,
+        /// The label.
+        label: String,
+    },
+    /// A non-finite onset, or a duration that is negative or not finite.
+    #[error(
+        "the annotation {label:?} has onset {onset} and duration {duration}; expected a finite onset and a duration >= 0"
+    )]
+    Timing {
+        /// The label.
+        label: String,
+        /// The onset in seconds.
+        onset: f64,
+        /// The duration in seconds.
+        duration: f64,
+    },
+}
+
 /// What the annotation bytes of one record hold.
 #[derive(Clone, Debug, Default, PartialEq)]
 pub struct RecordTals {
@@ -26,7 +77,7 @@ pub struct RecordTals {
 
 /// Parse the annotation bytes of one record. `has_stamp`: this is the first annotation signal,
 /// whose first TAL is the record's time stamp.
-pub fn parse_record_tals(bytes: &[u8], has_stamp: bool) -> Result<RecordTals, String> {
+pub fn parse_record_tals(bytes: &[u8], has_stamp: bool) -> Result<RecordTals, TalError> {
     let mut out = RecordTals::default();
     let tals = bytes.split(|&b| b == TAL_END).filter(|t| !t.is_empty());
     for (index, tal) in tals.enumerate() {
@@ -47,27 +98,26 @@ pub fn parse_record_tals(bytes: &[u8], has_stamp: bool) -> Result<RecordTals, St
         }
     }
     if has_stamp && out.stamp.is_none() {
-        return Err(
-            "a data record's annotations lack the time-stamp TAL that EDF+ requires".into(),
-        );
+        return Err(TalError::NoTimeStamp);
     }
     Ok(out)
 }
 
 /// Split one TAL (without its closing 0x00) into onset, duration and texts.
-fn parse_one(tal: &[u8]) -> Result<(f64, f64, Vec<String>), String> {
+fn parse_one(tal: &[u8]) -> Result<(f64, f64, Vec<String>), TalError> {
     let mut parts = tal.split(|&b| b == TEXT_END);
     let timing = parts.next().unwrap_or_default();
     let mut timing_parts = timing.splitn(2, |&b| b == DURATION_MARK);
     let onset_text = String::from_utf8_lossy(timing_parts.next().unwrap_or_default());
-    let onset = parse_number(&onset_text, true).ok_or_else(|| {
-        format!("an annotation has the onset {onset_text:?}, expected e.g. +12.5")
+    let onset = parse_number(&onset_text, true).ok_or_else(|| TalError::Onset {
+        found: onset_text.to_string(),
     })?;
     let duration = match timing_parts.next() {
         Some(d) => {
             let text = String::from_utf8_lossy(d);
-            parse_number(&text, false).ok_or_else(|| {
-                format!("the annotation at {onset} s has the duration {text:?}, expected e.g. 0.5")
+            parse_number(&text, false).ok_or_else(|| TalError::Duration {
+                onset,
+                found: text.to_string(),
             })?
         }
         None => 0.0,
@@ -80,9 +130,7 @@ fn parse_one(tal: &[u8]) -> Result<(f64, f64, Vec<String>), String> {
         texts.pop();
     }
     if !tal.contains(&TEXT_END) {
-        return Err(format!(
-            "the annotation at {onset} s is not closed by byte 0x14 after its onset"
-        ));
+        return Err(TalError::Unclosed { onset });
     }
     Ok((onset, duration, texts))
 }
@@ -131,19 +179,20 @@ pub fn stamp_tal(stamp: f64) -> Vec<u8> {
 }
 
 /// One annotation as a TAL; the duration is written only when positive.
-pub fn event_tal(event: &Event) -> Result<Vec<u8>, String> {
+pub fn event_tal(event: &Event) -> Result<Vec<u8>, TalError> {
     let label = event.label.as_bytes();
     if label.is_empty() || label.iter().any(|b| matches!(b, 0x00 | 0x14 | 0x15)) {
-        return Err(format!(
-            "the annotation at {} s has the label {:?}; labels must be non-empty and hold no bytes 0x00, 0x14 or 0x15",
-            event.onset, event.label
-        ));
+        return Err(TalError::Label {
+            onset: event.onset,
+            label: event.label.clone(),
+        });
     }
     if !(event.onset.is_finite() && event.duration.is_finite() && event.duration >= 0.0) {
-        return Err(format!(
-            "the annotation {:?} has onset {} and duration {}; expected a finite onset and a duration >= 0",
-            event.label, event.onset, event.duration
-        ));
+        return Err(TalError::Timing {
+            label: event.label.clone(),
+            onset: event.onset,
+            duration: event.duration,
+        });
     }
     let mut out = format_number(event.onset, true).into_bytes();
     if event.duration > 0.0 {
@@ -179,7 +228,10 @@ mod tests {
     fn negative_onsets_and_missing_stamp() {
         let got = parse_record_tals(b"-0.065\x14\x14\x00", true).unwrap();
         assert_eq!(got.stamp, Some(-0.065));
-        assert!(parse_record_tals(b"\x00\x00", true).is_err());
+        assert_eq!(
+            parse_record_tals(b"\x00\x00", true),
+            Err(TalError::NoTimeStamp)
+        );
         assert!(parse_record_tals(b"\x00\x00", false)
             .unwrap()
             .annotations
@@ -194,10 +246,22 @@ mod tests {
             b"+\x14x\x14\x00",
             b"+1.2.3\x14x\x14\x00",
         ] {
-            assert!(parse_record_tals(bad, false).is_err(), "{bad:?}");
+            assert!(
+                matches!(parse_record_tals(bad, false), Err(TalError::Onset { .. })),
+                "{bad:?}"
+            );
         }
-        assert!(parse_record_tals(b"+1\x15-2\x14x\x14\x00", false).is_err());
-        assert!(parse_record_tals(b"+1", false).is_err());
+        assert_eq!(
+            parse_record_tals(b"+1\x15-2\x14x\x14\x00", false),
+            Err(TalError::Duration {
+                onset: 1.0,
+                found: "-2".into()
+            })
+        );
+        assert_eq!(
+            parse_record_tals(b"+1", false),
+            Err(TalError::Unclosed { onset: 1.0 })
+        );
     }
 
     #[test]
@@ -221,6 +285,12 @@ mod tests {
             duration: 0.0,
             label: "a\x14b".into(),
         };
-        assert!(event_tal(&bad).is_err());
+        assert!(matches!(event_tal(&bad), Err(TalError::Label { .. })));
+        let negative = Event {
+            duration: -1.0,
+            label: "ab".into(),
+            ..bad
+        };
+        assert!(matches!(event_tal(&negative), Err(TalError::Timing { .. })));
     }
 }

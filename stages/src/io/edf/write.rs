@@ -12,13 +12,124 @@ use std::fs::File;
 use std::io::{BufWriter, Write};
 use std::path::{Path, PathBuf};
 
-use super::tal::{event_tal, stamp_tal};
+use super::tal::{event_tal, stamp_tal, TalError};
 use super::BLOCK;
 use crate::array::Event;
 use crate::error::StageError;
 
 const DIG_MIN: i32 = -32768;
 const DIG_MAX: i32 = 32767;
+
+/// Why an [`EdfWriteSpec`] cannot be written; [`write_edf_plus`] adds the file's path.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum EdfWriteError {
+    /// The rate or the record duration is not a positive number.
+    #[error(
+        "sampling rate {rate} Hz and record duration {record_seconds} s must both be positive"
+    )]
+    RateOrDuration {
+        /// Sampling rate in Hz.
+        rate: f64,
+        /// Record duration in s.
+        record_seconds: f64,
+    },
+    /// A record would hold a fractional number of samples.
+    #[error(
+        "a record of {record_seconds} s at {rate} Hz holds {samples} samples; choose a record duration that holds a whole number"
+    )]
+    FractionalRecord {
+        /// Sampling rate in Hz.
+        rate: f64,
+        /// Record duration in s.
+        record_seconds: f64,
+        /// rate × duration.
+        samples: f64,
+    },
+    /// The spec has no signals.
+    #[error("there are no signals to write")]
+    NoSignals,
+    /// Two signals differ in length.
+    #[error(
+        "signal {signal:?} has {samples} samples but signal {first:?} has {first_samples}; all signals share one rate and length"
+    )]
+    Lengths {
+        /// The signal that differs.
+        signal: String,
+        /// Its number of samples.
+        samples: usize,
+        /// The first signal.
+        first: String,
+        /// Its number of samples.
+        first_samples: usize,
+    },
+    /// A sample is NaN or infinite.
+    #[error("signal {signal:?} holds the non-finite sample {value}")]
+    NonFinite {
+        /// The signal.
+        signal: String,
+        /// The sample.
+        value: f64,
+    },
+    /// The length is not a positive whole number of records.
+    #[error(
+        "the signals have {samples} samples, which is not a positive whole number of records of {per_record} samples"
+    )]
+    NotWholeRecords {
+        /// Samples of each signal.
+        samples: usize,
+        /// Samples per record.
+        per_record: usize,
+    },
+    /// The peak does not fit the 8-character physical range field.
+    #[error(
+        "signal {signal:?} reaches {peak} {unit}, too large for the 8-character physical range field; use a larger unit"
+    )]
+    PhysicalRange {
+        /// The signal.
+        signal: String,
+        /// Its largest |sample|.
+        peak: f64,
+        /// Its unit.
+        unit: String,
+    },
+    /// An annotation that cannot be written as a TAL.
+    #[error(transparent)]
+    Annotation(#[from] TalError),
+    /// A start date or time not of the form `dd.mm.yy` / `hh.mm.ss`.
+    #[error(
+        "the {field} is {found:?}; expected two digits, '{separator}', two digits, '{separator}', two digits"
+    )]
+    DateTime {
+        /// `start date` or `start time`.
+        field: &'static str,
+        /// The text given.
+        found: String,
+        /// The separator expected.
+        separator: char,
+    },
+    /// A header field with characters outside printable ASCII.
+    #[error(
+        "the {field} {text:?} holds characters outside printable ASCII, which EDF headers require (write µV as uV)"
+    )]
+    NotAscii {
+        /// The field (`physical dimension of signal 1`).
+        field: String,
+        /// The text given.
+        text: String,
+    },
+    /// A header field longer than its width.
+    #[error("the {field} {text:?} is {length} characters long; the field holds {width}")]
+    TooLong {
+        /// The field (`label of signal 2`).
+        field: String,
+        /// The text given.
+        text: String,
+        /// Its length in bytes.
+        length: usize,
+        /// The field's width.
+        width: usize,
+    },
+}
 
 /// One signal to write.
 #[derive(Clone, Debug)]
@@ -58,9 +169,10 @@ pub struct EdfWriteSpec {
 /// header), so pass them in a unit where that peak is at least about 0.01 (µV for EEG): the
 /// physical-range field has at most 5 decimals.
 pub fn write_edf_plus(path: &Path, spec: &EdfWriteSpec) -> Result<(), StageError> {
-    let fail = |m: String| StageError::input(format!("writing {}: {m}", path.display()));
-    let plan = Plan::new(spec).map_err(fail)?;
-    let header = plan.header(spec).map_err(fail)?;
+    let fail =
+        |m: &dyn std::fmt::Display| StageError::input(format!("writing {}: {m}", path.display()));
+    let plan = Plan::new(spec).map_err(|e| fail(&e))?;
+    let header = plan.header(spec).map_err(|e| fail(&e))?;
     write_atomically(path, |out| {
         out.write_all(&header)?;
         let mut record = Vec::with_capacity(plan.record_bytes());
@@ -70,7 +182,7 @@ pub fn write_edf_plus(path: &Path, spec: &EdfWriteSpec) -> Result<(), StageError
         }
         Ok(())
     })
-    .map_err(|e| fail(e.to_string()))
+    .map_err(|e| fail(&e))
 }
 
 /// Everything derived from the spec before writing: sizes, ranges, annotation bytes.
@@ -85,7 +197,7 @@ struct Plan {
 }
 
 impl Plan {
-    fn new(spec: &EdfWriteSpec) -> Result<Plan, String> {
+    fn new(spec: &EdfWriteSpec) -> Result<Plan, EdfWriteError> {
         let samples_per_record = samples_per_record(spec)?;
         let records = record_count(spec, samples_per_record)?;
         let ranges = spec
@@ -114,7 +226,7 @@ impl Plan {
     }
 
     /// The header: fixed part, then each per-signal field for all signals in turn.
-    fn header(&self, spec: &EdfWriteSpec) -> Result<Vec<u8>, String> {
+    fn header(&self, spec: &EdfWriteSpec) -> Result<Vec<u8>, EdfWriteError> {
         let ns = spec.signals.len() + 1;
         let mut out = Vec::with_capacity(BLOCK * (ns + 1));
         check_date_time(&spec.start_date, "start date", '.')?;
@@ -140,50 +252,80 @@ impl Plan {
         Ok(out)
     }
 
-    fn signal_fields(&self, spec: &EdfWriteSpec, out: &mut Vec<u8>) -> Result<(), String> {
+    fn signal_fields(&self, spec: &EdfWriteSpec, out: &mut Vec<u8>) -> Result<(), EdfWriteError> {
         let spr = self.samples_per_record.to_string();
         let ann_spr = (self.annotation_bytes / 2).to_string();
-        // (field width, value of each data signal, value of the annotation signal)
-        let mut columns: Vec<(usize, Vec<String>, String)> = vec![
+        // (field name, width, value of each data signal, value of the annotation signal)
+        let mut columns: Vec<(&str, usize, Vec<String>, String)> = vec![
             (
+                "label",
                 16,
                 spec.signals.iter().map(|s| s.label.clone()).collect(),
                 "EDF Annotations".into(),
             ),
-            (80, vec![String::new(); spec.signals.len()], String::new()),
             (
+                "transducer type",
+                80,
+                vec![String::new(); spec.signals.len()],
+                String::new(),
+            ),
+            (
+                "physical dimension",
                 8,
                 spec.signals.iter().map(|s| s.unit.clone()).collect(),
                 String::new(),
             ),
             (
+                "physical minimum",
                 8,
                 self.ranges.iter().map(|r| format!("-{}", r.1)).collect(),
                 "-1".into(),
             ),
             (
+                "physical maximum",
                 8,
                 self.ranges.iter().map(|r| r.1.clone()).collect(),
                 "1".into(),
             ),
             (
+                "digital minimum",
                 8,
                 vec![DIG_MIN.to_string(); spec.signals.len()],
                 DIG_MIN.to_string(),
             ),
             (
+                "digital maximum",
                 8,
                 vec![DIG_MAX.to_string(); spec.signals.len()],
                 DIG_MAX.to_string(),
             ),
-            (80, vec![String::new(); spec.signals.len()], String::new()),
-            (8, vec![spr; spec.signals.len()], ann_spr),
-            (32, vec![String::new(); spec.signals.len()], String::new()),
+            (
+                "prefiltering",
+                80,
+                vec![String::new(); spec.signals.len()],
+                String::new(),
+            ),
+            (
+                "samples per data record",
+                8,
+                vec![spr; spec.signals.len()],
+                ann_spr,
+            ),
+            (
+                "reserved field",
+                32,
+                vec![String::new(); spec.signals.len()],
+                String::new(),
+            ),
         ];
-        for (width, values, annotation) in columns.iter_mut() {
+        for (name, width, values, annotation) in columns.iter_mut() {
             values.push(std::mem::take(annotation));
-            for value in values.iter() {
-                put(out, value, *width, "signal header field")?;
+            for (index, value) in values.iter().enumerate() {
+                let field = HeaderField::Signal {
+                    name,
+                    number: index + 1,
+                };
+                put_field(out, value, *width, field)?;
             }
         }
         Ok(())
@@ -211,56 +353,60 @@ impl Plan {
 }
 
 /// Samples per record: rate × record duration, which must be a positive whole number.
-fn samples_per_record(spec: &EdfWriteSpec) -> Result<usize, String> {
+fn samples_per_record(spec: &EdfWriteSpec) -> Result<usize, EdfWriteError> {
     let (fs, rs) = (spec.sampling_rate, spec.record_seconds);
     if !(fs.is_finite() && fs > 0.0 && rs.is_finite() && rs > 0.0) {
-        return Err(format!(
-            "sampling rate {fs} Hz and record duration {rs} s must both be positive"
-        ));
+        return Err(EdfWriteError::RateOrDuration {
+            rate: fs,
+            record_seconds: rs,
+        });
     }
     let product = fs * rs;
     let rounded = product.round();
     if (product - rounded).abs() > 1e-9 * product.max(1.0) || rounded < 1.0 {
-        return Err(format!(
-            "a record of {rs} s at {fs} Hz holds {product} samples; choose a record duration that holds a whole number"
-        ));
+        return Err(EdfWriteError::FractionalRecord {
+            rate: fs,
+            record_seconds: rs,
+            samples: product,
+        });
     }
     Ok(rounded as usize)
 }
 
 /// Number of records: every signal must have the same whole number of records.
-fn record_count(spec: &EdfWriteSpec, spr: usize) -> Result<usize, String> {
+fn record_count(spec: &EdfWriteSpec, spr: usize) -> Result<usize, EdfWriteError> {
     let Some(first) = spec.signals.first() else {
-        return Err("there are no signals to write".into());
+        return Err(EdfWriteError::NoSignals);
     };
     let len = first.samples.len();
     for s in &spec.signals {
         if s.samples.len() != len {
-            return Err(format!(
-                "signal {:?} has {} samples but signal {:?} has {len}; all signals share one rate and length",
-                s.label,
-                s.samples.len(),
-                first.label
-            ));
+            return Err(EdfWriteError::Lengths {
+                signal: s.label.clone(),
+                samples: s.samples.len(),
+                first: first.label.clone(),
+                first_samples: len,
+            });
         }
         if let Some(bad) = s.samples.iter().find(|x| !x.is_finite()) {
-            return Err(format!(
-                "signal {:?} holds the non-finite sample {bad}",
-                s.label
-            ));
+            return Err(EdfWriteError::NonFinite {
+                signal: s.label.clone(),
+                value: *bad,
+            });
         }
     }
     if len == 0 || len % spr != 0 {
-        return Err(format!(
-            "the signals have {len} samples, which is not a positive whole number of records of {spr} samples"
-        ));
+        return Err(EdfWriteError::NotWholeRecords {
+            samples: len,
+            per_record: spr,
+        });
     }
     Ok(len / spr)
 }
 
 /// The symmetric physical range ±m of a signal and m's header text (at most 7 characters, so
 /// that `-m` fits the 8-character field), with m ≥ the largest |sample|.
-fn physical_range(signal: &SignalSpec) -> Result<(f64, String), String> {
+fn physical_range(signal: &SignalSpec) -> Result<(f64, String), EdfWriteError> {
     let peak = signal.samples.iter().fold(0.0f64, |m, x| m.max(x.abs()));
     // An all-zero signal still needs pmax ≠ pmin.
     let peak = if peak > 0.0 { peak } else { 1.0 };
@@ -273,20 +419,22 @@ fn physical_range(signal: &SignalSpec) -> Result<(f64, String), String> {
             units += 1.0;
             text = format!("{:.*}", decimals as usize, units / scale);
         }
-        if text.len() <= 7 {
-            let value = text.parse::<f64>().map_err(|e| e.to_string())?;
-            return Ok((value, text));
+        // `text` is the decimal form of a finite number, so it parses.
+        match text.parse::<f64>() {
+            Ok(value) if text.len() <= 7 => return Ok((value, text)),
+            _ => {}
         }
     }
-    Err(format!(
-        "signal {:?} reaches {peak} {}, too large for the 8-character physical range field; use a larger unit",
-        signal.label, signal.unit
-    ))
+    Err(EdfWriteError::PhysicalRange {
+        signal: signal.label.clone(),
+        peak,
+        unit: signal.unit.clone(),
+    })
 }
 
 /// Each record's annotation bytes: its time stamp, then the annotations whose onsets fall in it
 /// (those before the start go to the first record, those after the end to the last).
-fn annotation_records(spec: &EdfWriteSpec, records: usize) -> Result<Vec<Vec<u8>>, String> {
+fn annotation_records(spec: &EdfWriteSpec, records: usize) -> Result<Vec<Vec<u8>>, EdfWriteError> {
     let mut out: Vec<Vec<u8>> = (0..records)
         .map(|k| stamp_tal(k as f64 * spec.record_seconds))
         .collect();
@@ -302,7 +450,7 @@ fn annotation_records(spec: &EdfWriteSpec, records: usize) -> Result<Vec<Vec<u8>
 }
 
 /// `dd.mm.yy` / `hh.mm.ss`: three two-digit numbers separated by `sep`.
-fn check_date_time(text: &str, what: &str, sep: char) -> Result<(), String> {
+fn check_date_time(text: &str, what: &'static str, sep: char) -> Result<(), EdfWriteError> {
     let parts: Vec<&str> = text.split(sep).collect();
     let ok = parts.len() == 3
         && parts
@@ -311,9 +459,11 @@ fn check_date_time(text: &str, what: &str, sep: char) -> Result<(), String> {
     if ok {
         Ok(())
     } else {
-        Err(format!(
-            "the {what} is {text:?}; expected two digits, '{sep}', two digits, '{sep}', two digits"
-        ))
+        Err(EdfWriteError::DateTime {
+            field: what,
+            found: text.to_string(),
+            separator: sep,
+        })
     }
 }
 
@@ -325,22 +475,57 @@ fn or_default<'a>(value: &'a str, default: &'a str) -> &'a str {
     }
 }
 
-/// Append `text` as a fixed-width, space-padded ASCII header field.
-fn put(out: &mut Vec<u8>, text: &str, width: usize, what: &str) -> Result<(), String> {
+/// Append `text` as a fixed-width, space-padded ASCII field of the fixed header.
+fn put(
+    out: &mut Vec<u8>,
+    text: &str,
+    width: usize,
+    what: &'static str,
+) -> Result<(), EdfWriteError> {
+    put_field(out, text, width, HeaderField::Fixed(what))
+}
+
+/// Append `text` as the fixed-width, space-padded ASCII header field `field`.
+fn put_field(
+    out: &mut Vec<u8>,
+    text: &str,
+    width: usize,
+    field: HeaderField<'_>,
+) -> Result<(), EdfWriteError> {
     if !text.bytes().all(|b| (32..=126).contains(&b)) {
-        return Err(format!(
-            "the {what} {text:?} holds characters outside printable ASCII, which EDF headers require (write µV as uV)"
-        ));
+        return Err(EdfWriteError::NotAscii {
+            field: field.to_string(),
+            text: text.to_string(),
+        });
     }
     if text.len() > width {
-        return Err(format!(
-            "the {what} {text:?} is {} characters long; the field holds {width}",
-            text.len()
-        ));
+        return Err(EdfWriteError::TooLong {
+            field: field.to_string(),
+            text: text.to_string(),
+            length: text.len(),
+            width,
+        });
     }
     out.extend_from_slice(text.as_bytes());
     out.resize(out.len() + width - text.len(), b' ');
     Ok(())
+}
+
+/// A header field as messages name it.
+enum HeaderField<'a> {
+    /// A field of the fixed header.
+    Fixed(&'static str),
+    /// A field of a signal's block; `number` counts from 1.
+    Signal { name: &'a str, number: usize },
+}
+
+impl std::fmt::Display for HeaderField<'_> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            HeaderField::Fixed(what) => f.write_str(what),
+            HeaderField::Signal { name, number } => write!(f, "{name} of signal {number}"),
+        }
+    }
 }
 
 /// Write through a temporary file in the same folder, sync it, then rename it into place.
@@ -558,7 +743,49 @@ mod tests {
             edit(&mut s);
             let err = write_edf_plus(&path, &s).unwrap_err().to_string();
             assert!(err.contains(needle) && err.contains("bad.edf"), "{err}");
+            assert_eq!(err.matches("bad.edf").count(), 1, "{err}");
             assert!(!path.exists());
         }
+    }
+
+    #[test]
+    fn spec_errors_name_the_field_and_value() {
+        let mut s = spec();
+        s.signals[1].label = "a label far too long".into();
+        let plan = Plan::new(&s).unwrap();
+        assert_eq!(
+            plan.header(&s).err(),
+            Some(EdfWriteError::TooLong {
+                field: "label of signal 2".into(),
+                text: "a label far too long".into(),
+                length: 20,
+                width: 16,
+            })
+        );
+        let mut s = spec();
+        s.start_time = "10:00:00".into();
+        assert!(matches!(
+            Plan::new(&s).unwrap().header(&s),
+            Err(EdfWriteError::DateTime {
+                field: "start time",
+                separator: '.',
+                ..
+            })
+        ));
+        let mut s = spec();
+        s.signals.clear();
+        assert_eq!(Plan::new(&s).err(), Some(EdfWriteError::NoSignals));
+        let mut s = spec();
+        s.annotations[1].label = String::new();
+        assert!(matches!(
+            Plan::new(&s).err(),
+            Some(EdfWriteError::Annotation(TalError::Label { onset, .. })) if onset == 2.25
+        ));
+        let mut s = spec();
+        s.record_seconds = 0.3333;
+        assert!(matches!(
+            Plan::new(&s).err(),
+            Some(EdfWriteError::FractionalRecord { .. })
+        ));
     }
 }
