@@ -541,8 +541,8 @@ impl Spool {
         let blake3 = hasher.finalize().to_hex().to_string();
         store.remember_written(&key, &blake3);
         let dtype = if self.layout.complex { "<c8" } else { "<f4" };
-        let record =
-            ObjectRecord::new(&self.layout, dtype, notes, fingerprint).with_values(true, blake3, npy_size);
+        let record = ObjectRecord::new(&self.layout, dtype, notes, fingerprint)
+            .with_values(true, blake3, npy_size);
         store::write_record(&json_path, &record)?;
         Ok(Ok(record))
     }

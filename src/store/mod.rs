@@ -203,7 +203,9 @@ impl FileIdentity {
             .modified()
             .ok()
             .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
-            .map_or((0, 0), |d| (d.as_secs() as i64, i64::from(d.subsec_nanos())));
+            .map_or((0, 0), |d| {
+                (d.as_secs() as i64, i64::from(d.subsec_nanos()))
+            });
         FileIdentity {
             dev: 0,
             ino: 0,
@@ -235,7 +237,10 @@ impl Store {
     pub(crate) fn remember_written(&self, key: &str, blake3: &str) {
         let (npy, _) = self.object_paths(key);
         if let (Ok(meta), Ok(mut written)) = (std::fs::metadata(&npy), self.written.lock()) {
-            written.insert(key.to_string(), (FileIdentity::of(&meta), blake3.to_string()));
+            written.insert(
+                key.to_string(),
+                (FileIdentity::of(&meta), blake3.to_string()),
+            );
         }
     }
 
