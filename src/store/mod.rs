@@ -664,6 +664,41 @@ mod tests {
     }
 
     #[test]
+    fn an_object_written_here_is_trusted_only_while_its_file_is_unchanged() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let (array, fp) = sample();
+        let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
+        let npy = store.object_paths(&record.key).0;
+        assert!(store.wrote_intact_object(&record.key, &record));
+        // Another process (another Store) never wrote it: it checks the hash.
+        assert!(!Store::new(dir.path()).wrote_intact_object(&record.key, &record));
+        // A record naming other content is not vouched for.
+        let mut other = record.clone();
+        other.blake3 = "0".repeat(64);
+        assert!(!store.wrote_intact_object(&record.key, &other));
+        // Changed in place through another name (as an export's hard link would be): the
+        // modification time moves, the memo no longer applies, and the export link checks the
+        // hash and refuses the damaged object.
+        let mut bytes = std::fs::read(&npy).unwrap();
+        let last = bytes.len() - 1;
+        bytes[last] ^= 1;
+        std::thread::sleep(std::time::Duration::from_millis(20));
+        std::fs::OpenOptions::new()
+            .write(true)
+            .open(&npy)
+            .and_then(|mut f| f.write_all(&bytes))
+            .unwrap();
+        assert!(!store.wrote_intact_object(&record.key, &record));
+        let out = dir.path().join("export.npy");
+        assert!(matches!(
+            store.link_object(&record.key, &record, &out),
+            Ok(Err(Damage::Hash { .. }))
+        ));
+        assert!(!out.exists());
+    }
+
+    #[test]
     fn objects_round_trip_and_damage_is_detected() {
         let dir = tempfile::tempdir().unwrap();
         let store = Store::new(dir.path());
