@@ -31,7 +31,7 @@ BENCH = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(BENCH)
 sys.path.insert(0, BENCH)
 
-from run import Report, agreement, median_stages, timed  # noqa: E402
+from run import PHASEWISE, Report, agreement, median_stages, timed  # noqa: E402
 
 PYTHON = sys.executable
 
@@ -191,7 +191,7 @@ def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("size", choices=sorted(SIZES), nargs="?", default="natural")
     ap.add_argument("--reps", type=int)
-    ap.add_argument("--phasewise", default=os.path.join(ROOT, "target", "release", "phasewise"))
+    ap.add_argument("--phasewise", default=PHASEWISE)
     ap.add_argument("--also", help="a second phasewise binary run in the same alternation")
     ap.add_argument("--skip", action="append", default=[], choices=["chain", "kernel", "reruns"])
     ap.add_argument("--subjects", type=int,

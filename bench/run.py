@@ -34,7 +34,9 @@ import numpy as np
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 BENCH = os.path.join(ROOT, "bench")
-PHASEWISE = os.path.join(ROOT, "target", "release", "phasewise")
+# The binary bench/run.sh and bench/natural.sh build: under $CARGO_TARGET_DIR when it is set.
+PHASEWISE = os.path.join(os.environ.get("CARGO_TARGET_DIR") or os.path.join(ROOT, "target"),
+                         "release", "phasewise")
 FFT_BIN = os.path.join(BENCH, "out", "fft-target", "release", "phasewise-bench-fft")
 PYTHON = sys.executable
 TIME = "/usr/bin/time"
@@ -201,9 +203,20 @@ def load_phasewise(path):
 
 
 def coord_values(layout, dim):
-    """The coordinate list of `dim` in a phasewise layout sidecar."""
-    coord = layout["coords"][layout["dims"].index(dim)]
-    return coord["values"] if isinstance(coord, dict) else coord
+    """The coordinate list of `dim` in a phasewise layout sidecar. Format 2 (DESIGN §6, xarray's
+    `DataArray.to_dict(data=False)` shape): `coords` maps a name to {"dims", "data", "attrs"}, and
+    the pair axis carries `channel_a` and `channel_b` along `pair`, returned here as [a, b] lists.
+    Format 1 (a list of coordinates, in the order of `dims`) is still read, for older results."""
+    coords = layout["coords"]
+    if isinstance(coords, list):
+        coord = coords[layout["dims"].index(dim)]
+        return coord["values"] if isinstance(coord, dict) else coord
+    if dim in coords:
+        return coords[dim]["data"]
+    along = [name for name, c in sorted(coords.items()) if c.get("dims") == [dim]]
+    if dim == "pair" and {"channel_a", "channel_b"} <= set(along):
+        return [[a, b] for a, b in zip(coords["channel_a"]["data"], coords["channel_b"]["data"])]
+    raise SystemExit(f"sidecar has no coordinate for dim {dim!r} (coords: {sorted(coords)})")
 
 
 def keyed(values):
@@ -231,8 +244,9 @@ def group_mean(pw, layout):
     arr = np.take(np.take(pw, [stat], axis=dims.index("statistic")), [subj],
                   axis=dims.index("subject"))
     arr = arr.squeeze(axis=(dims.index("statistic"), dims.index("subject")))
-    keep = [i for i, d in enumerate(dims) if d not in ("statistic", "subject")]
-    return arr, {"dims": [dims[i] for i in keep], "coords": [layout["coords"][i] for i in keep]}
+    keep = [d for d in dims if d not in ("statistic", "subject")]
+    return arr, {"dims": keep, "coords": {d: {"dims": [d], "data": coord_values(layout, d)}
+                                          for d in keep}}
 
 
 def group_agreement(folder):

@@ -291,6 +291,8 @@ impl Store {
         let damaged = SlabStop::Damaged;
         let declined = SlabStop::Declined;
         let mut file = std::fs::File::open(&npy).map_err(|e| damaged(Damage::unreadable(e)))?;
+        // Written by this process and unchanged since: its hash was taken as it was written.
+        let check = !self.wrote_intact(key, record, &file);
         let Some(Geometry {
             count,
             complex,
@@ -318,10 +320,10 @@ impl Store {
                 return Err(declined(SlabDecline::Beyond));
             }
             let values = if complex {
-                let v = read_fresh(&mut file, n, &mut hasher).map_err(damaged)?;
+                let v = read_fresh(&mut file, n, check.then_some(&mut hasher)).map_err(damaged)?;
                 ndarray::ArrayD::from_shape_vec(shape, v).map(Values::Complex)
             } else {
-                let v = read_fresh(&mut file, n, &mut hasher).map_err(damaged)?;
+                let v = read_fresh(&mut file, n, check.then_some(&mut hasher)).map_err(damaged)?;
                 ndarray::ArrayD::from_shape_vec(shape, v).map(Values::Real)
             }
             .map_err(|e| declined(SlabDecline::Shape(e)))?;
@@ -332,7 +334,7 @@ impl Store {
         if read != count {
             return Err(declined(SlabDecline::Short));
         }
-        check_end(&mut file, hasher, record).map_err(damaged)
+        check_end(&mut file, check.then_some(hasher), record).map_err(damaged)
     }
 
     /// Write a unit's object from its output boxes: `fill` writes the values of each box, in
@@ -391,6 +393,9 @@ impl Store {
                 })
             }
         };
+        if stored {
+            self.remember_written(&key, &blake3);
+        }
         let record = ObjectRecord::new(layout, dtype, &notes, fingerprint)
             .with_values(stored, blake3, npy_size);
         store::write_record(&json_path, &record)?;
@@ -504,6 +509,9 @@ impl Spool {
             path: npy_path.clone(),
             source,
         };
+        // Every byte is in place: hand the file to the disk now (a hint that does not wait), so
+        // that the fsync of an export of it later finds it mostly written.
+        fsio::start_writeback(self.file.as_file());
         // The hash of the bytes as the file holds them, read back in order (from the page
         // cache: they were just written).
         let mut hasher = blake3::Hasher::new();
@@ -530,12 +538,11 @@ impl Spool {
             std::process::abort();
         }
         self.file.persist(&npy_path).map_err(|e| failed(e.error))?;
+        let blake3 = hasher.finalize().to_hex().to_string();
+        store.remember_written(&key, &blake3);
         let dtype = if self.layout.complex { "<c8" } else { "<f4" };
-        let record = ObjectRecord::new(&self.layout, dtype, notes, fingerprint).with_values(
-            true,
-            hasher.finalize().to_hex().to_string(),
-            npy_size,
-        );
+        let record = ObjectRecord::new(&self.layout, dtype, notes, fingerprint)
+            .with_values(true, blake3, npy_size);
         store::write_record(&json_path, &record)?;
         Ok(Ok(record))
     }

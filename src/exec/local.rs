@@ -51,30 +51,88 @@ fn execute(job: Job<'_>) -> Result<Outcome, RunError> {
         reader,
         bar,
     } = job;
-    let ctx = Ctx {
-        study,
-        plan,
-        planned: recipes,
-        decider: Decider::new(study, plan),
-        reader,
-        bar,
-    };
-    let chains: Vec<Vec<usize>> = (0..study.sources.len())
-        .map(|s| units_where(study, |u| study.units[u].subject == Some(s)))
-        .collect();
-    let done: Vec<ChainResult> = chains.par_iter().map(|c| ctx.run_chain(c)).collect();
-    let mut merged = Merged::default();
-    let mut prepared = HashMap::new();
-    for mut chain in done {
-        prepared.extend(std::mem::take(&mut chain.prepared));
-        merged.absorb(chain);
+    // Exports of objects this run wrote are linked by a thread of their own, which spends its
+    // time waiting for the disk (the fsync that makes an export durable), so that the compute
+    // threads go on meanwhile; the run waits for it before the manifest is written.
+    std::thread::scope(|scope| {
+        let (sender, queue) = std::sync::mpsc::channel::<(usize, Arc<ObjectRecord>)>();
+        let exporter = scope.spawn(move || export_queued(study, queue));
+        let ctx = Ctx {
+            study,
+            plan,
+            planned: recipes,
+            decider: Decider::new(study, plan),
+            reader,
+            bar,
+            exports: sender,
+        };
+        let chains: Vec<Vec<usize>> = (0..study.sources.len())
+            .map(|s| units_where(study, |u| study.units[u].subject == Some(s)))
+            .collect();
+        let done: Vec<ChainResult> = chains.par_iter().map(|c| ctx.run_chain(c)).collect();
+        let mut merged = Merged::default();
+        let mut prepared = HashMap::new();
+        for mut chain in done {
+            prepared.extend(std::mem::take(&mut chain.prepared));
+            merged.absorb(chain);
+        }
+        if merged.failures.is_empty() {
+            let group = units_where(study, |u| study.units[u].subject.is_none());
+            let chain = ctx.run_chain_with(&group, prepared);
+            merged.absorb(chain);
+        }
+        // Closes the queue: the exporter ends once it has linked what is in it.
+        drop(ctx);
+        let failures = exporter.join().unwrap_or_else(|_| {
+            vec![UnitFailure {
+                stage: String::new(),
+                subject: None,
+                message: "internal: the export thread panicked".into(),
+                diagnostic: None,
+            }]
+        });
+        merged.failures.extend(failures);
+        merged.finish(study)
+    })
+}
+
+/// Link the exports queued by the chains (objects this run wrote and that are unchanged since,
+/// see [`crate::store::Store::wrote_intact`]), in the order they arrive; the failures, one per
+/// unit whose export could not be written.
+fn export_queued(
+    study: &Study,
+    queue: std::sync::mpsc::Receiver<(usize, Arc<ObjectRecord>)>,
+) -> Vec<UnitFailure> {
+    let mut failures = Vec::new();
+    for (u, record) in queue {
+        let target = ExportTarget {
+            output: &study.pipeline.output,
+            subject: study.subject(u),
+            stage: study.stage_name(u),
+        };
+        match output::export(&target, &record, ExportFrom::Object, &study.store) {
+            Ok(_) => {}
+            // Changed by someone else since it was queued: nothing was exported (the export
+            // names the checked object or nothing), and the next run computes it again.
+            Err(ExportError::Damaged(why)) => failures.push(unit_failure(
+                study,
+                u,
+                format!("its cached result changed during the run ({why}); run again"),
+            )),
+            Err(ExportError::Output(e)) => failures.push(unit_failure(study, u, e.to_string())),
+        }
     }
-    if merged.failures.is_empty() {
-        let group = units_where(study, |u| study.units[u].subject.is_none());
-        let chain = ctx.run_chain_with(&group, prepared);
-        merged.absorb(chain);
+    failures
+}
+
+/// A failure of unit `u`.
+fn unit_failure(study: &Study, u: usize, message: impl Into<String>) -> UnitFailure {
+    UnitFailure {
+        stage: study.stage_name(u).to_string(),
+        subject: study.subject(u).map(str::to_string),
+        message: message.into(),
+        diagnostic: None,
     }
-    merged.finish(study)
 }
 
 /// The op inputs for `held` arrays; their carried warnings are appended to `warnings`.
@@ -108,6 +166,8 @@ struct Ctx<'a> {
     decider: Decider<'a>,
     reader: &'a dyn Reader,
     bar: &'a ProgressBar,
+    /// The queue of the export thread ([`export_queued`]).
+    exports: std::sync::mpsc::Sender<(usize, Arc<ObjectRecord>)>,
 }
 
 /// What one chain produced.
@@ -275,12 +335,7 @@ impl Worker<'_, '_> {
     }
 
     fn fail(&self, u: usize, message: impl Into<String>) -> UnitFailure {
-        UnitFailure {
-            stage: self.study().stage_name(u).to_string(),
-            subject: self.study().subject(u).map(str::to_string),
-            message: message.into(),
-            diagnostic: None,
-        }
+        unit_failure(self.study(), u, message)
     }
 
     /// An op's error; a param error also points at the param's line.
@@ -481,6 +536,13 @@ impl Worker<'_, '_> {
         };
         let record = self.record_of(u)?;
         let file = if output::is_current(&target, &record, &study.store) {
+            target.relative_npy()
+        } else if record.stored
+            && !output::is_table(&record)
+            && study.store.wrote_intact_object(&record.key, &record)
+        {
+            // Written by this run: linked (and made durable) by the export thread.
+            let _ = self.ctx.exports.send((u, Arc::clone(&record)));
             target.relative_npy()
         } else {
             let array = match array {

@@ -164,6 +164,55 @@ pub struct Store {
     /// had: a record read again (the plan, then the executor) is parsed once while its file is
     /// unchanged. Records hold large coordinate lists, so parsing them is most of a no-op rerun.
     parsed: Arc<std::sync::Mutex<std::collections::HashMap<String, ParsedRecord>>>,
+    /// Objects this process wrote, by key: the identity their file had once renamed into place
+    /// and the content hash of the bytes written (computed from memory on the way out). A read
+    /// of such an object whose file still has that identity needs no second pass of the hash
+    /// ([`Store::wrote_intact`]).
+    written: Arc<std::sync::Mutex<std::collections::HashMap<String, (FileIdentity, String)>>>,
+}
+
+/// What tells a file apart from any other and from its own earlier contents, short of reading
+/// it: device and inode (a file renamed over it is another inode), size, and the modification
+/// time in nanoseconds (any write through any name, the hard link of an export included,
+/// changes it).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct FileIdentity {
+    dev: u64,
+    ino: u64,
+    len: u64,
+    mtime: (i64, i64),
+}
+
+impl FileIdentity {
+    /// The identity of the file `meta` describes.
+    #[cfg(unix)]
+    pub fn of(meta: &std::fs::Metadata) -> FileIdentity {
+        use std::os::unix::fs::MetadataExt;
+        FileIdentity {
+            dev: meta.dev(),
+            ino: meta.ino(),
+            len: meta.len(),
+            mtime: (meta.mtime(), meta.mtime_nsec()),
+        }
+    }
+
+    /// Elsewhere: size and modification time only.
+    #[cfg(not(unix))]
+    pub fn of(meta: &std::fs::Metadata) -> FileIdentity {
+        let mtime = meta
+            .modified()
+            .ok()
+            .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
+            .map_or((0, 0), |d| {
+                (d.as_secs() as i64, i64::from(d.subsec_nanos()))
+            });
+        FileIdentity {
+            dev: 0,
+            ino: 0,
+            len: meta.len(),
+            mtime,
+        }
+    }
 }
 
 #[derive(Debug)]
@@ -179,7 +228,44 @@ impl Store {
         Store {
             root: root.into(),
             parsed: Default::default(),
+            written: Default::default(),
         }
+    }
+
+    /// Remember that this process has just written `key`'s values, whose bytes hash to
+    /// `blake3` (hashed from memory as they were written), as the file now in place.
+    pub(crate) fn remember_written(&self, key: &str, blake3: &str) {
+        let (npy, _) = self.object_paths(key);
+        if let (Ok(meta), Ok(mut written)) = (std::fs::metadata(&npy), self.written.lock()) {
+            written.insert(
+                key.to_string(),
+                (FileIdentity::of(&meta), blake3.to_string()),
+            );
+        }
+    }
+
+    /// [`Store::wrote_intact`] for `key`'s values as they are now in the store.
+    pub(crate) fn wrote_intact_object(&self, key: &str, record: &ObjectRecord) -> bool {
+        self.open_values(key)
+            .is_ok_and(|(_, file)| self.wrote_intact(key, record, &file))
+    }
+
+    /// True when `file` (opened as `key`'s values) is the file this process wrote for `key`
+    /// and has not changed since (same inode, size and modification time), and `record` names
+    /// the content hash of what was written. Its bytes are then those that were hashed on the
+    /// way out, still in the page cache: a read can take them without hashing them again. A
+    /// damaged object on disk is still found by every later process, which has no such memo
+    /// and checks the hash (DEVELOPERS.md "Durability").
+    pub(crate) fn wrote_intact(&self, key: &str, record: &ObjectRecord, file: &File) -> bool {
+        let Ok(meta) = file.metadata() else {
+            return false;
+        };
+        let now = FileIdentity::of(&meta);
+        self.written.lock().is_ok_and(|written| {
+            written
+                .get(key)
+                .is_some_and(|(was, blake3)| *was == now && *blake3 == record.blake3)
+        })
     }
 
     /// The cache folder.
@@ -334,8 +420,12 @@ impl Store {
             Ok(opened) => opened,
             Err(damage) => return Ok(Err(damage)),
         };
-        if let Err(why) = read_checked(&mut from, record, |_| Ok(()))? {
-            return Ok(Err(why));
+        // An object this process wrote and has not changed since is not read again: its hash
+        // was taken from memory as it was written.
+        if !self.wrote_intact(key, record, &from) {
+            if let Err(why) = read_checked(&mut from, record, |_| Ok(()))? {
+                return Ok(Err(why));
+            }
         }
         link_then_rename(&from, &npy, path).map(Ok)
     }
@@ -357,6 +447,9 @@ impl Store {
         } else {
             npy_digest(&array.values)?
         };
+        if stored {
+            self.remember_written(&key, &blake3);
+        }
         let record = ObjectRecord::new(&array.layout, array.values.dtype(), notes, fingerprint)
             .with_values(stored, blake3, npy_size);
         write_record(&json_path, &record)?;
@@ -568,6 +661,41 @@ mod tests {
             subject: None,
         };
         (LabelledArray::real(layout, values).unwrap(), fp)
+    }
+
+    #[test]
+    fn an_object_written_here_is_trusted_only_while_its_file_is_unchanged() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let (array, fp) = sample();
+        let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
+        let npy = store.object_paths(&record.key).0;
+        assert!(store.wrote_intact_object(&record.key, &record));
+        // Another process (another Store) never wrote it: it checks the hash.
+        assert!(!Store::new(dir.path()).wrote_intact_object(&record.key, &record));
+        // A record naming other content is not vouched for.
+        let mut other = record.clone();
+        other.blake3 = "0".repeat(64);
+        assert!(!store.wrote_intact_object(&record.key, &other));
+        // Changed in place through another name (as an export's hard link would be): the
+        // modification time moves, the memo no longer applies, and the export link checks the
+        // hash and refuses the damaged object.
+        let mut bytes = std::fs::read(&npy).unwrap();
+        let last = bytes.len() - 1;
+        bytes[last] ^= 1;
+        std::thread::sleep(std::time::Duration::from_millis(20));
+        std::fs::OpenOptions::new()
+            .write(true)
+            .open(&npy)
+            .and_then(|mut f| f.write_all(&bytes))
+            .unwrap();
+        assert!(!store.wrote_intact_object(&record.key, &record));
+        let out = dir.path().join("export.npy");
+        assert!(matches!(
+            store.link_object(&record.key, &record, &out),
+            Ok(Err(Damage::Hash { .. }))
+        ));
+        assert!(!out.exists());
     }
 
     #[test]

@@ -128,11 +128,11 @@ pub(crate) fn read_values(
     file.read_exact(&mut head).map_err(short_or_unreadable)?;
     hasher.update(&head);
     let values = if complex {
-        Data::Complex(read_fresh(file, count, &mut hasher)?)
+        Data::Complex(read_fresh(file, count, Some(&mut hasher))?)
     } else {
-        Data::Real(read_fresh(file, count, &mut hasher)?)
+        Data::Real(read_fresh(file, count, Some(&mut hasher))?)
     };
-    check_end(file, hasher, record)?;
+    check_end(file, Some(hasher), record)?;
     // The bytes are exactly those written for this record, so the header is the one the NPY
     // writer produced for its shape; only the memory order is left to read from it.
     let Some(fortran) = fortran_order(&head) else {
@@ -202,17 +202,20 @@ pub(crate) fn fortran_order(head: &[u8]) -> Option<bool> {
 }
 
 /// After the last value: the file must end there and everything read must hash to the record's
-/// blake3.
+/// blake3 (when it was hashed: `None` for an object [`Store::wrote_intact`](super::Store)).
 pub(crate) fn check_end(
     file: &mut File,
-    hasher: blake3::Hasher,
+    hasher: Option<blake3::Hasher>,
     record: &ObjectRecord,
 ) -> Result<(), Damage> {
     let mut rest = [0u8; 1];
     if file.read(&mut rest).map_err(Damage::unreadable)? != 0 {
         return Err(Damage::Longer);
     }
-    check_hash(hasher.finalize(), record)
+    match hasher {
+        Some(hasher) => check_hash(hasher.finalize(), record),
+        None => Ok(()),
+    }
 }
 
 /// The content hash of everything read against the record's.
@@ -242,14 +245,14 @@ pub(crate) enum Data {
 }
 
 /// `count` values read from `file` straight into new memory, hashing every byte as it arrives
-/// (in pieces small enough to be hashed while still in the CPU's cache). The memory is not
+/// (in pieces small enough to be hashed while still in the CPU's cache) when given a hasher. The memory is not
 /// zeroed first: zeroing would be a pass over the whole array that the read overwrites anyway
 /// (freed arrays are reused by the allocator, so it would not come free from the kernel).
 #[cfg(unix)]
 pub(crate) fn read_fresh<T: bytemuck::Pod>(
     file: &mut File,
     count: usize,
-    hasher: &mut blake3::Hasher,
+    mut hasher: Option<&mut blake3::Hasher>,
 ) -> Result<Vec<T>, Damage> {
     use std::os::fd::AsRawFd;
     let len = count
@@ -275,7 +278,9 @@ pub(crate) fn read_fresh<T: bytemuck::Pod>(
         }
         // SAFETY: read(2) has just written these `n` bytes.
         let piece = unsafe { std::slice::from_raw_parts(base.add(filled), n as usize) };
-        hash_update(hasher, piece);
+        if let Some(hasher) = hasher.as_deref_mut() {
+            hash_update(hasher, piece);
+        }
         filled += n as usize;
     }
     // SAFETY: every byte of the `count` values is written, and any bytes are a valid `T` (Pod).
@@ -287,12 +292,14 @@ pub(crate) fn read_fresh<T: bytemuck::Pod>(
 pub(crate) fn read_fresh<T: bytemuck::Pod>(
     file: &mut File,
     count: usize,
-    hasher: &mut blake3::Hasher,
+    mut hasher: Option<&mut blake3::Hasher>,
 ) -> Result<Vec<T>, Damage> {
     let mut data = vec![T::zeroed(); count];
     for piece in bytemuck::cast_slice_mut::<T, u8>(&mut data).chunks_mut(READ_CHUNK) {
         file.read_exact(piece).map_err(short_or_unreadable)?;
-        hash_update(hasher, piece);
+        if let Some(hasher) = hasher.as_deref_mut() {
+            hash_update(hasher, piece);
+        }
     }
     Ok(data)
 }
