@@ -43,7 +43,9 @@
 //! which agree with it to about 1e-12 relative. A cluster's mass is its points' t added in raster
 //! order (freq, then time), however the clusters were found: the observed map's by flood fill,
 //! every pattern's from its sign bitmaps as runs of set bits joined across rows (union-find), t
-//! computed at the points above threshold only.
+//! computed at the points above threshold only, and at a point with no set neighbour (a cluster
+//! of its own) only where a bound without square root or division says its |t| may exceed the
+//! largest mass found so far.
 
 use std::collections::BTreeMap;
 use std::fmt::Write as _;
@@ -509,11 +511,14 @@ impl Flips {
 }
 
 /// The tables of one map: for each group, the partial sum map of every sign pattern, in f64.
+/// Each table row holds `len` sums and is padded with zeros to `stride` (a multiple of [`LANES`]),
+/// so the `cluster` kernel reads whole blocks of [`LANES`] points.
 struct Tables {
-    /// Row offsets of each group's first pattern (in units of maps).
+    /// Row offsets of each group's first pattern (in units of rows).
     offsets: Vec<usize>,
     rows: Vec<f64>,
     len: usize,
+    stride: usize,
 }
 
 impl Tables {
@@ -522,14 +527,16 @@ impl Tables {
             offsets: Vec::new(),
             rows: Vec::new(),
             len: 0,
+            stride: 0,
         };
         tables.build_into(maps, flips);
         tables
     }
 
-    /// [`Tables::build`] into this table's memory (every row is written).
+    /// [`Tables::build`] into this table's memory (every row is written, padding included).
     fn build_into(&mut self, maps: &[&[f32]], flips: &Flips) {
         let len = maps.first().map_or(0, |m| m.len());
+        let stride = len.next_multiple_of(LANES);
         let offsets = &mut self.offsets;
         offsets.clear();
         let mut total = 0;
@@ -538,30 +545,31 @@ impl Tables {
             total += 1 << g.len();
         }
         self.len = len;
+        self.stride = stride;
         if maps.is_empty() {
             return;
         }
         let rows = &mut self.rows;
-        rows.resize(total * len, 0.0);
+        rows.resize(total * stride, 0.0);
         for (g, range) in flips.groups.iter().enumerate() {
-            let block = &mut rows[offsets[g] * len..(offsets[g] + (1 << range.len())) * len];
+            let block = &mut rows[offsets[g] * stride..(offsets[g] + (1 << range.len())) * stride];
             // Level k holds the 2^(k+1) patterns of the group's first k + 1 subjects, each the
             // left-to-right sum ±d₀ ± d₁ … (so mirror patterns give opposite sums exactly).
             for (k, s) in range.clone().enumerate() {
                 let d = maps[s];
                 let half = 1 << k;
                 if k == 0 {
-                    let (plus, minus) = block.split_at_mut(len);
+                    let (plus, minus) = block.split_at_mut(stride);
                     for ((p, m), &x) in plus.iter_mut().zip(&mut minus[..len]).zip(d) {
                         *p = f64::from(x);
                         *m = -f64::from(x);
                     }
                     continue;
                 }
-                let (lower, upper) = block.split_at_mut(half * len);
+                let (lower, upper) = block.split_at_mut(half * stride);
                 for m in 0..half {
-                    let src = &mut lower[m * len..(m + 1) * len];
-                    let dst = &mut upper[m * len..(m + 1) * len];
+                    let src = &mut lower[m * stride..m * stride + len];
+                    let dst = &mut upper[m * stride..m * stride + len];
                     for ((o, x), &v) in dst.iter_mut().zip(src.iter_mut()).zip(d) {
                         let v = f64::from(v);
                         *o = *x - v;
@@ -569,17 +577,22 @@ impl Tables {
                     }
                 }
             }
+            for row in block.chunks_mut(stride) {
+                row[len..].iter_mut().for_each(|x| *x = 0.0);
+            }
         }
+    }
+
+    /// The table row of group `g` for its mask `mask`, padding included.
+    fn row(&self, g: usize, mask: u8) -> &[f64] {
+        let at = (self.offsets[g] + mask as usize) * self.stride;
+        &self.rows[at..at + self.stride]
     }
 
     /// S of pattern `masks` (one mask per group) at the points `range` into `s`: the group's
     /// rows added left to right, the same additions at every point whatever the range.
     fn sum(&self, masks: &[u8], range: std::ops::Range<usize>, s: &mut [f64]) {
-        let len = self.len;
-        let row = |g: usize| {
-            let at = (self.offsets[g] + masks[g] as usize) * len;
-            &self.rows[at + range.start..at + range.end]
-        };
+        let row = |g: usize| &self.row(g, masks[g])[range.clone()];
         let groups = self.offsets.len().min(masks.len());
         if groups == 1 {
             s.iter_mut().zip(row(0)).for_each(|(a, &b)| *a = b);
@@ -660,24 +673,18 @@ struct MapInput<'a> {
 /// from memory. A multiple of 64, so that a tile fills whole bitmap words.
 const TILE: usize = 256;
 
-/// Patterns per block of the `cluster` loop. A block passes over the map row by row; each row's
-/// tables (groups × 32 × cols f64, 200 KiB for 20 subjects and 200 times) are built for the
-/// block and stay in the core's cache while the block's patterns read them; each pattern keeps
-/// its bitmaps and supra-threshold t (a few KiB) for the clusters. The tables are built
-/// patterns / BLOCK times (about 124 additions per point each, against 3 per point and pattern
-/// for the sums).
+/// Patterns per block of the `cluster` loop. A block passes over the map row by row and each row
+/// strip by strip ([`LANES`] columns); each strip's tables (groups × 32 × 16 f64, 16 KiB for 20
+/// subjects) are built for the block and stay in the core's first-level cache while the block's
+/// patterns read them; each pattern keeps its bitmaps and the S of its supra-threshold points
+/// (a few KiB) for the clusters. The tables are built patterns / BLOCK times (about 124
+/// additions per point each, against 3 per point and pattern for the sums). 512 measured
+/// best of 128–2048 at 100 pairs (BENCHMARKS.md).
 const BLOCK: usize = 512;
 
-/// Bit k of the first word is set where S is above the point's threshold, of the second where
-/// below its negative (NaN: neither), for up to 64 points.
-fn sign_bits(s: &[f64], thr: &[f64]) -> (u64, u64) {
-    let (mut pos, mut neg) = (0u64, 0u64);
-    for (k, (&x, &c)) in s.iter().zip(thr).enumerate() {
-        pos |= u64::from(x > c) << k;
-        neg |= u64::from(x < -c) << k;
-    }
-    (pos, neg)
-}
+/// Points per step of the `cluster` kernel: their sums stay in registers (four of AVX2) while
+/// each group's table row is added. Table rows are padded to a multiple of it.
+const LANES: usize = 16;
 
 /// Labels the 4-connected clusters of `sign` (+1, −1, 0 per point; one sign per cluster) by
 /// flood fill, 1, 2, … in the raster order of each cluster's first point; returns the count.
@@ -716,69 +723,63 @@ fn raster_masses(labels: &[u32], count: usize, t_at: impl Fn(usize) -> f64) -> V
     masses
 }
 
-/// The set bits of `words`, ascending.
-fn set_bits(words: &[u64]) -> impl Iterator<Item = usize> + '_ {
-    words.iter().enumerate().flat_map(|(w, &word)| {
-        let mut m = word;
-        std::iter::from_fn(move || {
-            (m != 0).then(|| {
-                let k = m.trailing_zeros() as usize;
-                m &= m - 1;
-                w * 64 + k
-            })
-        })
-    })
-}
-
 /// The tiles of a map of `len` points.
 fn tiles(len: usize) -> impl Iterator<Item = std::ops::Range<usize>> {
     (0..len).step_by(TILE).map(move |a| a..(a + TILE).min(len))
 }
 
 /// Calls `each(first, last)` for every run of set bits of one bitmap row (columns, inclusive),
-/// left to right.
+/// left to right: the next set bit, then the next clear bit after it, by trailing zeros.
 fn for_each_run(row: &[u64], mut each: impl FnMut(usize, usize)) {
-    let mut open = None;
-    for (w, &word) in row.iter().enumerate() {
-        let before = if w > 0 { row[w - 1] >> 63 } else { 0 };
-        let after = row.get(w + 1).map_or(0, |&x| x & 1);
-        let mut starts = word & !((word << 1) | before);
-        let mut ends = word & !((word >> 1) | (after << 63));
-        loop {
-            if open.is_none() {
-                if starts == 0 {
-                    break;
-                }
-                open = Some(w * 64 + starts.trailing_zeros() as usize);
-                starts &= starts - 1;
+    let mut w = 0;
+    let mut word = row.first().copied().unwrap_or(0);
+    loop {
+        while word == 0 {
+            w += 1;
+            if w >= row.len() {
+                return;
             }
-            if ends == 0 {
-                break;
-            }
-            let last = w * 64 + ends.trailing_zeros() as usize;
-            ends &= ends - 1;
-            each(open.take().unwrap_or(last), last);
+            word = row[w];
         }
+        let first = w * 64 + word.trailing_zeros() as usize;
+        // The clear bits at or after `first`.
+        let mut clear = !row[w] & (!0u64 << (first % 64));
+        while clear == 0 {
+            w += 1;
+            if w == row.len() {
+                each(first, w * 64 - 1);
+                return;
+            }
+            clear = !row[w];
+        }
+        let end = w * 64 + clear.trailing_zeros() as usize;
+        each(first, end - 1);
+        word = row[w] & (!0u64 << (end % 64));
     }
 }
 
-/// A run of set bits of one bitmap row, in [`largest_mass`].
+/// A run of set bits of one bitmap row, in [`largest_mass_by`].
 #[derive(Clone, Copy)]
 struct Run {
-    /// First and last column.
+    /// First and last column, and the row.
     from: u32,
     to: u32,
-    /// Index of its first t.
+    row: u32,
+    /// Rank of its first point among the set points (raster order).
     first: u32,
     /// Union-find parent; a cluster's root is its first run in raster order.
     parent: u32,
 }
 
-/// Scratch of [`largest_mass`].
+/// Scratch of [`largest_mass_by`].
 #[derive(Default)]
 struct Runs {
     runs: Vec<Run>,
     mass: Vec<f64>,
+    /// Per bitmap word: the rank of its first set bit among all set bits.
+    rank: Vec<u32>,
+    /// The set bits with a set neighbour.
+    joined: Vec<u64>,
 }
 
 fn find(runs: &mut [Run], mut x: usize) -> usize {
@@ -790,21 +791,96 @@ fn find(runs: &mut [Run], mut x: usize) -> usize {
     x
 }
 
+/// How [`largest_mass_by`] gets the t of a set point, given its rank among the set points
+/// (raster order) and its index in the map.
+trait PointT {
+    /// The point's t.
+    fn t(&self, rank: usize, point: usize) -> f64;
+    /// True only if |t| at the point is surely no more than `m` (false says nothing).
+    fn within(&self, rank: usize, point: usize, m: f64) -> bool;
+}
+
+/// t given for each set point.
+#[cfg(test)]
+struct GivenT<'a>(&'a [f64]);
+
+#[cfg(test)]
+impl PointT for GivenT<'_> {
+    fn t(&self, rank: usize, _point: usize) -> f64 {
+        self.0[rank]
+    }
+    fn within(&self, rank: usize, _point: usize, m: f64) -> bool {
+        self.0[rank].abs() <= m
+    }
+}
+
+/// t from the permuted sum S of each set point and the map's Q.
+struct FromSums<'a> {
+    s: &'a [f64],
+    q: &'a [f64],
+    n: f64,
+}
+
+impl PointT for FromSums<'_> {
+    fn t(&self, rank: usize, point: usize) -> f64 {
+        t_of(self.s[rank], self.q[point], self.n)
+    }
+    /// With D = fl(n Q − S²) as [`t_of`] computes it and t = fl(S · fl(√fl((n − 1) / D))) (at
+    /// most 3 roundings of relative 2⁻⁵³ from S √((n − 1) / D)): fl((n − 1) S²) <
+    /// fl(m² D (1 − 10⁻⁹)) (each side within 4 roundings) gives (n − 1) S² / D < m² (1 − 10⁻⁹ +
+    /// 10⁻¹⁵), so |t| < m. No square root, no division.
+    fn within(&self, rank: usize, point: usize, m: f64) -> bool {
+        let (s, q, n) = (self.s[rank], self.q[point], self.n);
+        let den = n * q - s * s;
+        den > 0.0 && (n - 1.0) * s * s < m * m * den * (1.0 - 1e-9)
+    }
+}
+
 /// The largest |mass| over the clusters of one sign of one pattern: `bits` holds the sign's
-/// bitmap row by row (`row_words` words a row, the columns of a row from bit 0), `t` the t of
-/// its set points in raster order. Runs of set bits are joined into 4-connected clusters when
-/// they share a column with a run of the row above (union-find); each cluster's mass is then its
-/// t added in raster order, the same additions in the same order as [`raster_masses`] on the
-/// flood fill's labels.
-fn largest_mass(bits: &[u64], row_words: usize, t: &[f64], scratch: &mut Runs) -> f64 {
-    if t.is_empty() {
+/// bitmap row by row (`row_words` words a row, the columns of a row from bit 0, `cols` columns).
+/// A set point with no set neighbour is a cluster of its own, its mass its t, which is computed
+/// only where it may exceed the largest so far. The other points' runs of set bits are joined
+/// into 4-connected clusters when they share a column with a run of the row above (union-find);
+/// each such cluster's mass is its t added in raster order, the same additions in the same
+/// order as [`raster_masses`] on the flood fill's labels.
+fn largest_mass_by(
+    bits: &[u64],
+    row_words: usize,
+    cols: usize,
+    at: &impl PointT,
+    scratch: &mut Runs,
+) -> f64 {
+    let rw = row_words;
+    let rows = bits.len().checked_div(rw).unwrap_or(0);
+    let Runs {
+        runs,
+        mass,
+        rank,
+        joined,
+    } = scratch;
+    rank.clear();
+    joined.clear();
+    let mut total = 0u32;
+    let row_of = |r: usize| bits.get(r * rw..(r + 1) * rw).unwrap_or(&[]);
+    for r in 0..rows {
+        let up = if r > 0 { row_of(r - 1) } else { &[] };
+        let (row, down) = (row_of(r), row_of(r + 1));
+        for (w, &b) in row.iter().enumerate() {
+            rank.push(total);
+            total += b.count_ones();
+            let left = (b << 1) | if w > 0 { row[w - 1] >> 63 } else { 0 };
+            let right = (b >> 1) | row.get(w + 1).map_or(0, |x| x << 63);
+            let near = up.get(w).copied().unwrap_or(0) | down.get(w).copied().unwrap_or(0);
+            joined.push(b & (left | right | near));
+        }
+    }
+    if total == 0 {
         return 0.0;
     }
-    let runs = &mut scratch.runs;
+    let rank_of = |i: usize, bit: usize| rank[i] + (bits[i] & ((1u64 << bit) - 1)).count_ones();
     runs.clear();
-    let mut next_t = 0u32;
     let mut above = 0..0;
-    for row in bits.chunks(row_words) {
+    for (r, row) in joined.chunks(rw).enumerate() {
         let here = runs.len();
         let mut p = above.start;
         for_each_run(row, |a, b| {
@@ -812,10 +888,10 @@ fn largest_mass(bits: &[u64], row_words: usize, t: &[f64], scratch: &mut Runs) -
             runs.push(Run {
                 from: a as u32,
                 to: b as u32,
-                first: next_t,
+                row: r as u32,
+                first: rank_of(r * rw + a / 64, a % 64),
                 parent: id as u32,
             });
-            next_t += (b - a + 1) as u32;
             while p < above.end && (runs[p].to as usize) < a {
                 p += 1;
             }
@@ -829,20 +905,40 @@ fn largest_mass(bits: &[u64], row_words: usize, t: &[f64], scratch: &mut Runs) -
         });
         above = here..runs.len();
     }
-    debug_assert_eq!(next_t as usize, t.len());
-    let mass = &mut scratch.mass;
     mass.clear();
     mass.resize(runs.len(), 0.0);
     for id in 0..runs.len() {
         let root = find(runs, id);
         let run = runs[id];
-        let from = run.first as usize;
         let m = &mut mass[root];
-        for &x in &t[from..from + (run.to - run.from) as usize + 1] {
-            *m += x;
+        let point = run.row as usize * cols;
+        for (k, c) in (run.from as usize..=run.to as usize).enumerate() {
+            *m += at.t(run.first as usize + k, point + c);
         }
     }
-    mass.iter().fold(0f64, |m, x| m.max(x.abs()))
+    let mut largest = mass.iter().fold(0f64, |m, x| m.max(x.abs()));
+    for r in 0..rows {
+        for w in 0..rw {
+            let i = r * rw + w;
+            let mut alone = bits[i] & !joined[i];
+            let point = r * cols + w * 64;
+            while alone != 0 {
+                let bit = alone.trailing_zeros() as usize;
+                alone &= alone - 1;
+                let (rank, point) = (rank_of(i, bit) as usize, point + bit);
+                if !at.within(rank, point, largest) {
+                    largest = largest.max(at.t(rank, point).abs());
+                }
+            }
+        }
+    }
+    largest
+}
+
+/// [`largest_mass_by`] with the t of each set point given in raster order.
+#[cfg(test)]
+fn largest_mass(bits: &[u64], row_words: usize, t: &[f64], scratch: &mut Runs) -> f64 {
+    largest_mass_by(bits, row_words, row_words * 64, &GivenT(t), scratch)
 }
 
 /// One pattern's supra-threshold points in the `cluster` loop.
@@ -851,57 +947,132 @@ struct Marks {
     /// Bitmaps of S above / below the thresholds, row by row (`row_words` words a row).
     pos: Vec<u64>,
     neg: Vec<u64>,
-    /// t at the set points of each, in raster order.
-    t_pos: Vec<f64>,
-    t_neg: Vec<f64>,
+    /// S at the set points of each, in raster order: the first `n_pos` / `n_neg` (the rest is
+    /// room to write into).
+    s_pos: Vec<f64>,
+    s_neg: Vec<f64>,
+    n_pos: usize,
+    n_neg: usize,
 }
 
-/// One map row as the `cluster` loop reads it.
+/// One strip of [`LANES`] columns of one map row, as the `cluster` loop reads it.
 struct Row<'a> {
+    /// The tables of the strip's points (stride [`LANES`]; 16 KiB for 20 subjects, so they stay
+    /// in the core's first-level cache while every pattern of a block reads them).
     tables: &'a Tables,
+    /// The strip's thresholds on S ([`LANES`], +∞ past the row's end).
     threshold_s: &'a [f64],
-    q: &'a [f64],
-    n: f64,
-    /// Index of the row's first bitmap word.
+    /// The bitmap word that holds the strip, and the strip's first bit in it.
     word: usize,
+    shift: usize,
 }
 
-/// Every pattern of `masks` (`g` masks a pattern) over one row, into its marks: S from the row's
-/// tables 64 points at a time, the signs as bitmap words, t at the points above threshold.
+/// S of one pattern (`masks`, one per group) at the [`LANES`] points of `tables`, its groups'
+/// rows added left to right (as [`Tables::sum`] does), into `s`; and its signs against the
+/// thresholds `thr`: bit k of the first word set where S is above the point's threshold, of the
+/// second where below its negative (NaN: neither).
 #[inline(always)]
-fn mark_row_body(row: &Row<'_>, masks: &[u8], g: usize, marks: &mut [Marks]) {
-    let tables = row.tables;
-    let cols = tables.len;
-    let mut s = [0f64; 64];
-    for (masks, m) in masks.chunks(g).zip(marks.iter_mut()) {
-        for (w, a) in (0..cols).step_by(64).enumerate() {
-            let at = a..(a + 64).min(cols);
-            let s = &mut s[..at.len()];
-            tables.sum(masks, at.clone(), s);
-            let q = &row.q[at.clone()];
-            let (pos, neg) = sign_bits(s, &row.threshold_s[at]);
-            m.pos[row.word + w] = pos;
-            m.neg[row.word + w] = neg;
-            for k in set_bits(&[pos]) {
-                m.t_pos.push(t_of(s[k], q[k], row.n));
-            }
-            for k in set_bits(&[neg]) {
-                m.t_neg.push(t_of(s[k], q[k], row.n));
-            }
+fn lanes_portable(tables: &Tables, masks: &[u8], thr: &[f64], s: &mut [f64; LANES]) -> (u64, u64) {
+    s.copy_from_slice(&tables.row(0, masks[0])[..LANES]);
+    for (k, &mask) in masks.iter().enumerate().skip(1) {
+        for (x, &y) in s.iter_mut().zip(tables.row(k, mask)) {
+            *x += y;
         }
+    }
+    let (mut pos, mut neg) = (0u64, 0u64);
+    for (k, (&x, &c)) in s.iter().zip(&thr[..LANES]).enumerate() {
+        pos |= u64::from(x > c) << k;
+        neg |= u64::from(x < -c) << k;
+    }
+    (pos, neg)
+}
+
+/// [`lanes_portable`] in AVX2: the same IEEE additions in the same order and the same
+/// comparisons (ordered, so NaN compares false as in Rust; −c by flipping the sign bit, as
+/// Rust's negation does), so the same bits.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+#[inline]
+fn lanes_avx2(tables: &Tables, masks: &[u8], thr: &[f64], s: &mut [f64; LANES]) -> (u64, u64) {
+    use std::arch::x86_64::*;
+    const _: () = assert!(LANES == 16);
+    let load = |v: &[f64], k: usize| {
+        let v = &v[4 * k..4 * k + 4];
+        // SAFETY: `v` holds the 4 f64 read.
+        unsafe { _mm256_loadu_pd(v.as_ptr()) }
+    };
+    let first = tables.row(0, masks[0]);
+    let mut x = [0, 1, 2, 3].map(|k| load(first, k));
+    for (k, &mask) in masks.iter().enumerate().skip(1) {
+        let r = tables.row(k, mask);
+        for (j, x) in x.iter_mut().enumerate() {
+            *x = _mm256_add_pd(*x, load(r, j));
+        }
+    }
+    let sign = _mm256_set1_pd(-0.0);
+    let (mut pos, mut neg) = (0u64, 0u64);
+    for (k, &x) in x.iter().enumerate() {
+        let c = load(thr, k);
+        let up = _mm256_movemask_pd(_mm256_cmp_pd::<_CMP_GT_OQ>(x, c));
+        let down = _mm256_movemask_pd(_mm256_cmp_pd::<_CMP_LT_OQ>(x, _mm256_xor_pd(c, sign)));
+        pos |= (up as u64) << (4 * k);
+        neg |= (down as u64) << (4 * k);
+        // SAFETY: `s` holds 16 f64, so 4 from 4 k.
+        unsafe { _mm256_storeu_pd(s.as_mut_ptr().add(4 * k), x) };
+    }
+    (pos, neg)
+}
+
+/// Writes `s[k]` for every set bit k of `bits`, ascending, into `out` from `*at` on (`out` has
+/// room for [`LANES`] more). The common case, at most one set bit, takes no branch: S at the
+/// lowest set bit (at lane 0 when none is set) is written after the list and kept only when a
+/// bit is set.
+#[inline(always)]
+fn push_set(out: &mut [f64], at: &mut usize, bits: u64, s: &[f64; LANES]) {
+    out[*at] = s[bits.trailing_zeros() as usize & (LANES - 1)];
+    *at += usize::from(bits != 0);
+    let mut rest = bits & bits.wrapping_sub(1);
+    while rest != 0 {
+        out[*at] = s[rest.trailing_zeros() as usize];
+        *at += 1;
+        rest &= rest - 1;
+    }
+}
+
+/// Every pattern of `masks` (`g` masks a pattern) over one strip, into its marks: S by `lanes`,
+/// the signs into the bitmap words, S kept at the points above threshold.
+#[inline(always)]
+fn mark_row_body(
+    row: &Row<'_>,
+    masks: &[u8],
+    g: usize,
+    marks: &mut [Marks],
+    lanes: impl Fn(&Tables, &[u8], &[f64], &mut [f64; LANES]) -> (u64, u64),
+) {
+    let mut s = [0f64; LANES];
+    for (pattern, m) in masks.chunks(g).zip(marks.iter_mut()) {
+        let (p, n) = lanes(row.tables, pattern, row.threshold_s, &mut s);
+        let (pos, neg) = (&mut m.pos[row.word], &mut m.neg[row.word]);
+        if row.shift == 0 {
+            (*pos, *neg) = (p, n);
+        } else {
+            *pos |= p << row.shift;
+            *neg |= n << row.shift;
+        }
+        push_set(&mut m.s_pos, &mut m.n_pos, p, &s);
+        push_set(&mut m.s_neg, &mut m.n_neg, n, &s);
     }
 }
 
 fn mark_row_portable(row: &Row<'_>, masks: &[u8], g: usize, marks: &mut [Marks]) {
-    mark_row_body(row, masks, g, marks);
+    mark_row_body(row, masks, g, marks, lanes_portable);
 }
 
-/// The same operations compiled for AVX2 (IEEE additions, comparisons, divisions and square
-/// roots in the same order: the same bits).
+/// The strip loop compiled for AVX2 around [`lanes_avx2`].
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
-unsafe fn mark_row_avx2(row: &Row<'_>, masks: &[u8], g: usize, marks: &mut [Marks]) {
-    mark_row_body(row, masks, g, marks);
+fn mark_row_avx2(row: &Row<'_>, masks: &[u8], g: usize, marks: &mut [Marks]) {
+    mark_row_body(row, masks, g, marks, |t, m, c, s| lanes_avx2(t, m, c, s));
 }
 
 fn mark_row(row: &Row<'_>, masks: &[u8], g: usize, marks: &mut [Marks]) {
@@ -912,6 +1083,12 @@ fn mark_row(row: &Row<'_>, masks: &[u8], g: usize, marks: &mut [Marks]) {
         return;
     }
     mark_row_portable(row, masks, g, marks);
+}
+
+/// Every subject's points `at`, into `out`.
+fn subject_points<'a>(maps: &[&'a [f32]], at: std::ops::Range<usize>, out: &mut Vec<&'a [f32]>) {
+    out.clear();
+    out.extend(maps.iter().map(|m| &m[at.clone()]));
 }
 
 /// The `cluster` side of one map: the observed clusters (labels and masses) and, per pattern,
@@ -929,17 +1106,13 @@ fn cluster_map(
     let g = flips.groups.len();
     let count = flips.count();
     let mut tables = Tables::build(&[], flips);
-    let row_maps = |r: usize| -> Vec<&[f32]> {
-        input
-            .maps
-            .iter()
-            .map(|m| &m[r * cols..(r + 1) * cols])
-            .collect()
-    };
+    let mut part: Vec<&[f32]> = Vec::with_capacity(input.maps.len());
+    let points = |at, part: &mut _| subject_points(&input.maps, at, part);
     // The observed map: pattern 0 through the same tables, clusters by flood fill.
     let mut s_obs = vec![0f64; len];
     for (r, s) in s_obs.chunks_mut(cols.max(1)).enumerate().take(rows) {
-        tables.build_into(&row_maps(r), flips);
+        points(r * cols..(r + 1) * cols, &mut part);
+        tables.build_into(&part, flips);
         tables.sum(&flips.masks[..g], 0..cols, s);
     }
     let sign: Vec<i8> = s_obs
@@ -950,44 +1123,60 @@ fn cluster_map(
     let mut labels = vec![0; len];
     let found = label_clusters(&sign, cols, &mut labels);
     let masses = raster_masses(&labels, found, |i| t_of(s_obs[i], input.q[i], n));
-    // A block of patterns at a time, one map row at a time: each pattern's S over the row, its
-    // signs as bitmaps and t at the supra-threshold points only; then each pattern's clusters
+    // A block of patterns at a time, one strip of a map row at a time: each pattern's S over
+    // the strip, its signs into its bitmaps and S at the supra-threshold points only (in
+    // raster order: strips left to right, rows top to bottom); then each pattern's clusters
     // from its bitmaps.
-    let mut marks: Vec<Marks> = (0..BLOCK.min(count))
+    let block_len = BLOCK;
+    let mut marks: Vec<Marks> = (0..block_len.min(count))
         .map(|_| Marks {
             pos: vec![0; rows * row_words],
             neg: vec![0; rows * row_words],
             ..Marks::default()
         })
         .collect();
+    let mut threshold_s = [f64::INFINITY; LANES];
     let mut runs = Runs::default();
     let mut null = Vec::with_capacity(count);
-    for block in (0..count).step_by(BLOCK) {
-        let patterns = block..(block + BLOCK).min(count);
+    for block in (0..count).step_by(block_len) {
+        let patterns = block..(block + block_len).min(count);
         let marks = &mut marks[..patterns.len()];
         for m in marks.iter_mut() {
-            m.t_pos.clear();
-            m.t_neg.clear();
+            (m.n_pos, m.n_neg) = (0, 0);
         }
         for r in 0..rows {
-            tables.build_into(&row_maps(r), flips);
-            let row = Row {
-                tables: &tables,
-                threshold_s: &input.threshold_s[r * cols..(r + 1) * cols],
-                q: &input.q[r * cols..(r + 1) * cols],
-                n,
-                word: r * row_words,
-            };
-            mark(
-                &row,
-                &flips.masks[patterns.start * g..patterns.end * g],
-                g,
-                marks,
-            );
+            // Room for a whole row more of each sign's S, and a strip beyond.
+            for m in marks.iter_mut() {
+                for (s, n) in [(&mut m.s_pos, m.n_pos), (&mut m.s_neg, m.n_neg)] {
+                    if s.len() < n + cols + LANES {
+                        s.resize(n + cols + LANES, 0.0);
+                    }
+                }
+            }
+            for a in (0..cols).step_by(LANES) {
+                let at = r * cols + a..r * cols + (a + LANES).min(cols);
+                points(at.clone(), &mut part);
+                tables.build_into(&part, flips);
+                threshold_s.fill(f64::INFINITY);
+                threshold_s[..at.len()].copy_from_slice(&input.threshold_s[at]);
+                let row = Row {
+                    tables: &tables,
+                    threshold_s: &threshold_s,
+                    word: r * row_words + a / 64,
+                    shift: a % 64,
+                };
+                mark(
+                    &row,
+                    &flips.masks[patterns.start * g..patterns.end * g],
+                    g,
+                    marks,
+                );
+            }
         }
         for m in marks.iter() {
-            let pos = largest_mass(&m.pos, row_words, &m.t_pos, &mut runs);
-            let neg = largest_mass(&m.neg, row_words, &m.t_neg, &mut runs);
+            let t = |s| FromSums { s, q: input.q, n };
+            let pos = largest_mass_by(&m.pos, row_words, cols, &t(&m.s_pos[..m.n_pos]), &mut runs);
+            let neg = largest_mass_by(&m.neg, row_words, cols, &t(&m.s_neg[..m.n_neg]), &mut runs);
             null.push(pos.max(neg));
         }
     }
@@ -1967,6 +2156,63 @@ mod tests {
                 );
             }
         }
+    }
+
+    #[test]
+    fn isolated_points_bounded_without_t_give_the_flood_fill_masses() {
+        // largest_mass_by with t from S and Q (`FromSums`, which skips a point without a set
+        // neighbour when a bound without square root or division shows its |t| cannot raise
+        // the largest): against flood-fill labels with masses of t_of added in raster order,
+        // bit for bit. Sparse maps (mostly isolated points) to dense; |S| up to its bound
+        // √(n Q), now and then at it (t infinite or very large).
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(31);
+        let n = 20.0;
+        let mut runs = Runs::default();
+        let mut skipped_any = false;
+        for &(rows, cols) in &[(3, 17), (30, 200), (8, 64), (5, 130)] {
+            for density in [0.01, 0.05, 0.2, 0.6] {
+                let len = rows * cols;
+                let q: Vec<f64> = (0..len).map(|_| rng.gen_range(0.5..2.0)).collect();
+                let (mut sign, mut s) = (vec![0i8; len], vec![0f64; len]);
+                for i in 0..len {
+                    if rng.gen::<f64>() < density {
+                        sign[i] = if rng.gen::<bool>() { 1 } else { -1 };
+                        let bound = (n * q[i]).sqrt();
+                        let share = if rng.gen::<f64>() < 0.01 {
+                            1.0
+                        } else {
+                            rng.gen_range(0.3..0.99)
+                        };
+                        s[i] = f64::from(sign[i]) * bound * share;
+                    }
+                }
+                let mut labels = vec![0; len];
+                let found = label_clusters(&sign, cols, &mut labels);
+                let masses = raster_masses(&labels, found, |i| t_of(s[i], q[i], n));
+                let want = masses.iter().fold(0f64, |m, x| m.max(x.abs()));
+                let rw = cols.div_ceil(64);
+                let mut got = 0f64;
+                for side in [1i8, -1] {
+                    let mut bits = vec![0u64; rows * rw];
+                    let mut sums = Vec::new();
+                    for i in (0..len).filter(|&i| sign[i] == side) {
+                        let (r, c) = (i / cols, i % cols);
+                        bits[r * rw + c / 64] |= 1 << (c % 64);
+                        sums.push(s[i]);
+                    }
+                    let at = FromSums { s: &sums, q: &q, n };
+                    skipped_any |= (0..sums.len()).any(|k| at.within(k, 0, 1e3));
+                    got = got.max(largest_mass_by(&bits, rw, cols, &at, &mut runs));
+                }
+                assert_eq!(
+                    got.to_bits(),
+                    want.to_bits(),
+                    "{rows} x {cols} at {density}"
+                );
+            }
+        }
+        assert!(skipped_any);
     }
 
     #[test]
