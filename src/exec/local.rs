@@ -478,10 +478,11 @@ impl Worker<'_, '_> {
             output: &study.pipeline.output,
             subject: study.subject(u),
             stage: study.stage_name(u),
+            format: study.pipeline.stages[study.units[u].stage].format,
         };
         let record = self.record_of(u)?;
         let file = if output::is_current(&target, &record, &study.store) {
-            target.relative_npy()
+            target.relative_path()
         } else {
             let array = match array {
                 Some(a) => Some(a),
