@@ -381,7 +381,13 @@ pub(crate) fn sweep_section(
         pick.window
     );
     let labels: Vec<String> = variants.iter().map(|v| short_label(v, &t)).collect();
-    let scene = draw(&mut points, &variants, &labels, &conditions, &pick);
+    let scene = draw(
+        &mut points,
+        &variants,
+        (&labels, &params),
+        &conditions,
+        &pick,
+    );
     let has_sem = points.iter().any(|p| p.sem.parse::<f64>().is_ok());
     let caption = format!(
         "{title}: the group mean{} (stage {}) of each condition in each variant ({}). Chosen: {}.",
@@ -460,7 +466,7 @@ const MARK: f64 = 4.0;
 fn draw(
     points: &mut [SweepPoint],
     variants: &[String],
-    labels: &[String],
+    (labels, params): (&[String], &[String]),
     conditions: &[String],
     pick: &Pick,
 ) -> Scene {
@@ -523,7 +529,11 @@ fn draw(
     }
     scene.text(
         ((rect[0] + rect[2]) / 2.0, rect[3] + 26.0),
-        "variant",
+        if params.is_empty() {
+            "variant".to_string()
+        } else {
+            format!("variant: {}", params.join(", "))
+        },
         LABEL_PX,
         (HAlign::Centre, VAlign::Top),
     );
@@ -558,7 +568,12 @@ fn draw(
         if let Some(s) = num(&p.sem) {
             scene.line((x, ym.to_px(m - s)), (x, ym.to_px(m + s)), p.colour, 1.4);
             for v in [m - s, m + s] {
-                scene.line((x - 3.0, ym.to_px(v)), (x + 3.0, ym.to_px(v)), p.colour, 1.4);
+                scene.line(
+                    (x - 3.0, ym.to_px(v)),
+                    (x + 3.0, ym.to_px(v)),
+                    p.colour,
+                    1.4,
+                );
             }
         }
         scene.fill([x - MARK, y - MARK, x + MARK, y + MARK], p.colour);
@@ -686,7 +701,9 @@ tf.cycles=4\t4\tstats\tn/a\tn/a\tppc\tF3\tP4\tn/a\tn/a\tn/a\tn/a\tn/a\t1\t4\t8\t
             not_drawn: Vec::new(),
         };
         let order = ["left".to_string(), "right".to_string()];
-        let s = sweep_section(&mut ctx, dir.path(), &order).unwrap().unwrap();
+        let s = sweep_section(&mut ctx, dir.path(), &order)
+            .unwrap()
+            .unwrap();
         // theta: |0.30 − 0.05| = 0.25 beats alpha's 0.01 in the first variant.
         assert_eq!((s.band.as_str(), s.window.as_str()), ("theta", "late"));
         assert_eq!((s.measure.as_str(), s.stage.as_str()), ("ppc", "group"));
@@ -694,7 +711,14 @@ tf.cycles=4\t4\tstats\tn/a\tn/a\tppc\tF3\tP4\tn/a\tn/a\tn/a\tn/a\tn/a\t1\t4\t8\t
         let cells: Vec<(&str, &str, &str, &str)> = s
             .points
             .iter()
-            .map(|p| (p.variant.as_str(), p.condition.as_str(), p.mean.as_str(), p.sem.as_str()))
+            .map(|p| {
+                (
+                    p.variant.as_str(),
+                    p.condition.as_str(),
+                    p.mean.as_str(),
+                    p.sem.as_str(),
+                )
+            })
             .collect();
         assert_eq!(
             cells,
@@ -708,11 +732,16 @@ tf.cycles=4\t4\tstats\tn/a\tn/a\tppc\tF3\tP4\tn/a\tn/a\tn/a\tn/a\tn/a\t1\t4\t8\t
         let clusters = s.clusters.clone().unwrap();
         assert_eq!(clusters[1], ("tf.cycles=8".to_string(), "no".to_string()));
         assert!(
-            clusters[0].1.starts_with("yes: 1 cluster (p = 0.03125, 4–8 Hz, 0.3–0.7 s)"),
+            clusters[0]
+                .1
+                .starts_with("yes: 1 cluster (p = 0.03125, 4–8 Hz, 0.3–0.7 s)"),
             "{clusters:?}"
         );
         let html = section_html(&s, "");
-        assert!(html.contains("kept in 1 of 2 variants (tf.cycles=4)"), "{html}");
+        assert!(
+            html.contains("kept in 1 of 2 variants (tf.cycles=4)"),
+            "{html}"
+        );
         assert_eq!(ctx.figures.len(), 1);
         // A higher mean is drawn higher (pixel y grows downwards).
         let y = |v: &str, c: &str| {
@@ -734,11 +763,15 @@ tf.cycles=4\t4\tstats\tn/a\tn/a\tppc\tF3\tP4\tn/a\tn/a\tn/a\tn/a\tn/a\t1\t4\t8\t
             ..ReportOptions::default()
         };
         ctx.opts = &named;
-        let s = sweep_section(&mut ctx, dir.path(), &order).unwrap().unwrap();
+        let s = sweep_section(&mut ctx, dir.path(), &order)
+            .unwrap()
+            .unwrap();
         assert_eq!(s.band, "alpha");
         assert!(s.why.contains("band and window: named"), "{}", s.why);
         // No sweep.tsv, no section.
         let empty = tempfile::tempdir().unwrap();
-        assert!(sweep_section(&mut ctx, empty.path(), &order).unwrap().is_none());
+        assert!(sweep_section(&mut ctx, empty.path(), &order)
+            .unwrap()
+            .is_none());
     }
 }

@@ -200,13 +200,22 @@ fn the_report_draws_the_sweep_values_it_reads_from_sweep_tsv() {
     let html = results.join("report.html");
     let before = write_report(&results, &html, &ReportOptions::default()).unwrap();
     assert!(before.sweep.is_none());
-    assert!(!before.sections.iter().any(|s| s == "sweep"), "{:?}", before.sections);
+    assert!(
+        !before.sections.iter().any(|s| s == "sweep"),
+        "{:?}",
+        before.sections
+    );
     assert!(!before.figures.iter().any(|f| f.kind == FigureKind::Sweep));
 
     assert_success(
         &run_cli(
             dir,
-            &["sweep", "pipeline.yaml", "--vary", "norm.mode=[subtract, zscore]"],
+            &[
+                "sweep",
+                "pipeline.yaml",
+                "--vary",
+                "norm.mode=[subtract, zscore]",
+            ],
         ),
         "sweep",
     );
@@ -254,12 +263,12 @@ fn the_report_draws_the_sweep_values_it_reads_from_sweep_tsv() {
     for p in &s.points {
         let line = format!(
             "<td>{}</td><td>{}</td><td>{}</td><td class=\"n\">{}</td>",
-            p.variant,
-            p.values[0],
-            p.condition,
-            p.mean
+            p.variant, p.values[0], p.condition, p.mean
         );
-        assert!(section.contains(&line), "{line} not in the section:\n{section}");
+        assert!(
+            section.contains(&line),
+            "{line} not in the section:\n{section}"
+        );
     }
     // Each point in its colour at its place in the PNG.
     let fig = summary
