@@ -99,6 +99,14 @@ pub fn archive(
         let Some(file) = record.file.clone() else {
             continue;
         };
+        if record.store.is_some() {
+            return Err(fail(format!(
+                "stage {} was exported as a Zarr store ({file}, `format: zarr`); a bundle holds \
+                 NPY exports only (BIDS has no place for a Zarr store of connectivity yet): \
+                 remove `format: zarr`, run again and archive that manifest",
+                unit.stage
+            )));
+        }
         let npy = output.join(&file);
         match hash_file(&npy) {
             Ok((_, hash)) if hash == record.blake3 => {}

@@ -262,7 +262,7 @@ pub fn host_name() -> String {
 /// number and a counter, then the target's name. Host and pid tell apart writers that share a
 /// folder over a network filesystem; the random number those that share both (two containers or
 /// PID namespaces with the same host name); the counter the writes of one process.
-fn temp_name(target: &str) -> String {
+pub(crate) fn temp_name(target: &str) -> String {
     use std::hash::{BuildHasher, Hasher};
     use std::sync::OnceLock;
     static HOST: OnceLock<String> = OnceLock::new();

@@ -54,3 +54,4 @@ pub mod study;
 pub mod sweep;
 pub mod verify;
 pub mod words;
+pub mod zarr;

@@ -159,6 +159,11 @@ pub struct OutputRecord {
     pub shape: Vec<usize>,
     /// numpy dtype (`<f4`, `<c8`).
     pub dtype: String,
+    /// For an export written as a Zarr store (`format: zarr`, where `file` names the store):
+    /// the blake3 of each of the store's files, by its path inside the store. `verify` and
+    /// `archive` check them as they check an NPY export against `blake3`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub store: Option<crate::zarr::StoreHashes>,
 }
 
 /// The source revision of this build, as `build.rs` recorded it: the commit, with `-dirty` when
@@ -238,6 +243,9 @@ fn unit_record(study: &Study, outcome: &Outcome, u: usize) -> UnitRecord {
             blake3: result.record.blake3.clone(),
             shape: result.record.shape.clone(),
             dtype: result.record.dtype.clone(),
+            store: result.export.as_deref().and_then(|file| {
+                crate::output::recorded_store_hashes(&study.pipeline.output, file, &study.store)
+            }),
         }],
         status: if result.computed {
             "computed"

@@ -49,12 +49,52 @@ pub struct ExportTarget<'a> {
     pub subject: Option<&'a str>,
     /// The stage.
     pub stage: &'a str,
+    /// How it is written (the stage's `format:`).
+    pub format: ExportFormat,
+}
+
+/// How an exported stage is written: its `format:` key (DESIGN §6).
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub enum ExportFormat {
+    /// An NPY file and its format-2 JSON sidecar (the default).
+    #[default]
+    Npy,
+    /// One Zarr v3 store, chunked and compressed ([`crate::zarr`]).
+    Zarr,
+}
+
+impl ExportFormat {
+    /// The values the `format:` key takes, as written.
+    pub const NAMES: [&'static str; 2] = ["npy", "zarr"];
+
+    /// The format a `format:` value names.
+    pub fn from_name(name: &str) -> Option<ExportFormat> {
+        match name {
+            "npy" => Some(ExportFormat::Npy),
+            "zarr" => Some(ExportFormat::Zarr),
+            _ => None,
+        }
+    }
 }
 
 impl ExportTarget<'_> {
     /// The NPY path relative to the output folder, as the manifest records it.
     pub fn relative_npy(&self) -> String {
         format!("{}/{}.npy", self.subject.unwrap_or("group"), self.stage)
+    }
+
+    /// The exported file (the NPY) or store (`<stage>.zarr`) relative to the output folder, as
+    /// the manifest records it.
+    pub fn relative_path(&self) -> String {
+        match self.format {
+            ExportFormat::Npy => self.relative_npy(),
+            ExportFormat::Zarr => format!(
+                "{}/{}.{}",
+                self.subject.unwrap_or("group"),
+                self.stage,
+                crate::zarr::STORE_EXTENSION
+            ),
+        }
     }
 }
 
@@ -107,6 +147,10 @@ pub struct ExportRecord {
     pub blake3: String,
     /// Every file written, with its stat right after.
     pub files: Vec<FileStat>,
+    /// For a Zarr store: the blake3 of each of its files, by path inside the store (for the
+    /// manifest, [`recorded_store_hashes`]).
+    #[serde(default, skip_serializing_if = "std::collections::BTreeMap::is_empty")]
+    pub store: crate::zarr::StoreHashes,
 }
 
 /// Version of [`ExportRecord`]; records of another version are ignored (the export is written).
@@ -137,7 +181,14 @@ impl ExportTarget<'_> {
     /// since (damaged, rewritten) is exported again — and hash-checked on the way.
     fn files(&self, record: &ObjectRecord, store: &Store) -> Vec<PathBuf> {
         let npy = self.npy_path();
-        let mut files = vec![npy.clone(), npy.with_extension("json")];
+        let mut files = match self.format {
+            ExportFormat::Npy => vec![npy.clone(), npy.with_extension("json")],
+            ExportFormat::Zarr => crate::zarr::store_files(&self.output.join(self.relative_path()))
+                .map_or_else(
+                    |_| vec![self.output.join(self.relative_path())],
+                    |f| f.into_iter().map(|(_, path)| path).collect(),
+                ),
+        };
         if is_table(record) {
             files.push(self.tsv_path());
             files.push(self.dictionary_path());
@@ -149,15 +200,19 @@ impl ExportTarget<'_> {
     }
 
     /// Where the export record of this target lives in the cache.
-    fn record_path(&self, store: &Store) -> PathBuf {
-        let npy = self.npy_path();
-        let absolute = std::path::absolute(&npy).unwrap_or(npy);
-        let id = blake3::hash(absolute.to_string_lossy().as_bytes()).to_hex();
-        store
-            .root()
-            .join("exports")
-            .join(format!("{}.json", &id[..32]))
+    pub(crate) fn record_path(&self, store: &Store) -> PathBuf {
+        export_record_path(&self.output.join(self.relative_path()), store)
     }
+}
+
+/// Where the export record of the export at `path` lives in the cache.
+fn export_record_path(path: &Path, store: &Store) -> PathBuf {
+    let absolute = std::path::absolute(path).unwrap_or_else(|_| path.to_path_buf());
+    let id = blake3::hash(absolute.to_string_lossy().as_bytes()).to_hex();
+    store
+        .root()
+        .join("exports")
+        .join(format!("{}.json", &id[..32]))
 }
 
 fn stat_of(path: &Path) -> Option<FileStat> {
@@ -219,6 +274,9 @@ pub fn export(
     from: ExportFrom<'_>,
     store: &Store,
 ) -> Result<String, ExportError> {
+    if target.format == ExportFormat::Zarr {
+        return crate::zarr::export(target, record, from, store);
+    }
     let relative = target.relative_npy();
     let npy_path = target.npy_path();
     if let Some(dir) = npy_path.parent() {
@@ -272,6 +330,18 @@ pub fn export(
         message: e.to_string(),
     })?;
     write_atomically(&npy_path.with_extension("json"), &text)?;
+    write_tables(target, record, from, store)?;
+    write_export_record(target, record, store, Default::default());
+    Ok(relative)
+}
+
+/// For a table (`meta.extra.table`), write its column dictionary and its TSV.
+pub(crate) fn write_tables(
+    target: &ExportTarget<'_>,
+    record: &ObjectRecord,
+    from: ExportFrom<'_>,
+    store: &Store,
+) -> Result<(), ExportError> {
     if is_table(record) {
         write_column_dictionary(target, record)?;
         match from {
@@ -286,6 +356,17 @@ pub fn export(
             }
         }
     }
+    Ok(())
+}
+
+/// Keep the stat of every file just written (and, for a store, its files' hashes) in the
+/// export record, which [`is_current`] reads on the next run.
+pub(crate) fn write_export_record(
+    target: &ExportTarget<'_>,
+    record: &ObjectRecord,
+    store: &Store,
+    hashes: crate::zarr::StoreHashes,
+) {
     let files: Option<Vec<FileStat>> = target
         .files(record, store)
         .iter()
@@ -297,13 +378,26 @@ pub fn export(
             key: record.key.clone(),
             blake3: record.blake3.clone(),
             files,
+            store: hashes,
         };
         // Losing the record only costs a rewrite next time.
         if let Ok(bytes) = serde_json::to_vec(&last) {
-            let _ = bookkeeping_write(&record_path, &bytes);
+            let _ = bookkeeping_write(&target.record_path(store), &bytes);
         }
     }
-    Ok(relative)
+}
+
+/// The blake3 of every file of the Zarr store exported at `relative` (below `output`), as the
+/// export record kept them when the store was written: `None` for an NPY export, or when the
+/// record is gone (the manifest then lists no files of the store).
+pub fn recorded_store_hashes(
+    output: &Path,
+    relative: &str,
+    store: &Store,
+) -> Option<crate::zarr::StoreHashes> {
+    let bytes = std::fs::read(export_record_path(&output.join(relative), store)).ok()?;
+    let last: ExportRecord = serde_json::from_slice(&bytes).ok()?;
+    (!last.store.is_empty()).then_some(last.store)
 }
 
 /// Version of the exported sidecar's form ([`sidecar`]).

@@ -140,6 +140,11 @@ fn key_schema(section: &str, key: &str, ops: &[Value]) -> Option<Value> {
         ("stage", "params") => json!({ "type": "object", "description": "The op's params." }),
         ("stage", "cache") => flag("Store this stage's output in the cache (default true)."),
         ("stage", "export") => flag("Copy this stage's output into the results folder."),
+        ("stage", "format") => json!({
+            "enum": crate::output::ExportFormat::NAMES,
+            "description": "How an exported stage is written: npy (default; an NPY file and its \
+                JSON sidecar) or zarr (one Zarr v3 store, chunked and compressed, for large arrays).",
+        }),
         _ => return None,
     })
 }

@@ -49,6 +49,9 @@ pub struct OutputCheck {
 pub struct VerifyReport {
     /// Input files (and the pipeline file) that changed or are missing, one sentence each.
     pub input_problems: Vec<String>,
+    /// Exported files and Zarr stores that changed since the run or are missing, one sentence
+    /// each (their recorded blake3 against the files in the output folder).
+    pub export_problems: Vec<String>,
     /// The rerun's failure, if it failed.
     pub run_failure: Option<String>,
     /// Per-output verdicts, in the manifest's order.
@@ -60,6 +63,7 @@ impl VerifyReport {
     /// were streamed and never hashed are checked through the outputs they feed).
     pub fn reproduced(&self) -> bool {
         self.input_problems.is_empty()
+            && self.export_problems.is_empty()
             && self.run_failure.is_none()
             && self
                 .outputs
@@ -78,6 +82,7 @@ impl VerifyReport {
     /// A human-readable report, one line per finding.
     pub fn lines(&self) -> Vec<String> {
         let mut lines = self.input_problems.clone();
+        lines.extend(self.export_problems.iter().cloned());
         if let Some(f) = &self.run_failure {
             lines.push(format!("the rerun failed: {f}"));
         }
@@ -143,6 +148,7 @@ pub fn verify_with(
     };
     let mut report = VerifyReport {
         input_problems: check_inputs(&old, &pipeline_file, &place),
+        export_problems: check_exports(&old, &output),
         ..VerifyReport::default()
     };
     if !pipeline_file.is_file() {
@@ -238,6 +244,41 @@ fn check_inputs(old: &Manifest, pipeline_file: &Path, place: &Place) -> Vec<Stri
                 problems.push(format!("input file {shown} changed"))
             }
             Ok(_) => {}
+        }
+    }
+    problems
+}
+
+/// The recorded exports against the output folder: an NPY by its blake3, a Zarr store by the
+/// blake3 of each of its files (naming those that changed, are missing or were added).
+fn check_exports(old: &Manifest, output: &Path) -> Vec<String> {
+    let mut problems = Vec::new();
+    for unit in &old.units {
+        for record in &unit.outputs {
+            let Some(file) = &record.file else { continue };
+            let path = output.join(file);
+            match &record.store {
+                Some(_) if !path.is_dir() => {
+                    problems.push(format!("the exported store {file} is missing"))
+                }
+                Some(recorded) => {
+                    let changed = crate::zarr::changed_files(&path, recorded);
+                    if !changed.is_empty() {
+                        problems.push(format!(
+                            "the exported store {file} changed since the run: {}",
+                            changed.join(", ")
+                        ));
+                    }
+                }
+                None if record.blake3.is_empty() => {}
+                None => match hash_file(&path) {
+                    Err(_) => problems.push(format!("the exported file {file} is missing")),
+                    Ok((_, hash)) if hash != record.blake3 => {
+                        problems.push(format!("the exported file {file} changed since the run"))
+                    }
+                    Ok(_) => {}
+                },
+            }
         }
     }
     problems

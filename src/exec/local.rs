@@ -109,6 +109,8 @@ fn export_queued(
             output: &study.pipeline.output,
             subject: study.subject(u),
             stage: study.stage_name(u),
+            // Only NPY exports are queued (a Zarr store is written where the unit is exported).
+            format: output::ExportFormat::Npy,
         };
         match output::export(&target, &record, ExportFrom::Object, &study.store) {
             Ok(_) => {}
@@ -533,17 +535,19 @@ impl Worker<'_, '_> {
             output: &study.pipeline.output,
             subject: study.subject(u),
             stage: study.stage_name(u),
+            format: study.pipeline.stages[study.units[u].stage].format,
         };
         let record = self.record_of(u)?;
         let file = if output::is_current(&target, &record, &study.store) {
-            target.relative_npy()
-        } else if record.stored
+            target.relative_path()
+        } else if target.format == output::ExportFormat::Npy
+            && record.stored
             && !output::is_table(&record)
             && study.store.wrote_intact_object(&record.key, &record)
         {
             // Written by this run: linked (and made durable) by the export thread.
             let _ = self.ctx.exports.send((u, Arc::clone(&record)));
-            target.relative_npy()
+            target.relative_path()
         } else {
             let array = match array {
                 Some(a) => Some(a),

@@ -23,7 +23,7 @@ pub const DATA_KEYS: &[&str] = &[
     "format",
 ];
 /// Keys allowed in a stage.
-pub const STAGE_KEYS: &[&str] = &["op", "input", "params", "cache", "export"];
+pub const STAGE_KEYS: &[&str] = &["op", "input", "params", "cache", "export", "format"];
 
 /// A value with the place it came from.
 #[derive(Clone, Debug, PartialEq)]
@@ -78,6 +78,10 @@ pub struct RawStage {
     pub cache_given: bool,
     /// Whether the output is exported.
     pub export: bool,
+    /// How it is exported (`format:`), with where the key was written when it was.
+    pub format: crate::output::ExportFormat,
+    /// Where `format:` was written, if it was.
+    pub format_origin: Option<Origin>,
 }
 
 /// One `--set STAGE.PARAM=VALUE` argument.
@@ -307,6 +311,8 @@ fn read_stage(key: &Node, node: &Node, c: &mut Collector<'_>) -> Option<RawStage
         cache: true,
         cache_given: false,
         export: false,
+        format: Default::default(),
+        format_origin: None,
     };
     for (key, value) in entries {
         let k = key.as_str().unwrap_or_default();
@@ -324,6 +330,10 @@ fn read_stage(key: &Node, node: &Node, c: &mut Collector<'_>) -> Option<RawStage
                 stage.cache_given = true;
             }
             "export" => stage.export = boolean(value, &sub, c).unwrap_or(false),
+            "format" => {
+                stage.format_origin = Some(value.origin);
+                stage.format = export_format(value, &sub, c).unwrap_or_default();
+            }
             _ => unknown_key(key, k, &format!("{field}."), STAGE_KEYS, c),
         }
     }
@@ -404,6 +414,30 @@ fn boolean(node: &Node, field: &str, c: &mut Collector<'_>) -> Option<bool> {
             None
         }
     }
+}
+
+/// A stage's `format:` value: one of [`crate::output::ExportFormat::NAMES`].
+fn export_format(
+    node: &Node,
+    field: &str,
+    c: &mut Collector<'_>,
+) -> Option<crate::output::ExportFormat> {
+    use crate::output::ExportFormat;
+    let name = text(node, field, c)?;
+    let format = ExportFormat::from_name(&name.value);
+    if format.is_none() {
+        c.at(
+            node.origin,
+            field,
+            format!(
+                "unknown export format `{}`, expected one of: {}{}",
+                name.value,
+                ExportFormat::NAMES.join(", "),
+                did_you_mean(&name.value, ExportFormat::NAMES)
+            ),
+        );
+    }
+    format
 }
 
 fn unknown_key(key: &Node, name: &str, prefix: &str, allowed: &[&str], c: &mut Collector<'_>) {

@@ -78,6 +78,8 @@ pub struct ResolvedStage {
     pub unstored_by_policy: bool,
     /// Whether outputs are exported (asked for, or consumed by nothing).
     pub export: bool,
+    /// How exported outputs are written (`format:`).
+    pub format: crate::output::ExportFormat,
     /// True when the op joins subjects.
     pub joins: bool,
     /// True for a group stage (joins, or is downstream of one).
@@ -417,6 +419,15 @@ fn finish_stages(
             );
             ok = false;
         }
+        if let (Some(origin), false) = (r.format_origin, export) {
+            c.at(
+                origin,
+                format!("stages.{}.format", r.name.value),
+                "`format` says how an exported stage is written, and this stage is not \
+                 exported (another stage consumes it): add `export: true`",
+            );
+            ok = false;
+        }
         stages.push(ResolvedStage {
             name: r.name.value.clone(),
             op,
@@ -426,6 +437,7 @@ fn finish_stages(
             cache_given: r.cache_given,
             unstored_by_policy: false,
             export,
+            format: r.format,
             joins,
             group,
             params_node: r.params.clone(),

@@ -73,6 +73,7 @@ pub(crate) fn page(
     ctx: &Ctx<'_>,
     html_dir: &Path,
     stats: &[StatArray],
+    sweep: Option<&super::variants::SweepSection>,
 ) -> (String, Vec<String>) {
     let m = &run.manifest;
     let name = m
@@ -109,6 +110,14 @@ pub(crate) fn page(
         ("subjects", "Each subject", FigureKind::SubjectMap),
     ] {
         parts.push((id, title, figures_except(ctx, kind, html_dir, &key)));
+    }
+    if let Some(s) = sweep {
+        let figures = figures_of(ctx, FigureKind::Sweep, html_dir);
+        parts.push((
+            "sweep",
+            "Across the sweep's variants",
+            super::variants::section_html(s, &figures),
+        ));
     }
     parts.push((
         "tables",

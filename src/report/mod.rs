@@ -25,6 +25,7 @@ pub mod spec;
 pub mod story;
 pub mod tf;
 pub mod tmap;
+pub mod variants;
 
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -63,6 +64,8 @@ pub struct ReportOptions {
     pub max_table_rows: usize,
     /// Pixel density of the PNGs relative to the HTML's layout pixels.
     pub png_scale: f64,
+    /// The quantity drawn across a sweep's variants (each part optional; see [`variants`]).
+    pub sweep: spec::SweepSpec,
 }
 
 impl Default for ReportOptions {
@@ -79,6 +82,7 @@ impl Default for ReportOptions {
             max_figures: 60,
             max_table_rows: 300,
             png_scale: 1.5,
+            sweep: spec::SweepSpec::default(),
         }
     }
 }
@@ -99,6 +103,8 @@ pub enum FigureKind {
     Head,
     /// Time–frequency maps of one subject.
     SubjectMap,
+    /// One group value across the variants of a sweep ([`variants`]).
+    Sweep,
 }
 
 /// One axis of a panel: the data values at the plot rectangle's edges.
@@ -224,6 +230,8 @@ pub struct ReportSummary {
     pub figures: Vec<FigureInfo>,
     /// Things found but not drawn, each with the reason.
     pub not_drawn: Vec<String>,
+    /// The section on a sweep, when the output folder holds one (`sweep.tsv`).
+    pub sweep: Option<variants::SweepSection>,
 }
 
 /// Why no report could be written.
@@ -465,7 +473,8 @@ pub fn write_report(
             tf::subject_figures(&mut ctx, a, &pick)?;
         }
     }
-    let (text, sections) = html::page(&run, &ctx, parent, &stats);
+    let sweep = variants::sweep_section(&mut ctx, output_dir, &options.condition_order)?;
+    let (text, sections) = html::page(&run, &ctx, parent, &stats, sweep.as_ref());
     fs::write(out_file, text).map_err(|e| ReportError::io(out_file, e))?;
     Ok(ReportSummary {
         html: out_file.to_path_buf(),
@@ -473,5 +482,6 @@ pub fn write_report(
         sections,
         figures: ctx.figures.into_iter().map(|f| f.info).collect(),
         not_drawn: ctx.not_drawn,
+        sweep,
     })
 }

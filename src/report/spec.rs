@@ -8,6 +8,8 @@
 //!                              # order the epoch stage lists them)
 //!   stages: [norm, group]      # the exported stages drawn (default: all)
 //!   figures: 12                # at most this many figures per section
+//!   sweep:                     # the value drawn across a sweep's variants (each optional)
+//!     { measure: ppc, pair: [F3, P4], band: theta, window: late }
 //! ```
 //! `report: true` writes the report after every `run` with the defaults; a block does too.
 //! Without `pairs`, the report draws the pairs with significant clusters of a `contrast` stage,
@@ -37,6 +39,29 @@ pub struct ReportSpec {
     /// At most this many figures per section.
     #[serde(default)]
     pub figures: Option<usize>,
+    /// The quantity drawn across a sweep's variants (when the output folder holds a sweep).
+    #[serde(default)]
+    pub sweep: Option<SweepSpec>,
+}
+
+/// The report block's `sweep:`: which group value the sweep section draws across the
+/// variants. Each part left out is chosen as the report chooses it (src/report/variants.rs).
+#[derive(Clone, Debug, Default, PartialEq, Deserialize, phasewise_stages::schemars::JsonSchema)]
+#[schemars(crate = "phasewise_stages::schemars")]
+#[serde(deny_unknown_fields)]
+pub struct SweepSpec {
+    /// The measure (`ppc`, `wpli`, ...).
+    #[serde(default)]
+    pub measure: Option<String>,
+    /// The channel pair.
+    #[serde(default)]
+    pub pair: Option<[String; 2]>,
+    /// The band (a name of the aggregate's `bands`).
+    #[serde(default)]
+    pub band: Option<String>,
+    /// The window (a name of the aggregate's `windows`).
+    #[serde(default)]
+    pub window: Option<String>,
 }
 
 /// Reads `report:` — `true`/`false` or a block. Returns (write after run, the block).
@@ -54,7 +79,7 @@ pub fn read(node: &Node, c: &mut Collector<'_>) -> (bool, Option<ReportSpec>) {
                 (true, Some(spec))
             }
             Err(e) => {
-                let known = ["pairs", "contrast", "stages", "figures"];
+                let known = ["pairs", "contrast", "stages", "figures", "sweep"];
                 let msg = e.to_string();
                 let hint = msg
                     .split('`')
@@ -66,7 +91,7 @@ pub fn read(node: &Node, c: &mut Collector<'_>) -> (bool, Option<ReportSpec>) {
                     "report",
                     format!(
                         "{msg}{hint} (expected pairs: [[a, b], ...], contrast: [a, b], stages: [...], \
-                         figures: N)"
+                         figures: N, sweep: {{measure, pair, band, window}})"
                     ),
                 );
                 (false, None)
@@ -121,6 +146,7 @@ pub fn options_for(p: &ResolvedPipeline) -> ReportOptions {
         if let Some(n) = spec.figures {
             o.per_section = n.max(1);
         }
+        o.sweep = spec.sweep.clone().unwrap_or_default();
     }
     o
 }

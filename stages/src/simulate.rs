@@ -748,9 +748,29 @@ fn truth(
 
 /// Pretty JSON with sorted keys (serde_json's map is ordered) and a final newline.
 fn json_text(v: &serde_json::Value) -> String {
-    let mut s = serde_json::to_string_pretty(v).unwrap_or_default();
+    let mut s = serde_json::to_string_pretty(&sorted_keys(v)).unwrap_or_default();
     s.push('\n');
     s
+}
+
+/// `v` with every object's keys in sorted order, so the files' bytes do not depend on whether
+/// the build's serde_json keeps insertion order (its `preserve_order` feature, which a
+/// dependency of the runner turns on) or sorts.
+fn sorted_keys(v: &serde_json::Value) -> serde_json::Value {
+    use serde_json::Value;
+    match v {
+        Value::Object(map) => {
+            let mut keys: Vec<&String> = map.keys().collect();
+            keys.sort();
+            Value::Object(
+                keys.into_iter()
+                    .map(|k| (k.clone(), sorted_keys(&map[k])))
+                    .collect(),
+            )
+        }
+        Value::Array(items) => Value::Array(items.iter().map(sorted_keys).collect()),
+        other => other.clone(),
+    }
 }
 
 fn write_text(path: &Path, text: &str) -> Result<(), StageError> {

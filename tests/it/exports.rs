@@ -318,3 +318,142 @@ fn a_fortran_order_array_is_stored_as_the_npy_encoder_writes_it_and_loads_back()
     let (back, _) = store.load(&record.key).unwrap();
     assert_eq!(back, array);
 }
+
+/// `format: zarr` (issue 23): the tiny study's `norm` (per subject) and `group` exported as Zarr
+/// v3 stores. The store holds the values bit for bit (decoded here by the `zarrs` crate and
+/// compared with the cached object), every array carries `dimension_names`, the coordinates
+/// carry their units; no NPY is written for those stages; a rerun rewrites nothing; a changed
+/// chunk is named by `verify`, and the next run writes the store again.
+#[test]
+fn a_zarr_export_holds_the_values_and_a_changed_chunk_is_named() {
+    use crate::reliability::{assert_success, base_pipeline, run_cli, tiny_project, StudySpec};
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path();
+    tiny_project(dir, &StudySpec::default());
+    let text = base_pipeline()
+        .replace(
+            "    params: { window: [-0.5, -0.2], mode: subtract }\n",
+            "    params: { window: [-0.5, -0.2], mode: subtract }\n    export: true\n    format: zarr\n",
+        )
+        .replace("    export: true\n", "    export: true\n    format: zarr\n")
+        .replace("    format: zarr\n    format: zarr\n", "    format: zarr\n");
+    assert_eq!(text.matches("format: zarr").count(), 2, "{text}");
+    std::fs::write(dir.join("pipeline.yaml"), &text).unwrap();
+    let cache = dir.join("cache");
+    let cache_arg = cache.to_str().unwrap();
+    assert_success(
+        &run_cli(dir, &["run", "pipeline.yaml", "--cache", cache_arg]),
+        "run",
+    );
+    let output = dir.join("results");
+    let manifest: phasewise::manifest::Manifest =
+        serde_json::from_slice(&std::fs::read(output.join("manifest.json")).unwrap()).unwrap();
+    let store = Store::new(&cache);
+    let mut stores = 0;
+    for u in manifest
+        .units
+        .iter()
+        .filter(|u| u.stage == "norm" || u.stage == "group")
+    {
+        let record = &u.outputs[0];
+        let file = record.file.clone().expect("exported");
+        let owner = u.subject.clone().unwrap_or_else(|| "group".into());
+        assert_eq!(file, format!("{owner}/{}.zarr", u.stage));
+        let root = output.join(&file);
+        assert!(!output.join(format!("{owner}/{}.npy", u.stage)).exists());
+        // The manifest lists every file of the store with its blake3.
+        let hashes = record.store.clone().expect("store hashes in the manifest");
+        assert_eq!(Some(hashes.clone()), phasewise::zarr::hash_store(&root));
+        // Group and values metadata (Zarr v3 core: zarr.json per node).
+        let read = |rel: &str| -> serde_json::Value {
+            serde_json::from_slice(&std::fs::read(root.join(rel)).unwrap()).unwrap()
+        };
+        let group = read("zarr.json");
+        assert_eq!(group["node_type"], "group");
+        assert_eq!(group["attributes"]["format"], "phasewise-array");
+        assert_eq!(group["attributes"]["format_version"], 2);
+        assert_eq!(group["attributes"]["blake3"], record.blake3.as_str());
+        let values = read(&format!("{}/zarr.json", u.stage));
+        let (cached, _) = store.load(&u.key).unwrap();
+        assert_eq!(values["zarr_format"], 3);
+        assert_eq!(
+            values["dimension_names"],
+            serde_json::json!(cached.layout.dims)
+        );
+        assert_eq!(values["attributes"]["coordinates"], "channel_a channel_b");
+        let codecs: Vec<&str> = values["codecs"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| c["name"].as_str().unwrap())
+            .collect();
+        assert_eq!(codecs, ["bytes", "gzip", "crc32c"]);
+        if cached.layout.dims.iter().any(|d| d == "freq") {
+            assert_eq!(read("freq/zarr.json")["attributes"]["units"], "Hz");
+            assert_eq!(read("time/zarr.json")["attributes"]["units"], "s");
+        }
+        for c in ["channel_a", "channel_b"] {
+            assert_eq!(
+                read(&format!("{c}/zarr.json"))["dimension_names"],
+                serde_json::json!(["pair"])
+            );
+        }
+        // The values, decoded by zarrs, are the cached object's bit for bit.
+        let fs = std::sync::Arc::new(zarrs::filesystem::FilesystemStore::new(&root).unwrap());
+        let array = zarrs::array::Array::open(fs, &format!("/{}", u.stage)).unwrap();
+        let decoded: Vec<f32> = array.retrieve_array_subset(&array.subset_all()).unwrap();
+        let want: Vec<u32> = real(&cached.values).iter().map(|v| v.to_bits()).collect();
+        assert_eq!(
+            decoded.iter().map(|v| v.to_bits()).collect::<Vec<_>>(),
+            want
+        );
+        stores += 1;
+    }
+    assert_eq!(stores, 3, "two subjects' norm and the group");
+    // A rerun computes nothing and rewrites nothing.
+    let before = export_stats(&output);
+    std::thread::sleep(std::time::Duration::from_millis(20));
+    assert_success(
+        &run_cli(dir, &["run", "pipeline.yaml", "--cache", cache_arg]),
+        "rerun",
+    );
+    assert_eq!(
+        export_stats(&output),
+        before,
+        "a no-op rerun rewrote a store"
+    );
+    assert_success(
+        &run_cli(dir, &["verify", "results/manifest.json"]),
+        "verify",
+    );
+    // One byte of one chunk changed: verify names the store and the chunk.
+    let chunk = phasewise::zarr::store_files(&output.join("group/group.zarr"))
+        .unwrap()
+        .into_iter()
+        .find(|(name, _)| name.starts_with("group/c/"))
+        .expect("a chunk of the group's values");
+    let mut bytes = std::fs::read(&chunk.1).unwrap();
+    bytes[0] ^= 0x20;
+    std::fs::write(&chunk.1, &bytes).unwrap();
+    let verify = run_cli(dir, &["verify", "results/manifest.json"]);
+    let said = format!(
+        "{}{}",
+        String::from_utf8_lossy(&verify.stdout),
+        String::from_utf8_lossy(&verify.stderr)
+    );
+    assert!(!verify.status.success(), "{said}");
+    assert!(
+        said.contains("group/group.zarr changed since the run") && said.contains(&chunk.0),
+        "{said}"
+    );
+    // The next run notices the changed file and writes the store again, whole.
+    assert_success(
+        &run_cli(dir, &["run", "pipeline.yaml", "--cache", cache_arg]),
+        "run after the damage",
+    );
+    assert_eq!(std::fs::read(&chunk.1).unwrap()[0], bytes[0] ^ 0x20);
+    assert_success(
+        &run_cli(dir, &["verify", "results/manifest.json"]),
+        "verify again",
+    );
+}

@@ -184,3 +184,111 @@ fn wrong_varies_are_refused_before_anything_is_written() {
     assert!(stderr_of(&out).contains("varied twice"));
     assert!(files_under(&dir.join("results")).is_empty());
 }
+
+/// The report of a results folder that holds a sweep (issue 23): its section "Across the
+/// sweep's variants" draws one group value per variant and condition, and its numbers are the
+/// cells of `sweep.tsv` (read here by plain tab splitting, not by the report's reader); each
+/// point is drawn in its condition's colour where the summary says (decoded from the PNG by the
+/// `png` crate). Before the sweep, the same folder's report has no such section.
+#[test]
+fn the_report_draws_the_sweep_values_it_reads_from_sweep_tsv() {
+    use phasewise::report::{write_report, FigureKind, ReportOptions};
+    let p = project();
+    let dir = p.path();
+    let results = dir.join("results");
+    assert_success(&run_cli(dir, &["run", "pipeline.yaml"]), "run");
+    let html = results.join("report.html");
+    let before = write_report(&results, &html, &ReportOptions::default()).unwrap();
+    assert!(before.sweep.is_none());
+    assert!(
+        !before.sections.iter().any(|s| s == "sweep"),
+        "{:?}",
+        before.sections
+    );
+    assert!(!before.figures.iter().any(|f| f.kind == FigureKind::Sweep));
+
+    assert_success(
+        &run_cli(
+            dir,
+            &[
+                "sweep",
+                "pipeline.yaml",
+                "--vary",
+                "norm.mode=[subtract, zscore]",
+            ],
+        ),
+        "sweep",
+    );
+    let summary = write_report(&results, &html, &ReportOptions::default()).unwrap();
+    let s = summary.sweep.clone().expect("a sweep section");
+    assert!(summary.sections.iter().any(|x| x == "sweep"));
+    assert!(!s.why.is_empty());
+    // sweep.tsv, read by hand.
+    let text = fs::read_to_string(results.join("sweep.tsv")).unwrap();
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap().split('\t').collect();
+    let col = |name: &str| header.iter().position(|h| *h == name).unwrap();
+    let rows: Vec<Vec<&str>> = lines.map(|l| l.split('\t').collect()).collect();
+    let ours: Vec<&Vec<&str>> = rows
+        .iter()
+        .filter(|r| {
+            r[col("stage")] == s.stage
+                && r[col("measure")] == s.measure
+                && r[col("channel_a")] == s.pair[0]
+                && r[col("channel_b")] == s.pair[1]
+                && r[col("band")] == s.band
+                && r[col("window")] == s.window
+        })
+        .collect();
+    // Two variants × the tiny study's two conditions.
+    assert_eq!(ours.len(), 4, "{ours:?}");
+    assert_eq!(s.points.len(), ours.len());
+    assert_eq!(s.params, ["norm.mode"]);
+    for p in &s.points {
+        let row = ours
+            .iter()
+            .find(|r| r[col("variant")] == p.variant && r[col("condition")] == p.condition)
+            .unwrap_or_else(|| panic!("no sweep.tsv row for {p:?}"));
+        assert_eq!(
+            (p.mean.as_str(), p.sem.as_str(), p.n.as_str()),
+            (row[col("mean")], row[col("sem")], row[col("n")]),
+            "{p:?}"
+        );
+        assert_eq!(p.values, [row[col("norm.mode")]]);
+    }
+    // The HTML table holds those cells.
+    let page = fs::read_to_string(&html).unwrap();
+    let section = &page[page.find("<section id=\"sweep\">").unwrap()..];
+    let section = &section[..section.find("</section>").unwrap()];
+    for p in &s.points {
+        let line = format!(
+            "<td>{}</td><td>{}</td><td>{}</td><td class=\"n\">{}</td>",
+            p.variant, p.values[0], p.condition, p.mean
+        );
+        assert!(
+            section.contains(&line),
+            "{line} not in the section:\n{section}"
+        );
+    }
+    // Each point in its colour at its place in the PNG.
+    let fig = summary
+        .figures
+        .iter()
+        .find(|f| f.kind == FigureKind::Sweep && f.id == s.figure)
+        .expect("the sweep figure");
+    let bytes = fs::read(&fig.png).unwrap();
+    let decoder = png::Decoder::new(std::io::Cursor::new(bytes));
+    let mut reader = decoder.read_info().unwrap();
+    let mut buf = vec![0; reader.output_buffer_size().unwrap()];
+    let info = reader.next_frame(&mut buf).unwrap();
+    let channels = info.color_type.samples();
+    for p in &s.points {
+        let (x, y) = p.at.expect("a drawn point");
+        let (px, py) = (
+            (x * fig.png_scale).round() as usize,
+            (y * fig.png_scale).round() as usize,
+        );
+        let at = (py * info.width as usize + px) * channels;
+        assert_eq!(buf[at..at + 3], p.colour, "{p:?}");
+    }
+}

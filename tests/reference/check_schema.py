@@ -72,6 +72,9 @@ def main(argv):
         f"wrong type: `{name}.params.{param}` an object of nonsense": mutated(
             lambda d: d["stages"][name]["params"].__setitem__(param, {"nonsense": [1, 2]})
         ),
+        f"unknown export format `{name}.format: zar`": mutated(
+            lambda d: d["stages"][name].__setitem__("format", "zar")
+        ),
     }
     for what, doc in bad.items():
         if validator.is_valid(doc):
