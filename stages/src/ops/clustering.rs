@@ -692,15 +692,12 @@ fn as_polar(x: &Coefs, used: &[usize]) -> BTreeMap<usize, Polar> {
     used.iter().copied().zip(converted).collect()
 }
 
-/// Pairs per parallel task of the across-trials loop (fixed, so the work split, and with it
-/// everything else, is the same for any thread count; each pair's sums are sequential anyway).
-const PAIR_CHUNK: usize = 64;
-
 /// The measures of every pair over the trials of one condition into `out`, laid out
-/// [measure, pair, freq, time]: one frequency at a time (one slab of all used channels in
-/// memory), the pairs in parallel chunks, each chunk a tile of time blocks at a time
-/// ([`trial_sums::TILE_BLOCKS`]: the tile's planes stay in cache while every pair of the chunk
-/// reads them). Every sum runs over the trials in trial order whatever the tiling.
+/// [measure, pair, freq, time]: one frequency at a time, and within it one tile of time points
+/// per parallel task ([`tile_blocks`]). A task fills the tile's planes of every used channel,
+/// which then stay in the core's cache while every pair reads them, and sums each pair over
+/// the trials. Every sum runs over the trials in trial order, and no value depends on the
+/// tiling or on the thread that computed it.
 fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: &mut [f32]) {
     let needs = Needs::of(&plan.measures);
     let (nm, np, nf, nt) = (plan.measures.len(), plan.pairs.len(), x.freqs, x.times);
@@ -709,45 +706,57 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
     for (i, &c) in used.iter().enumerate() {
         slot[c] = i;
     }
-    let mut slab = vec![Planes::new(needs, n, nt); used.len()];
-    let nblocks = trial_sums::blocks(nt);
+    let tile = tile_blocks(needs, used.len(), n) * trial_sums::LANES;
     for f in 0..nf {
-        slab.par_iter_mut()
-            .zip(used)
-            .for_each(|(p, &c)| p.fill(needs, |k| x.series(c, trials[k], f)));
-        let chunks: Vec<Vec<f32>> = plan
-            .pairs
-            .par_chunks(PAIR_CHUNK)
-            .map(|chunk| {
-                let mut sums = PairSums::new(needs, trial_sums::TILE_BLOCKS.min(nblocks));
-                let mut vals = vec![0.0f32; chunk.len() * nm * nt];
-                for first in (0..nblocks).step_by(trial_sums::TILE_BLOCKS) {
-                    let blocks = first..(first + trial_sums::TILE_BLOCKS).min(nblocks);
-                    let times = first * trial_sums::LANES..(blocks.end * trial_sums::LANES).min(nt);
-                    for (i, &(a, b)) in chunk.iter().enumerate() {
-                        let (pa, pb) = (&slab[slot[a]], &slab[slot[b]]);
-                        sums.compute_blocks(needs, pa, pb, n, blocks.clone());
-                        let pair_vals = &mut vals[i * nm * nt..(i + 1) * nm * nt];
-                        for (&measure, v) in
-                            plan.measures.iter().zip(pair_vals.chunks_exact_mut(nt))
-                        {
-                            sums.values(measure, times.clone(), n, (pa, pb), &mut v[times.clone()]);
-                        }
+        let tiles: Vec<Vec<f32>> = (0..nt.div_ceil(tile))
+            .into_par_iter()
+            .map(|ti| {
+                let times = ti * tile..((ti + 1) * tile).min(nt);
+                let len = times.len();
+                let mut slab = SLAB.take();
+                slab.resize_with(used.len(), Planes::default);
+                for (planes, &c) in slab.iter_mut().zip(used) {
+                    planes.reshape(needs, n, len);
+                    planes.fill(needs, |k| &x.series(c, trials[k], f)[times.clone()]);
+                }
+                let mut sums = PairSums::new(needs, trial_sums::blocks(len));
+                let mut vals = vec![0.0f32; np * nm * len];
+                for (&(a, b), pair_vals) in plan.pairs.iter().zip(vals.chunks_exact_mut(nm * len)) {
+                    let (pa, pb) = (&slab[slot[a]], &slab[slot[b]]);
+                    sums.compute(needs, pa, pb, n);
+                    for (&measure, v) in plan.measures.iter().zip(pair_vals.chunks_exact_mut(len)) {
+                        sums.values(measure, 0..len, n, (pa, pb), v);
                     }
                 }
+                SLAB.set(slab);
                 vals
             })
             .collect();
-        for (ci, vals) in chunks.iter().enumerate() {
-            for (i, pair_vals) in vals.chunks_exact(nm * nt).enumerate() {
-                let p = ci * PAIR_CHUNK + i;
-                for (m, v) in pair_vals.chunks_exact(nt).enumerate() {
-                    let at = ((m * np + p) * nf + f) * nt;
-                    out[at..at + nt].copy_from_slice(v);
-                }
+        for (ti, vals) in tiles.iter().enumerate() {
+            let len = vals.len() / (np * nm).max(1);
+            for (i, v) in vals.chunks_exact(len.max(1)).enumerate() {
+                let (p, m) = (i / nm, i % nm);
+                let at = ((m * np + p) * nf + f) * nt + ti * tile;
+                out[at..at + len].copy_from_slice(v);
             }
         }
     }
+}
+
+/// Time blocks per tile of [`across_trials`]: as many as keep the tile's planes of every used
+/// channel within about half of a core's L2 cache (512 KiB, a common size), at least one and
+/// at most 8 (fewer blocks per task than that cost more in per-pair overhead than they save).
+/// Depends on the sizes alone, never on the machine, so the work split is always the same.
+fn tile_blocks(needs: Needs, channels: usize, trials: usize) -> usize {
+    let planes = 2 * (usize::from(needs.phasor) + usize::from(needs.raw()));
+    let per_block = channels * trials * trial_sums::LANES * planes.max(1) * 4;
+    ((512 << 10) / per_block.max(1)).clamp(1, 8)
+}
+
+thread_local! {
+    /// The planes of the last tile measured on this thread, kept for the next tile: made
+    /// afresh each time, their first touches of new pages cost more than filling them.
+    static SLAB: std::cell::RefCell<Vec<Planes>> = const { std::cell::RefCell::new(Vec::new()) };
 }
 
 /// One pair's measures over a sliding window of each trial, averaged over the trials. Window

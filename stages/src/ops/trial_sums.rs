@@ -87,30 +87,35 @@ pub struct Planes {
 }
 
 impl Planes {
-    /// Zeroed planes for `trials` trials of `times` points, with the planes `needs` asks for.
+    /// Planes for `trials` trials of `times` points, with the planes `needs` asks for (zeroed).
     pub fn new(needs: Needs, trials: usize, times: usize) -> Planes {
+        let mut p = Planes::default();
+        p.reshape(needs, trials, times);
+        p
+    }
+
+    /// Re-shapes these planes for `trials` trials of `times` points and the planes `needs` asks
+    /// for, keeping their memory (planes reused from one tile or call to the next touch no
+    /// fresh pages). Values are left as they were: [`Planes::fill`] writes every element, the
+    /// padding lanes included.
+    pub fn reshape(&mut self, needs: Needs, trials: usize, times: usize) {
         let len = blocks(times) * trials * LANES;
-        let take = |b: bool| if b { vec![0.0f32; len] } else { Vec::new() };
-        Planes {
-            trials,
-            unit_re: take(needs.phasor),
-            unit_im: take(needs.phasor),
-            raw_re: take(needs.raw()),
-            raw_im: take(needs.raw()),
-            power: if needs.power {
-                vec![0.0; times]
-            } else {
-                Vec::new()
-            },
-            zero: vec![false; times],
-        }
+        let fit = |v: &mut Vec<f32>, wanted: bool| v.resize(if wanted { len } else { 0 }, 0.0);
+        fit(&mut self.unit_re, needs.phasor);
+        fit(&mut self.unit_im, needs.phasor);
+        fit(&mut self.raw_re, needs.raw());
+        fit(&mut self.raw_im, needs.raw());
+        self.power.resize(if needs.power { times } else { 0 }, 0.0);
+        self.zero.resize(times, false);
+        self.trials = trials;
     }
 }
 
 impl Planes {
     /// Fills the planes with one channel's trials, `series(k)` being the coefficients of trial
-    /// k at every time point; the trial count and time points are those of [`Planes::new`].
-    /// The padding lanes are never written, so they stay zero.
+    /// k at every time point; the trial count and time points are those of [`Planes::new`] (or
+    /// of the last [`Planes::reshape`]). Every element is written, the padding lanes of the last
+    /// block with zeros.
     ///
     /// Compiled a second time for AVX2 and chosen at run time (as [`PairSums::compute_blocks`]):
     /// the unit phasors' square roots and divisions are exactly rounded IEEE operations, so
@@ -137,6 +142,19 @@ impl Planes {
         let n = self.trials;
         self.zero.fill(false);
         self.power.fill(0.0);
+        if !times.is_multiple_of(LANES) {
+            let last = (blocks(times) - 1) * n * LANES;
+            for plane in [
+                &mut self.unit_re,
+                &mut self.unit_im,
+                &mut self.raw_re,
+                &mut self.raw_im,
+            ] {
+                if !plane.is_empty() {
+                    plane[last..].fill(0.0);
+                }
+            }
+        }
         let mut unit = vec![Complex32::default(); times];
         for k in 0..n {
             let series = &series(k)[..times];
@@ -173,13 +191,6 @@ fn scatter(values: &[Complex32], k: usize, n: usize, re: &mut [f32], im: &mut [f
         }
     }
 }
-
-/// Time blocks per tile: the pairs of a task are summed one tile of blocks at a time, so that
-/// the tile's planes of every channel (24 channels × 8 blocks × 50 trials × 4 lanes × 4 planes ×
-/// 4 bytes = 614 KB) stay in a core's L2 cache while every pair reads them, instead of each
-/// pair streaming its two channels' whole planes from memory. Only the loop order changes:
-/// every sum still runs over the trials in trial order.
-pub const TILE_BLOCKS: usize = 8;
 
 /// `out[i] = f(p[i], q[i]) as f32`, inlined so that `f` vectorises.
 #[inline(always)]
@@ -589,6 +600,40 @@ mod tests {
                     }
                 }
             }
+        }
+    }
+
+    #[test]
+    fn reused_planes_equal_fresh_ones() {
+        // Planes re-shaped from a larger fill (the slab kept from one tile to the next) must
+        // hold exactly what fresh zeroed planes filled with the same trials hold, padding lanes
+        // included: the pair sums read the padding, so a stale value there would change them.
+        let mut rng = ChaCha8Rng::seed_from_u64(10);
+        let needs = Needs::of(&ALL);
+        let big = coefs(&mut rng, 9, 16);
+        let small = coefs(&mut rng, 7, 6);
+        let mut reused = planes(needs, &big, 16);
+        reused.reshape(needs, 7, 6);
+        reused.fill(needs, |k| &small[k]);
+        let fresh = planes(needs, &small, 6);
+        for (got, want) in [
+            (&reused.unit_re, &fresh.unit_re),
+            (&reused.unit_im, &fresh.unit_im),
+            (&reused.raw_re, &fresh.raw_re),
+            (&reused.raw_im, &fresh.raw_im),
+        ] {
+            assert_eq!(got.len(), want.len());
+            let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(got), bits(want));
+        }
+        assert_eq!(reused.zero, fresh.zero);
+        let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+        assert_eq!(bits(&reused.power), bits(&fresh.power));
+        // The padding really is zero (the last block's lanes past the 6th point).
+        let last = blocks(6) - 1;
+        for k in 0..7 {
+            let at = (last * 7 + k) * LANES;
+            assert_eq!(&fresh.raw_re[at + 2..at + LANES], &[0.0, 0.0]);
         }
     }
 
