@@ -550,7 +550,9 @@ fn warn_unequal_counts(plan: &Plan, notes: &mut Notes) {
         .map(|(c, t)| format!("{c} {}", t.len()))
         .collect();
     notes.warn(format!(
-        "clustering: the conditions' trial counts differ by more than 10 % ({}), and {} are          biased upwards by small counts: compare conditions on ppc, or set `equalize` on the          epoch stage",
+        "clustering: the conditions' trial counts differ by more than 10 % ({}), and {} are \
+         biased upwards by small counts: compare conditions on ppc, or set `equalize` on the \
+         epoch stage",
         listed.join(", "),
         biased.join(", ")
     ));
@@ -605,24 +607,31 @@ pub(crate) fn check_coefficients(
     notes: &mut Notes,
 ) -> Result<(), StageError> {
     let names = layout.labels("channel")?;
-    for &c in used {
-        let values = x.channel(c);
-        if values
-            .iter()
-            .any(|z| !(z.re.is_finite() && z.im.is_finite()))
-        {
+    // One pass per channel, the channels in parallel; reported in channel order.
+    let seen: Vec<(bool, usize)> = used
+        .par_iter()
+        .map(|&c| {
+            let (mut bad, mut zeros) = (false, 0usize);
+            for z in x.channel(c) {
+                bad |= !(z.re.is_finite() & z.im.is_finite());
+                zeros += usize::from((z.re == 0.0) & (z.im == 0.0));
+            }
+            (bad, zeros)
+        })
+        .collect();
+    for (&c, &(bad, zeros)) in used.iter().zip(&seen) {
+        if bad {
             return Err(StageError::data(format!(
                 "channel {} holds non-finite wavelet coefficients; {op} needs finite values",
                 names[c]
             )));
         }
-        let zeros = values.iter().filter(|z| z.re == 0.0 && z.im == 0.0).count();
         if zeros > 0 {
             notes.warn(format!(
                 "{op}: channel {} has {zeros} zero wavelet coefficient(s) of {}; a zero has \
                  no phase, so every pair with {} is NaN where one enters",
                 names[c],
-                values.len(),
+                x.channel(c).len(),
                 names[c]
             ));
         }
@@ -732,14 +741,18 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
                 vals
             })
             .collect();
-        for (ti, vals) in tiles.iter().enumerate() {
-            let len = vals.len() / (np * nm).max(1);
-            for (i, v) in vals.chunks_exact(len.max(1)).enumerate() {
-                let (p, m) = (i / nm, i % nm);
-                let at = ((m * np + p) * nf + f) * nt + ti * tile;
-                out[at..at + len].copy_from_slice(v);
-            }
-        }
+        // Into `out`, one (measure, pair) row of every frequency per task.
+        out.par_chunks_mut(nf * nt)
+            .enumerate()
+            .for_each(|(row, dst)| {
+                let (m, p) = (row / np, row % np);
+                let dst = &mut dst[f * nt..(f + 1) * nt];
+                for (ti, vals) in tiles.iter().enumerate() {
+                    let len = vals.len() / (np * nm);
+                    let at = (p * nm + m) * len;
+                    dst[ti * tile..ti * tile + len].copy_from_slice(&vals[at..at + len]);
+                }
+            });
     }
 }
 
