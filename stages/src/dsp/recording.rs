@@ -12,6 +12,7 @@ use ndarray::{Array2, ArrayD, ArrayView2, Axis, Ix2};
 use rayon::prelude::*;
 
 use crate::array::Layout;
+use crate::dsp::sos::{Scratch, ROWS};
 use crate::error::StageError;
 
 /// Channel types that count as voltage data channels (compared case-insensitively).
@@ -112,28 +113,35 @@ pub fn as_matrix(values: &ArrayD<f32>) -> Result<ArrayView2<'_, f32>, StageError
     })
 }
 
-/// Apply `f` to every channel (converted to `f64`) in parallel and store the results as `f32`.
-/// Channels are independent, so the result does not depend on the thread count; of several
-/// failing channels the first in channel order is reported. `f` gets a scratch buffer that lives
-/// for one channel, so it need not allocate per sample.
+/// Apply `f` to every channel (converted to `f64`) and store the results as `f32`. `f` gets up
+/// to [`ROWS`] consecutive channels at a time (to filter side by side, see
+/// [`crate::dsp::sos::ZeroPhase::apply_rows`]), the groups in parallel. Channels are
+/// independent, so the result does not depend on the thread count; of several failing groups
+/// the first in channel order is reported. `f` gets a scratch buffer that lives for one group,
+/// so it need not allocate per sample.
 pub fn map_channels<F>(values: &ArrayD<f32>, f: F) -> Result<ArrayD<f32>, StageError>
 where
-    F: Fn(&mut [f64], &mut Vec<f64>) -> Result<(), StageError> + Sync,
+    F: Fn(&mut [&mut [f64]], &mut Scratch) -> Result<(), StageError> + Sync,
 {
     let input = as_matrix(values)?;
     let mut out = Array2::<f32>::zeros(input.raw_dim());
     let results: Vec<Result<(), StageError>> = out
-        .axis_iter_mut(Axis(0))
+        .axis_chunks_iter_mut(Axis(0), ROWS)
         .into_par_iter()
-        .zip(input.axis_iter(Axis(0)).into_par_iter())
-        .map(|(mut row_out, row_in)| {
-            let mut row: Vec<f64> = row_in.iter().map(|&v| f64::from(v)).collect();
-            let mut scratch = Vec::new();
-            f(&mut row, &mut scratch)?;
-            row_out
-                .iter_mut()
-                .zip(&row)
-                .for_each(|(o, v)| *o = *v as f32);
+        .zip(input.axis_chunks_iter(Axis(0), ROWS).into_par_iter())
+        .map(|(mut rows_out, rows_in)| {
+            let mut rows: Vec<Vec<f64>> = rows_in
+                .outer_iter()
+                .map(|row| row.iter().map(|&v| f64::from(v)).collect())
+                .collect();
+            let mut views: Vec<&mut [f64]> = rows.iter_mut().map(|r| r.as_mut_slice()).collect();
+            f(&mut views, &mut Scratch::default())?;
+            for (mut row_out, row) in rows_out.outer_iter_mut().zip(&rows) {
+                row_out
+                    .iter_mut()
+                    .zip(row)
+                    .for_each(|(o, v)| *o = *v as f32);
+            }
             Ok(())
         })
         .collect();

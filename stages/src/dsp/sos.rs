@@ -46,38 +46,81 @@ impl ZeroPhase {
 
     /// Filter `x` forward and backward in place. `scratch` is reused between calls so that a
     /// caller filtering many channels allocates once per channel, not per sample.
-    pub fn apply(&self, x: &mut [f64], scratch: &mut Vec<f64>) -> Result<(), StageError> {
-        let (n, pad) = (x.len(), self.pad);
+    pub fn apply(&self, x: &mut [f64], scratch: &mut Scratch) -> Result<(), StageError> {
+        self.apply_rows(&mut [x], scratch)
+    }
+
+    /// Filter up to [`ROWS`] signals of one length forward and backward in place, side by
+    /// side: each sample step runs the recursion of every row in one vector of lanes. The
+    /// recursion is a chain of dependent operations, so one row at a time leaves the core
+    /// waiting; the rows' lanes do the same IEEE operations in the same order as one row alone,
+    /// so each row's result is the same bit for bit.
+    pub fn apply_rows(
+        &self,
+        rows: &mut [&mut [f64]],
+        scratch: &mut Scratch,
+    ) -> Result<(), StageError> {
+        assert!(rows.len() <= ROWS, "at most {ROWS} rows at a time");
+        let Some(n) = rows.first().map(|r| r.len()) else {
+            return Ok(());
+        };
+        assert!(rows.iter().all(|r| r.len() == n), "rows of one length");
+        let pad = self.pad;
         if n <= pad {
             return Err(StageError::data(format!(
                 "the filter needs a signal longer than {pad} samples (its edge padding), \
                  found {n} samples"
             )));
         }
-        odd_extend(x, pad, scratch);
-        self.run(scratch);
-        scratch.reverse();
-        self.run(scratch);
-        scratch.reverse();
-        x.copy_from_slice(&scratch[pad..pad + n]);
+        let Scratch { row, lanes } = scratch;
+        lanes.clear();
+        lanes.resize(n + 2 * pad, [0.0; ROWS]);
+        for (r, x) in rows.iter().enumerate() {
+            odd_extend(x, pad, row);
+            for (lane, &v) in lanes.iter_mut().zip(row.iter()) {
+                lane[r] = v;
+            }
+        }
+        self.run(lanes);
+        lanes.reverse();
+        self.run(lanes);
+        lanes.reverse();
+        for (r, x) in rows.iter_mut().enumerate() {
+            for (v, lane) in x.iter_mut().zip(&lanes[pad..pad + n]) {
+                *v = lane[r];
+            }
+        }
         Ok(())
     }
 
-    /// One causal pass (direct form II transposed, like scipy.signal.sosfilt) over `buf`,
-    /// starting from the step state scaled by the pass's first input sample.
-    fn run(&self, buf: &mut [f64]) {
-        let x0 = buf.first().copied().unwrap_or(0.0);
+    /// One causal pass (direct form II transposed, like scipy.signal.sosfilt) over `buf`, each
+    /// lane a signal, starting from the step state scaled by the pass's first input sample.
+    fn run(&self, buf: &mut [[f64; ROWS]]) {
+        let x0 = buf.first().copied().unwrap_or([0.0; ROWS]);
         for (s, st) in self.sections.iter().zip(&self.step_state) {
-            let (mut z0, mut z1) = (st[0] * x0, st[1] * x0);
+            let (mut z0, mut z1) = (x0.map(|x| st[0] * x), x0.map(|x| st[1] * x));
             for v in buf.iter_mut() {
                 let x = *v;
-                let y = s[0] * x + z0;
-                z0 = s[1] * x - s[4] * y + z1;
-                z1 = s[2] * x - s[5] * y;
-                *v = y;
+                for l in 0..ROWS {
+                    let y = s[0] * x[l] + z0[l];
+                    z0[l] = s[1] * x[l] - s[4] * y + z1[l];
+                    z1[l] = s[2] * x[l] - s[5] * y;
+                    v[l] = y;
+                }
             }
         }
     }
+}
+
+/// Signals filtered side by side by [`ZeroPhase::apply_rows`] (four f64 lanes: one AVX2
+/// vector).
+pub const ROWS: usize = 4;
+
+/// Working memory of [`ZeroPhase::apply_rows`], reused between calls.
+#[derive(Clone, Debug, Default)]
+pub struct Scratch {
+    row: Vec<f64>,
+    lanes: Vec<[f64; ROWS]>,
 }
 
 /// scipy's default edge length for sosfiltfilt: 3 × (2·sections + 1), less one tap per section
@@ -140,7 +183,7 @@ mod tests {
         let unity = [s[0] / g, s[1] / g, s[2] / g, s[3], s[4], s[5]];
         let zp = ZeroPhase::new(vec![unity, unity]);
         let mut x = vec![3.5; 50];
-        zp.apply(&mut x, &mut Vec::new()).unwrap();
+        zp.apply(&mut x, &mut Scratch::default()).unwrap();
         assert!(x.iter().all(|v| (v - 3.5).abs() < 1e-12), "{x:?}");
     }
 
@@ -148,7 +191,9 @@ mod tests {
     fn too_short_a_signal_is_a_data_error() {
         let zp = ZeroPhase::new(vec![[1.0, 0.1, 0.2, 1.0, 0.1, 0.1]]);
         assert_eq!(zp.pad(), 9); // scipy.signal.filtfilt: padlen = 3 * max(len(a), len(b))
-        let err = zp.apply(&mut [0.0; 9], &mut Vec::new()).unwrap_err();
+        let err = zp
+            .apply(&mut [0.0; 9], &mut Scratch::default())
+            .unwrap_err();
         assert!(err.to_string().contains("longer than 9 samples"), "{err}");
     }
 }

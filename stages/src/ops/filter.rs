@@ -96,8 +96,8 @@ impl Op for Filter {
     ) -> Result<LabelledArray, StageError> {
         let input = single(inputs)?.array;
         let (layout, filter) = output_layout(p, &input.layout)?;
-        let values = map_channels(input.real_values()?, |row, scratch| {
-            filter.apply(row, scratch)
+        let values = map_channels(input.real_values()?, |rows, scratch| {
+            filter.apply_rows(rows, scratch)
         })?;
         LabelledArray::real(layout, values)
     }

@@ -24,7 +24,7 @@ use serde::{Deserialize, Serialize};
 use crate::array::{Coord, LabelledArray, Layout};
 use crate::dsp::analytic::Analytic;
 use crate::dsp::design::{butterworth, Band};
-use crate::dsp::sos::ZeroPhase;
+use crate::dsp::sos::{Scratch, ZeroPhase};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
 
@@ -324,7 +324,7 @@ fn transform_part(
             .par_chunks_mut(per_signal)
             .zip(values.par_chunks(n))
             .map_init(
-                || (Vec::new(), Vec::new(), Vec::<Complex64>::new()),
+                || (Vec::new(), Scratch::default(), Vec::<Complex64>::new()),
                 |(row, scratch, z), (dst, src)| {
                     for (b, filter) in filters.iter().enumerate() {
                         row.clear();

@@ -89,8 +89,10 @@ impl Op for Notch {
             .into_iter()
             .map(|f| ZeroPhase::new(vec![notch(f, p.q, fs)]))
             .collect();
-        let values = map_channels(input.real_values()?, |row, scratch| {
-            filters.iter().try_for_each(|zp| zp.apply(row, scratch))
+        let values = map_channels(input.real_values()?, |rows, scratch| {
+            filters
+                .iter()
+                .try_for_each(|zp| zp.apply_rows(rows, scratch))
         })?;
         LabelledArray::real(layout, values)
     }
