@@ -102,6 +102,27 @@ pub fn start_writeback(file: &File) {
     let _ = file;
 }
 
+/// Tell the kernel that the pages of the file at `path` in the page cache will not be read
+/// again soon (Linux `posix_fadvise(POSIX_FADV_DONTNEED)` over the whole file; nothing
+/// elsewhere): pages already on disk are freed at once, so that the next files this run writes
+/// take them instead of memory the system has not touched for a while — on a virtual machine
+/// that hands idle guest memory back to its host, fresh memory was measured at 0.3 GB/s against
+/// 4 GB/s for memory freed a moment before (BENCHMARKS.md). Only a hint: the file's bytes, and
+/// any later read of them, are unchanged.
+pub fn drop_cached(path: &Path) {
+    #[cfg(target_os = "linux")]
+    if let Ok(file) = File::open(path) {
+        use std::os::fd::AsRawFd;
+        // SAFETY: a plain system call on an open descriptor; only a hint, so its answer is
+        // not needed.
+        unsafe {
+            libc::posix_fadvise(file.as_raw_fd(), 0, 0, libc::POSIX_FADV_DONTNEED);
+        }
+    }
+    #[cfg(not(target_os = "linux"))]
+    let _ = path;
+}
+
 /// Write `bytes` to `path` atomically: a temporary file in the same folder, fsync, rename.
 pub fn atomic_write(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     write_then_rename(path, false, |file| file.write_all(bytes).map(Ok))

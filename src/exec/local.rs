@@ -20,6 +20,7 @@ use indicatif::ProgressBar;
 use phasewise_stages::{Input, InputLayout, LabelledArray, Layout, Notes, OwnedInput, StageError};
 use rayon::prelude::*;
 
+use crate::fsio;
 use crate::graph::UnitInput;
 use crate::output::{self, ExportError, ExportFrom, ExportTarget};
 use crate::parts;
@@ -56,7 +57,7 @@ fn execute(job: Job<'_>) -> Result<Outcome, RunError> {
     // threads go on meanwhile; the run waits for it before the manifest is written.
     std::thread::scope(|scope| {
         let (sender, queue) = std::sync::mpsc::channel::<(usize, Arc<ObjectRecord>)>();
-        let exporter = scope.spawn(move || export_queued(study, queue));
+        let exporter = scope.spawn(move || export_queued(study, recipes, queue));
         let ctx = Ctx {
             study,
             plan,
@@ -99,8 +100,13 @@ fn execute(job: Job<'_>) -> Result<Outcome, RunError> {
 /// Link the exports queued by the chains (objects this run wrote and that are unchanged since,
 /// see [`crate::store::Store::wrote_intact`]), in the order they arrive; the failures, one per
 /// unit whose export could not be written.
+///
+/// An object that no unit reads back from the store (every reader takes the form prepared in
+/// the unit's own chain, or there is none) has its pages dropped from the page cache once its
+/// export is on disk ([`fsio::drop_cached`]): the files the run writes next reuse that memory.
 fn export_queued(
     study: &Study,
+    recipes: &[Recipe],
     queue: std::sync::mpsc::Receiver<(usize, Arc<ObjectRecord>)>,
 ) -> Vec<UnitFailure> {
     let mut failures = Vec::new();
@@ -113,6 +119,9 @@ fn export_queued(
             format: output::ExportFormat::Npy,
         };
         match output::export(&target, &record, ExportFrom::Object, &study.store) {
+            Ok(_) if !read_back(study, recipes, u) => {
+                fsio::drop_cached(&study.store.object_paths(&record.key).0);
+            }
             Ok(_) => {}
             // Changed by someone else since it was queued: nothing was exported (the export
             // names the checked object or nothing), and the next run computes it again.
@@ -125,6 +134,18 @@ fn export_queued(
         }
     }
     failures
+}
+
+/// True when some unit reads unit `u`'s output from the store (whole or in slabs), in this
+/// run or in a later one where only that unit is stale: a reader other than a group unit that
+/// `u`'s chain prepares for.
+fn read_back(study: &Study, recipes: &[Recipe], u: usize) -> bool {
+    let prepared = &recipes[u].prepared_for_units;
+    study
+        .units
+        .iter()
+        .enumerate()
+        .any(|(v, unit)| unit.inputs.contains(&UnitInput::Unit(u)) && !prepared.contains(&v))
 }
 
 /// A failure of unit `u`.
