@@ -716,10 +716,15 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
         slot[c] = i;
     }
     let tile = tile_blocks(needs, used.len(), n) * trial_sums::LANES;
+    // Each tile's values [pair, measure, time], one stretch of `np · nm · tile` per tile, made
+    // once per call and reused for every frequency.
+    let per_tile = np * nm * tile;
+    let mut staged = vec![0.0f32; nt.div_ceil(tile) * per_tile];
     for f in 0..nf {
-        let tiles: Vec<Vec<f32>> = (0..nt.div_ceil(tile))
-            .into_par_iter()
-            .map(|ti| {
+        staged
+            .par_chunks_mut(per_tile)
+            .enumerate()
+            .for_each(|(ti, vals)| {
                 let times = ti * tile..((ti + 1) * tile).min(nt);
                 let len = times.len();
                 let mut slab = SLAB.take();
@@ -729,7 +734,7 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
                     planes.fill(needs, |k| &x.series(c, trials[k], f)[times.clone()]);
                 }
                 let mut sums = PairSums::new(needs, trial_sums::blocks(len));
-                let mut vals = vec![0.0f32; np * nm * len];
+                let vals = &mut vals[..np * nm * len];
                 for (&(a, b), pair_vals) in plan.pairs.iter().zip(vals.chunks_exact_mut(nm * len)) {
                     let (pa, pb) = (&slab[slot[a]], &slab[slot[b]]);
                     sums.compute(needs, pa, pb, n);
@@ -738,17 +743,15 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
                     }
                 }
                 SLAB.set(slab);
-                vals
-            })
-            .collect();
+            });
         // Into `out`, one (measure, pair) row of every frequency per task.
         out.par_chunks_mut(nf * nt)
             .enumerate()
             .for_each(|(row, dst)| {
                 let (m, p) = (row / np, row % np);
                 let dst = &mut dst[f * nt..(f + 1) * nt];
-                for (ti, vals) in tiles.iter().enumerate() {
-                    let len = vals.len() / (np * nm);
+                for (ti, vals) in staged.chunks_exact(per_tile).enumerate() {
+                    let len = tile.min(nt - ti * tile);
                     let at = (p * nm + m) * len;
                     dst[ti * tile..ti * tile + len].copy_from_slice(&vals[at..at + len]);
                 }
