@@ -105,10 +105,10 @@ pub fn start_writeback(file: &File) {
 /// Tell the kernel that the pages of the file at `path` in the page cache will not be read
 /// again soon (Linux `posix_fadvise(POSIX_FADV_DONTNEED)` over the whole file; nothing
 /// elsewhere): pages already on disk are freed at once, so that the next files this run writes
-/// take them instead of memory the system has not touched for a while — on a virtual machine
-/// that hands idle guest memory back to its host, fresh memory was measured at 0.3 GB/s against
-/// 4 GB/s for memory freed a moment before (BENCHMARKS.md). Only a hint: the file's bytes, and
-/// any later read of them, are unchanged.
+/// take them instead of memory the system has not touched for a while (on a virtual machine
+/// that hands idle guest memory back to its host, a first touch of such memory costs many times
+/// more; BENCHMARKS.md has the measurements). Only a hint: the file's bytes, and any later read
+/// of them, are unchanged.
 pub fn drop_cached(path: &Path) {
     #[cfg(target_os = "linux")]
     if let Ok(file) = File::open(path) {

@@ -761,10 +761,8 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
 
 /// Time blocks per tile of [`across_trials`]: as many as keep the tile's planes of every used
 /// channel within 1 MiB (a core's L2 cache on the machines measured, a common size), at least
-/// one and at most 8 (more gained nothing there). Measured on the measures bench: 64 channels ×
-/// 100 trials ran 8.2 s with a 512 KiB budget (one block per tile) and 5.6 s with this one (two);
-/// 24 channels × 50 trials the same with either. Depends on the sizes alone, never on the
-/// machine, so the work split is always the same.
+/// one and at most 8 (more gained nothing; BENCHMARKS.md has the measurements). Depends on the
+/// sizes alone, never on the machine, so the work split is always the same.
 fn tile_blocks(needs: Needs, channels: usize, trials: usize) -> usize {
     let planes = 2 * (usize::from(needs.phasor) + usize::from(needs.raw()));
     let per_block = channels * trials * trial_sums::LANES * planes.max(1) * 4;
