@@ -719,13 +719,14 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
     // Each tile's values [pair, measure, time], one stretch of `np · nm · tile` per tile, made
     // once per call and reused for every frequency.
     let per_tile = np * nm * tile;
+    let span = |ti: usize| ti * tile..((ti + 1) * tile).min(nt);
     let mut staged = vec![0.0f32; nt.div_ceil(tile) * per_tile];
     for f in 0..nf {
         staged
             .par_chunks_mut(per_tile)
             .enumerate()
             .for_each(|(ti, vals)| {
-                let times = ti * tile..((ti + 1) * tile).min(nt);
+                let times = span(ti);
                 let len = times.len();
                 let mut slab = SLAB.take();
                 slab.resize_with(used.len(), Planes::default);
@@ -751,9 +752,9 @@ fn across_trials(plan: &Plan, x: &Coefs, trials: &[usize], used: &[usize], out: 
                 let (m, p) = (row / np, row % np);
                 let dst = &mut dst[f * nt..(f + 1) * nt];
                 for (ti, vals) in staged.chunks_exact(per_tile).enumerate() {
-                    let len = tile.min(nt - ti * tile);
-                    let at = (p * nm + m) * len;
-                    dst[ti * tile..ti * tile + len].copy_from_slice(&vals[at..at + len]);
+                    let times = span(ti);
+                    let at = (p * nm + m) * times.len();
+                    dst[times.clone()].copy_from_slice(&vals[at..at + times.len()]);
                 }
             });
     }

@@ -138,7 +138,6 @@ impl Planes {
 
     #[inline(always)]
     fn fill_any<'a>(&mut self, needs: Needs, series: impl Fn(usize) -> &'a [Complex32]) {
-        let series_at = &series;
         let times = self.zero.len();
         let n = self.trials;
         self.zero.fill(false);
@@ -158,10 +157,10 @@ impl Planes {
         }
         let mut unit = vec![Complex32::default(); times];
         for k in 0..n {
-            let series = &series(k)[..times];
             if k + PREFETCH < n {
-                prefetch(&series_at(k + PREFETCH)[..times]);
+                prefetch(&series(k + PREFETCH)[..times]);
             }
+            let series = &series(k)[..times];
             if needs.phasor {
                 // Converted in a loop of its own (it vectorises), then scattered into the lanes.
                 for (u, &z) in unit.iter_mut().zip(series) {
