@@ -34,9 +34,9 @@ pub type Never = std::convert::Infallible;
 pub(crate) const WRITEBACK_BYTES: u64 = 8 << 20;
 
 /// The temporary file that [`write_then_rename`] hands its `fill`: written in pieces of at most
-/// [`WRITEBACK_BYTES`], each handed to the disk as soon as it is written (Linux `sync_file_range(SYNC_FILE_RANGE_WRITE)`, which starts the write and
-/// does not wait for it), so that the fsync before the rename finds most of a large object
-/// already on its way and waits less. Only when the write goes to disk changes; what is written,
+/// [`WRITEBACK_BYTES`], each handed to the disk as soon as it is written ([`hand_to_disk`],
+/// which starts the write and waits for nothing), so that the fsync before the rename finds most
+/// of a large object already on its way and waits less. Only when the write goes to disk changes; what is written,
 /// and the fsync that makes it durable, do not.
 pub struct Writeback<'f> {
     file: &'f mut File,
@@ -60,21 +60,7 @@ impl Write for Writeback<'_> {
         let n = self.file.write(&buf[..piece])?;
         self.written += n as u64;
         if self.written - self.started >= WRITEBACK_BYTES {
-            #[cfg(target_os = "linux")]
-            {
-                use std::os::fd::AsRawFd;
-                let (from, len) = (self.started as i64, (self.written - self.started) as i64);
-                // SAFETY: a plain system call on an open descriptor; only a hint, so its
-                // answer is not needed.
-                unsafe {
-                    libc::sync_file_range(
-                        self.file.as_raw_fd(),
-                        from,
-                        len,
-                        libc::SYNC_FILE_RANGE_WRITE,
-                    );
-                }
-            }
+            hand_to_disk(self.file, self.started, self.written - self.started);
             self.started = self.written;
         }
         Ok(n)
@@ -86,20 +72,52 @@ impl Write for Writeback<'_> {
 }
 
 /// Ask the kernel to start writing every dirty page of `file` to disk, without waiting for it
-/// (Linux `sync_file_range(SYNC_FILE_RANGE_WRITE)` over the whole file; nothing elsewhere): a
-/// later fsync then waits for less. Only when the bytes reach the disk changes.
+/// ([`hand_to_disk`] over the whole file): a later fsync then waits for less. Only when the
+/// bytes reach the disk changes.
 pub fn start_writeback(file: &File) {
+    hand_to_disk(file, 0, 0);
+}
+
+/// Start the disk write of `len` bytes of `file` from `from` (`len` 0: to its end), on the
+/// writeback thread: Linux `sync_file_range(SYNC_FILE_RANGE_WRITE)` on a duplicate of the
+/// descriptor. The call does not wait for the disk, but it does wait for room in the disk's
+/// queue, which a write of hundreds of megabytes fills; on a thread of its own that wait never
+/// holds up the thread that wrote the bytes. Only a hint: when it cannot be given (no duplicate
+/// descriptor, no thread, another system) nothing happens, and the fsync that makes a file
+/// durable writes whatever is left.
+fn hand_to_disk(file: &File, from: u64, len: u64) {
     #[cfg(target_os = "linux")]
     {
-        use std::os::fd::AsRawFd;
-        // SAFETY: a plain system call on an open descriptor; only a hint, so its answer is
-        // not needed.
-        unsafe {
-            libc::sync_file_range(file.as_raw_fd(), 0, 0, libc::SYNC_FILE_RANGE_WRITE);
+        use std::sync::mpsc::Sender;
+        use std::sync::OnceLock;
+        static QUEUE: OnceLock<Option<Sender<(File, u64, u64)>>> = OnceLock::new();
+        let queue = QUEUE.get_or_init(|| {
+            let (sender, receiver) = std::sync::mpsc::channel::<(File, u64, u64)>();
+            let thread = std::thread::Builder::new()
+                .name("phasewise-writeback".into())
+                .spawn(move || {
+                    use std::os::fd::AsRawFd;
+                    for (file, from, len) in receiver {
+                        // SAFETY: a plain system call on a descriptor this thread owns; only a
+                        // hint, so its answer is not needed.
+                        unsafe {
+                            libc::sync_file_range(
+                                file.as_raw_fd(),
+                                from as i64,
+                                len as i64,
+                                libc::SYNC_FILE_RANGE_WRITE,
+                            );
+                        }
+                    }
+                });
+            thread.ok().map(|_| sender)
+        });
+        if let (Some(queue), Ok(duplicate)) = (queue, file.try_clone()) {
+            let _ = queue.send((duplicate, from, len));
         }
     }
     #[cfg(not(target_os = "linux"))]
-    let _ = file;
+    let _ = (file, from, len);
 }
 
 /// Tell the kernel that the pages of the file at `path` in the page cache will not be read
