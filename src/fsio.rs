@@ -71,6 +71,10 @@ impl Write for Writeback<'_> {
     }
 }
 
+/// How many disk-write hints may wait for the writeback thread ([`hand_to_disk`]).
+#[cfg(target_os = "linux")]
+const WRITEBACK_QUEUE: usize = 16;
+
 /// Ask the kernel to start writing every dirty page of `file` to disk, without waiting for it
 /// ([`hand_to_disk`] over the whole file): a later fsync then waits for less. Only when the
 /// bytes reach the disk changes.
@@ -82,17 +86,19 @@ pub fn start_writeback(file: &File) {
 /// writeback thread: Linux `sync_file_range(SYNC_FILE_RANGE_WRITE)` on a duplicate of the
 /// descriptor. The call does not wait for the disk, but it does wait for room in the disk's
 /// queue, which a write of hundreds of megabytes fills; on a thread of its own that wait never
-/// holds up the thread that wrote the bytes. Only a hint: when it cannot be given (no duplicate
-/// descriptor, no thread, another system) nothing happens, and the fsync that makes a file
-/// durable writes whatever is left.
+/// holds up the thread that wrote the bytes. At most [`WRITEBACK_QUEUE`] hints wait for the
+/// thread (each holds a descriptor open); one given while they all wait is dropped. Only a hint:
+/// when it cannot be given (queue full, no duplicate descriptor, no thread, another system)
+/// nothing happens, and the fsync that makes a file durable writes whatever is left.
 fn hand_to_disk(file: &File, from: u64, len: u64) {
     #[cfg(target_os = "linux")]
     {
-        use std::sync::mpsc::Sender;
+        use std::sync::mpsc::SyncSender;
         use std::sync::OnceLock;
-        static QUEUE: OnceLock<Option<Sender<(File, u64, u64)>>> = OnceLock::new();
+        static QUEUE: OnceLock<Option<SyncSender<(File, u64, u64)>>> = OnceLock::new();
         let queue = QUEUE.get_or_init(|| {
-            let (sender, receiver) = std::sync::mpsc::channel::<(File, u64, u64)>();
+            let (sender, receiver) =
+                std::sync::mpsc::sync_channel::<(File, u64, u64)>(WRITEBACK_QUEUE);
             let thread = std::thread::Builder::new()
                 .name("phasewise-writeback".into())
                 .spawn(move || {
@@ -113,7 +119,7 @@ fn hand_to_disk(file: &File, from: u64, len: u64) {
             thread.ok().map(|_| sender)
         });
         if let (Some(queue), Ok(duplicate)) = (queue, file.try_clone()) {
-            let _ = queue.send((duplicate, from, len));
+            let _ = queue.try_send((duplicate, from, len));
         }
     }
     #[cfg(not(target_os = "linux"))]
