@@ -454,7 +454,42 @@ impl PairSums {
     /// The values of `measure` at the time points `times` (inside the range last computed) as
     /// f32 into `out`: the same operations as [`Sums::value`] on [`PairSums::at`], bit for bit,
     /// written as one straight loop per measure so that it vectorises.
+    ///
+    /// Compiled a second time for AVX2 and chosen at run time (as [`PairSums::compute_blocks`]):
+    /// its divisions and square roots are exactly rounded IEEE operations, so four lanes at a
+    /// time give the same bits as one.
     pub fn values(
+        &self,
+        measure: Measure,
+        times: std::ops::Range<usize>,
+        trials: usize,
+        planes: (&Planes, &Planes),
+        out: &mut [f32],
+    ) {
+        #[cfg(target_arch = "x86_64")]
+        if std::arch::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU supports AVX2, checked on the line above.
+            unsafe { self.values_avx2(measure, times, trials, planes, out) };
+            return;
+        }
+        self.values_any(measure, times, trials, planes, out);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn values_avx2(
+        &self,
+        measure: Measure,
+        times: std::ops::Range<usize>,
+        trials: usize,
+        planes: (&Planes, &Planes),
+        out: &mut [f32],
+    ) {
+        self.values_any(measure, times, trials, planes, out);
+    }
+
+    #[inline(always)]
+    fn values_any(
         &self,
         measure: Measure,
         times: std::ops::Range<usize>,
