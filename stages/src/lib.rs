@@ -22,6 +22,7 @@ pub mod simulate;
 pub mod spatial;
 pub mod stats;
 pub mod table;
+pub mod wide;
 
 pub use array::{
     Coord, Event, Joining, LabelledArray, Layout, Meta, Positions, SharedList, TrialInfo, Values,

@@ -271,19 +271,10 @@ impl Bank {
     /// Every element of `out` is written (when it holds `per_signal` values for each signal), so
     /// `out` may be memory not written before ([`Slot`]).
     pub fn transform<T: Slot>(&self, signals: &[f32], s: &mut Scratch, out: &mut [T]) {
-        #[cfg(target_arch = "x86_64")]
-        if std::arch::is_x86_feature_detected!("avx2") {
-            // SAFETY: the CPU supports AVX2, checked on the line above.
-            unsafe { self.transform_avx2(signals, s, out) };
-            return;
-        }
-        self.transform_any(signals, s, out);
-    }
-
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx2")]
-    unsafe fn transform_avx2<T: Slot>(&self, signals: &[f32], s: &mut Scratch, out: &mut [T]) {
-        self.transform_any(signals, s, out);
+        crate::wide::with_avx2(
+            #[inline(always)]
+            || self.transform_any(signals, s, out),
+        );
     }
 
     #[inline(always)]

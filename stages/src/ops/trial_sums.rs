@@ -121,19 +121,10 @@ impl Planes {
     /// the unit phasors' square roots and divisions are exactly rounded IEEE operations, so
     /// the wider build gives the same bits.
     pub fn fill<'a>(&mut self, needs: Needs, series: impl Fn(usize) -> &'a [Complex32]) {
-        #[cfg(target_arch = "x86_64")]
-        if std::arch::is_x86_feature_detected!("avx2") {
-            // SAFETY: the CPU supports AVX2, checked on the line above.
-            unsafe { self.fill_avx2(needs, series) };
-            return;
-        }
-        self.fill_any(needs, series);
-    }
-
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx2")]
-    unsafe fn fill_avx2<'a>(&mut self, needs: Needs, series: impl Fn(usize) -> &'a [Complex32]) {
-        self.fill_any(needs, series);
+        crate::wide::with_avx2(
+            #[inline(always)]
+            || self.fill_any(needs, series),
+        );
     }
 
     #[inline(always)]
@@ -276,26 +267,10 @@ impl PairSums {
         trials: usize,
         range: std::ops::Range<usize>,
     ) {
-        #[cfg(target_arch = "x86_64")]
-        if std::arch::is_x86_feature_detected!("avx2") {
-            // SAFETY: the CPU supports AVX2, checked on the line above.
-            unsafe { self.compute_avx2(needs, a, b, trials, range) };
-            return;
-        }
-        self.compute_any(needs, a, b, trials, range);
-    }
-
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx2")]
-    unsafe fn compute_avx2(
-        &mut self,
-        needs: Needs,
-        a: &Planes,
-        b: &Planes,
-        trials: usize,
-        range: std::ops::Range<usize>,
-    ) {
-        self.compute_any(needs, a, b, trials, range);
+        crate::wide::with_avx2(
+            #[inline(always)]
+            || self.compute_any(needs, a, b, trials, range),
+        );
     }
 
     #[inline(always)]
@@ -466,26 +441,10 @@ impl PairSums {
         planes: (&Planes, &Planes),
         out: &mut [f32],
     ) {
-        #[cfg(target_arch = "x86_64")]
-        if std::arch::is_x86_feature_detected!("avx2") {
-            // SAFETY: the CPU supports AVX2, checked on the line above.
-            unsafe { self.values_avx2(measure, times, trials, planes, out) };
-            return;
-        }
-        self.values_any(measure, times, trials, planes, out);
-    }
-
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx2")]
-    unsafe fn values_avx2(
-        &self,
-        measure: Measure,
-        times: std::ops::Range<usize>,
-        trials: usize,
-        planes: (&Planes, &Planes),
-        out: &mut [f32],
-    ) {
-        self.values_any(measure, times, trials, planes, out);
+        crate::wide::with_avx2(
+            #[inline(always)]
+            || self.values_any(measure, times, trials, planes, out),
+        );
     }
 
     #[inline(always)]
