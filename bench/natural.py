@@ -197,9 +197,10 @@ def reruns(rep, folder, binary):
 def write_floor(folder, stage):
     """Seconds that writing and fsyncing every subject's `stage` export takes with plain Python:
     each file is read into memory first (not timed), then written to a new file beside the cache
-    and fsynced (timed), then removed; the fastest of `passes` passes over all of them (the first
-    pass on a virtual machine may write into memory its host took back, see BENCHMARKS.md). What
-    a rerun that must make those bytes durable cannot beat on this disk."""
+    and fsynced (timed), then removed; the fastest of three passes over all of them (the first
+    pass on a virtual machine may write into memory its host took back, see BENCHMARKS.md). About
+    what a rerun that must make those bytes durable costs on this disk: one file after another
+    here, where the runner overlaps them with its work, so a rerun can come in a little under."""
     passes = [write_pass(folder, stage) for _ in range(3)]
     return min(passes, key=lambda p: p["seconds"])
 

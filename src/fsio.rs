@@ -36,8 +36,8 @@ pub(crate) const WRITEBACK_BYTES: u64 = 8 << 20;
 /// The temporary file that [`write_then_rename`] hands its `fill`: written in pieces of at most
 /// [`WRITEBACK_BYTES`], each handed to the disk as soon as it is written ([`hand_to_disk`],
 /// which starts the write and waits for nothing), so that the fsync before the rename finds most
-/// of a large object already on its way and waits less. Only when the write goes to disk changes; what is written,
-/// and the fsync that makes it durable, do not.
+/// of a large object already on its way and waits less. Only when the write goes to disk
+/// changes; what is written, and the fsync that makes it durable, do not.
 pub struct Writeback<'f> {
     file: &'f mut File,
     written: u64,
