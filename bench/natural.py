@@ -182,6 +182,9 @@ def reruns(rep, folder, binary):
             f"computed); no-op: median {noop:.3f} s (target < 0.3 s; "
             + ", ".join(f"{r['wall']:.3f}" for r in noops) + " s)")
     floor = write_floor(folder, "norm")
+    if not floor["bytes"]:
+        raise SystemExit("bench: no results/<subject>/norm.npy to time the rerun's disk floor "
+                         "against; the pipeline must export `norm`")
     rep.say(f"Disk floor of that rerun: writing and fsyncing the bytes it must make durable (each "
             f"subject's norm export, {floor['bytes'] / 2**30:.2f} GiB, rewritten by Python with "
             f"os.fsync) takes {floor['seconds']:.3f} s = {100 * floor['seconds'] / full['wall']:.1f} % "
