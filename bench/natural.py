@@ -242,7 +242,9 @@ def main():
     ap.add_argument("--skip", action="append", default=[], choices=["chain", "kernel", "reruns"])
     ap.add_argument("--subjects", type=int,
                     help="fewer subjects than the size's (the medium study's exports alone take "
-                         "about 34 GB for 10 subjects: 1.7 GB of sync and of norm per subject)")
+                         "about 34 GB for 10 subjects: 1.7 GB of sync and of norm per subject; "
+                         "the reruns add 1.7 GB of norm per subject for each of their "
+                         f"{len(BASELINE_CHANGES)} baseline windows)")
     args = ap.parse_args()
     size = dict(SIZES[args.size])
     if args.subjects:
