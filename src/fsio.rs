@@ -147,6 +147,28 @@ pub fn drop_cached(path: &Path) {
     let _ = path;
 }
 
+/// The system's reason a write failed, as the user reads it. When the filesystem or the user's
+/// quota is full it goes on to say what frees room, since a cache that keeps every variant a
+/// study has tried is the usual cause.
+pub struct WriteReason<'a>(pub &'a std::io::Error);
+
+impl std::fmt::Display for WriteReason<'_> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "{}", self.0)?;
+        if matches!(
+            self.0.kind(),
+            std::io::ErrorKind::StorageFull | std::io::ErrorKind::QuotaExceeded
+        ) {
+            f.write_str(
+                " (the disk or your quota is full: `phasewise prune PIPELINE...` removes the \
+                 cache objects that no manifest of those pipelines uses; --cache DIR moves the \
+                 cache)",
+            )?;
+        }
+        Ok(())
+    }
+}
+
 /// Write `bytes` to `path` atomically: a temporary file in the same folder, fsync, rename.
 pub fn atomic_write(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     write_then_rename(path, false, |file| file.write_all(bytes).map(Ok))
@@ -334,4 +356,48 @@ pub(crate) fn temp_name(target: &str) -> String {
         std::process::id(),
         hasher.finish()
     )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::WriteReason;
+    use std::io::{Error, ErrorKind};
+
+    #[test]
+    fn a_full_disk_or_quota_says_what_frees_room_and_other_failures_do_not() {
+        for kind in [ErrorKind::StorageFull, ErrorKind::QuotaExceeded] {
+            let said = WriteReason(&Error::from(kind)).to_string();
+            assert!(said.contains("phasewise prune PIPELINE..."), "{said}");
+            assert!(said.contains("--cache DIR"), "{said}");
+        }
+        // ENOSPC as the kernel reports it, not only as a constructed kind.
+        let said = WriteReason(&Error::from_raw_os_error(libc::ENOSPC)).to_string();
+        assert!(said.starts_with("No space left on device"), "{said}");
+        assert!(said.contains("phasewise prune"), "{said}");
+        let said = WriteReason(&Error::from(ErrorKind::PermissionDenied)).to_string();
+        assert_eq!(said, Error::from(ErrorKind::PermissionDenied).to_string());
+    }
+
+    #[test]
+    fn cache_and_export_failures_name_the_file_and_carry_the_full_disk_advice() {
+        let path = std::path::Path::new("/study/.phasewise/objects/ab/ab12.npy");
+        let full = || Error::from_raw_os_error(libc::ENOSPC);
+        let cache = crate::store::StoreError::Write {
+            path: path.to_path_buf(),
+            source: full(),
+        }
+        .to_string();
+        let export = crate::output::OutputError::io(path, &full()).to_string();
+        // The NPY encoder's own error for the same refusal, named as a write of the file.
+        let encoder = crate::store::StoreError::Npy(ndarray_npy::WriteNpyError::Io(full()))
+            .writing(path)
+            .to_string();
+        for said in [cache, export, encoder] {
+            assert!(
+                said.starts_with(&format!("cannot write {}: No space", path.display())),
+                "{said}"
+            );
+            assert!(said.contains("phasewise prune"), "{said}");
+        }
+    }
 }

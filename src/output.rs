@@ -27,9 +27,9 @@ use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use crate::fsio::{
-    atomic_write, bookkeeping_write, remove_stale_temps, write_then_rename, Declined,
+    atomic_write, bookkeeping_write, remove_stale_temps, write_then_rename, Declined, WriteReason,
 };
-use crate::store::{write_npy_to, Damage, ObjectRecord, Store};
+use crate::store::{write_npy_to, Damage, ObjectRecord, Store, StoreError};
 
 /// An export that could not be written.
 #[derive(Debug, thiserror::Error)]
@@ -39,6 +39,16 @@ pub struct OutputError {
     pub path: PathBuf,
     /// Why.
     pub message: String,
+}
+
+impl OutputError {
+    /// A write of `path` that the system refused.
+    pub fn io(path: &Path, error: &std::io::Error) -> OutputError {
+        OutputError {
+            path: path.to_path_buf(),
+            message: WriteReason(error).to_string(),
+        }
+    }
 }
 
 /// Where one unit's exports go.
@@ -285,10 +295,7 @@ pub fn export(
     let record_path = target.record_path(store);
     // A stale export record must never vouch for files about to change.
     let _ = std::fs::remove_file(&record_path);
-    let fail = |e: std::io::Error| OutputError {
-        path: npy_path.clone(),
-        message: e.to_string(),
-    };
+    let fail = |e: std::io::Error| OutputError::io(&npy_path, &e);
     // A stored object is exported as a second name of its file (no copy; hash-checked on the
     // way); where no link can be made (another filesystem), it is copied, or written from
     // memory. An array in memory whose stored object turns out damaged is written from memory.
@@ -318,9 +325,16 @@ pub fn export(
                 out.flush()?;
                 Ok(done)
             });
-            written.map_err(fail)?.map_err(|declined| OutputError {
-                path: npy_path.clone(),
-                message: declined.to_string(),
+            let declined = |e: StoreError| match e.writing(&npy_path) {
+                StoreError::Write { source, .. } => fail(source),
+                other => OutputError {
+                    path: npy_path.clone(),
+                    message: other.to_string(),
+                },
+            };
+            written.map_err(fail)?.map_err(|d| match d {
+                Declined::Wrong(e) => declined(e),
+                Declined::Unchanged => unreachable!("a written export's writer does not compare"),
             })?;
         }
     }
@@ -641,15 +655,11 @@ fn write_streamed_atomically(
             Ok(())
         })
     });
-    let message = match written {
-        Ok(Ok(())) | Ok(Err(Declined::Unchanged)) => return Ok(()),
+    match written {
+        Ok(Ok(())) | Ok(Err(Declined::Unchanged)) => Ok(()),
         Ok(Err(Declined::Wrong(never))) => match never {},
-        Err(e) => e.to_string(),
-    };
-    Err(OutputError {
-        path: path.to_path_buf(),
-        message,
-    })
+        Err(e) => Err(OutputError::io(path, &e)),
+    }
 }
 
 /// Write a file atomically unless it already holds exactly these bytes.
@@ -657,10 +667,7 @@ pub fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), OutputError> {
     if holds(path, bytes) {
         return Ok(());
     }
-    atomic_write(path, bytes).map_err(|e| OutputError {
-        path: path.to_path_buf(),
-        message: e.to_string(),
-    })
+    atomic_write(path, bytes).map_err(|e| OutputError::io(path, &e))
 }
 
 /// Whether the file at `path` holds exactly `bytes`: its size first, then its contents piece by

@@ -468,7 +468,10 @@ impl Spool {
                 self.at
             )));
         }
-        let io = |e: std::io::Error| StageError::data(format!("cannot spool a part: {e}"));
+        let io = |e: std::io::Error| {
+            let path = self.file.path().display();
+            StageError::data(format!("cannot write {path}: {}", fsio::WriteReason(&e)))
+        };
         let part_row = n * self.inner * self.element;
         let whole_row = (self.len * self.inner * self.element) as u64;
         let skip = (self.at * self.inner * self.element) as u64;

@@ -947,8 +947,16 @@ impl Worker<'_, '_> {
                 let axis = plan.axis;
                 let k = out.axis(axis).map_err(|e| self.op_failure(u, &e))?;
                 let dir = study.store.root().join("objects");
-                let spool = slabs::Spool::new(&dir, out, k)
-                    .map_err(|e| self.fail(u, format!("cannot spool in {}: {e}", dir.display())))?;
+                let spool = slabs::Spool::new(&dir, out, k).map_err(|e| {
+                    self.fail(
+                        u,
+                        format!(
+                            "cannot spool in {}: {}",
+                            dir.display(),
+                            fsio::WriteReason(&e)
+                        ),
+                    )
+                })?;
                 Some(spool)
             }
             _ => None,

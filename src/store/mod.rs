@@ -54,7 +54,7 @@ pub const ABORT_BEFORE_RENAME: &str = "PHASEWISE_TEST_ABORT_BEFORE_RENAME";
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
     /// A file could not be written.
-    #[error("cannot write {path}: {source}")]
+    #[error("cannot write {path}: {}", crate::fsio::WriteReason(.source))]
     Write {
         /// The file.
         path: PathBuf,
@@ -67,6 +67,20 @@ pub enum StoreError {
     /// The object record could not be encoded.
     #[error("cannot encode the object record: {0}")]
     Record(#[from] serde_json::Error),
+}
+
+impl StoreError {
+    /// This error as a failure to write `path` when what failed was the writing itself: the NPY
+    /// encoder passes the system's refusal (a full disk, say) on without the file's name.
+    pub fn writing(self, path: &Path) -> StoreError {
+        match self {
+            StoreError::Npy(ndarray_npy::WriteNpyError::Io(source)) => StoreError::Write {
+                path: path.to_path_buf(),
+                source,
+            },
+            other => other,
+        }
+    }
 }
 
 /// The record beside every object.
@@ -577,7 +591,7 @@ fn write_object_file(path: &Path, values: &Values) -> Result<(String, u64), Stor
     });
     match written {
         Ok(Ok(digest)) => Ok(digest),
-        Ok(Err(Declined::Wrong(e))) => Err(e),
+        Ok(Err(Declined::Wrong(e))) => Err(e.writing(path)),
         Ok(Err(Declined::Unchanged)) => unreachable!("an object's writer does not compare"),
         Err(source) => Err(StoreError::Write {
             path: path.to_path_buf(),
