@@ -56,6 +56,10 @@ pub enum Command {
         /// recorded it, host included. The group job of `submit` runs this.
         #[arg(long, conflicts_with = "subjects")]
         merge_parts: bool,
+        /// Run even when the disk looks too small for what the run writes (by default a run
+        /// that certainly cannot fit stops before it starts; `plan` shows the sizes).
+        #[arg(long)]
+        skip_room_check: bool,
     },
     /// Show, for every stage × subject, whether it is fresh or stale and why.
     Plan {
@@ -178,6 +182,9 @@ pub enum Command {
         /// Number of threads, at least 1 (default: all cores).
         #[arg(long, short = 'j', value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
         jobs: Option<usize>,
+        /// Run even when the disk looks too small for what a variant writes.
+        #[arg(long)]
+        skip_room_check: bool,
     },
 }
 
@@ -230,6 +237,10 @@ pub struct Submit {
     /// One more sbatch option for every job, verbatim (repeatable), e.g. `--sbatch-arg=--qos=short`.
     #[arg(long = "sbatch-arg", value_name = "ARG", allow_hyphen_values = true)]
     pub sbatch_args: Vec<String>,
+    /// Submit even when the cache's disk looks too small for what the study writes (every job
+    /// then runs with `--skip-room-check` too).
+    #[arg(long)]
+    pub skip_room_check: bool,
     /// Write the job scripts and print the sbatch commands; submit nothing.
     #[arg(long)]
     pub dry_run: bool,
@@ -294,6 +305,7 @@ fn run_error(e: RunError) -> anyhow::Error {
 
 fn options(target: &Target, jobs: Option<usize>, quiet: bool) -> Options {
     Options {
+        skip_room_check: false,
         overrides: target.set.clone(),
         subjects: target.subjects.clone(),
         cache: target.cache.clone(),
@@ -315,7 +327,14 @@ fn dispatch(cli: &Cli) -> Result<i32> {
             target,
             jobs,
             merge_parts,
-        } => run(target, *jobs, *merge_parts, cli.quiet, env),
+            skip_room_check,
+        } => {
+            let options = Options {
+                skip_room_check: *skip_room_check,
+                ..options(target, *jobs, cli.quiet)
+            };
+            run(target, &options, *merge_parts, cli.quiet, env)
+        }
         Command::Submit(args) => submit(args, cli.quiet, env),
         Command::Status {
             pipeline,
@@ -362,7 +381,18 @@ fn dispatch(cli: &Cli) -> Result<i32> {
             clap_complete::generate(*shell, &mut command, "phasewise", &mut std::io::stdout());
             Ok(0)
         }
-        Command::Sweep { target, vary, jobs } => sweep(target, vary, *jobs, cli.quiet, env),
+        Command::Sweep {
+            target,
+            vary,
+            jobs,
+            skip_room_check,
+        } => {
+            let options = Options {
+                skip_room_check: *skip_room_check,
+                ..options(target, *jobs, cli.quiet)
+            };
+            sweep(target, vary, &options, cli.quiet, env)
+        }
         Command::Schema => {
             let schema = crate::schema::pipeline(env.ops);
             println!("{}", serde_json::to_string_pretty(&schema)?);
@@ -373,13 +403,12 @@ fn dispatch(cli: &Cli) -> Result<i32> {
 
 fn run(
     target: &Target,
-    jobs: Option<usize>,
+    options: &Options,
     merge_parts: bool,
     quiet: bool,
     env: Env<'_>,
 ) -> Result<i32> {
-    let summary =
-        session::run(&target.pipeline, &options(target, jobs, quiet), env).map_err(run_error)?;
+    let summary = session::run(&target.pipeline, options, env).map_err(run_error)?;
     if merge_parts {
         crate::cluster::merge_parts(&summary.manifest_path, summary.manifest.clone())
             .map_err(|e| anyhow!("merging the manifest parts: {e}"))?;
@@ -453,9 +482,11 @@ fn write_report(
 fn plan(target: &Target, json: bool, env: Env<'_>) -> Result<i32> {
     let (study, plan, recipes) =
         session::plan(&target.pipeline, &options(target, None, true), env).map_err(run_error)?;
+    let room = crate::room::Room::assess(&study, &plan, &recipes);
     if json {
-        let text = serde_json::to_string_pretty(&plan.to_json(&recipes))?;
-        println!("{text}");
+        let mut value = plan.to_json(&recipes);
+        value["room"] = serde_json::to_value(&room)?;
+        println!("{}", serde_json::to_string_pretty(&value)?);
         return Ok(0);
     }
     for ((u, line), recipe) in plan.units.iter().enumerate().zip(&recipes) {
@@ -472,6 +503,14 @@ fn plan(target: &Target, json: bool, env: Env<'_>) -> Result<i32> {
         plan.stale_count(),
         count(plan.units.len(), "unit", "units")
     );
+    for disk in &room.disks {
+        if disk.at_most > 0 {
+            println!("the run {disk}");
+        }
+    }
+    if let Err(e) = room.check() {
+        println!("{e}");
+    }
     Ok(0)
 }
 
@@ -575,6 +614,7 @@ fn submit(args: &Submit, quiet: bool, env: Env<'_>) -> Result<i32> {
             extra: args.sbatch_args.clone(),
         },
         dry_run: args.dry_run,
+        skip_room_check: args.skip_room_check,
     };
     let mut warn = |w: &str| eprintln!("warning: {w}");
     let report =
@@ -678,7 +718,7 @@ fn status(pipeline: &Path, set: &[String], cache: Option<&Path>, env: Env<'_>) -
 fn sweep(
     target: &Target,
     vary: &[String],
-    jobs: Option<usize>,
+    options: &Options,
     quiet: bool,
     env: Env<'_>,
 ) -> Result<i32> {
@@ -689,8 +729,7 @@ fn sweep(
                 .into(),
         }));
     }
-    let summary = crate::sweep::sweep(&target.pipeline, &options(target, jobs, quiet), vary, env)
-        .map_err(|e| {
+    let summary = crate::sweep::sweep(&target.pipeline, options, vary, env).map_err(|e| {
         anyhow!(Exit {
             code: e.exit_code(),
             message: e.to_string(),

@@ -147,10 +147,35 @@ pub fn drop_cached(path: &Path) {
     let _ = path;
 }
 
+/// Where a refused write was going; what frees room differs.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Destination {
+    /// The cache (objects, records, spools).
+    Cache,
+    /// The output folder (exports).
+    Output,
+}
+
+impl Destination {
+    /// What frees room on this destination's disk, as one or two sentences.
+    pub fn advice(self) -> &'static str {
+        match self {
+            Destination::Cache => {
+                "`phasewise prune PIPELINE...` removes the cache objects that no manifest of \
+                 those pipelines uses; --cache DIR puts the cache on another disk."
+            }
+            Destination::Output => {
+                "The pipeline's `output:` can name a folder on another disk; when the cache \
+                 shares this disk, `phasewise prune PIPELINE...` frees room too."
+            }
+        }
+    }
+}
+
 /// The system's reason a write failed, as the user reads it. When the filesystem or the user's
-/// quota is full it goes on to say what frees room, since a cache that keeps every variant a
-/// study has tried is the usual cause.
-pub struct WriteReason<'a>(pub &'a std::io::Error);
+/// quota is full it goes on to say what frees room there ([`Destination::advice`]), since a
+/// cache that keeps every variant a study has tried is the usual cause.
+pub struct WriteReason<'a>(pub &'a std::io::Error, pub Destination);
 
 impl std::fmt::Display for WriteReason<'_> {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
@@ -159,11 +184,7 @@ impl std::fmt::Display for WriteReason<'_> {
             self.0.kind(),
             std::io::ErrorKind::StorageFull | std::io::ErrorKind::QuotaExceeded
         ) {
-            f.write_str(
-                " (the disk or your quota is full: `phasewise prune PIPELINE...` removes the \
-                 cache objects that no manifest of those pipelines uses; --cache DIR moves the \
-                 cache)",
-            )?;
+            write!(f, " (the disk or your quota is full. {})", self.1.advice())?;
         }
         Ok(())
     }
@@ -360,22 +381,28 @@ pub(crate) fn temp_name(target: &str) -> String {
 
 #[cfg(test)]
 mod tests {
-    use super::WriteReason;
+    use super::{Destination, WriteReason};
     use std::io::{Error, ErrorKind};
 
     #[test]
-    fn a_full_disk_or_quota_says_what_frees_room_and_other_failures_do_not() {
+    fn a_full_disk_or_quota_says_what_frees_room_there_and_other_failures_do_not() {
         for kind in [ErrorKind::StorageFull, ErrorKind::QuotaExceeded] {
-            let said = WriteReason(&Error::from(kind)).to_string();
+            let said = WriteReason(&Error::from(kind), Destination::Cache).to_string();
             assert!(said.contains("phasewise prune PIPELINE..."), "{said}");
             assert!(said.contains("--cache DIR"), "{said}");
+            let said = WriteReason(&Error::from(kind), Destination::Output).to_string();
+            assert!(said.contains("`output:` can name a folder"), "{said}");
+            assert!(!said.contains("--cache DIR"), "{said}");
         }
         // ENOSPC as the kernel reports it, not only as a constructed kind.
-        let said = WriteReason(&Error::from_raw_os_error(libc::ENOSPC)).to_string();
+        let said = WriteReason(&Error::from_raw_os_error(libc::ENOSPC), Destination::Cache);
+        let said = said.to_string();
         assert!(said.starts_with("No space left on device"), "{said}");
         assert!(said.contains("phasewise prune"), "{said}");
-        let said = WriteReason(&Error::from(ErrorKind::PermissionDenied)).to_string();
-        assert_eq!(said, Error::from(ErrorKind::PermissionDenied).to_string());
+        let denied = Error::from(ErrorKind::PermissionDenied);
+        for to in [Destination::Cache, Destination::Output] {
+            assert_eq!(WriteReason(&denied, to).to_string(), denied.to_string());
+        }
     }
 
     #[test]
@@ -392,12 +419,15 @@ mod tests {
         let encoder = crate::store::StoreError::Npy(ndarray_npy::WriteNpyError::Io(full()))
             .writing(path)
             .to_string();
-        for said in [cache, export, encoder] {
+        for said in [&cache, &export, &encoder] {
             assert!(
                 said.starts_with(&format!("cannot write {}: No space", path.display())),
                 "{said}"
             );
-            assert!(said.contains("phasewise prune"), "{said}");
         }
+        for cache_side in [&cache, &encoder] {
+            assert!(cache_side.contains("--cache DIR"), "{cache_side}");
+        }
+        assert!(export.contains("`output:` can name a folder"), "{export}");
     }
 }

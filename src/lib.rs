@@ -44,6 +44,7 @@ pub mod plan;
 pub mod prune;
 pub mod recipe;
 pub mod report;
+pub mod room;
 pub mod scaffold;
 pub mod schema;
 pub mod session;

@@ -27,7 +27,8 @@ use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use crate::fsio::{
-    atomic_write, bookkeeping_write, remove_stale_temps, write_then_rename, Declined, WriteReason,
+    atomic_write, bookkeeping_write, remove_stale_temps, write_then_rename, Declined, Destination,
+    WriteReason,
 };
 use crate::store::{write_npy_to, Damage, ObjectRecord, Store, StoreError};
 
@@ -46,7 +47,7 @@ impl OutputError {
     pub fn io(path: &Path, error: &std::io::Error) -> OutputError {
         OutputError {
             path: path.to_path_buf(),
-            message: WriteReason(error).to_string(),
+            message: WriteReason(error, Destination::Output).to_string(),
         }
     }
 }

@@ -19,6 +19,7 @@ use crate::paths::clean;
 use crate::pipeline::{self, ResolvedPipeline};
 use crate::plan::Plan;
 use crate::recipe::{self, Recipe};
+use crate::room::Room;
 use crate::sources::{Hasher, Reader};
 use crate::store::Store;
 use crate::study::{RunError, Study};
@@ -50,6 +51,9 @@ pub struct Options {
     /// Read the recordings under this folder instead of the glob's own root folder (the glob's
     /// pattern below its root kept; used by `verify --data`).
     pub data: Option<PathBuf>,
+    /// `--skip-room-check`: run even when the disk cannot hold what the run writes
+    /// ([`crate::room`]).
+    pub skip_room_check: bool,
 }
 
 /// The cache folder: `--cache`, else `.phasewise/` beside the pipeline file.
@@ -110,6 +114,7 @@ pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, R
             "planned"
         );
         let recipes = recipe::decide_all(&study, &plan);
+        check_room(&Room::assess(&study, &plan, &recipes), options)?;
         // The chains derive again what they need; the planned layouts (long time axes of the
         // continuous stages among them) need not stay in memory while they run.
         study.forget_planned_layouts();
@@ -155,6 +160,17 @@ fn finish(study: &Study, outcome: &Outcome, started: &str) -> Result<RunSummary,
         manifest,
         manifest_path,
     })
+}
+
+/// Refuse a run the disk cannot hold (unless `--skip-room-check`); warn about one it may not.
+pub fn check_room(room: &Room, options: &Options) -> Result<(), RunError> {
+    if options.skip_room_check {
+        return Ok(());
+    }
+    if let Some(warning) = room.check()? {
+        tracing::warn!("{warning}");
+    }
+    Ok(())
 }
 
 /// The plan of a pipeline and every unit's recipe (nothing runs).

@@ -470,7 +470,10 @@ impl Spool {
         }
         let io = |e: std::io::Error| {
             let path = self.file.path().display();
-            StageError::data(format!("cannot write {path}: {}", fsio::WriteReason(&e)))
+            StageError::data(format!(
+                "cannot write {path}: {}",
+                fsio::WriteReason(&e, fsio::Destination::Cache)
+            ))
         };
         let part_row = n * self.inner * self.element;
         let whole_row = (self.len * self.inner * self.element) as u64;

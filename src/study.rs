@@ -44,6 +44,9 @@ pub enum RunError {
     /// A unit failed (at layout time or while running).
     #[error("{}", .0.iter().map(ToString::to_string).collect::<Vec<_>>().join("\n"))]
     Units(Vec<UnitFailure>),
+    /// The run would fill a disk before it ends ([`crate::room`]).
+    #[error(transparent)]
+    NoRoom(#[from] crate::room::NoRoom),
     /// Something else failed (writing outputs, the store).
     #[error("{0}")]
     Other(String),
@@ -56,7 +59,7 @@ impl RunError {
             RunError::Pipeline(_) | RunError::Source(_) | RunError::UnknownSubject { .. } => 2,
             // A param error found only while running still means the pipeline is wrong.
             RunError::Units(f) if f.iter().any(|f| f.diagnostic.is_some()) => 2,
-            RunError::Units(_) | RunError::Other(_) => 1,
+            RunError::Units(_) | RunError::NoRoom(_) | RunError::Other(_) => 1,
         }
     }
 }
@@ -120,6 +123,31 @@ pub struct Study {
     /// planned by its op from its inputs'; `None` when it depends on values), set by
     /// [`Study::check_layouts`]. The recipes ([`crate::recipe`]) are decided on them.
     pub layouts: Vec<Option<PlannedLayout>>,
+    /// Each unit's output size as far as it is known before anything runs (exact from its
+    /// layout, or an upper bound where the layout depends on values), set by
+    /// [`Study::check_layouts`]; [`crate::room`] adds them up.
+    pub sizes: Vec<Option<OutputSize>>,
+}
+
+/// The bytes of a unit's output values (`f32`, or two per complex value), known before it runs.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct OutputSize {
+    /// The bytes.
+    pub bytes: u64,
+    /// False when the layout depends on values (an `epoch` that rejects trials): `bytes` is
+    /// then an upper bound, from the ops' [`phasewise_stages::Op::layout_bound`].
+    pub exact: bool,
+}
+
+impl OutputSize {
+    fn of(layout: &Layout, exact: bool) -> OutputSize {
+        let values: u64 = layout.shape().iter().map(|&n| n as u64).product();
+        let width = if layout.complex { 8 } else { 4 };
+        OutputSize {
+            bytes: values.saturating_mul(width),
+            exact,
+        }
+    }
 }
 
 impl Study {
@@ -175,6 +203,7 @@ impl Study {
             selection: selection.to_vec(),
             store,
             layouts: Vec::new(),
+            sizes: Vec::new(),
         };
         study.compute_keys();
         Ok(study)
@@ -451,6 +480,7 @@ impl Study {
             };
             layouts.push(layout);
         }
+        self.sizes = self.output_sizes(&source_layouts, &layouts, &mut diagnostics);
         if !diagnostics.is_empty() {
             return Err(RunError::Pipeline(PipelineError::Invalid(diagnostics)));
         }
@@ -459,6 +489,73 @@ impl Study {
         }
         self.layouts = layouts;
         Ok(())
+    }
+
+    /// Every unit's [`OutputSize`]: from its layout where it is known, else from the ops'
+    /// bounds down the graph (`None` where not even a bound can be had). A param that cannot
+    /// work with the bound layouts (a frequency above Nyquist below an `epoch` that rejects
+    /// trials) cannot work with the real ones either, so it is reported here, before anything
+    /// runs, like any other param error.
+    fn output_sizes(
+        &self,
+        sources: &[Option<Layout>],
+        layouts: &[Option<PlannedLayout>],
+        diagnostics: &mut Vec<Diagnostic>,
+    ) -> Vec<Option<OutputSize>> {
+        let mut bounds: Vec<Option<Layout>> = Vec::with_capacity(self.units.len());
+        let mut sizes = Vec::with_capacity(self.units.len());
+        for u in 0..self.units.len() {
+            if let Some(layout) = &layouts[u] {
+                sizes.push(Some(OutputSize::of(layout.layout(), true)));
+                bounds.push(None);
+                continue;
+            }
+            let layout_of =
+                |i: usize| (layouts[i].as_ref().map(PlannedLayout::layout)).or(bounds[i].as_ref());
+            let bound = self.unit_inputs(u, sources, layout_of).and_then(|inputs| {
+                let stage = &self.pipeline.stages[self.units[u].stage];
+                match stage.op.layout_bound(&inputs) {
+                    Ok(bound) => bound,
+                    Err(e @ StageError::Param { .. }) => {
+                        self.param_diagnostic(u, &e, diagnostics);
+                        None
+                    }
+                    // Data errors of a bound (too few trials, say) need not hold for the real
+                    // layout: the run finds them.
+                    Err(_) => None,
+                }
+            });
+            sizes.push(bound.as_ref().map(|l| OutputSize::of(l, false)));
+            bounds.push(bound);
+        }
+        sizes
+    }
+
+    /// A unit's input layouts, `None` when one is not known.
+    fn unit_inputs<'a>(
+        &'a self,
+        u: usize,
+        sources: &'a [Option<Layout>],
+        layout_of: impl Fn(usize) -> Option<&'a Layout>,
+    ) -> Option<Vec<InputLayout<'a>>> {
+        let unit = &self.units[u];
+        let mut inputs = Vec::new();
+        for input in &unit.inputs {
+            let (stage, subject, layout) = match *input {
+                UnitInput::Source(s) => (
+                    SOURCE,
+                    Some(self.sources[s].subject.as_str()),
+                    sources[s].as_ref(),
+                ),
+                UnitInput::Unit(i) => (self.stage_name(i), self.subject(i), layout_of(i)),
+            };
+            inputs.push(InputLayout {
+                stage,
+                subject,
+                layout: layout?,
+            });
+        }
+        Some(inputs)
     }
 
     fn unit_layout(
@@ -470,40 +567,13 @@ impl Study {
         failures: &mut Vec<UnitFailure>,
     ) -> Option<Layout> {
         let unit = &self.units[u];
-        let mut inputs = Vec::new();
-        for input in &unit.inputs {
-            let (stage, subject, layout) = match *input {
-                UnitInput::Source(s) => (
-                    SOURCE,
-                    Some(self.sources[s].subject.as_str()),
-                    sources[s].as_ref(),
-                ),
-                UnitInput::Unit(i) => (
-                    self.stage_name(i),
-                    self.subject(i),
-                    units[i].as_ref().map(PlannedLayout::layout),
-                ),
-            };
-            inputs.push(InputLayout {
-                stage,
-                subject,
-                layout: layout?,
-            });
-        }
+        let inputs =
+            self.unit_inputs(u, sources, |i| units[i].as_ref().map(PlannedLayout::layout))?;
         let stage = &self.pipeline.stages[unit.stage];
         match stage.op.layout(&inputs) {
             Ok(layout) => layout,
             Err(e @ StageError::Param { .. }) => {
-                let mut d = self.pipeline.stage_diagnostic(unit.stage, &e);
-                if let Some(subject) = self.subject(u) {
-                    d.message = format!("{} (subject {subject})", d.message);
-                }
-                if !diagnostics
-                    .iter()
-                    .any(|x| x.field == d.field && x.line == d.line)
-                {
-                    diagnostics.push(d);
-                }
+                self.param_diagnostic(u, &e, diagnostics);
                 None
             }
             Err(e) => {
@@ -515,6 +585,20 @@ impl Study {
                 });
                 None
             }
+        }
+    }
+
+    /// A param error of unit `u` as a diagnostic of its stage's line, once per field and line.
+    fn param_diagnostic(&self, u: usize, e: &StageError, diagnostics: &mut Vec<Diagnostic>) {
+        let mut d = self.pipeline.stage_diagnostic(self.units[u].stage, e);
+        if let Some(subject) = self.subject(u) {
+            d.message = format!("{} (subject {subject})", d.message);
+        }
+        if !diagnostics
+            .iter()
+            .any(|x| x.field == d.field && x.line == d.line)
+        {
+            diagnostics.push(d);
         }
     }
 

@@ -10,6 +10,21 @@ pub fn count(n: usize, singular: &str, plural: &str) -> String {
     }
 }
 
+/// A size in binary units with one decimal: `0 B`, `512 B`, `1.5 KiB`, `41.2 GiB`.
+pub fn bytes(n: u64) -> String {
+    const UNITS: [&str; 4] = ["KiB", "MiB", "GiB", "TiB"];
+    if n < 1024 {
+        return format!("{n} B");
+    }
+    let mut value = n as f64 / 1024.0;
+    let mut unit = 0;
+    while value >= 1024.0 && unit + 1 < UNITS.len() {
+        value /= 1024.0;
+        unit += 1;
+    }
+    format!("{value:.1} {}", UNITS[unit])
+}
+
 /// The candidate closest to `word`, when it is close enough to be a likely misspelling.
 ///
 /// Closeness is the Damerau–Levenshtein distance (an edit is an insertion, deletion,
@@ -46,6 +61,18 @@ pub fn did_you_mean<'c>(word: &str, candidates: impl IntoIterator<Item = &'c str
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn sizes_are_in_binary_units_with_one_decimal() {
+        // IEC 80000-13 binary prefixes: 1 KiB = 1024 B.
+        assert_eq!(bytes(0), "0 B");
+        assert_eq!(bytes(512), "512 B");
+        assert_eq!(bytes(1536), "1.5 KiB");
+        assert_eq!(bytes(359_177_852), "342.5 MiB");
+        assert_eq!(bytes(41 << 30), "41.0 GiB");
+        assert_eq!(bytes(3 << 40), "3.0 TiB");
+        assert_eq!(bytes(5000 << 40), "5000.0 TiB");
+    }
 
     #[test]
     fn counts_take_the_plural_unless_one() {

@@ -54,7 +54,7 @@ pub type StoreHashes = BTreeMap<String, String>;
 #[derive(Debug, thiserror::Error)]
 pub enum ZarrError {
     /// A file or folder of the store.
-    #[error("{path}: {}", crate::fsio::WriteReason(.source))]
+    #[error("{path}: {}", crate::fsio::WriteReason(.source, crate::fsio::Destination::Output))]
     Io {
         /// The file or folder.
         path: PathBuf,

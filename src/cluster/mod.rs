@@ -27,6 +27,7 @@ use serde::{Deserialize, Serialize};
 use crate::fsio::atomic_write;
 use crate::paths::clean;
 use crate::plan::Status;
+use crate::room::Room;
 use crate::session::{self, Env, Options};
 use crate::study::{RunError, Study};
 use slurm::State;
@@ -116,6 +117,8 @@ pub struct SubmitOptions {
     pub resources: Resources,
     /// Write the scripts and print the commands only.
     pub dry_run: bool,
+    /// `--skip-room-check`, passed on to every job.
+    pub skip_room_check: bool,
 }
 
 /// The job ids of a submission, kept in `<output>/jobs/submitted.json`.
@@ -311,12 +314,19 @@ pub fn submit(
         cache: options.cache.clone(),
         ..Options::default()
     };
-    let (study, plan, _) = session::plan(file, &session_options, env)?;
+    let (study, plan, recipes) = session::plan(file, &session_options, env)?;
     let (subjects, group_stale) = stale_parts(&study, &plan);
     if subjects.is_empty() && !group_stale {
         return Ok(SubmitReport::NothingStale {
             units: plan.units.len(),
         });
+    }
+    // The whole study, before its jobs each check their own subject against the same disk.
+    if !options.skip_room_check {
+        let room = Room::assess(&study, &plan, &recipes);
+        if let Some(w) = room.check().map_err(RunError::from)? {
+            warn(&w);
+        }
     }
     if let Some(bad) = subjects.iter().find(|s| s.contains(['\n', '\r'])) {
         return Err(ClusterError::BadValue {
@@ -349,6 +359,7 @@ pub fn submit(
         cache: &cache,
         overrides: &options.overrides,
         jobs: options.resources.cpus.unwrap_or(1),
+        skip_room_check: options.skip_room_check,
     };
     let sbatch_options = script::sbatch_options(&options.resources);
     let name = &study.pipeline.name;

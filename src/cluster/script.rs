@@ -41,6 +41,8 @@ pub struct Command<'a> {
     pub overrides: &'a [String],
     /// Threads per task (`--jobs`), following `--cpus`.
     pub jobs: usize,
+    /// `--skip-room-check`.
+    pub skip_room_check: bool,
 }
 
 /// The sbatch options both scripts carry, one `#SBATCH` line each.
@@ -113,6 +115,9 @@ fn run_arguments(command: &Command<'_>) -> String {
     for set in command.overrides {
         args.push(' ');
         args.push_str(&quote(&format!("--set={set}")));
+    }
+    if command.skip_room_check {
+        args.push_str(" --skip-room-check");
     }
     args
 }

@@ -953,7 +953,7 @@ impl Worker<'_, '_> {
                         format!(
                             "cannot spool in {}: {}",
                             dir.display(),
-                            fsio::WriteReason(&e)
+                            fsio::WriteReason(&e, fsio::Destination::Cache)
                         ),
                     )
                 })?;

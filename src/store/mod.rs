@@ -54,7 +54,7 @@ pub const ABORT_BEFORE_RENAME: &str = "PHASEWISE_TEST_ABORT_BEFORE_RENAME";
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
     /// A file could not be written.
-    #[error("cannot write {path}: {}", crate::fsio::WriteReason(.source))]
+    #[error("cannot write {path}: {}", crate::fsio::WriteReason(.source, crate::fsio::Destination::Cache))]
     Write {
         /// The file.
         path: PathBuf,

@@ -133,6 +133,17 @@ pub trait Op: Send + Sync + 'static {
         inputs: &[InputLayout<'_>],
     ) -> Result<Option<Layout>, StageError>;
 
+    /// A layout at least as large as the output's, on every axis, for an op whose
+    /// [`Op::layout`] cannot say in advance (an `epoch` that rejects trials: the trials before
+    /// rejection). Only sizes are read from it: the runner estimates the room a run needs. The
+    /// default is [`Op::layout`].
+    fn layout_bound(
+        params: &Self::Params,
+        inputs: &[InputLayout<'_>],
+    ) -> Result<Option<Layout>, StageError> {
+        Self::layout(params, inputs)
+    }
+
     /// Compute the output.
     fn run(
         params: &Self::Params,
@@ -273,6 +284,8 @@ pub trait BoundOp: Send + Sync {
     fn joins_subjects(&self) -> bool;
     /// See [`Op::layout`].
     fn layout(&self, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError>;
+    /// See [`Op::layout_bound`].
+    fn layout_bound(&self, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError>;
     /// See [`Op::run`].
     fn run(&self, inputs: &[Input<'_>], notes: &mut Notes) -> Result<LabelledArray, StageError>;
     /// See [`Op::run_owned`].
@@ -453,6 +466,9 @@ impl<O: Op> BoundOp for Bound<O> {
     }
     fn layout(&self, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
         O::layout(&self.params, inputs)
+    }
+    fn layout_bound(&self, inputs: &[InputLayout<'_>]) -> Result<Option<Layout>, StageError> {
+        O::layout_bound(&self.params, inputs)
     }
     fn run(&self, inputs: &[Input<'_>], notes: &mut Notes) -> Result<LabelledArray, StageError> {
         O::run_planned(&self.params, &self.plans, inputs, notes)

@@ -15,6 +15,7 @@ mod interrupt;
 mod recipes;
 mod reliability;
 mod report;
+mod room;
 mod runner;
 mod slabs;
 mod streaming;

@@ -146,6 +146,17 @@ impl Op for Epoch {
         Ok(Some(epoched_layout(input, &sel)?))
     }
 
+    /// The trials before rejection and equalising, which only lower the counts.
+    fn layout_bound(
+        p: &Self::Params,
+        inputs: &[InputLayout<'_>],
+    ) -> Result<Option<Layout>, StageError> {
+        let input = single(inputs)?.layout;
+        let sel = select(p, input)?;
+        check_nonempty(&sel.counts)?;
+        Ok(Some(epoched_layout(input, &sel)?))
+    }
+
     fn run(
         p: &Self::Params,
         inputs: &[Input<'_>],
@@ -564,6 +575,18 @@ mod tests {
             notes.records["epochs"]["A"],
             json!({ "kept": 2, "dropped": 0, "rejected": 1 })
         );
+        // The bound for the room estimate: the trials before rejection, as without `reject`.
+        let input = InputLayout {
+            stage: "raw",
+            subject: None,
+            layout: &x.layout,
+        };
+        let bound = Epoch::layout_bound(&p, &[input]).unwrap().unwrap();
+        let mut unrejected = p.clone();
+        unrejected.reject = None;
+        assert_eq!(Some(bound.clone()), layout_of(&unrejected, &x).unwrap());
+        assert_eq!(bound.shape(), [3, 3, 31]); // 3 trials; 0.3 s at 100 Hz, both ends: 31
+        assert_eq!(out.layout.shape(), [3, 2, 31]); // channel × trial × time
     }
 
     #[test]
