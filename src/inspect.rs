@@ -41,15 +41,17 @@ pub enum InspectError {
         /// The subjects.
         known: String,
     },
-    /// The stage keeps no values (`cache: false`).
+    /// The stage keeps no values (`cache: false`, or the storage policy).
     #[error(
-        "{stage} is not stored: it has `cache: false`, so its values are computed for the stages \
-         that read them and then dropped; to inspect it, set `cache: true` on {stage} and run the \
+        "{stage} is not stored: {why}, so its values are computed for the stages that read \
+         them and then dropped; to inspect it, set `cache: true` on {stage} and run the \
          pipeline again"
     )]
     NotStored {
         /// The stage.
         stage: String,
+        /// Who decided: the file or the storage policy.
+        why: &'static str,
     },
     /// The result is not cached (yet).
     #[error("{stage} ({who}) has no current result ({reason}); run the pipeline first")]
@@ -98,9 +100,16 @@ pub fn inspect(study: &Study, stage: &str, subject: Option<&str>) -> Result<Stri
             known: subjects.join(", "),
         });
     }
-    if !study.pipeline.stages[stage_index].cache {
+    let resolved = &study.pipeline.stages[stage_index];
+    if !resolved.cache {
         return Err(InspectError::NotStored {
             stage: stage.into(),
+            why: if resolved.unstored_by_policy {
+                "the storage policy hands its output to its one consumer a part at a time \
+                 (recomputing it costs less than storing it)"
+            } else {
+                "it has `cache: false`"
+            },
         });
     }
     let units: Vec<usize> = (0..study.units.len())

@@ -92,7 +92,7 @@ impl fmt::Display for Reason {
             Reason::NotCached => write!(f, "not cached"),
             Reason::Damaged { why } => write!(f, "cached object damaged: {why}"),
             Reason::NotStored { consumer } => {
-                write!(f, "not stored (cache: false); {consumer} needs it")
+                write!(f, "not kept in the cache; {consumer} needs it")
             }
         }
     }

@@ -80,6 +80,11 @@ pub struct DatasetSummary {
     /// What is read of each recording: for NWB files with several series, the first of them
     /// (`data.series`, which the written pipeline asks the user to confirm).
     pub choice: Choice,
+    /// The mains frequency the recordings' BIDS sidecars (`<stem>.json`) give as
+    /// `PowerLineFrequency`, when those that give one agree.
+    pub power_line: Option<f64>,
+    /// The dataset's name: `Name` of its BIDS `dataset_description.json`.
+    pub name: Option<String>,
 }
 
 /// Look at `data_dir` and write a commented pipeline to `out`, or print it on stdout when no
@@ -162,7 +167,37 @@ pub fn survey(data_dir: &Path) -> Result<DatasetSummary> {
     intervals.sort_by(f64::total_cmp);
     summary.min_interval = intervals.first().copied();
     summary.median_interval = intervals.get(intervals.len() / 2).copied();
+    summary.power_line = power_line(&summary.recordings);
+    summary.name = json_field(&data_dir.join("dataset_description.json"), "Name")
+        .and_then(|v| v.as_str().map(str::to_string))
+        .filter(|n| !n.trim().is_empty());
     Ok(summary)
+}
+
+/// A field of a JSON file, if the file exists, parses and has it.
+fn json_field(path: &Path, field: &str) -> Option<serde_json::Value> {
+    let text = std::fs::read(path).ok()?;
+    let value: serde_json::Value = serde_json::from_slice(&text).ok()?;
+    value.get(field).cloned()
+}
+
+/// The recordings' `PowerLineFrequency` (BIDS: the recording's `.json` sidecar, same stem), when
+/// at least one sidecar gives it and all that give it agree.
+fn power_line(recordings: &[PathBuf]) -> Option<f64> {
+    let mut found: Option<f64> = None;
+    for path in recordings {
+        let Some(f) = json_field(&path.with_extension("json"), "PowerLineFrequency")
+            .and_then(|v| v.as_f64())
+            .filter(|f| f.is_finite() && *f > 0.0)
+        else {
+            continue;
+        };
+        match found {
+            Some(g) if g != f => return None,
+            _ => found = Some(f),
+        }
+    }
+    found
 }
 
 /// What `new` says, on stderr and in the written file, when the dataset has no events.
@@ -351,7 +386,11 @@ pub fn fit_windows(min_interval: f64, rate: f64) -> Windows {
     }
     let buffer = 3.0 * morlet::sigma(low, cycles[0]);
     let crop = [-tidy(pre - buffer), tidy(post - buffer)];
-    let baseline = (crop[0] < -0.15).then(|| [crop[0], tidy(crop[0] + (-0.1 - crop[0]).min(0.4))]);
+    // The cropped time axis starts at its first sample (times are k / rate, DESIGN §4), which
+    // can lie after `crop[0]`; the baseline starts there or later, on the 0.05 s grid.
+    let first = (crop[0] * rate - 1e-9).ceil() / rate;
+    let start = -tidy(-first);
+    let baseline = (start < -0.15).then(|| [start, tidy(start + (-0.1 - start).min(0.4))]);
     Windows {
         epoch: [-pre, post],
         freqs: [low, high],
@@ -395,10 +434,11 @@ pub fn pipeline_text(s: &DatasetSummary, data_rel: &Path, data_dir: &Path) -> Re
         .context("no sampling rate found")?;
     let min_interval = s.min_interval.unwrap_or(4.0);
     let w = fit_windows(min_interval, rate);
-    let name = data_dir
+    let folder = data_dir
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_else(|| "study".into());
+    let name = s.name.clone().unwrap_or_else(|| folder.clone());
     let has_eeg = s
         .channels
         .iter()
@@ -451,7 +491,7 @@ pub fn pipeline_text(s: &DatasetSummary, data_rel: &Path, data_dir: &Path) -> Re
     let _ = writeln!(
         t,
         "output: results/{}   # relative to this file\n",
-        condition_name(&name)
+        condition_name(&folder)
     );
     let _ = writeln!(t, "stages:");
     let _ = writeln!(t, "  reref:");
@@ -459,17 +499,32 @@ pub fn pipeline_text(s: &DatasetSummary, data_rel: &Path, data_dir: &Path) -> Re
     let _ = writeln!(t, "    input: recordings");
     let _ = writeln!(
         t,
-        "    # average of the EEG channels; add `exclude: [..]` for bad channels"
+        "    # average of the data channels (EOG and other non-data channels pass through); add `exclude: [..]` for bad channels"
     );
+    if !has_eeg {
+        let _ = writeln!(t, "    # CONFIRM: these are not scalp EEG channels; for intracranial contacts a bipolar reference between neighbours (`method: bipolar`) is common practice");
+    }
     let _ = writeln!(t, "    params: {{ method: average }}");
     let harmonics = rate / 2.0 > 100.0;
     let _ = writeln!(t, "  line:");
     let _ = writeln!(t, "    op: notch");
     let _ = writeln!(t, "    input: reref");
-    let _ = writeln!(t, "    # CONFIRM the mains frequency: 50 Hz in Europe, Asia, Africa and Australia, 60 Hz in the Americas");
+    let mains = match s.power_line {
+        Some(f) => {
+            let _ = writeln!(
+                t,
+                "    # the mains frequency the recordings' sidecars give (PowerLineFrequency)"
+            );
+            f
+        }
+        None => {
+            let _ = writeln!(t, "    # CONFIRM the mains frequency: 50 Hz in Europe, Asia, Africa and Australia, 60 Hz in the Americas");
+            50.0
+        }
+    };
     let _ = writeln!(
         t,
-        "    params: {{ freqs: [50], harmonics: {harmonics}, q: 30 }}"
+        "    params: {{ freqs: [{mains}], harmonics: {harmonics}, q: 30 }}"
     );
     let _ = writeln!(t, "  trials:");
     let _ = writeln!(t, "    op: epoch");
@@ -493,6 +548,14 @@ pub fn pipeline_text(s: &DatasetSummary, data_rel: &Path, data_dir: &Path) -> Re
             quoted(label),
             count(*n, "event", "events")
         );
+    }
+    let (fewest, most) = (s.labels.values().min(), s.labels.values().max());
+    if let (Some(&fewest), Some(&most)) = (fewest, most) {
+        if most > fewest {
+            let _ = writeln!(t, "      # the labels have {fewest} to {most} events: plv, wpli and icoh depend on the trial count, so conditions of");
+            let _ = writeln!(t, "      # different counts are not comparable with them; keep the same number per condition (drawn at random, reproducibly):");
+            let _ = writeln!(t, "      equalize: {{ seed: 1 }}");
+        }
     }
     let _ = writeln!(t, "      # seconds around each event, buffer included; the shortest time between events is {min_interval:.2} s");
     let _ = writeln!(t, "      window: [{:.2}, {:.2}]", w.epoch[0], w.epoch[1]);
@@ -654,6 +717,12 @@ mod tests {
             b[0] >= w.crop[0] && b[1] <= -0.1 + 1e-9 && b[0] < b[1],
             "{b:?}"
         );
+        assert_eq!(b[0], w.crop[0]); // -0.6 s is a sample at 250 Hz
+                                     // At 128 Hz a crop from -0.3 s starts at sample -38/128 = -0.296875 s (times k/fs): the
+                                     // baseline starts after it, at -0.25 s.
+        let w = fit_windows(2.0, 128.0);
+        assert!((w.crop[0] + 0.3).abs() < 1e-12, "{w:?}");
+        assert_eq!(w.baseline, Some([-0.25, -0.1]), "{w:?}");
     }
 
     #[test]

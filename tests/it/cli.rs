@@ -161,6 +161,18 @@ fn inspect_refuses_an_unknown_stage_or_subject_as_a_command_line_mistake() {
     assert!(err.contains("`cache: false`"), "{err}");
     assert!(err.contains("set `cache: true` on tf"), "{err}");
     assert!(!err.contains("Unavailable"), "{err}");
+    // Without a `cache:` line the storage policy decided, and the message says so.
+    let text = fs::read_to_string(&pipeline).unwrap();
+    fs::write(&pipeline, text.replace("    cache: false\n", "")).unwrap();
+    let (code, err) = status_and_stderr(tmp.path(), &["inspect", "pipeline.yaml", "tf"]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(
+        err.contains("tf is not stored: the storage policy"),
+        "{err}"
+    );
+    assert!(!err.contains("`cache: false`"), "{err}");
+    assert!(err.contains("set `cache: true` on tf"), "{err}");
+    fs::write(&pipeline, text).unwrap();
 
     // A stored stage is described; a group stage needs no subject.
     let out = run_cli(tmp.path(), &["inspect", "pipeline.yaml", "group"]);
@@ -282,6 +294,66 @@ fn new_writes_yaml_that_ends_with_a_newline_on_stdout_and_in_a_file() {
     assert_success(&out, "new to a file");
     let text = fs::read_to_string(tmp.path().join("p.yaml")).unwrap();
     assert!(text.ends_with("export: true\n"), "{text}");
+    // No sidecar JSON: the mains frequency is a guess to confirm; equal counts: no equalising.
+    assert!(text.contains("CONFIRM the mains frequency"), "{text}");
+    assert!(!text.contains("equalize"), "{text}");
+}
+
+#[test]
+fn new_takes_the_mains_frequency_and_name_from_the_bids_sidecars_and_equalises_unequal_counts() {
+    let tmp = tempfile::tempdir().unwrap();
+    let data = tmp.path().join("data");
+    write_study(&data, &StudySpec::default());
+    // BIDS: `PowerLineFrequency` in each recording's `_eeg.json`, `Name` in
+    // dataset_description.json (BIDS specification 1.8, "Modality agnostic files").
+    for n in 1..=2 {
+        let json = recording_path(&data, n).with_extension("json");
+        fs::write(
+            &json,
+            r#"{ "PowerLineFrequency": 60, "SamplingFrequency": 128 }"#,
+        )
+        .unwrap();
+    }
+    fs::write(
+        data.join("dataset_description.json"),
+        r#"{ "Name": "face-house pilot", "BIDSVersion": "1.8.0" }"#,
+    )
+    .unwrap();
+    // One `cue-a` event fewer in subject 01: the labels' counts differ.
+    let events = with_suffix(&data.join("sub-01/eeg/sub-01_task-cue"), "_events.tsv");
+    let text = fs::read_to_string(&events).unwrap();
+    let first_a = text.lines().position(|l| l.ends_with("cue-a")).unwrap();
+    let kept: Vec<&str> = text
+        .lines()
+        .enumerate()
+        .filter(|(i, _)| *i != first_a)
+        .map(|(_, l)| l)
+        .collect();
+    fs::write(&events, kept.join("\n") + "\n").unwrap();
+
+    let out = run_cli(tmp.path(), &["new", "--data", "data", "--out", "p.yaml"]);
+    assert_success(&out, "new");
+    let text = fs::read_to_string(tmp.path().join("p.yaml")).unwrap();
+    assert!(text.contains("params: { freqs: [60],"), "{text}");
+    assert!(!text.contains("CONFIRM the mains frequency"), "{text}");
+    assert!(text.contains("name: \"face-house pilot\""), "{text}");
+    assert!(text.contains("output: results/data "), "{text}");
+    assert!(text.contains("      equalize: { seed: 1 }"), "{text}");
+    // The pipeline it wrote runs (equalize included).
+    assert_success(
+        &run_cli(tmp.path(), &["plan", "p.yaml"]),
+        "plan of the new pipeline",
+    );
+
+    // Sidecars that disagree: back to the guess to confirm.
+    fs::write(
+        recording_path(&data, 2).with_extension("json"),
+        r#"{ "PowerLineFrequency": 50 }"#,
+    )
+    .unwrap();
+    let out = run_cli(tmp.path(), &["new", "--data", "data"]);
+    assert_success(&out, "new");
+    assert!(stdout_of(&out).contains("CONFIRM the mains frequency"));
 }
 
 #[test]

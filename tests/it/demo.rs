@@ -609,7 +609,20 @@ fn new_writes_a_pipeline_that_fits_the_demo_data_and_plans() {
         "{summary}"
     );
     let text = std::fs::read_to_string(&file).unwrap();
-    assert!(text.contains("CONFIRM the mains frequency"), "{text}");
+    // The sidecars' PowerLineFrequency (50 Hz) and dataset_description.json's Name are used.
+    assert!(text.contains("params: { freqs: [50],"), "{text}");
+    assert!(
+        text.contains("sidecars give (PowerLineFrequency)"),
+        "{text}"
+    );
+    assert!(!text.contains("CONFIRM the mains frequency"), "{text}");
+    assert!(
+        text.contains("name: \"phasewise demo: simulated two-cue study\""),
+        "{text}"
+    );
+    assert!(text.contains("output: results/demo-data "), "{text}");
+    // 240 events of each label: nothing to equalise.
+    assert!(!text.contains("equalize"), "{text}");
     // The written pipeline is valid for this data: `plan` accepts it (every unit not cached yet).
     let plan = phasewise(&["plan", file.to_str().unwrap()], tmp.path());
     let stdout = String::from_utf8_lossy(&plan.stdout);

@@ -689,7 +689,7 @@ fn an_unstored_stage_is_recomputed_only_when_a_consumer_needs_it() {
 
     replace_in(&file, "params: { factor: 0.5 }", "params: { factor: 0.25 }");
     let lines = plan_lines(&p.plan(&Options::default()));
-    assert_eq!(lines["b/01"], "not stored (cache: false); c needs it");
+    assert_eq!(lines["b/01"], "not kept in the cache; c needs it");
     let second = p.run();
     assert_eq!(
         computed(&second),
