@@ -128,6 +128,9 @@ impl ResolvedPipeline {
     }
 }
 
+/// The UTF-8 byte order mark, which some editors write at the start of a text file.
+const BOM: char = '\u{feff}';
+
 /// Load, check and resolve a pipeline file with `--set` overrides against the given ops.
 pub fn load(
     file: &Path,
@@ -140,7 +143,9 @@ pub fn load(
     })?;
     let (parsed, mut problems) = raw::parse_overrides(overrides);
     let text = String::from_utf8_lossy(&bytes);
-    let root = yaml::parse(&text, |line, col| Origin::File { line, col }).map_err(|e| {
+    // A byte order mark that an editor put at the start is no part of the first key.
+    let text = text.strip_prefix(BOM).unwrap_or(&text);
+    let root = yaml::parse(text, |line, col| Origin::File { line, col }).map_err(|e| {
         PipelineError::Invalid(vec![Diagnostic {
             file: Some(file.to_path_buf()),
             line: e.line,
@@ -678,6 +683,26 @@ mod tests {
         assert!(check_output("../../etc").is_err());
         assert!(check_output("/tmp/x").is_err());
         assert!(check_output("a/..").is_err());
+    }
+
+    #[test]
+    fn a_byte_order_mark_at_the_start_of_the_file_is_ignored() {
+        let dir = tempfile::tempdir().unwrap();
+        let file = dir.path().join("bom.yaml");
+        let text = "# a comment first\nname: bom\ndata:\n  recordings: \"data/*.edf\"\n\
+                    output: results\nstages:\n  line:\n    op: notch\n    input: recordings\n\
+                    \x20   params: { freqs: [50] }\n";
+        std::fs::write(&file, format!("{BOM}{text}")).unwrap();
+        let ops = phasewise_stages::registry::all();
+        let loaded = load(&file, &[], &ops).unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(loaded.name, "bom");
+        // The file's hash is that of its bytes, the mark included.
+        let bytes = std::fs::read(&file).unwrap();
+        assert_eq!(loaded.file_blake3, blake3::hash(&bytes).to_hex().to_string());
+        // Without a leading comment the mark sat before the first key.
+        let bare = text.trim_start_matches("# a comment first\n");
+        std::fs::write(&file, format!("{BOM}{bare}")).unwrap();
+        assert_eq!(load(&file, &[], &ops).map(|p| p.name).ok().as_deref(), Some("bom"));
     }
 
     #[test]
