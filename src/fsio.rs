@@ -495,13 +495,14 @@ mod tests {
         let named = |target: &str, pid: &str| {
             let name = super::temp_name(target);
             let mark = super::process_mark().expect("Linux has a boot id and a PID namespace");
-            let with_pid = name.replacen(&format!("-{mark}-{ours}-"), &format!("-{mark}-{pid}-"), 1);
+            let with_pid =
+                name.replacen(&format!("-{mark}-{ours}-"), &format!("-{mark}-{pid}-"), 1);
             assert_ne!(with_pid, name, "{name} holds the mark, then the pid");
             with_pid
         };
         let dead_link = named("norm.npy", &dead);
         let dead_json = named("norm.json", &dead);
-        let live = named("tf.npy", &ours);
+        let live = super::temp_name("tf.npy");
         // The same dead pid on another machine, boot or container: only its age counts.
         let elsewhere = dead_link.replacen(super::process_mark().unwrap(), "0123456789ab", 1);
         // A temporary of an older form, which names no mark.
