@@ -47,6 +47,8 @@ pub struct ResolvedPipeline {
     pub choice: Choice,
     /// The output folder.
     pub output: PathBuf,
+    /// Line and column of `output:` in the file, for errors about it.
+    pub output_at: (usize, usize),
     /// Whether `run` also writes the HTML report.
     pub report: bool,
     /// The `report:` block, when one is written.
@@ -108,6 +110,17 @@ impl ResolvedPipeline {
             line: self.recordings_at.0,
             col: self.recordings_at.1,
             field: "data.recordings".into(),
+            message,
+        }
+    }
+
+    /// A diagnostic about the output folder (`output:`).
+    pub fn output_diagnostic(&self, message: String) -> Diagnostic {
+        Diagnostic {
+            file: Some(self.file.clone()),
+            line: self.output_at.0,
+            col: self.output_at.1,
+            field: "output".into(),
             message,
         }
     }
@@ -200,6 +213,10 @@ fn resolve(
         events: events?,
         choice: choice?,
         output: output?,
+        output_at: raw
+            .output
+            .as_ref()
+            .map_or((0, 0), |o| yaml::file_position(o.origin)),
         report: raw.report,
         report_spec: raw.report_spec.clone(),
         overrides: overrides.to_vec(),
@@ -452,6 +469,17 @@ fn finish_stages(
     ok.then_some(stages)
 }
 
+/// Stage names that would give an export the name of a file phasewise writes itself in the
+/// output folder: a table's column dictionary `<output>/<stage>.json` would be the manifest
+/// (`manifest.json`), and a table `<output>/<stage>.tsv` or its dictionary the sweep's table
+/// (`sweep.tsv`, `sweep.json`).
+pub const RESERVED_STAGE_NAMES: [&str; 2] = ["manifest", "sweep"];
+
+/// The longest stage name: a file system allows names of 255 bytes, and the longest name made
+/// from a stage's is the temporary name ([`crate::fsio::TEMP_NAME_EXTRA`] more bytes) of a Zarr
+/// store set aside, `old-<stage>.zarr`.
+pub const MAX_STAGE_NAME: usize = 255 - crate::fsio::TEMP_NAME_EXTRA - "old-.zarr".len();
+
 fn check_name(stage: &RawStage, c: &mut Collector<'_>) -> bool {
     let name = &stage.name.value;
     let safe = !name.is_empty()
@@ -473,6 +501,27 @@ fn check_name(stage: &RawStage, c: &mut Collector<'_>) -> bool {
             stage.name.origin,
             format!("stages.{name}"),
             format!("`{SOURCE}` names the data source; choose another stage name"),
+        );
+        return false;
+    } else if RESERVED_STAGE_NAMES.contains(&name.as_str()) {
+        c.at(
+            stage.name.origin,
+            format!("stages.{name}"),
+            format!(
+                "`{name}` would name an export like a file phasewise writes in the output folder \
+                 (`{name}.json`); choose another stage name"
+            ),
+        );
+        return false;
+    } else if name.len() > MAX_STAGE_NAME {
+        c.at(
+            stage.name.origin,
+            format!("stages.{name}"),
+            format!(
+                "a stage name becomes a file name: expected at most {MAX_STAGE_NAME} characters, \
+                 found {}",
+                name.len()
+            ),
         );
         return false;
     }
@@ -698,11 +747,17 @@ mod tests {
         assert_eq!(loaded.name, "bom");
         // The file's hash is that of its bytes, the mark included.
         let bytes = std::fs::read(&file).unwrap();
-        assert_eq!(loaded.file_blake3, blake3::hash(&bytes).to_hex().to_string());
+        assert_eq!(
+            loaded.file_blake3,
+            blake3::hash(&bytes).to_hex().to_string()
+        );
         // Without a leading comment the mark sat before the first key.
         let bare = text.trim_start_matches("# a comment first\n");
         std::fs::write(&file, format!("{BOM}{bare}")).unwrap();
-        assert_eq!(load(&file, &[], &ops).map(|p| p.name).ok().as_deref(), Some("bom"));
+        assert_eq!(
+            load(&file, &[], &ops).map(|p| p.name).ok().as_deref(),
+            Some("bom")
+        );
     }
 
     #[test]
