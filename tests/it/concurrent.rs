@@ -98,11 +98,16 @@ fn two_runs_of_one_pipeline_share_a_cache() {
         let temps: Vec<_> = reliability::files_under(&dir.join("results"))
             .into_iter()
             .filter(|f| {
-                f.file_name()
-                    .is_some_and(|n| n.to_string_lossy().starts_with(phasewise::fsio::TEMP_PREFIX))
+                f.file_name().is_some_and(|n| {
+                    n.to_string_lossy()
+                        .starts_with(phasewise::fsio::TEMP_PREFIX)
+                })
             })
             .collect();
-        assert!(temps.is_empty(), "round {round}: temporaries left in the output: {temps:?}");
+        assert!(
+            temps.is_empty(),
+            "round {round}: temporaries left in the output: {temps:?}"
+        );
         let store = store_problems(&dir.join("shared"), &[&p.solo.join("cache-a")], false);
         assert!(store.is_empty(), "round {round}: store damaged: {store:?}");
     }
