@@ -240,15 +240,21 @@ pub fn link_then_rename(source: &File, source_path: &Path, path: &Path) -> std::
     source.sync_all()?;
     let dir = path.parent().unwrap_or(Path::new("."));
     std::fs::create_dir_all(dir)?;
-    let temp = dir.join(format!(
-        "{TEMP_PREFIX}{}-{}-link",
-        std::process::id(),
-        TEMP_COUNTER.fetch_add(1, Ordering::Relaxed),
-    ));
+    let name = path.file_name().map(|n| n.to_string_lossy().into_owned());
+    let temp = dir.join(temp_name(&name.unwrap_or_default()));
     std::fs::hard_link(source_path, &temp)?;
     std::fs::rename(&temp, path).inspect_err(|_| {
         let _ = std::fs::remove_file(&temp);
     })?;
+    // When `path` already is a name of the same file (an earlier export of this object, or one
+    // a concurrent run just made), rename(2) does nothing and succeeds (POSIX: "If the old
+    // argument and the new argument resolve to ... the same existing file, rename() shall
+    // return successfully and perform no other action"): the temporary name is still there.
+    if let Err(e) = std::fs::remove_file(&temp) {
+        if e.kind() != std::io::ErrorKind::NotFound {
+            tracing::debug!(temp = %temp.display(), "leftover link not removed: {e}");
+        }
+    }
     if let Ok(d) = File::open(dir) {
         let _ = d.sync_all();
     }
@@ -311,18 +317,88 @@ fn replace_via_temp<T, E>(
 /// host cannot be told from a dead one by anything but age (its pid means nothing here).
 pub const TEMP_GRACE: std::time::Duration = std::time::Duration::from_secs(3600);
 
-/// Remove temporary files in `dir` that have not been modified for [`TEMP_GRACE`]: leftovers of
-/// killed runs. Age is the only test: a temporary file of a live writer on another host (whose
-/// pid may well be a live or dead pid here) is never taken for dead while it is being written.
+/// Remove the temporary files in `dir` that are leftovers of killed runs ([`is_leftover`]).
 pub fn remove_stale_temps(dir: &Path) {
     let Ok(entries) = std::fs::read_dir(dir) else {
         return;
     };
     for entry in entries.flatten() {
-        if entry.file_name().to_string_lossy().starts_with(TEMP_PREFIX) && is_stale(&entry.path()) {
+        if entry.file_name().to_string_lossy().starts_with(TEMP_PREFIX)
+            && is_leftover(&entry.path())
+        {
             let _ = std::fs::remove_file(entry.path());
         }
     }
+}
+
+/// True when the temporary file (or folder) at `path` is the leftover of a writer that is gone:
+/// its name ([`temp_name`]) says a process of this machine's boot and PID namespace
+/// ([`process_mark`]) made it and no process of that pid lives, or it has not been modified for
+/// [`TEMP_GRACE`] ([`is_stale`]). A temporary of a writer on another host, in another container
+/// or of a name that says nothing (another temporary-file maker's) goes by age alone: its pid
+/// means nothing here, so it is never taken for dead while it is being written.
+pub fn is_leftover(path: &Path) -> bool {
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let writer_gone = match (writer_of(&name), process_mark()) {
+        (Some((mark, pid)), Some(ours)) if mark == ours => !pid_lives(pid),
+        _ => false,
+    };
+    writer_gone || is_stale(path)
+}
+
+/// The process mark and pid that a [`temp_name`] holds (`None` for another form of name).
+fn writer_of(name: &str) -> Option<(&str, i32)> {
+    let mut fields = name.strip_prefix(TEMP_PREFIX)?.splitn(4, '-');
+    let (_host, mark, pid) = (fields.next()?, fields.next()?, fields.next()?);
+    let pid: i32 = pid.parse().ok()?;
+    (pid > 0 && mark.len() == MARK_LEN).then_some((mark, pid))
+}
+
+/// Whether a process of this pid lives in this PID namespace (`kill(pid, 0)`: only "no such
+/// process" says it does not; a process of another user, or any other answer, counts as alive).
+fn pid_lives(pid: i32) -> bool {
+    #[cfg(unix)]
+    {
+        // SAFETY: signal 0 sends nothing; it only asks whether the process exists.
+        let rc = unsafe { libc::kill(pid, 0) };
+        rc == 0 || std::io::Error::last_os_error().raw_os_error() != Some(libc::ESRCH)
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = pid;
+        true
+    }
+}
+
+/// Hex digits of a [`process_mark`].
+const MARK_LEN: usize = 12;
+
+/// What tells this process's pids apart from those of every other machine, boot and container:
+/// the first [`MARK_LEN`] hex digits of the blake3 of the kernel's boot id
+/// (`/proc/sys/kernel/random/boot_id`, new at every boot of every machine) and of the device and
+/// inode of this process's PID namespace (`/proc/self/ns/pid`). Two processes with the same
+/// mark see the same pids, so one can ask whether the other's pid lives. `None` where either is
+/// unreadable (not Linux, no /proc): then pids are never compared ([`is_leftover`]).
+fn process_mark() -> Option<&'static str> {
+    use std::sync::OnceLock;
+    static MARK: OnceLock<Option<String>> = OnceLock::new();
+    MARK.get_or_init(|| {
+        #[cfg(target_os = "linux")]
+        {
+            use std::os::unix::fs::MetadataExt;
+            let boot = std::fs::read_to_string("/proc/sys/kernel/random/boot_id").ok()?;
+            let namespace = std::fs::metadata("/proc/self/ns/pid").ok()?;
+            let text = format!("{}\n{}:{}", boot.trim(), namespace.dev(), namespace.ino());
+            let hex = blake3::hash(text.as_bytes()).to_hex();
+            Some(hex[..MARK_LEN].to_string())
+        }
+        #[cfg(not(target_os = "linux"))]
+        None
+    })
+    .as_deref()
 }
 
 /// True when the file at `path` was last modified more than [`TEMP_GRACE`] ago.
@@ -346,10 +422,21 @@ pub fn host_name() -> String {
     }
 }
 
-/// The name of a new temporary file for `target`: [`TEMP_PREFIX`], the host, the pid, a random
-/// number and a counter, then the target's name. Host and pid tell apart writers that share a
-/// folder over a network filesystem; the random number those that share both (two containers or
-/// PID namespaces with the same host name); the counter the writes of one process.
+/// Longest host name a [`temp_name`] holds (Linux's `HOST_NAME_MAX`), so that the name's length
+/// is bounded by its target's ([`TEMP_NAME_EXTRA`]).
+const TEMP_HOST_MAX: usize = 64;
+
+/// How many bytes a [`temp_name`] adds at most to its target's name: the prefix, the host, the
+/// process mark, a pid (at most 10 digits), the random number, the counter (at most 20 digits)
+/// and five dashes.
+pub const TEMP_NAME_EXTRA: usize = TEMP_PREFIX.len() + TEMP_HOST_MAX + MARK_LEN + 10 + 16 + 20 + 5;
+
+/// The name of a new temporary file for `target`: [`TEMP_PREFIX`], the host, the process mark,
+/// the pid, a random number and a counter, then the target's name. Host and pid tell apart
+/// writers that share a folder over a network filesystem; the random number those that share
+/// both (two containers or PID namespaces with the same host name); the counter the writes of
+/// one process. The mark ([`process_mark`]; `0` where there is none) says whose pids the pid is,
+/// so that the leftover of a writer that died is known at once ([`is_leftover`]).
 pub(crate) fn temp_name(target: &str) -> String {
     use std::hash::{BuildHasher, Hasher};
     use std::sync::OnceLock;
@@ -364,6 +451,7 @@ pub(crate) fn temp_name(target: &str) -> String {
                     '_'
                 }
             })
+            .take(TEMP_HOST_MAX)
             .collect()
     });
     // A hasher with the process's random keys (std seeds them from the OS), fed the counter:
@@ -373,7 +461,8 @@ pub(crate) fn temp_name(target: &str) -> String {
     hasher.write_u64(n);
     hasher.write_u32(std::process::id());
     format!(
-        "{TEMP_PREFIX}{host}-{}-{:016x}-{n}-{target}",
+        "{TEMP_PREFIX}{host}-{}-{}-{:016x}-{n}-{target}",
+        process_mark().unwrap_or("0"),
         std::process::id(),
         hasher.finish()
     )
@@ -383,6 +472,85 @@ pub(crate) fn temp_name(target: &str) -> String {
 mod tests {
     use super::{Destination, WriteReason};
     use std::io::{Error, ErrorKind};
+    use std::path::Path;
+
+    /// The names in `dir` that start with the temporary prefix.
+    fn temps_in(dir: &Path) -> Vec<String> {
+        let mut names: Vec<String> = std::fs::read_dir(dir)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .filter(|n| n.starts_with(super::TEMP_PREFIX))
+            .collect();
+        names.sort();
+        names
+    }
+
+    #[test]
+    #[cfg(unix)]
+    fn renaming_a_link_over_another_name_of_its_file_leaves_no_temporary() {
+        use std::os::unix::fs::MetadataExt;
+        let dir = tempfile::tempdir().unwrap();
+        let object = dir.path().join("object.npy");
+        std::fs::write(&object, b"values").unwrap();
+        let out = dir.path().join("out");
+        let target = out.join("norm.npy");
+        let source = std::fs::File::open(&object).unwrap();
+        super::link_then_rename(&source, &object, &target).unwrap();
+        // The second export finds `target` already a name of the object: rename(2) does nothing.
+        super::link_then_rename(&source, &object, &target).unwrap();
+        assert_eq!(temps_in(&out), Vec::<String>::new());
+        let meta = std::fs::metadata(&object).unwrap();
+        assert_eq!(meta.nlink(), 2, "the object and its export, nothing else");
+        assert_eq!(std::fs::metadata(&target).unwrap().ino(), meta.ino());
+    }
+
+    #[test]
+    #[cfg(target_os = "linux")]
+    fn the_sweep_removes_a_dead_writers_temporaries_at_once_and_no_live_ones() {
+        let dir = tempfile::tempdir().unwrap();
+        let ours = std::process::id().to_string();
+        // A pid that was alive a moment ago and is not any more.
+        let mut child = std::process::Command::new("true").spawn().unwrap();
+        let dead = child.id().to_string();
+        child.wait().unwrap();
+        let named = |target: &str, pid: &str| {
+            let name = super::temp_name(target);
+            let mark = super::process_mark().expect("Linux has a boot id and a PID namespace");
+            let with_pid =
+                name.replacen(&format!("-{mark}-{ours}-"), &format!("-{mark}-{pid}-"), 1);
+            assert_ne!(with_pid, name, "{name} holds the mark, then the pid");
+            with_pid
+        };
+        let dead_link = named("norm.npy", &dead);
+        let dead_json = named("norm.json", &dead);
+        let live = super::temp_name("tf.npy");
+        // The same dead pid on another machine, boot or container: only its age counts.
+        let elsewhere = dead_link.replacen(super::process_mark().unwrap(), "0123456789ab", 1);
+        // A temporary of an older form, which names no mark.
+        let old_form = format!("{}{dead}-0-link", super::TEMP_PREFIX);
+        for name in [&dead_link, &dead_json, &live, &elsewhere, &old_form] {
+            std::fs::write(dir.path().join(name), b"x").unwrap();
+        }
+        super::remove_stale_temps(dir.path());
+        let mut kept = vec![live, elsewhere, old_form];
+        kept.sort();
+        assert_eq!(temps_in(dir.path()), kept);
+    }
+
+    #[test]
+    fn a_temporary_name_tells_its_mark_and_pid() {
+        let name = super::temp_name("sub-01_norm.npy");
+        let mark = super::process_mark().unwrap_or("0");
+        let pid = std::process::id() as i32;
+        let found = super::writer_of(&name);
+        match super::process_mark() {
+            Some(_) => assert_eq!(found, Some((mark, pid))),
+            None => assert_eq!(found, None, "no mark: pids are never compared"),
+        }
+        assert_eq!(super::writer_of(".tmp-abc.npy"), None);
+        assert_eq!(super::writer_of(".tmp-23902-0-link"), None);
+        assert!(name.len() <= "sub-01_norm.npy".len() + super::TEMP_NAME_EXTRA);
+    }
 
     #[test]
     fn a_full_disk_or_quota_says_what_frees_room_there_and_other_failures_do_not() {

@@ -8,7 +8,7 @@
 use std::collections::BTreeSet;
 use std::path::{Path, PathBuf};
 
-use crate::fsio::{is_stale, TEMP_PREFIX};
+use crate::fsio::{is_leftover, TEMP_PREFIX};
 use crate::manifest;
 use crate::store::Store;
 
@@ -69,7 +69,7 @@ pub fn prune(store: &Store, keep: &BTreeSet<String>, dry_run: bool) -> PruneRepo
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default();
         let remove = if name.starts_with(TEMP_PREFIX) {
-            is_stale(&file)
+            is_leftover(&file)
         } else {
             let key = name.split('.').next().unwrap_or_default();
             let keep_it = keep.contains(key);

@@ -70,7 +70,22 @@ pub fn open(file: &Path, options: &Options, env: Env<'_>) -> Result<Study, RunEr
     if let Some(root) = &options.data {
         pipeline.recordings = crate::sources::relocate_glob(&pipeline.recordings, root);
     }
-    let store = Store::new(cache_dir(&pipeline, options.cache.as_deref()));
+    let cache = cache_dir(&pipeline, options.cache.as_deref());
+    if cache.exists() && !cache.is_dir() {
+        return Err(RunError::Pipeline(pipeline::PipelineError::Invalid(vec![
+            pipeline::Diagnostic {
+                file: None,
+                line: 0,
+                col: 0,
+                field: "--cache".into(),
+                message: format!(
+                    "{} is a file; expected the cache's folder (made when missing)",
+                    cache.display()
+                ),
+            },
+        ])));
+    }
+    let store = Store::new(cache);
     let hasher = Hasher::with_records(store.root());
     let subjects: Vec<String> = options
         .subjects

@@ -167,6 +167,7 @@ impl Study {
                 return Err(RunError::Pipeline(PipelineError::Invalid(vec![d])));
             }
         };
+        check_output_folder(&pipeline, &all, store.root())?;
         let sources = select(all, selection)?;
         let mut source_keys = Vec::new();
         let mut source_files = Vec::new();
@@ -667,4 +668,75 @@ fn select(all: Vec<Source>, selection: &[String]) -> Result<Vec<Source>, RunErro
         .into_iter()
         .filter(|s| selection.contains(&s.subject))
         .collect())
+}
+
+/// Refuse an output folder that a run would write into what it reads or keeps: the cache
+/// folder or a folder inside it (an export could take the name of a cache file, and the cache's
+/// housekeeping is no place for results), or a folder holding a recording or a sidecar of the
+/// study (an export named like one — a stage `sub-01_task-cue_events` exports
+/// `sub-01_task-cue_events.tsv` — would replace it). Checked against every subject's files,
+/// whatever `--subject` selects. A cache inside the output folder is accepted: every file
+/// phasewise writes there has a name of its own (`manifest.json`, `<stage>.tsv`/`.json`, the
+/// `<subject>/` and `group/` folders), none of which a cache folder is.
+fn check_output_folder(
+    pipeline: &ResolvedPipeline,
+    sources: &[Source],
+    cache: &Path,
+) -> Result<(), RunError> {
+    let output = resolved(&pipeline.output);
+    let cache_resolved = resolved(cache);
+    let refuse = |message: String| {
+        RunError::Pipeline(PipelineError::Invalid(vec![
+            pipeline.output_diagnostic(message)
+        ]))
+    };
+    if output.starts_with(&cache_resolved) {
+        let what = if output == cache_resolved {
+            "is"
+        } else {
+            "is inside"
+        };
+        return Err(refuse(format!(
+            "the output folder `{}` {what} the cache `{}`; expected a folder of its own outside \
+             the cache",
+            crate::paths::clean(&pipeline.output).display(),
+            cache.display()
+        )));
+    }
+    for source in sources {
+        for (_, file) in source.files() {
+            if resolved(file).starts_with(&output) {
+                return Err(refuse(format!(
+                    "the output folder `{}` holds `{}`, which the study reads, and an export could \
+                     replace it; expected a folder that holds no recording or sidecar (e.g. \
+                     derivatives/phasewise)",
+                    crate::paths::clean(&pipeline.output).display(),
+                    relative_to(file, &pipeline.dir)
+                        .unwrap_or_else(|| file.to_path_buf())
+                        .display()
+                )));
+            }
+        }
+    }
+    Ok(())
+}
+
+/// `path` made absolute with its symbolic links followed as far as it exists (the rest, not
+/// yet created, appended as written), so that two names of one folder compare equal.
+fn resolved(path: &Path) -> PathBuf {
+    let absolute = crate::paths::normalize(path);
+    let mut existing = absolute.as_path();
+    let mut missing = Vec::new();
+    loop {
+        if let Ok(real) = existing.canonicalize() {
+            return missing.iter().rev().fold(real, |p, part| p.join(part));
+        }
+        match (existing.parent(), existing.file_name()) {
+            (Some(parent), Some(name)) => {
+                missing.push(name.to_os_string());
+                existing = parent;
+            }
+            _ => return absolute,
+        }
+    }
 }

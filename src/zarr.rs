@@ -33,7 +33,7 @@ use zarrs::array::{data_type, ArrayBuilder};
 use zarrs::filesystem::FilesystemStore;
 use zarrs::group::GroupBuilder;
 
-use crate::fsio::{is_stale, temp_name, TEMP_PREFIX};
+use crate::fsio::{is_leftover, temp_name, TEMP_PREFIX};
 use crate::output::{self, ExportError, ExportFrom, ExportTarget, OutputError};
 use crate::store::{Damage, ObjectRecord, Store};
 
@@ -472,7 +472,7 @@ fn remove_stale_temp_stores(dir: &Path) {
         let is_dir = entry.file_type().is_ok_and(|t| t.is_dir());
         if is_dir
             && entry.file_name().to_string_lossy().starts_with(TEMP_PREFIX)
-            && is_stale(&entry.path())
+            && is_leftover(&entry.path())
         {
             let _ = std::fs::remove_dir_all(entry.path());
         }

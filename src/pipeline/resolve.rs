@@ -47,6 +47,8 @@ pub struct ResolvedPipeline {
     pub choice: Choice,
     /// The output folder.
     pub output: PathBuf,
+    /// Line and column of `output:` in the file, for errors about it.
+    pub output_at: (usize, usize),
     /// Whether `run` also writes the HTML report.
     pub report: bool,
     /// The `report:` block, when one is written.
@@ -112,6 +114,17 @@ impl ResolvedPipeline {
         }
     }
 
+    /// A diagnostic about the output folder (`output:`).
+    pub fn output_diagnostic(&self, message: String) -> Diagnostic {
+        Diagnostic {
+            file: Some(self.file.clone()),
+            line: self.output_at.0,
+            col: self.output_at.1,
+            field: "output".into(),
+            message,
+        }
+    }
+
     /// A diagnostic for an op's error about stage `stage`, pointing at the param's line.
     pub fn stage_diagnostic(&self, stage: usize, error: &StageError) -> Diagnostic {
         let overrides: Vec<Override> = raw::parse_overrides(&self.overrides).0;
@@ -128,6 +141,9 @@ impl ResolvedPipeline {
     }
 }
 
+/// The UTF-8 byte order mark, which some editors write at the start of a text file.
+const BOM: char = '\u{feff}';
+
 /// Load, check and resolve a pipeline file with `--set` overrides against the given ops.
 pub fn load(
     file: &Path,
@@ -140,7 +156,9 @@ pub fn load(
     })?;
     let (parsed, mut problems) = raw::parse_overrides(overrides);
     let text = String::from_utf8_lossy(&bytes);
-    let root = yaml::parse(&text, |line, col| Origin::File { line, col }).map_err(|e| {
+    // A byte order mark that an editor put at the start is no part of the first key.
+    let text = text.strip_prefix(BOM).unwrap_or(&text);
+    let root = yaml::parse(text, |line, col| Origin::File { line, col }).map_err(|e| {
         PipelineError::Invalid(vec![Diagnostic {
             file: Some(file.to_path_buf()),
             line: e.line,
@@ -195,6 +213,10 @@ fn resolve(
         events: events?,
         choice: choice?,
         output: output?,
+        output_at: raw
+            .output
+            .as_ref()
+            .map_or((0, 0), |o| yaml::file_position(o.origin)),
         report: raw.report,
         report_spec: raw.report_spec.clone(),
         overrides: overrides.to_vec(),
@@ -447,6 +469,17 @@ fn finish_stages(
     ok.then_some(stages)
 }
 
+/// Stage names that would give an export the name of a file phasewise writes itself in the
+/// output folder: a table's column dictionary `<output>/<stage>.json` would be the manifest
+/// (`manifest.json`), and a table `<output>/<stage>.tsv` or its dictionary the sweep's table
+/// (`sweep.tsv`, `sweep.json`).
+pub const RESERVED_STAGE_NAMES: [&str; 2] = ["manifest", "sweep"];
+
+/// The longest stage name: a file system allows names of 255 bytes, and the longest name made
+/// from a stage's is the temporary name ([`crate::fsio::TEMP_NAME_EXTRA`] more bytes) of a Zarr
+/// store set aside, `old-<stage>.zarr`.
+pub const MAX_STAGE_NAME: usize = 255 - crate::fsio::TEMP_NAME_EXTRA - "old-.zarr".len();
+
 fn check_name(stage: &RawStage, c: &mut Collector<'_>) -> bool {
     let name = &stage.name.value;
     let safe = !name.is_empty()
@@ -468,6 +501,27 @@ fn check_name(stage: &RawStage, c: &mut Collector<'_>) -> bool {
             stage.name.origin,
             format!("stages.{name}"),
             format!("`{SOURCE}` names the data source; choose another stage name"),
+        );
+        return false;
+    } else if RESERVED_STAGE_NAMES.contains(&name.as_str()) {
+        c.at(
+            stage.name.origin,
+            format!("stages.{name}"),
+            format!(
+                "`{name}` would name an export like a file phasewise writes in the output folder \
+                 (`{name}.json`); choose another stage name"
+            ),
+        );
+        return false;
+    } else if name.len() > MAX_STAGE_NAME {
+        c.at(
+            stage.name.origin,
+            format!("stages.{name}"),
+            format!(
+                "a stage name becomes a file name: expected at most {MAX_STAGE_NAME} characters, \
+                 found {}",
+                name.len()
+            ),
         );
         return false;
     }
@@ -678,6 +732,32 @@ mod tests {
         assert!(check_output("../../etc").is_err());
         assert!(check_output("/tmp/x").is_err());
         assert!(check_output("a/..").is_err());
+    }
+
+    #[test]
+    fn a_byte_order_mark_at_the_start_of_the_file_is_ignored() {
+        let dir = tempfile::tempdir().unwrap();
+        let file = dir.path().join("bom.yaml");
+        let text = "# a comment first\nname: bom\ndata:\n  recordings: \"data/*.edf\"\n\
+                    output: results\nstages:\n  line:\n    op: notch\n    input: recordings\n\
+                    \x20   params: { freqs: [50] }\n";
+        std::fs::write(&file, format!("{BOM}{text}")).unwrap();
+        let ops = phasewise_stages::registry::all();
+        let loaded = load(&file, &[], &ops).unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(loaded.name, "bom");
+        // The file's hash is that of its bytes, the mark included.
+        let bytes = std::fs::read(&file).unwrap();
+        assert_eq!(
+            loaded.file_blake3,
+            blake3::hash(&bytes).to_hex().to_string()
+        );
+        // Without a leading comment the mark sat before the first key.
+        let bare = text.trim_start_matches("# a comment first\n");
+        std::fs::write(&file, format!("{BOM}{bare}")).unwrap();
+        assert_eq!(
+            load(&file, &[], &ops).map(|p| p.name).ok().as_deref(),
+            Some("bom")
+        );
     }
 
     #[test]

@@ -132,6 +132,41 @@ fn every_bad_input_is_refused_with_a_message_naming_it() {
     );
 }
 
+/// The counterpart of the corpus's `output-*` cases: an output folder inside the dataset's
+/// folder that holds no recording (BIDS puts derivatives there), with the cache inside it, is
+/// accepted, and the run leaves every recording and sidecar as it was.
+#[test]
+fn an_output_folder_beside_the_recordings_with_the_cache_inside_it_is_accepted() {
+    let work = tempfile::tempdir().unwrap();
+    let data = work.path().join("data");
+    write_study(&data, &StudySpec::default());
+    let pipeline = reliability::base_pipeline()
+        .replace("output: results", "output: data/derivatives/phasewise");
+    fs::write(work.path().join("pipeline.yaml"), pipeline).unwrap();
+    let before: Vec<(PathBuf, Vec<u8>)> = reliability::files_under(&data)
+        .into_iter()
+        .map(|p| (p.clone(), fs::read(data.join(&p)).unwrap()))
+        .collect();
+    let args = [
+        "run",
+        "pipeline.yaml",
+        "--cache",
+        "data/derivatives/phasewise/cache",
+    ];
+    reliability::assert_success(&run_cli(work.path(), &args), "run");
+    let output = data.join("derivatives/phasewise");
+    assert!(output.join("manifest.json").is_file());
+    assert!(output.join("cache").is_dir());
+    for (path, bytes) in before {
+        assert_eq!(
+            fs::read(data.join(&path)).unwrap(),
+            bytes,
+            "{}",
+            path.display()
+        );
+    }
+}
+
 /// Every folder of the corpus with a `case.json`, sorted.
 fn case_dirs() -> Vec<PathBuf> {
     let mut dirs: Vec<PathBuf> = fs::read_dir(corpus_dir())

@@ -93,6 +93,21 @@ fn two_runs_of_one_pipeline_share_a_cache() {
         assert_success(&b, &format!("round {round}, second run"));
         let diff = output_differences(&output_arrays(&dir.join("results")), &want);
         assert!(diff.is_empty(), "round {round}: outputs differ: {diff:?}");
+        // Both runs export the same objects: a second link of one file, renamed over the
+        // first, must not stay behind under its temporary name.
+        let temps: Vec<_> = reliability::files_under(&dir.join("results"))
+            .into_iter()
+            .filter(|f| {
+                f.file_name().is_some_and(|n| {
+                    n.to_string_lossy()
+                        .starts_with(phasewise::fsio::TEMP_PREFIX)
+                })
+            })
+            .collect();
+        assert!(
+            temps.is_empty(),
+            "round {round}: temporaries left in the output: {temps:?}"
+        );
         let store = store_problems(&dir.join("shared"), &[&p.solo.join("cache-a")], false);
         assert!(store.is_empty(), "round {round}: store damaged: {store:?}");
     }
