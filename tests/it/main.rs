@@ -17,5 +17,6 @@ mod reliability;
 mod report;
 mod runner;
 mod slabs;
+mod stale;
 mod streaming;
 mod sweep;
