@@ -50,7 +50,11 @@ fn project() -> &'static Path {
                 );
             }
             let last = read_json(&root.join("results/manifest.json"));
-            assert_eq!(last["pipeline"]["overrides"], json!([]), "the original ran last");
+            assert_eq!(
+                last["pipeline"]["overrides"],
+                json!([]),
+                "the original ran last"
+            );
             tmp
         })
         .path()
@@ -181,7 +185,12 @@ fn plan_after_variants_tells_a_cascade_from_an_upstream_param_change() {
             )]),
         );
         assert_eq!(plan[&format!("norm/{s}")], upstream("sync"), "norm/{s}");
-        for stage in ["reref", "line", "trials", "tf"] {
+        // `cache: false`: its coefficients are recomputed for sync, which says so.
+        assert_eq!(
+            plan[&format!("tf/{s}")],
+            json!([{"kind": "not_stored", "consumer": "sync"}])
+        );
+        for stage in ["reref", "line", "trials"] {
             assert_eq!(plan[&format!("{stage}/{s}")], json!([]), "{stage}/{s}");
         }
     }
