@@ -493,9 +493,11 @@ fn plan(target: &Target, json: bool, env: Env<'_>) -> Result<i32> {
         let who = study.subject(u).unwrap_or("group");
         match &line.status {
             Status::Fresh => println!("fresh  {} [{who}]", line.stage),
-            Status::Stale(reason) => {
-                println!("stale  {} [{who}]: {reason}; runs {recipe}", line.stage)
-            }
+            Status::Stale(_) => println!(
+                "stale  {} [{who}]: {}; runs {recipe}",
+                line.stage,
+                line.status_line()
+            ),
         }
     }
     println!(

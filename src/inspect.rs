@@ -139,8 +139,8 @@ pub fn inspect(study: &Study, stage: &str, subject: Option<&str>) -> Result<Stri
         who: who.clone(),
         reason,
     };
-    if let Status::Stale(reason) = &plan.units[unit].status {
-        return Err(not_cached(reason.to_string()));
+    if let Status::Stale(_) = &plan.units[unit].status {
+        return Err(not_cached(plan.units[unit].status_line()));
     }
     let (array, _) = study.store.load(&study.keys[unit]).map_err(|e| {
         not_cached(match e {

@@ -1,12 +1,18 @@
 //! The run plan: for every unit, fresh or stale, and why — pure data, decided before anything runs.
 //!
-//! Freshness is decided by the key alone (is an intact object stored under it?). The *reason* for
-//! a stale unit is found by comparing its current fingerprint with the one last computed for the
-//! same stage × subject, field by field in a fixed order: op version, params (the first changed
-//! param in sorted order, old → new), inputs (a changed source file, or an upstream stage).
-//! Root causes are kept apart from cascades: a unit whose only difference is an input key of a
-//! stale upstream unit is [`Reason::Upstream`]. When nothing explains the difference (no record,
-//! pruned cache) the reason is [`Reason::NotCached`]. Every path fails toward recomputing.
+//! Freshness is decided by the key alone (is an intact object stored under it?). The *reasons*
+//! for a stale unit are found by comparing its current fingerprint with its [`Previous`] state:
+//! the unit as the last run of this pipeline recorded it (the output folder's manifest, else the
+//! last record of the same stage × subject, which every run refreshes, cached units included).
+//! Never the state of whichever variant last computed the unit: after a sweep or a `--set` run
+//! the cache holds several, and the user compares with the run they made last.
+//!
+//! The comparison lists every root cause, in a fixed order: op version, every changed param (in
+//! sorted order, old → new), then for a changed recording its changed reading settings and
+//! files. Root causes are kept apart from cascades: a unit whose only difference is an input key
+//! of a stale upstream unit is [`Reason::Upstream`] (one per such input stage). When nothing
+//! explains the difference (no record, pruned cache) the reason is [`Reason::NotCached`]. Every
+//! path fails toward recomputing.
 
 use std::fmt;
 
@@ -14,6 +20,7 @@ use serde::{Deserialize, Serialize};
 use serde_json::Value;
 
 use crate::key::{canonical_json, Fingerprint};
+use crate::manifest::UnitRecord;
 use crate::pipeline::SOURCE;
 
 /// Why a unit must run.
@@ -100,12 +107,43 @@ impl fmt::Display for Reason {
 
 /// Fresh or stale.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(tag = "status", rename_all = "snake_case")]
+#[serde(tag = "status", content = "reasons", rename_all = "snake_case")]
 pub enum Status {
     /// An intact result is cached under the unit's key.
     Fresh,
-    /// The unit must run.
-    Stale(Reason),
+    /// The unit must run, for these reasons (at least one; root causes, or else cascades).
+    Stale(Vec<Reason>),
+}
+
+/// A unit as the last run of its pipeline left it: what its reasons are found against.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Previous {
+    /// The op's version then.
+    pub op_version: u32,
+    /// The effective params then.
+    pub params: Value,
+    /// The keys of its inputs then, in order.
+    pub inputs: Vec<String>,
+}
+
+impl From<&Fingerprint> for Previous {
+    fn from(fingerprint: &Fingerprint) -> Previous {
+        Previous {
+            op_version: fingerprint.op_version,
+            params: fingerprint.params.clone(),
+            inputs: fingerprint.inputs.iter().map(|i| i.key.clone()).collect(),
+        }
+    }
+}
+
+impl From<&UnitRecord> for Previous {
+    fn from(unit: &UnitRecord) -> Previous {
+        Previous {
+            op_version: unit.op_version,
+            params: unit.params.clone(),
+            inputs: unit.inputs.clone(),
+        }
+    }
 }
 
 /// What the store holds for a unit's key.
@@ -130,13 +168,13 @@ pub struct UnitFacts {
     pub fingerprint: Fingerprint,
     /// What the store holds under its key.
     pub stored: Stored,
-    /// The fingerprint last computed for this stage × subject.
-    pub last: Option<Fingerprint>,
-    /// Files of the subject's recording whose hash differs from the last recorded one.
+    /// The unit as the last run of the pipeline left it, if known.
+    pub last: Option<Previous>,
+    /// Files of the subject's recording whose hash differs from the one of that run.
     pub changed_files: Vec<String>,
-    /// The first setting of how the subject's recording is read (`data.events`, ...) whose
-    /// value differs from the last recorded one: its name, old and new value (canonical JSON).
-    pub changed_reading: Option<(String, String, String)>,
+    /// The settings of how the subject's recording is read (`data.events`, ...) whose value
+    /// differs from the last recorded one: name, old and new value (canonical JSON), each.
+    pub changed_reading: Vec<(String, String, String)>,
     /// Indices (into the same list) of the units consuming this one.
     pub consumers: Vec<usize>,
     /// False for `cache: false` stages.
@@ -158,11 +196,15 @@ pub struct UnitPlan {
 }
 
 impl UnitPlan {
-    /// `fresh`, or the reason the unit is stale.
+    /// `fresh`, or the reasons the unit is stale (joined by `; `).
     pub fn status_line(&self) -> String {
         match &self.status {
             Status::Fresh => "fresh".into(),
-            Status::Stale(reason) => reason.to_string(),
+            Status::Stale(reasons) => reasons
+                .iter()
+                .map(ToString::to_string)
+                .collect::<Vec<_>>()
+                .join("; "),
         }
     }
 }
@@ -189,9 +231,9 @@ impl Plan {
                 .iter()
                 .find(|&&c| statuses[c] != Status::Fresh);
             if let Some(&c) = stale_consumer {
-                statuses[i] = Status::Stale(Reason::NotStored {
+                statuses[i] = Status::Stale(vec![Reason::NotStored {
                     consumer: facts[c].stage.clone(),
-                });
+                }]);
             }
         }
         let units = facts
@@ -255,14 +297,14 @@ impl Plan {
             .map(|(u, recipe)| {
                 let (status, reasons) = match &u.status {
                     Status::Fresh => ("fresh", Vec::new()),
-                    Status::Stale(reason) => ("stale", vec![reason.to_json()]),
+                    Status::Stale(reasons) => ("stale", reasons.iter().map(Reason::to_json).collect()),
                 };
                 serde_json::json!({
                     "stage": u.stage,
                     "subject": u.subject,
                     "key": u.key,
                     "status": status,
-                    "cascade": matches!(&u.status, Status::Stale(r) if r.is_cascade()),
+                    "cascade": matches!(&u.status, Status::Stale(r) if r.iter().all(Reason::is_cascade)),
                     "reasons": reasons,
                     "recipe": recipe,
                 })
@@ -280,58 +322,88 @@ impl Plan {
 fn own_status(facts: &UnitFacts) -> Status {
     match &facts.stored {
         Stored::Present => Status::Fresh,
-        Stored::Damaged(why) => Status::Stale(Reason::Damaged { why: why.clone() }),
+        Stored::Damaged(why) => Status::Stale(vec![Reason::Damaged { why: why.clone() }]),
         Stored::Absent => Status::Stale(explain(facts)),
     }
 }
 
-/// Why the current fingerprint differs from the last one, in cargo's fixed order of fields.
-pub fn explain(facts: &UnitFacts) -> Reason {
+/// Why the current fingerprint differs from the previous state: every root cause (op version,
+/// each changed param, the recording's changed reading settings and files), or, when there is
+/// none, the upstream stages whose keys changed; [`Reason::NotCached`] when nothing explains it.
+pub fn explain(facts: &UnitFacts) -> Vec<Reason> {
     let Some(last) = &facts.last else {
-        return Reason::NotCached;
+        return vec![Reason::NotCached];
     };
     let now = &facts.fingerprint;
+    let mut roots = Vec::new();
     if last.op_version != now.op_version {
-        return Reason::OpVersionChanged {
+        roots.push(Reason::OpVersionChanged {
             old: last.op_version,
             new: now.op_version,
-        };
+        });
     }
-    if let Some((name, old, new)) = first_difference("", &last.params, &now.params) {
-        return Reason::ParamChanged { name, old, new };
-    }
+    roots.extend(
+        differences("", &last.params, &now.params)
+            .into_iter()
+            .map(|(name, old, new)| Reason::ParamChanged { name, old, new }),
+    );
+    let mut upstream = Vec::new();
+    let mut recording = None;
     for (i, input) in now.inputs.iter().enumerate() {
-        let before = last.inputs.get(i);
-        if before.map(|b| &b.key) == Some(&input.key) {
+        if last.inputs.get(i) == Some(&input.key) {
             continue;
         }
         if input.stage == SOURCE {
-            if let Some((setting, old, new)) = facts.changed_reading.clone() {
-                return Reason::ReadingChanged { setting, old, new };
-            }
-            let path = facts.changed_files.first().cloned().unwrap_or_else(|| {
-                format!(
-                    "the recording of {}",
-                    input.subject.as_deref().unwrap_or("?")
-                )
-            });
-            return Reason::InputFileChanged { path };
+            recording.get_or_insert(input.subject.as_deref().unwrap_or("?"));
+            continue;
         }
-        return Reason::Upstream {
+        let reason = Reason::Upstream {
             stage: input.stage.clone(),
         };
+        if !upstream.contains(&reason) {
+            upstream.push(reason);
+        }
     }
-    Reason::NotCached
+    if let Some(subject) = recording {
+        let settings = facts.changed_reading.iter().cloned();
+        roots.extend(settings.map(|(setting, old, new)| Reason::ReadingChanged {
+            setting,
+            old,
+            new,
+        }));
+        let files = facts.changed_files.iter().cloned();
+        roots.extend(files.map(|path| Reason::InputFileChanged { path }));
+        if facts.changed_reading.is_empty() && facts.changed_files.is_empty() {
+            roots.push(Reason::InputFileChanged {
+                path: format!("the recording of {subject}"),
+            });
+        }
+    }
+    if !roots.is_empty() {
+        roots
+    } else if !upstream.is_empty() {
+        upstream
+    } else {
+        vec![Reason::NotCached]
+    }
 }
 
-/// The first leaf (in sorted key order) where two param trees differ.
-pub(crate) fn first_difference(
+/// Every leaf (in sorted key order) where two param trees differ: its dotted path, old and new
+/// value (canonical JSON; `absent` where it is not there). Lists are leaves.
+pub(crate) fn differences(path: &str, old: &Value, new: &Value) -> Vec<(String, String, String)> {
+    let mut found = Vec::new();
+    collect_differences(path, old, new, &mut found);
+    found
+}
+
+fn collect_differences(
     path: &str,
     old: &Value,
     new: &Value,
-) -> Option<(String, String, String)> {
+    found: &mut Vec<(String, String, String)>,
+) {
     if canonical_json(old) == canonical_json(new) {
-        return None;
+        return;
     }
     let join = |k: &str| {
         if path.is_empty() {
@@ -346,22 +418,18 @@ pub(crate) fn first_difference(
         keys.dedup();
         for k in keys {
             match (a.get(k), b.get(k)) {
-                (Some(x), Some(y)) => {
-                    if let Some(found) = first_difference(&join(k), x, y) {
-                        return Some(found);
-                    }
-                }
-                (x, y) => return Some((join(k), show(x), show(y))),
+                (Some(x), Some(y)) => collect_differences(&join(k), x, y, found),
+                (x, y) => found.push((join(k), show(x), show(y))),
             }
         }
-        return None;
+        return;
     }
     let name = if path.is_empty() {
         "(params)".to_string()
     } else {
         path.to_string()
     };
-    Some((name, canonical_json(old), canonical_json(new)))
+    found.push((name, canonical_json(old), canonical_json(new)));
 }
 
 fn show(value: Option<&Value>) -> String {
@@ -399,9 +467,9 @@ mod tests {
             subject: Some("01".into()),
             fingerprint: now,
             stored,
-            last,
+            last: last.as_ref().map(Previous::from),
             changed_files: vec![],
-            changed_reading: None,
+            changed_reading: vec![],
             consumers: vec![],
             cache: true,
         }
@@ -419,15 +487,15 @@ mod tests {
         ]);
         assert_eq!(
             plan.units[0].status,
-            Status::Stale(Reason::ParamChanged {
+            Status::Stale(vec![Reason::ParamChanged {
                 name: "cycles".into(),
                 old: "4".into(),
                 new: "6".into()
-            })
+            }])
         );
         assert_eq!(
             plan.units[1].status,
-            Status::Stale(Reason::Upstream { stage: "tf".into() })
+            Status::Stale(vec![Reason::Upstream { stage: "tf".into() }])
         );
         assert_eq!(plan.units[0].status_line(), "param cycles changed: 4 → 6");
     }
@@ -439,7 +507,7 @@ mod tests {
         newer.op_version = 2;
         assert_eq!(
             explain(&facts("s", newer, Some(last.clone()), Stored::Absent)),
-            Reason::OpVersionChanged { old: 1, new: 2 }
+            vec![Reason::OpVersionChanged { old: 1, new: 2 }]
         );
         let mut changed = facts(
             "s",
@@ -450,13 +518,13 @@ mod tests {
         changed.changed_files = vec!["sub-01/eeg/x.edf".into()];
         assert_eq!(
             explain(&changed),
-            Reason::InputFileChanged {
+            vec![Reason::InputFileChanged {
                 path: "sub-01/eeg/x.edf".into()
-            }
+            }]
         );
         assert_eq!(
             explain(&facts("s", last.clone(), None, Stored::Absent)),
-            Reason::NotCached
+            vec![Reason::NotCached]
         );
         let plan = Plan::decide(&[facts(
             "s",
@@ -466,7 +534,7 @@ mod tests {
         )]);
         assert_eq!(
             plan.units[0].status,
-            Status::Stale(Reason::Damaged { why: "x".into() })
+            Status::Stale(vec![Reason::Damaged { why: "x".into() }])
         );
     }
 
@@ -475,13 +543,76 @@ mod tests {
         let old = json!({"freqs": {"from": 3, "to": 30}});
         let new = json!({"freqs": {"from": 3, "to": 40}, "stride": 2});
         assert_eq!(
-            first_difference("", &old, &new),
-            Some(("freqs.to".into(), "30".into(), "40".into()))
+            differences("", &old, &new),
+            vec![
+                ("freqs.to".into(), "30".into(), "40".into()),
+                ("stride".into(), "absent".into(), "2".into())
+            ]
         );
         let new = json!({"freqs": {"from": 3.0, "to": 30}, "stride": 2});
         assert_eq!(
-            first_difference("", &old, &new),
-            Some(("stride".into(), "absent".into(), "2".into()))
+            differences("", &old, &new),
+            vec![("stride".into(), "absent".into(), "2".into())]
+        );
+        assert_eq!(differences("", &old, &old), vec![]);
+    }
+
+    #[test]
+    fn every_changed_param_is_a_reason_and_a_cascade_is_told_only_without_one() {
+        let last = fp(json!({"method": "average"}), "r", "line");
+        let now = fp(
+            json!({"method": "channels", "channels": ["O1"]}),
+            "r2",
+            "line",
+        );
+        let both = vec![
+            Reason::ParamChanged {
+                name: "channels".into(),
+                old: "absent".into(),
+                new: "[\"O1\"]".into(),
+            },
+            Reason::ParamChanged {
+                name: "method".into(),
+                old: "\"average\"".into(),
+                new: "\"channels\"".into(),
+            },
+        ];
+        assert_eq!(
+            explain(&facts("s", now, Some(last.clone()), Stored::Absent)),
+            both
+        );
+        let cascade = fp(json!({"method": "average"}), "r2", "line");
+        let plan = Plan::decide(&[facts("s", cascade, Some(last), Stored::Absent)]);
+        assert_eq!(
+            plan.units[0].status,
+            Status::Stale(vec![Reason::Upstream {
+                stage: "line".into()
+            }])
+        );
+        assert_eq!(plan.units[0].status_line(), "upstream line changed");
+        let json = Plan {
+            units: vec![UnitPlan {
+                stage: "s".into(),
+                subject: None,
+                key: "k".into(),
+                status: Status::Stale(both),
+            }],
+        }
+        .to_json(&[crate::recipe::Recipe {
+            how: crate::recipe::How::Whole,
+            stored: true,
+            prepared_for: vec![],
+            prepared_for_units: vec![],
+            unstored_by_policy: false,
+            provisional: false,
+            fallback: None,
+        }]);
+        assert_eq!(
+            json["units"][0]["reasons"],
+            json!([
+                {"kind": "param", "param": "channels", "old": null, "new": ["O1"]},
+                {"kind": "param", "param": "method", "old": "average", "new": "channels"}
+            ])
         );
     }
 
@@ -495,9 +626,9 @@ mod tests {
         let plan = Plan::decide(&[first, facts("b", b, None, Stored::Absent)]);
         assert_eq!(
             plan.units[0].status,
-            Status::Stale(Reason::NotStored {
+            Status::Stale(vec![Reason::NotStored {
                 consumer: "b".into()
-            })
+            }])
         );
     }
 }

@@ -146,6 +146,7 @@ pub fn run(file: &Path, options: &Options, env: Env<'_>) -> Result<RunSummary, R
         let outcome = executor.execute(job)?;
         bar.finish_and_clear();
         study.remember_sources();
+        study.remember_units();
         finish(&study, &outcome, &started)
     })
 }

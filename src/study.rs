@@ -18,9 +18,10 @@ use serde_json::json;
 
 use crate::graph::{self, StageShape, Unit, UnitInput};
 use crate::key::{Fingerprint, InputKey};
+use crate::manifest::Manifest;
 use crate::paths::relative_to;
 use crate::pipeline::{Diagnostic, PipelineError, ResolvedPipeline, SOURCE};
-use crate::plan::{Plan, Stored, UnitFacts};
+use crate::plan::{Plan, Previous, Stored, UnitFacts};
 use crate::sources::{self, FileHash, Hasher, Reader, Source, SourceError};
 use crate::store::{last_id, Lookup, ObjectRecord, Store};
 
@@ -346,10 +347,51 @@ impl Study {
         }
     }
 
-    /// What the planner needs to know about every unit.
+    /// Remember every unit's fingerprint (after a successful run, cached units included) as the
+    /// last state of its stage × subject, so that a later plan explains against this run and not
+    /// against whichever variant computed a unit. Records already equal are not written again.
+    pub fn remember_units(&self) {
+        (0..self.units.len()).into_par_iter().for_each(|u| {
+            let id = self.last_id(u);
+            if self.store.last(&id).as_ref() != Some(&self.fingerprints[u]) {
+                self.store.set_last(&id, &self.fingerprints[u]);
+            }
+        });
+    }
+
+    /// The manifests of the last run of this pipeline in its output folder, most specific
+    /// first: the part of this `--subject` selection, then `manifest.json`. Manifests of another
+    /// pipeline, or that cannot be read, are left out (the last records explain instead).
+    fn previous_runs(&self) -> Vec<Manifest> {
+        let mut paths = vec![crate::manifest::path_for(
+            &self.pipeline.output,
+            &self.selection,
+        )];
+        if !self.selection.is_empty() {
+            paths.push(crate::manifest::path_for(&self.pipeline.output, &[]));
+        }
+        paths
+            .iter()
+            .filter_map(|path| crate::manifest::read(path).ok())
+            .filter(|m| m.pipeline.name == self.pipeline.name)
+            .collect()
+    }
+
+    /// What the planner needs to know about every unit. A unit's previous state is the one the
+    /// last run of this pipeline recorded: the output folder's manifest (DESIGN §6), else the
+    /// last record of its stage × subject; its changed files are those since that same run.
     pub fn facts(&self) -> Vec<UnitFacts> {
-        let changed: Vec<Vec<String>> = (0..self.sources.len())
+        let runs = self.previous_runs();
+        let since_record: Vec<Vec<String>> = (0..self.sources.len())
             .map(|s| self.changed_files(s))
+            .collect();
+        let since_run: Vec<Vec<Vec<String>>> = runs
+            .iter()
+            .map(|run| {
+                (0..self.sources.len())
+                    .map(|s| self.changed_files_since(s, run))
+                    .collect()
+            })
             .collect();
         let reading: Vec<_> = (0..self.sources.len())
             .map(|s| self.changed_reading(s))
@@ -361,26 +403,38 @@ impl Study {
                     Lookup::Absent => Stored::Absent,
                     Lookup::Damaged(why) => Stored::Damaged(why.to_string()),
                 };
-                let changed_files = self.units[u]
-                    .inputs
-                    .iter()
-                    .filter_map(|i| match i {
-                        UnitInput::Source(s) => Some(changed[*s].clone()),
+                let (stage, subject) = (self.stage_name(u), self.subject(u));
+                let recorded = runs.iter().enumerate().find_map(|(r, run)| {
+                    let unit = run
+                        .units
+                        .iter()
+                        .find(|x| x.stage == stage && x.subject.as_deref() == subject)?;
+                    Some((r, Previous::from(unit)))
+                });
+                let (last, changed) = match recorded {
+                    Some((r, previous)) => (Some(previous), &since_run[r]),
+                    None => (
+                        self.store
+                            .last(&self.last_id(u))
+                            .as_ref()
+                            .map(Previous::from),
+                        &since_record,
+                    ),
+                };
+                let sources = || {
+                    self.units[u].inputs.iter().filter_map(|i| match i {
+                        UnitInput::Source(s) => Some(*s),
                         UnitInput::Unit(_) => None,
                     })
-                    .flatten()
-                    .collect();
+                };
                 UnitFacts {
-                    stage: self.stage_name(u).to_string(),
-                    subject: self.subject(u).map(str::to_string),
+                    stage: stage.to_string(),
+                    subject: subject.map(str::to_string),
                     fingerprint: self.fingerprints[u].clone(),
                     stored,
-                    last: self.store.last(&self.last_id(u)),
-                    changed_files,
-                    changed_reading: self.units[u].inputs.iter().find_map(|i| match i {
-                        UnitInput::Source(s) => reading[*s].clone(),
-                        UnitInput::Unit(_) => None,
-                    }),
+                    last,
+                    changed_files: sources().flat_map(|s| changed[s].clone()).collect(),
+                    changed_reading: sources().flat_map(|s| reading[s].clone()).collect(),
                     consumers: self.consumers[u].clone(),
                     cache: self.pipeline.stages[self.units[u].stage].cache,
                 }
@@ -393,12 +447,34 @@ impl Study {
         Plan::decide(&self.facts())
     }
 
-    /// The first reading setting that differs from the one last remembered for `source` (none
-    /// when nothing was remembered, or by a version that did not remember settings).
-    fn changed_reading(&self, source: usize) -> Option<(String, String, String)> {
-        let last = self.store.last(&self.source_last_id(source))?;
-        let old = last.params.get("reading")?;
-        crate::plan::first_difference("", old, &self.reading())
+    /// The reading settings that differ from those last remembered for `source` (none when
+    /// nothing was remembered, or by a version that did not remember settings).
+    fn changed_reading(&self, source: usize) -> Vec<(String, String, String)> {
+        let Some(last) = self.store.last(&self.source_last_id(source)) else {
+            return Vec::new();
+        };
+        let Some(old) = last.params.get("reading") else {
+            return Vec::new();
+        };
+        crate::plan::differences("", old, &self.reading())
+    }
+
+    /// The files of `source` whose hash is not the one `run`'s manifest lists for their path
+    /// (or that it does not list), by the path the manifest uses.
+    fn changed_files_since(&self, source: usize, run: &Manifest) -> Vec<String> {
+        let listed: BTreeSet<(&str, &str)> = run
+            .inputs
+            .iter()
+            .map(|f| (f.path.as_str(), f.blake3.as_str()))
+            .collect();
+        let mut paths: Vec<String> = self.source_files[source]
+            .iter()
+            .map(|f| (self.display_path(&f.path), f.blake3.as_str()))
+            .filter(|(path, blake3)| !listed.contains(&(path.as_str(), *blake3)))
+            .map(|(path, _)| path)
+            .collect();
+        paths.sort();
+        paths
     }
 
     fn changed_files(&self, source: usize) -> Vec<String> {

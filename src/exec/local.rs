@@ -435,8 +435,12 @@ impl Worker<'_, '_> {
     /// Bring one unit up to date as its recipe says, and export it if asked. Returns the recipe
     /// it ran with: the one given, or `whole` when a slab run gave up.
     fn process(&mut self, u: usize, recipe: &Recipe) -> Result<Recipe, UnitFailure> {
-        if let Status::Stale(Reason::Damaged { why }) = &self.ctx.plan.units[u].status {
-            self.warn_damaged(u, why);
+        if let Status::Stale(reasons) = &self.ctx.plan.units[u].status {
+            for reason in reasons {
+                if let Reason::Damaged { why } = reason {
+                    self.warn_damaged(u, why);
+                }
+            }
         }
         let mut ran = recipe.clone();
         let mut prepared_here = false;

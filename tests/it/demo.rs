@@ -22,7 +22,7 @@ fn repo() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
 }
 
-fn phasewise(args: &[&str], dir: &Path) -> Output {
+pub(crate) fn phasewise(args: &[&str], dir: &Path) -> Output {
     let out = Command::new(env!("CARGO_BIN_EXE_phasewise"))
         .args(args)
         .current_dir(dir)
@@ -33,7 +33,7 @@ fn phasewise(args: &[&str], dir: &Path) -> Output {
     out
 }
 
-fn read_json(path: &Path) -> Value {
+pub(crate) fn read_json(path: &Path) -> Value {
     let text = std::fs::read_to_string(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
     serde_json::from_str(&text).unwrap_or_else(|e| panic!("{}: {e}", path.display()))
 }
@@ -650,7 +650,7 @@ fn new_writes_a_pipeline_that_fits_the_demo_data_and_plans() {
 /// The demo study's first `n` subjects in `root/<folder>/`: with `brainvision`, each EDF written
 /// as BrainVision by the tests' writer (IEEE_FLOAT_32 in µV) with its channels sidecar and no
 /// events sidecar, so that the events come from the markers; else the EDF and both sidecars.
-fn demo_subjects(root: &Path, folder: &str, n: usize, brainvision: bool) {
+pub(crate) fn demo_subjects(root: &Path, folder: &str, n: usize, brainvision: bool) {
     for s in 1..=n {
         let rel = format!("sub-{s:02}/eeg/sub-{s:02}_task-cue");
         let from = repo().join("demo-data").join(&rel);
@@ -669,7 +669,7 @@ fn demo_subjects(root: &Path, folder: &str, n: usize, brainvision: bool) {
 }
 
 /// The demo pipeline pointed at `recordings` with `events`, writing to `output`.
-fn demo_pipeline_for(recordings: &str, events: &str, output: &str) -> String {
+pub(crate) fn demo_pipeline_for(recordings: &str, events: &str, output: &str) -> String {
     let text = std::fs::read_to_string(repo().join("pipelines/demo.yaml")).unwrap();
     let replaced = text
         .replace(

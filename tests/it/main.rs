@@ -18,5 +18,6 @@ mod report;
 mod room;
 mod runner;
 mod slabs;
+mod stale;
 mod streaming;
 mod sweep;

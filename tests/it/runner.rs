@@ -867,14 +867,15 @@ fn switching_data_events_makes_the_recordings_units_stale_naming_it() {
     }
     assert_eq!(lines[&label("g", None)], "upstream c changed");
     let a = plan.units.iter().find(|u| u.stage == "a").unwrap();
-    let phasewise::plan::Status::Stale(reason) = &a.status else {
+    let phasewise::plan::Status::Stale(reasons) = &a.status else {
         panic!("a is fresh");
     };
+    let reasons: Vec<_> = reasons.iter().map(|r| r.to_json()).collect();
     assert_eq!(
-        reason.to_json(),
-        serde_json::json!({
+        reasons,
+        vec![serde_json::json!({
             "kind": "reading", "setting": "data.events", "old": "sidecar", "new": "annotations"
-        })
+        })]
     );
     let switched = p.run();
     assert_eq!(computed(&switched).len(), 7, "every unit runs again");
