@@ -891,7 +891,10 @@ mod tests {
         let want = blake3::hash(body.as_bytes()).to_hex().to_string();
         value["record_blake3"] = json!(want);
         let text = String::from_utf8(bytes.clone()).unwrap();
-        assert_eq!(text, format!("{body},\n  \"record_blake3\": \"{want}\"\n}}"));
+        assert_eq!(
+            text,
+            format!("{body},\n  \"record_blake3\": \"{want}\"\n}}")
+        );
         let parsed: serde_json::Value = serde_json::from_slice(&bytes).unwrap();
         assert_eq!(parsed, value);
     }

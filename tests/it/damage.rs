@@ -46,7 +46,10 @@ fn pristine() -> &'static Pristine {
         assert!(!outputs.is_empty(), "the undamaged run exported nothing");
         let group_key = unit_key(&manifest(&dir.join("results")), "group");
         let sidecars = sidecars(&dir.join("results"));
-        assert!(!sidecars.is_empty(), "the undamaged run exported no sidecar");
+        assert!(
+            !sidecars.is_empty(),
+            "the undamaged run exported no sidecar"
+        );
         Pristine {
             _root: root,
             dir,
@@ -69,8 +72,10 @@ fn sidecars(output: &Path) -> Vec<(PathBuf, Vec<u8>)> {
         .filter(|p| p.extension().and_then(|e| e.to_str()) == Some("json"))
         .filter(|p| !p.starts_with("manifest.json") && !p.starts_with("manifest.parts"))
         .filter(|p| {
-            !p.file_name()
-                .is_some_and(|n| n.to_string_lossy().starts_with(phasewise::fsio::TEMP_PREFIX))
+            !p.file_name().is_some_and(|n| {
+                n.to_string_lossy()
+                    .starts_with(phasewise::fsio::TEMP_PREFIX)
+            })
         })
         .map(|p| {
             let bytes = fs::read(output.join(&p)).expect("read sidecar");
@@ -343,14 +348,23 @@ fn a_flipped_coordinate_bit_in_a_record_is_recomputed() {
         &output_arrays(&dir.join("results")),
         &output_arrays(&clean.join("results")),
     );
-    assert!(diff.is_empty(), "outputs differ from the clean run's: {diff:?}");
+    assert!(
+        diff.is_empty(),
+        "outputs differ from the clean run's: {diff:?}"
+    );
     let diff = output_differences(
         &sidecars(&dir.join("results")),
         &sidecars(&clean.join("results")),
     );
-    assert!(diff.is_empty(), "sidecars differ from the clean run's: {diff:?}");
+    assert!(
+        diff.is_empty(),
+        "sidecars differ from the clean run's: {diff:?}"
+    );
     let left = store_problems(&cache, &[&clean.join("cache")], false);
-    assert!(left.is_empty(), "store differs from the clean run's: {left:?}");
+    assert!(
+        left.is_empty(),
+        "store differs from the clean run's: {left:?}"
+    );
 }
 
 /// Every record rewritten as the previous record format (version 2) wrote it: the same fields
@@ -372,8 +386,10 @@ fn records_of_the_previous_format_are_recomputed_once() {
         .collect();
     assert!(!records.is_empty(), "no records in the store");
     for path in &records {
-        let text = fs::read_to_string(&path).expect("read record");
-        let seal = text.rfind(",\n  \"record_blake3\": ").expect("a sealed record");
+        let text = fs::read_to_string(path).expect("read record");
+        let seal = text
+            .rfind(",\n  \"record_blake3\": ")
+            .expect("a sealed record");
         let old = format!("{}\n}}", &text[..seal]).replacen(
             "\"format_version\": 3,",
             "\"format_version\": 2,",
