@@ -3,6 +3,7 @@
 //! computed again and the reason shown as a warning (`damaged cache object recomputed: …`) or,
 //! in `plan`, as the unit's stale reason.
 
+use std::path::PathBuf;
 use std::sync::Arc;
 
 use phasewise_stages::StageError;
@@ -71,6 +72,27 @@ pub enum Damage {
     /// The record is JSON but not an object record (`format` is not `phasewise-object`).
     #[error("its record is not a phasewise object record")]
     NotARecord,
+    /// The record's bytes are not those its seal (its last field, `record_blake3`) was made
+    /// from: changed after it was written (a coordinate, a label, a note, the seal itself).
+    #[error(
+        "its record {} was changed after it was written (its blake3 is {found}, its \
+         `record_blake3` says {recorded})",
+        path.display()
+    )]
+    RecordAltered {
+        /// The record's file.
+        path: PathBuf,
+        /// The blake3 of the record's bytes before its seal.
+        found: String,
+        /// The record's `record_blake3`.
+        recorded: String,
+    },
+    /// A record of the current format version whose bytes do not end in its seal.
+    #[error("its record {} does not end in its `record_blake3` seal", path.display())]
+    RecordUnsealed {
+        /// The record's file.
+        path: PathBuf,
+    },
     /// The record lacks a field, has one of the wrong type, or a packed coordinate that does
     /// not unpack ([`super::record_layout::PackedCoordError`], named in serde's message).
     #[error("its record is incomplete: {0}")]

@@ -6,7 +6,8 @@
 //!   (dims, coords, units, meta; long numeric coordinates packed, see [`record_layout`]), shape,
 //!   dtype, the NPY's size and blake3, the unit's notes
 //!   (warnings and records such as epoch counts, so a cached unit still reports them) and its
-//!   fingerprint. Stages with `cache: false` get the record without the NPY;
+//!   fingerprint, sealed by a last field `record_blake3` (the blake3 of the record's bytes before
+//!   it, see `seal`). Stages with `cache: false` get the record without the NPY;
 //! - `last/<id>.json`: the fingerprint last computed for a pipeline's stage × subject, read only
 //!   to explain *why* a unit is stale;
 //! - `stat/`: stat records of input files (see [`sources`](crate::sources)).
@@ -16,7 +17,7 @@
 //! or an NPY without a record, neither of which is trusted. Equal keys give equal bytes, so two
 //! writers racing on one key (cluster nodes sharing the cache) are harmless. Reading fails toward
 //! recomputing: a missing, truncated, unparsable or unknown-version object is treated as absent,
-//! and a load checks the content hash.
+//! every read of a record checks its seal, and a load checks the values' content hash.
 //!
 //! This module is the store's API (put, look up, load, copy, the last fingerprints); the NPY
 //! codec is [`npy`], the record's packed coordinates are [`record_layout`], and the
@@ -41,9 +42,10 @@ pub use damage::Damage;
 use npy::*;
 pub use npy::{npy_bytes, npy_digest, values_from_npy, write_npy_to, HashingWriter};
 
-/// Version of the object record format; records of any other version are stale. Version 2 packs
-/// long numeric coordinates ([`record_layout`]); version 1 listed every number.
-pub const FORMAT_VERSION: u32 = 2;
+/// Version of the object record format; records of any other version are stale (recomputed once,
+/// as if absent). Version 3 seals the record (its last field, `record_blake3`); version 2 packed long numeric
+/// coordinates ([`record_layout`]) without a seal; version 1 listed every number.
+pub const FORMAT_VERSION: u32 = 3;
 const FORMAT: &str = "phasewise-object";
 
 /// Set to make the process abort after a temporary object file is written and before it is
@@ -315,7 +317,7 @@ impl Store {
                     Err(_) if npy_meta.is_some() => return Lookup::Damaged(Damage::RecordMissing),
                     Err(_) => return Lookup::Absent,
                 };
-                let record = match parse_record(&bytes, key) {
+                let record = match parse_record(&bytes, key, &json) {
                     Ok(r) => Arc::new(r),
                     // Written by a phasewise of another record format: not damage, just not
                     // a result this version can use; it is recomputed (and overwritten).
@@ -536,9 +538,9 @@ struct LastRecord {
     fingerprint: Fingerprint,
 }
 
-/// Write an object's record (atomically).
+/// Write an object's record (atomically), sealed ([`seal`]).
 pub(crate) fn write_record(json_path: &Path, record: &ObjectRecord) -> Result<(), StoreError> {
-    let json = serde_json::to_vec_pretty(record)?;
+    let json = seal(serde_json::to_vec_pretty(record)?);
     // Not fsynced: a record lost or left incomplete by a power loss makes its object absent
     // or damaged (recomputed), never wrong; see DEVELOPERS.md "Durability".
     bookkeeping_write(json_path, &json).map_err(|source| StoreError::Write {
@@ -555,16 +557,29 @@ enum Unreadable {
     Damaged(Damage),
 }
 
-fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, Unreadable> {
+fn parse_record(bytes: &[u8], key: &str, json: &Path) -> Result<ObjectRecord, Unreadable> {
     let damaged = Unreadable::Damaged;
+    let sealed = match check_seal(bytes) {
+        Seal::Intact => true,
+        Seal::Broken { found, recorded } => {
+            return Err(damaged(Damage::RecordAltered {
+                path: json.to_path_buf(),
+                found,
+                recorded,
+            }))
+        }
+        Seal::Missing => false,
+    };
     // One pass straight into the record; the slower look at the raw value below only runs to
-    // explain a record that does not parse (or is of another format).
-    if let Ok(record) = serde_json::from_slice::<ObjectRecord>(bytes) {
-        if record.format == FORMAT && record.format_version == FORMAT_VERSION {
-            if record.key != key {
-                return Err(damaged(Damage::OtherKey { key: record.key }));
+    // explain a record that does not parse (or is of another format, or unsealed).
+    if sealed {
+        if let Ok(record) = serde_json::from_slice::<ObjectRecord>(bytes) {
+            if record.format == FORMAT && record.format_version == FORMAT_VERSION {
+                if record.key != key {
+                    return Err(damaged(Damage::OtherKey { key: record.key }));
+                }
+                return Ok(record);
             }
-            return Ok(record);
         }
     }
     let value: serde_json::Value =
@@ -576,12 +591,79 @@ fn parse_record(bytes: &[u8], key: &str) -> Result<ObjectRecord, Unreadable> {
     if version != Some(u64::from(FORMAT_VERSION)) {
         return Err(Unreadable::OtherVersion);
     }
+    if !sealed {
+        return Err(damaged(Damage::RecordUnsealed {
+            path: json.to_path_buf(),
+        }));
+    }
     let record: ObjectRecord = serde_json::from_value(value)
         .map_err(|e| damaged(Damage::RecordIncomplete(Arc::new(e))))?;
     if record.key != key {
         return Err(damaged(Damage::OtherKey { key: record.key }));
     }
     Ok(record)
+}
+
+/// The record's last line but one opens its seal: `,\n  "record_blake3": "`, then 64 hex digits
+/// and [`SEAL_CLOSE`] end the file.
+const SEAL_OPEN: &[u8] = b",\n  \"record_blake3\": \"";
+const SEAL_CLOSE: &[u8] = b"\"\n}";
+const SEAL_HEX: usize = 64;
+
+/// Seal a record's pretty-printed JSON: its closing `\n}` gives way to a last field,
+/// `record_blake3`, the blake3 of every byte before that field, and the closing brace. The file
+/// stays JSON (readers ignore the field), and checking it ([`check_seal`]) hashes the bytes as
+/// stored, once, without printing the record again: one edited or flipped byte anywhere in the
+/// record (a coordinate, a label, the notes, the seal itself) breaks it. A later format that
+/// seals differently must name its field otherwise, or a record of it reads as damaged here.
+fn seal(mut json: Vec<u8>) -> Vec<u8> {
+    // serde_json's pretty form of a struct with fields ends with a newline and its brace.
+    if json.ends_with(b"\n}") {
+        json.truncate(json.len() - 2);
+    }
+    let hash = blake3::hash(&json).to_hex();
+    json.extend_from_slice(SEAL_OPEN);
+    json.extend_from_slice(hash.as_bytes());
+    json.extend_from_slice(SEAL_CLOSE);
+    json
+}
+
+/// What the seal of a record's bytes says.
+enum Seal {
+    /// The bytes before the seal hash to what it records.
+    Intact,
+    /// They do not.
+    Broken {
+        /// The blake3 of the bytes before the seal.
+        found: String,
+        /// What the seal records.
+        recorded: String,
+    },
+    /// The bytes do not end in a seal (another format version, a cut or garbled record).
+    Missing,
+}
+
+fn check_seal(bytes: &[u8]) -> Seal {
+    let seal_len = SEAL_OPEN.len() + SEAL_HEX + SEAL_CLOSE.len();
+    let Some(body_len) = bytes.len().checked_sub(seal_len) else {
+        return Seal::Missing;
+    };
+    let (body, seal) = bytes.split_at(body_len);
+    let Some(recorded) = seal
+        .strip_prefix(SEAL_OPEN)
+        .and_then(|s| s.strip_suffix(SEAL_CLOSE))
+    else {
+        return Seal::Missing;
+    };
+    let found = blake3::hash(body).to_hex();
+    if found.as_bytes() == recorded {
+        Seal::Intact
+    } else {
+        Seal::Broken {
+            found: found.to_string(),
+            recorded: String::from_utf8_lossy(recorded).into_owned(),
+        }
+    }
 }
 
 fn write_object_file(path: &Path, values: &Values) -> Result<(String, u64), StoreError> {
@@ -774,10 +856,136 @@ mod tests {
         let text = std::fs::read_to_string(&json_path).unwrap();
         let current = format!("\"format_version\": {FORMAT_VERSION}");
         assert!(text.contains(&current));
-        let newer = text.replace(&current, "\"format_version\": 99");
+        // Sealed as its own version would seal it.
+        let newer = resealed(&text.replace(&current, "\"format_version\": 99"));
         std::fs::write(&json_path, newer).unwrap();
         // Recomputed as if absent, without a damage warning.
         assert!(matches!(store.lookup(&record.key), Lookup::Absent));
+    }
+
+    /// A record's text, edited after it was written, with its seal made again over the edit.
+    fn resealed(text: &str) -> Vec<u8> {
+        let body = &text[..text.rfind(",\n  \"record_blake3\"").unwrap()];
+        seal(format!("{body}\n}}").into_bytes())
+    }
+
+    /// A record as the previous format (version 2) wrote it: serde_json's pretty form, unsealed.
+    fn version_2_text(record: &ObjectRecord) -> Vec<u8> {
+        let mut value = serde_json::to_value(record).unwrap();
+        value["format_version"] = json!(2);
+        serde_json::to_vec_pretty(&value).unwrap()
+    }
+
+    #[test]
+    fn a_record_is_pretty_json_sealed_by_the_blake3_of_its_bytes_before_the_seal() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let (array, fp) = sample();
+        let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
+        let bytes = std::fs::read(store.object_paths(&record.key).1).unwrap();
+        // The reference: serde_json's own pretty form of the record with a last field
+        // `record_blake3`, the blake3 of the text before that field.
+        let unsealed = serde_json::to_string_pretty(&record).unwrap();
+        let body = unsealed.strip_suffix("\n}").unwrap();
+        let mut value = serde_json::to_value(&record).unwrap();
+        let want = blake3::hash(body.as_bytes()).to_hex().to_string();
+        value["record_blake3"] = json!(want);
+        let text = String::from_utf8(bytes.clone()).unwrap();
+        assert_eq!(
+            text,
+            format!("{body},\n  \"record_blake3\": \"{want}\"\n}}")
+        );
+        let parsed: serde_json::Value = serde_json::from_slice(&bytes).unwrap();
+        assert_eq!(parsed, value);
+    }
+
+    #[test]
+    fn a_record_changed_after_it_was_written_is_damaged_and_named() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let (mut array, fp) = sample();
+        array.layout.coords[0] = Coord::Labels(vec!["left".into()]);
+        let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
+        let (_, json_path) = store.object_paths(&record.key);
+        let text = std::fs::read_to_string(&json_path).unwrap();
+        assert!(matches!(store.lookup(&record.key), Lookup::Present(_)));
+        // One digit of a coordinate (0.5 → 4.5), a label, a note's place, the seal itself.
+        let edits = [
+            ("0.5,", "4.5,"),
+            ("\"left\"", "\"rite\""),
+            ("\"units\": \"V\"", "\"units\": \"W\""),
+            (&record.key[..8], "00000000"),
+        ];
+        let seal_at = text.rfind("record_blake3").unwrap();
+        let mut edits: Vec<(String, String)> = edits
+            .iter()
+            .map(|(a, b)| (a.to_string(), b.to_string()))
+            .collect();
+        let recorded = &text[seal_at + 17..seal_at + 17 + 64];
+        let first = if recorded.starts_with('0') { "1" } else { "0" };
+        let flipped = format!("{first}{}", &recorded[1..]);
+        edits.push((recorded.to_string(), flipped));
+        for (from, to) in &edits {
+            assert!(text.contains(from.as_str()), "{from}");
+            std::fs::write(&json_path, text.replacen(from.as_str(), to, 1)).unwrap();
+            for store in [&store, &Store::new(dir.path())] {
+                match store.lookup(&record.key) {
+                    Lookup::Damaged(why @ Damage::RecordAltered { .. }) => {
+                        let message = why.to_string();
+                        assert!(message.contains(&*json_path.to_string_lossy()), "{message}");
+                    }
+                    other => panic!("{from} → {to}: read as {other:?}"),
+                }
+                assert!(matches!(
+                    store.load(&record.key),
+                    Err(LoadError::Damaged(Damage::RecordAltered { .. }))
+                ));
+            }
+        }
+        // Put back, it is trusted again.
+        std::fs::write(&json_path, &text).unwrap();
+        assert!(matches!(store.lookup(&record.key), Lookup::Present(_)));
+    }
+
+    #[test]
+    fn one_bit_flipped_anywhere_in_a_record_makes_it_damaged() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let (array, fp) = sample();
+        let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
+        let (_, json_path) = store.object_paths(&record.key);
+        let bytes = std::fs::read(&json_path).unwrap();
+        for at in 0..bytes.len() {
+            let mut flipped = bytes.clone();
+            flipped[at] ^= 1 << (at % 8);
+            std::fs::write(&json_path, &flipped).unwrap();
+            match Store::new(dir.path()).lookup(&record.key) {
+                Lookup::Damaged(_) => {}
+                other => panic!("bit {} of byte {at} flipped: read as {other:?}", at % 8),
+            }
+        }
+    }
+
+    #[test]
+    fn a_record_of_the_previous_format_is_absent_and_one_of_this_format_unsealed_is_damaged() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let (array, fp) = sample();
+        let record = store.put(&array, &Notes::default(), &fp, true).unwrap();
+        let (_, json_path) = store.object_paths(&record.key);
+        std::fs::write(&json_path, version_2_text(&record)).unwrap();
+        // Recomputed as if absent (and overwritten), as records of version 1 are.
+        assert!(matches!(
+            Store::new(dir.path()).lookup(&record.key),
+            Lookup::Absent
+        ));
+        std::fs::write(&json_path, serde_json::to_vec_pretty(&record).unwrap()).unwrap();
+        match Store::new(dir.path()).lookup(&record.key) {
+            Lookup::Damaged(why @ Damage::RecordUnsealed { .. }) => {
+                assert!(why.to_string().contains(&*json_path.to_string_lossy()))
+            }
+            other => panic!("an unsealed record was read as {other:?}"),
+        }
     }
 
     /// Samples of the benchmark's continuous recordings: 148,750 times `k / 250` s.
@@ -984,7 +1192,8 @@ mod tests {
             .encode([&packed[..packed.len() - 1], &[0x80][..]].concat());
         let long = base64::engine::general_purpose::STANDARD.encode([0xffu8; 10]);
         for bad in [cut, long, "not base64!".to_string()] {
-            std::fs::write(&json_path, text.replace(&encoded, &bad)).unwrap();
+            // Sealed again, so that what is found is the packed coordinate, not the edit.
+            std::fs::write(&json_path, resealed(&text.replace(&encoded, &bad))).unwrap();
             match Store::new(dir.path()).lookup(&record.key) {
                 Lookup::Damaged(why) => {
                     assert!(why.to_string().contains("packed coordinate"), "{why}")

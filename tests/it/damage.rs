@@ -29,6 +29,8 @@ struct Pristine {
     _root: tempfile::TempDir,
     dir: PathBuf,
     outputs: Vec<(PathBuf, Vec<u8>)>,
+    /// The exported JSON sidecars: an object's record gives their coordinates and labels.
+    sidecars: Vec<(PathBuf, Vec<u8>)>,
     /// The key of the `group` unit.
     group_key: String,
 }
@@ -43,10 +45,16 @@ fn pristine() -> &'static Pristine {
         let outputs = output_arrays(&dir.join("results"));
         assert!(!outputs.is_empty(), "the undamaged run exported nothing");
         let group_key = unit_key(&manifest(&dir.join("results")), "group");
+        let sidecars = sidecars(&dir.join("results"));
+        assert!(
+            !sidecars.is_empty(),
+            "the undamaged run exported no sidecar"
+        );
         Pristine {
             _root: root,
             dir,
             outputs,
+            sidecars,
             group_key,
         }
     })
@@ -54,6 +62,26 @@ fn pristine() -> &'static Pristine {
 
 fn run(dir: &Path) -> std::process::Output {
     run_cli(dir, &["run", "pipeline.yaml", "--cache", "cache"])
+}
+
+/// The exported JSON files of a run (sidecars, column dictionaries) with their bytes: all but
+/// the manifest, which holds timings and paths.
+fn sidecars(output: &Path) -> Vec<(PathBuf, Vec<u8>)> {
+    reliability::files_under(output)
+        .into_iter()
+        .filter(|p| p.extension().and_then(|e| e.to_str()) == Some("json"))
+        .filter(|p| !p.starts_with("manifest.json") && !p.starts_with("manifest.parts"))
+        .filter(|p| {
+            !p.file_name().is_some_and(|n| {
+                n.to_string_lossy()
+                    .starts_with(phasewise::fsio::TEMP_PREFIX)
+            })
+        })
+        .map(|p| {
+            let bytes = fs::read(output.join(&p)).expect("read sidecar");
+            (p, bytes)
+        })
+        .collect()
 }
 
 /// The key of the (first) unit of `stage` in a manifest.
@@ -132,6 +160,8 @@ fn check(damage: Damage, what: &str) {
         );
         let diff = output_differences(&output_arrays(&dir.join("results")), &p.outputs);
         assert!(diff.is_empty(), "outputs differ: {diff:?}; {context}");
+        let diff = output_differences(&sidecars(&dir.join("results")), &p.sidecars);
+        assert!(diff.is_empty(), "sidecars differ: {diff:?}; {context}");
         // After the rerun the damaged objects are whole again: byte-equal to the pristine
         // store's (equal keys give equal bytes, DESIGN §5), except objects that nothing read.
         let left: Vec<String> = store_problems(&cache, &[&p.dir.join("cache")], false)
@@ -225,6 +255,169 @@ fn foreign_pair(cache: &Path, key: &str) {
         object_path(cache, key, "json"),
     )
     .expect("copy foreign sidecar");
+}
+
+/// The text of `key`'s record and the span of its layout's coordinates in it.
+fn record_coords(cache: &Path, key: &str) -> (PathBuf, String, std::ops::Range<usize>) {
+    let path = object_path(cache, key, "json");
+    let text = fs::read_to_string(&path).expect("read record");
+    let start = text.find("\"coords\"").expect("a record's coords");
+    let end = start + text[start..].find("\"units\"").expect("a record's units");
+    (path, text, start..end)
+}
+
+/// The condition labels of a record swapped (`A` and `B`, the tiny pipeline's conditions):
+/// a record that still parses and names the same values, in the other order. Records without
+/// both labels are left alone.
+fn swap_condition_labels(cache: &Path, key: &str) {
+    let (path, mut text, coords) = record_coords(cache, key);
+    let Some(a) = text[coords.clone()].find("\"A\"").map(|i| coords.start + i) else {
+        return;
+    };
+    let Some(b) = text[a..coords.end].find("\"B\"").map(|i| a + i) else {
+        return;
+    };
+    text.replace_range(b..b + 3, "\"A\"");
+    text.replace_range(a..a + 3, "\"B\"");
+    fs::write(path, text).expect("swap labels");
+}
+
+#[test]
+fn swapped_condition_labels_in_a_record_are_recomputed() {
+    check(
+        swap_condition_labels,
+        "condition labels swapped in the record",
+    );
+}
+
+/// A rerun of the tiny project with `norm`'s window changed, in `dir`.
+fn run_with_new_window(dir: &Path) -> std::process::Output {
+    run_cli(
+        dir,
+        &[
+            "run",
+            "pipeline.yaml",
+            "--cache",
+            "cache",
+            "--set",
+            "norm.window=[-0.45,-0.1]",
+        ],
+    )
+}
+
+/// One bit flipped in a number of a record's coordinates: `sync`'s first frequency, 4.0 (the
+/// tiny pipeline's `freqs.from`), becomes 0.0 (`'4' ^ 0x04 == '0'`), which leaves the group's
+/// theta band [4, 8]. A rerun that has to read `sync` (its consumer's params changed) must find
+/// the record damaged, recompute `sync`, and export what a run on an undamaged store exports.
+#[test]
+fn a_flipped_coordinate_bit_in_a_record_is_recomputed() {
+    let p = pristine();
+    let work = tempfile::tempdir().expect("tempdir");
+    let clean = work.path().join("clean");
+    copy_tree(&p.dir, &clean);
+    reliability::assert_success(&run_with_new_window(&clean), "the clean rerun");
+    let dir = work.path().join("project");
+    copy_tree(&p.dir, &dir);
+    let cache = dir.join("cache");
+    let m = manifest(&dir.join("results"));
+    let sync_key = unit_key(&m, "sync");
+    let (path, mut text, coords) = record_coords(&cache, &sync_key);
+    let at = coords.start
+        + text[coords]
+            .find(" 4.0,")
+            .expect("sync's frequencies start at 4.0")
+        + 1;
+    assert_eq!(text.as_bytes()[at] ^ 0x04, b'0');
+    text.replace_range(at..at + 1, "0");
+    fs::write(&path, text).expect("flip a bit");
+    let out = run_with_new_window(&dir);
+    reliability::assert_success(&out, "the rerun on a damaged record");
+    let err = stderr_of(&out);
+    assert!(
+        err.lines()
+            .any(|l| l.contains("sync") && l.contains("damaged") && l.contains(&sync_key)),
+        "no warning naming sync and its record; stderr:\n{err}"
+    );
+    let m = manifest(&dir.join("results"));
+    let sync = m["units"]
+        .as_array()
+        .and_then(|u| u.iter().find(|u| u["key"] == sync_key.as_str()))
+        .expect("sync in the manifest");
+    assert_eq!(sync["status"], "computed", "sync was not recomputed");
+    let diff = output_differences(
+        &output_arrays(&dir.join("results")),
+        &output_arrays(&clean.join("results")),
+    );
+    assert!(
+        diff.is_empty(),
+        "outputs differ from the clean run's: {diff:?}"
+    );
+    let diff = output_differences(
+        &sidecars(&dir.join("results")),
+        &sidecars(&clean.join("results")),
+    );
+    assert!(
+        diff.is_empty(),
+        "sidecars differ from the clean run's: {diff:?}"
+    );
+    let left = store_problems(&cache, &[&clean.join("cache")], false);
+    assert!(
+        left.is_empty(),
+        "store differs from the clean run's: {left:?}"
+    );
+}
+
+/// Every record rewritten as the previous record format (version 2) wrote it: the same fields
+/// without the seal. Such records are not trusted: every unit is recomputed once, to outputs
+/// equal to the undamaged run's, and a second run finds everything cached.
+#[test]
+fn records_of_the_previous_format_are_recomputed_once() {
+    let p = pristine();
+    let work = tempfile::tempdir().expect("tempdir");
+    let dir = work.path().join("project");
+    copy_tree(&p.dir, &dir);
+    fs::remove_dir_all(dir.join("results")).expect("remove outputs");
+    let cache = dir.join("cache");
+    // Every record, those of units streamed into their consumer (no NPY) included.
+    let records: Vec<PathBuf> = reliability::files_under(&cache.join("objects"))
+        .into_iter()
+        .filter(|p| p.extension().and_then(|e| e.to_str()) == Some("json"))
+        .map(|p| cache.join("objects").join(p))
+        .collect();
+    assert!(!records.is_empty(), "no records in the store");
+    for path in &records {
+        let text = fs::read_to_string(path).expect("read record");
+        let seal = text
+            .rfind(",\n  \"record_blake3\": ")
+            .expect("a sealed record");
+        let old = format!("{}\n}}", &text[..seal]).replacen(
+            "\"format_version\": 3,",
+            "\"format_version\": 2,",
+            1,
+        );
+        assert!(old.contains("\"format_version\": 2,"), "{}", path.display());
+        fs::write(path, old).expect("write an old record");
+    }
+    let out = run(&dir);
+    reliability::assert_success(&out, "the run on records of the previous format");
+    let statuses = reliability::unit_statuses(&manifest(&dir.join("results")));
+    assert!(
+        statuses.iter().all(|(_, _, status)| status == "computed"),
+        "units not recomputed: {statuses:?}"
+    );
+    let diff = output_differences(&output_arrays(&dir.join("results")), &p.outputs);
+    assert!(diff.is_empty(), "outputs differ: {diff:?}");
+    let diff = output_differences(&sidecars(&dir.join("results")), &p.sidecars);
+    assert!(diff.is_empty(), "sidecars differ: {diff:?}");
+    let left = store_problems(&cache, &[&p.dir.join("cache")], false);
+    assert!(left.is_empty(), "store differs: {left:?}");
+    let again = run(&dir);
+    reliability::assert_success(&again, "the run after");
+    let statuses = reliability::unit_statuses(&manifest(&dir.join("results")));
+    assert!(
+        statuses.iter().all(|(_, _, status)| status == "cached"),
+        "units not cached the second time: {statuses:?}"
+    );
 }
 
 #[test]
