@@ -32,7 +32,9 @@ pub struct Cli {
     /// More log output (repeat for more).
     #[arg(short, long, global = true, action = clap::ArgAction::Count)]
     pub verbose: u8,
-    /// Only errors: nothing is printed on success (warnings stay in the manifest).
+    /// Only errors are printed; a run's warnings stay in its manifest. What a command is asked
+    /// to show (plan, inspect, status, schema, completions, a dry run's list, the pipeline `new`
+    /// prints without --out) is still printed.
     #[arg(short, long, global = true)]
     pub quiet: bool,
     /// The command.
@@ -49,7 +51,7 @@ pub enum Command {
         #[command(flatten)]
         target: Target,
         /// Number of threads, at least 1 (default: all cores).
-        #[arg(long, short = 'j', value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
+        #[arg(long, short = 'j', value_parser = at_least_one)]
         jobs: Option<usize>,
         /// After the run, merge the manifest parts of earlier `run --subject` runs (of the same
         /// pipeline and overrides) into manifest.json: each unit as the part that computed it
@@ -120,7 +122,8 @@ pub enum Command {
         /// The pipelines whose manifests are kept.
         #[arg(required = true)]
         pipelines: Vec<PathBuf>,
-        /// Only list what would be removed.
+        /// Only list what would be removed (each object: the op and subject its record names,
+        /// its size, its path), then the total.
         #[arg(long)]
         dry_run: bool,
         /// The cache folder (default: `.phasewise/` beside the first pipeline).
@@ -180,7 +183,7 @@ pub enum Command {
         )]
         vary: Vec<String>,
         /// Number of threads, at least 1 (default: all cores).
-        #[arg(long, short = 'j', value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
+        #[arg(long, short = 'j', value_parser = at_least_one)]
         jobs: Option<usize>,
         /// Run even when the disk looks too small for what a variant writes.
         #[arg(long)]
@@ -196,7 +199,8 @@ pub struct Target {
     /// Override a param: STAGE.PARAM=VALUE (VALUE is YAML, e.g. `norm.window=[-0.4,-0.1]`).
     #[arg(long = "set", value_name = "STAGE.PARAM=VALUE")]
     pub set: Vec<String>,
-    /// Only this subject (repeatable); group stages are skipped.
+    /// Only this subject (repeatable); group stages are skipped. `inspect` describes the
+    /// stage's result of each subject given.
     #[arg(long = "subject", value_name = "ID")]
     pub subjects: Vec<String>,
     /// The cache folder (default: `.phasewise/` beside the pipeline file).
@@ -229,10 +233,10 @@ pub struct Submit {
     #[arg(long)]
     pub mem: Option<String>,
     /// CPUs of each job (sbatch --cpus-per-task); each task runs with as many threads.
-    #[arg(long, value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
+    #[arg(long, value_parser = at_least_one)]
     pub cpus: Option<usize>,
     /// At most K subjects at once.
-    #[arg(long, value_name = "K", value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
+    #[arg(long, value_name = "K", value_parser = at_least_one)]
     pub max_parallel: Option<usize>,
     /// One more sbatch option for every job, verbatim (repeatable), e.g. `--sbatch-arg=--qos=short`.
     #[arg(long = "sbatch-arg", value_name = "ARG", allow_hyphen_values = true)]
@@ -247,6 +251,17 @@ pub struct Submit {
     /// Wait until the group job ends; exit 1 naming each subject that failed.
     #[arg(long, conflicts_with = "dry_run")]
     pub wait: bool,
+}
+
+/// A count of at least 1 (`--jobs`, `--cpus`, `--max-parallel`).
+fn at_least_one(text: &str) -> std::result::Result<usize, String> {
+    match text.trim().parse::<usize>() {
+        Ok(0) => Err("expected at least 1, found 0".into()),
+        Ok(n) => Ok(n),
+        Err(_) => Err(format!(
+            "expected a whole number, at least 1; found `{text}`"
+        )),
+    }
 }
 
 /// An error with the exit status it calls for.
@@ -342,7 +357,7 @@ fn dispatch(cli: &Cli) -> Result<i32> {
             cache,
         } => status(pipeline, set, cache.as_deref(), env),
         Command::Plan { target, json } => plan(target, *json, env),
-        Command::Verify { manifest, data } => verify(manifest, data.as_deref(), env),
+        Command::Verify { manifest, data } => verify(manifest, data.as_deref(), cli.quiet, env),
         Command::Inspect { target, stage } => inspect(target, stage, env),
         Command::Archive {
             manifest,
@@ -358,24 +373,26 @@ fn dispatch(cli: &Cli) -> Result<i32> {
                     })
                 },
             )?;
-            println!("{}: bundle of {n} files", out.display());
+            if !cli.quiet {
+                println!("{}: bundle of {n} files", out.display());
+            }
             Ok(0)
         }
         Command::Simulate {
             out,
             subjects,
             seed,
-        } => simulate(out, *subjects, *seed),
+        } => simulate(out, *subjects, *seed, cli.quiet),
         Command::Prune {
             pipelines,
             dry_run,
             cache,
-        } => prune(pipelines, *dry_run, cache.as_deref(), env),
+        } => prune(pipelines, *dry_run, cache.as_deref(), cli.quiet, env),
         Command::New { data, out } => {
-            crate::scaffold::run(data, out.as_deref())?;
+            crate::scaffold::run(data, out.as_deref(), cli.quiet)?;
             Ok(0)
         }
-        Command::Report { pipeline, out } => report(pipeline, out.as_deref(), env),
+        Command::Report { pipeline, out } => report(pipeline, out.as_deref(), cli.quiet, env),
         Command::Completions { shell } => {
             let mut command = <Cli as clap::CommandFactory>::command();
             clap_complete::generate(*shell, &mut command, "phasewise", &mut std::io::stdout());
@@ -446,11 +463,11 @@ fn run(
 }
 
 /// `phasewise report PIPELINE`: the HTML report of the pipeline's last complete run.
-fn report(pipeline: &Path, out: Option<&Path>, env: Env<'_>) -> Result<i32> {
+fn report(pipeline: &Path, out: Option<&Path>, quiet: bool, env: Env<'_>) -> Result<i32> {
     let resolved = crate::pipeline::load(pipeline, &[], env.ops)
         .map_err(|e| run_error(RunError::Pipeline(e)))?;
     let options = crate::report::spec::options_for(&resolved);
-    write_report(&crate::paths::clean(&resolved.output), out, &options, false)?;
+    write_report(&crate::paths::clean(&resolved.output), out, &options, quiet)?;
     Ok(0)
 }
 
@@ -516,13 +533,17 @@ fn plan(target: &Target, json: bool, env: Env<'_>) -> Result<i32> {
     Ok(0)
 }
 
-fn verify(manifest: &Path, data: Option<&Path>, env: Env<'_>) -> Result<i32> {
+fn verify(manifest: &Path, data: Option<&Path>, quiet: bool, env: Env<'_>) -> Result<i32> {
     let report = crate::verify::verify_with(manifest, data, env).map_err(|e| {
         anyhow!(Exit {
             code: 2,
             message: e.to_string(),
         })
     })?;
+    // `-q`: a study that reproduces prints nothing; one that does not prints every line.
+    if quiet && report.reproduced() {
+        return Ok(0);
+    }
     for line in report.lines() {
         println!("{line}");
     }
@@ -546,33 +567,56 @@ fn verify(manifest: &Path, data: Option<&Path>, env: Env<'_>) -> Result<i32> {
 
 fn inspect(target: &Target, stage: &str, env: Env<'_>) -> Result<i32> {
     let mut opts = options(target, None, true);
-    let subject = opts.subjects.first().cloned();
+    let subjects: Vec<String> = opts
+        .subjects
+        .iter()
+        .map(|s| s.strip_prefix("sub-").unwrap_or(s).to_string())
+        .collect();
     // Inspecting one subject of a group pipeline still needs all subjects' units.
     opts.subjects.clear();
     let study = session::open(&target.pipeline, &opts, env).map_err(run_error)?;
-    let subject = subject.map(|s| s.strip_prefix("sub-").unwrap_or(&s).to_string());
-    let text = crate::inspect::inspect(&study, stage, subject.as_deref()).map_err(|e| {
-        anyhow!(Exit {
-            code: e.exit_code(),
-            message: e.to_string(),
-        })
-    })?;
-    print!("{text}");
+    let asked: Vec<Option<&str>> = if subjects.is_empty() {
+        vec![None]
+    } else {
+        subjects.iter().map(|s| Some(s.as_str())).collect()
+    };
+    // Each subject asked for, in order, once; a group stage's one result is shown once.
+    let mut texts: Vec<String> = Vec::new();
+    for subject in asked {
+        let text = crate::inspect::inspect(&study, stage, subject).map_err(|e| {
+            anyhow!(Exit {
+                code: e.exit_code(),
+                message: e.to_string(),
+            })
+        })?;
+        if !texts.contains(&text) {
+            texts.push(text);
+        }
+    }
+    print!("{}", texts.join("\n"));
     Ok(0)
 }
 
-fn simulate(out: &Path, subjects: usize, seed: u64) -> Result<i32> {
+fn simulate(out: &Path, subjects: usize, seed: u64, quiet: bool) -> Result<i32> {
     let config = phasewise_stages::simulate::SimulateConfig::new(subjects, seed);
     phasewise_stages::simulate::write_study(out, &config)
         .with_context(|| format!("simulating into {}", out.display()))?;
-    println!(
-        "wrote a simulated study of {subjects} subjects to {}",
-        out.display()
-    );
+    if !quiet {
+        println!(
+            "wrote a simulated study of {subjects} subjects to {}",
+            out.display()
+        );
+    }
     Ok(0)
 }
 
-fn prune(pipelines: &[PathBuf], dry_run: bool, cache: Option<&Path>, env: Env<'_>) -> Result<i32> {
+fn prune(
+    pipelines: &[PathBuf],
+    dry_run: bool,
+    cache: Option<&Path>,
+    quiet: bool,
+    env: Env<'_>,
+) -> Result<i32> {
     let mut outputs = Vec::new();
     let mut store_root = cache.map(Path::to_path_buf);
     for file in pipelines {
@@ -583,13 +627,38 @@ fn prune(pipelines: &[PathBuf], dry_run: bool, cache: Option<&Path>, env: Env<'_
     let store = crate::store::Store::new(store_root.unwrap_or_default());
     let keep = crate::prune::referenced_keys(&outputs).map_err(|e| anyhow!(e))?;
     let report = crate::prune::prune(&store, &keep, dry_run);
-    let verb = if dry_run { "would remove" } else { "removed" };
-    println!(
-        "{verb} {} ({}); {} kept",
-        count(report.removed.len(), "file", "files"),
-        count(report.bytes as usize, "byte", "bytes"),
-        count(report.kept, "object", "objects")
-    );
+    if dry_run {
+        for object in &report.objects {
+            let what = match &object.made_by {
+                Some((op, subject)) => {
+                    format!("op {op}, {}", subject_label(subject.as_deref()))
+                }
+                None if object
+                    .path
+                    .file_name()
+                    .is_some_and(|n| n.to_string_lossy().starts_with(crate::fsio::TEMP_PREFIX)) =>
+                {
+                    "left-over temporary file".to_string()
+                }
+                None => "object with no readable record".to_string(),
+            };
+            println!(
+                "{what}: {} {}",
+                crate::words::bytes(object.bytes),
+                object.path.display()
+            );
+        }
+    }
+    if !quiet || dry_run {
+        let verb = if dry_run { "would remove" } else { "removed" };
+        println!(
+            "{verb} {} ({}, {}); {} kept",
+            count(report.objects.len(), "object", "objects"),
+            count(report.removed.len(), "file", "files"),
+            crate::words::bytes(report.bytes),
+            count(report.kept, "object", "objects")
+        );
+    }
     Ok(0)
 }
 
@@ -618,15 +687,21 @@ fn submit(args: &Submit, quiet: bool, env: Env<'_>) -> Result<i32> {
         dry_run: args.dry_run,
         skip_room_check: args.skip_room_check,
     };
-    let mut warn = |w: &str| eprintln!("warning: {w}");
+    let mut warn = |w: &str| {
+        if !quiet {
+            eprintln!("warning: {w}");
+        }
+    };
     let report =
         cluster::submit(&args.pipeline, &options, env, &mut warn).map_err(cluster_error)?;
     let (submitted, jobs) = match report {
         SubmitReport::NothingStale { units } => {
-            println!(
-                "nothing to submit: all {} are fresh",
-                count(units, "unit", "units")
-            );
+            if !quiet {
+                println!(
+                    "nothing to submit: all {} are fresh",
+                    count(units, "unit", "units")
+                );
+            }
             return Ok(0);
         }
         SubmitReport::DryRun {

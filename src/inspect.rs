@@ -8,7 +8,7 @@ use phasewise_stages::{Coord, LabelledArray, Values};
 use crate::plan::Status;
 use crate::store::LoadError;
 use crate::study::{subject_label, Study};
-use crate::words::did_you_mean;
+use crate::words::{did_you_mean, number};
 
 /// Why a unit cannot be inspected.
 #[derive(Debug, thiserror::Error)]
@@ -217,5 +217,10 @@ fn value_summary(values: &Values) -> String {
     let min = finite.iter().copied().fold(f64::INFINITY, f64::min);
     let max = finite.iter().copied().fold(f64::NEG_INFINITY, f64::max);
     let mean = finite.iter().sum::<f64>() / finite.len() as f64;
-    format!("{what}: min {min:e}, max {max:e}, mean {mean:e}, {nan} NaN")
+    format!(
+        "{what}: min {}, max {}, mean {}, {nan} NaN",
+        number(min, 4),
+        number(max, 4),
+        number(mean, 4)
+    )
 }

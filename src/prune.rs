@@ -5,7 +5,7 @@
 //! objects go too. Temporary files older than an hour (left by killed runs) are removed as well;
 //! younger ones may belong to a run in progress on another machine.
 
-use std::collections::BTreeSet;
+use std::collections::{BTreeMap, BTreeSet};
 use std::path::{Path, PathBuf};
 
 use crate::fsio::{is_leftover, TEMP_PREFIX};
@@ -21,6 +21,24 @@ pub struct PruneReport {
     pub bytes: u64,
     /// Objects kept.
     pub kept: usize,
+    /// What was removed, one entry per object (its NPY and record together) or temporary file,
+    /// in the order of their paths.
+    pub objects: Vec<RemovedObject>,
+}
+
+/// One cache object (or left-over temporary file) that `prune` removed or would remove.
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct RemovedObject {
+    /// Its values (`<key>.npy`), else its record (`<key>.json`, a `cache: false` unit), else
+    /// the temporary file.
+    pub path: PathBuf,
+    /// The size of all its files.
+    pub bytes: u64,
+    /// What its record says it is: the op that computed it and the subject (`None` for a
+    /// group unit). `None` for a temporary file or an unreadable record. An object is named by
+    /// its key, which does not depend on the stage's name (two stages with the same op, params
+    /// and inputs share one), so the record names the op, not a stage.
+    pub made_by: Option<(String, Option<String>)>,
 }
 
 /// The unit keys referred to by the manifests in these output folders.
@@ -63,28 +81,68 @@ fn manifest_files(output: &Path) -> Vec<PathBuf> {
 pub fn prune(store: &Store, keep: &BTreeSet<String>, dry_run: bool) -> PruneReport {
     let mut report = PruneReport::default();
     let mut kept = BTreeSet::new();
+    // The files of each object to remove, by key (or by file name for a temporary file).
+    let mut doomed: BTreeMap<String, Vec<PathBuf>> = BTreeMap::new();
     for file in store.object_files() {
         let name = file
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default();
-        let remove = if name.starts_with(TEMP_PREFIX) {
-            is_leftover(&file)
-        } else {
-            let key = name.split('.').next().unwrap_or_default();
-            let keep_it = keep.contains(key);
-            if keep_it {
-                kept.insert(key.to_string());
+        if name.starts_with(TEMP_PREFIX) {
+            if is_leftover(&file) {
+                doomed.entry(name).or_default().push(file);
             }
-            !keep_it
-        };
-        if remove {
-            report.bytes += std::fs::metadata(&file).map_or(0, |m| m.len());
+            continue;
+        }
+        let key = name.split('.').next().unwrap_or_default();
+        if keep.contains(key) {
+            kept.insert(key.to_string());
+        } else {
+            doomed.entry(key.to_string()).or_default().push(file);
+        }
+    }
+    for (name, files) in doomed {
+        let made_by = (!name.starts_with(TEMP_PREFIX))
+            .then(|| made_by(&store.object_paths(&name).1))
+            .flatten();
+        let path = files
+            .iter()
+            .find(|f| f.extension().is_some_and(|e| e == "npy"))
+            .unwrap_or(&files[0])
+            .clone();
+        let (mut bytes, mut any) = (0, false);
+        for file in files {
+            let size = std::fs::metadata(&file).map_or(0, |m| m.len());
             if dry_run || std::fs::remove_file(&file).is_ok() {
+                bytes += size;
+                any = true;
                 report.removed.push(file);
             }
         }
+        if !any {
+            continue;
+        }
+        report.bytes += bytes;
+        report.objects.push(RemovedObject {
+            path,
+            bytes,
+            made_by,
+        });
     }
     report.kept = kept.len();
     report
+}
+
+/// The op and subject an object's record names, read leniently (any record format that has a
+/// fingerprint with an op).
+fn made_by(record: &Path) -> Option<(String, Option<String>)> {
+    let text = std::fs::read(record).ok()?;
+    let value: serde_json::Value = serde_json::from_slice(&text).ok()?;
+    let fingerprint = value.get("fingerprint")?;
+    let op = fingerprint.get("op")?.as_str()?.to_string();
+    let subject = fingerprint
+        .get("subject")
+        .and_then(|s| s.as_str())
+        .map(str::to_string);
+    Some((op, subject))
 }

@@ -89,16 +89,19 @@ pub struct DatasetSummary {
 
 /// Look at `data_dir` and write a commented pipeline to `out`, or print it on stdout when no
 /// file is given (the dataset summary then goes to stderr). An existing file is never
-/// overwritten.
-pub fn run(data_dir: &Path, out: Option<&Path>) -> Result<()> {
+/// overwritten. `quiet` (`-q`) prints only the pipeline when no file is given: no summary, no
+/// warning (a missing events source is also marked in the pipeline itself).
+pub fn run(data_dir: &Path, out: Option<&Path>, quiet: bool) -> Result<()> {
     let summary = survey(data_dir)?;
-    if summary.events.is_none() {
+    if summary.events.is_none() && !quiet {
         eprintln!("warning: {NO_EVENTS}");
     }
     let Some(out) = out else {
         let here = absolute(Path::new("."))?;
         let data_rel = relative_to(&absolute(data_dir)?, &here);
-        eprint!("{}", summary_text(&summary));
+        if !quiet {
+            eprint!("{}", summary_text(&summary));
+        }
         print!("{}", pipeline_text(&summary, &data_rel, data_dir)?);
         return Ok(());
     };
@@ -111,13 +114,17 @@ pub fn run(data_dir: &Path, out: Option<&Path>) -> Result<()> {
     let out_dir = absolute(out.parent().unwrap_or(Path::new(".")))?;
     let data_rel = relative_to(&absolute(data_dir)?, &out_dir);
     let text = pipeline_text(&summary, &data_rel, data_dir)?;
-    print!("{}", summary_text(&summary));
+    if !quiet {
+        print!("{}", summary_text(&summary));
+    }
     std::fs::write(out, text).with_context(|| format!("writing {}", out.display()))?;
-    println!(
-        "\nwrote {}: read it, confirm the lines marked CONFIRM, then `phasewise plan {}`",
-        out.display(),
-        out.display()
-    );
+    if !quiet {
+        println!(
+            "\nwrote {}: read it, confirm the lines marked CONFIRM, then `phasewise plan {}`",
+            out.display(),
+            out.display()
+        );
+    }
     Ok(())
 }
 

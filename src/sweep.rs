@@ -10,9 +10,15 @@
 //! led by the variant's name, one column per varied param and the stage, with a column
 //! dictionary `sweep.json` beside it.
 //!
-//! Every variant's pipeline is loaded and checked before anything runs, so a `--vary` on an
-//! unknown stage or param, or with a value the op refuses, writes nothing. `sweep.tsv` is
-//! written (atomically) only after every variant ran.
+//! Every variant is opened as `plan` opens a pipeline (loaded, its params checked, the study
+//! prepared and every stage's layout derived from the recordings' headers) before any runs, so a
+//! `--vary` on an unknown stage or param, with a value the op refuses, or with one that does not
+//! fit the data (a baseline window outside the time axis) stops it before anything runs. The
+//! variants run into a staging folder and move into `variants/` only once all have run, so a
+//! variant that fails while computing (where a layout is known only once the trials are
+//! counted, or a stage fails on a subject's values) leaves no variant folder and no `sweep.tsv`
+//! either, only what the cache gained. The new `sweep.tsv` replaces the old (atomically) after
+//! every variant ran.
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -42,7 +48,8 @@ pub enum SweepError {
         /// The pipeline's problems.
         source: crate::pipeline::PipelineError,
     },
-    /// A variant's run failed; the variants before it are complete, `sweep.tsv` is not written.
+    /// A variant's study could not be prepared (its recordings, a layout the plan derives), or
+    /// its run failed; no variant is moved into place and `sweep.tsv` is not written.
     #[error("variant {variant}: {source}")]
     Run {
         /// The variant's name.
@@ -70,6 +77,9 @@ impl SweepError {
         }
     }
 }
+
+/// The name of the folder the variants run in (followed by the process id), beside `variants/`.
+const STAGING: &str = ".tmp-sweep-";
 
 /// One `--vary STAGE.PARAM=[...]`: the param's dotted name and its alternative values.
 #[derive(Clone, Debug, PartialEq)]
@@ -219,33 +229,89 @@ pub fn sweep(
         }
     }
     let grid = variants(&varies);
-    // Load every variant first: a wrong stage, param or value stops the sweep before any run.
+    // Open every variant first, as `plan` would (params, the study, every stage's layout): a
+    // variant wrong in a way the plan can see stops the sweep before anything is written.
     let mut output = None;
     for variant in &grid {
-        let overrides = overrides_of(base, variant);
-        let loaded = crate::pipeline::load(pipeline, &overrides, env.ops).map_err(|source| {
-            SweepError::Pipeline {
+        let options = variant_options(base, variant, None);
+        let study = session::open(pipeline, &options, env).map_err(|source| match source {
+            RunError::Pipeline(source) => SweepError::Pipeline {
                 variant: variant.name.clone(),
                 source,
-            }
+            },
+            source => SweepError::Run {
+                variant: variant.name.clone(),
+                source,
+            },
         })?;
-        output.get_or_insert_with(|| crate::paths::clean(&loaded.output));
+        output.get_or_insert_with(|| crate::paths::clean(&study.pipeline.output));
     }
     let output = output.unwrap_or_default();
+    // The variants run into a staging folder beside `variants/` (at the same depth, so the
+    // relative paths their manifests record stay true) and move into `variants/` only when all
+    // have run: an error only computing finds (a layout the plan cannot know before the trials
+    // are counted, a stage failing on a subject's values) leaves no variant behind either.
+    // Staging folders of killed sweeps are removed once stale.
+    if let Ok(entries) = std::fs::read_dir(&output) {
+        for entry in entries.flatten() {
+            let name = entry.file_name().to_string_lossy().into_owned();
+            if name.starts_with(STAGING) && crate::fsio::is_stale(&entry.path()) {
+                let _ = std::fs::remove_dir_all(entry.path());
+            }
+        }
+    }
+    let staging = output.join(format!("{STAGING}{}", std::process::id()));
+    // The topmost folder of `output` that is not there yet: a failed sweep removes what it made.
+    let made = output
+        .ancestors()
+        .take_while(|a| !a.as_os_str().is_empty() && !a.exists())
+        .last()
+        .map(Path::to_path_buf);
     let mut runs = Vec::new();
     for variant in grid {
-        let options = Options {
-            overrides: overrides_of(base, &variant),
-            subjects: Vec::new(),
-            output: Some(output.join("variants").join(folder_name(&variant.name))),
-            ..base.clone()
-        };
-        let summary = session::run(pipeline, &options, env).map_err(|source| SweepError::Run {
-            variant: variant.name.clone(),
-            source,
-        })?;
-        runs.push((variant, summary));
+        let dir = staging.join(folder_name(&variant.name));
+        let options = variant_options(base, &variant, Some(dir));
+        match session::run(pipeline, &options, env) {
+            Ok(summary) => runs.push((variant, summary)),
+            Err(source) => {
+                let _ = std::fs::remove_dir_all(&staging);
+                if let Some(made) = &made {
+                    // Only empty folders: `remove_dir` refuses any other.
+                    for dir in output.ancestors() {
+                        if std::fs::remove_dir(dir).is_err() || dir == made {
+                            break;
+                        }
+                    }
+                }
+                return Err(SweepError::Run {
+                    variant: variant.name.clone(),
+                    source,
+                });
+            }
+        }
     }
+    // Every variant ran: the earlier sweep's table goes, the variants move into place.
+    for stale in ["sweep.tsv", "sweep.json"] {
+        let _ = std::fs::remove_file(output.join(stale));
+    }
+    let io = |path: &Path, e: std::io::Error| SweepError::Io {
+        path: path.to_path_buf(),
+        message: e.to_string(),
+    };
+    let variants_dir = output.join("variants");
+    std::fs::create_dir_all(&variants_dir).map_err(|e| io(&variants_dir, e))?;
+    for (variant, summary) in &mut runs {
+        let from = staging.join(folder_name(&variant.name));
+        let to = variants_dir.join(folder_name(&variant.name));
+        if to.exists() {
+            std::fs::remove_dir_all(&to).map_err(|e| io(&to, e))?;
+        }
+        std::fs::rename(&from, &to).map_err(|e| io(&to, e))?;
+        if let Ok(rest) = summary.manifest_path.strip_prefix(&from) {
+            summary.manifest_path = to.join(rest);
+        }
+    }
+    let _ = std::fs::remove_dir(&staging);
     let (text, dictionary, rows) = sweep_table(&output, &varies, &runs)?;
     let table = output.join("sweep.tsv");
     let io = |path: &Path| {
@@ -262,12 +328,19 @@ pub fn sweep(
     Ok(SweepSummary { runs, table, rows })
 }
 
-fn overrides_of(base: &Options, variant: &Variant) -> Vec<String> {
-    base.overrides
-        .iter()
-        .chain(&variant.sets)
-        .cloned()
-        .collect()
+/// A variant's run options: the sweep's own, its `--set`s after the sweep's, every subject.
+fn variant_options(base: &Options, variant: &Variant, output: Option<PathBuf>) -> Options {
+    Options {
+        overrides: base
+            .overrides
+            .iter()
+            .chain(&variant.sets)
+            .cloned()
+            .collect(),
+        subjects: Vec::new(),
+        output,
+        ..base.clone()
+    }
 }
 
 /// One table as read: its header and rows, cells as text.

@@ -166,7 +166,14 @@ pub fn verify_with(
     let rerun = match session::run(&pipeline_file, &options, env) {
         Ok(summary) => summary.manifest,
         Err(e) => {
-            report.run_failure = Some(e.to_string());
+            let mut failure = e.to_string();
+            let dir = pipeline_file.parent().unwrap_or(Path::new("."));
+            if data.is_none() && old.inputs.iter().any(|i| !dir.join(&i.path).is_file()) {
+                failure.push_str(
+                    " (the recordings are not where the run read them, e.g. not in a bundle:                      `--data DIR` names the folder they are in now)",
+                );
+            }
+            report.run_failure = Some(failure);
             return Ok(report);
         }
     };

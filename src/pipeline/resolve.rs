@@ -583,8 +583,10 @@ fn report_stage_error(c: &mut Collector<'_>, stage: &str, params: &Node, error: 
                 steps.push(PathStep::Key(unknown));
             }
             let node = deepest_key_or_value(params, &steps);
-            let message = with_found_value(message, params.at(&split_path(field)));
+            let value = params.at(&split_path(field));
+            let message = with_found_value(message, value);
             let message = with_suggestion(message);
+            let message = with_list_hint(message, value, &format!("{stage}.{field}"));
             let dotted = if field.is_empty() {
                 format!("stages.{stage}.params")
             } else {
@@ -608,6 +610,28 @@ fn with_found_value(message: &str, node: Option<&Node>) -> String {
     } else {
         format!("{message} (found `{found}`)")
     }
+}
+
+/// A `--set` value written as `-0.2,-0.1` is one string to YAML; where the op wanted a list
+/// (serde: "invalid type: string ..., expected a sequence / tuple / array"), say how a list is
+/// written: `--set norm.window=[-0.2,-0.1]`.
+fn with_list_hint(message: String, node: Option<&Node>, param: &str) -> String {
+    let Some(node) = node else { return message };
+    let NodeKind::Scalar { text, .. } = &node.kind else {
+        return message;
+    };
+    let wants_list = ["sequence", "tuple", "array"].iter().any(|w| {
+        message.contains(&format!("expected a {w}"))
+            || message.contains(&format!("expected an {w}"))
+    });
+    if !matches!(node.origin, Origin::Override(_))
+        || !text.contains(',')
+        || !message.starts_with("invalid type: string")
+        || !wants_list
+    {
+        return message;
+    }
+    format!("{message}; a list is written in brackets: --set {param}=[{text}]")
 }
 
 /// The origin of the deepest node on `steps`; for a final key, the key itself rather than its value.

@@ -3,7 +3,9 @@
 //! A study under a folder whose name holds glob characters; logs without escape codes when
 //! stderr is a file; `-q`; counts in the singular; `inspect`'s exit status and wording; "did you
 //! mean" for misspelt keys, params, ops, stages and measures; `new` on recordings without events;
-//! `--version`; shell completions; the license and citation files.
+//! `--version`; shell completions; the license and citation files; `prune --dry-run`'s list;
+//! `-q` on every command; `--jobs 0`, a `--set` list without brackets, `inspect` of several
+//! subjects, `verify` of moved recordings.
 
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -489,4 +491,190 @@ fn the_committed_schema_is_what_schema_prints_and_every_pipeline_points_at_it() 
         let text = fs::read_to_string(&p).unwrap();
         assert_eq!(text.lines().next(), Some(modeline), "{}", p.display());
     }
+}
+
+/// The files of a cache object listed by `prune --dry-run`: the path printed (its NPY, or its
+/// record for a `cache: false` unit) and the other file of the same key.
+fn object_size(path: &Path) -> u64 {
+    ["npy", "json"]
+        .iter()
+        .map(|ext| fs::metadata(path.with_extension(ext)).map_or(0, |m| m.len()))
+        .sum()
+}
+
+#[test]
+fn prune_dry_run_lists_each_object_with_its_op_subject_size_and_path() {
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path();
+    let pipeline = tiny_project(dir, &StudySpec::default());
+    assert_success(&run_cli(dir, &["run", "pipeline.yaml"]), "run");
+    // A new baseline mode: the old norm objects (one per subject) and the old group object are
+    // referenced by no manifest any more.
+    let text = fs::read_to_string(&pipeline).unwrap();
+    fs::write(&pipeline, text.replace("mode: subtract", "mode: zscore")).unwrap();
+    assert_success(&run_cli(dir, &["run", "pipeline.yaml"]), "second run");
+    let objects_now = || {
+        let mut files = crate::reliability::files_under(&dir.join(".phasewise/objects"));
+        files.sort();
+        files
+    };
+    let objects = objects_now();
+
+    let out = run_cli(dir, &["prune", "pipeline.yaml", "--dry-run"]);
+    assert_success(&out, "prune --dry-run");
+    let listed = stdout_of(&out);
+    let lines: Vec<&str> = listed.lines().collect();
+    assert_eq!(lines.len(), 4, "three objects and the total:\n{listed}");
+    let mut whats = Vec::new();
+    let mut total = 0;
+    for line in &lines[..3] {
+        // `op baseline, subject 01: 1.2 KiB /path/to/key.npy`
+        let (what, rest) = line.split_once(": ").unwrap_or_else(|| panic!("{line}"));
+        let mut words = rest.splitn(3, ' ');
+        let size = format!("{} {}", words.next().unwrap(), words.next().unwrap());
+        let path = dir.join(words.next().unwrap());
+        assert!(path.is_file(), "{line}: a dry run removes nothing");
+        assert_eq!(size, phasewise::words::bytes(object_size(&path)), "{line}");
+        total += object_size(&path);
+        whats.push(what.to_string());
+    }
+    whats.sort();
+    assert_eq!(
+        whats,
+        [
+            "op aggregate, the group",
+            "op baseline, subject 01",
+            "op baseline, subject 02",
+        ]
+    );
+    // Objects by key (a unit streamed into its consumer keeps a record and no NPY).
+    let keys: std::collections::BTreeSet<_> =
+        objects.iter().map(|f| f.with_extension("")).collect();
+    let kept = keys.len() - 3;
+    assert_eq!(
+        lines[3],
+        format!(
+            "would remove 3 objects (6 files, {}); {kept} objects kept",
+            phasewise::words::bytes(total)
+        )
+    );
+    assert_eq!(objects_now(), objects, "--dry-run removed nothing");
+
+    // The real prune prints only the total, and -q nothing.
+    let out = run_cli(dir, &["-q", "prune", "pipeline.yaml"]);
+    assert_success(&out, "-q prune");
+    assert_eq!(stdout_of(&out), "");
+    assert_eq!(objects_now().len(), objects.len() - 6);
+    let out = run_cli(dir, &["prune", "pipeline.yaml"]);
+    assert_eq!(
+        stdout_of(&out),
+        format!("removed 0 objects (0 files, 0 B); {kept} objects kept\n")
+    );
+}
+
+#[test]
+fn quiet_silences_the_success_lines_of_every_command_and_its_help_says_so() {
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path();
+    tiny_project(dir, &one_subject());
+    assert_success(&run_cli(dir, &["-q", "run", "pipeline.yaml"]), "-q run");
+    for args in [
+        &["report", "pipeline.yaml", "-q"][..],
+        &["-q", "verify", "results/manifest.json"],
+        &["-q", "archive", "results/manifest.json", "--out", "bundle"],
+        &["-q", "new", "--data", "data", "--out", "new.yaml"],
+        &["-q", "simulate", "--out", "sim", "--subjects", "1"],
+    ] {
+        let out = run_cli(dir, args);
+        assert_success(&out, &args.join(" "));
+        assert_eq!(stdout_of(&out), "", "{args:?}");
+        assert_eq!(stderr_of(&out), "", "{args:?}");
+    }
+    // They did their work.
+    assert!(dir.join("results/report.html").is_file());
+    assert!(dir.join("bundle").is_dir());
+    assert!(dir.join("new.yaml").is_file());
+    assert!(dir.join("sim").is_dir());
+    // What a command is asked to show is still shown.
+    let out = run_cli(dir, &["-q", "plan", "pipeline.yaml"]);
+    assert!(stdout_of(&out).contains("0 of "), "{}", stdout_of(&out));
+
+    for command in ["new", "simulate", "inspect", "run"] {
+        let out = run_cli(dir, &[command, "--help"]);
+        let help = stdout_of(&out);
+        assert!(
+            help.contains("Only errors are printed; a run's warnings stay in its manifest"),
+            "{command}: {help}"
+        );
+        assert!(!help.contains("(warnings stay in the manifest)"), "{help}");
+    }
+}
+
+#[test]
+fn rough_edges_of_the_command_line_get_words_a_user_can_act_on() {
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path();
+    tiny_project(dir, &StudySpec::default());
+
+    // --jobs 0.
+    let (code, err) = status_and_stderr(dir, &["run", "pipeline.yaml", "--jobs", "0"]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("expected at least 1"), "{err}");
+    assert!(!err.contains("18446744073709551615"), "{err}");
+
+    // A list written without brackets in --set.
+    let (code, err) = status_and_stderr(
+        dir,
+        &["plan", "pipeline.yaml", "--set", "norm.window=-0.2,-0.1"],
+    );
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("--set norm.window=[-0.2,-0.1]"), "{err}");
+
+    // inspect with two subjects describes both; the values to 4 significant digits.
+    assert_success(&run_cli(dir, &["run", "pipeline.yaml"]), "run");
+    let out = run_cli(
+        dir,
+        &[
+            "inspect",
+            "pipeline.yaml",
+            "sync",
+            "--subject",
+            "01",
+            "--subject",
+            "02",
+        ],
+    );
+    assert_success(&out, "inspect two subjects");
+    let text = stdout_of(&out);
+    assert!(text.starts_with("sync (subject 01), key "), "{text}");
+    assert!(text.contains("\nsync (subject 02), key "), "{text}");
+    let summaries: Vec<&str> = text.lines().filter(|l| l.starts_with("values:")).collect();
+    assert_eq!(summaries.len(), 2, "{text}");
+    for line in summaries {
+        // `values: min 0.01234, max 1, mean 0.4676, 0 NaN`
+        for (name, rest) in ["min ", "max ", "mean "]
+            .iter()
+            .map(|n| (n, line.split(n).nth(1).unwrap()))
+        {
+            let number = rest.split(',').next().unwrap();
+            number
+                .parse::<f64>()
+                .unwrap_or_else(|e| panic!("{line}: {e}"));
+            let mantissa = number.split('e').next().unwrap();
+            let digits = mantissa
+                .trim_start_matches('-')
+                .replace('.', "")
+                .trim_start_matches('0')
+                .len();
+            assert!(digits <= 4, "{name}{number} in {line}");
+        }
+    }
+
+    // verify of a study whose recordings moved, without --data, says where to point it.
+    fs::rename(dir.join("data"), dir.join("moved")).unwrap();
+    let out = run_cli(dir, &["verify", "results/manifest.json"]);
+    let text = stdout_of(&out);
+    assert_ne!(out.status.code(), Some(0), "{text}");
+    assert!(text.contains("matches no file"), "{text}");
+    assert!(text.contains("`--data DIR` names the folder"), "{text}");
 }

@@ -1087,3 +1087,34 @@ fn demo_sweep_over_wavelet_cycles_shares_the_preprocessing_and_keeps_the_planted
         );
     }
 }
+
+/// A sweep whose second variant puts the baseline window outside the wavelet's crop (the demo
+/// crops to [-0.6, 1.1] s) is refused before the first variant runs: exit 2, the bad variant
+/// named, and nothing written under the output folder, not even the good variant's folder.
+#[test]
+fn demo_sweep_with_a_window_outside_the_crop_in_a_later_variant_writes_nothing() {
+    let tmp = project();
+    let root = tmp.path();
+    let out = phasewise(
+        &[
+            "sweep",
+            "pipelines/demo.yaml",
+            "--vary",
+            "norm.window=[[-0.28,-0.1],[-0.9,-0.5]]",
+        ],
+        root,
+    );
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(
+        err.contains("variant norm.window=[-0.9,-0.5]") && err.contains("time axis"),
+        "{err}"
+    );
+    // Not even the output folder (the demo's is results/demo).
+    let results = root.join("results");
+    assert!(
+        !results.exists(),
+        "the refused sweep wrote {:?}",
+        reliability::files_under(&results)
+    );
+}
