@@ -465,9 +465,10 @@ fn set_arguments(m: &Manifest) -> Option<String> {
 /// `--set` overrides (a sweep's variant), the file and the overrides it ran with, and the
 /// command that runs it so again.
 fn code_note(m: &Manifest) -> String {
-    let file = Path::new(&m.pipeline.path)
-        .file_name()
-        .map_or_else(|| m.pipeline.path.clone(), |n| n.to_string_lossy().into_owned());
+    let file = Path::new(&m.pipeline.path).file_name().map_or_else(
+        || m.pipeline.path.clone(),
+        |n| n.to_string_lossy().into_owned(),
+    );
     let Some(sets) = set_arguments(m) else {
         return "- code/: the pipeline file, byte for byte as it ran.\n".into();
     };

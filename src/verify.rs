@@ -352,7 +352,11 @@ fn compare_companions(unit: &UnitRecord, rerun: &Manifest) -> Vec<String> {
     ) else {
         return Vec::new();
     };
-    let who = format!("{} ({})", unit.stage, subject_label(unit.subject.as_deref()));
+    let who = format!(
+        "{} ({})",
+        unit.stage,
+        subject_label(unit.subject.as_deref())
+    );
     old.iter()
         .filter_map(|c| {
             let again = new.iter().find(|n| n.kind == c.kind)?;

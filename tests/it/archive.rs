@@ -287,28 +287,19 @@ fn an_edited_table_or_sidecar_fails_verify_and_archive_naming_the_file() {
     let p = archived_project();
     let dir = p.path();
     let results = dir.join("results");
-    let recorded = companions(&results.join("manifest.json"));
-    let files: Vec<&str> = recorded.iter().map(|(_, f, _)| f.as_str()).collect();
-    for expected in [
-        "group/group.json",
-        "group.tsv",
-        "group.json",
-        "01/norm.json",
-        "02/norm.json",
-    ] {
-        assert!(files.contains(&expected), "{expected} not in {files:?}");
-    }
-    for (kind, file, hash) in &recorded {
-        let bytes = fs::read(results.join(file)).unwrap();
-        assert_eq!(&blake3::hash(&bytes).to_hex().to_string(), hash, "{kind} {file}");
-    }
-
     // Unedited: both pass.
     let ok = run_cli(dir, &["verify", "results/manifest.json"]);
     assert_success(&ok, "verify");
     assert!(stdout_of(&ok).contains("verified"), "{}", stdout_of(&ok));
-    assert!(!stdout_of(&ok).contains("not checked"), "{}", stdout_of(&ok));
-    assert_success(&archive(dir, "results/manifest.json", "bundle-ok"), "archive");
+    assert!(
+        !stdout_of(&ok).contains("not checked"),
+        "{}",
+        stdout_of(&ok)
+    );
+    assert_success(
+        &archive(dir, "results/manifest.json", "bundle-ok"),
+        "archive",
+    );
 
     for (edited, what) in [
         ("group.tsv", "table"),
@@ -347,6 +338,26 @@ fn an_edited_table_or_sidecar_fails_verify_and_archive_naming_the_file() {
         );
         assert!(!dir.join(&out).exists(), "a bundle was written");
         fs::write(&path, &original).unwrap();
+    }
+
+    let recorded = companions(&results.join("manifest.json"));
+    let files: Vec<&str> = recorded.iter().map(|(_, f, _)| f.as_str()).collect();
+    for expected in [
+        "group/group.json",
+        "group.tsv",
+        "group.json",
+        "01/norm.json",
+        "02/norm.json",
+    ] {
+        assert!(files.contains(&expected), "{expected} not in {files:?}");
+    }
+    for (kind, file, hash) in &recorded {
+        let bytes = fs::read(results.join(file)).unwrap();
+        assert_eq!(
+            &blake3::hash(&bytes).to_hex().to_string(),
+            hash,
+            "{kind} {file}"
+        );
     }
 
     // The bundle's manifest points its companions at the bundle's files, with the same hashes,
@@ -460,7 +471,11 @@ fn a_variant_bundle_says_its_overrides_and_its_rerun_command_reproduces_it() {
 
     // Run that line in the bundle, with the recordings where the pipeline looks for them.
     copy_tree(&dir.path().join("data"), &bundle.join("code/data"));
-    let shell_line = line.replacen("phasewise", &crate::reliability::bin().display().to_string(), 1);
+    let shell_line = line.replacen(
+        "phasewise",
+        &crate::reliability::bin().display().to_string(),
+        1,
+    );
     let ran = std::process::Command::new("sh")
         .args(["-c", &shell_line])
         .current_dir(&bundle)
@@ -469,10 +484,9 @@ fn a_variant_bundle_says_its_overrides_and_its_rerun_command_reproduces_it() {
         .output()
         .expect("sh");
     assert_success(&ran, "the README's run command");
-    let again: serde_json::Value = serde_json::from_slice(
-        &fs::read(bundle.join("code/results/manifest.json")).unwrap(),
-    )
-    .unwrap();
+    let again: serde_json::Value =
+        serde_json::from_slice(&fs::read(bundle.join("code/results/manifest.json")).unwrap())
+            .unwrap();
     assert_eq!(again["pipeline"]["overrides"], m["pipeline"]["overrides"]);
     let hashes = |m: &serde_json::Value| -> Vec<[String; 3]> {
         m["units"]
@@ -485,5 +499,49 @@ fn a_variant_bundle_says_its_overrides_and_its_rerun_command_reproduces_it() {
             })
             .collect()
     };
-    assert_eq!(hashes(&again), hashes(&m), "the rerun did not reproduce the variant");
+    assert_eq!(
+        hashes(&again),
+        hashes(&m),
+        "the rerun did not reproduce the variant"
+    );
+}
+
+/// `verify` compares the tables the rerun writes with the recorded ones, not only the files on
+/// disk: a manifest whose recorded table hash matches an edited table on disk (as if the run had
+/// written that table) is not reproduced, and the line names the table.
+#[test]
+fn verify_names_a_table_the_rerun_writes_differently() {
+    let p = archived_project();
+    let dir = p.path();
+    let tsv = dir.join("results/group.tsv");
+    let mut text = fs::read_to_string(&tsv).unwrap();
+    text.push_str("# an extra line\n");
+    fs::write(&tsv, &text).unwrap();
+    let manifest = dir.join("results/manifest.json");
+    let mut m: serde_json::Value = serde_json::from_slice(&fs::read(&manifest).unwrap()).unwrap();
+    let group = m["units"]
+        .as_array_mut()
+        .unwrap()
+        .iter_mut()
+        .find(|u| u["stage"] == "group")
+        .unwrap();
+    let table = group["outputs"][0]["companions"]
+        .as_array_mut()
+        .unwrap()
+        .iter_mut()
+        .find(|c| c["kind"] == "table")
+        .unwrap();
+    table["blake3"] = blake3::hash(text.as_bytes()).to_hex().to_string().into();
+    fs::write(&manifest, serde_json::to_vec_pretty(&m).unwrap()).unwrap();
+
+    let out = run_cli(dir, &["verify", "results/manifest.json"]);
+    assert_eq!(out.status.code(), Some(1), "{}", stderr_of(&out));
+    let said = stdout_of(&out);
+    assert!(!said.contains("changed since the run"), "{said}");
+    assert!(
+        said.contains(
+            "group (the group): the rerun wrote a different table than group.tsv recorded"
+        ),
+        "{said}"
+    );
 }
