@@ -15,7 +15,10 @@
 //! ```
 //!
 //! The bundle is refused for a manifest of part of a study (a subject selection), whose pipeline
-//! file or exported results changed since the run, or a target that is not empty. It is written
+//! file or exported results changed since the run (an NPY, or a sidecar, table or column
+//! dictionary the manifest records in `companions`, each named), or a target that is not empty.
+//! A manifest that records no `companions` (an older one) is archived with its arrays checked
+//! only, and [`Archived::unchecked`] says which files were copied unchecked. It is written
 //! into a temporary folder beside the target and renamed into place at the end, so it appears
 //! whole or not at all.
 
@@ -24,7 +27,8 @@ use std::path::{Path, PathBuf};
 use serde_json::{json, Value};
 use sha2::Digest;
 
-use crate::manifest::{self, Manifest};
+use crate::cluster::script::quote;
+use crate::manifest::{self, CompanionKind, Manifest};
 use crate::sources::hash_file;
 
 /// Why no bundle was written.
@@ -42,13 +46,23 @@ struct Entry {
     to: String,
 }
 
-/// Write the bundle of `manifest_path` to `out`; returns the number of files it holds.
+/// What [`archive`] wrote.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Archived {
+    /// The number of files the bundle holds.
+    pub files: usize,
+    /// Files copied into the bundle that the manifest records no hash for (sidecars and tables
+    /// of a manifest written before they were hashed), so that nothing could check them.
+    pub unchecked: Vec<String>,
+}
+
+/// Write the bundle of `manifest_path` to `out`.
 pub fn archive(
     manifest_path: &Path,
     out: &Path,
     license: Option<&str>,
     authors: &[String],
-) -> Result<usize, ArchiveError> {
+) -> Result<Archived, ArchiveError> {
     let mut m = manifest::read(manifest_path).map_err(|e| ArchiveError(e.to_string()))?;
     let output = manifest_path.parent().unwrap_or(Path::new("."));
     if let Some(subjects) = &m.pipeline.subjects {
@@ -88,7 +102,7 @@ pub fn archive(
         to: format!("code/{pipeline_name}"),
     }];
     m.pipeline.path = format!("code/{pipeline_name}");
-    let mut stages_done = std::collections::BTreeSet::new();
+    let mut unchecked = Vec::new();
     for unit in &mut m.units {
         let Some(record) = unit.outputs.first_mut() else {
             return Err(fail(format!(
@@ -113,41 +127,71 @@ pub fn archive(
             Ok(_) => return Err(fail(format!("{} changed since the run", npy.display()))),
             Err(_) => return Err(fail(format!("{} is missing", npy.display()))),
         }
-        let sidecar = npy.with_extension("json");
-        if !sidecar.is_file() {
-            return Err(fail(format!("{} is missing", sidecar.display())));
-        }
         let subject = unit.subject.as_deref();
         let (folder, prefix) = bids_place(&m.inputs, subject);
         let stem = format!("{prefix}desc-{}_conn", unit.stage);
+        let table = format!("{prefix}desc-{}_conntable", unit.stage);
         let to = format!("{folder}/{stem}.npy");
         entries.push(Entry {
             from: npy.clone(),
             to: to.clone(),
         });
-        entries.push(Entry {
-            from: sidecar,
-            to: format!("{folder}/{stem}.json"),
-        });
-        let tsv = match subject {
-            None => output.join(format!("{}.tsv", unit.stage)),
-            Some(s) => output.join(s).join(format!("{}.tsv", unit.stage)),
+        // The bundle's name of each file written beside the array.
+        let bundled = |kind: CompanionKind| match kind {
+            CompanionKind::Sidecar => format!("{folder}/{stem}.json"),
+            CompanionKind::Table => format!("{folder}/{table}.tsv"),
+            CompanionKind::Columns => format!("{folder}/{table}.json"),
         };
-        if tsv.is_file() {
-            let table = format!("{prefix}desc-{}_conntable", unit.stage);
-            entries.push(Entry {
-                from: tsv,
-                to: format!("{folder}/{table}.tsv"),
-            });
-            let dictionary = output.join(format!("{}.json", unit.stage));
-            if dictionary.is_file() {
-                entries.push(Entry {
-                    from: dictionary,
-                    to: format!("{folder}/{table}.json"),
-                });
+        match &mut record.companions {
+            Some(companions) => {
+                let changed = crate::verify::changed_companions(companions, output);
+                if let Some(first) = changed.first() {
+                    return Err(fail(format!(
+                        "{first} (in {}): the bundle would not hold what the run wrote; run \
+                         the pipeline again to write it afresh, then archive",
+                        output.display()
+                    )));
+                }
+                for c in companions.iter_mut() {
+                    let to = bundled(c.kind);
+                    entries.push(Entry {
+                        from: output.join(&c.file),
+                        to: to.clone(),
+                    });
+                    c.file = to;
+                }
+            }
+            None => {
+                // A manifest from before the sidecars and tables were hashed: found by name,
+                // copied unchecked, and said so.
+                let sidecar = npy.with_extension("json");
+                if !sidecar.is_file() {
+                    return Err(fail(format!("{} is missing", sidecar.display())));
+                }
+                let tsv = match subject {
+                    None => output.join(format!("{}.tsv", unit.stage)),
+                    Some(s) => output.join(s).join(format!("{}.tsv", unit.stage)),
+                };
+                let dictionary = output.join(format!("{}.json", unit.stage));
+                let mut found = vec![(sidecar, CompanionKind::Sidecar)];
+                if tsv.is_file() {
+                    found.push((tsv, CompanionKind::Table));
+                    if dictionary.is_file() {
+                        found.push((dictionary, CompanionKind::Columns));
+                    }
+                }
+                for (from, kind) in found {
+                    let shown = from.display().to_string();
+                    if !unchecked.contains(&shown) {
+                        unchecked.push(shown);
+                    }
+                    entries.push(Entry {
+                        from,
+                        to: bundled(kind),
+                    });
+                }
             }
         }
-        stages_done.insert(unit.stage.clone());
         record.file = Some(to);
     }
     let name = out
@@ -172,7 +216,10 @@ pub fn archive(
         let _ = std::fs::remove_dir_all(&built);
         fail(format!("cannot move the bundle to {}: {e}", out.display()))
     })?;
-    Ok(count)
+    Ok(Archived {
+        files: count,
+        unchecked,
+    })
 }
 
 /// The BIDS folder and file-name prefix of a unit's exports: `sub-01/eeg`, `sub-01_task-cue_`
@@ -249,8 +296,9 @@ fn write_bundle(
         "GeneratedBy": [{
             "Name": m.tool.name,
             "Version": m.tool.version,
-            "Description": format!("source revision {}; pipeline code/{}", m.tool.revision,
-                Path::new(&m.pipeline.path).file_name().map_or(String::new(), |n| n.to_string_lossy().into_owned())),
+            "Description": format!("source revision {}; pipeline code/{}{}", m.tool.revision,
+                Path::new(&m.pipeline.path).file_name().map_or(String::new(), |n| n.to_string_lossy().into_owned()),
+                set_arguments(m).map_or(String::new(), |sets| format!(" with {sets}"))),
         }],
     });
     if let Some(l) = license {
@@ -401,13 +449,46 @@ fn write_bundle(
 /// pattern is `group/`.
 const BIDSIGNORE: &str = "manifest.json\nro-crate-metadata.json\n/group\n*_conn.npy\n*_conn.json\n*_conntable.tsv\n*_conntable.json\n";
 
+/// The run's overrides as command-line arguments, each value one quoted shell word
+/// (`--set tf.cycles=6 --set 'norm.window=[-0.3,-0.1]'`); `None` for a run without.
+fn set_arguments(m: &Manifest) -> Option<String> {
+    let sets: Vec<String> = m
+        .pipeline
+        .overrides
+        .iter()
+        .map(|o| format!("--set {}", quote(o)))
+        .collect();
+    (!sets.is_empty()).then(|| sets.join(" "))
+}
+
+/// What the bundle's README says of `code/`: the pipeline file as it ran, or, for a run with
+/// `--set` overrides (a sweep's variant), the file and the overrides it ran with, and the
+/// command that runs it so again.
+fn code_note(m: &Manifest) -> String {
+    let file = Path::new(&m.pipeline.path).file_name().map_or_else(
+        || m.pipeline.path.clone(),
+        |n| n.to_string_lossy().into_owned(),
+    );
+    let Some(sets) = set_arguments(m) else {
+        return "- code/: the pipeline file, byte for byte as it ran.\n".into();
+    };
+    format!(
+        "- code/: the pipeline file, byte for byte. The run did not use it as it stands: it ran \
+         with these overrides of its params (recorded in manifest.json as pipeline.overrides), \
+         which take the place of the values the file gives:\n\n    {sets}\n\n  \
+         `phasewise verify` applies them itself. To run the pipeline exactly as it ran, give \
+         them again, with the recordings where the file's `recordings` glob points \
+         (relative to code/):\n\n    phasewise run code/{file} {sets}\n\n",
+    )
+}
+
 fn readme(m: &Manifest) -> String {
     format!(
         "{name}\n\nResults of the phasewise pipeline `{name}` (phasewise {version}, source \
          revision {revision}), run {started} to {finished}.\n\n\
-         - code/: the pipeline file, byte for byte as it ran.\n\
+         {code}\
          - manifest.json: what ran, with which parameters, on which inputs (by blake3), and the \
-         hash of every output.\n\
+         hash of every output and of every exported file (arrays, sidecars, tables).\n\
          - sub-*/: each subject's exported arrays (NPY) with their sidecars (xarray \
          DataArray.to_dict form); group/: the group arrays, tables (TSV) and column dictionaries.\n\
          - ro-crate-metadata.json: RO-Crate 1.1 description of every file (sha256, blake3).\n\n\
@@ -419,6 +500,7 @@ fn readme(m: &Manifest) -> String {
         revision = m.tool.revision,
         started = m.started,
         finished = m.finished,
+        code = code_note(m),
     )
 }
 

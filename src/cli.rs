@@ -365,16 +365,25 @@ fn dispatch(cli: &Cli) -> Result<i32> {
             license,
             authors,
         } => {
-            let n = crate::archive::archive(manifest, out, license.as_deref(), authors).map_err(
-                |e| {
+            let done = crate::archive::archive(manifest, out, license.as_deref(), authors)
+                .map_err(|e| {
                     anyhow!(Exit {
                         code: 2,
                         message: e.to_string(),
                     })
-                },
-            )?;
+                })?;
+            if !done.unchecked.is_empty() {
+                eprintln!(
+                    "warning: {} records no hash of the sidecars and tables (written by an \
+                     older phasewise), so these were copied into the bundle unchecked (the \
+                     arrays were checked): {}; run the pipeline again and archive its new \
+                     manifest to have them checked",
+                    manifest.display(),
+                    done.unchecked.join(", ")
+                );
+            }
             if !cli.quiet {
-                println!("{}: bundle of {n} files", out.display());
+                println!("{}: bundle of {} files", out.display(), done.files);
             }
             Ok(0)
         }

@@ -9,7 +9,8 @@
 //!                 "data" (only with data.channels / data.rate) },
 //!   "inputs": [ { "path", "size", "blake3" } ],
 //!   "units": [ { "stage", "subject", "op", "op_version", "params", "key", "inputs",
-//!                "outputs": [ { "file", "blake3", "shape", "dtype" } ],
+//!                "outputs": [ { "file", "blake3", "shape", "dtype",
+//!                               "companions": [ { "kind", "file", "blake3" } ] } ],
 //!                "status": "computed" | "cached", "seconds" } ],
 //!   "epochs": { subject or "group": { stage: record } }, "warnings": [ { "stage", "subject",
 //!   "message" } ], "started", "finished" }
@@ -19,6 +20,13 @@
 //! be verified wherever it is unpacked. `pipeline.subjects` is `null` for a full run and the
 //! selection for a `run --subject` part. Ordering is deterministic: units in topological stage
 //! order then subject, inputs by path, warnings in unit order.
+//!
+//! `companions` (an addition to format version 1 that older readers ignore) lists every other
+//! file an exported output's export wrote and a user reads — its JSON sidecar (`sidecar`), its
+//! tidy table (`table`) and the table's column dictionary (`columns`) — with the blake3 of its
+//! bytes, so that `verify` and `archive` check them as they check the NPY against `blake3`. A
+//! manifest written before it existed has no `companions` on any output: it still reads, and
+//! `verify` and `archive` then check the arrays only and say so.
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -164,6 +172,47 @@ pub struct OutputRecord {
     /// `archive` check them as they check an NPY export against `blake3`.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub store: Option<crate::zarr::StoreHashes>,
+    /// For an exported output: the other files its export wrote (sidecar, table, column
+    /// dictionary), each with its blake3, in that order. `None` when not exported, and in
+    /// manifests written before phasewise recorded them (whose sidecars and tables nothing
+    /// checks).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub companions: Option<Vec<Companion>>,
+}
+
+/// A file written beside an exported array, that users read: its sidecar, table or column
+/// dictionary.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Companion {
+    /// What it is.
+    pub kind: CompanionKind,
+    /// The file, relative to the output folder (or the bundle's root, in an archive).
+    pub file: String,
+    /// blake3 of its bytes.
+    pub blake3: String,
+}
+
+/// What a [`Companion`] is.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum CompanionKind {
+    /// The array's JSON sidecar (format 2: dims, coords, attrs).
+    Sidecar,
+    /// The tidy table (TSV).
+    Table,
+    /// The table's column dictionary (JSON).
+    Columns,
+}
+
+impl CompanionKind {
+    /// How messages name it.
+    pub fn describe(self) -> &'static str {
+        match self {
+            CompanionKind::Sidecar => "sidecar",
+            CompanionKind::Table => "table",
+            CompanionKind::Columns => "column dictionary",
+        }
+    }
 }
 
 /// The source revision of this build, as `build.rs` recorded it: the commit, with `-dirty` when
@@ -230,6 +279,9 @@ pub fn build(study: &Study, outcome: &Outcome, started: &str, finished: &str) ->
 fn unit_record(study: &Study, outcome: &Outcome, u: usize) -> UnitRecord {
     let fp = &study.fingerprints[u];
     let result = &outcome.results[u];
+    let recorded = result.export.as_deref().and_then(|file| {
+        crate::output::recorded_export(&study.pipeline.output, file, &study.store)
+    });
     UnitRecord {
         stage: study.stage_name(u).into(),
         subject: study.subject(u).map(str::to_string),
@@ -243,9 +295,8 @@ fn unit_record(study: &Study, outcome: &Outcome, u: usize) -> UnitRecord {
             blake3: result.record.blake3.clone(),
             shape: result.record.shape.clone(),
             dtype: result.record.dtype.clone(),
-            store: result.export.as_deref().and_then(|file| {
-                crate::output::recorded_store_hashes(&study.pipeline.output, file, &study.store)
-            }),
+            store: recorded.as_ref().and_then(|r| r.store_hashes()),
+            companions: recorded.map(|r| r.companions),
         }],
         status: if result.computed {
             "computed"

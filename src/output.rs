@@ -30,6 +30,7 @@ use crate::fsio::{
     atomic_write, bookkeeping_write, remove_stale_temps, write_then_rename, Declined, Destination,
     WriteReason,
 };
+use crate::manifest::{Companion, CompanionKind};
 use crate::store::{write_npy_to, Damage, ObjectRecord, Store, StoreError};
 
 /// An export that could not be written.
@@ -159,13 +160,25 @@ pub struct ExportRecord {
     /// Every file written, with its stat right after.
     pub files: Vec<FileStat>,
     /// For a Zarr store: the blake3 of each of its files, by path inside the store (for the
-    /// manifest, [`recorded_store_hashes`]).
+    /// manifest, [`recorded_export`]).
     #[serde(default, skip_serializing_if = "std::collections::BTreeMap::is_empty")]
     pub store: crate::zarr::StoreHashes,
+    /// The sidecar, table and column dictionary written, with the blake3 of the bytes written
+    /// (for the manifest's `companions`).
+    #[serde(default)]
+    pub companions: Vec<Companion>,
+}
+
+impl ExportRecord {
+    /// The Zarr store's hashes, `None` for an NPY export.
+    pub fn store_hashes(&self) -> Option<crate::zarr::StoreHashes> {
+        (!self.store.is_empty()).then(|| self.store.clone())
+    }
 }
 
 /// Version of [`ExportRecord`]; records of another version are ignored (the export is written).
-pub const EXPORT_FORMAT_VERSION: u32 = 2;
+/// 3: `companions`.
+pub const EXPORT_FORMAT_VERSION: u32 = 3;
 
 impl ExportTarget<'_> {
     fn npy_path(&self) -> PathBuf {
@@ -173,9 +186,14 @@ impl ExportTarget<'_> {
     }
 
     fn tsv_path(&self) -> PathBuf {
+        self.output.join(self.relative_tsv())
+    }
+
+    /// The table relative to the output folder.
+    fn relative_tsv(&self) -> String {
         match self.subject {
-            None => self.output.join(format!("{}.tsv", self.stage)),
-            Some(s) => self.output.join(s).join(format!("{}.tsv", self.stage)),
+            None => format!("{}.tsv", self.stage),
+            Some(s) => format!("{s}/{}.tsv", self.stage),
         }
     }
 
@@ -184,7 +202,12 @@ impl ExportTarget<'_> {
     /// BIDS sidecar does to the files below it (the BIDS inheritance principle); the subjects'
     /// folders already hold the arrays' `<stage>.json`.
     fn dictionary_path(&self) -> PathBuf {
-        self.output.join(format!("{}.json", self.stage))
+        self.output.join(self.relative_dictionary())
+    }
+
+    /// The column dictionary relative to the output folder.
+    fn relative_dictionary(&self) -> String {
+        format!("{}.json", self.stage)
     }
 
     /// The files whose stat the export record keeps: the NPY, JSON and (for tables) TSV an
@@ -345,42 +368,62 @@ pub fn export(
         message: e.to_string(),
     })?;
     write_atomically(&npy_path.with_extension("json"), &text)?;
-    write_tables(target, record, from, store)?;
-    write_export_record(target, record, store, Default::default());
+    let mut companions = vec![Companion {
+        kind: CompanionKind::Sidecar,
+        file: format!("{}.json", relative.trim_end_matches(".npy")),
+        blake3: blake3::hash(&text).to_hex().to_string(),
+    }];
+    companions.extend(write_tables(target, record, from, store)?);
+    write_export_record(target, record, store, Default::default(), companions);
     Ok(relative)
 }
 
-/// For a table (`meta.extra.table`), write its column dictionary and its TSV.
+/// For a table (`meta.extra.table`), write its column dictionary and its TSV; returns them as
+/// the manifest records them (none for an output that is no table).
 pub(crate) fn write_tables(
     target: &ExportTarget<'_>,
     record: &ObjectRecord,
     from: ExportFrom<'_>,
     store: &Store,
-) -> Result<(), ExportError> {
-    if is_table(record) {
-        write_column_dictionary(target, record)?;
-        match from {
-            ExportFrom::Array(array) => write_table(target, array)?,
-            ExportFrom::Object => {
-                let values = store
-                    .load_values(&record.key, record)
-                    .map_err(ExportError::Damaged)?;
-                let array = LabelledArray::checked(record.layout.clone(), values)
-                    .map_err(|e| ExportError::Damaged(Damage::Layout(e.into())))?;
-                write_table(target, &array)?;
-            }
-        }
+) -> Result<Vec<Companion>, ExportError> {
+    if !is_table(record) {
+        return Ok(Vec::new());
     }
-    Ok(())
+    let columns = write_column_dictionary(target, record)?;
+    let table = match from {
+        ExportFrom::Array(array) => write_table(target, array)?,
+        ExportFrom::Object => {
+            let values = store
+                .load_values(&record.key, record)
+                .map_err(ExportError::Damaged)?;
+            let array = LabelledArray::checked(record.layout.clone(), values)
+                .map_err(|e| ExportError::Damaged(Damage::Layout(e.into())))?;
+            write_table(target, &array)?
+        }
+    };
+    Ok(vec![
+        Companion {
+            kind: CompanionKind::Table,
+            file: target.relative_tsv(),
+            blake3: table,
+        },
+        Companion {
+            kind: CompanionKind::Columns,
+            file: target.relative_dictionary(),
+            blake3: columns,
+        },
+    ])
 }
 
-/// Keep the stat of every file just written (and, for a store, its files' hashes) in the
-/// export record, which [`is_current`] reads on the next run.
+/// Keep the stat of every file just written (and, for a store, its files' hashes; the hashes
+/// of the sidecar and tables written) in the export record, which [`is_current`] reads on the
+/// next run and the manifest takes its hashes from ([`recorded_export`]).
 pub(crate) fn write_export_record(
     target: &ExportTarget<'_>,
     record: &ObjectRecord,
     store: &Store,
     hashes: crate::zarr::StoreHashes,
+    companions: Vec<Companion>,
 ) {
     let files: Option<Vec<FileStat>> = target
         .files(record, store)
@@ -394,6 +437,7 @@ pub(crate) fn write_export_record(
             blake3: record.blake3.clone(),
             files,
             store: hashes,
+            companions,
         };
         // Losing the record only costs a rewrite next time.
         if let Ok(bytes) = serde_json::to_vec(&last) {
@@ -402,17 +446,14 @@ pub(crate) fn write_export_record(
     }
 }
 
-/// The blake3 of every file of the Zarr store exported at `relative` (below `output`), as the
-/// export record kept them when the store was written: `None` for an NPY export, or when the
-/// record is gone (the manifest then lists no files of the store).
-pub fn recorded_store_hashes(
-    output: &Path,
-    relative: &str,
-    store: &Store,
-) -> Option<crate::zarr::StoreHashes> {
+/// The export record of the export at `relative` (below `output`): the hashes of the files
+/// written (a Zarr store's files, the sidecar and tables) as they were when written. `None`
+/// when the record is gone or of another version (the manifest then lists none of them).
+pub fn recorded_export(output: &Path, relative: &str, store: &Store) -> Option<ExportRecord> {
     let bytes = std::fs::read(export_record_path(&output.join(relative), store)).ok()?;
-    let last: ExportRecord = serde_json::from_slice(&bytes).ok()?;
-    (!last.store.is_empty()).then_some(last.store)
+    serde_json::from_slice::<ExportRecord>(&bytes)
+        .ok()
+        .filter(|r| r.format_version == EXPORT_FORMAT_VERSION)
 }
 
 /// Version of the exported sidecar's form ([`sidecar`]).
@@ -602,11 +643,12 @@ pub fn sidecar_axes(
     Ok((dims, out))
 }
 
-/// Write the column dictionary of the unit's table ([`ExportTarget::dictionary_path`]).
+/// Write the column dictionary of the unit's table ([`ExportTarget::dictionary_path`]); returns
+/// the blake3 of its bytes.
 fn write_column_dictionary(
     target: &ExportTarget<'_>,
     record: &ObjectRecord,
-) -> Result<(), OutputError> {
+) -> Result<String, OutputError> {
     let path = target.dictionary_path();
     let dictionary = phasewise_stages::table::column_dictionary(&record.layout);
     let fail = |message: String| OutputError {
@@ -621,7 +663,8 @@ fn write_column_dictionary(
         )));
     }
     let text = serde_json::to_vec_pretty(&dictionary).map_err(|e| fail(e.to_string()))?;
-    write_atomically(&path, &text)
+    write_atomically(&path, &text)?;
+    Ok(blake3::hash(&text).to_hex().to_string())
 }
 
 /// True for outputs that are also written as a tidy table.
@@ -629,11 +672,17 @@ pub fn is_table(record: &ObjectRecord) -> bool {
     record.layout.meta.extra.get("table") == Some(&serde_json::Value::Bool(true))
 }
 
-/// The table of `array`, streamed to its file as it is formatted (never whole in memory).
-fn write_table(target: &ExportTarget<'_>, array: &LabelledArray) -> Result<(), OutputError> {
+/// The table of `array`, streamed to its file as it is formatted (never whole in memory), and
+/// hashed on the way; returns the blake3 of its bytes.
+fn write_table(target: &ExportTarget<'_>, array: &LabelledArray) -> Result<String, OutputError> {
+    let mut hasher = blake3::Hasher::new();
     write_streamed_atomically(&target.tsv_path(), |sink| {
-        phasewise_stages::table::write_tidy_tsv(array, sink)
-    })
+        phasewise_stages::table::write_tidy_tsv(array, &mut |piece: &str| {
+            hasher.update(piece.as_bytes());
+            sink(piece)
+        })
+    })?;
+    Ok(hasher.finalize().to_hex().to_string())
 }
 
 /// [`write_atomically`] for text that `fill` hands on piece by piece: through a temporary file,

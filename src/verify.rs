@@ -6,17 +6,22 @@
 //! effective pipeline is run into a fresh temporary cache and output folder, and each recorded
 //! output is compared: bit-identical, or the largest absolute difference between the old and the
 //! new values (the old values are read from the exported file, or from the pipeline's default
-//! cache when the output was not exported).
+//! cache when the output was not exported). Every exported file the manifest hashes (the NPY, a
+//! Zarr store's files, the sidecar, table and column dictionary) is checked on disk, and the
+//! sidecars, tables and dictionaries the rerun writes are compared with the recorded hashes.
+//! A manifest from before the sidecars and tables were hashed (no `companions`) has its arrays
+//! checked only, and the report says so.
 
 use std::path::{Path, PathBuf};
 
 use phasewise_stages::Values;
 
-use crate::manifest::{self, Manifest, UnitRecord};
+use crate::manifest::{self, Companion, Manifest, UnitRecord};
 use crate::session::{self, Env, Options};
 use crate::sources::hash_file;
 use crate::store::{values_from_npy, Store};
 use crate::study::subject_label;
+use crate::words;
 
 /// The verdict on one recorded output.
 #[derive(Clone, Debug, PartialEq)]
@@ -52,6 +57,12 @@ pub struct VerifyReport {
     /// Exported files and Zarr stores that changed since the run or are missing, one sentence
     /// each (their recorded blake3 against the files in the output folder).
     pub export_problems: Vec<String>,
+    /// Sidecars, tables and column dictionaries the rerun wrote with other bytes than the run
+    /// recorded, one sentence each.
+    pub companion_differences: Vec<String>,
+    /// What could not be checked, one sentence each; not a failure (a manifest that records no
+    /// hashes of its sidecars and tables).
+    pub unchecked: Vec<String>,
     /// The rerun's failure, if it failed.
     pub run_failure: Option<String>,
     /// Per-output verdicts, in the manifest's order.
@@ -64,6 +75,7 @@ impl VerifyReport {
     pub fn reproduced(&self) -> bool {
         self.input_problems.is_empty()
             && self.export_problems.is_empty()
+            && self.companion_differences.is_empty()
             && self.run_failure.is_none()
             && self
                 .outputs
@@ -83,6 +95,8 @@ impl VerifyReport {
     pub fn lines(&self) -> Vec<String> {
         let mut lines = self.input_problems.clone();
         lines.extend(self.export_problems.iter().cloned());
+        lines.extend(self.companion_differences.iter().cloned());
+        lines.extend(self.unchecked.iter().cloned());
         if let Some(f) = &self.run_failure {
             lines.push(format!("the rerun failed: {f}"));
         }
@@ -146,9 +160,11 @@ pub fn verify_with(
             }
         }
     };
+    let (export_problems, unchecked) = check_exports(&old, &output);
     let mut report = VerifyReport {
         input_problems: check_inputs(&old, &pipeline_file, &place),
-        export_problems: check_exports(&old, &output),
+        export_problems,
+        unchecked,
         ..VerifyReport::default()
     };
     if !pipeline_file.is_file() {
@@ -185,6 +201,9 @@ pub fn verify_with(
             .join(".phasewise"),
     );
     for unit in &old.units {
+        report
+            .companion_differences
+            .extend(compare_companions(unit, &rerun));
         let verdict = compare_unit(unit, &rerun, &output, &old_store, &new_store);
         report.outputs.push(OutputCheck {
             stage: unit.stage.clone(),
@@ -257,12 +276,19 @@ fn check_inputs(old: &Manifest, pipeline_file: &Path, place: &Place) -> Vec<Stri
 }
 
 /// The recorded exports against the output folder: an NPY by its blake3, a Zarr store by the
-/// blake3 of each of its files (naming those that changed, are missing or were added).
-fn check_exports(old: &Manifest, output: &Path) -> Vec<String> {
+/// blake3 of each of its files (naming those that changed, are missing or were added), the
+/// sidecar, table and column dictionary by theirs. Returns the problems, and a note when some
+/// exports' sidecars and tables have no recorded hash (an older manifest).
+fn check_exports(old: &Manifest, output: &Path) -> (Vec<String>, Vec<String>) {
     let mut problems = Vec::new();
+    let mut unrecorded = Vec::new();
     for unit in &old.units {
         for record in &unit.outputs {
             let Some(file) = &record.file else { continue };
+            match &record.companions {
+                None => unrecorded.push(file.clone()),
+                Some(companions) => problems.extend(changed_companions(companions, output)),
+            }
             let path = output.join(file);
             match &record.store {
                 Some(_) if !path.is_dir() => {
@@ -288,7 +314,68 @@ fn check_exports(old: &Manifest, output: &Path) -> Vec<String> {
             }
         }
     }
+    let mut unchecked = Vec::new();
+    if !unrecorded.is_empty() {
+        unchecked.push(format!(
+            "not checked: the sidecars and tables exported beside {} ({}): this manifest records              no hash of them (written by an older phasewise, or its export record was lost), so              only the arrays were checked; running the pipeline again records them",
+            words::count(unrecorded.len(), "export", "exports"),
+            unrecorded.join(", ")
+        ));
+    }
+    (problems, unchecked)
+}
+
+/// The recorded companions (sidecar, table, column dictionary) whose file under `root` is
+/// missing or no longer has its recorded blake3, one sentence each naming the file.
+pub fn changed_companions(companions: &[Companion], root: &Path) -> Vec<String> {
+    let mut problems = Vec::new();
+    for c in companions {
+        let what = c.kind.describe();
+        match hash_file(&root.join(&c.file)) {
+            Err(_) => problems.push(format!("the exported {what} {} is missing", c.file)),
+            Ok((_, hash)) if hash != c.blake3 => problems.push(format!(
+                "the exported {what} {} changed since the run (its blake3 is not the one the \
+                 manifest records)",
+                c.file
+            )),
+            Ok(_) => {}
+        }
+    }
     problems
+}
+
+/// The sidecar, table and column dictionary of `unit` against those the rerun wrote: one
+/// sentence for each whose bytes differ.
+fn compare_companions(unit: &UnitRecord, rerun: &Manifest) -> Vec<String> {
+    let new = rerun
+        .units
+        .iter()
+        .find(|u| u.stage == unit.stage && u.subject == unit.subject)
+        .and_then(|u| u.outputs.first())
+        .and_then(|o| o.companions.as_ref());
+    let (Some(old), Some(new)) = (
+        unit.outputs.first().and_then(|o| o.companions.as_ref()),
+        new,
+    ) else {
+        return Vec::new();
+    };
+    let who = format!(
+        "{} ({})",
+        unit.stage,
+        subject_label(unit.subject.as_deref())
+    );
+    old.iter()
+        .filter_map(|c| {
+            let again = new.iter().find(|n| n.kind == c.kind)?;
+            (again.blake3 != c.blake3).then(|| {
+                format!(
+                    "{who}: the rerun wrote a different {} than {} recorded",
+                    c.kind.describe(),
+                    c.file
+                )
+            })
+        })
+        .collect()
 }
 
 fn compare_unit(

@@ -144,8 +144,8 @@ pub fn export(
         path: path.clone(),
         message: e.to_string(),
     })?;
-    output::write_tables(target, record, ExportFrom::Array(array), store)?;
-    output::write_export_record(target, record, store, hashes);
+    let companions = output::write_tables(target, record, ExportFrom::Array(array), store)?;
+    output::write_export_record(target, record, store, hashes, companions);
     Ok(relative)
 }
 
