@@ -752,8 +752,9 @@ stages:
 /// End to end: simulate the demo study, run the pipeline with the `phasewise` binary, render
 /// the report, and find the planted coupling (read from the simulator's truth.json, not from
 /// the report) where it was planted: in the maps, outlined as a significant cluster of the
-/// contrast stage (six subjects: 2^6 = 64 sign-flip patterns, so the smallest possible p is
-/// 1/64 < 0.05; with four it would be 1/16 and nothing could be significant), and as the
+/// contrast stage (six subjects: 2^6 = 64 sign-flip patterns, a pattern and its mirror image
+/// giving the same |t|, so the smallest possible p is 2/64 < 0.05; with five it would be 2/32
+/// and nothing could be significant), and as the
 /// strongest line on the head.
 #[test]
 fn demo_report_shows_the_planted_coupling() {
