@@ -472,6 +472,7 @@ fn report_has_every_section_and_every_image_decodes() {
     }
     assert!(html.contains("not a clinical device") && html.contains("diagnosis or treatment"));
     assert!(!html.contains("<script"), "the page needs no scripts");
+    assert!(!html.contains("DESIGN"), "the page cites no file users lack");
     assert!(
         !html.contains("http://") && !html.contains("https://"),
         "the page loads nothing from outside"
