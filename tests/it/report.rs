@@ -472,7 +472,10 @@ fn report_has_every_section_and_every_image_decodes() {
     }
     assert!(html.contains("not a clinical device") && html.contains("diagnosis or treatment"));
     assert!(!html.contains("<script"), "the page needs no scripts");
-    assert!(!html.contains("DESIGN"), "the page cites no file users lack");
+    assert!(
+        !html.contains("DESIGN"),
+        "the page cites no file users lack"
+    );
     assert!(
         !html.contains("http://") && !html.contains("https://"),
         "the page loads nothing from outside"
@@ -550,7 +553,15 @@ fn relabel_group(f: &Fixture, labels: [&str; 4]) {
         "band",
         "window",
     ];
-    write_array(&f.out, "group", "group", &dims, coords, "1", &group_values());
+    write_array(
+        &f.out,
+        "group",
+        "group",
+        &dims,
+        coords,
+        "1",
+        &group_values(),
+    );
 }
 
 #[test]
@@ -561,8 +572,14 @@ fn no_head_is_drawn_for_channels_without_positions() {
     let s = render(&f);
     assert!(s.figures.iter().any(|x| x.kind == FigureKind::Head));
     for (labels, placed) in [
-        (["LA1", "LA2", "LA3", "RH1"], "0 of its 4 channels have a position"),
-        (["Cz", "LA2", "LA3", "RH1"], "1 of its 4 channels has a position"),
+        (
+            ["LA1", "LA2", "LA3", "RH1"],
+            "0 of its 4 channels have a position",
+        ),
+        (
+            ["Cz", "LA2", "LA3", "RH1"],
+            "1 of its 4 channels has a position",
+        ),
     ] {
         relabel_group(&f, labels);
         let s = render(&f);

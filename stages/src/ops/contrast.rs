@@ -1925,8 +1925,10 @@ mod tests {
                 })
                 .count();
             assert_eq!(flips.always_reaching(), repeats);
-            let p = params(json!({ "over": "subjects", "condition": "a", "correction": "max",
-                                   "permutations": 20, "alpha": 0.05, "seed": seed }));
+            let p = params(
+                json!({ "over": "subjects", "condition": "a", "correction": "max",
+                                   "permutations": 20, "alpha": 0.05, "seed": seed }),
+            );
             let mut notes = Notes::default();
             let out = run_noting(&p, &ids, &arrays, &mut notes).unwrap();
             let floor = repeats as f64 / 20.0;
@@ -1939,7 +1941,10 @@ mod tests {
             assert_eq!(warned, floor > 0.05, "seed {seed}: {notes:?}");
             floors.push(repeats);
         }
-        assert!(floors.contains(&1) && floors.iter().any(|&k| k > 1), "{floors:?}");
+        assert!(
+            floors.contains(&1) && floors.iter().any(|&k| k > 1),
+            "{floors:?}"
+        );
     }
 
     fn statistic(out: &LabelledArray, name: &str) -> Vec<f64> {
