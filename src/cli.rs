@@ -82,7 +82,7 @@ pub enum Command {
         data: Option<PathBuf>,
     },
     /// Write a bundle for a journal or a data repository: BIDS derivative layout, the pipeline,
-    /// the manifest and RO-Crate 1.1 metadata (DESIGN §6).
+    /// the manifest and RO-Crate 1.1 metadata (README, "A bundle for a journal or a repository").
     Archive {
         /// The manifest.json of a whole run.
         manifest: PathBuf,
@@ -169,7 +169,7 @@ pub enum Command {
     Schema,
     /// Run the pipeline once per variant of some params (a grid of `--vary` lists), each into
     /// `<output>/variants/<name>/`, sharing one cache; line up their group results in
-    /// `<output>/sweep.tsv` (DESIGN §6).
+    /// `<output>/sweep.tsv` (README, "Does it hold with other parameters?").
     Sweep {
         /// Pipeline, `--set` overrides that every variant shares, and cache.
         #[command(flatten)]

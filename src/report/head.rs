@@ -99,6 +99,39 @@ pub(crate) fn head_figures(
         .filter(|(_, a)| a.is_none())
         .map(|(n, _)| n)
         .collect();
+    // Nothing to draw on a head when no pair has both channels placed (fewer than two channels
+    // with a position, as for SEEG contacts recorded without positions): no figure, one note.
+    if !at.chunks(2).any(|ends| ends.iter().all(Option::is_some)) {
+        let mut placed: Vec<&String> = cube
+            .pairs
+            .iter()
+            .flatten()
+            .zip(&at)
+            .filter(|(_, a)| a.is_some())
+            .map(|(n, _)| n)
+            .collect();
+        placed.sort();
+        placed.dedup();
+        let mut all: Vec<&String> = cube.pairs.iter().flatten().collect();
+        all.sort();
+        all.dedup();
+        let why = if placed.len() < 2 {
+            format!(
+                "{} of its {} channels {} a position",
+                placed.len(),
+                all.len(),
+                if placed.len() == 1 { "has" } else { "have" }
+            )
+        } else {
+            "no pair joins two channels that have a position".to_string()
+        };
+        ctx.not_drawn.push(format!(
+            "{}: no head figures, since {why} (none in the recordings' metadata, and the labels \
+             are not standard 10-20 / 10-10 names)",
+            l.source()
+        ));
+        return Ok(());
+    }
     if !missing.is_empty() {
         let mut m: Vec<&String> = missing;
         m.sort();
@@ -303,8 +336,8 @@ fn head_figure(
         (TOP_SHARE * 100.0).round(),
         map.name(),
         "from the recordings' electrode positions where recorded, else derived from the standard \
-         10-20 label (DESIGN §4b), projected azimuthally (angle from the vertex → distance from \
-         the centre)",
+         10-20 label (README, \"Electrode positions\"), projected azimuthally (angle from the \
+         vertex → distance from the centre)",
         stat_note
     );
     Draft {

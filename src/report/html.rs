@@ -411,6 +411,9 @@ fn summary(m: &Manifest, dir: &Path) -> String {
     rows.push(("format".into(), format));
     for part in ["tool", "pipeline", "platform"] {
         scalars(raw.get(part), part, &mut rows);
+        if part == "pipeline" {
+            rows.push(("run with overrides (--set)".into(), overrides(raw)));
+        }
     }
     if let Some(inputs) = raw.get("inputs").and_then(Value::as_array) {
         let bytes: u64 = inputs
@@ -442,6 +445,20 @@ fn summary(m: &Manifest, dir: &Path) -> String {
     }
     out.push_str("</dl>\n");
     out
+}
+
+/// The run's `--set` overrides as the manifest lists them (`pipeline.overrides`), one after
+/// another, or `none`.
+fn overrides(raw: &Value) -> String {
+    match raw.pointer("/pipeline/overrides").and_then(Value::as_array) {
+        None => "not recorded in the manifest".to_string(),
+        Some(list) if list.is_empty() => "none".to_string(),
+        Some(list) => list
+            .iter()
+            .map(|v| v.as_str().map_or_else(|| v.to_string(), str::to_string))
+            .collect::<Vec<_>>()
+            .join("; "),
+    }
 }
 
 /// `part.field: value` for the scalar fields of an object (nested objects one level down).

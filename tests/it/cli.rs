@@ -678,3 +678,28 @@ fn rough_edges_of_the_command_line_get_words_a_user_can_act_on() {
     assert!(text.contains("matches no file"), "{text}");
     assert!(text.contains("`--data DIR` names the folder"), "{text}");
 }
+
+/// What users read never cites DESIGN.md, which is not in the repository: no help text of any
+/// command or argument (clap's own rendering of every subcommand's long help), and no
+/// description in the pipeline schema editors show.
+#[test]
+fn help_texts_and_the_schema_cite_no_file_users_lack() {
+    fn walk(command: &mut clap::Command, path: String, found: &mut Vec<String>) {
+        let help = command.render_long_help().to_string();
+        if help.contains("DESIGN") {
+            found.push(path.clone());
+        }
+        for sub in command.get_subcommands_mut() {
+            let name = format!("{path} {}", sub.get_name());
+            walk(sub, name, found);
+        }
+    }
+    let mut command = <phasewise::cli::Cli as clap::CommandFactory>::command();
+    command.build();
+    let mut found = Vec::new();
+    walk(&mut command, "phasewise".into(), &mut found);
+    assert!(found.is_empty(), "help citing DESIGN: {found:?}");
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let schema = fs::read_to_string(root.join(phasewise::schema::COMMITTED)).unwrap();
+    assert!(!schema.contains("DESIGN"), "the schema cites DESIGN");
+}

@@ -473,6 +473,10 @@ fn report_has_every_section_and_every_image_decodes() {
     assert!(html.contains("not a clinical device") && html.contains("diagnosis or treatment"));
     assert!(!html.contains("<script"), "the page needs no scripts");
     assert!(
+        !html.contains("DESIGN"),
+        "the page cites no file users lack"
+    );
+    assert!(
         !html.contains("http://") && !html.contains("https://"),
         "the page loads nothing from outside"
     );
@@ -491,6 +495,117 @@ fn report_has_every_section_and_every_image_decodes() {
     // The group table shows the group row, not the subject's.
     assert!(html.contains("<td class=\"n\">0.3</td><td class=\"n\">0.01</td>"));
     assert!(!html.contains("<td class=\"n\">0.31</td>"));
+}
+
+#[test]
+fn run_summary_shows_the_set_overrides() {
+    // `pipeline.overrides` of the manifest (the `--set` arguments, src/manifest.rs): none in
+    // the fixture, then two.
+    let f = fixture();
+    render(&f);
+    let html = fs::read_to_string(&f.html).unwrap();
+    assert!(
+        html.contains("<dt>run with overrides (--set)</dt><dd>none</dd>"),
+        "the summary says there were no overrides"
+    );
+    let mut m = manifest();
+    m["pipeline"]["overrides"] = json!(["norm.window=[-0.25,-0.05]", "stats.alpha=0.01"]);
+    fs::write(
+        f.out.join("manifest.json"),
+        serde_json::to_vec_pretty(&m).unwrap(),
+    )
+    .unwrap();
+    render(&f);
+    let html = fs::read_to_string(&f.html).unwrap();
+    assert!(
+        html.contains(
+            "<dt>run with overrides (--set)</dt><dd>norm.window=[-0.25,-0.05]; \
+             stats.alpha=0.01</dd>"
+        ),
+        "{}",
+        &html[html.find("<dl class=\"kv\">").unwrap()..][..1500]
+    );
+}
+
+/// Rewrites the fixture's group aggregate with channels named `labels` (no positions in the
+/// metadata): SEEG-like contact names are not 10-20 / 10-10 labels, so they have no position.
+fn relabel_group(f: &Fixture, labels: [&str; 4]) {
+    let mut pairs = Vec::new();
+    for (i, a) in labels.iter().enumerate() {
+        for b in &labels[i + 1..] {
+            pairs.push([a.to_string(), b.to_string()]);
+        }
+    }
+    let mut coords = vec![
+        Coord::Labels(vec!["mean".into(), "sem".into(), "n".into()]),
+        Coord::Labels(vec!["sub-01".into(), "sub-02".into(), "group".into()]),
+    ];
+    coords.extend(tf_coords().into_iter().take(2));
+    coords.push(Coord::Pairs(pairs.into()));
+    coords.push(Coord::Labels(vec!["theta".into()]));
+    coords.push(Coord::Labels(vec!["late".into()]));
+    let dims = [
+        "statistic",
+        "subject",
+        "condition",
+        "measure",
+        "pair",
+        "band",
+        "window",
+    ];
+    write_array(
+        &f.out,
+        "group",
+        "group",
+        &dims,
+        coords,
+        "1",
+        &group_values(),
+    );
+}
+
+#[test]
+fn no_head_is_drawn_for_channels_without_positions() {
+    // The fixture as written (10-20 labels) has head figures; the same values on SEEG contact
+    // names have none, with one note saying why, and no scalp outline anywhere.
+    let f = fixture();
+    let s = render(&f);
+    assert!(s.figures.iter().any(|x| x.kind == FigureKind::Head));
+    for (labels, placed) in [
+        (
+            ["LA1", "LA2", "LA3", "RH1"],
+            "0 of its 4 channels have a position",
+        ),
+        (
+            ["Cz", "LA2", "LA3", "RH1"],
+            "1 of its 4 channels has a position",
+        ),
+    ] {
+        relabel_group(&f, labels);
+        let s = render(&f);
+        let heads: Vec<&str> = s
+            .figures
+            .iter()
+            .filter(|x| x.kind == FigureKind::Head)
+            .map(|x| x.id.as_str())
+            .collect();
+        assert!(heads.is_empty(), "{labels:?}: {heads:?}");
+        let notes: Vec<&String> = s
+            .not_drawn
+            .iter()
+            .filter(|n| n.contains("head figure"))
+            .collect();
+        assert_eq!(notes.len(), 1, "{labels:?}: {:?}", s.not_drawn);
+        assert!(
+            notes[0].contains("group/group") && notes[0].contains(placed),
+            "{}",
+            notes[0]
+        );
+        let html = fs::read_to_string(&f.html).unwrap();
+        assert!(!html.contains("head-group-group"), "{labels:?}");
+        assert!(!html.contains("is at least n/a"), "{labels:?}");
+        assert_eq!(html.matches("no head figures").count(), 1, "{labels:?}");
+    }
 }
 
 #[test]
@@ -752,8 +867,9 @@ stages:
 /// End to end: simulate the demo study, run the pipeline with the `phasewise` binary, render
 /// the report, and find the planted coupling (read from the simulator's truth.json, not from
 /// the report) where it was planted: in the maps, outlined as a significant cluster of the
-/// contrast stage (six subjects: 2^6 = 64 sign-flip patterns, so the smallest possible p is
-/// 1/64 < 0.05; with four it would be 1/16 and nothing could be significant), and as the
+/// contrast stage (six subjects: 2^6 = 64 sign-flip patterns, a pattern and its mirror image
+/// giving the same |t|, so the smallest possible p is 2/64 < 0.05; with five it would be 2/32
+/// and nothing could be significant), and as the
 /// strongest line on the head.
 #[test]
 fn demo_report_shows_the_planted_coupling() {

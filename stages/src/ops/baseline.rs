@@ -33,7 +33,7 @@ pub struct BaselineParams {
     pub mode: BaselineMode,
 }
 
-/// How a value is expressed relative to its baseline (DESIGN §4).
+/// How a value is expressed relative to its baseline.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum BaselineMode {

@@ -11,7 +11,10 @@
 //! 2^n ≤ `permutations`; otherwise the unflipped data and `permutations` − 1 random patterns
 //! drawn from `seed`, in chunks of [`CHUNK`] whose patterns depend on (seed, chunk) only. A
 //! p-value is the share of patterns (the unflipped one included) whose statistic reaches the
-//! observed one, so it is never below 1 / patterns.
+//! observed one. The unflipped pattern and its mirror image (every sign flipped) always reach
+//! it, so no p is below 2 / 2^n with all patterns, nor below 1 / patterns with random ones
+//! (more when a random draw repeats either: [`Flips::always_reaching`]); the op warns when that
+//! floor is above `alpha`.
 //!
 //! Corrections, each over the family of all points and pairs of one measure:
 //! - `cluster` (Maris & Oostenveld 2007, J Neurosci Methods 164:177–190): points whose |t|
@@ -507,6 +510,29 @@ impl Flips {
     /// Number of patterns.
     pub fn count(&self) -> usize {
         self.masks.len() / self.groups.len().max(1)
+    }
+
+    /// How many patterns reach the observed statistic whatever the data: the unflipped pattern
+    /// and its mirror image (every subject negated: sums exactly opposite, so the same |t|, the
+    /// same clusters and the same |mass|), each as often as it occurs. Under every correction
+    /// the smallest p the test can give is this over [`Flips::count`]: 2 / 2^n for all 2^n
+    /// patterns (the exact two-sided sign-flip test, Nichols & Holmes 2002), 1 / count or more
+    /// for random ones, as the random draws may repeat either (p = (b + 1) / (m + 1) of Phipson
+    /// & Smyth 2010, Stat Appl Genet Mol Biol 9:39, with m random patterns).
+    pub fn always_reaching(&self) -> usize {
+        let g = self.groups.len();
+        if g == 0 {
+            return self.count();
+        }
+        let full: Vec<u8> = self
+            .groups
+            .iter()
+            .map(|r| ((1u16 << r.len()) - 1) as u8)
+            .collect();
+        self.masks
+            .chunks(g)
+            .filter(|row| row.iter().all(|&m| m == 0) || *row == full.as_slice())
+            .count()
     }
 }
 
@@ -1572,23 +1598,38 @@ impl Op for Contrast {
         let (measures, pairs, rows, cols) = (shape[0], shape[1], shape[2], shape[3]);
         let count = pattern_count(p, n);
         let exact = exact_count(p, n).is_some();
-        if (count as f64) * p.alpha < 1.0 {
+        let flips = Flips::new(n, count, exact, p.seed);
+        let floor = flips.always_reaching();
+        let smallest = floor as f64 / count as f64;
+        if smallest > p.alpha {
+            let why = if exact {
+                format!(
+                    "{n} subjects allow only {count} sign-flip patterns, and a pattern and its \
+                     mirror image (every sign flipped) give the same |t|"
+                )
+            } else {
+                format!(
+                    "the {count} sign-flip patterns include the unflipped data and its mirror \
+                     image (same |t|) {floor} times"
+                )
+            };
             notes.warn(format!(
-                "contrast: {n} subjects allow only {count} sign-flip patterns, so no p-value can \
-                 reach alpha {} (the smallest possible p is 1/{count})",
+                "contrast: {why}, so the smallest possible p is {floor}/{count} = {}, above \
+                 alpha {}: nothing can be significant",
+                number_text(smallest),
                 p.alpha
             ));
         }
         let family = pairs * rows * cols;
-        if p.correction == Correction::Fdr && (count as f64) * p.alpha < family as f64 {
+        if p.correction == Correction::Fdr && smallest * family as f64 > p.alpha {
             notes.warn(format!(
                 "contrast: fdr over {family} points per measure needs permutation p-values down \
-                 to alpha / {family}, but {count} patterns give none below 1/{count}: nothing \
-                 can be significant unless permutations ≥ {:.0} (or narrow pairs, freqs, times)",
+                 to alpha / {family}, but {count} patterns give none below {floor}/{count}: \
+                 nothing can be significant unless permutations ≥ {:.0} (or narrow pairs, freqs, \
+                 times)",
                 (family as f64 / p.alpha).ceil()
             ));
         }
-        let flips = Flips::new(n, count, exact, p.seed);
         let settings = Settings {
             correction: p.correction,
             threshold_t: stats::t_isf(p.threshold / 2.0, (n - 1) as f64),
@@ -1764,6 +1805,15 @@ mod tests {
         ids: &[String],
         arrays: &[LabelledArray],
     ) -> Result<LabelledArray, StageError> {
+        run_noting(p, ids, arrays, &mut Notes::default())
+    }
+
+    fn run_noting(
+        p: &ContrastParams,
+        ids: &[String],
+        arrays: &[LabelledArray],
+        notes: &mut Notes,
+    ) -> Result<LabelledArray, StageError> {
         let inputs: Vec<Input> = ids
             .iter()
             .zip(arrays)
@@ -1783,9 +1833,118 @@ mod tests {
             })
             .collect();
         let planned = Contrast::layout(p, &layouts)?;
-        let out = Contrast::run(p, &inputs, &mut Notes::default())?;
+        let out = Contrast::run(p, &inputs, notes)?;
         assert_eq!(planned.as_ref(), Some(&out.layout));
         Ok(out)
+    }
+
+    /// `n` subjects whose values are positive at every point and differ between subjects, one
+    /// condition `a` (tested against 0) over 1 measure, 2 pairs, 3 freqs and 4 times: every flip
+    /// pattern but the unflipped one and its mirror image gives a smaller |Σ ±dᵢ| everywhere, so
+    /// a smaller |t| at every point and a smaller mass for every cluster.
+    fn same_sign_study(n: usize) -> (Vec<String>, Vec<LabelledArray>) {
+        let layout = Layout {
+            dims: DIMS.map(String::from).to_vec(),
+            coords: vec![
+                Coord::Labels(vec!["a".into()]),
+                Coord::Labels(vec!["plv".into()]),
+                Coord::Pairs(vec![["F3".into(), "P4".into()], ["F3".into(), "Cz".into()]].into()),
+                Coord::Numbers(vec![4.0, 6.0, 8.0]),
+                Coord::Numbers(vec![0.0, 0.1, 0.2, 0.3]),
+            ],
+            units: "1".into(),
+            ..Layout::default()
+        };
+        let ids = (1..=n).map(|k| format!("sub-{k:02}")).collect();
+        let arrays = (0..n)
+            .map(|k| {
+                let v: Vec<f32> = (0..24)
+                    .map(|i| 0.5 + 0.1 * k as f32 + 0.01 * i as f32)
+                    .collect();
+                let v = ArrayD::from_shape_vec(IxDyn(&layout.shape()), v).unwrap();
+                LabelledArray::real(layout.clone(), v).unwrap()
+            })
+            .collect();
+        (ids, arrays)
+    }
+
+    fn smallest_p(out: &LabelledArray) -> f64 {
+        statistic(out, "p")
+            .into_iter()
+            .filter(|p| !p.is_nan())
+            .fold(f64::INFINITY, f64::min)
+    }
+
+    #[test]
+    fn smallest_p_of_all_patterns_is_two_over_two_to_the_n_and_warns_above_alpha() {
+        // The exact two-sided sign-flip test (Nichols & Holmes 2002, Hum Brain Mapp 15:1–25):
+        // p counts the observed pattern among all 2^n, and its mirror image gives the same |t|,
+        // so no p is below 2 / 2^n; same-sign subjects reach it under every correction.
+        for n in 3..=7usize {
+            let (ids, arrays) = same_sign_study(n);
+            let floor = 2.0 / (1u64 << n) as f64;
+            for correction in ["cluster", "max", "fdr", "none"] {
+                for alpha in [0.01, 0.05, 0.0625, 0.1] {
+                    let p = params(json!({ "over": "subjects", "condition": "a",
+                                           "correction": correction, "permutations": 4096,
+                                           "alpha": alpha }));
+                    let mut notes = Notes::default();
+                    let out = run_noting(&p, &ids, &arrays, &mut notes).unwrap();
+                    let what = format!("n {n} {correction} alpha {alpha}");
+                    assert_eq!(smallest_p(&out), floor, "{what}");
+                    let warned = notes
+                        .warnings
+                        .iter()
+                        .find(|w| w.contains("smallest possible p"));
+                    assert_eq!(warned.is_some(), floor > alpha, "{what}: {notes:?}");
+                    if let Some(w) = warned {
+                        let text = format!("is 2/{} = {}", 1 << n, number_text(floor));
+                        assert!(w.contains(&text), "{what}: {w}");
+                    }
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn smallest_p_of_random_patterns_counts_repeats_of_the_observed_and_its_mirror() {
+        // Random flips: p = (b + 1) / (m + 1) over m random patterns and the observed one
+        // (Phipson & Smyth 2010, Stat Appl Genet Mol Biol 9:39); a random pattern that happens
+        // to be the unflipped one or its mirror image reaches the observed |t| too. 5 subjects
+        // and 20 patterns (< 2^5, so random): 19 draws from 32 patterns hit either with
+        // probability 1 − (30/32)^19 ≈ 0.7, so some seeds give a floor of 2/20 > alpha.
+        let (ids, arrays) = same_sign_study(5);
+        let mut floors = Vec::new();
+        for seed in 1..=12u64 {
+            let flips = Flips::new(5, 20, false, seed);
+            // The patterns that negate no subject or all five, counted from the masks.
+            let repeats = (0..20)
+                .filter(|&k| {
+                    let row = &flips.masks[k * flips.groups.len()..(k + 1) * flips.groups.len()];
+                    row == [0] || row == [31]
+                })
+                .count();
+            assert_eq!(flips.always_reaching(), repeats);
+            let p = params(
+                json!({ "over": "subjects", "condition": "a", "correction": "max",
+                                   "permutations": 20, "alpha": 0.05, "seed": seed }),
+            );
+            let mut notes = Notes::default();
+            let out = run_noting(&p, &ids, &arrays, &mut notes).unwrap();
+            let floor = repeats as f64 / 20.0;
+            // The output stores p as f32.
+            assert_eq!(smallest_p(&out), f64::from(floor as f32), "seed {seed}");
+            let warned = notes
+                .warnings
+                .iter()
+                .any(|w| w.contains(&format!("smallest possible p is {repeats}/20")));
+            assert_eq!(warned, floor > 0.05, "seed {seed}: {notes:?}");
+            floors.push(repeats);
+        }
+        assert!(
+            floors.contains(&1) && floors.iter().any(|&k| k > 1),
+            "{floors:?}"
+        );
     }
 
     fn statistic(out: &LabelledArray, name: &str) -> Vec<f64> {
