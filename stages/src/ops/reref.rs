@@ -18,7 +18,7 @@ use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use crate::array::{Coord, LabelledArray, Layout};
-use crate::dsp::recording::{as_matrix, refuse_non_finite, Continuous, REPLACE_NON_FINITE};
+use crate::dsp::recording::{as_matrix, refuse_non_finite, Continuous};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
 
