@@ -113,6 +113,64 @@ pub fn as_matrix(values: &ArrayD<f32>) -> Result<ArrayView2<'_, f32>, StageError
     })
 }
 
+/// Refuses a NaN or infinite sample in the channels `rows` of `values` (axes `[channel, time]`
+/// or `[channel, trial, time]`, as `layout` says) before an op that spreads a sample over other
+/// samples or channels: after it, the value would be everywhere it spread (a zero-phase filter
+/// fills the whole channel, an average reference every channel at that time) and the epoch op
+/// would report it at the wrong channel and time. The error names the channel and the time of
+/// the earliest one (the first channel of those at that time; `rows` in channel order), then `spread` (what the op would
+/// do with it) and `instead` (what the user can do).
+pub fn refuse_non_finite(
+    values: &ArrayD<f32>,
+    layout: &Layout,
+    rows: impl IntoIterator<Item = usize>,
+    spread: &str,
+    instead: &str,
+) -> Result<(), StageError> {
+    // A pass without early exit first (it vectorises; the search below does not), so clean
+    // data costs one quick read.
+    let finite = |c: &[f32]| c.iter().fold(true, |ok, v| ok & v.is_finite());
+    if values
+        .as_slice()
+        .is_some_and(|v| v.chunks(1 << 14).all(finite))
+    {
+        return Ok(());
+    }
+    let mut first: Option<(usize, usize, f32)> = None;
+    for c in rows {
+        let lane = values.index_axis(Axis(0), c);
+        if let Some((k, &v)) = lane.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+            if first.is_none_or(|(at, _, _)| k < at) {
+                first = Some((k, c, v));
+            }
+        }
+    }
+    let Some((at, c, v)) = first else {
+        return Ok(());
+    };
+    let times = layout.numbers("time")?;
+    let n_times = times.len().max(1);
+    let channel = layout
+        .labels("channel")
+        .ok()
+        .and_then(|l| l.get(c).cloned())
+        .unwrap_or_else(|| format!("#{c}"));
+    let trial = match layout.axis("trial") {
+        Ok(_) => format!(" of trial {}", at / n_times),
+        Err(_) => String::new(),
+    };
+    Err(StageError::data(format!(
+        "channel `{channel}` has a non-finite sample ({v}) at {:.4} s{trial}; {spread}, and a \
+         later stage would report it there: {instead}",
+        times.get(at % n_times).copied().unwrap_or(f64::NAN)
+    )))
+}
+
+/// What to do about a non-finite sample before an op that spreads it (the end of the message
+/// of [`refuse_non_finite`]).
+pub const REPLACE_NON_FINITE: &str = "replace it first (mark the channel bad and run interpolate \
+     before this stage, or clean the recording)";
+
 /// Apply `f` to every channel (converted to `f64`) and store the results as `f32`. `f` gets up
 /// to [`ROWS`] consecutive channels at a time (to filter side by side, see
 /// [`crate::dsp::sos::ZeroPhase::apply_rows`]), the groups in parallel. Channels are
@@ -216,5 +274,112 @@ mod tests {
         ] {
             assert!(!is_voltage_data_type(t), "{t}");
         }
+    }
+
+    /// One NaN in a recording (Cz at 10 s) and, later, one in F3 (12 s): every op that spreads a
+    /// sample over others refuses it, naming Cz at 10 s — where it is, not where the op would
+    /// have spread it. A NaN the op does not spread passes: in a channel left out of the average
+    /// reference (it stays at its own sample), in an EOG channel, which joins no reference and
+    /// no spline, or in a channel that interpolate replaces (it does not read it).
+    #[test]
+    fn ops_that_spread_a_sample_refuse_a_non_finite_one_where_it_is() {
+        use crate::ops::laplacian::tests::{cap_labels, field_data};
+        use crate::ops::tf_testing::{run_err, run_op};
+        use crate::ops::{filter, interpolate, laplacian, notch, reref, resample};
+        use serde_json::json;
+        let labels = cap_labels();
+        let clean = field_data(
+            &labels,
+            2000,
+            |p, s| (p[0] + 0.3 * (s as f64 * 0.37).sin()) * 1e-5,
+            1e-5,
+        );
+        let names = clean.layout.labels("channel").unwrap().to_vec();
+        let at = |name: &str| names.iter().position(|n| n == name).unwrap();
+        let with_nan = |points: &[(&str, usize)]| {
+            let mut x = clean.clone();
+            if let crate::array::Values::Real(v) = &mut x.values {
+                for &(c, k) in points {
+                    v[[at(c), k]] = f32::NAN;
+                }
+            }
+            x
+        };
+        let bad = with_nan(&[("F3", 1200), ("Cz", 1000)]);
+        let named = "channel `Cz` has a non-finite sample (NaN) at 10.0000 s; ";
+        let cases: Vec<(String, StageError)> = vec![
+            (
+                "re-reference".into(),
+                run_err::<reref::ReReference>(json!({"method": "average"}), &bad),
+            ),
+            (
+                "notch".into(),
+                run_err::<notch::Notch>(json!({"freqs": [20]}), &bad),
+            ),
+            (
+                "filter".into(),
+                run_err::<filter::Filter>(json!({"low": 1, "high": 30}), &bad),
+            ),
+            (
+                "resample".into(),
+                run_err::<resample::Resample>(json!({"rate": 50}), &bad),
+            ),
+            (
+                "laplacian".into(),
+                run_err::<laplacian::Laplacian>(json!({}), &bad),
+            ),
+            (
+                "interpolate".into(),
+                run_err::<interpolate::Interpolate>(json!({"channels": ["C3"]}), &bad),
+            ),
+        ];
+        for (op, err) in cases {
+            let StageError::Data(message) = err else {
+                panic!("{op}: not a data error: {err:?}")
+            };
+            assert!(message.starts_with(named), "{op}: {message}");
+            assert!(message.contains("replace"), "{op}: {message}");
+        }
+        // Not spread, not refused.
+        let one = with_nan(&[("Cz", 1000)]);
+        let (out, _) =
+            run_op::<reref::ReReference>(json!({"method": "average", "exclude": ["Cz"]}), &one)
+                .unwrap();
+        let v = out.real_values().unwrap();
+        let nan: Vec<[usize; 2]> = v
+            .indexed_iter()
+            .filter(|(_, x)| x.is_nan())
+            .map(|(i, _)| [i[0], i[1]])
+            .collect();
+        assert_eq!(nan, [[at("Cz"), 1000]]);
+        let eog = with_nan(&[("VEOG", 1000)]);
+        run_op::<reref::ReReference>(json!({"method": "average"}), &eog).unwrap();
+        run_op::<laplacian::Laplacian>(json!({}), &eog).unwrap();
+        let (out, _) =
+            run_op::<interpolate::Interpolate>(json!({"channels": ["Cz"]}), &one).unwrap();
+        assert!(out.real_values().unwrap().iter().all(|x| x.is_finite()));
+    }
+
+    /// Epoched data: the time is the trial's own, and the trial is named.
+    #[test]
+    fn a_non_finite_sample_of_epoched_data_names_its_trial() {
+        use crate::ops::tf_testing::epoched;
+        let mut v = ndarray::Array3::<f32>::zeros((2, 3, 50));
+        v[[1, 2, 10]] = f32::INFINITY;
+        let x = epoched(v.into_dyn(), 100.0, -20, &["A", "B", "A"]);
+        let err = refuse_non_finite(
+            x.real_values().unwrap(),
+            &x.layout,
+            0..2,
+            "it spreads",
+            "fix it",
+        )
+        .unwrap_err();
+        assert_eq!(
+            err.to_string(),
+            "channel `C1` has a non-finite sample (inf) at -0.1000 s of trial 2; it spreads, and \
+             a later stage would report it there: fix it"
+        );
+        assert!(refuse_non_finite(x.real_values().unwrap(), &x.layout, 0..1, "", "").is_ok());
     }
 }

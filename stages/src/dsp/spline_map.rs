@@ -6,6 +6,7 @@
 use ndarray::ArrayD;
 
 use crate::array::{LabelledArray, Layout};
+use crate::dsp::recording::refuse_non_finite;
 use crate::error::StageError;
 use crate::spatial::splines::Spline;
 use crate::spatial::{apply_to_channels, spline_positions};
@@ -110,8 +111,19 @@ impl SplineMap {
         &self.to
     }
 
-    /// The output for the input's `values`.
+    /// The output for the input's `values` (whose channel and time axes are the output
+    /// layout's). A non-finite sample in a channel the map reads is refused
+    /// ([`refuse_non_finite`]): it would reach every channel the map computes.
     pub fn apply(self, values: &ArrayD<f32>) -> Result<LabelledArray, StageError> {
+        refuse_non_finite(
+            values,
+            &self.layout,
+            self.from.iter().copied(),
+            "the spline computes channels from every channel it reads at each time and would \
+             spread it into them",
+            "replace it first (mark the channel bad and run interpolate, which does not read \
+             the channels it replaces, or clean the recording)",
+        )?;
         let out = apply_to_channels(values, &self.matrix, &self.from, &self.to);
         LabelledArray::real(self.layout, out)
     }

@@ -6,9 +6,11 @@
 //! `subtract` v − b̄, `percent` 100 (v − b̄) / b̄, `db` 10 log10(v / b̄), `zscore` (v − b̄) / s.
 //! The op works on any real array with a numeric `time` axis.
 //!
-//! `db` is only defined for non-negative quantities; measures that can be negative by definition
-//! are refused from the layout alone, any other negative value at run time. A zero baseline mean
-//! (percent, db) or zero spread (zscore) gives NaN for that time course, with a warning.
+//! `db` and `percent` divide by the baseline mean, so they are only meaningful for non-negative
+//! quantities: for a signed one a negative mean flips the sign of every change and a mean near
+//! zero blows it up. Measures that can be negative by definition are refused from the layout
+//! alone, any other negative value at run time, for both modes. A zero baseline mean (percent,
+//! db) or zero spread (zscore) gives NaN for that time course, with a warning.
 
 use ndarray::{ArrayD, ArrayView1, ArrayViewMut1, Axis, Dimension, IxDyn, Zip};
 use rayon::prelude::*;
@@ -39,7 +41,7 @@ pub struct BaselineParams {
 pub enum BaselineMode {
     /// v − b̄, in the input's units.
     Subtract,
-    /// 100 (v − b̄) / b̄, in %.
+    /// 100 (v − b̄) / b̄, in %; non-negative quantities only.
     Percent,
     /// 10 log10(v / b̄), in dB; non-negative quantities only.
     Db,
@@ -55,6 +57,34 @@ impl BaselineMode {
             BaselineMode::Percent => "%".into(),
             BaselineMode::Db => "dB".into(),
             BaselineMode::Zscore => "z".into(),
+        }
+    }
+
+    /// The mode's name in pipeline files.
+    fn name(self) -> &'static str {
+        match self {
+            BaselineMode::Subtract => "subtract",
+            BaselineMode::Percent => "percent",
+            BaselineMode::Db => "db",
+            BaselineMode::Zscore => "zscore",
+        }
+    }
+
+    /// True for the modes that divide by the baseline mean (`percent`, `db`): on a quantity
+    /// that can be negative, a negative mean flips the sign of every change and a mean near zero
+    /// makes it arbitrarily large, so these modes are refused there.
+    fn needs_non_negative(self) -> bool {
+        matches!(self, BaselineMode::Percent | BaselineMode::Db)
+    }
+
+    /// Why the mode needs a non-negative quantity (the start of its refusal).
+    fn why_non_negative(self) -> &'static str {
+        match self {
+            BaselineMode::Db => "db takes the logarithm of a ratio to the baseline mean",
+            _ => {
+                "percent divides by the baseline mean (a negative mean flips the sign of the \
+                  change, one near zero inflates it)"
+            }
         }
     }
 }
@@ -80,8 +110,8 @@ fn plan(p: &BaselineParams, input: &Layout) -> Result<Plan, StageError> {
     let time_axis = input.axis("time")?;
     let times = input.numbers("time")?;
     let points = window_points(p, times)?;
-    if p.mode == BaselineMode::Db {
-        refuse_signed_measures(input)?;
+    if p.mode.needs_non_negative() {
+        refuse_signed_measures(input, p.mode)?;
     }
     let mut layout = input.clone();
     layout.units = p.mode.units(&input.units);
@@ -125,7 +155,9 @@ fn window_points(p: &BaselineParams, times: &[f64]) -> Result<Vec<usize>, StageE
     Ok(points)
 }
 
-fn refuse_signed_measures(input: &Layout) -> Result<(), StageError> {
+/// Refuses a mode that divides by the baseline mean (`db`, `percent`) on a measure that can be
+/// negative by definition, from the layout alone.
+fn refuse_signed_measures(input: &Layout, mode: BaselineMode) -> Result<(), StageError> {
     let Ok(measures) = input.labels("measure") else {
         return Ok(());
     };
@@ -136,22 +168,29 @@ fn refuse_signed_measures(input: &Layout) -> Result<(), StageError> {
         Some(m) => Err(StageError::param(
             "mode",
             format!(
-                "db takes the logarithm of a ratio and needs a non-negative quantity, but measure \
-                 `{m}` can be negative; use subtract, percent or zscore (or leave `{m}` out)"
+                "{} and needs a non-negative quantity, but measure `{m}` can be negative; use \
+                 subtract or zscore (or leave `{m}` out)",
+                mode.why_non_negative()
             ),
         )),
         None => Ok(()),
     }
 }
 
-/// Refuses `db` on data holding a negative value, naming the first one.
-fn refuse_negative_values(input: &LabelledArray, values: &ArrayD<f32>) -> Result<(), StageError> {
+/// Refuses a mode that divides by the baseline mean on data holding a negative value, naming
+/// the first one.
+fn refuse_negative_values(
+    input: &LabelledArray,
+    values: &ArrayD<f32>,
+    mode: BaselineMode,
+) -> Result<(), StageError> {
     match values.indexed_iter().find(|(_, &v)| v < 0.0) {
         Some((index, v)) => Err(StageError::param(
             "mode",
             format!(
-                "db needs non-negative values, but the input holds {} at {}; use subtract, \
-                 percent or zscore",
+                "{} needs non-negative values, but the input holds {} at {}; use subtract or \
+                 zscore",
+                mode.name(),
                 number_text(f64::from(*v)),
                 position_text(&input.layout, index.slice())
             ),
@@ -427,8 +466,8 @@ impl Op for Baseline {
         let input = single(inputs)?.array;
         let plan = plan(p, &input.layout)?;
         let values = input.real_values()?;
-        if p.mode == BaselineMode::Db {
-            refuse_negative_values(input, values)?;
+        if p.mode.needs_non_negative() {
+            refuse_negative_values(input, values, p.mode)?;
         }
         let (stats, out) = match values.as_slice() {
             Some(data) if plan.time_axis + 1 == values.ndim() && !values.is_empty() => {
@@ -466,8 +505,8 @@ impl Op for Baseline {
             };
             return Self::run(p, &[borrowed], notes);
         }
-        if p.mode == BaselineMode::Db {
-            refuse_negative_values(&input.array, input.array.real_values()?)?;
+        if p.mode.needs_non_negative() {
+            refuse_negative_values(&input.array, input.array.real_values()?, p.mode)?;
         }
         let Values::Real(mut values) = input.array.values else {
             return Err(StageError::data("internal: baseline input changed type"));
@@ -711,7 +750,61 @@ mod tests {
             StageError::param(
                 "mode",
                 "db needs non-negative values, but the input holds -0.25 at condition=B, \
-                 measure=plv, pair=Cz-P4, freq=10, time=-0.3; use subtract, percent or zscore"
+                 measure=plv, pair=Cz-P4, freq=10, time=-0.3; use subtract or zscore"
+            )
+        );
+    }
+
+    /// `percent` divides by the baseline mean as `db` does: on a measure that can be negative
+    /// (`Measure::signed`: ppc, dwpli, icoh) a negative mean flips the sign of every change and
+    /// a mean near zero inflates it, so it is refused where `db` is, by the same checks. The
+    /// demo's measure list (pipelines/demo.yaml) holds three of them.
+    #[test]
+    fn percent_is_refused_where_db_is() {
+        let demo = ["plv", "ppc", "pli", "wpli", "dwpli", "icoh"];
+        for signed in ["ppc", "dwpli", "icoh"] {
+            let mut input = fixture_input();
+            // The fixture's measures are plv, pli, wpli; the signed one replaces pli.
+            input.layout.coords[1] = labels(&["plv", signed, "wpli"]);
+            for mode in ["percent", "db"] {
+                let err = layout_of(&params([-0.3, -0.1], mode), &input).unwrap_err();
+                let StageError::Param { field, message } = err else {
+                    panic!("not a param error")
+                };
+                assert_eq!(field, "mode");
+                assert!(message.starts_with(mode), "{message}");
+                assert!(
+                    message.contains(&format!(
+                        "measure `{signed}` can be negative; use subtract or zscore"
+                    )),
+                    "{message}"
+                );
+            }
+        }
+        // Every measure of the demo, three at a time as the fixture holds them: refused
+        // exactly when a signed one is among them; the others pass in every mode.
+        let mut input = fixture_input();
+        for three in demo.chunks(3).chain([["plv", "pli", "wpli"].as_slice()]) {
+            input.layout.coords[1] = labels(three);
+            let signed = three.iter().any(|m| ["ppc", "dwpli", "icoh"].contains(m));
+            for mode in ["subtract", "percent", "db", "zscore"] {
+                let refused = layout_of(&params([-0.3, -0.1], mode), &input).is_err();
+                let divides = mode == "percent" || mode == "db";
+                assert_eq!(refused, signed && divides, "{three:?} {mode}");
+            }
+        }
+        // A negative value in a measure not known to be signed: refused at run time, as for db.
+        let mut input = fixture_input();
+        if let Values::Real(v) = &mut input.values {
+            v[[1, 0, 2, 3, 5]] = -0.25;
+        }
+        let err = run_on(&params([-0.3, -0.1], "percent"), &input).unwrap_err();
+        assert_eq!(
+            err,
+            StageError::param(
+                "mode",
+                "percent needs non-negative values, but the input holds -0.25 at condition=B, \
+                 measure=plv, pair=Cz-P4, freq=10, time=-0.3; use subtract or zscore"
             )
         );
     }

@@ -35,6 +35,7 @@ use crate::array::{Coord, LabelledArray, Layout};
 use crate::dsp::recording::is_voltage_data_type;
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
+use crate::table::number_text;
 
 pub use super::measures::Measure;
 use super::measures::{polar, Sums};
@@ -515,12 +516,57 @@ impl Op for Clustering {
         if plan.halves.is_none() {
             warn_unequal_counts(&plan, notes);
         }
+        if let (Some(halves), Some(cycles)) = (&plan.halves, p.window_cycles) {
+            warn_long_windows(halves, cycles, &input.layout, notes)?;
+        }
         let out = compute(&plan, &x);
         let shape = plan.layout.shape();
         let array = ArrayD::from_shape_vec(IxDyn(&shape), out)
             .map_err(|e| StageError::data(format!("internal shape error: {e}")))?;
         LabelledArray::real(plan.layout, array)
     }
+}
+
+/// Warns, naming the frequencies, when a window of `across: time` (2h + 1 samples) is longer
+/// than the time axis: no time point then has a whole window, the windows of the middle points
+/// all cover the whole axis, and the time course there is flat — a measure over the whole
+/// trial, not a time course. Not refused: the values are what the definition gives (windows
+/// cut at the ends of the axis), and a higher frequency of the same list may fit.
+fn warn_long_windows(
+    halves: &[usize],
+    cycles: f64,
+    input: &Layout,
+    notes: &mut Notes,
+) -> Result<(), StageError> {
+    let freqs = input.numbers("freq")?;
+    let n_times = input.coord("time")?.len();
+    let long: Vec<(f64, usize)> = freqs
+        .iter()
+        .zip(halves)
+        .filter(|(_, &h)| 2 * h + 1 > n_times)
+        .map(|(&f, &h)| (f, h))
+        .collect();
+    let (Some(&(f_low, h_low)), Some(&(f_high, _))) = (
+        long.iter().min_by(|a, b| a.0.total_cmp(&b.0)),
+        long.iter().max_by(|a, b| a.0.total_cmp(&b.0)),
+    ) else {
+        return Ok(());
+    };
+    let fs = input.sampling_rate()?;
+    let listed: Vec<String> = long.iter().map(|&(f, _)| number_text(f)).collect();
+    let fitting = n_times as f64 * f_high / fs;
+    notes.warn(format!(
+        "clustering: at {} Hz the window of {cycles} cycles is longer than the time axis \
+         ({} samples at {} Hz against {n_times}), so no time point has a whole window \
+         and the middle ones all measure the same samples: the time course there is flat (a \
+         measure over the whole trial); lower window_cycles (the time axis holds {fitting:.3} \
+         cycles of {} Hz) or keep more of the epoch in the wavelet's crop",
+        listed.join(", "),
+        2 * h_low + 1,
+        number_text(f_low),
+        number_text(f_high),
+    ));
+    Ok(())
 }
 
 /// Measures whose expected value grows as the trial count falls (a mean of unit vectors or
@@ -1383,6 +1429,54 @@ mod tests {
                 flat(&b).iter().map(|v| v.to_bits()).collect::<Vec<_>>()
             );
         }
+    }
+
+    #[test]
+    fn clustering_warns_when_a_time_window_is_longer_than_the_time_axis() {
+        // h = round(window_cycles · fs / (2f)) (DESIGN §4, module doc), fs = 100 Hz, 40 samples:
+        // with 3 cycles h is 38 at 4 Hz and 21 at 7 Hz (windows of 77 and 43 samples, longer
+        // than the axis), 15 at 10 Hz and 12 at 13 Hz (31 and 25 samples, which fit). The points
+        // t with t − h ≤ 0 and t + h ≥ 39 all measure the whole axis: their values are equal.
+        let mut rng = ChaCha8Rng::seed_from_u64(5);
+        let data = coefs((2, 3, 4, 40), &["A"; 3], |_| gauss(&mut rng));
+        let params = json!({"measure": ["plv", "wpli"], "across": "time", "window_cycles": 3});
+        let (out, notes) = run_op::<Clustering>(params, &data).unwrap();
+        let long: Vec<&String> = notes
+            .warnings
+            .iter()
+            .filter(|w| w.contains("longer than the time axis"))
+            .collect();
+        assert_eq!(long.len(), 1, "{:?}", notes.warnings);
+        assert!(
+            long[0].starts_with("clustering: at 4, 7 Hz the window of 3 cycles"),
+            "{}",
+            long[0]
+        );
+        assert!(
+            long[0].contains("(77 samples at 4 Hz against 40)"),
+            "{}",
+            long[0]
+        );
+        let v = out.real_values().unwrap();
+        let course =
+            |f: usize| -> Vec<u32> { (0..40).map(|t| v[[0, 0, 0, f, t]].to_bits()).collect() };
+        for (f, h) in [(0usize, 38usize), (1, 21)] {
+            let c = course(f);
+            assert!(c[39 - h..=h].iter().all(|&b| b == c[h]), "freq {f}: {c:?}");
+        }
+        let c = course(2);
+        assert!(c.iter().any(|&b| b != c[20]), "10 Hz fits and is not flat");
+        // Windows that fit: no such warning.
+        let params = json!({"measure": "plv", "across": "time", "window_cycles": 1});
+        let (_, notes) = run_op::<Clustering>(params, &data).unwrap();
+        assert!(
+            !notes
+                .warnings
+                .iter()
+                .any(|w| w.contains("longer than the time axis")),
+            "{:?}",
+            notes.warnings
+        );
     }
 
     #[test]

@@ -18,6 +18,6 @@ pub mod reref;
 pub mod resample;
 pub mod surrogate;
 #[cfg(test)]
-mod tf_testing;
+pub(crate) mod tf_testing;
 pub mod trial_sums;
 pub mod wavelet;

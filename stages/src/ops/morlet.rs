@@ -298,6 +298,8 @@ impl Bank {
             // instead of when its first loop waits for them.
             prefetch(next.unwrap_or_default());
             self.fold_and_invert(s, out_x, out_y);
+            silence_zero_signal(x, y, out_x);
+            silence_zero_signal(y, x, out_y);
         }
     }
 
@@ -380,6 +382,21 @@ impl Bank {
                 }
             }
         }
+    }
+}
+
+/// Writes exact zeros over `out` when `signal` is all zeros but its partner in the shared
+/// forward transform is not. The pair separation X̃ = (Z + Z*)/2 cancels the partner's spectrum
+/// only up to rounding, so a zero signal would otherwise get coefficients of the order of 1e-16
+/// of its partner's, which have a phase: a channel referenced to itself would then look like a
+/// signal to the clustering measures instead of having no phase (DESIGN §4). Every other output
+/// keeps its bits: a signal with a non-zero sample is not touched, nor a zero one whose partner
+/// is zero or absent (its transform is exactly zero already).
+#[inline(always)]
+fn silence_zero_signal<T: Slot>(signal: &[f32], partner: &[f32], out: &mut [T]) {
+    let zero = |v: &[f32]| v.iter().all(|&a| a == 0.0);
+    if !signal.is_empty() && zero(signal) && !zero(partner) {
+        out.iter_mut().for_each(|o| o.set(Complex32::default()));
     }
 }
 

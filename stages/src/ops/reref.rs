@@ -18,7 +18,7 @@ use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use crate::array::{Coord, LabelledArray, Layout};
-use crate::dsp::recording::{as_matrix, Continuous};
+use crate::dsp::recording::{as_matrix, refuse_non_finite, Continuous};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
 
@@ -96,6 +96,20 @@ impl Op for ReReference {
         let (layout, plan) = output_layout(p, &input.layout)?;
         let rec = Continuous::of(&input.layout)?;
         let x = as_matrix(input.real_values()?)?;
+        if let Plan::Reference(rows) = &plan {
+            // A channel outside the reference keeps its own samples; one inside it reaches
+            // every data channel through the mean.
+            refuse_non_finite(
+                input.real_values()?,
+                &input.layout,
+                rows.iter().copied(),
+                "the channel joins the reference, whose mean would carry it into every data \
+                 channel at that time",
+                "leave the channel out of the reference (`exclude`), or replace the sample \
+                 first (mark the channel bad and run interpolate before this stage, or clean \
+                 the recording)",
+            )?;
+        }
         let values = match &plan {
             Plan::Reference(rows) => subtract_reference(x, rows, &rec.is_data),
             Plan::Bipolar(pairs, rest) => bipolar(x, pairs, rest),

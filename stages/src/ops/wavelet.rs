@@ -453,7 +453,9 @@ pub(crate) fn check_finite(
 impl Op for Wavelet {
     type Params = WaveletParams;
     const NAME: &'static str = "wavelet";
-    const VERSION: u32 = 3;
+    /// 4: a signal that is exactly zero gives exactly zero coefficients, also when it shares
+    /// its forward transform with a non-zero one (whose rounding it picked up before).
+    const VERSION: u32 = 4;
 
     fn check(p: &Self::Params) -> Result<(), StageError> {
         check_freqs(&p.freqs)?;
@@ -1108,5 +1110,71 @@ mod tests {
         data.layout.dims.swap(0, 1);
         let m = msg(run_err::<Wavelet>(ok, &data));
         assert!(m.contains("expects epoched data with axes [channel, trial, time], found [trial, channel, time]"), "{m}");
+    }
+
+    /// A channel that is exactly zero (say, referenced to itself) has no phase. Signals share a
+    /// forward FFT two by two, so a zero signal paired with a non-zero one must not pick up its
+    /// partner's rounding: its coefficients are exactly 0.0 (DESIGN §4: the convolution of zeros
+    /// is zero), and clustering then makes every pair with it NaN, across trials and across time
+    /// alike (DESIGN §4: "a zero coefficient has no phase: its pair is NaN there").
+    #[test]
+    fn a_zero_channel_gets_exactly_zero_coefficients_and_nan_pairs() {
+        use crate::ops::clustering::Clustering;
+        let fs = 250.0;
+        let params = json!({"freqs": [6, 11, 23], "cycles": 4, "crop": [-0.4, 0.4]});
+        // [zero, noise, noise] with one trial: the zero signal shares its transform with the
+        // first noisy one. [noise, zero] with three trials: the zero channel's first trial
+        // shares it with the noisy channel's last.
+        for (zero, shape) in [(0usize, (3usize, 1usize, 300usize)), (1, (2, 3, 300))] {
+            let data = input(shape, fs, -150, |c, n, t| {
+                if c == zero {
+                    0.0
+                } else {
+                    ((c * 7 + n * 3) as f64 + 13.7 * t).sin() * 1e-5 + (40.0 * t).cos() * 3e-6
+                }
+            });
+            let (tf, _) = run_op::<Wavelet>(params.clone(), &data).unwrap();
+            let v = tf.complex_values().unwrap();
+            let leaked = v
+                .index_axis(ndarray::Axis(0), zero)
+                .iter()
+                .filter(|z| z.re.to_bits() != 0 || z.im.to_bits() != 0)
+                .count();
+            assert_eq!(
+                leaked, 0,
+                "{shape:?}: the zero channel has non-zero coefficients"
+            );
+            let name = format!("C{zero}");
+            for across in [
+                json!({"across": "trials"}),
+                json!({"across": "time", "window_cycles": 2}),
+            ] {
+                let mut p = json!({"measure": ["plv", "wpli", "icoh"], "pairs": "all"});
+                p.as_object_mut()
+                    .unwrap()
+                    .extend(across.as_object().unwrap().clone());
+                let (out, notes) = run_op::<Clustering>(p, &tf).unwrap();
+                assert!(
+                    notes
+                        .warnings
+                        .iter()
+                        .any(|w| w.contains(&format!("channel {name} has"))),
+                    "{:?}",
+                    notes.warnings
+                );
+                let pairs = match &out.layout.coords[2] {
+                    crate::array::Coord::Pairs(p) => p.to_vec(),
+                    other => panic!("{other:?}"),
+                };
+                let values = out.real_values().unwrap();
+                for (k, pair) in pairs.iter().enumerate() {
+                    let lane = values.index_axis(ndarray::Axis(2), k);
+                    let with_zero = pair.contains(&name);
+                    let nan = lane.iter().filter(|x| x.is_nan()).count();
+                    let want = if with_zero { lane.len() } else { 0 };
+                    assert_eq!(nan, want, "{shape:?} {across} {pair:?}");
+                }
+            }
+        }
     }
 }
