@@ -89,6 +89,29 @@ fn tf_coords() -> Vec<Coord> {
     ]
 }
 
+/// The group aggregate `group/group.npy` over channel `pairs`: statistic × subject × condition ×
+/// measure × pair × band × window, one band and one window.
+fn write_group(out: &Path, pairs: Vec<[String; 2]>) {
+    let mut coords = vec![
+        Coord::Labels(vec!["mean".into(), "sem".into(), "n".into()]),
+        Coord::Labels(vec!["sub-01".into(), "sub-02".into(), "group".into()]),
+    ];
+    coords.extend(tf_coords().into_iter().take(2));
+    coords.push(Coord::Pairs(pairs.into()));
+    coords.push(Coord::Labels(vec!["theta".into()]));
+    coords.push(Coord::Labels(vec!["late".into()]));
+    let dims = [
+        "statistic",
+        "subject",
+        "condition",
+        "measure",
+        "pair",
+        "band",
+        "window",
+    ];
+    write_array(out, "group", "group", &dims, coords, "1", &group_values());
+}
+
 fn write_array(
     dir: &Path,
     owner: &str,
@@ -216,31 +239,7 @@ fn fixture() -> Fixture {
     // Raw phase locking: non-negative.
     let sync = tf_values(0.2, 0.05, 0.5);
     write_array(&out, "sub-02", "sync", &dims, tf_coords(), "1", &sync);
-    let mut gcoords = vec![
-        Coord::Labels(vec!["mean".into(), "sem".into(), "n".into()]),
-        Coord::Labels(vec!["sub-01".into(), "sub-02".into(), "group".into()]),
-    ];
-    gcoords.extend(tf_coords().into_iter().take(3));
-    gcoords.push(Coord::Labels(vec!["theta".into()]));
-    gcoords.push(Coord::Labels(vec!["late".into()]));
-    let gdims = [
-        "statistic",
-        "subject",
-        "condition",
-        "measure",
-        "pair",
-        "band",
-        "window",
-    ];
-    write_array(
-        &out,
-        "group",
-        "group",
-        &gdims,
-        gcoords,
-        "1",
-        &group_values(),
-    );
+    write_group(&out, pairs());
     // Not drawable: epoched voltages.
     let trials = ArrayD::from_elem(IxDyn(&[4, 2, 3]), 1e-6f32);
     let tcoords = vec![
@@ -536,32 +535,7 @@ fn relabel_group(f: &Fixture, labels: [&str; 4]) {
             pairs.push([a.to_string(), b.to_string()]);
         }
     }
-    let mut coords = vec![
-        Coord::Labels(vec!["mean".into(), "sem".into(), "n".into()]),
-        Coord::Labels(vec!["sub-01".into(), "sub-02".into(), "group".into()]),
-    ];
-    coords.extend(tf_coords().into_iter().take(2));
-    coords.push(Coord::Pairs(pairs.into()));
-    coords.push(Coord::Labels(vec!["theta".into()]));
-    coords.push(Coord::Labels(vec!["late".into()]));
-    let dims = [
-        "statistic",
-        "subject",
-        "condition",
-        "measure",
-        "pair",
-        "band",
-        "window",
-    ];
-    write_array(
-        &f.out,
-        "group",
-        "group",
-        &dims,
-        coords,
-        "1",
-        &group_values(),
-    );
+    write_group(&f.out, pairs);
 }
 
 #[test]
