@@ -12,9 +12,11 @@
 //!   to explain *why* a unit is stale;
 //! - `stat/`: stat records of input files (see [`sources`](crate::sources)).
 //!
-//! Writes go to a temporary file in the target's folder, are fsynced and renamed, the NPY before
-//! its record, so the record is the commit point: a killed run leaves at most a temporary file
-//! or an NPY without a record, neither of which is trusted. Equal keys give equal bytes, so two
+//! Writes go to a temporary file in the target's folder and are renamed, the NPY before its
+//! record, so the record is the commit point: a killed run leaves at most a temporary file or an
+//! NPY without a record, neither of which is trusted. They are not fsynced: what a power loss
+//! leaves is caught by the seal and the content hash every read checks, and an export is fsynced
+//! before it exists (DEVELOPERS.md, "Durability"). Equal keys give equal bytes, so two
 //! writers racing on one key (cluster nodes sharing the cache) are harmless. Reading fails toward
 //! recomputing: a missing, truncated, unparsable or unknown-version object is treated as absent,
 //! every read of a record checks its seal, and a load checks the values' content hash.
