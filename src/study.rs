@@ -18,7 +18,7 @@ use serde_json::json;
 
 use crate::graph::{self, StageShape, Unit, UnitInput};
 use crate::key::{Fingerprint, InputKey};
-use crate::manifest::Manifest;
+use crate::manifest::{Manifest, UnitRecord};
 use crate::paths::relative_to;
 use crate::pipeline::{Diagnostic, PipelineError, ResolvedPipeline, SOURCE};
 use crate::plan::{Plan, Previous, Stored, UnitFacts};
@@ -396,6 +396,19 @@ impl Study {
         let reading: Vec<_> = (0..self.sources.len())
             .map(|s| self.changed_reading(s))
             .collect();
+        // Each run's units by stage and subject, so that finding one is not a scan per unit.
+        let by_unit: Vec<std::collections::HashMap<(&str, Option<&str>), &UnitRecord>> = runs
+            .iter()
+            .map(|run| {
+                let mut units = std::collections::HashMap::new();
+                for x in &run.units {
+                    units
+                        .entry((x.stage.as_str(), x.subject.as_deref()))
+                        .or_insert(x);
+                }
+                units
+            })
+            .collect();
         (0..self.units.len())
             .map(|u| {
                 let stored = match self.store.lookup(&self.keys[u]) {
@@ -404,12 +417,9 @@ impl Study {
                     Lookup::Damaged(why) => Stored::Damaged(why.to_string()),
                 };
                 let (stage, subject) = (self.stage_name(u), self.subject(u));
-                let recorded = runs.iter().enumerate().find_map(|(r, run)| {
-                    let unit = run
-                        .units
-                        .iter()
-                        .find(|x| x.stage == stage && x.subject.as_deref() == subject)?;
-                    Some((r, Previous::from(unit)))
+                let recorded = by_unit.iter().enumerate().find_map(|(r, units)| {
+                    let unit = units.get(&(stage, subject))?;
+                    Some((r, Previous::from(*unit)))
                 });
                 let (last, changed) = match recorded {
                     Some((r, previous)) => (Some(previous), &since_run[r]),

@@ -113,6 +113,22 @@ pub fn as_matrix(values: &ArrayD<f32>) -> Result<ArrayView2<'_, f32>, StageError
     })
 }
 
+/// [`refuse_non_finite`] over every channel of `input`, with the usual advice
+/// ([`REPLACE_NON_FINITE`]): for ops that filter each channel along time.
+pub fn refuse_non_finite_anywhere(
+    input: &crate::array::LabelledArray,
+    spread: &str,
+) -> Result<(), StageError> {
+    let values = input.real_values()?;
+    refuse_non_finite(
+        values,
+        &input.layout,
+        0..values.shape()[0],
+        spread,
+        REPLACE_NON_FINITE,
+    )
+}
+
 /// Refuses a NaN or infinite sample in the channels `rows` of `values` (axes `[channel, time]`
 /// or `[channel, trial, time]`, as `layout` says) before an op that spreads a sample over other
 /// samples or channels: after it, the value would be everywhere it spread (a zero-phase filter

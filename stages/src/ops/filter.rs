@@ -12,7 +12,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::array::{LabelledArray, Layout};
 use crate::dsp::design::{butterworth, Band};
-use crate::dsp::recording::{map_channels, refuse_non_finite, Continuous, REPLACE_NON_FINITE};
+use crate::dsp::recording::{map_channels, refuse_non_finite_anywhere, Continuous};
 use crate::dsp::sos::ZeroPhase;
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
@@ -96,13 +96,10 @@ impl Op for Filter {
     ) -> Result<LabelledArray, StageError> {
         let input = single(inputs)?.array;
         let (layout, filter) = output_layout(p, &input.layout)?;
-        refuse_non_finite(
-            input.real_values()?,
-            &input.layout,
-            0..input.real_values()?.shape()[0],
+        refuse_non_finite_anywhere(
+            input,
             "the filter runs forward and backward over the whole recording and would spread it \
              over the whole channel",
-            REPLACE_NON_FINITE,
         )?;
         let values = map_channels(input.real_values()?, |rows, scratch| {
             filter.apply_rows(rows, scratch)

@@ -11,7 +11,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::array::{LabelledArray, Layout};
 use crate::dsp::design::notch;
-use crate::dsp::recording::{map_channels, refuse_non_finite, Continuous, REPLACE_NON_FINITE};
+use crate::dsp::recording::{map_channels, refuse_non_finite_anywhere, Continuous};
 use crate::dsp::sos::ZeroPhase;
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
@@ -89,13 +89,10 @@ impl Op for Notch {
             .into_iter()
             .map(|f| ZeroPhase::new(vec![notch(f, p.q, fs)]))
             .collect();
-        refuse_non_finite(
-            input.real_values()?,
-            &input.layout,
-            0..input.real_values()?.shape()[0],
+        refuse_non_finite_anywhere(
+            input,
             "the notch runs forward and backward over the whole recording and would spread it \
              over the whole channel",
-            REPLACE_NON_FINITE,
         )?;
         let values = map_channels(input.real_values()?, |rows, scratch| {
             filters

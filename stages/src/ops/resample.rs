@@ -15,7 +15,7 @@ use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use crate::array::{Coord, LabelledArray, Layout};
-use crate::dsp::recording::{as_matrix, refuse_non_finite, Continuous, REPLACE_NON_FINITE};
+use crate::dsp::recording::{as_matrix, refuse_non_finite_anywhere, Continuous};
 use crate::dsp::resample::{factors, Resampler};
 use crate::error::StageError;
 use crate::op::{single, Input, InputLayout, Notes, Op};
@@ -57,12 +57,9 @@ impl Op for Resample {
     ) -> Result<LabelledArray, StageError> {
         let input = single(inputs)?.array;
         let (layout, resampler) = plan(p, &input.layout)?;
-        refuse_non_finite(
-            input.real_values()?,
-            &input.layout,
-            0..input.real_values()?.shape()[0],
+        refuse_non_finite_anywhere(
+            input,
             "the anti-alias filter would spread it over the neighbouring output samples",
-            REPLACE_NON_FINITE,
         )?;
         let x = as_matrix(input.real_values()?)?;
         let values = resample_rows(x, &resampler);
